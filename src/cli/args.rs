@@ -1,0 +1,135 @@
+//! Command-line flags, mirrored as clap structs. Only validation that needs
+//! no I/O happens here; [`super::config`] turns these into a validated config.
+
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand, ValueEnum};
+
+/// braid: stitch, test and report age trajectories from cohort-sequential studies.
+#[derive(Debug, Parser)]
+#[command(name = "braid", version, about, long_about = None, propagate_version = true)]
+pub struct Cli {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// The subcommands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Fit one age trajectory to a long-format file (one row per participant per wave).
+    Fit(FitArgs),
+    /// Simulate an invented cohort-sequential study, write it with a study file, and fit it.
+    Demo(DemoArgs),
+}
+
+/// Estimation criterion on the command line.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum MethodArg {
+    /// Restricted maximum likelihood.
+    Reml,
+    /// Maximum likelihood.
+    Ml,
+}
+
+/// Column roles shared by commands that read a file.
+#[derive(Debug, Clone, Default, Args)]
+pub struct RoleArgs {
+    /// Column holding the participant id.
+    #[arg(long, value_name = "COLUMN")]
+    pub id: Option<String>,
+    /// Column holding exact age in years.
+    #[arg(long, value_name = "COLUMN")]
+    pub age: Option<String>,
+    /// Column holding the outcome.
+    #[arg(long, value_name = "COLUMN")]
+    pub outcome: Option<String>,
+    /// Column holding the birth cohort.
+    #[arg(long, value_name = "COLUMN")]
+    pub cohort: Option<String>,
+    /// Column holding the wave or occasion.
+    #[arg(long, value_name = "COLUMN")]
+    pub wave: Option<String>,
+    /// Column holding the cluster (for example the school); adds a random intercept per cluster.
+    #[arg(long, value_name = "COLUMN")]
+    pub cluster: Option<String>,
+    /// A covariate column (repeatable); numeric unless its values are text or it is also given to --categorical.
+    #[arg(long = "covariate", value_name = "COLUMN")]
+    pub covariates: Vec<String>,
+    /// Treat this covariate as categorical even if its values are numbers (repeatable).
+    #[arg(long = "categorical", value_name = "COLUMN")]
+    pub categorical: Vec<String>,
+    /// Field delimiter of a CSV file: one character, or \t for tab [default: ,].
+    #[arg(long, value_name = "CHAR")]
+    pub delimiter: Option<String>,
+}
+
+/// Flags of `braid fit`.
+#[derive(Debug, Clone, Default, Args)]
+pub struct FitArgs {
+    /// The data file (CSV, or Parquet by its .parquet extension); optional with --study.
+    #[arg(value_name = "DATA")]
+    pub data: Option<PathBuf>,
+    /// A study file (TOML) stating the data, roles and model; flags given as well override it.
+    #[arg(long, value_name = "FILE")]
+    pub study: Option<PathBuf>,
+    /// Column roles.
+    #[command(flatten)]
+    pub roles: RoleArgs,
+    /// Degree of the centred age polynomial, 1 to 4 [default: 2].
+    #[arg(long, value_name = "N", conflicts_with_all = ["knots", "knot_ages"])]
+    pub degree: Option<usize>,
+    /// Use a natural cubic spline in age with K interior knots at quantiles of age.
+    #[arg(long, value_name = "K", conflicts_with = "knot_ages")]
+    pub knots: Option<usize>,
+    /// Use a natural cubic spline with interior knots at these ages (comma-separated).
+    #[arg(long, value_name = "AGES", value_delimiter = ',')]
+    pub knot_ages: Option<Vec<f64>>,
+    /// Centre age of the basis and of the random slope [default: the mean age].
+    #[arg(long, value_name = "AGE")]
+    pub center: Option<f64>,
+    /// Estimation criterion [default: reml].
+    #[arg(long, value_enum)]
+    pub method: Option<MethodArg>,
+    /// Give participants a random intercept only (no random age slope).
+    #[arg(long)]
+    pub no_slope: bool,
+    /// Folder for fit.json, trajectory.csv, trajectory.png and trajectory.svg.
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
+    /// Number of ages on the trajectory grid.
+    #[arg(long, value_name = "N", default_value_t = 101)]
+    pub grid: usize,
+    /// Draw this many participants' observed paths as thin lines in the figure.
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub lines: usize,
+    /// Print nothing but errors (the files are still written).
+    #[arg(long)]
+    pub quiet: bool,
+}
+
+/// Flags of `braid demo`.
+#[derive(Debug, Clone, Args)]
+pub struct DemoArgs {
+    /// Folder for panel.csv, study.toml and the fit outputs.
+    #[arg(long, value_name = "DIR")]
+    pub out: PathBuf,
+    /// Seed of the simulation.
+    #[arg(long, value_name = "N")]
+    pub seed: Option<u64>,
+    /// Print nothing but errors.
+    #[arg(long)]
+    pub quiet: bool,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    // clap's own consistency check of the flag definitions.
+    #[test]
+    fn clap_definitions_are_consistent() {
+        Cli::command().debug_assert();
+    }
+}

@@ -1,0 +1,482 @@
+//! Data intake: reading a long-format file and validating its columns into a
+//! [`Panel`].
+//!
+//! Rules (notes/decisions.md):
+//! - missing cells are empty, `NA` or `.`; rows with a missing outcome, age or
+//!   covariate are dropped and counted in [`DropReport`], never silently;
+//! - `NaN`, `inf` and text in a numeric column are errors naming the row;
+//! - a participant id is required on every row;
+//! - with a wave column, two rows for one participant and wave are an error.
+
+pub mod read;
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, Result};
+use read::RawColumn;
+
+/// Which column plays which part.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Roles {
+    /// Participant identifier.
+    pub id: String,
+    /// Exact age at assessment, in years.
+    pub age: String,
+    /// The outcome measure.
+    pub outcome: String,
+    /// Birth cohort (optional).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cohort: Option<String>,
+    /// Wave or occasion (optional).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub wave: Option<String>,
+    /// Cluster such as school (optional).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cluster: Option<String>,
+    /// Covariates: numeric where every value is a number, otherwise categorical.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub covariates: Vec<String>,
+    /// Covariates to treat as categorical even when their values are numbers.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub categorical: Vec<String>,
+}
+
+impl Roles {
+    /// Every (role, column) pair, in a fixed order.
+    pub fn all(&self) -> Vec<(String, String)> {
+        let mut v = vec![
+            ("--id".to_string(), self.id.clone()),
+            ("--age".to_string(), self.age.clone()),
+            ("--outcome".to_string(), self.outcome.clone()),
+        ];
+        for (role, c) in [("--cohort", &self.cohort), ("--wave", &self.wave), ("--cluster", &self.cluster)] {
+            if let Some(c) = c {
+                v.push((role.to_string(), c.clone()));
+            }
+        }
+        for c in &self.covariates {
+            v.push(("--covariate".to_string(), c.clone()));
+        }
+        v
+    }
+}
+
+/// Labels coded as integers.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Codes {
+    /// The distinct labels, in level order.
+    pub levels: Vec<String>,
+    /// The level of each row.
+    pub codes: Vec<u32>,
+}
+
+impl Codes {
+    /// Code labels; levels are sorted (numerically when all labels are
+    /// numbers), or in order of first appearance when `sort` is false.
+    pub fn new(labels: &[String], sort: bool) -> Codes {
+        let mut index: HashMap<&str, u32> = HashMap::new();
+        let mut levels: Vec<String> = Vec::new();
+        let mut codes = Vec::with_capacity(labels.len());
+        for l in labels {
+            let next = levels.len() as u32;
+            let c = *index.entry(l.as_str()).or_insert_with(|| {
+                levels.push(l.clone());
+                next
+            });
+            codes.push(c);
+        }
+        if sort {
+            let mut order: Vec<usize> = (0..levels.len()).collect();
+            let numeric: Option<Vec<f64>> = levels.iter().map(|l| l.trim().parse::<f64>().ok()).collect();
+            match numeric {
+                Some(nums) => order.sort_by(|&a, &b| nums[a].total_cmp(&nums[b])),
+                None => order.sort_by(|&a, &b| levels[a].cmp(&levels[b])),
+            }
+            let mut remap = vec![0u32; levels.len()];
+            for (new, &old) in order.iter().enumerate() {
+                remap[old] = new as u32;
+            }
+            codes.iter_mut().for_each(|c| *c = remap[*c as usize]);
+            levels = order.into_iter().map(|i| levels[i].clone()).collect();
+        }
+        Codes { levels, codes }
+    }
+
+    /// Number of levels.
+    pub fn n_levels(&self) -> usize {
+        self.levels.len()
+    }
+
+    /// The label of row `r`.
+    pub fn label(&self, r: usize) -> &str {
+        &self.levels[self.codes[r] as usize]
+    }
+}
+
+/// A covariate's values.
+#[derive(Debug, Clone, PartialEq)]
+pub enum CovariateValues {
+    /// Numbers.
+    Numeric(Vec<f64>),
+    /// Categories (the first level is the reference).
+    Categorical(Codes),
+}
+
+/// A covariate column.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Covariate {
+    /// Column name.
+    pub name: String,
+    /// Values.
+    pub values: CovariateValues,
+}
+
+/// Rows left out, by reason.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
+pub struct DropReport {
+    /// Rows whose outcome was missing.
+    pub missing_outcome: usize,
+    /// Rows whose age was missing (and outcome present).
+    pub missing_age: usize,
+    /// Rows whose covariate was missing (and age and outcome present).
+    pub missing_covariate: usize,
+}
+
+impl DropReport {
+    /// Total rows dropped.
+    pub fn total(&self) -> usize {
+        self.missing_outcome + self.missing_age + self.missing_covariate
+    }
+}
+
+/// A validated long-format panel: one row per participant per assessment.
+#[derive(Debug, Clone)]
+pub struct Panel {
+    /// The file it came from.
+    pub source: PathBuf,
+    /// The column roles.
+    pub roles: Roles,
+    /// Data rows in the file.
+    pub n_rows_read: usize,
+    /// Rows left out and why.
+    pub dropped: DropReport,
+    /// For each kept row, its 1-based data-row number in the file.
+    pub row: Vec<usize>,
+    /// Participants (levels in order of first appearance).
+    pub id: Codes,
+    /// Exact age in years.
+    pub age: Vec<f64>,
+    /// Outcome.
+    pub outcome: Vec<f64>,
+    /// Cohort, if given.
+    pub cohort: Option<Codes>,
+    /// Wave, if given.
+    pub wave: Option<Codes>,
+    /// Cluster, if given.
+    pub cluster: Option<Codes>,
+    /// Covariates, in the order given.
+    pub covariates: Vec<Covariate>,
+}
+
+impl Panel {
+    /// Number of rows kept.
+    pub fn n(&self) -> usize {
+        self.age.len()
+    }
+}
+
+/// Options for reading.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ReadOptions {
+    /// Field delimiter for CSV files.
+    pub delimiter: u8,
+}
+
+impl Default for ReadOptions {
+    fn default() -> Self {
+        ReadOptions { delimiter: b',' }
+    }
+}
+
+/// Cells that mean "missing" (common practice).
+fn is_missing(s: &str) -> bool {
+    matches!(s, "" | "NA" | "." | "na" | "N/A")
+}
+
+/// A numeric cell: `Ok(None)` when missing.
+fn number_at(path: &Path, column: &str, col: &RawColumn, r: usize) -> Result<Option<f64>> {
+    let bad = |value: String, advice: &str| Error::BadValue {
+        path: path.to_path_buf(),
+        column: column.to_string(),
+        row: r + 1,
+        value,
+        advice: advice.to_string(),
+    };
+    match col {
+        RawColumn::Number(v) => match v[r] {
+            None => Ok(None),
+            Some(x) if x.is_finite() => Ok(Some(x)),
+            Some(x) => Err(bad(x.to_string(), "is not a finite number; store missing values as nulls")),
+        },
+        RawColumn::Text(v) => match v[r].as_deref().map(str::trim) {
+            None => Ok(None),
+            Some(s) if is_missing(s) => Ok(None),
+            Some(s) => match s.parse::<f64>() {
+                Ok(x) if x.is_finite() => Ok(Some(x)),
+                Ok(_) => Err(bad(s.to_string(), "is not a finite number; write a missing value as an empty cell or NA")),
+                Err(_) => Err(bad(
+                    s.to_string(),
+                    "is not a number; fix the cell, write a missing value as an empty cell or NA, or check the decimal separator",
+                )),
+            },
+        },
+    }
+}
+
+/// A label cell: `None` when missing.
+fn label_at(col: &RawColumn, r: usize) -> Option<String> {
+    match col {
+        RawColumn::Text(v) => v[r].as_deref().map(str::trim).filter(|s| !is_missing(s)).map(str::to_string),
+        RawColumn::Number(v) => v[r].map(|x| if x.fract() == 0.0 && x.abs() < 1e15 { format!("{}", x as i64) } else { x.to_string() }),
+    }
+}
+
+/// Read and validate a long-format panel.
+///
+/// # Errors
+/// A one-line [`Error`] naming the file, and where it applies the column, row
+/// and value, for: an unreadable or empty file, a header with no rows, a
+/// missing column, a non-numeric or non-finite value, a missing participant id,
+/// fewer than two participants, no variation in age, duplicate
+/// participant–wave rows, and a constant covariate.
+pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
+    if !path.exists() {
+        return Err(Error::Io { path: path.to_path_buf(), message: "no such file".into() });
+    }
+    if path.is_dir() {
+        return Err(Error::Io { path: path.to_path_buf(), message: "this is a folder, not a file".into() });
+    }
+    validate_roles(roles)?;
+    let header = read::header(path, options.delimiter)?;
+    for (role, column) in roles.all() {
+        if !header.iter().any(|h| h == &column) {
+            let mut available = header.clone();
+            if header.len() == 1 {
+                for d in [';', '\t', '|'] {
+                    if header[0].contains(d) {
+                        available = vec![format!(
+                            "{} (one column only: the file looks {}-delimited; pass --delimiter '{}')",
+                            header[0],
+                            match d {
+                                ';' => "semicolon",
+                                '\t' => "tab",
+                                _ => "pipe",
+                            },
+                            if d == '\t' { "\\t".to_string() } else { d.to_string() }
+                        )];
+                    }
+                }
+            }
+            return Err(Error::MissingColumn { path: path.to_path_buf(), role, column, available });
+        }
+    }
+    let mut wanted: Vec<String> = roles.all().into_iter().map(|(_, c)| c).collect();
+    wanted.dedup();
+    let mut seen = std::collections::HashSet::new();
+    wanted.retain(|c| seen.insert(c.clone()));
+    let table = read::read_columns(path, &wanted, options.delimiter)?;
+    if table.n_rows == 0 {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: "the file has a header but no data rows; add data or check that the right file was given".into(),
+        });
+    }
+    build(path, roles, &table)
+}
+
+fn validate_roles(roles: &Roles) -> Result<()> {
+    for (role, c) in roles.all() {
+        if c.trim().is_empty() {
+            return Err(Error::Spec { parameter: role, message: "the column name is empty; name a column of the file".into() });
+        }
+    }
+    let all = roles.all();
+    for (i, (ra, ca)) in all.iter().enumerate() {
+        for (rb, cb) in &all[..i] {
+            if ca == cb {
+                return Err(Error::Spec {
+                    parameter: ra.clone(),
+                    message: format!("column '{ca}' is already used for {rb}; give each role its own column"),
+                });
+            }
+        }
+    }
+    for c in &roles.categorical {
+        if !roles.covariates.contains(c) {
+            return Err(Error::Spec {
+                parameter: "--categorical".into(),
+                message: format!("'{c}' is not among the covariates; also pass it with --covariate"),
+            });
+        }
+    }
+    Ok(())
+}
+
+fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
+    let n = table.n_rows;
+    let col = |name: &str| &table.columns[name];
+    let (age_col, y_col) = (col(&roles.age), col(&roles.outcome));
+    let mut dropped = DropReport::default();
+    let mut keep_rows = Vec::with_capacity(n);
+    let mut age = Vec::with_capacity(n);
+    let mut outcome = Vec::with_capacity(n);
+    // Covariates: numeric unless declared categorical or any cell is not a number.
+    let mut cov_numeric: Vec<bool> = roles
+        .covariates
+        .iter()
+        .map(|c| {
+            !roles.categorical.contains(c)
+                && match col(c) {
+                    RawColumn::Number(_) => true,
+                    RawColumn::Text(v) => v.iter().flatten().map(|s| s.trim()).filter(|s| !is_missing(s)).all(|s| s.parse::<f64>().is_ok()),
+                }
+        })
+        .collect();
+    if roles.covariates.is_empty() {
+        cov_numeric.clear();
+    }
+    'rows: for r in 0..n {
+        let y = number_at(path, &roles.outcome, y_col, r)?;
+        let a = number_at(path, &roles.age, age_col, r)?;
+        let Some(y) = y else {
+            dropped.missing_outcome += 1;
+            continue;
+        };
+        let Some(a) = a else {
+            dropped.missing_age += 1;
+            continue;
+        };
+        for (k, c) in roles.covariates.iter().enumerate() {
+            let missing = if cov_numeric[k] { number_at(path, c, col(c), r)?.is_none() } else { label_at(col(c), r).is_none() };
+            if missing {
+                dropped.missing_covariate += 1;
+                continue 'rows;
+            }
+        }
+        keep_rows.push(r);
+        age.push(a);
+        outcome.push(y);
+    }
+    if keep_rows.is_empty() {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!(
+                "no usable rows: {} with a missing outcome, {} with a missing age, {} with a missing covariate; check the column roles",
+                dropped.missing_outcome, dropped.missing_age, dropped.missing_covariate
+            ),
+        });
+    }
+    let labels = |name: &str, required: bool| -> Result<Vec<String>> {
+        let c = col(name);
+        keep_rows
+            .iter()
+            .map(|&r| match label_at(c, r) {
+                Some(s) => Ok(s),
+                None if required => Err(Error::BadValue {
+                    path: path.to_path_buf(),
+                    column: name.to_string(),
+                    row: r + 1,
+                    value: String::new(),
+                    advice: "is empty; every row needs a value in this column".into(),
+                }),
+                None => Ok("(missing)".to_string()),
+            })
+            .collect()
+    };
+    let id = Codes::new(&labels(&roles.id, true)?, false);
+    let cohort = roles.cohort.as_deref().map(|c| labels(c, true).map(|l| Codes::new(&l, true))).transpose()?;
+    let wave = roles.wave.as_deref().map(|c| labels(c, true).map(|l| Codes::new(&l, true))).transpose()?;
+    let cluster = roles.cluster.as_deref().map(|c| labels(c, true).map(|l| Codes::new(&l, true))).transpose()?;
+    let mut covariates = Vec::with_capacity(roles.covariates.len());
+    for (k, c) in roles.covariates.iter().enumerate() {
+        let values = if cov_numeric[k] {
+            let mut v = Vec::with_capacity(keep_rows.len());
+            for &r in &keep_rows {
+                v.push(number_at(path, c, col(c), r)?.unwrap_or(f64::NAN));
+            }
+            let first = v[0];
+            if v.iter().all(|&x| x == first) {
+                return Err(Error::Data {
+                    path: path.to_path_buf(),
+                    message: format!("covariate '{c}' takes the single value {first} in every usable row; drop it from the model"),
+                });
+            }
+            CovariateValues::Numeric(v)
+        } else {
+            let codes = Codes::new(&labels(c, true)?, true);
+            if codes.n_levels() < 2 {
+                return Err(Error::Data {
+                    path: path.to_path_buf(),
+                    message: format!(
+                        "covariate '{c}' takes the single value '{}' in every usable row; drop it from the model",
+                        codes.levels[0]
+                    ),
+                });
+            }
+            CovariateValues::Categorical(codes)
+        };
+        covariates.push(Covariate { name: c.clone(), values });
+    }
+    let row: Vec<usize> = keep_rows.iter().map(|r| r + 1).collect();
+    if id.n_levels() < 2 {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!(
+                "column '{}' holds a single participant ('{}'); a trajectory across participants needs at least two",
+                roles.id, id.levels[0]
+            ),
+        });
+    }
+    let (amin, amax) = age.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| (lo.min(a), hi.max(a)));
+    if amax - amin <= 0.0 {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!("column '{}' has the same age {amin} in every usable row; an age trajectory needs ages that differ", roles.age),
+        });
+    }
+    if let Some(w) = &wave {
+        let mut seen: HashMap<(u32, u32), usize> = HashMap::with_capacity(id.codes.len());
+        for r in 0..id.codes.len() {
+            if let Some(prev) = seen.insert((id.codes[r], w.codes[r]), r) {
+                return Err(Error::Data {
+                    path: path.to_path_buf(),
+                    message: format!(
+                        "participant '{}' has two rows for wave '{}' (rows {} and {}); remove the duplicate or check the wave column",
+                        id.label(r),
+                        w.label(r),
+                        row[prev],
+                        row[r]
+                    ),
+                });
+            }
+        }
+    }
+    Ok(Panel {
+        source: path.to_path_buf(),
+        roles: roles.clone(),
+        n_rows_read: n,
+        dropped,
+        row,
+        id,
+        age,
+        outcome,
+        cohort,
+        wave,
+        cluster,
+        covariates,
+    })
+}

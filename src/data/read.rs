@@ -1,0 +1,169 @@
+//! Reading CSV and Parquet files with polars into plain columns.
+//!
+//! CSV columns are read as text and parsed by braid itself, so that an
+//! unusable value is reported with its exact row and column. Parquet columns
+//! keep their numeric type where they have one.
+
+use std::collections::HashMap;
+use std::fs::File;
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+use polars::prelude::*;
+
+use crate::error::{Error, Result};
+
+/// One column, as braid sees it.
+#[derive(Debug, Clone)]
+pub enum RawColumn {
+    /// Text cells (`None` for an empty cell).
+    Text(Vec<Option<String>>),
+    /// Numeric cells from a typed file (`None` for a null).
+    Number(Vec<Option<f64>>),
+}
+
+impl RawColumn {
+    /// Number of cells.
+    pub fn len(&self) -> usize {
+        match self {
+            RawColumn::Text(v) => v.len(),
+            RawColumn::Number(v) => v.len(),
+        }
+    }
+    /// Whether the column is empty.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+}
+
+/// The columns that were asked for, by name.
+#[derive(Debug, Clone)]
+pub struct RawTable {
+    /// The file read.
+    pub path: PathBuf,
+    /// Number of data rows.
+    pub n_rows: usize,
+    /// Columns by name.
+    pub columns: HashMap<String, RawColumn>,
+}
+
+/// File formats braid reads.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Format {
+    /// Delimited text.
+    Csv,
+    /// Apache Parquet.
+    Parquet,
+}
+
+/// The format implied by a file's extension (CSV unless it ends in `.parquet` or `.pq`).
+pub fn format_of(path: &Path) -> Format {
+    match path.extension().and_then(|e| e.to_str()).map(str::to_ascii_lowercase).as_deref() {
+        Some("parquet") | Some("pq") => Format::Parquet,
+        _ => Format::Csv,
+    }
+}
+
+/// The header of a file: its column names.
+///
+/// # Errors
+/// [`Error::Io`] when the file cannot be opened, [`Error::Parse`] when it is
+/// empty or not a readable table.
+pub fn header(path: &Path, delimiter: u8) -> Result<Vec<String>> {
+    let io = |e: std::io::Error| Error::Io { path: path.to_path_buf(), message: e.to_string() };
+    match format_of(path) {
+        Format::Csv => {
+            let file = File::open(path).map_err(io)?;
+            let mut first = String::new();
+            BufReader::new(file).read_line(&mut first).map_err(|e| Error::Parse {
+                path: path.to_path_buf(),
+                message: format!("the first line is not valid UTF-8 text ({e}); save the file as UTF-8 CSV"),
+            })?;
+            let line = first.trim_end_matches(['\n', '\r']).trim_start_matches('\u{feff}');
+            if line.trim().is_empty() {
+                return Err(Error::Parse {
+                    path: path.to_path_buf(),
+                    message: "the file is empty; expected a header line naming the columns".into(),
+                });
+            }
+            Ok(line.split(delimiter as char).map(|s| s.trim().trim_matches('"').to_string()).collect())
+        }
+        Format::Parquet => {
+            let file = File::open(path).map_err(io)?;
+            let mut reader = ParquetReader::new(file);
+            let schema = reader.schema().map_err(|e| Error::Parse {
+                path: path.to_path_buf(),
+                message: format!("not a readable Parquet file ({e}); check that the file is complete"),
+            })?;
+            Ok(schema.iter_names().map(|n| n.to_string()).collect())
+        }
+    }
+}
+
+/// Read the named columns of a file.
+///
+/// # Errors
+/// [`Error::Io`] or [`Error::Parse`] when the file cannot be read as a table.
+pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawTable> {
+    let parse = |e: PolarsError| Error::Parse {
+        path: path.to_path_buf(),
+        message: format!("cannot be read as a table ({e}); check the delimiter, quoting and that every row has the same number of fields"),
+    };
+    let df = match format_of(path) {
+        Format::Csv => {
+            let cols: Arc<[PlSmallStr]> = names.iter().map(|n| PlSmallStr::from(n.as_str())).collect();
+            CsvReadOptions::default()
+                .with_has_header(true)
+                .with_infer_schema_length(Some(0))
+                .with_columns(Some(cols))
+                .map_parse_options(|o| o.with_separator(delimiter).with_truncate_ragged_lines(false))
+                .try_into_reader_with_file_path(Some(path.to_path_buf()))
+                .map_err(parse)?
+                .finish()
+                .map_err(parse)?
+        }
+        Format::Parquet => {
+            let file = File::open(path).map_err(|e| Error::Io { path: path.to_path_buf(), message: e.to_string() })?;
+            ParquetReader::new(file).with_columns(Some(names.to_vec())).finish().map_err(parse)?
+        }
+    };
+    let n_rows = df.height();
+    let mut columns = HashMap::new();
+    for name in names {
+        let col = df.column(name).map_err(parse)?;
+        let raw = match col.dtype() {
+            DataType::String => {
+                let ca = col.str().map_err(parse)?;
+                RawColumn::Text(ca.iter().map(|v| v.map(str::to_string)).collect())
+            }
+            dt if dt.is_primitive_numeric() => {
+                let c = col.cast(&DataType::Float64).map_err(parse)?;
+                let ca = c.f64().map_err(parse)?;
+                RawColumn::Number(ca.iter().collect())
+            }
+            _ => {
+                let c = col.cast(&DataType::String).map_err(parse)?;
+                let ca = c.str().map_err(parse)?;
+                RawColumn::Text(ca.iter().map(|v| v.map(str::to_string)).collect())
+            }
+        };
+        columns.insert(name.clone(), raw);
+    }
+    Ok(RawTable { path: path.to_path_buf(), n_rows, columns })
+}
+
+/// Write a table of named numeric or text columns to CSV (used by the demo).
+///
+/// # Errors
+/// [`Error::Output`] when the file cannot be written.
+pub fn write_csv(path: &Path, header: &[&str], rows: &[Vec<String>]) -> Result<()> {
+    use std::io::Write;
+    let out = |e: std::io::Error| Error::Output { path: path.to_path_buf(), message: format!("cannot write ({e})") };
+    let mut w = std::io::BufWriter::new(File::create(path).map_err(out)?);
+    writeln!(w, "{}", header.join(",")).map_err(out)?;
+    for r in rows {
+        writeln!(w, "{}", r.join(",")).map_err(out)?;
+    }
+    w.flush().map_err(out)
+}

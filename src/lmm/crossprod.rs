@@ -1,0 +1,231 @@
+//! One pass over the rows that gathers every cross-product the criterion needs.
+//!
+//! The term with the most levels (normally the participant) is the *primary*
+//! term: its block of `ZᵀZ` is block-diagonal with q₁×q₁ blocks, kept per level.
+//! Every other term, the fixed design and the response form the *dense* part
+//! `[Z₂ X y]ᵀ[Z₂ X y]`, of order m = Q₂ + p + 1. The coupling `Z₁ᵀ[Z₂ X y]` is
+//! kept per primary level as a short list of blocks (a participant meets only a
+//! few schools, periods or cohorts). After this pass one evaluation of the
+//! criterion costs O(levels × q₁³ + m³), independent of the number of rows.
+
+use super::MixedProblem;
+
+/// A coupling block between one primary level and one level of a secondary term.
+#[derive(Debug, Clone, Copy)]
+pub struct Link {
+    /// Index of the secondary term in [`CrossProducts::secondary`].
+    pub secondary: usize,
+    /// Offset of the block's first column in the dense part.
+    pub offset: usize,
+    /// Start of the q₁×q_s values (row-major) in [`CrossProducts::link_values`].
+    pub start: usize,
+}
+
+/// Cross-products of a [`MixedProblem`], independent of θ.
+#[derive(Debug, Clone)]
+pub struct CrossProducts {
+    /// Number of rows.
+    pub n: usize,
+    /// Number of fixed-effect columns.
+    pub p: usize,
+    /// Index of the primary term in the problem's terms, if there are any.
+    pub primary: Option<usize>,
+    /// Coefficients per level of the primary term.
+    pub q1: usize,
+    /// Levels of the primary term.
+    pub n1: usize,
+    /// Per primary level, `Z₁ᵢᵀZ₁ᵢ` (q₁×q₁ row-major).
+    pub g: Vec<f64>,
+    /// Per primary level, `Z₁ᵢᵀ[X y]` (q₁×(p+1) row-major).
+    pub zxy: Vec<f64>,
+    /// Per primary level, the range of its links in [`Self::links`].
+    pub link_ranges: Vec<(usize, usize)>,
+    /// All coupling blocks.
+    pub links: Vec<Link>,
+    /// Values of the coupling blocks.
+    pub link_values: Vec<f64>,
+    /// Indices (into the problem's terms) of the secondary terms.
+    pub secondary: Vec<usize>,
+    /// Dense offset of each secondary term's first column.
+    pub secondary_offset: Vec<usize>,
+    /// Total columns of the secondary terms (Q₂).
+    pub q2_total: usize,
+    /// Order of the dense part, Q₂ + p + 1.
+    pub m: usize,
+    /// The dense part `[Z₂ X y]ᵀ[Z₂ X y]`, m×m row-major, full symmetric.
+    pub dense: Vec<f64>,
+    /// Offset of each term's θ in the full θ vector.
+    pub theta_offset: Vec<usize>,
+    /// q of each term (problem order).
+    pub term_q: Vec<usize>,
+}
+
+impl CrossProducts {
+    /// Gather the cross-products in one pass over the rows.
+    pub fn new(problem: &MixedProblem) -> Self {
+        let n = problem.n();
+        let p = problem.p();
+        let terms = &problem.terms;
+        let primary = (0..terms.len()).max_by_key(|&k| (terms[k].n_levels(), usize::MAX - k));
+        let mut theta_offset = Vec::with_capacity(terms.len());
+        let mut acc = 0;
+        for t in terms {
+            theta_offset.push(acc);
+            acc += t.n_theta();
+        }
+        let secondary: Vec<usize> = (0..terms.len()).filter(|&k| Some(k) != primary).collect();
+        let mut secondary_offset = Vec::with_capacity(secondary.len());
+        let mut q2_total = 0;
+        for &k in &secondary {
+            secondary_offset.push(q2_total);
+            q2_total += terms[k].n_levels() * terms[k].q();
+        }
+        let m = q2_total + p + 1;
+        let mut dense = vec![0.0; m * m];
+
+        // Rows grouped by primary level (counting sort), so each level's
+        // links are gathered in one place.
+        let (q1, n1) = match primary {
+            Some(k) => (terms[k].q(), terms[k].n_levels()),
+            None => (0, 0),
+        };
+        let order: Vec<usize> = match primary {
+            Some(k) => {
+                let mut count = vec![0usize; n1 + 1];
+                for &l in &terms[k].level {
+                    count[l as usize + 1] += 1;
+                }
+                for i in 0..n1 {
+                    count[i + 1] += count[i];
+                }
+                let mut order = vec![0usize; n];
+                for (r, &l) in terms[k].level.iter().enumerate() {
+                    order[count[l as usize]] = r;
+                    count[l as usize] += 1;
+                }
+                order
+            }
+            None => (0..n).collect(),
+        };
+
+        let mut g = vec![0.0; n1 * q1 * q1];
+        let mut zxy = vec![0.0; n1 * q1 * (p + 1)];
+        let mut link_ranges = Vec::with_capacity(n1);
+        let mut links: Vec<Link> = Vec::new();
+        let mut link_values: Vec<f64> = Vec::new();
+
+        // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
+        let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
+        let mut z1 = vec![0.0; q1];
+        let mut current_level = usize::MAX;
+        let mut level_start_link = 0;
+        for &r in &order {
+            if let Some(k) = primary {
+                let level = terms[k].level[r] as usize;
+                if level != current_level {
+                    if current_level != usize::MAX {
+                        link_ranges.push((level_start_link, links.len()));
+                    }
+                    // Levels with no rows get an empty range.
+                    let first_new = if current_level == usize::MAX { 0 } else { current_level + 1 };
+                    for _ in first_new..level {
+                        link_ranges.push((links.len(), links.len()));
+                    }
+                    current_level = level;
+                    level_start_link = links.len();
+                }
+                for (c, zc) in z1.iter_mut().enumerate() {
+                    *zc = terms[k].z[c][r];
+                }
+                let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
+                for a in 0..q1 {
+                    for b in 0..q1 {
+                        gi[a * q1 + b] += z1[a] * z1[b];
+                    }
+                }
+                let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
+                let xr = &problem.x[r * p..(r + 1) * p];
+                for a in 0..q1 {
+                    let row = &mut zi[a * (p + 1)..(a + 1) * (p + 1)];
+                    for (j, xv) in xr.iter().enumerate() {
+                        row[j] += z1[a] * xv;
+                    }
+                    row[p] += z1[a] * problem.y[r];
+                }
+            }
+            w.clear();
+            for (s, &kt) in secondary.iter().enumerate() {
+                let t = &terms[kt];
+                let qs = t.q();
+                let offset = secondary_offset[s] + t.level[r] as usize * qs;
+                for c in 0..qs {
+                    w.push((offset + c, t.z[c][r]));
+                }
+                if primary.is_some() {
+                    // Coupling block Z₁ᵢᵀ Z_s,j for this row.
+                    let found = links[level_start_link..].iter().position(|l| l.offset == offset);
+                    let start = match found {
+                        Some(pos) => links[level_start_link + pos].start,
+                        None => {
+                            let start = link_values.len();
+                            link_values.resize(start + q1 * qs, 0.0);
+                            links.push(Link { secondary: s, offset, start });
+                            start
+                        }
+                    };
+                    for a in 0..q1 {
+                        for c in 0..qs {
+                            link_values[start + a * qs + c] += z1[a] * t.z[c][r];
+                        }
+                    }
+                }
+            }
+            let xr = &problem.x[r * p..(r + 1) * p];
+            for (j, &xv) in xr.iter().enumerate() {
+                w.push((q2_total + j, xv));
+            }
+            w.push((m - 1, problem.y[r]));
+            for (ia, &(a, va)) in w.iter().enumerate() {
+                let row = &mut dense[a * m..(a + 1) * m];
+                for &(b, vb) in &w[..=ia] {
+                    row[b] += va * vb;
+                }
+            }
+        }
+        if primary.is_some() {
+            if current_level != usize::MAX {
+                link_ranges.push((level_start_link, links.len()));
+            }
+            while link_ranges.len() < n1 {
+                link_ranges.push((links.len(), links.len()));
+            }
+        }
+        // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
+        for a in 0..m {
+            for b in 0..a {
+                let s = dense[a * m + b] + dense[b * m + a];
+                dense[a * m + b] = s;
+                dense[b * m + a] = s;
+            }
+        }
+        CrossProducts {
+            n,
+            p,
+            primary,
+            q1,
+            n1,
+            g,
+            zxy,
+            link_ranges,
+            links,
+            link_values,
+            secondary,
+            secondary_offset,
+            q2_total,
+            m,
+            dense,
+            theta_offset,
+            term_q: terms.iter().map(|t| t.q()).collect(),
+        }
+    }
+}

@@ -1,0 +1,565 @@
+//! The fit: start values, optimisation with restarts, and post-fit quantities.
+//!
+//! Start values are scale-aware: each random coefficient starts with a
+//! relative SD proportional to `1/rms(z)`, so a slope on age in years starts
+//! near its plausible size rather than at the identity; the best of three
+//! scalings of that start is taken. When the optimum lies on the boundary the
+//! fit is restarted from the interior and the better optimum kept.
+
+use faer::Mat;
+use serde::Serialize;
+
+use super::criterion::{self, Factor, Pieces};
+use super::crossprod::CrossProducts;
+use super::optimize::{self, OptimOptions};
+use super::{Method, MixedProblem};
+use crate::error::{Error, Result};
+
+/// Settings of a fit.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct FitOptions {
+    /// REML (default) or ML.
+    pub method: Method,
+    /// Optimiser settings.
+    pub optim: OptimOptions,
+}
+
+/// One grouping factor's estimated covariance.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct RandomComponent {
+    /// The grouping factor.
+    pub factor: String,
+    /// Its coefficients, for example `["intercept", "age"]`.
+    pub terms: Vec<String>,
+    /// Number of levels (groups).
+    pub n_levels: usize,
+    /// Covariance matrix of the coefficients, in outcome units squared
+    /// (per unit of the slope variable for slopes).
+    pub covariance: Vec<Vec<f64>>,
+    /// Standard deviations (square roots of the diagonal).
+    pub sd: Vec<f64>,
+    /// Correlation matrix (NaN where an SD is zero).
+    pub correlation: Vec<Vec<f64>>,
+}
+
+/// How the optimisation went.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct FitInfo {
+    /// Quasi-Newton iterations, summed over restarts.
+    pub iterations: usize,
+    /// Evaluations of the criterion, summed over restarts.
+    pub evaluations: usize,
+    /// Largest projected gradient component of the profiled deviance at the end.
+    pub gradient_norm: f64,
+    /// Newton decrement `gᵀH⁻¹g` of the profiled deviance at the end: twice the
+    /// decrease still predicted by a Newton step (`None` if H is not positive definite).
+    pub newton_decrement: Option<f64>,
+    /// Smallest eigenvalue of the deviance Hessian over the free parameters
+    /// (positive at a proper minimum); `None` when there are no free parameters.
+    pub min_curvature: Option<f64>,
+    /// Whether the optimiser stopped at a minimum (gradient small, curvature positive).
+    pub converged: bool,
+    /// Covariance parameters at the boundary, named as `factor:coefficient`.
+    pub boundary: Vec<String>,
+    /// Number of restarts made.
+    pub restarts: usize,
+    /// Advice and warnings for the user.
+    pub messages: Vec<String>,
+}
+
+/// Sensitivity of cov(β̂) to the variance parameters, for Satterthwaite df.
+#[derive(Debug, Clone)]
+pub struct VarianceSensitivity {
+    /// Asymptotic covariance of the free variance parameters φ = (θ_free, σ²),
+    /// `2 H⁻¹` with H the Hessian of the (unprofiled) deviance; k×k row-major.
+    pub acov: Vec<f64>,
+    /// `∂ cov(β̂) / ∂φ_k`, each p×p row-major.
+    pub dcov: Vec<Vec<f64>>,
+}
+
+/// A fitted linear mixed model.
+#[derive(Debug, Clone)]
+pub struct Fit {
+    /// REML or ML.
+    pub method: Method,
+    /// Number of rows used.
+    pub n_obs: usize,
+    /// Fixed-effect names.
+    pub x_names: Vec<String>,
+    /// Fixed effects β̂.
+    pub beta: Vec<f64>,
+    /// cov(β̂) = σ̂²(XᵀV⁻¹X)⁻¹ (the GLS covariance at the estimates), p×p row-major.
+    pub cov_beta: Vec<f64>,
+    /// Residual variance σ̂².
+    pub sigma2: f64,
+    /// Relative covariance parameters θ̂.
+    pub theta: Vec<f64>,
+    /// Random-effect covariances per grouping factor.
+    pub random: Vec<RandomComponent>,
+    /// BLUPs: per term, per level, its q coefficients.
+    pub blups: Vec<Vec<Vec<f64>>>,
+    /// Fitted values including the BLUPs (conditional), per row.
+    pub fitted: Vec<f64>,
+    /// Marginal fitted values Xβ̂, per row.
+    pub fitted_marginal: Vec<f64>,
+    /// Conditional residuals y − fitted.
+    pub residuals: Vec<f64>,
+    /// The maximised log-likelihood (REML or ML, matching `method`).
+    pub loglik: f64,
+    /// Number of estimated parameters (fixed, covariance and σ²).
+    pub n_params: usize,
+    /// Akaike's criterion, −2ℓ + 2k.
+    pub aic: f64,
+    /// Schwarz's criterion, −2ℓ + k·ln(n).
+    pub bic: f64,
+    /// Optimisation record.
+    pub info: FitInfo,
+    /// Sensitivity of cov(β̂), for Satterthwaite df.
+    pub sensitivity: VarianceSensitivity,
+}
+
+impl Fit {
+    /// Number of fixed effects.
+    pub fn p(&self) -> usize {
+        self.beta.len()
+    }
+    /// Standard errors of β̂.
+    pub fn se(&self) -> Vec<f64> {
+        let p = self.p();
+        (0..p).map(|i| self.cov_beta[i * p + i].sqrt()).collect()
+    }
+}
+
+/// Names of the covariance parameters θ, as `factor:row,col`.
+fn theta_names(problem: &MixedProblem) -> Vec<String> {
+    let mut names = Vec::new();
+    for t in &problem.terms {
+        let q = t.q();
+        for j in 0..q {
+            for i in j..q {
+                if i == j {
+                    names.push(format!("{}:{}", t.factor, t.columns[i]));
+                } else {
+                    names.push(format!("{}:{}~{}", t.factor, t.columns[i], t.columns[j]));
+                }
+            }
+        }
+    }
+    names
+}
+
+/// Scale-aware start: diagonal factor with entries `0.5/(√q · rms(z))`.
+fn base_start(problem: &MixedProblem) -> Vec<f64> {
+    let mut theta = Vec::with_capacity(problem.n_theta());
+    for t in &problem.terms {
+        let q = t.q();
+        for j in 0..q {
+            for i in j..q {
+                if i == j {
+                    let z = &t.z[i];
+                    let rms = (z.iter().map(|v| v * v).sum::<f64>() / z.len().max(1) as f64).sqrt();
+                    let rms = if rms > 0.0 { rms } else { 1.0 };
+                    theta.push(0.5 / ((q as f64).sqrt() * rms));
+                } else {
+                    theta.push(0.0);
+                }
+            }
+        }
+    }
+    theta
+}
+
+/// Fit a linear mixed model by REML or ML.
+///
+/// # Errors
+/// [`Error::Spec`] when there are no rows or more fixed effects than rows;
+/// [`Error::Numerical`] when the fixed design is rank deficient (naming the
+/// first collinear column) or the criterion cannot be evaluated at the start.
+pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
+    let n = problem.n();
+    let p = problem.p();
+    if n <= p {
+        return Err(Error::Spec {
+            parameter: "model".into(),
+            message: format!("{n} usable rows for {p} fixed effects; simplify the model or supply more data"),
+        });
+    }
+    let method = options.method;
+    let cp = CrossProducts::new(problem);
+    let lower = problem.theta_lower();
+    let names = theta_names(problem);
+    let dev = |th: &[f64]| criterion::deviance(&cp, th, method);
+
+    // Rank of the fixed design, checked at θ = 0 (ordinary least squares).
+    let zero = vec![0.0; problem.n_theta()];
+    if let Err(criterion::EvalFailure::NotPositiveDefinite { pivot }) = criterion::evaluate(&cp, &zero, false) {
+        let q2 = cp.q2_total;
+        let message = if pivot >= q2 && pivot < q2 + p {
+            format!(
+                "fixed-effect column '{}' is a linear combination of the columns before it (constant or collinear); drop it or recode",
+                problem.x_names[pivot - q2]
+            )
+        } else if pivot == cp.m - 1 {
+            "the outcome is fitted exactly by the fixed effects; check that the outcome is not a copy of a covariate".to_string()
+        } else {
+            format!("the design is singular at dense pivot {pivot}")
+        };
+        return Err(Error::Numerical { step: "fixed-effect design".into(), message });
+    }
+
+    // Choose the best of three scalings of the scale-aware start.
+    let base = base_start(problem);
+    let mut start = base.clone();
+    let mut best = f64::INFINITY;
+    for s in [0.2, 1.0, 3.0] {
+        let cand: Vec<f64> = base.iter().map(|v| v * s).collect();
+        let d = dev(&cand);
+        if d < best {
+            best = d;
+            start = cand;
+        }
+    }
+    if !best.is_finite() {
+        return Err(Error::Numerical {
+            step: "start values".into(),
+            message: "the criterion cannot be evaluated at the start values; check the data for extreme values".into(),
+        });
+    }
+    let mut result = optimize::minimize(dev, &start, &lower, options.optim);
+    let mut iterations = result.iterations;
+    let mut evaluations = result.evaluations + 3;
+    let mut restarts = 0;
+    let at_bound = |x: &[f64]| x.iter().zip(&lower).any(|(&v, &l)| v <= l);
+    if at_bound(&result.x) {
+        // Restart from the interior: boundary parameters back to their base start.
+        let restart: Vec<f64> =
+            result.x.iter().zip(&lower).zip(&base).map(|((&v, &l), &b)| if v <= l { b } else { v }).collect();
+        let second = optimize::minimize(dev, &restart, &lower, options.optim);
+        iterations += second.iterations;
+        evaluations += second.evaluations;
+        restarts += 1;
+        if second.value < result.value - 1e-10 {
+            result = second;
+        }
+    }
+    let polished = optimize::newton_polish(dev, &result.x, result.value, &lower);
+    evaluations += polished.evaluations;
+    let theta = polished.x.clone();
+    let factor = criterion::evaluate(&cp, &theta, true).map_err(|_| Error::Numerical {
+        step: "final evaluation".into(),
+        message: "the criterion failed at the optimum; please report this with the data shape".into(),
+    })?;
+    let pieces = factor.pieces;
+    let sigma2 = pieces.sigma2(method, n, p);
+    let deviance = pieces.profiled_deviance(method, n, p);
+
+    let boundary_idx: Vec<usize> = (0..theta.len()).filter(|&i| theta[i] <= lower[i]).collect();
+    let free: Vec<usize> = (0..theta.len()).filter(|i| !boundary_idx.contains(i)).collect();
+    let boundary: Vec<String> = boundary_idx.iter().map(|&i| names[i].clone()).collect();
+
+    let (beta, u) = solve_pls(&cp, &factor);
+    let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
+    let (blups, fitted, fitted_marginal) = conditional(problem, &cp, &theta, &beta, &u);
+    let residuals: Vec<f64> = problem.y.iter().zip(&fitted).map(|(y, f)| y - f).collect();
+    let random = components(problem, &cp, &theta, sigma2);
+
+    let (sensitivity, curvature) = sensitivity(&cp, &theta, &free, method, sigma2);
+    evaluations += sensitivity.1;
+    let min_curvature = curvature;
+    let mut messages = Vec::new();
+    let curvature_ok = min_curvature.is_none_or(|c| c > 0.0);
+    let decrement_ok = polished.decrement.is_some_and(|d| d < NEWTON_DECREMENT_TOLERANCE);
+    let converged = decrement_ok && curvature_ok;
+    if !converged {
+        messages.push(format!(
+            "the optimiser did not reach a clear minimum (gradient {:.2e}{}); simplify the random part or rescale covariates",
+            polished.gradient_norm,
+            min_curvature.map(|c| format!(", smallest curvature {c:.2e}")).unwrap_or_default()
+        ));
+    }
+    for name in &boundary {
+        messages.push(format!(
+            "covariance parameter {name} is at its boundary (a variance of zero or a correlation of ±1); \
+             the data carry no evidence of that variation: consider dropping the coefficient"
+        ));
+    }
+    let n_params = p + theta.len() + 1;
+    let loglik = -deviance / 2.0;
+    Ok(Fit {
+        method,
+        n_obs: n,
+        x_names: problem.x_names.clone(),
+        beta,
+        cov_beta,
+        sigma2,
+        theta,
+        random,
+        blups,
+        fitted,
+        fitted_marginal,
+        residuals,
+        loglik,
+        n_params,
+        aic: deviance + 2.0 * n_params as f64,
+        bic: deviance + n_params as f64 * (n as f64).ln(),
+        info: FitInfo {
+            iterations,
+            evaluations,
+            gradient_norm: polished.gradient_norm,
+            newton_decrement: polished.decrement,
+            min_curvature,
+            converged,
+            boundary,
+            restarts,
+            messages,
+        },
+        sensitivity: sensitivity.0,
+    })
+}
+
+/// Solve the PLS system `Lᵀx = l_y` for `[u₂, β]`, then each `u₁ᵢ`.
+/// Returns β and the spherical random effects u per term (problem order, flat).
+fn solve_pls(cp: &CrossProducts, f: &Factor) -> (Vec<f64>, Vec<Vec<f64>>) {
+    let m = cp.m;
+    let k = m - 1;
+    let l = &f.dense_l;
+    let mut x = vec![0.0; k];
+    for i in (0..k).rev() {
+        let mut v = l[(k, i)];
+        for j in i + 1..k {
+            v -= l[(j, i)] * x[j];
+        }
+        x[i] = v / l[(i, i)];
+    }
+    let q2 = cp.q2_total;
+    let beta = x[q2..q2 + cp.p].to_vec();
+    let mut u = vec![Vec::new(); cp.term_q.len()];
+    for (s, &kt) in cp.secondary.iter().enumerate() {
+        let end = if s + 1 < cp.secondary.len() { cp.secondary_offset[s + 1] } else { q2 };
+        u[kt] = x[cp.secondary_offset[s]..end].to_vec();
+    }
+    if let Some(k1) = cp.primary {
+        let q1 = cp.q1;
+        let mut u1 = vec![0.0; cp.n1 * q1];
+        for i in 0..cp.n1 {
+            let (cols, w) = &f.blocks_w[i];
+            let nc = cols.len();
+            let li = &f.blocks_l[i * q1 * q1..(i + 1) * q1 * q1];
+            let mut rhs = vec![0.0; q1];
+            for r in 0..q1 {
+                let mut v = 0.0;
+                for (c, &dc) in cols.iter().enumerate() {
+                    if dc == m - 1 {
+                        v += w[r * nc + c];
+                    } else {
+                        v -= w[r * nc + c] * x[dc];
+                    }
+                }
+                rhs[r] = v;
+            }
+            // Lᵢᵀ u = rhs (back substitution).
+            for r in (0..q1).rev() {
+                let mut v = rhs[r];
+                for s in r + 1..q1 {
+                    v -= li[s * q1 + r] * u1[i * q1 + s];
+                }
+                u1[i * q1 + r] = v / li[r * q1 + r];
+            }
+        }
+        u[k1] = u1;
+    }
+    (beta, u)
+}
+
+/// `σ²(L_X L_Xᵀ)⁻¹` from the fixed block of the dense factor.
+fn fixed_cov(f: &Factor, q2: usize, p: usize, sigma2: f64) -> Vec<f64> {
+    let lx = Mat::from_fn(p, p, |i, j| f.dense_l[(q2 + i, q2 + j)]);
+    let inv = lower_inverse(&lx);
+    let mut c = vec![0.0; p * p];
+    for i in 0..p {
+        for j in 0..p {
+            let mut acc = 0.0;
+            for k in i.max(j)..p {
+                acc += inv[(k, i)] * inv[(k, j)];
+            }
+            c[i * p + j] = sigma2 * acc;
+        }
+    }
+    c
+}
+
+/// Inverse of a lower-triangular matrix by forward substitution.
+fn lower_inverse(l: &Mat<f64>) -> Mat<f64> {
+    let p = l.nrows();
+    let mut inv = Mat::<f64>::zeros(p, p);
+    for j in 0..p {
+        inv[(j, j)] = 1.0 / l[(j, j)];
+        for i in j + 1..p {
+            let mut v = 0.0;
+            for k in j..i {
+                v -= l[(i, k)] * inv[(k, j)];
+            }
+            inv[(i, j)] = v / l[(i, i)];
+        }
+    }
+    inv
+}
+
+type Conditional = (Vec<Vec<Vec<f64>>>, Vec<f64>, Vec<f64>);
+
+/// BLUPs b = Λu per term and level, conditional and marginal fitted values.
+fn conditional(problem: &MixedProblem, cp: &CrossProducts, theta: &[f64], beta: &[f64], u: &[Vec<f64>]) -> Conditional {
+    let t = criterion::factors(cp, theta);
+    let mut blups = Vec::with_capacity(problem.terms.len());
+    for (k, term) in problem.terms.iter().enumerate() {
+        let q = term.q();
+        let tk = &t[k];
+        let per_level: Vec<Vec<f64>> = (0..term.n_levels())
+            .map(|lvl| {
+                let uu = &u[k][lvl * q..(lvl + 1) * q];
+                (0..q).map(|r| (0..=r).map(|c| tk[r * q + c] * uu[c]).sum()).collect()
+            })
+            .collect();
+        blups.push(per_level);
+    }
+    let p = problem.p();
+    let n = problem.n();
+    let mut fitted = vec![0.0; n];
+    let mut marginal = vec![0.0; n];
+    for r in 0..n {
+        let xr = &problem.x[r * p..(r + 1) * p];
+        let xb: f64 = xr.iter().zip(beta).map(|(a, b)| a * b).sum();
+        marginal[r] = xb;
+        let mut zb = 0.0;
+        for (k, term) in problem.terms.iter().enumerate() {
+            let b = &blups[k][term.level[r] as usize];
+            for (c, bc) in b.iter().enumerate() {
+                zb += term.z[c][r] * bc;
+            }
+        }
+        fitted[r] = xb + zb;
+    }
+    (blups, fitted, marginal)
+}
+
+fn components(problem: &MixedProblem, cp: &CrossProducts, theta: &[f64], sigma2: f64) -> Vec<RandomComponent> {
+    let t = criterion::factors(cp, theta);
+    problem
+        .terms
+        .iter()
+        .enumerate()
+        .map(|(k, term)| {
+            let q = term.q();
+            let tk = &t[k];
+            let cov: Vec<Vec<f64>> = (0..q)
+                .map(|i| (0..q).map(|j| sigma2 * (0..q).map(|c| tk[i * q + c] * tk[j * q + c]).sum::<f64>()).collect())
+                .collect();
+            let sd: Vec<f64> = (0..q).map(|i| cov[i][i].max(0.0).sqrt()).collect();
+            let correlation = (0..q)
+                .map(|i| {
+                    (0..q)
+                        .map(|j| if i == j { 1.0 } else if sd[i] > 0.0 && sd[j] > 0.0 { cov[i][j] / (sd[i] * sd[j]) } else { f64::NAN })
+                        .collect()
+                })
+                .collect();
+            RandomComponent { factor: term.factor.clone(), terms: term.columns.clone(), n_levels: term.n_levels(), covariance: cov, sd, correlation }
+        })
+        .collect()
+}
+
+/// A fit counts as converged when the Newton decrement of the deviance is
+/// below this (the remaining improvement of the log-likelihood is then below
+/// a quarter of it).
+pub const NEWTON_DECREMENT_TOLERANCE: f64 = 1e-6;
+
+/// Relative finite-difference step for the information matrix.
+const HESSIAN_STEP: f64 = 1e-4;
+
+/// The deviance Hessian over φ = (θ_free, σ²) by central differences, its
+/// inverse (×2) and the derivatives of cov(β̂) for Satterthwaite df.
+/// Returns the sensitivity with the number of evaluations, and the smallest
+/// eigenvalue of the θ_free block.
+fn sensitivity(cp: &CrossProducts, theta: &[f64], free: &[usize], method: Method, sigma2: f64) -> ((VarianceSensitivity, usize), Option<f64>) {
+    let n = cp.n;
+    let p = cp.p;
+    let k = free.len() + 1;
+    let mut evals = 0usize;
+    let mut phi: Vec<f64> = free.iter().map(|&i| theta[i]).collect();
+    phi.push(sigma2);
+    let h: Vec<f64> = phi.iter().map(|v| HESSIAN_STEP * v.abs().max(1e-2)).collect();
+    let pieces_at = |ph: &[f64], evals: &mut usize| -> Option<Pieces> {
+        let mut th = theta.to_vec();
+        for (j, &i) in free.iter().enumerate() {
+            th[i] = ph[j];
+        }
+        *evals += 1;
+        criterion::evaluate(cp, &th, false).ok().map(|f| f.pieces)
+    };
+    let dev_at = |ph: &[f64], evals: &mut usize| -> f64 {
+        match pieces_at(ph, evals) {
+            Some(pc) => pc.deviance_at(method, n, p, ph[k - 1]),
+            None => f64::NAN,
+        }
+    };
+    let f0 = dev_at(&phi, &mut evals);
+    let mut hess = vec![0.0; k * k];
+    for a in 0..k {
+        let mut pp = phi.clone();
+        pp[a] += h[a];
+        let fp = dev_at(&pp, &mut evals);
+        pp[a] = phi[a] - h[a];
+        let fm = dev_at(&pp, &mut evals);
+        hess[a * k + a] = (fp - 2.0 * f0 + fm) / (h[a] * h[a]);
+        for b in 0..a {
+            let mut q = phi.clone();
+            let mut vals = [0.0; 4];
+            for (idx, (sa, sb)) in [(1.0, 1.0), (1.0, -1.0), (-1.0, 1.0), (-1.0, -1.0)].iter().enumerate() {
+                q[a] = phi[a] + sa * h[a];
+                q[b] = phi[b] + sb * h[b];
+                vals[idx] = dev_at(&q, &mut evals);
+            }
+            let v = (vals[0] - vals[1] - vals[2] + vals[3]) / (4.0 * h[a] * h[b]);
+            hess[a * k + b] = v;
+            hess[b * k + a] = v;
+        }
+    }
+    let hm = Mat::from_fn(k, k, |i, j| hess[i * k + j]);
+    let min_curvature = if k > 1 {
+        let sub = Mat::from_fn(k - 1, k - 1, |i, j| hess[i * k + j]);
+        sub.self_adjoint_eigenvalues(faer::Side::Lower).ok().and_then(|e| e.into_iter().reduce(f64::min))
+    } else {
+        None
+    };
+    let acov = match hm.llt(faer::Side::Lower) {
+        Ok(llt) => {
+            use faer::linalg::solvers::DenseSolveCore;
+            let inv = llt.inverse();
+            (0..k * k).map(|i| 2.0 * inv[(i / k, i % k)]).collect()
+        }
+        Err(_) => vec![f64::NAN; k * k],
+    };
+    // ∂cov(β̂)/∂φ: σ²-derivative in closed form, θ-derivatives by central differences.
+    let cov_at = |ph: &[f64], evals: &mut usize| -> Option<Vec<f64>> {
+        let mut th = theta.to_vec();
+        for (j, &i) in free.iter().enumerate() {
+            th[i] = ph[j];
+        }
+        *evals += 1;
+        criterion::evaluate(cp, &th, false).ok().map(|f| fixed_cov(&f, cp.q2_total, p, ph[k - 1]))
+    };
+    let mut dcov = Vec::with_capacity(k);
+    for a in 0..k - 1 {
+        let mut pp = phi.clone();
+        pp[a] += h[a];
+        let cp_ = cov_at(&pp, &mut evals);
+        pp[a] = phi[a] - h[a];
+        let cm_ = cov_at(&pp, &mut evals);
+        dcov.push(match (cp_, cm_) {
+            (Some(a1), Some(a2)) => a1.iter().zip(&a2).map(|(x, y)| (x - y) / (2.0 * h[a])).collect(),
+            _ => vec![f64::NAN; p * p],
+        });
+    }
+    let c0 = cov_at(&phi, &mut evals).unwrap_or_else(|| vec![f64::NAN; p * p]);
+    dcov.push(c0.iter().map(|v| v / sigma2).collect());
+    ((VarianceSensitivity { acov, dcov }, evals), min_curvature)
+}

@@ -1,0 +1,135 @@
+//! The linear mixed-model engine.
+//!
+//! The model is `y = Xβ + Zb + ε` with `b ~ N(0, σ²ΛΛᵀ)` and `ε ~ N(0, σ²I)`.
+//! It is fitted in the penalized least squares form of Bates, Mächler, Bolker
+//! & Walker (2015, *J. Stat. Software* 67(1)): for a relative covariance
+//! parameter θ, the Cholesky factor of the augmented system
+//! `[ΛᵀZᵀZΛ + I, ΛᵀZᵀX, ΛᵀZᵀy; ·, XᵀX, Xᵀy; ·, ·, yᵀy]` gives the profiled ML
+//! and REML criteria in closed form. The derivation, with the blocked
+//! factorisation used here, is in `notes/criterion.md`.
+//!
+//! Files by algorithm:
+//! - [`crossprod`]: the one pass over the rows that gathers every cross-product;
+//! - [`criterion`]: one evaluation of the profiled criterion for a θ;
+//! - [`optimize`]: the bounded quasi-Newton optimiser;
+//! - [`fit`]: the fit itself, start values, restarts and post-fit quantities.
+//!
+//! The engine sees plain Rust types and faer matrices only.
+#![allow(non_snake_case)]
+
+pub mod criterion;
+pub mod crossprod;
+pub mod fit;
+pub mod optimize;
+
+pub use fit::{fit, Fit, FitInfo, FitOptions, RandomComponent};
+
+use serde::{Deserialize, Serialize};
+
+/// The estimation criterion.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Method {
+    /// Restricted maximum likelihood (the default).
+    #[default]
+    Reml,
+    /// Maximum likelihood (needed for likelihood-ratio tests of fixed effects).
+    Ml,
+}
+
+impl Method {
+    /// The label used in reports and JSON: `"REML"` or `"ML"`.
+    pub fn label(self) -> &'static str {
+        match self {
+            Method::Reml => "REML",
+            Method::Ml => "ML",
+        }
+    }
+}
+
+/// One random-effect term: a grouping factor with an intercept and/or slopes,
+/// whose coefficients share an unstructured covariance matrix.
+#[derive(Debug, Clone)]
+pub struct RandomTermData {
+    /// Name of the grouping factor (a column of the data).
+    pub factor: String,
+    /// Label of each level, in level-index order.
+    pub level_names: Vec<String>,
+    /// Level index of each row (`0..level_names.len()`).
+    pub level: Vec<u32>,
+    /// Names of the coefficients (for example `"intercept"`, `"age"`).
+    pub columns: Vec<String>,
+    /// The model-matrix columns of this term, one `Vec` of length n per coefficient.
+    pub z: Vec<Vec<f64>>,
+}
+
+impl RandomTermData {
+    /// Number of coefficients per level (q).
+    pub fn q(&self) -> usize {
+        self.columns.len()
+    }
+    /// Number of levels.
+    pub fn n_levels(&self) -> usize {
+        self.level_names.len()
+    }
+    /// Number of covariance parameters (lower triangle of a q×q factor).
+    pub fn n_theta(&self) -> usize {
+        let q = self.q();
+        q * (q + 1) / 2
+    }
+}
+
+/// A mixed-model problem: response, fixed design and random terms.
+#[derive(Debug, Clone)]
+pub struct MixedProblem {
+    /// The response, length n.
+    pub y: Vec<f64>,
+    /// Names of the fixed-effect columns, length p.
+    pub x_names: Vec<String>,
+    /// The fixed-effect design, row-major n×p.
+    pub x: Vec<f64>,
+    /// The random-effect terms (possibly none).
+    pub terms: Vec<RandomTermData>,
+}
+
+impl MixedProblem {
+    /// Number of rows.
+    pub fn n(&self) -> usize {
+        self.y.len()
+    }
+    /// Number of fixed-effect columns.
+    pub fn p(&self) -> usize {
+        self.x_names.len()
+    }
+    /// Total number of covariance parameters θ.
+    pub fn n_theta(&self) -> usize {
+        self.terms.iter().map(RandomTermData::n_theta).sum()
+    }
+    /// Lower bounds of θ: zero for the diagonal of each factor, −∞ elsewhere.
+    pub fn theta_lower(&self) -> Vec<f64> {
+        let mut lower = Vec::with_capacity(self.n_theta());
+        for t in &self.terms {
+            let q = t.q();
+            for j in 0..q {
+                for i in j..q {
+                    lower.push(if i == j { 0.0 } else { f64::NEG_INFINITY });
+                }
+            }
+        }
+        lower
+    }
+}
+
+/// Unpack a term's θ (lower triangle, column-major) into a dense q×q
+/// lower-triangular factor `T`, row-major.
+pub(crate) fn unpack_factor(theta: &[f64], q: usize) -> Vec<f64> {
+    let mut t = vec![0.0; q * q];
+    let mut k = 0;
+    for j in 0..q {
+        for i in j..q {
+            t[i * q + j] = theta[k];
+            k += 1;
+        }
+    }
+    t
+}

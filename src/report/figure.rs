@@ -1,0 +1,170 @@
+//! Trajectory figures (PNG and SVG) drawn with plotters.
+//!
+//! The look is braid's own: a warm off-white ground, the stitched curve in a
+//! deep teal over a pale band for its 95% interval, each cohort's observed
+//! wave means as coloured dots with ±1.96 SE whiskers so the reader sees how
+//! the segments line up, and optional thin grey individual paths underneath.
+
+use std::path::Path;
+use std::sync::Once;
+
+use plotters::coord::Shift;
+use plotters::prelude::*;
+use plotters::style::FontStyle;
+
+use super::FitReport;
+use crate::error::{Error, Result};
+
+/// One participant's observed path: (age, outcome) pairs in age order.
+pub type Line = Vec<(f64, f64)>;
+
+static FONT: Once = Once::new();
+static FONT_BYTES: &[u8] = include_bytes!("font/DejaVuSans.ttf");
+
+fn register_font() {
+    FONT.call_once(|| {
+        // The embedded font is valid; a failure here would leave text blank, not crash.
+        let _ = plotters::style::register_font("sans-serif", FontStyle::Normal, FONT_BYTES);
+    });
+}
+
+const GROUND: RGBColor = RGBColor(252, 250, 245);
+const INK: RGBColor = RGBColor(40, 40, 48);
+const CURVE: RGBColor = RGBColor(0, 95, 105);
+const PALETTE: [RGBColor; 8] = [
+    RGBColor(204, 102, 0),
+    RGBColor(120, 60, 160),
+    RGBColor(200, 40, 80),
+    RGBColor(60, 130, 40),
+    RGBColor(30, 90, 190),
+    RGBColor(150, 110, 20),
+    RGBColor(90, 90, 90),
+    RGBColor(0, 150, 150),
+];
+
+/// Size of the figures in pixels.
+pub const SIZE: (u32, u32) = (1000, 640);
+
+fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, report: &FitReport, lines: &[Line]) -> std::result::Result<(), String> {
+    let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
+    root.fill(&GROUND).map_err(e)?;
+    let t = &report.trajectory;
+    let (x0, x1) = (report.data.age_min, report.data.age_max);
+    let pad_x = 0.03 * (x1 - x0);
+    let mut lo = f64::INFINITY;
+    let mut hi = f64::NEG_INFINITY;
+    for p in &t.points {
+        lo = lo.min(p.lower);
+        hi = hi.max(p.upper);
+    }
+    for c in &report.cells {
+        let w = if c.se.is_finite() { 1.96 * c.se } else { 0.0 };
+        lo = lo.min(c.mean - w);
+        hi = hi.max(c.mean + w);
+    }
+    for l in lines {
+        for &(_, y) in l {
+            lo = lo.min(y);
+            hi = hi.max(y);
+        }
+    }
+    let pad_y = 0.06 * (hi - lo).max(1e-9);
+    let title = format!("{} by {}: one trajectory stitched from {} cohort segments", report.data.outcome, report.data.age, cohort_count(report));
+    let mut chart = ChartBuilder::on(&root)
+        .caption(title, ("sans-serif", 22).into_font().color(&INK))
+        .margin(24)
+        .x_label_area_size(52)
+        .y_label_area_size(68)
+        .build_cartesian_2d((x0 - pad_x)..(x1 + pad_x), (lo - pad_y)..(hi + pad_y))
+        .map_err(e)?;
+    chart
+        .configure_mesh()
+        .x_desc(format!("{} (years)", report.data.age))
+        .y_desc(report.data.outcome.clone())
+        .axis_desc_style(("sans-serif", 17).into_font().color(&INK))
+        .label_style(("sans-serif", 14).into_font().color(&INK))
+        .bold_line_style(RGBColor(225, 220, 210))
+        .light_line_style(RGBColor(242, 238, 230))
+        .axis_style(RGBColor(150, 145, 135))
+        .draw()
+        .map_err(e)?;
+    for l in lines {
+        chart.draw_series(LineSeries::new(l.iter().copied(), RGBColor(170, 170, 170).mix(0.5).stroke_width(1))).map_err(e)?;
+    }
+    let mut band: Vec<(f64, f64)> = t.points.iter().map(|p| (p.age, p.upper)).collect();
+    band.extend(t.points.iter().rev().map(|p| (p.age, p.lower)));
+    chart
+        .draw_series(std::iter::once(Polygon::new(band, CURVE.mix(0.18).filled())))
+        .map_err(e)?
+        .label("95% band of the mean")
+        .legend(|(x, y)| Rectangle::new([(x, y - 6), (x + 22, y + 6)], CURVE.mix(0.18).filled()));
+    chart
+        .draw_series(LineSeries::new(t.points.iter().map(|p| (p.age, p.mean)), CURVE.stroke_width(3)))
+        .map_err(e)?
+        .label("stitched mean trajectory")
+        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 22, y)], CURVE.stroke_width(3)));
+    let mut cohorts: Vec<&str> = Vec::new();
+    for c in &report.cells {
+        if !cohorts.contains(&c.cohort.as_str()) {
+            cohorts.push(&c.cohort);
+        }
+    }
+    for (k, name) in cohorts.iter().enumerate() {
+        let color = PALETTE[k % PALETTE.len()];
+        let cells: Vec<_> = report.cells.iter().filter(|c| c.cohort == *name).collect();
+        chart
+            .draw_series(cells.iter().filter(|c| c.se.is_finite()).map(|c| {
+                ErrorBar::new_vertical(c.age, c.mean - 1.96 * c.se, c.mean, c.mean + 1.96 * c.se, color.stroke_width(2), 8)
+            }))
+            .map_err(e)?;
+        chart
+            .draw_series(LineSeries::new(cells.iter().map(|c| (c.age, c.mean)), color.mix(0.6).stroke_width(1)))
+            .map_err(e)?;
+        let label = if name.parse::<f64>().is_ok() { format!("cohort {name}: wave means ±1.96 SE") } else { format!("{name}: wave means ±1.96 SE") };
+        chart
+            .draw_series(cells.iter().map(|c| Circle::new((c.age, c.mean), 5, color.filled())))
+            .map_err(e)?
+            .label(label)
+            .legend(move |(x, y)| Circle::new((x + 11, y), 5, color.filled()));
+    }
+    chart
+        .configure_series_labels()
+        .position(SeriesLabelPosition::LowerRight)
+        .background_style(GROUND.mix(0.9))
+        .border_style(RGBColor(200, 195, 185))
+        .label_font(("sans-serif", 14).into_font().color(&INK))
+        .draw()
+        .map_err(e)?;
+    root.present().map_err(e)?;
+    Ok(())
+}
+
+fn cohort_count(report: &FitReport) -> usize {
+    let mut seen: Vec<&str> = Vec::new();
+    for c in &report.cells {
+        if !seen.contains(&c.cohort.as_str()) {
+            seen.push(&c.cohort);
+        }
+    }
+    seen.len()
+}
+
+/// Draw the trajectory figure as PNG.
+///
+/// # Errors
+/// [`Error::Output`] when the file cannot be drawn or written.
+pub fn trajectory_png(path: &Path, report: &FitReport, lines: &[Line]) -> Result<()> {
+    register_font();
+    let root = BitMapBackend::new(path, SIZE).into_drawing_area();
+    draw(root, report, lines).map_err(|m| Error::Output { path: path.to_path_buf(), message: format!("cannot draw the figure ({m})") })
+}
+
+/// Draw the trajectory figure as SVG.
+///
+/// # Errors
+/// [`Error::Output`] when the file cannot be drawn or written.
+pub fn trajectory_svg(path: &Path, report: &FitReport, lines: &[Line]) -> Result<()> {
+    register_font();
+    let root = SVGBackend::new(path, SIZE).into_drawing_area();
+    draw(root, report, lines).map_err(|m| Error::Output { path: path.to_path_buf(), message: format!("cannot draw the figure ({m})") })
+}

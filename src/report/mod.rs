@@ -1,0 +1,268 @@
+//! Reporting: the serializable fit report, text tables, JSON/CSV files and
+//! figures. Nothing here computes an estimate; it arranges results.
+
+pub mod figure;
+pub mod text;
+
+use std::collections::BTreeMap;
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+
+use crate::data::{DropReport, Panel};
+use crate::error::{Error, Result};
+use crate::infer::{self, FixedEffect, Trajectory};
+use crate::lmm::{Fit, FitInfo, RandomComponent};
+use crate::spec::{AgeBasis, ModelFrame};
+
+/// The cautions every report carries.
+pub const CAUTIONS: [&str; 3] = [
+    "Associations are not causes: the trajectory describes how the outcome differs with age in these cohorts, not what age does to a person.",
+    "Pooling cohorts into one curve assumes they converge where their ages overlap (no cohort or period differences); test that assumption before relying on the curve.",
+    "Only de-identified data belong in braid; follow the study's ethics approval and data-protection rules when sharing these outputs.",
+];
+
+/// What was read and used.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct DataSummary {
+    /// The input file.
+    pub file: String,
+    /// Data rows in the file.
+    pub n_rows_read: usize,
+    /// Rows used.
+    pub n_obs: usize,
+    /// Rows left out, by reason.
+    pub dropped: DropReport,
+    /// Participants.
+    pub n_participants: usize,
+    /// Cohorts (when a cohort column is given).
+    pub n_cohorts: Option<usize>,
+    /// Clusters (when a cluster column is given).
+    pub n_clusters: Option<usize>,
+    /// Youngest age.
+    pub age_min: f64,
+    /// Oldest age.
+    pub age_max: f64,
+    /// Name of the outcome column.
+    pub outcome: String,
+    /// Name of the age column.
+    pub age: String,
+}
+
+/// A cohort's observed mean at one wave, for the figure and the table.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct CellMean {
+    /// Cohort label (or entry-age group when no cohort column is given).
+    pub cohort: String,
+    /// Wave label (or rounded age when no wave column is given).
+    pub wave: String,
+    /// Rows in the cell.
+    pub n: usize,
+    /// Mean age.
+    pub age: f64,
+    /// Mean outcome.
+    pub mean: f64,
+    /// Standard error of the mean outcome (NaN for a single row).
+    pub se: f64,
+}
+
+/// The complete result of `braid fit`, with stable JSON keys.
+#[derive(Debug, Clone, Serialize)]
+pub struct FitReport {
+    /// braid's version.
+    pub braid_version: String,
+    /// `"REML"` or `"ML"`.
+    pub method: String,
+    /// Rows used.
+    pub n_obs: usize,
+    /// Levels per grouping factor.
+    pub n_groups: BTreeMap<String, usize>,
+    /// Maximised log-likelihood (REML or ML as `method`).
+    pub loglik: f64,
+    /// Akaike's criterion.
+    pub aic: f64,
+    /// Schwarz's criterion.
+    pub bic: f64,
+    /// Number of estimated parameters.
+    pub n_params: usize,
+    /// Fixed effects with SE, Satterthwaite df, t, p and 95% interval.
+    pub fixed: Vec<FixedEffect>,
+    /// Random-effect covariances per grouping factor.
+    pub random: Vec<RandomComponent>,
+    /// Residual variance σ̂².
+    pub residual_variance: f64,
+    /// Whether the optimiser reached a clear minimum.
+    pub converged: bool,
+    /// Covariance parameters on the boundary.
+    pub boundary: Vec<String>,
+    /// The mean trajectory with rate of change and turning points.
+    pub trajectory: Trajectory,
+    /// Data summary.
+    pub data: DataSummary,
+    /// The model in words.
+    pub model: Vec<String>,
+    /// The age basis (with centre and knots).
+    pub basis: AgeBasis,
+    /// Observed cohort × wave means.
+    pub cells: Vec<CellMean>,
+    /// Optimisation record.
+    pub info: FitInfo,
+    /// Cautions for the reader.
+    pub cautions: Vec<String>,
+}
+
+impl FitReport {
+    /// Assemble the report from the pipeline's results.
+    pub fn new(panel: &Panel, frame: &ModelFrame, fit: &Fit, trajectory: Trajectory) -> FitReport {
+        let mut n_groups = BTreeMap::new();
+        for r in &fit.random {
+            n_groups.insert(r.factor.clone(), r.n_levels);
+        }
+        let (age_min, age_max) = frame.age_range;
+        FitReport {
+            braid_version: env!("CARGO_PKG_VERSION").to_string(),
+            method: fit.method.label().to_string(),
+            n_obs: fit.n_obs,
+            n_groups,
+            loglik: fit.loglik,
+            aic: fit.aic,
+            bic: fit.bic,
+            n_params: fit.n_params,
+            fixed: infer::fixed_effects(fit),
+            random: fit.random.clone(),
+            residual_variance: fit.sigma2,
+            converged: fit.info.converged,
+            boundary: fit.info.boundary.clone(),
+            trajectory,
+            data: DataSummary {
+                file: panel.source.display().to_string(),
+                n_rows_read: panel.n_rows_read,
+                n_obs: panel.n(),
+                dropped: panel.dropped,
+                n_participants: panel.id.n_levels(),
+                n_cohorts: panel.cohort.as_ref().map(|c| c.n_levels()),
+                n_clusters: panel.cluster.as_ref().map(|c| c.n_levels()),
+                age_min,
+                age_max,
+                outcome: frame.outcome_name.clone(),
+                age: frame.age_name.clone(),
+            },
+            model: frame.description.clone(),
+            basis: frame.basis.clone(),
+            cells: cell_means(panel),
+            info: fit.info.clone(),
+            cautions: CAUTIONS.iter().map(|s| s.to_string()).collect(),
+        }
+    }
+}
+
+/// Observed means per cohort and wave. Without a cohort column, participants
+/// are grouped by their whole-year age at first assessment; without a wave
+/// column, rows are grouped by whole-year age.
+pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
+    let n = panel.n();
+    let cohort_of: Vec<String> = match &panel.cohort {
+        Some(c) => (0..n).map(|r| c.label(r).to_string()).collect(),
+        None => {
+            let mut first = vec![f64::INFINITY; panel.id.n_levels()];
+            for r in 0..n {
+                let k = panel.id.codes[r] as usize;
+                first[k] = first[k].min(panel.age[r]);
+            }
+            (0..n).map(|r| format!("entry age {}", first[panel.id.codes[r] as usize].floor())).collect()
+        }
+    };
+    let wave_of: Vec<String> = match &panel.wave {
+        Some(w) => (0..n).map(|r| w.label(r).to_string()).collect(),
+        None => (0..n).map(|r| format!("age {}", panel.age[r].floor())).collect(),
+    };
+    let mut groups: BTreeMap<(String, String), (usize, f64, f64, f64)> = BTreeMap::new();
+    for r in 0..n {
+        let e = groups.entry((cohort_of[r].clone(), wave_of[r].clone())).or_insert((0, 0.0, 0.0, 0.0));
+        e.0 += 1;
+        e.1 += panel.age[r];
+        e.2 += panel.outcome[r];
+        e.3 += panel.outcome[r] * panel.outcome[r];
+    }
+    let mut cells: Vec<CellMean> = groups
+        .into_iter()
+        .map(|((cohort, wave), (k, sa, sy, syy))| {
+            let kf = k as f64;
+            let mean = sy / kf;
+            let var = if k > 1 { ((syy - kf * mean * mean) / (kf - 1.0)).max(0.0) } else { f64::NAN };
+            CellMean { cohort, wave, n: k, age: sa / kf, mean, se: (var / kf).sqrt() }
+        })
+        .collect();
+    // Order cohorts and waves numerically where their labels are numbers.
+    let key = |s: &str| s.trim_start_matches(|c: char| !c.is_ascii_digit() && c != '-').parse::<f64>().unwrap_or(f64::INFINITY);
+    cells.sort_by(|a, b| key(&a.cohort).total_cmp(&key(&b.cohort)).then(a.cohort.cmp(&b.cohort)).then(a.age.total_cmp(&b.age)));
+    cells
+}
+
+/// Create the output folder (refusing one that is a file).
+///
+/// # Errors
+/// [`Error::Output`] when the folder cannot be created.
+pub fn ensure_dir(dir: &Path) -> Result<()> {
+    if dir.exists() && !dir.is_dir() {
+        return Err(Error::Output { path: dir.to_path_buf(), message: "exists and is not a folder; name a folder for --out".into() });
+    }
+    fs::create_dir_all(dir).map_err(|e| Error::Output { path: dir.to_path_buf(), message: format!("cannot create the folder ({e})") })
+}
+
+/// Write a serializable value as pretty JSON.
+///
+/// # Errors
+/// [`Error::Output`] when the file cannot be written.
+pub fn write_json<T: Serialize>(path: &Path, value: &T) -> Result<()> {
+    let text = serde_json::to_string_pretty(value).map_err(|e| Error::Output { path: path.to_path_buf(), message: e.to_string() })?;
+    fs::write(path, text + "\n").map_err(|e| Error::Output { path: path.to_path_buf(), message: format!("cannot write ({e})") })
+}
+
+/// Write the trajectory as CSV: age, mean, lower, upper, rate, rate_lower, rate_upper.
+///
+/// # Errors
+/// [`Error::Output`] when the file cannot be written.
+pub fn write_trajectory_csv(path: &Path, t: &Trajectory) -> Result<()> {
+    let mut s = String::from("age,mean,lower,upper,rate,rate_lower,rate_upper\n");
+    for p in &t.points {
+        s.push_str(&format!(
+            "{:.6},{:.8},{:.8},{:.8},{:.8},{:.8},{:.8}\n",
+            p.age, p.mean, p.lower, p.upper, p.rate, p.rate_lower, p.rate_upper
+        ));
+    }
+    fs::write(path, s).map_err(|e| Error::Output { path: path.to_path_buf(), message: format!("cannot write ({e})") })
+}
+
+/// Paths of the files `braid fit --out DIR` writes.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct FitOutputs {
+    /// `fit.json`.
+    pub json: PathBuf,
+    /// `trajectory.csv`.
+    pub csv: PathBuf,
+    /// `trajectory.png`.
+    pub png: PathBuf,
+    /// `trajectory.svg`.
+    pub svg: PathBuf,
+}
+
+/// Write every output of a fit into `dir`.
+///
+/// # Errors
+/// [`Error::Output`] when a file cannot be written.
+pub fn write_fit_outputs(dir: &Path, report: &FitReport, lines: &[figure::Line]) -> Result<FitOutputs> {
+    ensure_dir(dir)?;
+    let out = FitOutputs {
+        json: dir.join("fit.json"),
+        csv: dir.join("trajectory.csv"),
+        png: dir.join("trajectory.png"),
+        svg: dir.join("trajectory.svg"),
+    };
+    write_json(&out.json, report)?;
+    write_trajectory_csv(&out.csv, &report.trajectory)?;
+    figure::trajectory_png(&out.png, report, lines)?;
+    figure::trajectory_svg(&out.svg, report, lines)?;
+    Ok(out)
+}

@@ -1,0 +1,335 @@
+//! The model specification as Rust types, and the model frame built from it.
+//!
+//! A model is stated as data, not as a formula string: the age basis, the
+//! centre, the covariates (from the column roles) and a list of random-effect
+//! terms, each naming a grouping column, whether it has an intercept, and which
+//! numeric columns get slopes. The same [`ModelSpec`] is read from a study
+//! file (TOML) or built from command-line flags.
+
+pub mod basis;
+
+use serde::{Deserialize, Serialize};
+
+pub use basis::AgeBasis;
+
+use crate::data::{CovariateValues, Panel};
+use crate::error::{Error, Result};
+use crate::lmm::{Method, MixedProblem, RandomTermData};
+
+/// How age enters the fixed part.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "basis", rename_all = "snake_case", deny_unknown_fields)]
+pub enum AgeSpec {
+    /// Powers 1..=degree of (age − centre).
+    Polynomial {
+        /// Degree, 1 to 4.
+        degree: usize,
+    },
+    /// A natural cubic spline.
+    Spline {
+        /// Number of interior knots placed at quantiles of age.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        interior_knots: Option<usize>,
+        /// Interior knots given by the user (ages, inside the observed range).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        knots: Option<Vec<f64>>,
+    },
+}
+
+impl Default for AgeSpec {
+    fn default() -> Self {
+        AgeSpec::Polynomial { degree: 2 }
+    }
+}
+
+/// One random-effect term.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RandomSpec {
+    /// The grouping column (for example the participant id or the school).
+    pub factor: String,
+    /// Whether the term has a random intercept.
+    #[serde(default = "yes")]
+    pub intercept: bool,
+    /// Columns with random slopes. The age column means centred age.
+    #[serde(default)]
+    pub slopes: Vec<String>,
+}
+
+fn yes() -> bool {
+    true
+}
+
+/// The whole model.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModelSpec {
+    /// REML (default) or ML.
+    #[serde(default)]
+    pub method: Method,
+    /// The age basis.
+    #[serde(default)]
+    pub age: AgeSpec,
+    /// The centre age; the mean age when absent.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub center: Option<f64>,
+    /// Random-effect terms; when absent, an intercept and age slope per
+    /// participant, plus an intercept per cluster when a cluster is given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub random: Option<Vec<RandomSpec>>,
+}
+
+impl ModelSpec {
+    /// The random terms in force for a panel's roles.
+    pub fn random_terms(&self, panel: &Panel) -> Vec<RandomSpec> {
+        match &self.random {
+            Some(r) => r.clone(),
+            None => {
+                let mut v = vec![RandomSpec { factor: panel.roles.id.clone(), intercept: true, slopes: vec![panel.roles.age.clone()] }];
+                if let Some(c) = &panel.roles.cluster {
+                    v.push(RandomSpec { factor: c.clone(), intercept: true, slopes: vec![] });
+                }
+                v
+            }
+        }
+    }
+}
+
+/// The fitted-model frame: the engine's problem plus what is needed to read
+/// the estimates back in terms of age.
+#[derive(Debug, Clone)]
+pub struct ModelFrame {
+    /// The engine's input.
+    pub problem: MixedProblem,
+    /// The age basis with its centre and knots.
+    pub basis: AgeBasis,
+    /// Name of the age column.
+    pub age_name: String,
+    /// Name of the outcome column.
+    pub outcome_name: String,
+    /// The values of the covariate columns of X used for the mean trajectory:
+    /// the sample mean of each (for factors, the share of each level).
+    pub covariate_reference: Vec<f64>,
+    /// The random terms as specified.
+    pub random: Vec<RandomSpec>,
+    /// Observed age range.
+    pub age_range: (f64, f64),
+    /// The model in words, one line per part.
+    pub description: Vec<String>,
+}
+
+impl ModelFrame {
+    /// The fixed-effect row for the mean trajectory at `age`.
+    pub fn mean_row(&self, age: f64) -> Vec<f64> {
+        let mut v = vec![1.0];
+        v.extend(self.basis.eval(age));
+        v.extend(&self.covariate_reference);
+        v
+    }
+    /// The derivative of [`Self::mean_row`] with respect to age.
+    pub fn rate_row(&self, age: f64) -> Vec<f64> {
+        let mut v = vec![0.0];
+        v.extend(self.basis.deriv(age));
+        v.extend(std::iter::repeat_n(0.0, self.covariate_reference.len()));
+        v
+    }
+    /// The second derivative of [`Self::mean_row`].
+    pub fn curvature_row(&self, age: f64) -> Vec<f64> {
+        let mut v = vec![0.0];
+        v.extend(self.basis.deriv2(age));
+        v.extend(std::iter::repeat_n(0.0, self.covariate_reference.len()));
+        v
+    }
+}
+
+fn spec_err(parameter: &str, message: String) -> Error {
+    Error::Spec { parameter: parameter.to_string(), message }
+}
+
+/// Build the age basis for these ages.
+///
+/// # Errors
+/// [`Error::Spec`] for a degree outside 1–4, too few distinct ages for the
+/// basis, or spline knots outside the observed range.
+pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<AgeBasis> {
+    let mut sorted = ages.to_vec();
+    sorted.sort_by(f64::total_cmp);
+    let (lo, hi) = (sorted[0], sorted[sorted.len() - 1]);
+    let center = center.unwrap_or_else(|| ages.iter().sum::<f64>() / ages.len() as f64);
+    if !center.is_finite() {
+        return Err(spec_err("--center", format!("centre {center} is not a finite age")));
+    }
+    let mut distinct = sorted.clone();
+    distinct.dedup();
+    match spec {
+        AgeSpec::Polynomial { degree } => {
+            if !(1..=4).contains(degree) {
+                return Err(spec_err("--degree", format!("degree {degree} is not supported; choose 1, 2, 3 or 4 (or a spline with --knots)")));
+            }
+            if distinct.len() <= *degree {
+                return Err(spec_err(
+                    "--degree",
+                    format!("{} distinct ages cannot support a degree-{degree} polynomial; lower the degree", distinct.len()),
+                ));
+            }
+            Ok(AgeBasis::Polynomial { degree: *degree, center })
+        }
+        AgeSpec::Spline { interior_knots, knots } => {
+            let inner: Vec<f64> = match (interior_knots, knots) {
+                (_, Some(k)) => {
+                    let mut k = k.clone();
+                    k.sort_by(f64::total_cmp);
+                    for &v in &k {
+                        if !(v > lo && v < hi) {
+                            return Err(spec_err(
+                                "knots",
+                                format!("knot {v} is not strictly inside the observed ages {lo:.2} to {hi:.2}; move it inside"),
+                            ));
+                        }
+                    }
+                    k
+                }
+                (Some(kn), None) => {
+                    if *kn == 0 || *kn > 20 {
+                        return Err(spec_err("--knots", format!("{kn} interior knots; choose between 1 and 20")));
+                    }
+                    (1..=*kn).map(|j| basis::quantile_sorted(&sorted, j as f64 / (*kn + 1) as f64)).collect()
+                }
+                (None, None) => return Err(spec_err("age", "a spline needs interior_knots or knots".into())),
+            };
+            let mut all = vec![lo];
+            all.extend(inner);
+            all.push(hi);
+            if all.windows(2).any(|w| w[1] - w[0] <= 1e-9 * (hi - lo)) {
+                return Err(spec_err(
+                    "--knots",
+                    "two knots coincide (ages are too concentrated for this many knots); use fewer knots or give them explicitly".into(),
+                ));
+            }
+            if distinct.len() < all.len() {
+                return Err(spec_err("--knots", format!("{} distinct ages cannot support {} knots; use fewer", distinct.len(), all.len())));
+            }
+            Ok(AgeBasis::Spline { knots: all, center })
+        }
+    }
+}
+
+/// Build the model frame: fixed design, random terms and reference row.
+///
+/// # Errors
+/// [`Error::Spec`] when a random term names an unknown column or a slope on a
+/// non-numeric column, or when the basis cannot be built.
+pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
+    let basis = build_basis(&spec.age, spec.center, &panel.age)?;
+    let n = panel.n();
+    let age_name = panel.roles.age.clone();
+    let mut x_names = vec!["intercept".to_string()];
+    x_names.extend(basis.names(&age_name));
+    // Covariate columns: numeric as is, factors by treatment coding.
+    let mut cov_cols: Vec<Vec<f64>> = Vec::new();
+    for c in &panel.covariates {
+        match &c.values {
+            CovariateValues::Numeric(v) => {
+                x_names.push(c.name.clone());
+                cov_cols.push(v.clone());
+            }
+            CovariateValues::Categorical(codes) => {
+                for (lvl, label) in codes.levels.iter().enumerate().skip(1) {
+                    x_names.push(format!("{}={}", c.name, label));
+                    cov_cols.push(codes.codes.iter().map(|&k| if k as usize == lvl { 1.0 } else { 0.0 }).collect());
+                }
+            }
+        }
+    }
+    let p = x_names.len();
+    let mut x = Vec::with_capacity(n * p);
+    for r in 0..n {
+        x.push(1.0);
+        x.extend(basis.eval(panel.age[r]));
+        for c in &cov_cols {
+            x.push(c[r]);
+        }
+    }
+    debug_assert_eq!(x.len(), n * p);
+    let covariate_reference: Vec<f64> = cov_cols.iter().map(|c| c.iter().sum::<f64>() / n as f64).collect();
+
+    let random = spec.random_terms(panel);
+    let mut terms = Vec::with_capacity(random.len());
+    let center = basis.center();
+    for rs in &random {
+        let codes = if rs.factor == panel.roles.id {
+            panel.id.clone()
+        } else if Some(&rs.factor) == panel.roles.cluster.as_ref() {
+            panel.cluster.clone().expect("cluster role present")
+        } else if Some(&rs.factor) == panel.roles.cohort.as_ref() {
+            panel.cohort.clone().expect("cohort role present")
+        } else if Some(&rs.factor) == panel.roles.wave.as_ref() {
+            panel.wave.clone().expect("wave role present")
+        } else if let Some(cv) = panel.covariates.iter().find(|c| c.name == rs.factor) {
+            match &cv.values {
+                CovariateValues::Categorical(c) => c.clone(),
+                CovariateValues::Numeric(v) => {
+                    let labels: Vec<String> = v.iter().map(|x| x.to_string()).collect();
+                    crate::data::Codes::new(&labels, true)
+                }
+            }
+        } else {
+            return Err(spec_err(
+                "random.factor",
+                format!("grouping column '{}' is not one of the column roles (id, cluster, cohort, wave or a covariate)", rs.factor),
+            ));
+        };
+        if codes.n_levels() < 2 {
+            return Err(spec_err("random.factor", format!("grouping column '{}' has a single level; a random effect needs at least two", rs.factor)));
+        }
+        let mut columns = Vec::new();
+        let mut z = Vec::new();
+        if rs.intercept {
+            columns.push("intercept".to_string());
+            z.push(vec![1.0; n]);
+        }
+        for s in &rs.slopes {
+            if *s == age_name {
+                columns.push(age_name.clone());
+                z.push(panel.age.iter().map(|a| a - center).collect());
+            } else if let Some(cv) = panel.covariates.iter().find(|c| &c.name == s) {
+                match &cv.values {
+                    CovariateValues::Numeric(v) => {
+                        columns.push(s.clone());
+                        z.push(v.clone());
+                    }
+                    CovariateValues::Categorical(_) => {
+                        return Err(spec_err("random.slopes", format!("'{s}' is categorical; random slopes need a numeric column")));
+                    }
+                }
+            } else {
+                return Err(spec_err("random.slopes", format!("slope column '{s}' is neither the age column nor a numeric covariate")));
+            }
+        }
+        if columns.is_empty() {
+            return Err(spec_err("random", format!("the term for '{}' has neither an intercept nor slopes", rs.factor)));
+        }
+        terms.push(RandomTermData { factor: rs.factor.clone(), level_names: codes.levels.clone(), level: codes.codes.clone(), columns, z });
+    }
+    let age_range = panel.age.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| (lo.min(a), hi.max(a)));
+    let mut description = vec![format!("mean of {}: {}", panel.roles.outcome, basis.describe(&age_name))];
+    if !panel.covariates.is_empty() {
+        let names: Vec<&str> = panel.covariates.iter().map(|c| c.name.as_str()).collect();
+        description.push(format!("adjusted for {}", names.join(", ")));
+    }
+    for t in &terms {
+        let what = t.columns.iter().map(|c| if c == "intercept" { "intercept".to_string() } else { format!("slope on {c}") }).collect::<Vec<_>>().join(" and ");
+        description.push(format!("random {what} per {} ({} levels), unstructured covariance", t.factor, t.n_levels()));
+    }
+    description.push(format!("fitted by {}", spec.method.label()));
+    Ok(ModelFrame {
+        problem: MixedProblem { y: panel.outcome.clone(), x_names, x, terms },
+        basis,
+        age_name,
+        outcome_name: panel.roles.outcome.clone(),
+        covariate_reference,
+        random,
+        age_range,
+        description,
+    })
+}
