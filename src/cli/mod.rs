@@ -30,7 +30,7 @@ pub fn main_exit_code() -> i32 {
     match run(cli) {
         Ok(()) => 0,
         Err(e) => {
-            eprintln!("braid: error: {e}");
+            eprintln!("braid: error: {}", e.to_string().replace(['\n', '\r'], " "));
             e.exit_code()
         }
     }

@@ -472,8 +472,10 @@ fn components(problem: &MixedProblem, cp: &CrossProducts, theta: &[f64], sigma2:
 /// a quarter of it).
 pub const NEWTON_DECREMENT_TOLERANCE: f64 = 1e-6;
 
-/// Relative finite-difference step for the information matrix.
-const HESSIAN_STEP: f64 = 1e-4;
+/// Relative finite-difference step for the information matrix and for the
+/// derivatives of cov(β̂); results at `h` and `h/2` are combined by
+/// Richardson extrapolation, so the error is O(h⁴).
+const HESSIAN_STEP: f64 = 2e-3;
 
 /// The deviance Hessian over φ = (θ_free, σ²) by central differences, its
 /// inverse (×2) and the derivatives of cov(β̂) for Satterthwaite df.
@@ -486,43 +488,75 @@ fn sensitivity(cp: &CrossProducts, theta: &[f64], free: &[usize], method: Method
     let mut evals = 0usize;
     let mut phi: Vec<f64> = free.iter().map(|&i| theta[i]).collect();
     phi.push(sigma2);
-    let h: Vec<f64> = phi.iter().map(|v| HESSIAN_STEP * v.abs().max(1e-2)).collect();
-    let pieces_at = |ph: &[f64], evals: &mut usize| -> Option<Pieces> {
+    let theta_at = |ph: &[f64]| {
         let mut th = theta.to_vec();
         for (j, &i) in free.iter().enumerate() {
             th[i] = ph[j];
         }
+        th
+    };
+    let base = criterion::evaluate(cp, theta, false).ok();
+    // Evaluations at the base θ (σ² perturbed only) reuse its factor.
+    let factor_at = |ph: &[f64], evals: &mut usize| -> Option<Factor> {
+        if ph[..k - 1] == phi[..k - 1] {
+            return base.clone();
+        }
         *evals += 1;
-        criterion::evaluate(cp, &th, false).ok().map(|f| f.pieces)
+        criterion::evaluate(cp, &theta_at(ph), false).ok()
     };
     let dev_at = |ph: &[f64], evals: &mut usize| -> f64 {
-        match pieces_at(ph, evals) {
-            Some(pc) => pc.deviance_at(method, n, p, ph[k - 1]),
-            None => f64::NAN,
-        }
+        factor_at(ph, evals).map_or(f64::NAN, |f| f.pieces.deviance_at(method, n, p, ph[k - 1]))
+    };
+    let cov_at = |ph: &[f64], evals: &mut usize| -> Vec<f64> {
+        factor_at(ph, evals).map_or_else(|| vec![f64::NAN; p * p], |f| fixed_cov(&f, cp.q2_total, p, ph[k - 1]))
     };
     let f0 = dev_at(&phi, &mut evals);
-    let mut hess = vec![0.0; k * k];
-    for a in 0..k {
-        let mut pp = phi.clone();
-        pp[a] += h[a];
-        let fp = dev_at(&pp, &mut evals);
-        pp[a] = phi[a] - h[a];
-        let fm = dev_at(&pp, &mut evals);
-        hess[a * k + a] = (fp - 2.0 * f0 + fm) / (h[a] * h[a]);
-        for b in 0..a {
-            let mut q = phi.clone();
-            let mut vals = [0.0; 4];
-            for (idx, (sa, sb)) in [(1.0, 1.0), (1.0, -1.0), (-1.0, 1.0), (-1.0, -1.0)].iter().enumerate() {
-                q[a] = phi[a] + sa * h[a];
-                q[b] = phi[b] + sb * h[b];
-                vals[idx] = dev_at(&q, &mut evals);
+    let hessian_with = |scale: f64, evals: &mut usize| -> Vec<f64> {
+        let h: Vec<f64> = phi.iter().map(|v| scale * v.abs().max(1e-2)).collect();
+        let mut hess = vec![0.0; k * k];
+        for a in 0..k {
+            let mut pp = phi.clone();
+            pp[a] += h[a];
+            let fp = dev_at(&pp, evals);
+            pp[a] = phi[a] - h[a];
+            let fm = dev_at(&pp, evals);
+            hess[a * k + a] = (fp - 2.0 * f0 + fm) / (h[a] * h[a]);
+            for b in 0..a {
+                let mut q = phi.clone();
+                let mut vals = [0.0; 4];
+                for (idx, (sa, sb)) in [(1.0, 1.0), (1.0, -1.0), (-1.0, 1.0), (-1.0, -1.0)].iter().enumerate() {
+                    q[a] = phi[a] + sa * h[a];
+                    q[b] = phi[b] + sb * h[b];
+                    vals[idx] = dev_at(&q, evals);
+                }
+                let v = (vals[0] - vals[1] - vals[2] + vals[3]) / (4.0 * h[a] * h[b]);
+                hess[a * k + b] = v;
+                hess[b * k + a] = v;
             }
-            let v = (vals[0] - vals[1] - vals[2] + vals[3]) / (4.0 * h[a] * h[b]);
-            hess[a * k + b] = v;
-            hess[b * k + a] = v;
         }
-    }
+        hess
+    };
+    let dcov_with = |scale: f64, evals: &mut usize| -> Vec<Vec<f64>> {
+        (0..k - 1)
+            .map(|a| {
+                let h = scale * phi[a].abs().max(1e-2);
+                let mut pp = phi.clone();
+                pp[a] += h;
+                let c1 = cov_at(&pp, evals);
+                pp[a] = phi[a] - h;
+                let c2 = cov_at(&pp, evals);
+                c1.iter().zip(&c2).map(|(x, y)| (x - y) / (2.0 * h)).collect()
+            })
+            .collect()
+    };
+    let richardson = |coarse: &[f64], fine: &[f64]| -> Vec<f64> { coarse.iter().zip(fine).map(|(c, f)| (4.0 * f - c) / 3.0).collect() };
+    let hess = richardson(&hessian_with(HESSIAN_STEP, &mut evals), &hessian_with(HESSIAN_STEP / 2.0, &mut evals));
+    let coarse = dcov_with(HESSIAN_STEP, &mut evals);
+    let fine = dcov_with(HESSIAN_STEP / 2.0, &mut evals);
+    let mut dcov: Vec<Vec<f64>> = coarse.iter().zip(&fine).map(|(c, f)| richardson(c, f)).collect();
+    // ∂cov(β̂)/∂σ² = cov(β̂)/σ² exactly.
+    let c0 = cov_at(&phi, &mut evals);
+    dcov.push(c0.iter().map(|v| v / sigma2).collect());
     let hm = Mat::from_fn(k, k, |i, j| hess[i * k + j]);
     let min_curvature = if k > 1 {
         let sub = Mat::from_fn(k - 1, k - 1, |i, j| hess[i * k + j]);
@@ -538,28 +572,5 @@ fn sensitivity(cp: &CrossProducts, theta: &[f64], free: &[usize], method: Method
         }
         Err(_) => vec![f64::NAN; k * k],
     };
-    // ∂cov(β̂)/∂φ: σ²-derivative in closed form, θ-derivatives by central differences.
-    let cov_at = |ph: &[f64], evals: &mut usize| -> Option<Vec<f64>> {
-        let mut th = theta.to_vec();
-        for (j, &i) in free.iter().enumerate() {
-            th[i] = ph[j];
-        }
-        *evals += 1;
-        criterion::evaluate(cp, &th, false).ok().map(|f| fixed_cov(&f, cp.q2_total, p, ph[k - 1]))
-    };
-    let mut dcov = Vec::with_capacity(k);
-    for a in 0..k - 1 {
-        let mut pp = phi.clone();
-        pp[a] += h[a];
-        let cp_ = cov_at(&pp, &mut evals);
-        pp[a] = phi[a] - h[a];
-        let cm_ = cov_at(&pp, &mut evals);
-        dcov.push(match (cp_, cm_) {
-            (Some(a1), Some(a2)) => a1.iter().zip(&a2).map(|(x, y)| (x - y) / (2.0 * h[a])).collect(),
-            _ => vec![f64::NAN; p * p],
-        });
-    }
-    let c0 = cov_at(&phi, &mut evals).unwrap_or_else(|| vec![f64::NAN; p * p]);
-    dcov.push(c0.iter().map(|v| v / sigma2).collect());
     ((VarianceSensitivity { acov, dcov }, evals), min_curvature)
 }

@@ -65,8 +65,8 @@ def gls_se(model, result):
         if model.k_vc > 0:
             vc_mats = model.exog_vc.mats
             for j in range(model.k_vc):
-                for m in vc_mats[j][g]:
-                    Vg = Vg + vcomp[j] * (m @ m.T)
+                m = np.asarray(vc_mats[j][g])
+                Vg = Vg + vcomp[j] * (m @ m.T)
         xvx += Xg.T @ np.linalg.solve(Vg, Xg)
     return np.sqrt(np.diag(np.linalg.inv(xvx)) * scale).tolist()
 

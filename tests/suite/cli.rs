@@ -1,0 +1,109 @@
+//! What a user sees: the demo and `braid fit` outputs, and a one-line error
+//! with exit code 2 (never a panic) for each malformed input in
+//! tests/data/bad/ (listed with its expected message in expected.tsv).
+
+use std::fs;
+use std::process::Command;
+
+use crate::common::{braid_bin, data_dir, temp_dir};
+
+const BASE: [&str; 6] = ["--id", "pupil", "--age", "age", "--outcome", "score"];
+
+#[test]
+fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
+    let bad = data_dir().join("bad");
+    let manifest = fs::read_to_string(bad.join("expected.tsv")).unwrap();
+    let mut checked = 0;
+    for line in manifest.lines().filter(|l| !l.starts_with('#') && !l.trim().is_empty()) {
+        let cols: Vec<&str> = line.split('\t').collect();
+        let (file, extra, expected) = (cols[0], cols[1], cols[2]);
+        let mut cmd = Command::new(braid_bin());
+        cmd.arg("fit");
+        let path = bad.join(file);
+        if file.ends_with(".toml") {
+            cmd.arg("--study").arg(&path);
+        } else {
+            cmd.arg(&path);
+            if !extra.starts_with('!') {
+                cmd.args(BASE);
+            }
+        }
+        let extra = extra.trim_start_matches('!');
+        if !extra.is_empty() {
+            cmd.args(extra.split('|'));
+        }
+        let before = fs::read(&path).ok();
+        let out = cmd.output().unwrap();
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{file}: exit {:?}, stderr {stderr}", out.status.code());
+        assert!(!stderr.contains("panicked"), "{file}: panic: {stderr}");
+        assert_eq!(stderr.trim_end().lines().count(), 1, "{file}: not one line: {stderr}");
+        assert!(stderr.contains(expected), "{file}: expected '{expected}' in: {stderr}");
+        assert_eq!(before, fs::read(&path).ok(), "{file} was modified");
+        checked += 1;
+    }
+    assert!(checked >= 15, "only {checked} malformed inputs checked");
+}
+
+#[test]
+fn fit_writes_json_with_stable_keys_csv_and_figures() {
+    let dir = temp_dir("fit-out");
+    let out = Command::new(braid_bin())
+        .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
+        .args(BASE)
+        .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave", "--out"])
+        .arg(&dir)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    for word in ["Fixed effects", "Random effects", "REML log-likelihood", "Satterthwaite", "Cautions"] {
+        assert!(stdout.contains(word), "summary lacks '{word}'");
+    }
+    let json: serde_json::Value = serde_json::from_str(&fs::read_to_string(dir.join("fit.json")).unwrap()).unwrap();
+    for key in ["method", "n_obs", "n_groups", "loglik", "aic", "bic", "fixed", "random", "residual_variance", "converged", "boundary", "trajectory"] {
+        assert!(json.get(key).is_some(), "fit.json lacks '{key}'");
+    }
+    assert_eq!(json["method"], "REML");
+    for key in ["term", "estimate", "se", "df", "t", "p"] {
+        assert!(json["fixed"][0].get(key).is_some(), "fixed lacks '{key}'");
+    }
+    for key in ["factor", "terms", "covariance", "sd", "correlation"] {
+        assert!(json["random"][0].get(key).is_some(), "random lacks '{key}'");
+    }
+    assert_eq!(json["n_groups"]["school"], 12);
+    let csv = fs::read_to_string(dir.join("trajectory.csv")).unwrap();
+    assert_eq!(csv.lines().next().unwrap(), "age,mean,lower,upper,rate,rate_lower,rate_upper");
+    assert_eq!(csv.lines().count(), 102);
+    let png = fs::read(dir.join("trajectory.png")).unwrap();
+    assert_eq!(&png[1..4], b"PNG");
+    let svg = fs::read_to_string(dir.join("trajectory.svg")).unwrap();
+    assert!(svg.contains("<svg") && svg.contains("age (years)"));
+    // A second run gives byte-identical JSON (stable output).
+    let dir2 = temp_dir("fit-out-2");
+    let out2 = Command::new(braid_bin())
+        .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
+        .args(BASE)
+        .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave", "--quiet", "--out"])
+        .arg(&dir2)
+        .output()
+        .unwrap();
+    assert!(out2.status.success());
+    assert!(out2.stdout.is_empty());
+    assert_eq!(fs::read(dir.join("fit.json")).unwrap(), fs::read(dir2.join("fit.json")).unwrap());
+}
+
+#[test]
+fn demo_writes_its_panel_study_file_and_fit() {
+    let dir = temp_dir("demo");
+    let out = Command::new(braid_bin()).args(["demo", "--out"]).arg(&dir).output().unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(stdout.contains("truth"), "the demo prints the truth beside the estimates");
+    for f in ["panel.csv", "study.toml", "fit.json", "trajectory.csv", "trajectory.png", "trajectory.svg"] {
+        assert!(dir.join(f).exists(), "demo did not write {f}");
+    }
+    // The study file it wrote fits again through `braid fit --study`.
+    let refit = Command::new(braid_bin()).args(["fit", "--quiet", "--study"]).arg(dir.join("study.toml")).output().unwrap();
+    assert!(refit.status.success(), "{}", String::from_utf8_lossy(&refit.stderr));
+}

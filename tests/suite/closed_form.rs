@@ -1,0 +1,76 @@
+//! Balanced one-way random effects: with a groups of n and a positive
+//! variance estimate, REML equals the ANOVA estimators
+//! σ̂² = MSE, σ̂²_group = (MSB − MSE)/n, SE(μ̂) = √(MSB/(a·n)), and the
+//! Satterthwaite df of μ̂ is a − 1 (Searle, Casella & McCulloch 1992,
+//! *Variance Components*, ch. 3–4). The data are invented; the identity is
+//! what is checked.
+
+use braid::infer;
+use braid::lmm::{self, FitOptions, Method, MixedProblem, RandomTermData};
+use braid::simulate::Rng;
+
+use crate::tolerance::{rel, CLOSED_FORM_REL, SATTERTHWAITE_REL};
+
+fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
+    let mut rng = Rng::new(seed);
+    let mut y = Vec::new();
+    let mut level = Vec::new();
+    let mut groups = Vec::new();
+    for g in 0..a {
+        let u = 2.0 * rng.normal();
+        let mut v = Vec::new();
+        for _ in 0..n {
+            let val = 10.0 + u + rng.normal();
+            y.push(val);
+            v.push(val);
+            level.push(g as u32);
+        }
+        groups.push(v);
+    }
+    let rows = y.len();
+    let problem = MixedProblem {
+        y,
+        x_names: vec!["intercept".into()],
+        x: vec![1.0; rows],
+        terms: vec![RandomTermData {
+            factor: "group".into(),
+            level_names: (0..a).map(|g| format!("g{g}")).collect(),
+            level,
+            columns: vec!["intercept".into()],
+            z: vec![vec![1.0; rows]],
+        }],
+    };
+    (problem, groups)
+}
+
+fn anova(groups: &[Vec<f64>]) -> (f64, f64, f64) {
+    let a = groups.len() as f64;
+    let n = groups[0].len() as f64;
+    let grand: f64 = groups.iter().flatten().sum::<f64>() / (a * n);
+    let means: Vec<f64> = groups.iter().map(|g| g.iter().sum::<f64>() / n).collect();
+    let ssb: f64 = means.iter().map(|m| n * (m - grand).powi(2)).sum();
+    let sse: f64 = groups.iter().zip(&means).map(|(g, m)| g.iter().map(|v| (v - m).powi(2)).sum::<f64>()).sum();
+    (ssb / (a - 1.0), sse / (a * (n - 1.0)), grand)
+}
+
+#[test]
+fn reml_equals_anova_estimators_in_balanced_one_way_design() {
+    for (a, n, seed) in [(8, 5, 1), (12, 3, 2), (30, 4, 3)] {
+        let (problem, groups) = balanced(a, n, seed);
+        let (msb, mse, grand) = anova(&groups);
+        assert!(msb > mse, "the identity needs a positive variance estimate");
+        let fit = lmm::fit(&problem, FitOptions { method: Method::Reml, ..Default::default() }).unwrap();
+        let var_group = fit.random[0].covariance[0][0];
+        assert!(rel(fit.sigma2, mse, 1e-12) < CLOSED_FORM_REL, "σ² {} vs MSE {mse}", fit.sigma2);
+        let want = (msb - mse) / n as f64;
+        assert!(rel(var_group, want, 1e-12) < CLOSED_FORM_REL, "σ²_g {var_group} vs {want}");
+        assert!(rel(fit.beta[0], grand, 1e-12) < CLOSED_FORM_REL);
+        let se = fit.se()[0];
+        let want_se = (msb / (a * n) as f64).sqrt();
+        assert!(rel(se, want_se, 1e-12) < CLOSED_FORM_REL, "SE {se} vs {want_se}");
+        let fe = infer::fixed_effects(&fit);
+        let df = fe[0].df;
+        println!("a = {a}: Satterthwaite df {df:.10} (closed form {})", a - 1);
+        assert!(rel(df, (a - 1) as f64, 1.0) < SATTERTHWAITE_REL, "df {df} vs {}", a - 1);
+    }
+}

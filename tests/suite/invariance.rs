@@ -1,0 +1,123 @@
+//! Invariance identities (closed form): permuting rows, recoding ids and
+//! shifting age leave the log-likelihood and fitted values unchanged;
+//! rescaling age leaves the ML log-likelihood and the fitted values unchanged
+//! and moves the REML log-likelihood by exactly −log|det S|, where S is the
+//! change of basis of the fixed design (REML's log|XᵀV⁻¹X| term).
+
+use braid::data::Panel;
+use braid::lmm::Method;
+use braid::simulate::{simulate, Design};
+use braid::spec::{AgeSpec, ModelSpec};
+
+use crate::tolerance::{rel, REFIT_LOGLIK_ABS, REFIT_PARAM_REL};
+
+fn panel() -> Panel {
+    let mut d = Design::demo();
+    d.per_cohort = 60;
+    d.seed = 99;
+    simulate(&d).panel(true)
+}
+
+fn spec(method: Method, center: Option<f64>) -> ModelSpec {
+    ModelSpec { method, age: AgeSpec::Polynomial { degree: 2 }, center, random: None }
+}
+
+/// A copy of the panel with rows in the order `order`.
+fn reorder(p: &Panel, order: &[usize]) -> Panel {
+    let pick_codes = |c: &braid::data::Codes| {
+        let labels: Vec<String> = order.iter().map(|&r| c.label(r).to_string()).collect();
+        braid::data::Codes::new(&labels, true)
+    };
+    let ids: Vec<String> = order.iter().map(|&r| p.id.label(r).to_string()).collect();
+    Panel {
+        row: order.iter().map(|&r| p.row[r]).collect(),
+        id: braid::data::Codes::new(&ids, false),
+        age: order.iter().map(|&r| p.age[r]).collect(),
+        outcome: order.iter().map(|&r| p.outcome[r]).collect(),
+        cohort: p.cohort.as_ref().map(pick_codes),
+        wave: p.wave.as_ref().map(pick_codes),
+        cluster: p.cluster.as_ref().map(pick_codes),
+        ..p.clone()
+    }
+}
+
+fn fitted_by_original_row(p: &Panel, fitted: &[f64]) -> Vec<f64> {
+    let mut out = vec![0.0; fitted.len()];
+    for (k, &r) in p.row.iter().enumerate() {
+        out[r - 1] = fitted[k];
+    }
+    out
+}
+
+fn assert_close(a: &[f64], b: &[f64], what: &str) {
+    for (x, y) in a.iter().zip(b) {
+        assert!(rel(*x, *y, 1.0) < REFIT_PARAM_REL, "{what}: {x} vs {y}");
+    }
+}
+
+#[test]
+fn row_order_and_id_recoding_leave_the_fit_unchanged() {
+    let p = panel();
+    let base = braid::fit_panel(&p, &spec(Method::Reml, None), 11).unwrap();
+    let n = p.n();
+    // A deterministic shuffle: stride through the rows by a unit coprime to n.
+    let stride = (1..).map(|k| 7919 * k + 1).find(|s| gcd(*s, n) == 1).unwrap();
+    let order: Vec<usize> = (0..n).map(|i| (i * stride) % n).collect();
+    let shuffled = reorder(&p, &order);
+    let mut recoded = p.clone();
+    let labels: Vec<String> = (0..n).map(|r| format!("child-{}", 100_000 - p.id.codes[r])).collect();
+    recoded.id = braid::data::Codes::new(&labels, true);
+    for (what, q) in [("row order", shuffled), ("id recoding", recoded)] {
+        let f = braid::fit_panel(&q, &spec(Method::Reml, None), 11).unwrap();
+        assert!((f.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS, "{what}: {} vs {}", f.fit.loglik, base.fit.loglik);
+        assert_close(&f.fit.beta, &base.fit.beta, what);
+        assert_close(&fitted_by_original_row(&q, &f.fit.fitted), &fitted_by_original_row(&p, &base.fit.fitted), what);
+    }
+}
+
+fn gcd(a: usize, b: usize) -> usize {
+    if b == 0 { a } else { gcd(b, a % b) }
+}
+
+#[test]
+fn shifting_age_or_moving_the_centre_leaves_the_fit_unchanged() {
+    let p = panel();
+    for method in [Method::Reml, Method::Ml] {
+        let base = braid::fit_panel(&p, &spec(method, Some(16.0)), 11).unwrap();
+        let mut shifted = p.clone();
+        shifted.age.iter_mut().for_each(|a| *a += 100.0);
+        let f = braid::fit_panel(&shifted, &spec(method, Some(116.0)), 11).unwrap();
+        assert!((f.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS);
+        assert_close(&f.fit.fitted, &base.fit.fitted, "shifted age");
+        // Another centre is a unit-triangular change of basis: det S = 1.
+        let g = braid::fit_panel(&p, &spec(method, Some(13.5)), 11).unwrap();
+        assert!((g.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS, "{} vs {}", g.fit.loglik, base.fit.loglik);
+        assert_close(&g.fit.fitted, &base.fit.fitted, "moved centre");
+    }
+}
+
+#[test]
+fn rescaling_age_moves_only_the_reml_constant() {
+    let p = panel();
+    let mut months = p.clone();
+    months.age.iter_mut().for_each(|a| *a *= 12.0);
+    for method in [Method::Reml, Method::Ml] {
+        let years = braid::fit_panel(&p, &spec(method, Some(16.0)), 11).unwrap();
+        let m = braid::fit_panel(&months, &spec(method, Some(192.0)), 11).unwrap();
+        // Quadratic basis: S = diag(1, 12, 144), log|det S| = ln 1728.
+        let shift = match method {
+            Method::Reml => -(1728.0f64).ln(),
+            Method::Ml => 0.0,
+        };
+        assert!(
+            (m.fit.loglik - years.fit.loglik - shift).abs() < REFIT_LOGLIK_ABS,
+            "{}: {} vs {} + {shift}",
+            method.label(),
+            m.fit.loglik,
+            years.fit.loglik
+        );
+        assert_close(&m.fit.fitted, &years.fit.fitted, "months");
+        assert!(rel(m.fit.beta[1] * 12.0, years.fit.beta[1], 1.0) < REFIT_PARAM_REL);
+        assert!(rel(m.fit.sigma2, years.fit.sigma2, 1.0) < REFIT_PARAM_REL);
+    }
+}

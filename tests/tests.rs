@@ -1,0 +1,16 @@
+//! braid's integration tests: one binary, one module per concern.
+
+#[path = "suite/cli.rs"]
+mod cli; // what a user sees: the demo, fit outputs, and one-line errors on bad input
+#[path = "suite/closed_form.rs"]
+mod closed_form; // balanced one-way random effects: REML equals the ANOVA estimators
+#[path = "suite/common.rs"]
+mod common; // helpers shared by the modules
+#[path = "suite/invariance.rs"]
+mod invariance; // row order, id recoding, shifting and scaling age
+#[path = "suite/recovery.rs"]
+mod recovery; // seeded simulations recover the known truth
+#[path = "suite/reference.rs"]
+mod reference; // statsmodels MixedLM reference fits on published and simulated data
+#[path = "suite/tolerance.rs"]
+mod tolerance; // every tolerance, named, in one place
