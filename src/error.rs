@@ -95,10 +95,19 @@ impl fmt::Display for Error {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             Error::Io { path, message } => {
-                write!(f, "{}: cannot read the file ({message}); check the path and permissions", path.display())
+                write!(
+                    f,
+                    "{}: cannot read the file ({message}); check the path and permissions",
+                    path.display()
+                )
             }
             Error::Parse { path, message } => write!(f, "{}: {message}", path.display()),
-            Error::MissingColumn { path, role, column, available } => {
+            Error::MissingColumn {
+                path,
+                role,
+                column,
+                available,
+            } => {
                 let shown: Vec<&str> = available.iter().take(12).map(String::as_str).collect();
                 let more = if available.len() > 12 { ", ..." } else { "" };
                 write!(
@@ -108,7 +117,13 @@ impl fmt::Display for Error {
                     shown.join(", ")
                 )
             }
-            Error::BadValue { path, column, row, value, advice } => write!(
+            Error::BadValue {
+                path,
+                column,
+                row,
+                value,
+                advice,
+            } => write!(
                 f,
                 "{}: column '{column}', row {row}: value '{value}' {advice}",
                 path.display()

@@ -62,7 +62,13 @@ pub struct FitAnalysis {
 /// Errors of [`spec::build_frame`] and [`lmm::fit`].
 pub fn fit_panel(panel: &data::Panel, model: &spec::ModelSpec, grid: usize) -> Result<FitAnalysis> {
     let frame = spec::build_frame(panel, model)?;
-    let fit = lmm::fit(&frame.problem, lmm::FitOptions { method: model.method, ..Default::default() })?;
+    let fit = lmm::fit(
+        &frame.problem,
+        lmm::FitOptions {
+            method: model.method,
+            ..Default::default()
+        },
+    )?;
     let trajectory = infer::trajectory(&fit, &frame, grid);
     let report = report::FitReport::new(panel, &frame, &fit, trajectory);
     Ok(FitAnalysis { frame, fit, report })

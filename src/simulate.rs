@@ -31,7 +31,10 @@ impl Rng {
             x = (x ^ (x >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
             x ^ (x >> 31)
         };
-        Rng { s: [next(), next(), next(), next()], spare: None }
+        Rng {
+            s: [next(), next(), next(), next()],
+            spare: None,
+        }
     }
 
     /// The next 64 random bits.
@@ -224,7 +227,10 @@ pub fn simulate(design: &Design) -> Simulated {
             }
         }
     }
-    Simulated { design: design.clone(), rows }
+    Simulated {
+        design: design.clone(),
+        rows,
+    }
 }
 
 impl Simulated {
@@ -259,7 +265,11 @@ impl Simulated {
             outcome: self.rows.iter().map(|r| r.score).collect(),
             cohort: Some(Codes::new(&cohorts, true)),
             wave: Some(Codes::new(&waves, true)),
-            cluster: if with_school { Some(Codes::new(&schools, true)) } else { None },
+            cluster: if with_school {
+                Some(Codes::new(&schools, true))
+            } else {
+                None
+            },
             covariates: Vec::new(),
         }
     }

@@ -18,7 +18,7 @@ pub struct Cli {
 #[derive(Debug, Subcommand)]
 pub enum Command {
     /// Fit one age trajectory to a long-format file (one row per participant per wave).
-    Fit(FitArgs),
+    Fit(Box<FitArgs>),
     /// Simulate an invented cohort-sequential study, write it with a study file, and fit it.
     Demo(DemoArgs),
 }

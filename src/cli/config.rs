@@ -41,7 +41,10 @@ impl Study {
     /// # Errors
     /// [`Error::Io`] when unreadable, [`Error::Parse`] with the TOML message when malformed.
     pub fn read(path: &Path) -> Result<Study> {
-        let text = fs::read_to_string(path).map_err(|e| Error::Io { path: path.to_path_buf(), message: e.to_string() })?;
+        let text = fs::read_to_string(path).map_err(|e| Error::Io {
+            path: path.to_path_buf(),
+            message: e.to_string(),
+        })?;
         toml::from_str(&text).map_err(|e| Error::Parse {
             path: path.to_path_buf(),
             message: format!("not a valid study file: {}", e.to_string().replace('\n', " ").trim()),
@@ -79,7 +82,10 @@ fn parse_delimiter(s: &str) -> Result<u8> {
     match s {
         "\\t" | "tab" | "\t" => Ok(b'\t'),
         _ if s.len() == 1 && s.is_ascii() => Ok(s.as_bytes()[0]),
-        _ => Err(Error::Spec { parameter: "--delimiter".into(), message: format!("'{s}' is not a single character; use for example ';' or '\\t'") }),
+        _ => Err(Error::Spec {
+            parameter: "--delimiter".into(),
+            message: format!("'{s}' is not a single character; use for example ';' or '\\t'"),
+        }),
     }
 }
 
@@ -98,7 +104,12 @@ impl FitConfig {
     /// errors of [`Study::read`] for a bad study file.
     pub fn from_args(args: &FitArgs) -> Result<FitConfig> {
         let study = args.study.as_deref().map(Study::read).transpose()?;
-        let base_dir = args.study.as_deref().and_then(Path::parent).map(Path::to_path_buf).unwrap_or_default();
+        let base_dir = args
+            .study
+            .as_deref()
+            .and_then(Path::parent)
+            .map(Path::to_path_buf)
+            .unwrap_or_default();
         let data = match (&args.data, &study) {
             (Some(d), _) => d.clone(),
             (None, Some(s)) => {
@@ -109,12 +120,17 @@ impl FitConfig {
                 }
             }
             (None, None) => {
-                return Err(Error::Spec { parameter: "DATA".into(), message: "no data file: give DATA or --study FILE".into() });
+                return Err(Error::Spec {
+                    parameter: "DATA".into(),
+                    message: "no data file: give DATA or --study FILE".into(),
+                });
             }
         };
         let r = &args.roles;
         let s_roles = study.as_ref().map(|s| s.roles.clone());
-        let pick = |flag: &Option<String>, from: fn(&Roles) -> Option<String>| flag.clone().or_else(|| s_roles.as_ref().and_then(from));
+        let pick = |flag: &Option<String>, from: fn(&Roles) -> Option<String>| {
+            flag.clone().or_else(|| s_roles.as_ref().and_then(from))
+        };
         let roles = Roles {
             id: need(pick(&r.id, |x| Some(x.id.clone())), "--id")?,
             age: need(pick(&r.age, |x| Some(x.age.clone())), "--age")?,
@@ -122,8 +138,16 @@ impl FitConfig {
             cohort: pick(&r.cohort, |x| x.cohort.clone()),
             wave: pick(&r.wave, |x| x.wave.clone()),
             cluster: pick(&r.cluster, |x| x.cluster.clone()),
-            covariates: if r.covariates.is_empty() { s_roles.as_ref().map(|x| x.covariates.clone()).unwrap_or_default() } else { r.covariates.clone() },
-            categorical: if r.categorical.is_empty() { s_roles.as_ref().map(|x| x.categorical.clone()).unwrap_or_default() } else { r.categorical.clone() },
+            covariates: if r.covariates.is_empty() {
+                s_roles.as_ref().map(|x| x.covariates.clone()).unwrap_or_default()
+            } else {
+                r.covariates.clone()
+            },
+            categorical: if r.categorical.is_empty() {
+                s_roles.as_ref().map(|x| x.categorical.clone()).unwrap_or_default()
+            } else {
+                r.categorical.clone()
+            },
         };
         let delimiter = match (&r.delimiter, study.as_ref().and_then(|s| s.data.delimiter.clone())) {
             (Some(d), _) => parse_delimiter(d)?,
@@ -141,23 +165,40 @@ impl FitConfig {
             model.age = AgeSpec::Polynomial { degree: d };
         }
         if let Some(k) = args.knots {
-            model.age = AgeSpec::Spline { interior_knots: Some(k), knots: None };
+            model.age = AgeSpec::Spline {
+                interior_knots: Some(k),
+                knots: None,
+            };
         }
         if let Some(k) = &args.knot_ages {
-            model.age = AgeSpec::Spline { interior_knots: None, knots: Some(k.clone()) };
+            model.age = AgeSpec::Spline {
+                interior_knots: None,
+                knots: Some(k.clone()),
+            };
         }
         if let Some(c) = args.center {
             model.center = Some(c);
         }
         if args.no_slope {
-            let mut terms = vec![RandomSpec { factor: roles.id.clone(), intercept: true, slopes: vec![] }];
+            let mut terms = vec![RandomSpec {
+                factor: roles.id.clone(),
+                intercept: true,
+                slopes: vec![],
+            }];
             if let Some(c) = &roles.cluster {
-                terms.push(RandomSpec { factor: c.clone(), intercept: true, slopes: vec![] });
+                terms.push(RandomSpec {
+                    factor: c.clone(),
+                    intercept: true,
+                    slopes: vec![],
+                });
             }
             model.random = Some(terms);
         }
         if args.grid < 2 || args.grid > 100_000 {
-            return Err(Error::Spec { parameter: "--grid".into(), message: format!("{} grid ages; choose between 2 and 100000", args.grid) });
+            return Err(Error::Spec {
+                parameter: "--grid".into(),
+                message: format!("{} grid ages; choose between 2 and 100000", args.grid),
+            });
         }
         Ok(FitConfig {
             data,
@@ -188,7 +229,12 @@ mod tests {
              [model]\nmethod = \"ml\"\ncenter = 16.0\n[model.age]\nbasis = \"polynomial\"\ndegree = 3\n",
         )
         .unwrap();
-        let from_study = FitConfig::from_args(&FitArgs { study: Some(study), grid: 101, ..Default::default() }).unwrap();
+        let from_study = FitConfig::from_args(&FitArgs {
+            study: Some(study),
+            grid: 101,
+            ..Default::default()
+        })
+        .unwrap();
         let flags = FitArgs {
             data: Some(dir.join("panel.csv")),
             roles: super::super::args::RoleArgs {

@@ -114,15 +114,26 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
     let (header, rows) = sim.table();
     data::read::write_csv(&panel_path, &header, &rows)?;
     let study = Study {
-        data: DataSection { file: "panel.csv".into(), delimiter: None },
+        data: DataSection {
+            file: "panel.csv".into(),
+            delimiter: None,
+        },
         roles: simulate::Simulated::roles(true),
         model: ModelSpec {
             method: crate::lmm::Method::Reml,
             age: AgeSpec::Polynomial { degree: 2 },
             center: Some(design.truth.center),
             random: Some(vec![
-                RandomSpec { factor: "pupil".into(), intercept: true, slopes: vec!["age".into()] },
-                RandomSpec { factor: "school".into(), intercept: true, slopes: vec![] },
+                RandomSpec {
+                    factor: "pupil".into(),
+                    intercept: true,
+                    slopes: vec!["age".into()],
+                },
+                RandomSpec {
+                    factor: "school".into(),
+                    intercept: true,
+                    slopes: vec![],
+                },
             ]),
         },
     };
@@ -134,8 +145,16 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
         study_path.display(),
         study.to_toml()
     );
-    std::fs::write(&study_path, toml_text).map_err(|e| Error::Output { path: study_path.clone(), message: format!("cannot write ({e})") })?;
-    let config = FitConfig::from_args(&args::FitArgs { study: Some(study_path), grid: 101, quiet: a.quiet, ..Default::default() })?;
+    std::fs::write(&study_path, toml_text).map_err(|e| Error::Output {
+        path: study_path.clone(),
+        message: format!("cannot write ({e})"),
+    })?;
+    let config = FitConfig::from_args(&args::FitArgs {
+        study: Some(study_path),
+        grid: 101,
+        quiet: a.quiet,
+        ..Default::default()
+    })?;
     let panel = data::load(&config.data, &config.roles, config.read)?;
     let analysis = crate::fit_panel(&panel, &config.model, config.grid)?;
     if !a.quiet {

@@ -53,7 +53,11 @@ impl Roles {
             ("--age".to_string(), self.age.clone()),
             ("--outcome".to_string(), self.outcome.clone()),
         ];
-        for (role, c) in [("--cohort", &self.cohort), ("--wave", &self.wave), ("--cluster", &self.cluster)] {
+        for (role, c) in [
+            ("--cohort", &self.cohort),
+            ("--wave", &self.wave),
+            ("--cluster", &self.cluster),
+        ] {
             if let Some(c) = c {
                 v.push((role.to_string(), c.clone()));
             }
@@ -220,14 +224,20 @@ fn number_at(path: &Path, column: &str, col: &RawColumn, r: usize) -> Result<Opt
         RawColumn::Number(v) => match v[r] {
             None => Ok(None),
             Some(x) if x.is_finite() => Ok(Some(x)),
-            Some(x) => Err(bad(x.to_string(), "is not a finite number; store missing values as nulls")),
+            Some(x) => Err(bad(
+                x.to_string(),
+                "is not a finite number; store missing values as nulls",
+            )),
         },
         RawColumn::Text(v) => match v[r].as_deref().map(str::trim) {
             None => Ok(None),
             Some(s) if is_missing(s) => Ok(None),
             Some(s) => match s.parse::<f64>() {
                 Ok(x) if x.is_finite() => Ok(Some(x)),
-                Ok(_) => Err(bad(s.to_string(), "is not a finite number; write a missing value as an empty cell or NA")),
+                Ok(_) => Err(bad(
+                    s.to_string(),
+                    "is not a finite number; write a missing value as an empty cell or NA",
+                )),
                 Err(_) => Err(bad(
                     s.to_string(),
                     "is not a number; fix the cell, write a missing value as an empty cell or NA, or check the decimal separator",
@@ -240,8 +250,18 @@ fn number_at(path: &Path, column: &str, col: &RawColumn, r: usize) -> Result<Opt
 /// A label cell: `None` when missing.
 fn label_at(col: &RawColumn, r: usize) -> Option<String> {
     match col {
-        RawColumn::Text(v) => v[r].as_deref().map(str::trim).filter(|s| !is_missing(s)).map(str::to_string),
-        RawColumn::Number(v) => v[r].map(|x| if x.fract() == 0.0 && x.abs() < 1e15 { format!("{}", x as i64) } else { x.to_string() }),
+        RawColumn::Text(v) => v[r]
+            .as_deref()
+            .map(str::trim)
+            .filter(|s| !is_missing(s))
+            .map(str::to_string),
+        RawColumn::Number(v) => v[r].map(|x| {
+            if x.fract() == 0.0 && x.abs() < 1e15 {
+                format!("{}", x as i64)
+            } else {
+                x.to_string()
+            }
+        }),
     }
 }
 
@@ -255,10 +275,16 @@ fn label_at(col: &RawColumn, r: usize) -> Option<String> {
 /// participant–wave rows, and a constant covariate.
 pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
     if !path.exists() {
-        return Err(Error::Io { path: path.to_path_buf(), message: "no such file".into() });
+        return Err(Error::Io {
+            path: path.to_path_buf(),
+            message: "no such file".into(),
+        });
     }
     if path.is_dir() {
-        return Err(Error::Io { path: path.to_path_buf(), message: "this is a folder, not a file".into() });
+        return Err(Error::Io {
+            path: path.to_path_buf(),
+            message: "this is a folder, not a file".into(),
+        });
     }
     validate_roles(roles)?;
     let header = read::header(path, options.delimiter)?;
@@ -281,7 +307,12 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
                     }
                 }
             }
-            return Err(Error::MissingColumn { path: path.to_path_buf(), role, column, available });
+            return Err(Error::MissingColumn {
+                path: path.to_path_buf(),
+                role,
+                column,
+                available,
+            });
         }
     }
     let mut wanted: Vec<String> = roles.all().into_iter().map(|(_, c)| c).collect();
@@ -301,7 +332,10 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
 fn validate_roles(roles: &Roles) -> Result<()> {
     for (role, c) in roles.all() {
         if c.trim().is_empty() {
-            return Err(Error::Spec { parameter: role, message: "the column name is empty; name a column of the file".into() });
+            return Err(Error::Spec {
+                parameter: role,
+                message: "the column name is empty; name a column of the file".into(),
+            });
         }
     }
     let all = roles.all();
@@ -342,7 +376,12 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             !roles.categorical.contains(c)
                 && match col(c) {
                     RawColumn::Number(_) => true,
-                    RawColumn::Text(v) => v.iter().flatten().map(|s| s.trim()).filter(|s| !is_missing(s)).all(|s| s.parse::<f64>().is_ok()),
+                    RawColumn::Text(v) => v
+                        .iter()
+                        .flatten()
+                        .map(|s| s.trim())
+                        .filter(|s| !is_missing(s))
+                        .all(|s| s.parse::<f64>().is_ok()),
                 }
         })
         .collect();
@@ -361,7 +400,11 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             continue;
         };
         for (k, c) in roles.covariates.iter().enumerate() {
-            let missing = if cov_numeric[k] { number_at(path, c, col(c), r)?.is_none() } else { label_at(col(c), r).is_none() };
+            let missing = if cov_numeric[k] {
+                number_at(path, c, col(c), r)?.is_none()
+            } else {
+                label_at(col(c), r).is_none()
+            };
             if missing {
                 dropped.missing_covariate += 1;
                 continue 'rows;
@@ -398,9 +441,21 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             .collect()
     };
     let id = Codes::new(&labels(&roles.id, true)?, false);
-    let cohort = roles.cohort.as_deref().map(|c| labels(c, true).map(|l| Codes::new(&l, true))).transpose()?;
-    let wave = roles.wave.as_deref().map(|c| labels(c, true).map(|l| Codes::new(&l, true))).transpose()?;
-    let cluster = roles.cluster.as_deref().map(|c| labels(c, true).map(|l| Codes::new(&l, true))).transpose()?;
+    let cohort = roles
+        .cohort
+        .as_deref()
+        .map(|c| labels(c, true).map(|l| Codes::new(&l, true)))
+        .transpose()?;
+    let wave = roles
+        .wave
+        .as_deref()
+        .map(|c| labels(c, true).map(|l| Codes::new(&l, true)))
+        .transpose()?;
+    let cluster = roles
+        .cluster
+        .as_deref()
+        .map(|c| labels(c, true).map(|l| Codes::new(&l, true)))
+        .transpose()?;
     let mut covariates = Vec::with_capacity(roles.covariates.len());
     for (k, c) in roles.covariates.iter().enumerate() {
         let values = if cov_numeric[k] {
@@ -412,7 +467,9 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             if v.iter().all(|&x| x == first) {
                 return Err(Error::Data {
                     path: path.to_path_buf(),
-                    message: format!("covariate '{c}' takes the single value {first} in every usable row; drop it from the model"),
+                    message: format!(
+                        "covariate '{c}' takes the single value {first} in every usable row; drop it from the model"
+                    ),
                 });
             }
             CovariateValues::Numeric(v)
@@ -429,7 +486,10 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             }
             CovariateValues::Categorical(codes)
         };
-        covariates.push(Covariate { name: c.clone(), values });
+        covariates.push(Covariate {
+            name: c.clone(),
+            values,
+        });
     }
     let row: Vec<usize> = keep_rows.iter().map(|r| r + 1).collect();
     if id.n_levels() < 2 {
@@ -441,11 +501,16 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             ),
         });
     }
-    let (amin, amax) = age.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| (lo.min(a), hi.max(a)));
+    let (amin, amax) = age.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| {
+        (lo.min(a), hi.max(a))
+    });
     if amax - amin <= 0.0 {
         return Err(Error::Data {
             path: path.to_path_buf(),
-            message: format!("column '{}' has the same age {amin} in every usable row; an age trajectory needs ages that differ", roles.age),
+            message: format!(
+                "column '{}' has the same age {amin} in every usable row; an age trajectory needs ages that differ",
+                roles.age
+            ),
         });
     }
     if let Some(w) = &wave {

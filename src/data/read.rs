@@ -59,7 +59,12 @@ pub enum Format {
 
 /// The format implied by a file's extension (CSV unless it ends in `.parquet` or `.pq`).
 pub fn format_of(path: &Path) -> Format {
-    match path.extension().and_then(|e| e.to_str()).map(str::to_ascii_lowercase).as_deref() {
+    match path
+        .extension()
+        .and_then(|e| e.to_str())
+        .map(str::to_ascii_lowercase)
+        .as_deref()
+    {
         Some("parquet") | Some("pq") => Format::Parquet,
         _ => Format::Csv,
     }
@@ -71,7 +76,10 @@ pub fn format_of(path: &Path) -> Format {
 /// [`Error::Io`] when the file cannot be opened, [`Error::Parse`] when it is
 /// empty or not a readable table.
 pub fn header(path: &Path, delimiter: u8) -> Result<Vec<String>> {
-    let io = |e: std::io::Error| Error::Io { path: path.to_path_buf(), message: e.to_string() };
+    let io = |e: std::io::Error| Error::Io {
+        path: path.to_path_buf(),
+        message: e.to_string(),
+    };
     match format_of(path) {
         Format::Csv => {
             let file = File::open(path).map_err(io)?;
@@ -87,7 +95,10 @@ pub fn header(path: &Path, delimiter: u8) -> Result<Vec<String>> {
                     message: "the file is empty; expected a header line naming the columns".into(),
                 });
             }
-            Ok(line.split(delimiter as char).map(|s| s.trim().trim_matches('"').to_string()).collect())
+            Ok(line
+                .split(delimiter as char)
+                .map(|s| s.trim().trim_matches('"').to_string())
+                .collect())
         }
         Format::Parquet => {
             let file = File::open(path).map_err(io)?;
@@ -108,7 +119,9 @@ pub fn header(path: &Path, delimiter: u8) -> Result<Vec<String>> {
 pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawTable> {
     let parse = |e: PolarsError| Error::Parse {
         path: path.to_path_buf(),
-        message: format!("cannot be read as a table ({e}); check the delimiter, quoting and that every row has the same number of fields"),
+        message: format!(
+            "cannot be read as a table ({e}); check the delimiter, quoting and that every row has the same number of fields"
+        ),
     };
     let df = match format_of(path) {
         Format::Csv => {
@@ -124,8 +137,14 @@ pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawT
                 .map_err(parse)?
         }
         Format::Parquet => {
-            let file = File::open(path).map_err(|e| Error::Io { path: path.to_path_buf(), message: e.to_string() })?;
-            ParquetReader::new(file).with_columns(Some(names.to_vec())).finish().map_err(parse)?
+            let file = File::open(path).map_err(|e| Error::Io {
+                path: path.to_path_buf(),
+                message: e.to_string(),
+            })?;
+            ParquetReader::new(file)
+                .with_columns(Some(names.to_vec()))
+                .finish()
+                .map_err(parse)?
         }
     };
     let n_rows = df.height();
@@ -150,7 +169,11 @@ pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawT
         };
         columns.insert(name.clone(), raw);
     }
-    Ok(RawTable { path: path.to_path_buf(), n_rows, columns })
+    Ok(RawTable {
+        path: path.to_path_buf(),
+        n_rows,
+        columns,
+    })
 }
 
 /// Write a table of named numeric or text columns to CSV (used by the demo).
@@ -159,7 +182,10 @@ pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawT
 /// [`Error::Output`] when the file cannot be written.
 pub fn write_csv(path: &Path, header: &[&str], rows: &[Vec<String>]) -> Result<()> {
     use std::io::Write;
-    let out = |e: std::io::Error| Error::Output { path: path.to_path_buf(), message: format!("cannot write ({e})") };
+    let out = |e: std::io::Error| Error::Output {
+        path: path.to_path_buf(),
+        message: format!("cannot write ({e})"),
+    };
     let mut w = std::io::BufWriter::new(File::create(path).map_err(out)?);
     writeln!(w, "{}", header.join(",")).map_err(out)?;
     for r in rows {

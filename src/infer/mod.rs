@@ -12,7 +12,7 @@ pub mod trajectory;
 use serde::Serialize;
 use statrs::distribution::{ContinuousCDF, Normal, StudentsT};
 
-pub use trajectory::{trajectory, Extremum, Trajectory, TrajectoryPoint};
+pub use trajectory::{Extremum, Trajectory, TrajectoryPoint, trajectory};
 
 use crate::lmm::Fit;
 
@@ -70,7 +70,9 @@ const NORMAL_DF: f64 = 1e7;
 /// Quantile of t(df) (normal for very large or undefined df).
 pub fn t_quantile(prob: f64, df: f64) -> f64 {
     if df.is_finite() && df > 0.0 && df < NORMAL_DF {
-        StudentsT::new(0.0, 1.0, df).map(|t| t.inverse_cdf(prob)).unwrap_or(f64::NAN)
+        StudentsT::new(0.0, 1.0, df)
+            .map(|t| t.inverse_cdf(prob))
+            .unwrap_or(f64::NAN)
     } else {
         Normal::standard().inverse_cdf(prob)
     }
@@ -112,8 +114,16 @@ pub fn contrast(fit: &Fit, c: &[f64]) -> Contrast {
         }
     }
     let df = 2.0 * v * v / gag;
-    let df = if df.is_finite() && df > 0.0 { df } else { (fit.n_obs - p) as f64 };
-    Contrast { estimate, se: v.max(0.0).sqrt(), df }
+    let df = if df.is_finite() && df > 0.0 {
+        df
+    } else {
+        (fit.n_obs - p) as f64
+    };
+    Contrast {
+        estimate,
+        se: v.max(0.0).sqrt(),
+        df,
+    }
 }
 
 /// The coefficient table: one row per fixed effect.

@@ -8,7 +8,7 @@
 
 use serde::Serialize;
 
-use super::{contrast, t_quantile, LEVEL};
+use super::{LEVEL, contrast, t_quantile};
 use crate::lmm::Fit;
 use crate::spec::ModelFrame;
 
@@ -72,7 +72,15 @@ pub fn trajectory(fit: &Fit, frame: &ModelFrame, n_grid: usize) -> Trajectory {
             let r = contrast(fit, &frame.rate_row(age));
             let (lower, upper) = m.interval();
             let (rate_lower, rate_upper) = r.interval();
-            TrajectoryPoint { age, mean: m.estimate, lower, upper, rate: r.estimate, rate_lower, rate_upper }
+            TrajectoryPoint {
+                age,
+                mean: m.estimate,
+                lower,
+                upper,
+                rate: r.estimate,
+                rate_lower,
+                rate_upper,
+            }
         })
         .collect();
     let extrema = extrema(fit, frame, &points);

@@ -110,7 +110,12 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
     for (s, &kt) in cp.secondary.iter().enumerate() {
         let qs = cp.term_q[kt];
         let ts = &t[kt];
-        let n_levels = (if s + 1 < cp.secondary.len() { cp.secondary_offset[s + 1] } else { q2 } - cp.secondary_offset[s]) / qs;
+        let n_levels = (if s + 1 < cp.secondary.len() {
+            cp.secondary_offset[s + 1]
+        } else {
+            q2
+        } - cp.secondary_offset[s])
+            / qs;
         let mut tmp = vec![0.0; qs];
         for lvl in 0..n_levels {
             let base = cp.secondary_offset[s] + lvl * qs;
@@ -301,7 +306,11 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
     }
     let r = dense_l[(m - 1, m - 1)];
     Ok(Factor {
-        pieces: Pieces { logdet_z, logdet_x, pwrss: r * r },
+        pieces: Pieces {
+            logdet_z,
+            logdet_x,
+            pwrss: r * r,
+        },
         dense_l,
         blocks_l,
         blocks_w,

@@ -127,7 +127,11 @@ impl CrossProducts {
                         link_ranges.push((level_start_link, links.len()));
                     }
                     // Levels with no rows get an empty range.
-                    let first_new = if current_level == usize::MAX { 0 } else { current_level + 1 };
+                    let first_new = if current_level == usize::MAX {
+                        0
+                    } else {
+                        current_level + 1
+                    };
                     for _ in first_new..level {
                         link_ranges.push((links.len(), links.len()));
                     }
@@ -169,7 +173,11 @@ impl CrossProducts {
                         None => {
                             let start = link_values.len();
                             link_values.resize(start + q1 * qs, 0.0);
-                            links.push(Link { secondary: s, offset, start });
+                            links.push(Link {
+                                secondary: s,
+                                offset,
+                                start,
+                            });
                             start
                         }
                     };

@@ -9,7 +9,7 @@
 use faer::Mat;
 use serde::Serialize;
 
-use super::criterion::{self, Factor, Pieces};
+use super::criterion::{self, Factor};
 use super::crossprod::CrossProducts;
 use super::optimize::{self, OptimOptions};
 use super::{Method, MixedProblem};
@@ -200,11 +200,15 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
                 problem.x_names[pivot - q2]
             )
         } else if pivot == cp.m - 1 {
-            "the outcome is fitted exactly by the fixed effects; check that the outcome is not a copy of a covariate".to_string()
+            "the outcome is fitted exactly by the fixed effects; check that the outcome is not a copy of a covariate"
+                .to_string()
         } else {
             format!("the design is singular at dense pivot {pivot}")
         };
-        return Err(Error::Numerical { step: "fixed-effect design".into(), message });
+        return Err(Error::Numerical {
+            step: "fixed-effect design".into(),
+            message,
+        });
     }
 
     // Choose the best of three scalings of the scale-aware start.
@@ -232,8 +236,13 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     let at_bound = |x: &[f64]| x.iter().zip(&lower).any(|(&v, &l)| v <= l);
     if at_bound(&result.x) {
         // Restart from the interior: boundary parameters back to their base start.
-        let restart: Vec<f64> =
-            result.x.iter().zip(&lower).zip(&base).map(|((&v, &l), &b)| if v <= l { b } else { v }).collect();
+        let restart: Vec<f64> = result
+            .x
+            .iter()
+            .zip(&lower)
+            .zip(&base)
+            .map(|((&v, &l), &b)| if v <= l { b } else { v })
+            .collect();
         let second = optimize::minimize(dev, &restart, &lower, options.optim);
         iterations += second.iterations;
         evaluations += second.evaluations;
@@ -335,7 +344,11 @@ fn solve_pls(cp: &CrossProducts, f: &Factor) -> (Vec<f64>, Vec<Vec<f64>>) {
     let beta = x[q2..q2 + cp.p].to_vec();
     let mut u = vec![Vec::new(); cp.term_q.len()];
     for (s, &kt) in cp.secondary.iter().enumerate() {
-        let end = if s + 1 < cp.secondary.len() { cp.secondary_offset[s + 1] } else { q2 };
+        let end = if s + 1 < cp.secondary.len() {
+            cp.secondary_offset[s + 1]
+        } else {
+            q2
+        };
         u[kt] = x[cp.secondary_offset[s]..end].to_vec();
     }
     if let Some(k1) = cp.primary {
@@ -452,17 +465,36 @@ fn components(problem: &MixedProblem, cp: &CrossProducts, theta: &[f64], sigma2:
             let q = term.q();
             let tk = &t[k];
             let cov: Vec<Vec<f64>> = (0..q)
-                .map(|i| (0..q).map(|j| sigma2 * (0..q).map(|c| tk[i * q + c] * tk[j * q + c]).sum::<f64>()).collect())
+                .map(|i| {
+                    (0..q)
+                        .map(|j| sigma2 * (0..q).map(|c| tk[i * q + c] * tk[j * q + c]).sum::<f64>())
+                        .collect()
+                })
                 .collect();
             let sd: Vec<f64> = (0..q).map(|i| cov[i][i].max(0.0).sqrt()).collect();
             let correlation = (0..q)
                 .map(|i| {
                     (0..q)
-                        .map(|j| if i == j { 1.0 } else if sd[i] > 0.0 && sd[j] > 0.0 { cov[i][j] / (sd[i] * sd[j]) } else { f64::NAN })
+                        .map(|j| {
+                            if i == j {
+                                1.0
+                            } else if sd[i] > 0.0 && sd[j] > 0.0 {
+                                cov[i][j] / (sd[i] * sd[j])
+                            } else {
+                                f64::NAN
+                            }
+                        })
                         .collect()
                 })
                 .collect();
-            RandomComponent { factor: term.factor.clone(), terms: term.columns.clone(), n_levels: term.n_levels(), covariance: cov, sd, correlation }
+            RandomComponent {
+                factor: term.factor.clone(),
+                terms: term.columns.clone(),
+                n_levels: term.n_levels(),
+                covariance: cov,
+                sd,
+                correlation,
+            }
         })
         .collect()
 }
@@ -481,7 +513,13 @@ const HESSIAN_STEP: f64 = 2e-3;
 /// inverse (×2) and the derivatives of cov(β̂) for Satterthwaite df.
 /// Returns the sensitivity with the number of evaluations, and the smallest
 /// eigenvalue of the θ_free block.
-fn sensitivity(cp: &CrossProducts, theta: &[f64], free: &[usize], method: Method, sigma2: f64) -> ((VarianceSensitivity, usize), Option<f64>) {
+fn sensitivity(
+    cp: &CrossProducts,
+    theta: &[f64],
+    free: &[usize],
+    method: Method,
+    sigma2: f64,
+) -> ((VarianceSensitivity, usize), Option<f64>) {
     let n = cp.n;
     let p = cp.p;
     let k = free.len() + 1;
@@ -549,8 +587,13 @@ fn sensitivity(cp: &CrossProducts, theta: &[f64], free: &[usize], method: Method
             })
             .collect()
     };
-    let richardson = |coarse: &[f64], fine: &[f64]| -> Vec<f64> { coarse.iter().zip(fine).map(|(c, f)| (4.0 * f - c) / 3.0).collect() };
-    let hess = richardson(&hessian_with(HESSIAN_STEP, &mut evals), &hessian_with(HESSIAN_STEP / 2.0, &mut evals));
+    let richardson = |coarse: &[f64], fine: &[f64]| -> Vec<f64> {
+        coarse.iter().zip(fine).map(|(c, f)| (4.0 * f - c) / 3.0).collect()
+    };
+    let hess = richardson(
+        &hessian_with(HESSIAN_STEP, &mut evals),
+        &hessian_with(HESSIAN_STEP / 2.0, &mut evals),
+    );
     let coarse = dcov_with(HESSIAN_STEP, &mut evals);
     let fine = dcov_with(HESSIAN_STEP / 2.0, &mut evals);
     let mut dcov: Vec<Vec<f64>> = coarse.iter().zip(&fine).map(|(c, f)| richardson(c, f)).collect();
@@ -560,7 +603,9 @@ fn sensitivity(cp: &CrossProducts, theta: &[f64], free: &[usize], method: Method
     let hm = Mat::from_fn(k, k, |i, j| hess[i * k + j]);
     let min_curvature = if k > 1 {
         let sub = Mat::from_fn(k - 1, k - 1, |i, j| hess[i * k + j]);
-        sub.self_adjoint_eigenvalues(faer::Side::Lower).ok().and_then(|e| e.into_iter().reduce(f64::min))
+        sub.self_adjoint_eigenvalues(faer::Side::Lower)
+            .ok()
+            .and_then(|e| e.into_iter().reduce(f64::min))
     } else {
         None
     };

@@ -22,7 +22,7 @@ pub mod crossprod;
 pub mod fit;
 pub mod optimize;
 
-pub use fit::{fit, Fit, FitInfo, FitOptions, RandomComponent};
+pub use fit::{Fit, FitInfo, FitOptions, RandomComponent, fit};
 
 use serde::{Deserialize, Serialize};
 

@@ -21,7 +21,11 @@ pub struct OptimOptions {
 
 impl Default for OptimOptions {
     fn default() -> Self {
-        OptimOptions { gradient_tolerance: 1e-6, value_tolerance: 1e-13, max_iterations: 500 }
+        OptimOptions {
+            gradient_tolerance: 1e-6,
+            value_tolerance: 1e-13,
+            max_iterations: 500,
+        }
     }
 }
 
@@ -90,7 +94,14 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
     let mut fx = f(&x);
     evals += 1;
     if d == 0 {
-        return OptimResult { x, value: fx, iterations: 0, evaluations: evals, gradient_norm: 0.0, converged: true };
+        return OptimResult {
+            x,
+            value: fx,
+            iterations: 0,
+            evaluations: evals,
+            gradient_norm: 0.0,
+            converged: true,
+        };
     }
     let mut g = gradient(&mut f, &x, fx, lower, &mut evals);
     let mut h = identity(d);
@@ -121,7 +132,7 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
             dir[i] = acc;
         }
         let mut slope: f64 = dir.iter().zip(&g).map(|(a, b)| a * b).sum();
-        if !(slope < 0.0) {
+        if slope.is_nan() || slope >= 0.0 {
             h = identity(d);
             h_scaled = false;
             for i in 0..d {
@@ -191,7 +202,14 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
         }
     }
     let gradient_norm = projected_norm(&x, &g, lower);
-    OptimResult { x, value: fx, iterations, evaluations: evals, gradient_norm, converged }
+    OptimResult {
+        x,
+        value: fx,
+        iterations,
+        evaluations: evals,
+        gradient_norm,
+        converged,
+    }
 }
 
 fn identity(d: usize) -> Vec<f64> {
@@ -241,13 +259,24 @@ mod tests {
 
 /// The Hessian over the coordinates `free` by central differences, with the
 /// stencil kept inside the bounds. Row-major `free.len()²`.
-pub fn hessian(f: &mut impl FnMut(&[f64]) -> f64, x: &[f64], fx: f64, lower: &[f64], free: &[usize], evals: &mut usize) -> Vec<f64> {
+pub fn hessian(
+    f: &mut impl FnMut(&[f64]) -> f64,
+    x: &[f64],
+    fx: f64,
+    lower: &[f64],
+    free: &[usize],
+    evals: &mut usize,
+) -> Vec<f64> {
     let k = free.len();
     let h: Vec<f64> = free
         .iter()
         .map(|&i| {
             let base = 1e-4 * x[i].abs().max(1e-2);
-            if lower[i].is_finite() { base.min(0.5 * (x[i] - lower[i])).max(1e-12) } else { base }
+            if lower[i].is_finite() {
+                base.min(0.5 * (x[i] - lower[i])).max(1e-12)
+            } else {
+                base
+            }
         })
         .collect();
     let mut out = vec![0.0; k * k];
@@ -289,7 +318,7 @@ fn newton_direction(h: &[f64], g: &[f64]) -> Option<Vec<f64>> {
         for s in 0..j {
             d -= l[j * k + s] * l[j * k + s];
         }
-        if !(d > 0.0) {
+        if d.is_nan() || d <= 0.0 {
             return None;
         }
         let d = d.sqrt();
@@ -387,5 +416,11 @@ pub fn newton_polish(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lowe
         g = gradient(&mut f, &x, fx, lower, &mut evals);
     }
     let gradient_norm = projected_norm(&x, &g, lower);
-    Polished { x, value: fx, decrement, gradient_norm, evaluations: evals }
+    Polished {
+        x,
+        value: fx,
+        decrement,
+        gradient_norm,
+        evaluations: evals,
+    }
 }

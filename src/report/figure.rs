@@ -45,7 +45,11 @@ const PALETTE: [RGBColor; 8] = [
 /// Size of the figures in pixels.
 pub const SIZE: (u32, u32) = (1000, 640);
 
-fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, report: &FitReport, lines: &[Line]) -> std::result::Result<(), String> {
+fn draw<DB: DrawingBackend>(
+    root: DrawingArea<DB, Shift>,
+    report: &FitReport,
+    lines: &[Line],
+) -> std::result::Result<(), String> {
     let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
     root.fill(&GROUND).map_err(e)?;
     let t = &report.trajectory;
@@ -69,7 +73,12 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, report: &FitReport, li
         }
     }
     let pad_y = 0.06 * (hi - lo).max(1e-9);
-    let title = format!("{} by {}: one trajectory stitched from {} cohort segments", report.data.outcome, report.data.age, cohort_count(report));
+    let title = format!(
+        "{} by {}: one trajectory stitched from {} cohort segments",
+        report.data.outcome,
+        report.data.age,
+        cohort_count(report)
+    );
     let mut chart = ChartBuilder::on(&root)
         .caption(title, ("sans-serif", 22).into_font().color(&INK))
         .margin(24)
@@ -89,7 +98,12 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, report: &FitReport, li
         .draw()
         .map_err(e)?;
     for l in lines {
-        chart.draw_series(LineSeries::new(l.iter().copied(), RGBColor(170, 170, 170).mix(0.5).stroke_width(1))).map_err(e)?;
+        chart
+            .draw_series(LineSeries::new(
+                l.iter().copied(),
+                RGBColor(170, 170, 170).mix(0.5).stroke_width(1),
+            ))
+            .map_err(e)?;
     }
     let mut band: Vec<(f64, f64)> = t.points.iter().map(|p| (p.age, p.upper)).collect();
     band.extend(t.points.iter().rev().map(|p| (p.age, p.lower)));
@@ -99,7 +113,10 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, report: &FitReport, li
         .label("95% band of the mean")
         .legend(|(x, y)| Rectangle::new([(x, y - 6), (x + 22, y + 6)], CURVE.mix(0.18).filled()));
     chart
-        .draw_series(LineSeries::new(t.points.iter().map(|p| (p.age, p.mean)), CURVE.stroke_width(3)))
+        .draw_series(LineSeries::new(
+            t.points.iter().map(|p| (p.age, p.mean)),
+            CURVE.stroke_width(3),
+        ))
         .map_err(e)?
         .label("stitched mean trajectory")
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 22, y)], CURVE.stroke_width(3)));
@@ -114,13 +131,27 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, report: &FitReport, li
         let cells: Vec<_> = report.cells.iter().filter(|c| c.cohort == *name).collect();
         chart
             .draw_series(cells.iter().filter(|c| c.se.is_finite()).map(|c| {
-                ErrorBar::new_vertical(c.age, c.mean - 1.96 * c.se, c.mean, c.mean + 1.96 * c.se, color.stroke_width(2), 8)
+                ErrorBar::new_vertical(
+                    c.age,
+                    c.mean - 1.96 * c.se,
+                    c.mean,
+                    c.mean + 1.96 * c.se,
+                    color.stroke_width(2),
+                    8,
+                )
             }))
             .map_err(e)?;
         chart
-            .draw_series(LineSeries::new(cells.iter().map(|c| (c.age, c.mean)), color.mix(0.6).stroke_width(1)))
+            .draw_series(LineSeries::new(
+                cells.iter().map(|c| (c.age, c.mean)),
+                color.mix(0.6).stroke_width(1),
+            ))
             .map_err(e)?;
-        let label = if name.parse::<f64>().is_ok() { format!("cohort {name}: wave means ±1.96 SE") } else { format!("{name}: wave means ±1.96 SE") };
+        let label = if name.parse::<f64>().is_ok() {
+            format!("cohort {name}: wave means ±1.96 SE")
+        } else {
+            format!("{name}: wave means ±1.96 SE")
+        };
         chart
             .draw_series(cells.iter().map(|c| Circle::new((c.age, c.mean), 5, color.filled())))
             .map_err(e)?
@@ -156,7 +187,10 @@ fn cohort_count(report: &FitReport) -> usize {
 pub fn trajectory_png(path: &Path, report: &FitReport, lines: &[Line]) -> Result<()> {
     register_font();
     let root = BitMapBackend::new(path, SIZE).into_drawing_area();
-    draw(root, report, lines).map_err(|m| Error::Output { path: path.to_path_buf(), message: format!("cannot draw the figure ({m})") })
+    draw(root, report, lines).map_err(|m| Error::Output {
+        path: path.to_path_buf(),
+        message: format!("cannot draw the figure ({m})"),
+    })
 }
 
 /// Draw the trajectory figure as SVG.
@@ -166,5 +200,8 @@ pub fn trajectory_png(path: &Path, report: &FitReport, lines: &[Line]) -> Result
 pub fn trajectory_svg(path: &Path, report: &FitReport, lines: &[Line]) -> Result<()> {
     register_font();
     let root = SVGBackend::new(path, SIZE).into_drawing_area();
-    draw(root, report, lines).map_err(|m| Error::Output { path: path.to_path_buf(), message: format!("cannot draw the figure ({m})") })
+    draw(root, report, lines).map_err(|m| Error::Output {
+        path: path.to_path_buf(),
+        message: format!("cannot draw the figure ({m})"),
+    })
 }

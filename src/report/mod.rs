@@ -170,7 +170,9 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
                 let k = panel.id.codes[r] as usize;
                 first[k] = first[k].min(panel.age[r]);
             }
-            (0..n).map(|r| format!("entry age {}", first[panel.id.codes[r] as usize].floor())).collect()
+            (0..n)
+                .map(|r| format!("entry age {}", first[panel.id.codes[r] as usize].floor()))
+                .collect()
         }
     };
     let wave_of: Vec<String> = match &panel.wave {
@@ -179,7 +181,9 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     };
     let mut groups: BTreeMap<(String, String), (usize, f64, f64, f64)> = BTreeMap::new();
     for r in 0..n {
-        let e = groups.entry((cohort_of[r].clone(), wave_of[r].clone())).or_insert((0, 0.0, 0.0, 0.0));
+        let e = groups
+            .entry((cohort_of[r].clone(), wave_of[r].clone()))
+            .or_insert((0, 0.0, 0.0, 0.0));
         e.0 += 1;
         e.1 += panel.age[r];
         e.2 += panel.outcome[r];
@@ -190,13 +194,33 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
         .map(|((cohort, wave), (k, sa, sy, syy))| {
             let kf = k as f64;
             let mean = sy / kf;
-            let var = if k > 1 { ((syy - kf * mean * mean) / (kf - 1.0)).max(0.0) } else { f64::NAN };
-            CellMean { cohort, wave, n: k, age: sa / kf, mean, se: (var / kf).sqrt() }
+            let var = if k > 1 {
+                ((syy - kf * mean * mean) / (kf - 1.0)).max(0.0)
+            } else {
+                f64::NAN
+            };
+            CellMean {
+                cohort,
+                wave,
+                n: k,
+                age: sa / kf,
+                mean,
+                se: (var / kf).sqrt(),
+            }
         })
         .collect();
     // Order cohorts and waves numerically where their labels are numbers.
-    let key = |s: &str| s.trim_start_matches(|c: char| !c.is_ascii_digit() && c != '-').parse::<f64>().unwrap_or(f64::INFINITY);
-    cells.sort_by(|a, b| key(&a.cohort).total_cmp(&key(&b.cohort)).then(a.cohort.cmp(&b.cohort)).then(a.age.total_cmp(&b.age)));
+    let key = |s: &str| {
+        s.trim_start_matches(|c: char| !c.is_ascii_digit() && c != '-')
+            .parse::<f64>()
+            .unwrap_or(f64::INFINITY)
+    };
+    cells.sort_by(|a, b| {
+        key(&a.cohort)
+            .total_cmp(&key(&b.cohort))
+            .then(a.cohort.cmp(&b.cohort))
+            .then(a.age.total_cmp(&b.age))
+    });
     cells
 }
 
@@ -206,9 +230,15 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
 /// [`Error::Output`] when the folder cannot be created.
 pub fn ensure_dir(dir: &Path) -> Result<()> {
     if dir.exists() && !dir.is_dir() {
-        return Err(Error::Output { path: dir.to_path_buf(), message: "exists and is not a folder; name a folder for --out".into() });
+        return Err(Error::Output {
+            path: dir.to_path_buf(),
+            message: "exists and is not a folder; name a folder for --out".into(),
+        });
     }
-    fs::create_dir_all(dir).map_err(|e| Error::Output { path: dir.to_path_buf(), message: format!("cannot create the folder ({e})") })
+    fs::create_dir_all(dir).map_err(|e| Error::Output {
+        path: dir.to_path_buf(),
+        message: format!("cannot create the folder ({e})"),
+    })
 }
 
 /// Write a serializable value as pretty JSON.
@@ -216,8 +246,14 @@ pub fn ensure_dir(dir: &Path) -> Result<()> {
 /// # Errors
 /// [`Error::Output`] when the file cannot be written.
 pub fn write_json<T: Serialize>(path: &Path, value: &T) -> Result<()> {
-    let text = serde_json::to_string_pretty(value).map_err(|e| Error::Output { path: path.to_path_buf(), message: e.to_string() })?;
-    fs::write(path, text + "\n").map_err(|e| Error::Output { path: path.to_path_buf(), message: format!("cannot write ({e})") })
+    let text = serde_json::to_string_pretty(value).map_err(|e| Error::Output {
+        path: path.to_path_buf(),
+        message: e.to_string(),
+    })?;
+    fs::write(path, text + "\n").map_err(|e| Error::Output {
+        path: path.to_path_buf(),
+        message: format!("cannot write ({e})"),
+    })
 }
 
 /// Write the trajectory as CSV: age, mean, lower, upper, rate, rate_lower, rate_upper.
@@ -232,7 +268,10 @@ pub fn write_trajectory_csv(path: &Path, t: &Trajectory) -> Result<()> {
             p.age, p.mean, p.lower, p.upper, p.rate, p.rate_lower, p.rate_upper
         ));
     }
-    fs::write(path, s).map_err(|e| Error::Output { path: path.to_path_buf(), message: format!("cannot write ({e})") })
+    fs::write(path, s).map_err(|e| Error::Output {
+        path: path.to_path_buf(),
+        message: format!("cannot write ({e})"),
+    })
 }
 
 /// Paths of the files `braid fit --out DIR` writes.

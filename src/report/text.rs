@@ -9,7 +9,7 @@ fn thousands(n: usize) -> String {
     let s = n.to_string();
     let mut out = String::new();
     for (i, ch) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i) % 3 == 0 {
+        if i > 0 && (s.len() - i).is_multiple_of(3) {
             out.push(',');
         }
         out.push(ch);
@@ -28,7 +28,11 @@ fn pval(p: f64) -> String {
 }
 
 fn num(x: f64, width: usize, dec: usize) -> String {
-    if x.is_finite() { format!("{x:>width$.dec$}") } else { format!("{:>width$}", "—") }
+    if x.is_finite() {
+        format!("{x:>width$.dec$}")
+    } else {
+        format!("{:>width$}", "—")
+    }
 }
 
 /// Render the fit summary.
@@ -48,7 +52,11 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
     if d.dropped.missing_covariate > 0 {
         dropped.push(format!("{} missing a covariate", d.dropped.missing_covariate));
     }
-    let dropped = if dropped.is_empty() { "none dropped".to_string() } else { format!("dropped {}", dropped.join(", ")) };
+    let dropped = if dropped.is_empty() {
+        "none dropped".to_string()
+    } else {
+        format!("dropped {}", dropped.join(", "))
+    };
     let _ = writeln!(
         s,
         "{:<11}{} participants · {} rows used of {} ({dropped})",
@@ -83,7 +91,10 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
         if truth.is_some() { "   truth" } else { "" }
     );
     for f in &r.fixed {
-        let t = truth.and_then(|tv| tv.iter().find(|(k, _)| *k == f.term)).map(|(_, v)| format!("{v:>8.4}")).unwrap_or_default();
+        let t = truth
+            .and_then(|tv| tv.iter().find(|(k, _)| *k == f.term))
+            .map(|(_, v)| format!("{v:>8.4}"))
+            .unwrap_or_default();
         let _ = writeln!(
             s,
             "  {:<22}{}{}{}{}{:>8}   [{}, {}]  {t}",
@@ -97,20 +108,52 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
             num(f.upper, 9, 4),
         );
     }
-    let _ = writeln!(s, "  SE: generalized least squares at the estimates; df: Satterthwaite; p: two-sided t test");
+    let _ = writeln!(
+        s,
+        "  SE: generalized least squares at the estimates; df: Satterthwaite; p: two-sided t test"
+    );
     let _ = writeln!(s);
-    let _ = writeln!(s, "{:<28}{:>11}   {}{}", "Random effects", "SD", "correlations", if truth.is_some() { "            truth SD" } else { "" });
+    let _ = writeln!(
+        s,
+        "{:<28}{:>11}   correlations{}",
+        "Random effects",
+        "SD",
+        if truth.is_some() { "            truth SD" } else { "" }
+    );
     for comp in &r.random {
         for (i, term) in comp.terms.iter().enumerate() {
-            let head = if i == 0 { format!("{} ({})", comp.factor, thousands(comp.n_levels)) } else { String::new() };
+            let head = if i == 0 {
+                format!("{} ({})", comp.factor, thousands(comp.n_levels))
+            } else {
+                String::new()
+            };
             let cors: Vec<String> = (0..i).map(|j| num(comp.correlation[i][j], 6, 3)).collect();
             let key = format!("sd:{}:{}", comp.factor, term);
-            let t = truth.and_then(|tv| tv.iter().find(|(k, _)| *k == key)).map(|(_, v)| format!("{v:>8.4}")).unwrap_or_default();
-            let _ = writeln!(s, "  {:<16}{:<10}{}   {:<22}{t}", head, term, num(comp.sd[i], 11, 4), cors.join(" "));
+            let t = truth
+                .and_then(|tv| tv.iter().find(|(k, _)| *k == key))
+                .map(|(_, v)| format!("{v:>8.4}"))
+                .unwrap_or_default();
+            let _ = writeln!(
+                s,
+                "  {:<16}{:<10}{}   {:<22}{t}",
+                head,
+                term,
+                num(comp.sd[i], 11, 4),
+                cors.join(" ")
+            );
         }
     }
-    let t = truth.and_then(|tv| tv.iter().find(|(k, _)| k == "sd:residual")).map(|(_, v)| format!("{v:>8.4}")).unwrap_or_default();
-    let _ = writeln!(s, "  {:<26}{}   {:<22}{t}", "residual", num(r.residual_variance.sqrt(), 11, 4), "");
+    let t = truth
+        .and_then(|tv| tv.iter().find(|(k, _)| k == "sd:residual"))
+        .map(|(_, v)| format!("{v:>8.4}"))
+        .unwrap_or_default();
+    let _ = writeln!(
+        s,
+        "  {:<26}{}   {:<22}{t}",
+        "residual",
+        num(r.residual_variance.sqrt(), 11, 4),
+        ""
+    );
     let _ = writeln!(s);
     let _ = writeln!(
         s,
@@ -118,7 +161,11 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
         "Criteria", r.method, r.loglik, r.aic, r.bic, r.n_params
     );
     if r.method == "REML" {
-        let _ = writeln!(s, "{:<11}(REML criteria compare models with the same fixed effects only)", "");
+        let _ = writeln!(
+            s,
+            "{:<11}(REML criteria compare models with the same fixed effects only)",
+            ""
+        );
     }
     if r.trajectory.extrema.is_empty() {
         let first = r.trajectory.points.first();
@@ -152,7 +199,11 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
         if info.converged { "converged" } else { "NOT converged" },
         info.iterations,
         info.evaluations,
-        if info.restarts > 0 { format!(", {} restart", info.restarts) } else { String::new() },
+        if info.restarts > 0 {
+            format!(", {} restart", info.restarts)
+        } else {
+            String::new()
+        },
         info.gradient_norm
     );
     for m in &info.messages {

@@ -61,9 +61,9 @@ impl AgeBasis {
     /// Column names, built from the age column's name.
     pub fn names(&self, age: &str) -> Vec<String> {
         match self {
-            AgeBasis::Polynomial { degree, .. } => {
-                (1..=*degree).map(|k| if k == 1 { age.to_string() } else { format!("{age}^{k}") }).collect()
-            }
+            AgeBasis::Polynomial { degree, .. } => (1..=*degree)
+                .map(|k| if k == 1 { age.to_string() } else { format!("{age}^{k}") })
+                .collect(),
             AgeBasis::Spline { knots, .. } => {
                 let mut v = vec![age.to_string()];
                 for k in 1..knots.len() - 1 {
@@ -132,7 +132,15 @@ impl AgeBasis {
         match self {
             AgeBasis::Polynomial { degree, center } => {
                 let a = age - center;
-                (1..=*degree).map(|k| if k >= 2 { (k * (k - 1)) as f64 * a.powi(k as i32 - 2) } else { 0.0 }).collect()
+                (1..=*degree)
+                    .map(|k| {
+                        if k >= 2 {
+                            (k * (k - 1)) as f64 * a.powi(k as i32 - 2)
+                        } else {
+                            0.0
+                        }
+                    })
+                    .collect()
             }
             AgeBasis::Spline { knots, .. } => Self::spline_raw(knots, age, 2),
         }
@@ -184,7 +192,10 @@ mod tests {
     // so its second derivative is zero there and at the knots themselves.
     #[test]
     fn spline_is_linear_outside_boundary_knots() {
-        let b = AgeBasis::Spline { knots: vec![10.0, 13.0, 16.0, 19.0, 22.0], center: 15.0 };
+        let b = AgeBasis::Spline {
+            knots: vec![10.0, 13.0, 16.0, 19.0, 22.0],
+            center: 15.0,
+        };
         for x in [22.0, 23.5, 30.0] {
             assert!(b.deriv2(x).iter().all(|v| v.abs() < 1e-12), "{x}: {:?}", b.deriv2(x));
         }
@@ -198,8 +209,14 @@ mod tests {
     #[test]
     fn derivatives_match_differences() {
         for b in [
-            AgeBasis::Polynomial { degree: 4, center: 15.0 },
-            AgeBasis::Spline { knots: vec![10.0, 12.5, 16.0, 22.0], center: 14.0 },
+            AgeBasis::Polynomial {
+                degree: 4,
+                center: 15.0,
+            },
+            AgeBasis::Spline {
+                knots: vec![10.0, 12.5, 16.0, 22.0],
+                center: 14.0,
+            },
         ] {
             for x in [11.0, 14.2, 17.9, 21.0] {
                 let h = 1e-5;

@@ -85,9 +85,17 @@ impl ModelSpec {
         match &self.random {
             Some(r) => r.clone(),
             None => {
-                let mut v = vec![RandomSpec { factor: panel.roles.id.clone(), intercept: true, slopes: vec![panel.roles.age.clone()] }];
+                let mut v = vec![RandomSpec {
+                    factor: panel.roles.id.clone(),
+                    intercept: true,
+                    slopes: vec![panel.roles.age.clone()],
+                }];
                 if let Some(c) = &panel.roles.cluster {
-                    v.push(RandomSpec { factor: c.clone(), intercept: true, slopes: vec![] });
+                    v.push(RandomSpec {
+                        factor: c.clone(),
+                        intercept: true,
+                        slopes: vec![],
+                    });
                 }
                 v
             }
@@ -143,7 +151,10 @@ impl ModelFrame {
 }
 
 fn spec_err(parameter: &str, message: String) -> Error {
-    Error::Spec { parameter: parameter.to_string(), message }
+    Error::Spec {
+        parameter: parameter.to_string(),
+        message,
+    }
 }
 
 /// Build the age basis for these ages.
@@ -164,15 +175,24 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
     match spec {
         AgeSpec::Polynomial { degree } => {
             if !(1..=4).contains(degree) {
-                return Err(spec_err("--degree", format!("degree {degree} is not supported; choose 1, 2, 3 or 4 (or a spline with --knots)")));
+                return Err(spec_err(
+                    "--degree",
+                    format!("degree {degree} is not supported; choose 1, 2, 3 or 4 (or a spline with --knots)"),
+                ));
             }
             if distinct.len() <= *degree {
                 return Err(spec_err(
                     "--degree",
-                    format!("{} distinct ages cannot support a degree-{degree} polynomial; lower the degree", distinct.len()),
+                    format!(
+                        "{} distinct ages cannot support a degree-{degree} polynomial; lower the degree",
+                        distinct.len()
+                    ),
                 ));
             }
-            Ok(AgeBasis::Polynomial { degree: *degree, center })
+            Ok(AgeBasis::Polynomial {
+                degree: *degree,
+                center,
+            })
         }
         AgeSpec::Spline { interior_knots, knots } => {
             let inner: Vec<f64> = match (interior_knots, knots) {
@@ -183,7 +203,9 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
                         if !(v > lo && v < hi) {
                             return Err(spec_err(
                                 "knots",
-                                format!("knot {v} is not strictly inside the observed ages {lo:.2} to {hi:.2}; move it inside"),
+                                format!(
+                                    "knot {v} is not strictly inside the observed ages {lo:.2} to {hi:.2}; move it inside"
+                                ),
                             ));
                         }
                     }
@@ -191,9 +213,14 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
                 }
                 (Some(kn), None) => {
                     if *kn == 0 || *kn > 20 {
-                        return Err(spec_err("--knots", format!("{kn} interior knots; choose between 1 and 20")));
+                        return Err(spec_err(
+                            "--knots",
+                            format!("{kn} interior knots; choose between 1 and 20"),
+                        ));
                     }
-                    (1..=*kn).map(|j| basis::quantile_sorted(&sorted, j as f64 / (*kn + 1) as f64)).collect()
+                    (1..=*kn)
+                        .map(|j| basis::quantile_sorted(&sorted, j as f64 / (*kn + 1) as f64))
+                        .collect()
                 }
                 (None, None) => return Err(spec_err("age", "a spline needs interior_knots or knots".into())),
             };
@@ -207,7 +234,14 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
                 ));
             }
             if distinct.len() < all.len() {
-                return Err(spec_err("--knots", format!("{} distinct ages cannot support {} knots; use fewer", distinct.len(), all.len())));
+                return Err(spec_err(
+                    "--knots",
+                    format!(
+                        "{} distinct ages cannot support {} knots; use fewer",
+                        distinct.len(),
+                        all.len()
+                    ),
+                ));
             }
             Ok(AgeBasis::Spline { knots: all, center })
         }
@@ -236,7 +270,13 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
             CovariateValues::Categorical(codes) => {
                 for (lvl, label) in codes.levels.iter().enumerate().skip(1) {
                     x_names.push(format!("{}={}", c.name, label));
-                    cov_cols.push(codes.codes.iter().map(|&k| if k as usize == lvl { 1.0 } else { 0.0 }).collect());
+                    cov_cols.push(
+                        codes
+                            .codes
+                            .iter()
+                            .map(|&k| if k as usize == lvl { 1.0 } else { 0.0 })
+                            .collect(),
+                    );
                 }
             }
         }
@@ -276,11 +316,20 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
         } else {
             return Err(spec_err(
                 "random.factor",
-                format!("grouping column '{}' is not one of the column roles (id, cluster, cohort, wave or a covariate)", rs.factor),
+                format!(
+                    "grouping column '{}' is not one of the column roles (id, cluster, cohort, wave or a covariate)",
+                    rs.factor
+                ),
             ));
         };
         if codes.n_levels() < 2 {
-            return Err(spec_err("random.factor", format!("grouping column '{}' has a single level; a random effect needs at least two", rs.factor)));
+            return Err(spec_err(
+                "random.factor",
+                format!(
+                    "grouping column '{}' has a single level; a random effect needs at least two",
+                    rs.factor
+                ),
+            ));
         }
         let mut columns = Vec::new();
         let mut z = Vec::new();
@@ -299,31 +348,75 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
                         z.push(v.clone());
                     }
                     CovariateValues::Categorical(_) => {
-                        return Err(spec_err("random.slopes", format!("'{s}' is categorical; random slopes need a numeric column")));
+                        return Err(spec_err(
+                            "random.slopes",
+                            format!("'{s}' is categorical; random slopes need a numeric column"),
+                        ));
                     }
                 }
             } else {
-                return Err(spec_err("random.slopes", format!("slope column '{s}' is neither the age column nor a numeric covariate")));
+                return Err(spec_err(
+                    "random.slopes",
+                    format!("slope column '{s}' is neither the age column nor a numeric covariate"),
+                ));
             }
         }
         if columns.is_empty() {
-            return Err(spec_err("random", format!("the term for '{}' has neither an intercept nor slopes", rs.factor)));
+            return Err(spec_err(
+                "random",
+                format!("the term for '{}' has neither an intercept nor slopes", rs.factor),
+            ));
         }
-        terms.push(RandomTermData { factor: rs.factor.clone(), level_names: codes.levels.clone(), level: codes.codes.clone(), columns, z });
+        terms.push(RandomTermData {
+            factor: rs.factor.clone(),
+            level_names: codes.levels.clone(),
+            level: codes.codes.clone(),
+            columns,
+            z,
+        });
     }
-    let age_range = panel.age.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| (lo.min(a), hi.max(a)));
-    let mut description = vec![format!("mean of {}: {}", panel.roles.outcome, basis.describe(&age_name))];
+    let age_range = panel
+        .age
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| {
+            (lo.min(a), hi.max(a))
+        });
+    let mut description = vec![format!(
+        "mean of {}: {}",
+        panel.roles.outcome,
+        basis.describe(&age_name)
+    )];
     if !panel.covariates.is_empty() {
         let names: Vec<&str> = panel.covariates.iter().map(|c| c.name.as_str()).collect();
         description.push(format!("adjusted for {}", names.join(", ")));
     }
     for t in &terms {
-        let what = t.columns.iter().map(|c| if c == "intercept" { "intercept".to_string() } else { format!("slope on {c}") }).collect::<Vec<_>>().join(" and ");
-        description.push(format!("random {what} per {} ({} levels), unstructured covariance", t.factor, t.n_levels()));
+        let what = t
+            .columns
+            .iter()
+            .map(|c| {
+                if c == "intercept" {
+                    "intercept".to_string()
+                } else {
+                    format!("slope on {c}")
+                }
+            })
+            .collect::<Vec<_>>()
+            .join(" and ");
+        description.push(format!(
+            "random {what} per {} ({} levels), unstructured covariance",
+            t.factor,
+            t.n_levels()
+        ));
     }
     description.push(format!("fitted by {}", spec.method.label()));
     Ok(ModelFrame {
-        problem: MixedProblem { y: panel.outcome.clone(), x_names, x, terms },
+        problem: MixedProblem {
+            y: panel.outcome.clone(),
+            x_names,
+            x,
+            terms,
+        },
         basis,
         age_name,
         outcome_name: panel.roles.outcome.clone(),

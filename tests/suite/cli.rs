@@ -35,7 +35,12 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
         let before = fs::read(&path).ok();
         let out = cmd.output().unwrap();
         let stderr = String::from_utf8_lossy(&out.stderr);
-        assert_eq!(out.status.code(), Some(2), "{file}: exit {:?}, stderr {stderr}", out.status.code());
+        assert_eq!(
+            out.status.code(),
+            Some(2),
+            "{file}: exit {:?}, stderr {stderr}",
+            out.status.code()
+        );
         assert!(!stderr.contains("panicked"), "{file}: panic: {stderr}");
         assert_eq!(stderr.trim_end().lines().count(), 1, "{file}: not one line: {stderr}");
         assert!(stderr.contains(expected), "{file}: expected '{expected}' in: {stderr}");
@@ -57,11 +62,30 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
         .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let stdout = String::from_utf8_lossy(&out.stdout);
-    for word in ["Fixed effects", "Random effects", "REML log-likelihood", "Satterthwaite", "Cautions"] {
+    for word in [
+        "Fixed effects",
+        "Random effects",
+        "REML log-likelihood",
+        "Satterthwaite",
+        "Cautions",
+    ] {
         assert!(stdout.contains(word), "summary lacks '{word}'");
     }
     let json: serde_json::Value = serde_json::from_str(&fs::read_to_string(dir.join("fit.json")).unwrap()).unwrap();
-    for key in ["method", "n_obs", "n_groups", "loglik", "aic", "bic", "fixed", "random", "residual_variance", "converged", "boundary", "trajectory"] {
+    for key in [
+        "method",
+        "n_obs",
+        "n_groups",
+        "loglik",
+        "aic",
+        "bic",
+        "fixed",
+        "random",
+        "residual_variance",
+        "converged",
+        "boundary",
+        "trajectory",
+    ] {
         assert!(json.get(key).is_some(), "fit.json lacks '{key}'");
     }
     assert_eq!(json["method"], "REML");
@@ -73,7 +97,10 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
     }
     assert_eq!(json["n_groups"]["school"], 12);
     let csv = fs::read_to_string(dir.join("trajectory.csv")).unwrap();
-    assert_eq!(csv.lines().next().unwrap(), "age,mean,lower,upper,rate,rate_lower,rate_upper");
+    assert_eq!(
+        csv.lines().next().unwrap(),
+        "age,mean,lower,upper,rate,rate_lower,rate_upper"
+    );
     assert_eq!(csv.lines().count(), 102);
     let png = fs::read(dir.join("trajectory.png")).unwrap();
     assert_eq!(&png[1..4], b"PNG");
@@ -84,26 +111,56 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
     let out2 = Command::new(braid_bin())
         .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
         .args(BASE)
-        .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave", "--quiet", "--out"])
+        .args([
+            "--cluster",
+            "school",
+            "--cohort",
+            "cohort",
+            "--wave",
+            "wave",
+            "--quiet",
+            "--out",
+        ])
         .arg(&dir2)
         .output()
         .unwrap();
     assert!(out2.status.success());
     assert!(out2.stdout.is_empty());
-    assert_eq!(fs::read(dir.join("fit.json")).unwrap(), fs::read(dir2.join("fit.json")).unwrap());
+    assert_eq!(
+        fs::read(dir.join("fit.json")).unwrap(),
+        fs::read(dir2.join("fit.json")).unwrap()
+    );
 }
 
 #[test]
 fn demo_writes_its_panel_study_file_and_fit() {
     let dir = temp_dir("demo");
-    let out = Command::new(braid_bin()).args(["demo", "--out"]).arg(&dir).output().unwrap();
+    let out = Command::new(braid_bin())
+        .args(["demo", "--out"])
+        .arg(&dir)
+        .output()
+        .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let stdout = String::from_utf8_lossy(&out.stdout);
-    assert!(stdout.contains("truth"), "the demo prints the truth beside the estimates");
-    for f in ["panel.csv", "study.toml", "fit.json", "trajectory.csv", "trajectory.png", "trajectory.svg"] {
+    assert!(
+        stdout.contains("truth"),
+        "the demo prints the truth beside the estimates"
+    );
+    for f in [
+        "panel.csv",
+        "study.toml",
+        "fit.json",
+        "trajectory.csv",
+        "trajectory.png",
+        "trajectory.svg",
+    ] {
         assert!(dir.join(f).exists(), "demo did not write {f}");
     }
     // The study file it wrote fits again through `braid fit --study`.
-    let refit = Command::new(braid_bin()).args(["fit", "--quiet", "--study"]).arg(dir.join("study.toml")).output().unwrap();
+    let refit = Command::new(braid_bin())
+        .args(["fit", "--quiet", "--study"])
+        .arg(dir.join("study.toml"))
+        .output()
+        .unwrap();
     assert!(refit.status.success(), "{}", String::from_utf8_lossy(&refit.stderr));
 }

@@ -9,7 +9,7 @@ use braid::infer;
 use braid::lmm::{self, FitOptions, Method, MixedProblem, RandomTermData};
 use braid::simulate::Rng;
 
-use crate::tolerance::{rel, CLOSED_FORM_REL, SATTERTHWAITE_REL};
+use crate::tolerance::{CLOSED_FORM_REL, SATTERTHWAITE_REL, rel};
 
 fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
     let mut rng = Rng::new(seed);
@@ -49,7 +49,11 @@ fn anova(groups: &[Vec<f64>]) -> (f64, f64, f64) {
     let grand: f64 = groups.iter().flatten().sum::<f64>() / (a * n);
     let means: Vec<f64> = groups.iter().map(|g| g.iter().sum::<f64>() / n).collect();
     let ssb: f64 = means.iter().map(|m| n * (m - grand).powi(2)).sum();
-    let sse: f64 = groups.iter().zip(&means).map(|(g, m)| g.iter().map(|v| (v - m).powi(2)).sum::<f64>()).sum();
+    let sse: f64 = groups
+        .iter()
+        .zip(&means)
+        .map(|(g, m)| g.iter().map(|v| (v - m).powi(2)).sum::<f64>())
+        .sum();
     (ssb / (a - 1.0), sse / (a * (n - 1.0)), grand)
 }
 
@@ -59,11 +63,25 @@ fn reml_equals_anova_estimators_in_balanced_one_way_design() {
         let (problem, groups) = balanced(a, n, seed);
         let (msb, mse, grand) = anova(&groups);
         assert!(msb > mse, "the identity needs a positive variance estimate");
-        let fit = lmm::fit(&problem, FitOptions { method: Method::Reml, ..Default::default() }).unwrap();
+        let fit = lmm::fit(
+            &problem,
+            FitOptions {
+                method: Method::Reml,
+                ..Default::default()
+            },
+        )
+        .unwrap();
         let var_group = fit.random[0].covariance[0][0];
-        assert!(rel(fit.sigma2, mse, 1e-12) < CLOSED_FORM_REL, "σ² {} vs MSE {mse}", fit.sigma2);
+        assert!(
+            rel(fit.sigma2, mse, 1e-12) < CLOSED_FORM_REL,
+            "σ² {} vs MSE {mse}",
+            fit.sigma2
+        );
         let want = (msb - mse) / n as f64;
-        assert!(rel(var_group, want, 1e-12) < CLOSED_FORM_REL, "σ²_g {var_group} vs {want}");
+        assert!(
+            rel(var_group, want, 1e-12) < CLOSED_FORM_REL,
+            "σ²_g {var_group} vs {want}"
+        );
         assert!(rel(fit.beta[0], grand, 1e-12) < CLOSED_FORM_REL);
         let se = fit.se()[0];
         let want_se = (msb / (a * n) as f64).sqrt();

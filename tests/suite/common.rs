@@ -19,7 +19,12 @@ pub fn temp_dir(name: &str) -> PathBuf {
 
 /// Roles with only the three required columns.
 pub fn roles(id: &str, age: &str, outcome: &str) -> Roles {
-    Roles { id: id.into(), age: age.into(), outcome: outcome.into(), ..Default::default() }
+    Roles {
+        id: id.into(),
+        age: age.into(),
+        outcome: outcome.into(),
+        ..Default::default()
+    }
 }
 
 /// Load a file from tests/data.

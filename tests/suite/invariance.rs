@@ -6,10 +6,10 @@
 
 use braid::data::Panel;
 use braid::lmm::Method;
-use braid::simulate::{simulate, Design};
+use braid::simulate::{Design, simulate};
 use braid::spec::{AgeSpec, ModelSpec};
 
-use crate::tolerance::{rel, REFIT_LOGLIK_ABS, REFIT_PARAM_REL};
+use crate::tolerance::{REFIT_LOGLIK_ABS, REFIT_PARAM_REL, rel};
 
 fn panel() -> Panel {
     let mut d = Design::demo();
@@ -19,7 +19,12 @@ fn panel() -> Panel {
 }
 
 fn spec(method: Method, center: Option<f64>) -> ModelSpec {
-    ModelSpec { method, age: AgeSpec::Polynomial { degree: 2 }, center, random: None }
+    ModelSpec {
+        method,
+        age: AgeSpec::Polynomial { degree: 2 },
+        center,
+        random: None,
+    }
 }
 
 /// A copy of the panel with rows in the order `order`.
@@ -69,9 +74,18 @@ fn row_order_and_id_recoding_leave_the_fit_unchanged() {
     recoded.id = braid::data::Codes::new(&labels, true);
     for (what, q) in [("row order", shuffled), ("id recoding", recoded)] {
         let f = braid::fit_panel(&q, &spec(Method::Reml, None), 11).unwrap();
-        assert!((f.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS, "{what}: {} vs {}", f.fit.loglik, base.fit.loglik);
+        assert!(
+            (f.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS,
+            "{what}: {} vs {}",
+            f.fit.loglik,
+            base.fit.loglik
+        );
         assert_close(&f.fit.beta, &base.fit.beta, what);
-        assert_close(&fitted_by_original_row(&q, &f.fit.fitted), &fitted_by_original_row(&p, &base.fit.fitted), what);
+        assert_close(
+            &fitted_by_original_row(&q, &f.fit.fitted),
+            &fitted_by_original_row(&p, &base.fit.fitted),
+            what,
+        );
     }
 }
 
@@ -91,7 +105,12 @@ fn shifting_age_or_moving_the_centre_leaves_the_fit_unchanged() {
         assert_close(&f.fit.fitted, &base.fit.fitted, "shifted age");
         // Another centre is a unit-triangular change of basis: det S = 1.
         let g = braid::fit_panel(&p, &spec(method, Some(13.5)), 11).unwrap();
-        assert!((g.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS, "{} vs {}", g.fit.loglik, base.fit.loglik);
+        assert!(
+            (g.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS,
+            "{} vs {}",
+            g.fit.loglik,
+            base.fit.loglik
+        );
         assert_close(&g.fit.fitted, &base.fit.fitted, "moved centre");
     }
 }

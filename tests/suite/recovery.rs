@@ -1,6 +1,6 @@
 //! Recovery of a known truth from seeded simulations of invented studies.
 
-use braid::simulate::{simulate, Design};
+use braid::simulate::{Design, simulate};
 use braid::spec::ModelSpec;
 
 #[test]
@@ -9,7 +9,10 @@ fn large_study_recovers_the_true_curve_inside_its_band() {
     d.per_cohort = 400; // 2,000 participants
     d.seed = 2026;
     let sim = simulate(&d);
-    let spec = ModelSpec { center: Some(d.truth.center), ..Default::default() };
+    let spec = ModelSpec {
+        center: Some(d.truth.center),
+        ..Default::default()
+    };
     let a = braid::fit_panel(&sim.panel(true), &spec, 101).unwrap();
     assert!(a.fit.info.converged);
     let outside: Vec<f64> = a
@@ -33,7 +36,10 @@ fn linear_age_interval_covers_the_truth_at_its_nominal_rate() {
         d.schools = 10;
         d.seed = 10_000 + r as u64;
         let sim = simulate(&d);
-        let spec = ModelSpec { center: Some(d.truth.center), ..Default::default() };
+        let spec = ModelSpec {
+            center: Some(d.truth.center),
+            ..Default::default()
+        };
         let a = braid::fit_panel(&sim.panel(true), &spec, 2).unwrap();
         let f = &a.report.fixed[1];
         assert_eq!(f.term, "age");

@@ -18,7 +18,7 @@ use braid::spec::{AgeSpec, ModelSpec, RandomSpec};
 use serde_json::Value;
 
 use crate::common::{load, roles};
-use crate::tolerance::{rel, FIXED_REL, LOGLIK_ABS, VARIANCE_REL};
+use crate::tolerance::{FIXED_REL, LOGLIK_ABS, VARIANCE_REL, rel};
 
 fn reference() -> Value {
     let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/mixedlm.json");
@@ -37,29 +37,69 @@ struct Case {
 }
 
 fn model(degree: usize, center: f64, random: Option<Vec<RandomSpec>>) -> ModelSpec {
-    ModelSpec { method: Method::Reml, age: AgeSpec::Polynomial { degree }, center: Some(center), random }
+    ModelSpec {
+        method: Method::Reml,
+        age: AgeSpec::Polynomial { degree },
+        center: Some(center),
+        random,
+    }
 }
 
 fn cases() -> Vec<Case> {
     vec![
-        Case { name: "dental", file: "dental.csv", roles: roles("Subject", "age", "distance"), spec: model(1, 11.0, None) },
-        Case { name: "oxboys", file: "oxboys.csv", roles: roles("Subject", "age", "height"), spec: model(2, 0.0, None) },
-        Case { name: "sim_plain", file: "sim_plain.csv", roles: roles("pupil", "age", "score"), spec: model(2, 16.0, None) },
+        Case {
+            name: "dental",
+            file: "dental.csv",
+            roles: roles("Subject", "age", "distance"),
+            spec: model(1, 11.0, None),
+        },
+        Case {
+            name: "oxboys",
+            file: "oxboys.csv",
+            roles: roles("Subject", "age", "height"),
+            spec: model(2, 0.0, None),
+        },
+        Case {
+            name: "sim_plain",
+            file: "sim_plain.csv",
+            roles: roles("pupil", "age", "score"),
+            spec: model(2, 16.0, None),
+        },
         Case {
             name: "sim_school",
             file: "sim_school.csv",
-            roles: Roles { cluster: Some("school".into()), ..roles("pupil", "age", "score") },
+            roles: Roles {
+                cluster: Some("school".into()),
+                ..roles("pupil", "age", "score")
+            },
             spec: model(
                 2,
                 16.0,
                 Some(vec![
-                    RandomSpec { factor: "pupil".into(), intercept: true, slopes: vec![] },
-                    RandomSpec { factor: "pupil".into(), intercept: false, slopes: vec!["age".into()] },
-                    RandomSpec { factor: "school".into(), intercept: true, slopes: vec![] },
+                    RandomSpec {
+                        factor: "pupil".into(),
+                        intercept: true,
+                        slopes: vec![],
+                    },
+                    RandomSpec {
+                        factor: "pupil".into(),
+                        intercept: false,
+                        slopes: vec!["age".into()],
+                    },
+                    RandomSpec {
+                        factor: "school".into(),
+                        intercept: true,
+                        slopes: vec![],
+                    },
                 ]),
             ),
         },
-        Case { name: "sim_zero_slope", file: "sim_zero_slope.csv", roles: roles("pupil", "age", "score"), spec: model(2, 16.0, None) },
+        Case {
+            name: "sim_zero_slope",
+            file: "sim_zero_slope.csv",
+            roles: roles("pupil", "age", "score"),
+            spec: model(2, 16.0, None),
+        },
     ]
 }
 
@@ -68,9 +108,17 @@ fn cases() -> Vec<Case> {
 fn braid_components(name: &str, fit: &braid::lmm::Fit) -> Vec<f64> {
     if name == "sim_school" {
         let find = |factor: &str, term: &str| {
-            fit.random.iter().find(|r| r.factor == factor && r.terms == [term.to_string()]).unwrap().covariance[0][0]
+            fit.random
+                .iter()
+                .find(|r| r.factor == factor && r.terms == [term.to_string()])
+                .unwrap()
+                .covariance[0][0]
         };
-        vec![find("school", "intercept"), find("pupil", "intercept"), find("pupil", "age")]
+        vec![
+            find("school", "intercept"),
+            find("pupil", "intercept"),
+            find("pupil", "age"),
+        ]
     } else {
         let c = &fit.random[0].covariance;
         vec![c[0][0], c[1][0], c[1][1]]
@@ -80,10 +128,8 @@ fn braid_components(name: &str, fit: &braid::lmm::Fit) -> Vec<f64> {
 fn reference_components(r: &Value) -> Vec<f64> {
     let cov: Vec<Vec<f64>> = r["cov_re"].as_array().unwrap().iter().map(nums).collect();
     let mut v = Vec::new();
-    for i in 0..cov.len() {
-        for j in 0..=i {
-            v.push(cov[i][j]);
-        }
+    for (i, row) in cov.iter().enumerate() {
+        v.extend(&row[..=i]);
     }
     v.extend(nums(&r["vcomp"]));
     v
@@ -98,13 +144,24 @@ fn matches_statsmodels_mixedlm_on_growth_and_cohort_sequential_data() {
         for method in [Method::Reml, Method::Ml] {
             let label = method.label();
             let r = &refs["cases"][case.name][label];
-            let spec = ModelSpec { method, ..case.spec.clone() };
+            let spec = ModelSpec {
+                method,
+                ..case.spec.clone()
+            };
             let a = braid::fit_panel(&panel, &spec, 11).unwrap();
             let fit = &a.fit;
             let ref_ll = r["loglik"].as_f64().unwrap();
             let gap = fit.loglik - ref_ll;
-            println!("{} {label}: braid ℓ = {:.9}, statsmodels {version} ℓ = {ref_ll:.9} (braid − reference = {gap:.2e})", case.name, fit.loglik);
-            assert!(gap > -LOGLIK_ABS, "{} {label}: braid's optimum is lower than the reference's by {:.3e}", case.name, -gap);
+            println!(
+                "{} {label}: braid ℓ = {:.9}, statsmodels {version} ℓ = {ref_ll:.9} (braid − reference = {gap:.2e})",
+                case.name, fit.loglik
+            );
+            assert!(
+                gap > -LOGLIK_ABS,
+                "{} {label}: braid's optimum is lower than the reference's by {:.3e}",
+                case.name,
+                -gap
+            );
             assert!(fit.info.converged, "{} {label}: {:?}", case.name, fit.info);
             if gap > LOGLIK_ABS {
                 println!("  braid found a higher likelihood than the reference; estimates not compared");
@@ -115,17 +172,38 @@ fn matches_statsmodels_mixedlm_on_growth_and_cohort_sequential_data() {
             let braid_se = fit.se();
             for k in 0..fe.len() {
                 let scale = fe.iter().map(|v| v.abs()).fold(0.0, f64::max) * 1e-6;
-                assert!(rel(fit.beta[k], fe[k], scale) < FIXED_REL, "{} {label} β[{k}]: {} vs {}", case.name, fit.beta[k], fe[k]);
-                assert!(rel(braid_se[k], se[k], 0.0) < FIXED_REL, "{} {label} SE[{k}]: {} vs {}", case.name, braid_se[k], se[k]);
+                assert!(
+                    rel(fit.beta[k], fe[k], scale) < FIXED_REL,
+                    "{} {label} β[{k}]: {} vs {}",
+                    case.name,
+                    fit.beta[k],
+                    fe[k]
+                );
+                assert!(
+                    rel(braid_se[k], se[k], 0.0) < FIXED_REL,
+                    "{} {label} SE[{k}]: {} vs {}",
+                    case.name,
+                    braid_se[k],
+                    se[k]
+                );
             }
             let scale = r["scale"].as_f64().unwrap();
-            assert!(rel(fit.sigma2, scale, 0.0) < VARIANCE_REL, "{} {label} σ²: {} vs {scale}", case.name, fit.sigma2);
+            assert!(
+                rel(fit.sigma2, scale, 0.0) < VARIANCE_REL,
+                "{} {label} σ²: {} vs {scale}",
+                case.name,
+                fit.sigma2
+            );
             let ours = braid_components(case.name, fit);
             let theirs = reference_components(r);
             for (k, (o, t)) in ours.iter().zip(&theirs).enumerate() {
                 // Covariances near zero are compared on the scale of the variances.
                 let floor = theirs.iter().map(|v| v.abs()).fold(0.0, f64::max) * 1e-2;
-                assert!(rel(*o, *t, floor) < VARIANCE_REL, "{} {label} component {k}: {o} vs {t}", case.name);
+                assert!(
+                    rel(*o, *t, floor) < VARIANCE_REL,
+                    "{} {label} component {k}: {o} vs {t}",
+                    case.name
+                );
             }
         }
     }
