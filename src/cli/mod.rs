@@ -113,6 +113,10 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
     let panel_path = a.out.join("panel.csv");
     let (header, rows) = sim.table();
     data::read::write_csv(&panel_path, &header, &rows)?;
+    data::read::write_parquet(
+        &a.out.join("panel.parquet"),
+        data::read::columns_from_text(&header, &rows),
+    )?;
     let study = Study {
         data: DataSection {
             file: "panel.csv".into(),

@@ -193,3 +193,45 @@ pub fn write_csv(path: &Path, header: &[&str], rows: &[Vec<String>]) -> Result<(
     }
     w.flush().map_err(out)
 }
+
+/// Write named columns to a Parquet file (used by the demo, so that users
+/// and tests have a Parquet twin of the CSV).
+///
+/// # Errors
+/// [`Error::Output`] when the file cannot be written.
+pub fn write_parquet(path: &Path, columns: Vec<(String, RawColumn)>) -> Result<()> {
+    let out = |m: String| Error::Output {
+        path: path.to_path_buf(),
+        message: format!("cannot write Parquet ({m})"),
+    };
+    let cols: Vec<Column> = columns
+        .into_iter()
+        .map(|(name, c)| match c {
+            RawColumn::Number(v) => Column::new(name.as_str().into(), v),
+            RawColumn::Text(v) => Column::new(name.as_str().into(), v),
+        })
+        .collect();
+    let mut df = DataFrame::new_infer_height(cols).map_err(|e| out(e.to_string()))?;
+    let mut file = File::create(path).map_err(|e| out(e.to_string()))?;
+    ParquetWriter::new(&mut file)
+        .finish(&mut df)
+        .map_err(|e| out(e.to_string()))?;
+    Ok(())
+}
+
+/// Columns from a text table: a column becomes numeric when every cell is a
+/// number, text otherwise.
+pub fn columns_from_text(header: &[&str], rows: &[Vec<String>]) -> Vec<(String, RawColumn)> {
+    header
+        .iter()
+        .enumerate()
+        .map(|(j, name)| {
+            let nums: Option<Vec<Option<f64>>> = rows.iter().map(|r| r[j].parse::<f64>().ok().map(Some)).collect();
+            let col = match nums {
+                Some(v) => RawColumn::Number(v),
+                None => RawColumn::Text(rows.iter().map(|r| Some(r[j].clone())).collect()),
+            };
+            (name.to_string(), col)
+        })
+        .collect()
+}

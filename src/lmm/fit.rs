@@ -253,7 +253,23 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     }
     let polished = optimize::newton_polish(dev, &result.x, result.value, &lower);
     evaluations += polished.evaluations;
-    let theta = polished.x.clone();
+    let mut theta = polished.x.clone();
+    // The criterion is even in each diagonal entry of T near zero, so a zero
+    // variance is approached smoothly and the optimiser stops a hair inside
+    // the bound; snap such entries to the boundary when that costs nothing.
+    let mut best_dev = polished.value;
+    for i in 0..theta.len() {
+        if lower[i] == 0.0 && theta[i] > 0.0 && theta[i] < BOUNDARY_SNAP * base[i].max(f64::MIN_POSITIVE) {
+            let mut trial = theta.clone();
+            trial[i] = 0.0;
+            let d = dev(&trial);
+            evaluations += 1;
+            if d <= best_dev + 1e-9 {
+                theta = trial;
+                best_dev = best_dev.min(d);
+            }
+        }
+    }
     let factor = criterion::evaluate(&cp, &theta, true).map_err(|_| Error::Numerical {
         step: "final evaluation".into(),
         message: "the criterion failed at the optimum; please report this with the data shape".into(),
@@ -503,6 +519,10 @@ fn components(problem: &MixedProblem, cp: &CrossProducts, theta: &[f64], sigma2:
 /// below this (the remaining improvement of the log-likelihood is then below
 /// a quarter of it).
 pub const NEWTON_DECREMENT_TOLERANCE: f64 = 1e-6;
+
+/// A diagonal entry of θ below this fraction of its start value is tested
+/// against the boundary (set to zero when that does not raise the deviance).
+pub const BOUNDARY_SNAP: f64 = 1e-4;
 
 /// Relative finite-difference step for the information matrix and for the
 /// derivatives of cov(β̂); results at `h` and `h/2` are combined by

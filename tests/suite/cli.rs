@@ -164,3 +164,25 @@ fn demo_writes_its_panel_study_file_and_fit() {
         .unwrap();
     assert!(refit.status.success(), "{}", String::from_utf8_lossy(&refit.stderr));
 }
+
+#[test]
+fn parquet_twin_of_the_demo_panel_gives_the_same_fit() {
+    let dir = temp_dir("parquet");
+    let out = Command::new(braid_bin())
+        .args(["demo", "--quiet", "--out"])
+        .arg(&dir)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let roles = braid::simulate::Simulated::roles(true);
+    let csv = braid::data::load(&dir.join("panel.csv"), &roles, Default::default()).unwrap();
+    let pq = braid::data::load(&dir.join("panel.parquet"), &roles, Default::default()).unwrap();
+    assert_eq!(csv.age, pq.age);
+    assert_eq!(csv.outcome, pq.outcome);
+    assert_eq!(csv.id, pq.id);
+    assert_eq!(csv.cohort, pq.cohort);
+    let spec = braid::spec::ModelSpec::default();
+    let a = braid::fit_panel(&csv, &spec, 5).unwrap();
+    let b = braid::fit_panel(&pq, &spec, 5).unwrap();
+    assert_eq!(a.fit.loglik, b.fit.loglik);
+}

@@ -92,3 +92,46 @@ fn reml_equals_anova_estimators_in_balanced_one_way_design() {
         assert!(rel(df, (a - 1) as f64, 1.0) < SATTERTHWAITE_REL, "df {df} vs {}", a - 1);
     }
 }
+
+/// When every group has the same mean, MSB = 0 < MSE: the REML estimate of
+/// the group variance is on the boundary (zero) and σ̂² is the REML estimate
+/// of the model without groups, SST/(N − 1) (closed form).
+#[test]
+fn zero_between_group_variation_is_a_reported_boundary_estimate() {
+    let (mut problem, _) = balanced(10, 4, 7);
+    // Centre each group on the grand mean 10, so all group means are equal.
+    for g in 0..10 {
+        let rows = g * 4..(g + 1) * 4;
+        let m: f64 = problem.y[rows.clone()].iter().sum::<f64>() / 4.0;
+        for r in rows {
+            problem.y[r] += 10.0 - m;
+        }
+    }
+    let n = problem.y.len() as f64;
+    let mean = problem.y.iter().sum::<f64>() / n;
+    let sst: f64 = problem.y.iter().map(|v| (v - mean).powi(2)).sum();
+    let fit = lmm::fit(
+        &problem,
+        FitOptions {
+            method: Method::Reml,
+            ..Default::default()
+        },
+    )
+    .unwrap();
+    assert_eq!(
+        fit.info.boundary,
+        vec!["group:intercept".to_string()],
+        "θ = {:?}, {:?}",
+        fit.theta,
+        fit.info
+    );
+    assert_eq!(fit.random[0].covariance[0][0], 0.0);
+    assert!(
+        rel(fit.sigma2, sst / (n - 1.0), 1e-12) < CLOSED_FORM_REL,
+        "{} vs {}",
+        fit.sigma2,
+        sst / (n - 1.0)
+    );
+    assert!(fit.info.converged, "{:?}", fit.info);
+    assert!(fit.info.messages.iter().any(|m| m.contains("boundary")));
+}

@@ -140,3 +140,28 @@ fn rescaling_age_moves_only_the_reml_constant() {
         assert!(rel(m.fit.sigma2, years.fit.sigma2, 1.0) < REFIT_PARAM_REL);
     }
 }
+
+#[test]
+fn spline_with_quantile_knots_is_invariant_to_the_unit_of_age() {
+    let p = panel();
+    let mut months = p.clone();
+    months.age.iter_mut().for_each(|a| *a *= 12.0);
+    let spline = |center| ModelSpec {
+        method: Method::Ml,
+        age: AgeSpec::Spline {
+            interior_knots: Some(3),
+            knots: None,
+        },
+        center: Some(center),
+        random: None,
+    };
+    let years = braid::fit_panel(&p, &spline(16.0), 11).unwrap();
+    let m = braid::fit_panel(&months, &spline(192.0), 11).unwrap();
+    assert!(
+        (m.fit.loglik - years.fit.loglik).abs() < REFIT_LOGLIK_ABS,
+        "{} vs {}",
+        m.fit.loglik,
+        years.fit.loglik
+    );
+    assert_close(&m.fit.fitted, &years.fit.fitted, "spline in months");
+}

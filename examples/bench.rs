@@ -1,0 +1,197 @@
+//! Benchmarks of whole `braid fit` runs, side by side with a reference.
+//!
+//! ```text
+//! cargo build --release
+//! cargo run --release --example bench -- [small|large|all] [WORK_DIR]
+//! ```
+//!
+//! - `small`: a 3,000-participant three-wave file; REML, quadratic age, random
+//!   intercept and slope per participant. braid's whole CLI run (CSV read,
+//!   fit, JSON, CSV and figures) is timed against statsmodels MixedLM with each
+//!   of its optimizers (examples/bench_mixedlm.py), in the same run; the ratio
+//!   uses the fastest optimizer that reports convergence and reaches the best
+//!   log-likelihood within 1e-3.
+//! - `large`: about 1,000,000 rows (333,335 participants in 50 schools), the
+//!   same model plus a school intercept; wall time and peak memory of the
+//!   whole CLI run.
+//!
+//! Peak memory is read with `/usr/bin/time -f %M`. Figures are recorded in
+//! notes/benchmarks.md.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::time::Instant;
+
+use braid::simulate::{Design, simulate};
+
+fn design(per_cohort: usize, schools: usize, seed: u64) -> Design {
+    let mut d = Design::demo();
+    d.per_cohort = per_cohort;
+    d.waves = 3;
+    d.schools = schools;
+    d.dropout = 0.0;
+    d.skip = 0.0;
+    d.seed = seed;
+    if schools <= 1 {
+        d.truth.sd_school = 0.0;
+    }
+    d
+}
+
+fn write(design: &Design, path: &Path) -> usize {
+    let sim = simulate(design);
+    let (h, rows) = sim.table();
+    braid::data::read::write_csv(path, &h, &rows).expect("write benchmark file");
+    rows.len()
+}
+
+fn braid_bin() -> PathBuf {
+    let exe = std::env::current_exe().expect("current exe");
+    // target/release/examples/bench -> target/release/braid
+    exe.parent()
+        .and_then(Path::parent)
+        .map(|p| p.join("braid"))
+        .expect("target folder")
+}
+
+/// Run `braid fit` under /usr/bin/time; returns (wall seconds, peak RSS in MB, loglik).
+fn time_braid(file: &Path, out: &Path, school: bool) -> (f64, f64, f64) {
+    let mut cmd = Command::new("/usr/bin/time");
+    cmd.args(["-f", "%e %M"]).arg(braid_bin()).arg("fit").arg(file);
+    cmd.args([
+        "--id",
+        "pupil",
+        "--age",
+        "age",
+        "--outcome",
+        "score",
+        "--center",
+        "16",
+        "--quiet",
+        "--out",
+    ])
+    .arg(out);
+    if school {
+        cmd.args(["--cluster", "school"]);
+    }
+    let t0 = Instant::now();
+    let o = cmd.output().expect("run braid");
+    let wall = t0.elapsed().as_secs_f64();
+    assert!(
+        o.status.success(),
+        "braid failed: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    let last = stderr.lines().last().unwrap_or("");
+    let rss_kb: f64 = last
+        .split_whitespace()
+        .nth(1)
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(f64::NAN);
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("fit.json")).unwrap()).unwrap();
+    (wall, rss_kb / 1024.0, json["loglik"].as_f64().unwrap())
+}
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
+fn small(work: &Path) {
+    let file = work.join("bench_3000.csv");
+    let rows = write(&design(600, 1, 3000), &file);
+    let runs: Vec<(f64, f64, f64)> = (0..5)
+        .map(|_| time_braid(&file, &work.join("out_small"), false))
+        .collect();
+    let braid_s = median(runs.iter().map(|r| r.0).collect());
+    let braid_ll = runs[0].2;
+    println!("small: 3,000 participants, {rows} rows");
+    println!("  braid fit (whole run, median of 5): {braid_s:.3} s, REML loglik {braid_ll:.6}");
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("examples/bench_mixedlm.py");
+    let o = Command::new("python3")
+        .arg(script)
+        .arg(&file)
+        .arg("16")
+        .output()
+        .expect("run python3");
+    if !o.status.success() {
+        println!("  statsmodels reference failed: {}", String::from_utf8_lossy(&o.stderr));
+        return;
+    }
+    let r: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    println!(
+        "  statsmodels {} (numpy {}):",
+        r["statsmodels"].as_str().unwrap_or("?"),
+        r["numpy"].as_str().unwrap_or("?")
+    );
+    let fits = r["fits"].as_array().unwrap();
+    let best = fits
+        .iter()
+        .filter_map(|f| f["loglik"].as_f64())
+        .fold(f64::NEG_INFINITY, f64::max);
+    let mut fastest: Option<(String, f64, f64)> = None;
+    for f in fits {
+        let method = f["method"].as_str().unwrap_or("?").to_string();
+        let secs = f["seconds"].as_f64().unwrap_or(f64::NAN);
+        match f["loglik"].as_f64() {
+            Some(ll) => {
+                let conv = f["converged"].as_bool().unwrap_or(false);
+                let at_opt = (ll - best).abs() < 1e-3;
+                println!("    {method:>7}: {secs:8.2} s, loglik {ll:.6}, converged {conv}, at best optimum {at_opt}");
+                if conv && at_opt && fastest.as_ref().is_none_or(|b| secs < b.1) {
+                    fastest = Some((method, secs, ll));
+                }
+            }
+            None => println!("    {method:>7}: failed ({})", f["error"].as_str().unwrap_or("?")),
+        }
+    }
+    match fastest {
+        Some((m, s, ll)) => println!(
+            "  ratio: statsmodels {m} {s:.2} s / braid {braid_s:.3} s = {:.0}x; loglik difference braid − statsmodels = {:.2e}",
+            s / braid_s,
+            braid_ll - ll
+        ),
+        None => println!("  no statsmodels optimizer converged to the best optimum"),
+    }
+}
+
+fn large(work: &Path) {
+    let file = work.join("bench_1m.csv");
+    let t0 = Instant::now();
+    let rows = write(&design(66_667, 50, 1_000_000), &file);
+    println!(
+        "large: 333,335 participants in 50 schools, {rows} rows (written in {:.1} s)",
+        t0.elapsed().as_secs_f64()
+    );
+    let runs: Vec<(f64, f64, f64)> = (0..3)
+        .map(|_| time_braid(&file, &work.join("out_large"), true))
+        .collect();
+    for (i, r) in runs.iter().enumerate() {
+        println!(
+            "  run {}: {:.2} s wall, peak RSS {:.0} MB, REML loglik {:.4}",
+            i + 1,
+            r.0,
+            r.1,
+            r.2
+        );
+    }
+    println!("  median wall {:.2} s", median(runs.iter().map(|r| r.0).collect()));
+}
+
+fn main() {
+    let args: Vec<String> = std::env::args().collect();
+    let which = args.get(1).map(String::as_str).unwrap_or("all");
+    let work = args
+        .get(2)
+        .map(PathBuf::from)
+        .unwrap_or_else(|| std::env::temp_dir().join("braid-bench"));
+    std::fs::create_dir_all(&work).expect("work folder");
+    if which == "small" || which == "all" {
+        small(&work);
+    }
+    if which == "large" || which == "all" {
+        large(&work);
+    }
+}
