@@ -15,7 +15,7 @@
 //!   same model plus a school intercept; wall time and peak memory of the
 //!   whole CLI run.
 //!
-//! Peak memory is read with `/usr/bin/time -f %M`. Figures are recorded in
+//! Peak memory is read with GNU time (`time -f %M`, found on PATH). Figures are recorded in
 //! notes/benchmarks.md.
 
 use std::path::{Path, PathBuf};
@@ -54,9 +54,9 @@ fn braid_bin() -> PathBuf {
         .expect("target folder")
 }
 
-/// Run `braid fit` under /usr/bin/time; returns (wall seconds, peak RSS in MB, loglik).
+/// Run `braid fit` under GNU time; returns (wall seconds, peak RSS in MB, loglik).
 fn time_braid(file: &Path, out: &Path, school: bool) -> (f64, f64, f64) {
-    let mut cmd = Command::new("/usr/bin/time");
+    let mut cmd = Command::new("time");
     cmd.args(["-f", "%e %M"]).arg(braid_bin()).arg("fit").arg(file);
     cmd.args([
         "--id",
