@@ -25,7 +25,8 @@
 //! design.per_cohort = 40; // a small study for the example
 //! let study = simulate(&design);
 //! let panel = study.panel(true);
-//! let analysis = braid::fit_panel(&panel, &ModelSpec::default(), 21).unwrap();
+//! let request = braid::infer::TrajectoryRequest::grid(21);
+//! let analysis = braid::fit_panel(&panel, &ModelSpec::default(), &request).unwrap();
 //! let slope = &analysis.report.fixed[1];
 //! assert_eq!(slope.term, "age");
 //! assert!(analysis.fit.info.converged);
@@ -55,12 +56,15 @@ pub struct FitAnalysis {
     pub report: report::FitReport,
 }
 
-/// Build the model for a panel, fit it and compute the trajectory on a grid
-/// of `grid` ages.
+/// Build the model for a panel, fit it and compute the trajectory as requested.
 ///
 /// # Errors
 /// Errors of [`spec::build_frame`] and [`lmm::fit`].
-pub fn fit_panel(panel: &data::Panel, model: &spec::ModelSpec, grid: usize) -> Result<FitAnalysis> {
+pub fn fit_panel(
+    panel: &data::Panel,
+    model: &spec::ModelSpec,
+    request: &infer::TrajectoryRequest,
+) -> Result<FitAnalysis> {
     let frame = spec::build_frame(panel, model)?;
     let fit = lmm::fit(
         &frame.problem,
@@ -69,7 +73,7 @@ pub fn fit_panel(panel: &data::Panel, model: &spec::ModelSpec, grid: usize) -> R
             ..Default::default()
         },
     )?;
-    let trajectory = infer::trajectory(&fit, &frame, grid);
+    let trajectory = infer::trajectory(&fit, &frame, request);
     let report = report::FitReport::new(panel, &frame, &fit, trajectory);
     Ok(FitAnalysis { frame, fit, report })
 }

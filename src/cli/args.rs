@@ -100,6 +100,13 @@ pub struct FitArgs {
     /// Number of ages on the trajectory grid.
     #[arg(long, value_name = "N", default_value_t = 101)]
     pub grid: usize,
+    /// Also report the mean and rate of change at these ages (comma-separated or repeated).
+    #[arg(long, value_name = "AGES", value_delimiter = ',')]
+    pub at: Vec<f64>,
+    /// Also write predictions.csv (fitted values and residuals per row) and
+    /// random_effects.csv (BLUPs per group) into the --out folder.
+    #[arg(long, requires = "out")]
+    pub predictions: bool,
     /// Draw this many participants' observed paths as thin lines in the figure.
     #[arg(long, value_name = "N", default_value_t = 0)]
     pub lines: usize,

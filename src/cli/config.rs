@@ -8,6 +8,7 @@ use serde::{Deserialize, Serialize};
 use super::args::{FitArgs, MethodArg};
 use crate::data::{ReadOptions, Roles};
 use crate::error::{Error, Result};
+use crate::infer::TrajectoryRequest;
 use crate::lmm::Method;
 use crate::spec::{AgeSpec, ModelSpec, RandomSpec};
 
@@ -70,8 +71,10 @@ pub struct FitConfig {
     pub model: ModelSpec,
     /// Output folder.
     pub out: Option<PathBuf>,
-    /// Ages on the trajectory grid.
-    pub grid: usize,
+    /// Where to evaluate the trajectory.
+    pub trajectory: TrajectoryRequest,
+    /// Whether to write per-row predictions and BLUPs.
+    pub predictions: bool,
     /// Individual paths to draw.
     pub lines: usize,
     /// Suppress printing.
@@ -194,6 +197,12 @@ impl FitConfig {
             }
             model.random = Some(terms);
         }
+        if let Some(a) = args.at.iter().find(|a| !a.is_finite()) {
+            return Err(Error::Spec {
+                parameter: "--at".into(),
+                message: format!("{a} is not a finite age"),
+            });
+        }
         if args.grid < 2 || args.grid > 100_000 {
             return Err(Error::Spec {
                 parameter: "--grid".into(),
@@ -206,7 +215,11 @@ impl FitConfig {
             roles,
             model,
             out: args.out.clone(),
-            grid: args.grid,
+            trajectory: TrajectoryRequest {
+                grid: args.grid,
+                at: args.at.clone(),
+            },
+            predictions: args.predictions,
             lines: args.lines,
             quiet: args.quiet,
         })

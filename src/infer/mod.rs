@@ -12,7 +12,7 @@ pub mod trajectory;
 use serde::Serialize;
 use statrs::distribution::{ContinuousCDF, Normal, StudentsT};
 
-pub use trajectory::{Extremum, Trajectory, TrajectoryPoint, trajectory};
+pub use trajectory::{AgeEstimate, Extremum, Trajectory, TrajectoryPoint, TrajectoryRequest, trajectory};
 
 use crate::lmm::Fit;
 

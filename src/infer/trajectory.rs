@@ -48,6 +48,60 @@ pub struct Extremum {
     pub mean: f64,
 }
 
+/// What to evaluate the trajectory at.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TrajectoryRequest {
+    /// Number of equally spaced ages over the observed range (at least 2).
+    pub grid: usize,
+    /// Further ages at which to report the mean and rate in full.
+    pub at: Vec<f64>,
+}
+
+impl TrajectoryRequest {
+    /// A grid of `n` ages and no extra ages.
+    pub fn grid(n: usize) -> TrajectoryRequest {
+        TrajectoryRequest {
+            grid: n,
+            at: Vec::new(),
+        }
+    }
+}
+
+impl Default for TrajectoryRequest {
+    fn default() -> Self {
+        TrajectoryRequest::grid(101)
+    }
+}
+
+/// The mean and rate at one requested age, with SEs and Satterthwaite df.
+#[derive(Debug, Clone, Copy, Serialize, PartialEq)]
+pub struct AgeEstimate {
+    /// Age, years.
+    pub age: f64,
+    /// Whether the age lies outside the observed ages (an extrapolation).
+    pub extrapolated: bool,
+    /// Mean outcome.
+    pub mean: f64,
+    /// Its standard error.
+    pub se: f64,
+    /// Its Satterthwaite df.
+    pub df: f64,
+    /// Lower end of the 95% interval.
+    pub lower: f64,
+    /// Upper end.
+    pub upper: f64,
+    /// Rate of change per year.
+    pub rate: f64,
+    /// Its standard error.
+    pub rate_se: f64,
+    /// Its Satterthwaite df.
+    pub rate_df: f64,
+    /// Lower end of the 95% interval of the rate.
+    pub rate_lower: f64,
+    /// Upper end.
+    pub rate_upper: f64,
+}
+
 /// The trajectory with its turning points.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct Trajectory {
@@ -55,16 +109,19 @@ pub struct Trajectory {
     pub points: Vec<TrajectoryPoint>,
     /// Peaks and troughs strictly inside the observed range.
     pub extrema: Vec<Extremum>,
+    /// Estimates at the requested ages.
+    pub at_ages: Vec<AgeEstimate>,
 }
 
 fn dot(a: &[f64], b: &[f64]) -> f64 {
     a.iter().zip(b).map(|(x, y)| x * y).sum()
 }
 
-/// Evaluate the trajectory on `n_grid` equally spaced ages over the observed range.
-pub fn trajectory(fit: &Fit, frame: &ModelFrame, n_grid: usize) -> Trajectory {
+/// Evaluate the trajectory on the requested grid over the observed range and
+/// at the requested ages.
+pub fn trajectory(fit: &Fit, frame: &ModelFrame, request: &TrajectoryRequest) -> Trajectory {
     let (lo, hi) = frame.age_range;
-    let n_grid = n_grid.max(2);
+    let n_grid = request.grid.max(2);
     let points: Vec<TrajectoryPoint> = (0..n_grid)
         .map(|i| {
             let age = lo + (hi - lo) * i as f64 / (n_grid - 1) as f64;
@@ -84,7 +141,35 @@ pub fn trajectory(fit: &Fit, frame: &ModelFrame, n_grid: usize) -> Trajectory {
         })
         .collect();
     let extrema = extrema(fit, frame, &points);
-    Trajectory { points, extrema }
+    let at_ages = request
+        .at
+        .iter()
+        .map(|&age| {
+            let m = contrast(fit, &frame.mean_row(age));
+            let r = contrast(fit, &frame.rate_row(age));
+            let (lower, upper) = m.interval();
+            let (rate_lower, rate_upper) = r.interval();
+            AgeEstimate {
+                age,
+                extrapolated: age < lo || age > hi,
+                mean: m.estimate,
+                se: m.se,
+                df: m.df,
+                lower,
+                upper,
+                rate: r.estimate,
+                rate_se: r.se,
+                rate_df: r.df,
+                rate_lower,
+                rate_upper,
+            }
+        })
+        .collect();
+    Trajectory {
+        points,
+        extrema,
+        at_ages,
+    }
 }
 
 fn extrema(fit: &Fit, frame: &ModelFrame, points: &[TrajectoryPoint]) -> Vec<Extremum> {

@@ -274,6 +274,73 @@ pub fn write_trajectory_csv(path: &Path, t: &Trajectory) -> Result<()> {
     })
 }
 
+/// Write `predictions.csv` (one row per observation used: file row, id, age,
+/// outcome, conditional and marginal fitted values, residual) and
+/// `random_effects.csv` (one row per group: factor, level, and one column per
+/// coefficient). Returns the two paths.
+///
+/// # Errors
+/// [`Error::Output`] when a file cannot be written.
+pub fn write_predictions(dir: &Path, panel: &Panel, frame: &ModelFrame, fit: &Fit) -> Result<(PathBuf, PathBuf)> {
+    use std::fmt::Write as _;
+    ensure_dir(dir)?;
+    let pred = dir.join("predictions.csv");
+    let mut s = format!(
+        "row,{},{},{},fitted,marginal,residual\n",
+        panel.roles.id, frame.age_name, frame.outcome_name
+    );
+    for r in 0..panel.n() {
+        let _ = writeln!(
+            s,
+            "{},{},{},{},{:.8},{:.8},{:.8}",
+            panel.row[r],
+            csv_field(panel.id.label(r)),
+            panel.age[r],
+            panel.outcome[r],
+            fit.fitted[r],
+            fit.fitted_marginal[r],
+            fit.residuals[r]
+        );
+    }
+    fs::write(&pred, s).map_err(|e| Error::Output {
+        path: pred.clone(),
+        message: format!("cannot write ({e})"),
+    })?;
+    let re = dir.join("random_effects.csv");
+    let width = frame.problem.terms.iter().map(|t| t.q()).max().unwrap_or(0);
+    let mut s = String::from("factor,level");
+    for k in 1..=width {
+        let _ = write!(s, ",coefficient_{k},value_{k}");
+    }
+    s.push('\n');
+    for (t, term) in frame.problem.terms.iter().enumerate() {
+        for (lvl, name) in term.level_names.iter().enumerate() {
+            let _ = write!(s, "{},{}", csv_field(&term.factor), csv_field(name));
+            for (c, col) in term.columns.iter().enumerate() {
+                let _ = write!(s, ",{},{:.8}", csv_field(col), fit.blups[t][lvl][c]);
+            }
+            for _ in term.q()..width {
+                s.push_str(",,");
+            }
+            s.push('\n');
+        }
+    }
+    fs::write(&re, s).map_err(|e| Error::Output {
+        path: re.clone(),
+        message: format!("cannot write ({e})"),
+    })?;
+    Ok((pred, re))
+}
+
+/// Quote a CSV field when it holds a delimiter, quote or line break.
+fn csv_field(s: &str) -> String {
+    if s.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    } else {
+        s.to_string()
+    }
+}
+
 /// Paths of the files `braid fit --out DIR` writes.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct FitOutputs {

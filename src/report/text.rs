@@ -129,10 +129,14 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
             };
             let cors: Vec<String> = (0..i).map(|j| num(comp.correlation[i][j], 6, 3)).collect();
             let key = format!("sd:{}:{}", comp.factor, term);
-            let t = truth
+            let mut t = truth
                 .and_then(|tv| tv.iter().find(|(k, _)| *k == key))
                 .map(|(_, v)| format!("{v:>8.4}"))
                 .unwrap_or_default();
+            let cor_key = format!("cor:{}:{}", comp.factor, term);
+            if let Some((_, v)) = truth.and_then(|tv| tv.iter().find(|(k, _)| *k == cor_key)) {
+                t.push_str(&format!("  (correlation {v:.2})"));
+            }
             let _ = writeln!(
                 s,
                 "  {:<16}{:<10}{}   {:<22}{t}",
@@ -190,6 +194,37 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
             x.upper,
             x.mean
         );
+    }
+    if !r.trajectory.at_ages.is_empty() {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "{:<13}{:>11}   {:<24}{:>10}   {:<22}",
+            format!("At {}", r.data.age),
+            "mean",
+            "95% interval",
+            "rate/year",
+            "95% interval"
+        );
+        for a in &r.trajectory.at_ages {
+            let _ = writeln!(
+                s,
+                "  {:<11}{}   [{}, {}]  {}   [{}, {}]{}",
+                format!("{:.2}", a.age),
+                num(a.mean, 11, 3),
+                num(a.lower, 9, 3),
+                num(a.upper, 9, 3),
+                num(a.rate, 10, 3),
+                num(a.rate_lower, 8, 3),
+                num(a.rate_upper, 8, 3),
+                if a.extrapolated {
+                    "  (outside the observed ages: extrapolation)"
+                } else {
+                    ""
+                }
+            );
+        }
+        let _ = writeln!(s);
     }
     let info = &r.info;
     let _ = writeln!(

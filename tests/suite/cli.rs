@@ -182,7 +182,7 @@ fn parquet_twin_of_the_demo_panel_gives_the_same_fit() {
     assert_eq!(csv.id, pq.id);
     assert_eq!(csv.cohort, pq.cohort);
     let spec = braid::spec::ModelSpec::default();
-    let a = braid::fit_panel(&csv, &spec, 5).unwrap();
-    let b = braid::fit_panel(&pq, &spec, 5).unwrap();
+    let a = braid::fit_panel(&csv, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
+    let b = braid::fit_panel(&pq, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
     assert_eq!(a.fit.loglik, b.fit.loglik);
 }
