@@ -153,8 +153,256 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
     let mut blocks_l = Vec::new();
     let mut blocks_w = Vec::new();
     if let Some(k1) = cp.primary {
+        let out = match cp.q1 {
+            1 => primary_fixed::<1>(cp, &t[k1], &t, &mut e, keep),
+            2 => primary_fixed::<2>(cp, &t[k1], &t, &mut e, keep),
+            3 => primary_fixed::<3>(cp, &t[k1], &t, &mut e, keep),
+            4 => primary_fixed::<4>(cp, &t[k1], &t, &mut e, keep),
+            _ => primary_general(cp, &t[k1], &t, &mut e, keep),
+        };
+        logdet_z = out.0;
+        blocks_l = out.1;
+        blocks_w = out.2;
+    }
+
+    let s = Mat::from_fn(m, m, |i, j| if i >= j { e[i * m + j] } else { e[j * m + i] });
+    let llt = s.llt(Side::Lower).map_err(|_| EvalFailure::NotPositiveDefinite {
+        pivot: first_bad_pivot(&s),
+    })?;
+    let dense_l = llt.L().to_owned();
+    for k in 0..q2 {
+        logdet_z += 2.0 * dense_l[(k, k)].ln();
+    }
+    let mut logdet_x = 0.0;
+    for k in q2..q2 + p {
+        logdet_x += 2.0 * dense_l[(k, k)].ln();
+    }
+    let r = dense_l[(m - 1, m - 1)];
+    Ok(Factor {
+        pieces: Pieces {
+            logdet_z,
+            logdet_x,
+            pwrss: r * r,
+        },
+        dense_l,
+        blocks_l,
+        blocks_w,
+    })
+}
+
+/// The first pivot at which a plain Cholesky of `s` breaks down.
+fn first_bad_pivot(s: &Mat<f64>) -> usize {
+    let m = s.nrows();
+    let mut l = Mat::<f64>::zeros(m, m);
+    for j in 0..m {
+        let mut d = s[(j, j)];
+        for k in 0..j {
+            d -= l[(j, k)] * l[(j, k)];
+        }
+        if d <= 1e-12 * s[(j, j)].abs().max(1e-300) {
+            return j;
+        }
+        let d = d.sqrt();
+        l[(j, j)] = d;
+        for i in j + 1..m {
+            let mut v = s[(i, j)];
+            for k in 0..j {
+                v -= l[(i, k)] * l[(j, k)];
+            }
+            l[(i, j)] = v / d;
+        }
+    }
+    m
+}
+
+/// The profiled deviance at θ, or +∞ where the evaluation fails.
+pub fn deviance(cp: &CrossProducts, theta: &[f64], method: Method) -> f64 {
+    match evaluate(cp, theta, false) {
+        Ok(f) => f.pieces.profiled_deviance(method, cp.n, cp.p),
+        Err(_) => f64::INFINITY,
+    }
+}
+
+/// Per-level results: log|L₁|², and when kept the blocks Lᵢ and Wᵢ.
+type PrimaryOut = (f64, Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>);
+
+/// Accumulates Σ 2·ln(dᵢ) for pivots dᵢ ≥ 1 with few logarithms: the pivots
+/// are multiplied together and the logarithm taken when the product is large.
+struct LogDet {
+    sum: f64,
+    product: f64,
+}
+
+impl LogDet {
+    fn new() -> LogDet {
+        LogDet { sum: 0.0, product: 1.0 }
+    }
+    #[inline]
+    fn push(&mut self, d: f64) {
+        self.product *= d;
+        if self.product > 1e250 || self.product < 1e-250 {
+            self.sum += self.product.ln();
+            self.product = 1.0;
+        }
+    }
+    fn total(&self) -> f64 {
+        2.0 * (self.sum + self.product.ln())
+    }
+}
+
+/// The primary levels for q₁ = Q, with fixed-size arrays so the small
+/// products unroll.
+fn primary_fixed<const Q: usize>(
+    cp: &CrossProducts,
+    t1: &[f64],
+    t: &[Vec<f64>],
+    e: &mut [f64],
+    keep: bool,
+) -> PrimaryOut {
+    let m = cp.m;
+    let p = cp.p;
+    let q2 = cp.q2_total;
+    let mut tq = [[0.0f64; Q]; Q];
+    for r in 0..Q {
+        for c in 0..Q {
+            tq[r][c] = t1[r * Q + c];
+        }
+    }
+    let mut logdet = LogDet::new();
+    let mut blocks_l = Vec::new();
+    let mut blocks_w = Vec::new();
+    if keep {
+        blocks_l.reserve(cp.n1 * Q * Q);
+        blocks_w.reserve(cp.n1);
+    }
+    let mut cols: Vec<usize> = Vec::with_capacity(p + 8);
+    let mut w: Vec<[f64; Q]> = Vec::with_capacity(p + 8);
+    for i in 0..cp.n1 {
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        // A = Tᵀ G T + I.
+        let mut gt = [[0.0f64; Q]; Q];
+        for r in 0..Q {
+            for c in 0..Q {
+                let mut acc = 0.0;
+                for s in c..Q {
+                    acc += gi[r * Q + s] * tq[s][c];
+                }
+                gt[r][c] = acc;
+            }
+        }
+        let mut l = [[0.0f64; Q]; Q];
+        for j in 0..Q {
+            for r in j..Q {
+                let mut acc = if r == j { 1.0 } else { 0.0 };
+                for s in r..Q {
+                    acc += tq[s][r] * gt[s][j];
+                }
+                // acc = A[r][j]; Cholesky column j.
+                for k in 0..j {
+                    acc -= l[r][k] * l[j][k];
+                }
+                if r == j {
+                    let d = acc.sqrt();
+                    l[j][j] = d;
+                    logdet.push(d);
+                } else {
+                    l[r][j] = acc / l[j][j];
+                }
+            }
+        }
+        // Columns of B = Tᵀ Z₁ᵢᵀ [Z₂Λ₂ X y], then W = L⁻¹ B.
+        cols.clear();
+        w.clear();
+        let (lo, hi) = cp.link_ranges[i];
+        for link in &cp.links[lo..hi] {
+            let kt = cp.secondary[link.secondary];
+            let qs = cp.term_q[kt];
+            let ts = &t[kt];
+            let v = &cp.link_values[link.start..link.start + Q * qs];
+            for c in 0..qs {
+                let mut raw = [0.0f64; Q];
+                for (r, rv) in raw.iter_mut().enumerate() {
+                    let mut acc = 0.0;
+                    for s in c..qs {
+                        acc += v[r * qs + s] * ts[s * qs + c];
+                    }
+                    *rv = acc;
+                }
+                cols.push(link.offset + c);
+                w.push(raw);
+            }
+        }
+        let zi = &cp.zxy[i * Q * (p + 1)..(i + 1) * Q * (p + 1)];
+        for c in 0..=p {
+            let mut raw = [0.0f64; Q];
+            for (r, rv) in raw.iter_mut().enumerate() {
+                *rv = zi[r * (p + 1) + c];
+            }
+            cols.push(q2 + c);
+            w.push(raw);
+        }
+        for col in w.iter_mut() {
+            // b = Tᵀ raw (T lower, so Tᵀ upper).
+            let mut b = [0.0f64; Q];
+            for r in 0..Q {
+                let mut acc = 0.0;
+                for s in r..Q {
+                    acc += tq[s][r] * col[s];
+                }
+                b[r] = acc;
+            }
+            // Forward substitution L x = b.
+            for r in 0..Q {
+                let mut acc = b[r];
+                for k in 0..r {
+                    acc -= l[r][k] * b[k];
+                }
+                b[r] = acc / l[r][r];
+            }
+            *col = b;
+        }
+        // S −= WᵀW on the lower triangle; `cols` ascend.
+        for a in 0..cols.len() {
+            let row = &mut e[cols[a] * m..cols[a] * m + m];
+            let wa = w[a];
+            for b in 0..=a {
+                let wb = &w[b];
+                let mut acc = 0.0;
+                for r in 0..Q {
+                    acc += wa[r] * wb[r];
+                }
+                row[cols[b]] -= acc;
+            }
+        }
+        if keep {
+            for r in 0..Q {
+                for c in 0..Q {
+                    blocks_l.push(l[r][c]);
+                }
+            }
+            let nc = cols.len();
+            let mut vals = vec![0.0; Q * nc];
+            for (c, col) in w.iter().enumerate() {
+                for r in 0..Q {
+                    vals[r * nc + c] = col[r];
+                }
+            }
+            blocks_w.push((cols.clone(), vals));
+        }
+    }
+    (logdet.total(), blocks_l, blocks_w)
+}
+
+/// The primary levels for any q₁.
+fn primary_general(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64], keep: bool) -> PrimaryOut {
+    let m = cp.m;
+    let p = cp.p;
+    let q2 = cp.q2_total;
+    let mut logdet = LogDet::new();
+    let mut blocks_l = Vec::new();
+    let mut blocks_w = Vec::new();
+    {
         let q1 = cp.q1;
-        let t1 = &t[k1];
         let mut a = vec![0.0; q1 * q1];
         let mut tmp = vec![0.0; q1 * q1];
         let mut l = vec![0.0; q1 * q1];
@@ -194,7 +442,7 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
                 }
                 let d = d.sqrt();
                 l[j * q1 + j] = d;
-                logdet_z += 2.0 * d.ln();
+                logdet.push(d);
                 for r in j + 1..q1 {
                     let mut v = a[r * q1 + j];
                     for s in 0..j {
@@ -291,61 +539,87 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
             }
         }
     }
-
-    let s = Mat::from_fn(m, m, |i, j| if i >= j { e[i * m + j] } else { e[j * m + i] });
-    let llt = s.llt(Side::Lower).map_err(|_| EvalFailure::NotPositiveDefinite {
-        pivot: first_bad_pivot(&s),
-    })?;
-    let dense_l = llt.L().to_owned();
-    for k in 0..q2 {
-        logdet_z += 2.0 * dense_l[(k, k)].ln();
-    }
-    let mut logdet_x = 0.0;
-    for k in q2..q2 + p {
-        logdet_x += 2.0 * dense_l[(k, k)].ln();
-    }
-    let r = dense_l[(m - 1, m - 1)];
-    Ok(Factor {
-        pieces: Pieces {
-            logdet_z,
-            logdet_x,
-            pwrss: r * r,
-        },
-        dense_l,
-        blocks_l,
-        blocks_w,
-    })
+    (logdet.total(), blocks_l, blocks_w)
 }
 
-/// The first pivot at which a plain Cholesky of `s` breaks down.
-fn first_bad_pivot(s: &Mat<f64>) -> usize {
-    let m = s.nrows();
-    let mut l = Mat::<f64>::zeros(m, m);
-    for j in 0..m {
-        let mut d = s[(j, j)];
-        for k in 0..j {
-            d -= l[(j, k)] * l[(j, k)];
-        }
-        if d <= 1e-12 * s[(j, j)].abs().max(1e-300) {
-            return j;
-        }
-        let d = d.sqrt();
-        l[(j, j)] = d;
-        for i in j + 1..m {
-            let mut v = s[(i, j)];
-            for k in 0..j {
-                v -= l[(i, k)] * l[(j, k)];
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::lmm::{MixedProblem, RandomTermData};
+    use crate::simulate::Rng;
+
+    fn problem(q1: usize) -> MixedProblem {
+        let mut rng = Rng::new(5);
+        let n = 300;
+        let mut y = Vec::new();
+        let mut x = Vec::new();
+        let mut z1 = vec![Vec::new(); q1];
+        let mut lvl1 = Vec::new();
+        let mut lvl2 = Vec::new();
+        for r in 0..n {
+            y.push(rng.normal());
+            x.extend([1.0, rng.normal()]);
+            for c in 0..q1 {
+                z1[c].push(if c == 0 { 1.0 } else { rng.normal() });
             }
-            l[(i, j)] = v / d;
+            lvl1.push((r / 3) as u32);
+            lvl2.push((rng.uniform() * 7.0) as u32);
+        }
+        MixedProblem {
+            y,
+            x_names: vec!["a".into(), "b".into()],
+            x,
+            terms: vec![
+                RandomTermData {
+                    factor: "p".into(),
+                    level_names: (0..100).map(|i| i.to_string()).collect(),
+                    level: lvl1,
+                    columns: (0..q1).map(|c| c.to_string()).collect(),
+                    z: z1,
+                },
+                RandomTermData {
+                    factor: "s".into(),
+                    level_names: (0..7).map(|i| i.to_string()).collect(),
+                    level: lvl2,
+                    columns: vec!["i".into()],
+                    z: vec![vec![1.0; n]],
+                },
+            ],
         }
     }
-    m
-}
 
-/// The profiled deviance at θ, or +∞ where the evaluation fails.
-pub fn deviance(cp: &CrossProducts, theta: &[f64], method: Method) -> f64 {
-    match evaluate(cp, theta, false) {
-        Ok(f) => f.pieces.profiled_deviance(method, cp.n, cp.p),
-        Err(_) => f64::INFINITY,
+    // The fixed-size kernel and the general kernel are two codings of one
+    // algorithm: they must agree to rounding on every output.
+    #[test]
+    fn fixed_and_general_kernels_agree() {
+        for q1 in 1..=4 {
+            let prob = problem(q1);
+            let cp = CrossProducts::new(&prob);
+            let mut rng = Rng::new(9);
+            let theta: Vec<f64> = (0..prob.n_theta()).map(|_| 0.2 + rng.uniform()).collect();
+            let t = factors(&cp, &theta);
+            let k1 = cp.primary.unwrap();
+            let mut e1 = cp.dense.clone();
+            let mut e2 = cp.dense.clone();
+            let a = match q1 {
+                1 => primary_fixed::<1>(&cp, &t[k1], &t, &mut e1, true),
+                2 => primary_fixed::<2>(&cp, &t[k1], &t, &mut e1, true),
+                3 => primary_fixed::<3>(&cp, &t[k1], &t, &mut e1, true),
+                _ => primary_fixed::<4>(&cp, &t[k1], &t, &mut e1, true),
+            };
+            let b = primary_general(&cp, &t[k1], &t, &mut e2, true);
+            assert!(
+                (a.0 - b.0).abs() < 1e-9 * b.0.abs().max(1.0),
+                "q1 {q1}: {} vs {}",
+                a.0,
+                b.0
+            );
+            let m = cp.m;
+            for i in 0..m {
+                for j in 0..=i {
+                    assert!((e1[i * m + j] - e2[i * m + j]).abs() < 1e-9, "q1 {q1} S[{i},{j}]");
+                }
+            }
+        }
     }
 }

@@ -40,7 +40,7 @@ pub struct CrossProducts {
     pub zxy: Vec<f64>,
     /// Per primary level, the range of its links in [`Self::links`].
     pub link_ranges: Vec<(usize, usize)>,
-    /// All coupling blocks.
+    /// All coupling blocks; within a level, in increasing dense offset.
     pub links: Vec<Link>,
     /// Values of the coupling blocks.
     pub link_values: Vec<f64>,
@@ -124,6 +124,7 @@ impl CrossProducts {
                 let level = terms[k].level[r] as usize;
                 if level != current_level {
                     if current_level != usize::MAX {
+                        links[level_start_link..].sort_by_key(|l| l.offset);
                         link_ranges.push((level_start_link, links.len()));
                     }
                     // Levels with no rows get an empty range.
@@ -202,6 +203,7 @@ impl CrossProducts {
         }
         if primary.is_some() {
             if current_level != usize::MAX {
+                links[level_start_link..].sort_by_key(|l| l.offset);
                 link_ranges.push((level_start_link, links.len()));
             }
             while link_ranges.len() < n1 {

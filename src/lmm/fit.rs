@@ -229,47 +229,42 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
             message: "the criterion cannot be evaluated at the start values; check the data for extreme values".into(),
         });
     }
-    let mut result = optimize::minimize(dev, &start, &lower, options.optim);
-    let mut iterations = result.iterations;
-    let mut evaluations = result.evaluations + 3;
+    let mut evaluations = 3;
+    let mut iterations = 0;
     let mut restarts = 0;
-    let at_bound = |x: &[f64]| x.iter().zip(&lower).any(|(&v, &l)| v <= l);
-    if at_bound(&result.x) {
-        // Restart from the interior: boundary parameters back to their base start.
-        let restart: Vec<f64> = result
-            .x
-            .iter()
-            .zip(&lower)
-            .zip(&base)
-            .map(|((&v, &l), &b)| if v <= l { b } else { v })
-            .collect();
-        let second = optimize::minimize(dev, &restart, &lower, options.optim);
-        iterations += second.iterations;
-        evaluations += second.evaluations;
-        restarts += 1;
-        if second.value < result.value - 1e-10 {
-            result = second;
-        }
-    }
-    let polished = optimize::newton_polish(dev, &result.x, result.value, &lower);
-    evaluations += polished.evaluations;
-    let mut theta = polished.x.clone();
-    // The criterion is even in each diagonal entry of T near zero, so a zero
-    // variance is approached smoothly and the optimiser stops a hair inside
-    // the bound; snap such entries to the boundary when that costs nothing.
-    let mut best_dev = polished.value;
-    for i in 0..theta.len() {
-        if lower[i] == 0.0 && theta[i] > 0.0 && theta[i] < BOUNDARY_SNAP * base[i].max(f64::MIN_POSITIVE) {
-            let mut trial = theta.clone();
-            trial[i] = 0.0;
-            let d = dev(&trial);
-            evaluations += 1;
-            if d <= best_dev + 1e-9 {
-                theta = trial;
-                best_dev = best_dev.min(d);
+    let mut current = descend(&dev, &start, &lower, &base, options.optim);
+    iterations += current.iterations;
+    evaluations += current.evaluations;
+    // A zero diagonal entry of T is a stationary point of the criterion (it is
+    // even in that entry), so a boundary optimum is only accepted when moving
+    // back into the interior along each boundary coordinate does not lower the
+    // deviance. Otherwise restart from the best interior point found.
+    for _ in 0..MAX_RESTARTS {
+        let mut candidate: Option<(Vec<f64>, f64)> = None;
+        for i in (0..current.theta.len()).filter(|&i| current.theta[i] <= lower[i]) {
+            for scale in [0.01, 0.1, 0.5, 1.0, 2.0] {
+                let mut trial = current.theta.clone();
+                trial[i] = scale * base[i].max(1e-3);
+                let d = dev(&trial);
+                evaluations += 1;
+                if d < current.value - 1e-9 && candidate.as_ref().is_none_or(|c| d < c.1) {
+                    candidate = Some((trial, d));
+                }
             }
         }
+        let Some((from, _)) = candidate else { break };
+        let next = descend(&dev, &from, &lower, &base, options.optim);
+        iterations += next.iterations;
+        evaluations += next.evaluations;
+        restarts += 1;
+        if next.value < current.value - 1e-10 {
+            current = next;
+        } else {
+            break;
+        }
     }
+    let theta = current.theta.clone();
+    let polished = current.polished;
     let factor = criterion::evaluate(&cp, &theta, true).map_err(|_| Error::Numerical {
         step: "final evaluation".into(),
         message: "the criterion failed at the optimum; please report this with the data shape".into(),
@@ -340,6 +335,46 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
         },
         sensitivity: sensitivity.0,
     })
+}
+
+/// One descent: quasi-Newton search, Newton finish, and snapping of
+/// diagonal entries that sit a hair inside the boundary.
+struct Descent {
+    theta: Vec<f64>,
+    value: f64,
+    polished: optimize::Polished,
+    iterations: usize,
+    evaluations: usize,
+}
+
+fn descend(dev: &impl Fn(&[f64]) -> f64, start: &[f64], lower: &[f64], base: &[f64], optim: OptimOptions) -> Descent {
+    let result = optimize::minimize(dev, start, lower, optim);
+    let polished = optimize::newton_polish(dev, &result.x, result.value, lower);
+    let mut evaluations = result.evaluations + polished.evaluations;
+    let mut theta = polished.x.clone();
+    // The criterion is even in each diagonal entry of T near zero, so a zero
+    // variance is approached smoothly and the optimiser stops a hair inside
+    // the bound; snap such entries to the boundary when that costs nothing.
+    let mut value = polished.value;
+    for i in 0..theta.len() {
+        if lower[i] == 0.0 && theta[i] > 0.0 && theta[i] < BOUNDARY_SNAP * base[i].max(f64::MIN_POSITIVE) {
+            let mut trial = theta.clone();
+            trial[i] = 0.0;
+            let d = dev(&trial);
+            evaluations += 1;
+            if d <= value + 1e-9 {
+                theta = trial;
+                value = value.min(d);
+            }
+        }
+    }
+    Descent {
+        theta,
+        value,
+        polished,
+        iterations: result.iterations,
+        evaluations,
+    }
 }
 
 /// Solve the PLS system `Lᵀx = l_y` for `[u₂, β]`, then each `u₁ᵢ`.
@@ -519,6 +554,9 @@ fn components(problem: &MixedProblem, cp: &CrossProducts, theta: &[f64], sigma2:
 /// below this (the remaining improvement of the log-likelihood is then below
 /// a quarter of it).
 pub const NEWTON_DECREMENT_TOLERANCE: f64 = 1e-6;
+
+/// Restarts from the interior after a boundary optimum, at most.
+const MAX_RESTARTS: usize = 3;
 
 /// A diagonal entry of θ below this fraction of its start value is tested
 /// against the boundary (set to zero when that does not raise the deviance).

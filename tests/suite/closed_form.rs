@@ -80,7 +80,9 @@ fn reml_equals_anova_estimators_in_balanced_one_way_design() {
         let want = (msb - mse) / n as f64;
         assert!(
             rel(var_group, want, 1e-12) < CLOSED_FORM_REL,
-            "σ²_g {var_group} vs {want}"
+            "σ²_g {var_group} vs {want}: {:?}, θ {:?}",
+            fit.info,
+            fit.theta
         );
         assert!(rel(fit.beta[0], grand, 1e-12) < CLOSED_FORM_REL);
         let se = fit.se()[0];
