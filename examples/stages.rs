@@ -39,7 +39,10 @@ fn main() {
     let t_cross = t.elapsed();
     let theta: Vec<f64> = vec![0.3; frame.problem.n_theta()];
     let t = Instant::now();
-    let reps = 20;
+    let reps: u32 = std::env::var("BRAID_REPS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(20);
     for _ in 0..reps {
         std::hint::black_box(lmm::criterion::deviance(&cp, &theta, lmm::Method::Reml));
     }

@@ -97,6 +97,10 @@ pub struct FitArgs {
     /// Folder for fit.json, trajectory.csv, trajectory.png and trajectory.svg.
     #[arg(long, value_name = "DIR")]
     pub out: Option<PathBuf>,
+    /// Write the fit's JSON document to this file (no other files are written
+    /// unless --out is also given).
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
     /// Number of ages on the trajectory grid.
     #[arg(long, value_name = "N", default_value_t = 101)]
     pub grid: usize,

@@ -71,6 +71,8 @@ pub struct FitConfig {
     pub model: ModelSpec,
     /// Output folder.
     pub out: Option<PathBuf>,
+    /// A JSON file to write.
+    pub json: Option<PathBuf>,
     /// Where to evaluate the trajectory.
     pub trajectory: TrajectoryRequest,
     /// Whether to write per-row predictions and BLUPs.
@@ -215,6 +217,7 @@ impl FitConfig {
             roles,
             model,
             out: args.out.clone(),
+            json: args.json.clone(),
             trajectory: TrajectoryRequest {
                 grid: args.grid,
                 at: args.at.clone(),

@@ -54,6 +54,12 @@ fn fit_command(config: &FitConfig) -> Result<()> {
     if !config.quiet {
         print!("{}", text::fit_summary(&analysis.report, None));
     }
+    if let Some(path) = &config.json {
+        if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+            report::ensure_dir(parent)?;
+        }
+        report::write_json(path, &analysis.report)?;
+    }
     if let Some(dir) = &config.out {
         write_outputs(dir, &panel, &analysis, config.lines, config.quiet)?;
         if config.predictions {

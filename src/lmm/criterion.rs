@@ -11,6 +11,9 @@
 //! From the factors: `log|L_Z|² = Σᵢ log|Lᵢ|² + log|L₂|²`, `log|R_X|²` from the
 //! fixed block, and the penalized residual sum of squares `r² = L[m,m]²`.
 
+// Index loops mirror the matrix notation of the derivation.
+#![allow(clippy::needless_range_loop)]
+
 use faer::{Mat, Side};
 
 use super::crossprod::CrossProducts;
@@ -275,6 +278,8 @@ fn primary_fixed<const Q: usize>(
         blocks_l.reserve(cp.n1 * Q * Q);
         blocks_w.reserve(cp.n1);
     }
+    // The X–y block of Σ WᵢᵀWᵢ, packed lower triangle.
+    let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
     let mut cols: Vec<usize> = Vec::with_capacity(p + 8);
     let mut w: Vec<[f64; Q]> = Vec::with_capacity(p + 8);
     for i in 0..cp.n1 {
@@ -291,6 +296,8 @@ fn primary_fixed<const Q: usize>(
             }
         }
         let mut l = [[0.0f64; Q]; Q];
+        // Reciprocal pivots: divisions are replaced by multiplications.
+        let mut inv = [0.0f64; Q];
         for j in 0..Q {
             for r in j..Q {
                 let mut acc = if r == j { 1.0 } else { 0.0 };
@@ -304,9 +311,10 @@ fn primary_fixed<const Q: usize>(
                 if r == j {
                     let d = acc.sqrt();
                     l[j][j] = d;
+                    inv[j] = 1.0 / d;
                     logdet.push(d);
                 } else {
-                    l[r][j] = acc / l[j][j];
+                    l[r][j] = acc * inv[j];
                 }
             }
         }
@@ -357,21 +365,29 @@ fn primary_fixed<const Q: usize>(
                 for k in 0..r {
                     acc -= l[r][k] * b[k];
                 }
-                b[r] = acc / l[r][r];
+                b[r] = acc * inv[r];
             }
             *col = b;
         }
-        // S −= WᵀW on the lower triangle; `cols` ascend.
-        for a in 0..cols.len() {
+        // S −= WᵀW on the lower triangle; `cols` ascend, the last p + 1
+        // columns are always X and y, whose block is summed locally.
+        let n_link = cols.len() - (p + 1);
+        for a in 0..n_link {
             let row = &mut e[cols[a] * m..cols[a] * m + m];
             let wa = w[a];
             for b in 0..=a {
-                let wb = &w[b];
-                let mut acc = 0.0;
-                for r in 0..Q {
-                    acc += wa[r] * wb[r];
-                }
-                row[cols[b]] -= acc;
+                row[cols[b]] -= dot::<Q>(&wa, &w[b]);
+            }
+        }
+        for a in 0..=p {
+            let wa = w[n_link + a];
+            let row = &mut e[(q2 + a) * m..(q2 + a) * m + m];
+            for b in 0..n_link {
+                row[cols[b]] -= dot::<Q>(&wa, &w[b]);
+            }
+            let acc = &mut xy[a * (a + 1) / 2..a * (a + 1) / 2 + a + 1];
+            for (b, v) in acc.iter_mut().enumerate() {
+                *v += dot::<Q>(&wa, &w[n_link + b]);
             }
         }
         if keep {
@@ -390,7 +406,21 @@ fn primary_fixed<const Q: usize>(
             blocks_w.push((cols.clone(), vals));
         }
     }
+    for a in 0..=p {
+        for b in 0..=a {
+            e[(q2 + a) * m + q2 + b] -= xy[a * (a + 1) / 2 + b];
+        }
+    }
     (logdet.total(), blocks_l, blocks_w)
+}
+
+#[inline(always)]
+fn dot<const Q: usize>(a: &[f64; Q], b: &[f64; Q]) -> f64 {
+    let mut acc = 0.0;
+    for r in 0..Q {
+        acc += a[r] * b[r];
+    }
+    acc
 }
 
 /// The primary levels for any q₁.

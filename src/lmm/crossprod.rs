@@ -58,6 +58,13 @@ pub struct CrossProducts {
     pub theta_offset: Vec<usize>,
     /// q of each term (problem order).
     pub term_q: Vec<usize>,
+    /// The fixed-effect column that is all ones, if any.
+    pub intercept: Option<usize>,
+    /// The constant subtracted from y before forming the cross-products (the
+    /// mean of y when there is an intercept column, else 0). It only moves the
+    /// intercept's estimate, by exactly this amount, and it keeps yᵀy small so
+    /// that r² is computed without cancellation.
+    pub y_shift: f64,
 }
 
 impl CrossProducts {
@@ -82,6 +89,11 @@ impl CrossProducts {
         }
         let m = q2_total + p + 1;
         let mut dense = vec![0.0; m * m];
+        let intercept = (0..p).find(|&j| (0..n).all(|r| problem.x[r * p + j] == 1.0));
+        let y_shift = match intercept {
+            Some(_) if n > 0 => problem.y.iter().sum::<f64>() / n as f64,
+            _ => 0.0,
+        };
 
         // Rows grouped by primary level (counting sort), so each level's
         // links are gathered in one place.
@@ -155,7 +167,7 @@ impl CrossProducts {
                     for (j, xv) in xr.iter().enumerate() {
                         row[j] += z1[a] * xv;
                     }
-                    row[p] += z1[a] * problem.y[r];
+                    row[p] += z1[a] * (problem.y[r] - y_shift);
                 }
             }
             w.clear();
@@ -193,7 +205,7 @@ impl CrossProducts {
             for (j, &xv) in xr.iter().enumerate() {
                 w.push((q2_total + j, xv));
             }
-            w.push((m - 1, problem.y[r]));
+            w.push((m - 1, problem.y[r] - y_shift));
             for (ia, &(a, va)) in w.iter().enumerate() {
                 let row = &mut dense[a * m..(a + 1) * m];
                 for &(b, vb) in &w[..=ia] {
@@ -236,6 +248,8 @@ impl CrossProducts {
             dense,
             theta_offset,
             term_q: terms.iter().map(|t| t.q()).collect(),
+            intercept,
+            y_shift,
         }
     }
 }

@@ -169,6 +169,24 @@ fn base_start(problem: &MixedProblem) -> Vec<f64> {
     theta
 }
 
+/// The search scale of each θ entry: the start value of its row's diagonal.
+fn row_scales(problem: &MixedProblem, base: &[f64]) -> Vec<f64> {
+    let mut scales = Vec::with_capacity(base.len());
+    let mut offset = 0;
+    for t in &problem.terms {
+        let q = t.q();
+        // Position of diagonal (i, i) in the column-major lower triangle.
+        let diag_pos = |i: usize| (0..i).map(|j| q - j).sum::<usize>();
+        for j in 0..q {
+            for i in j..q {
+                scales.push(base[offset + diag_pos(i)].max(1e-12));
+            }
+        }
+        offset += q * (q + 1) / 2;
+    }
+    scales
+}
+
 /// Fit a linear mixed model by REML or ML.
 ///
 /// # Errors
@@ -229,10 +247,20 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
             message: "the criterion cannot be evaluated at the start values; check the data for extreme values".into(),
         });
     }
+    // The search runs on θ divided by a scale per entry (a diagonal entry's
+    // start value, shared by the off-diagonal entries of its row), so that all
+    // coordinates are of order one whatever the units of the slope variables.
+    let theta_scale = row_scales(problem, &base);
+    let sdev = |x: &[f64]| {
+        let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
+        dev(&th)
+    };
+    let start_x: Vec<f64> = start.iter().zip(&theta_scale).map(|(a, s)| a / s).collect();
+    let unit: Vec<f64> = base.iter().zip(&theta_scale).map(|(a, s)| a / s).collect();
     let mut evaluations = 3;
     let mut iterations = 0;
     let mut restarts = 0;
-    let mut current = descend(&dev, &start, &lower, &base, options.optim);
+    let mut current = descend(&sdev, &start_x, &lower, &unit, options.optim);
     iterations += current.iterations;
     evaluations += current.evaluations;
     // A zero diagonal entry of T is a stationary point of the criterion (it is
@@ -244,8 +272,8 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
         for i in (0..current.theta.len()).filter(|&i| current.theta[i] <= lower[i]) {
             for scale in [0.01, 0.1, 0.5, 1.0, 2.0] {
                 let mut trial = current.theta.clone();
-                trial[i] = scale * base[i].max(1e-3);
-                let d = dev(&trial);
+                trial[i] = scale;
+                let d = sdev(&trial);
                 evaluations += 1;
                 if d < current.value - 1e-9 && candidate.as_ref().is_none_or(|c| d < c.1) {
                     candidate = Some((trial, d));
@@ -253,7 +281,7 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
             }
         }
         let Some((from, _)) = candidate else { break };
-        let next = descend(&dev, &from, &lower, &base, options.optim);
+        let next = descend(&sdev, &from, &lower, &unit, options.optim);
         iterations += next.iterations;
         evaluations += next.evaluations;
         restarts += 1;
@@ -263,7 +291,7 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
             break;
         }
     }
-    let theta = current.theta.clone();
+    let theta: Vec<f64> = current.theta.iter().zip(&theta_scale).map(|(x, s)| x * s).collect();
     let polished = current.polished;
     let factor = criterion::evaluate(&cp, &theta, true).map_err(|_| Error::Numerical {
         step: "final evaluation".into(),
@@ -283,7 +311,7 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     let residuals: Vec<f64> = problem.y.iter().zip(&fitted).map(|(y, f)| y - f).collect();
     let random = components(problem, &cp, &theta, sigma2);
 
-    let (sensitivity, curvature) = sensitivity(&cp, &theta, &free, method, sigma2);
+    let (sensitivity, curvature) = sensitivity(&cp, &theta, &theta_scale, &free, method, sigma2);
     evaluations += sensitivity.1;
     let min_curvature = curvature;
     let mut messages = Vec::new();
@@ -392,7 +420,10 @@ fn solve_pls(cp: &CrossProducts, f: &Factor) -> (Vec<f64>, Vec<Vec<f64>>) {
         x[i] = v / l[(i, i)];
     }
     let q2 = cp.q2_total;
-    let beta = x[q2..q2 + cp.p].to_vec();
+    let mut beta = x[q2..q2 + cp.p].to_vec();
+    if let Some(j) = cp.intercept {
+        beta[j] += cp.y_shift;
+    }
     let mut u = vec![Vec::new(); cp.term_q.len()];
     for (s, &kt) in cp.secondary.iter().enumerate() {
         let end = if s + 1 < cp.secondary.len() {
@@ -567,100 +598,145 @@ pub const BOUNDARY_SNAP: f64 = 1e-4;
 /// Richardson extrapolation, so the error is O(h⁴).
 const HESSIAN_STEP: f64 = 2e-3;
 
-/// The deviance Hessian over φ = (θ_free, σ²) by central differences, its
-/// inverse (×2) and the derivatives of cov(β̂) for Satterthwaite df.
-/// Returns the sensitivity with the number of evaluations, and the smallest
-/// eigenvalue of the θ_free block.
+/// Derivatives at θ of the θ-dependent pieces, over the free coordinates, by
+/// central differences with steps `h`: the gradient and Hessian of
+/// A(θ) (= log|L_Z|², plus log|R_X|² for REML) and of r²(θ), and ∂cov(β̂)/∂θ
+/// at a fixed σ².
+struct PieceDerivatives {
+    a_hess: Vec<f64>,
+    r2_grad: Vec<f64>,
+    r2_hess: Vec<f64>,
+    dcov: Vec<Vec<f64>>,
+}
+
+fn piece_derivatives(
+    cp: &CrossProducts,
+    theta: &[f64],
+    free: &[usize],
+    h: &[f64],
+    method: Method,
+    sigma2: f64,
+    evals: &mut usize,
+) -> Option<PieceDerivatives> {
+    let d = free.len();
+    let p = cp.p;
+    let a_of = |f: &Factor| match method {
+        Method::Reml => f.pieces.logdet_z + f.pieces.logdet_x,
+        Method::Ml => f.pieces.logdet_z,
+    };
+    let mut at = |moves: &[(usize, f64)]| -> Option<Factor> {
+        let mut th = theta.to_vec();
+        for &(j, v) in moves {
+            th[free[j]] += v;
+        }
+        *evals += 1;
+        criterion::evaluate(cp, &th, false).ok()
+    };
+    let f0 = at(&[])?;
+    let (a0, r0) = (a_of(&f0), f0.pieces.pwrss);
+    let mut a_hess = vec![0.0; d * d];
+    let mut r2_hess = vec![0.0; d * d];
+    let mut r2_grad = vec![0.0; d];
+    let mut dcov = Vec::with_capacity(d);
+    for i in 0..d {
+        let fp = at(&[(i, h[i])])?;
+        let fm = at(&[(i, -h[i])])?;
+        a_hess[i * d + i] = (a_of(&fp) - 2.0 * a0 + a_of(&fm)) / (h[i] * h[i]);
+        r2_hess[i * d + i] = (fp.pieces.pwrss - 2.0 * r0 + fm.pieces.pwrss) / (h[i] * h[i]);
+        r2_grad[i] = (fp.pieces.pwrss - fm.pieces.pwrss) / (2.0 * h[i]);
+        let (cp_, cm_) = (
+            fixed_cov(&fp, cp.q2_total, p, sigma2),
+            fixed_cov(&fm, cp.q2_total, p, sigma2),
+        );
+        dcov.push(cp_.iter().zip(&cm_).map(|(x, y)| (x - y) / (2.0 * h[i])).collect());
+        for j in 0..i {
+            let mut av = [0.0; 4];
+            let mut rv = [0.0; 4];
+            for (k, (si, sj)) in [(1.0, 1.0), (1.0, -1.0), (-1.0, 1.0), (-1.0, -1.0)].iter().enumerate() {
+                let f = at(&[(i, si * h[i]), (j, sj * h[j])])?;
+                av[k] = a_of(&f);
+                rv[k] = f.pieces.pwrss;
+            }
+            let den = 4.0 * h[i] * h[j];
+            let va = (av[0] - av[1] - av[2] + av[3]) / den;
+            let vr = (rv[0] - rv[1] - rv[2] + rv[3]) / den;
+            a_hess[i * d + j] = va;
+            a_hess[j * d + i] = va;
+            r2_hess[i * d + j] = vr;
+            r2_hess[j * d + i] = vr;
+        }
+    }
+    Some(PieceDerivatives {
+        a_hess,
+        r2_grad,
+        r2_hess,
+        dcov,
+    })
+}
+
+/// The deviance Hessian over φ = (θ_free, σ²), its inverse (×2) and the
+/// derivatives of cov(β̂), for Satterthwaite df. The θ-derivatives of the
+/// pieces are central differences at steps h and h/2 combined by Richardson
+/// extrapolation; the σ² derivatives are exact, since
+/// D(θ, σ²) = A(θ) + ν log(2πσ²) + r²(θ)/σ². Returns the sensitivity with the
+/// number of evaluations, and the smallest eigenvalue of the θ_free block.
 fn sensitivity(
     cp: &CrossProducts,
     theta: &[f64],
+    theta_scale: &[f64],
     free: &[usize],
     method: Method,
     sigma2: f64,
 ) -> ((VarianceSensitivity, usize), Option<f64>) {
     let n = cp.n;
     let p = cp.p;
-    let k = free.len() + 1;
+    let d = free.len();
+    let k = d + 1;
+    let nu = match method {
+        Method::Reml => (n - p) as f64,
+        Method::Ml => n as f64,
+    };
     let mut evals = 0usize;
-    let mut phi: Vec<f64> = free.iter().map(|&i| theta[i]).collect();
-    phi.push(sigma2);
-    let theta_at = |ph: &[f64]| {
-        let mut th = theta.to_vec();
-        for (j, &i) in free.iter().enumerate() {
-            th[i] = ph[j];
+    let h: Vec<f64> = free
+        .iter()
+        .map(|&i| HESSIAN_STEP * theta[i].abs().max(theta_scale[i]))
+        .collect();
+    let h2: Vec<f64> = h.iter().map(|v| v / 2.0).collect();
+    let coarse = piece_derivatives(cp, theta, free, &h, method, sigma2, &mut evals);
+    let fine = piece_derivatives(cp, theta, free, &h2, method, sigma2, &mut evals);
+    let c0 = criterion::evaluate(cp, theta, false)
+        .ok()
+        .map(|f| fixed_cov(&f, cp.q2_total, p, sigma2));
+    evals += 1;
+    let (Some(coarse), Some(fine), Some(c0)) = (coarse, fine, c0) else {
+        let nan = VarianceSensitivity {
+            acov: vec![f64::NAN; k * k],
+            dcov: vec![vec![f64::NAN; p * p]; k],
+        };
+        return ((nan, evals), None);
+    };
+    let rich = |c: &[f64], f: &[f64]| -> Vec<f64> { c.iter().zip(f).map(|(c, f)| (4.0 * f - c) / 3.0).collect() };
+    let a_hess = rich(&coarse.a_hess, &fine.a_hess);
+    let r2_hess = rich(&coarse.r2_hess, &fine.r2_hess);
+    let r2_grad = rich(&coarse.r2_grad, &fine.r2_grad);
+    let r2 = sigma2 * nu;
+    let s2 = sigma2 * sigma2;
+    let mut hess = vec![0.0; k * k];
+    for i in 0..d {
+        for j in 0..d {
+            hess[i * k + j] = a_hess[i * d + j] + r2_hess[i * d + j] / sigma2;
         }
-        th
-    };
-    let base = criterion::evaluate(cp, theta, false).ok();
-    // Evaluations at the base θ (σ² perturbed only) reuse its factor.
-    let factor_at = |ph: &[f64], evals: &mut usize| -> Option<Factor> {
-        if ph[..k - 1] == phi[..k - 1] {
-            return base.clone();
-        }
-        *evals += 1;
-        criterion::evaluate(cp, &theta_at(ph), false).ok()
-    };
-    let dev_at = |ph: &[f64], evals: &mut usize| -> f64 {
-        factor_at(ph, evals).map_or(f64::NAN, |f| f.pieces.deviance_at(method, n, p, ph[k - 1]))
-    };
-    let cov_at = |ph: &[f64], evals: &mut usize| -> Vec<f64> {
-        factor_at(ph, evals).map_or_else(|| vec![f64::NAN; p * p], |f| fixed_cov(&f, cp.q2_total, p, ph[k - 1]))
-    };
-    let f0 = dev_at(&phi, &mut evals);
-    let hessian_with = |scale: f64, evals: &mut usize| -> Vec<f64> {
-        let h: Vec<f64> = phi.iter().map(|v| scale * v.abs().max(1e-2)).collect();
-        let mut hess = vec![0.0; k * k];
-        for a in 0..k {
-            let mut pp = phi.clone();
-            pp[a] += h[a];
-            let fp = dev_at(&pp, evals);
-            pp[a] = phi[a] - h[a];
-            let fm = dev_at(&pp, evals);
-            hess[a * k + a] = (fp - 2.0 * f0 + fm) / (h[a] * h[a]);
-            for b in 0..a {
-                let mut q = phi.clone();
-                let mut vals = [0.0; 4];
-                for (idx, (sa, sb)) in [(1.0, 1.0), (1.0, -1.0), (-1.0, 1.0), (-1.0, -1.0)].iter().enumerate() {
-                    q[a] = phi[a] + sa * h[a];
-                    q[b] = phi[b] + sb * h[b];
-                    vals[idx] = dev_at(&q, evals);
-                }
-                let v = (vals[0] - vals[1] - vals[2] + vals[3]) / (4.0 * h[a] * h[b]);
-                hess[a * k + b] = v;
-                hess[b * k + a] = v;
-            }
-        }
-        hess
-    };
-    let dcov_with = |scale: f64, evals: &mut usize| -> Vec<Vec<f64>> {
-        (0..k - 1)
-            .map(|a| {
-                let h = scale * phi[a].abs().max(1e-2);
-                let mut pp = phi.clone();
-                pp[a] += h;
-                let c1 = cov_at(&pp, evals);
-                pp[a] = phi[a] - h;
-                let c2 = cov_at(&pp, evals);
-                c1.iter().zip(&c2).map(|(x, y)| (x - y) / (2.0 * h)).collect()
-            })
-            .collect()
-    };
-    let richardson = |coarse: &[f64], fine: &[f64]| -> Vec<f64> {
-        coarse.iter().zip(fine).map(|(c, f)| (4.0 * f - c) / 3.0).collect()
-    };
-    let hess = richardson(
-        &hessian_with(HESSIAN_STEP, &mut evals),
-        &hessian_with(HESSIAN_STEP / 2.0, &mut evals),
-    );
-    let coarse = dcov_with(HESSIAN_STEP, &mut evals);
-    let fine = dcov_with(HESSIAN_STEP / 2.0, &mut evals);
-    let mut dcov: Vec<Vec<f64>> = coarse.iter().zip(&fine).map(|(c, f)| richardson(c, f)).collect();
+        let v = -r2_grad[i] / s2;
+        hess[i * k + d] = v;
+        hess[d * k + i] = v;
+    }
+    hess[d * k + d] = -nu / s2 + 2.0 * r2 / (s2 * sigma2);
+    let mut dcov: Vec<Vec<f64>> = coarse.dcov.iter().zip(&fine.dcov).map(|(c, f)| rich(c, f)).collect();
     // ∂cov(β̂)/∂σ² = cov(β̂)/σ² exactly.
-    let c0 = cov_at(&phi, &mut evals);
     dcov.push(c0.iter().map(|v| v / sigma2).collect());
     let hm = Mat::from_fn(k, k, |i, j| hess[i * k + j]);
-    let min_curvature = if k > 1 {
-        let sub = Mat::from_fn(k - 1, k - 1, |i, j| hess[i * k + j]);
+    let min_curvature = if d > 0 {
+        let sub = Mat::from_fn(d, d, |i, j| hess[i * k + j]);
         sub.self_adjoint_eigenvalues(faer::Side::Lower)
             .ok()
             .and_then(|e| e.into_iter().reduce(f64::min))
