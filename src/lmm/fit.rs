@@ -187,6 +187,98 @@ fn row_scales(problem: &MixedProblem, base: &[f64]) -> Vec<f64> {
     scales
 }
 
+/// Moment start for the primary term (Swamy-type): per-level least-squares
+/// coefficients b̂ᵢ of the OLS residuals on the term's columns, whose
+/// covariance, less the average sampling covariance σ̂²·(ZᵢᵀZᵢ)⁻¹, estimates
+/// the random-effect covariance. Other terms keep their scale-aware start.
+/// `None` when too few levels have more rows than coefficients.
+fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f64]) -> Option<Vec<f64>> {
+    let k1 = cp.primary?;
+    let q = cp.q1;
+    let (n, p, m) = (cp.n, cp.p, cp.m);
+    let q2 = cp.q2_total;
+    // OLS on the (shifted) response from the dense cross-products.
+    let xtx = Mat::from_fn(p, p, |i, j| cp.dense[(q2 + i) * m + q2 + j]);
+    let llt = xtx.llt(faer::Side::Lower).ok()?;
+    let mut rhs = Mat::from_fn(p, 1, |i, _| cp.dense[(q2 + i) * m + m - 1]);
+    use faer::linalg::solvers::SolveCore;
+    llt.solve_in_place_with_conj(faer::Conj::No, rhs.as_mut());
+    let beta: Vec<f64> = (0..p).map(|i| rhs[(i, 0)]).collect();
+    let term = &problem.terms[k1];
+    let levels = term.n_levels();
+    let mut zte = vec![0.0; levels * q];
+    let mut ete = vec![0.0; levels];
+    let mut count = vec![0usize; levels];
+    for r in 0..n {
+        let xb: f64 = problem.x[r * p..(r + 1) * p].iter().zip(&beta).map(|(a, b)| a * b).sum();
+        let e = problem.y[r] - cp.y_shift - xb;
+        let l = term.level[r] as usize;
+        for c in 0..q {
+            zte[l * q + c] += term.z[c][r] * e;
+        }
+        ete[l] += e * e;
+        count[l] += 1;
+    }
+    let mut sum_bb = vec![0.0; q * q];
+    let mut sum_ginv = vec![0.0; q * q];
+    let (mut rss, mut df, mut used) = (0.0, 0usize, 0usize);
+    for l in 0..levels {
+        if count[l] <= q {
+            continue;
+        }
+        let g = Mat::from_fn(q, q, |a, b| cp.g[l * q * q + a * q + b]);
+        let Ok(gl) = g.llt(faer::Side::Lower) else { continue };
+        use faer::linalg::solvers::DenseSolveCore;
+        let ginv = gl.inverse();
+        let b: Vec<f64> = (0..q).map(|a| (0..q).map(|c| ginv[(a, c)] * zte[l * q + c]).sum()).collect();
+        rss += ete[l] - (0..q).map(|a| b[a] * zte[l * q + a]).sum::<f64>();
+        df += count[l] - q;
+        used += 1;
+        for a in 0..q {
+            for c in 0..q {
+                sum_bb[a * q + c] += b[a] * b[c];
+                sum_ginv[a * q + c] += ginv[(a, c)];
+            }
+        }
+    }
+    if used < 10 || df == 0 {
+        return None;
+    }
+    let sigma2 = (rss / df as f64).max(f64::MIN_POSITIVE);
+    let mut cov = Mat::from_fn(q, q, |a, c| (sum_bb[a * q + c] - sigma2 * sum_ginv[a * q + c]) / used as f64 / sigma2);
+    // Keep the estimate positive definite: floor the diagonal, then shrink
+    // the off-diagonal part until the Cholesky factor exists.
+    let floor: Vec<f64> = (0..q).map(|a| (0.01 * sum_bb[a * q + a] / used as f64 / sigma2).max(1e-8)).collect();
+    for a in 0..q {
+        cov[(a, a)] = cov[(a, a)].max(floor[a]);
+    }
+    let mut factor = None;
+    for _ in 0..20 {
+        if let Ok(l) = cov.llt(faer::Side::Lower) {
+            factor = Some(l.L().to_owned());
+            break;
+        }
+        for a in 0..q {
+            for c in 0..q {
+                if a != c {
+                    cov[(a, c)] *= 0.5;
+                }
+            }
+        }
+    }
+    let factor = factor?;
+    let mut start = base.to_vec();
+    let off = cp.theta_offset[k1];
+    let mut k = 0;
+    for j in 0..q {
+        for i in j..q {
+            start[off + k] = factor[(i, j)];
+            k += 1;
+        }
+    }
+    Some(start)
+}
+
 /// Fit a linear mixed model by REML or ML.
 ///
 /// # Errors
@@ -229,12 +321,16 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
         });
     }
 
-    // Choose the best of three scalings of the scale-aware start.
+    // Start from the best of three scalings of the scale-aware start and,
+    // when the design allows it, a moment estimate for the primary term.
     let base = base_start(problem);
     let mut start = base.clone();
     let mut best = f64::INFINITY;
-    for s in [0.2, 1.0, 3.0] {
-        let cand: Vec<f64> = base.iter().map(|v| v * s).collect();
+    let mut candidates: Vec<Vec<f64>> = [0.2, 1.0, 3.0].iter().map(|s| base.iter().map(|v| v * s).collect()).collect();
+    if let Some(m) = moment_start(problem, &cp, &base) {
+        candidates.push(m);
+    }
+    for cand in candidates {
         let d = dev(&cand);
         if d < best {
             best = d;
@@ -257,7 +353,7 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     };
     let start_x: Vec<f64> = start.iter().zip(&theta_scale).map(|(a, s)| a / s).collect();
     let unit: Vec<f64> = base.iter().zip(&theta_scale).map(|(a, s)| a / s).collect();
-    let mut evaluations = 3;
+    let mut evaluations = 4;
     let mut iterations = 0;
     let mut restarts = 0;
     let mut current = descend(&sdev, &start_x, &lower, &unit, options.optim);
@@ -376,9 +472,27 @@ struct Descent {
 }
 
 fn descend(dev: &impl Fn(&[f64]) -> f64, start: &[f64], lower: &[f64], base: &[f64], optim: OptimOptions) -> Descent {
-    let result = optimize::minimize(dev, start, lower, optim);
-    let polished = optimize::newton_polish(dev, &result.x, result.value, lower);
-    let mut evaluations = result.evaluations + polished.evaluations;
+    // The search stops early and hands over to the Newton finish; when the
+    // finish cannot certify a minimum (the point is not yet in the region of
+    // positive curvature), the search resumes with a tighter tolerance.
+    let mut evaluations = 0;
+    let mut iterations = 0;
+    let mut x = start.to_vec();
+    let mut polished = None;
+    for tolerance in [optim.value_tolerance, optim.value_tolerance * 1e-3, optim.value_tolerance * 1e-6] {
+        let result = optimize::minimize(dev, &x, lower, OptimOptions { value_tolerance: tolerance, ..optim });
+        iterations += result.iterations;
+        evaluations += result.evaluations;
+        let p = optimize::newton_polish(dev, &result.x, result.value, lower);
+        evaluations += p.evaluations;
+        x = p.x.clone();
+        let done = p.decrement.is_some_and(|d| d < NEWTON_DECREMENT_TOLERANCE);
+        polished = Some(p);
+        if done {
+            break;
+        }
+    }
+    let mut polished = polished.expect("at least one round");
     let mut theta = polished.x.clone();
     // The criterion is even in each diagonal entry of T near zero, so a zero
     // variance is approached smoothly and the optimiser stops a hair inside
@@ -396,11 +510,18 @@ fn descend(dev: &impl Fn(&[f64]) -> f64, start: &[f64], lower: &[f64], base: &[f
             }
         }
     }
+    if theta != polished.x {
+        // Certify the snapped point over the coordinates still free.
+        polished = optimize::newton_polish(dev, &theta, value, lower);
+        evaluations += polished.evaluations;
+        theta = polished.x.clone();
+        value = polished.value;
+    }
     Descent {
         theta,
         value,
         polished,
-        iterations: result.iterations,
+        iterations,
         evaluations,
     }
 }

@@ -23,7 +23,7 @@ impl Default for OptimOptions {
     fn default() -> Self {
         OptimOptions {
             gradient_tolerance: 1e-6,
-            value_tolerance: 1e-9,
+            value_tolerance: 1e-5,
             max_iterations: 500,
         }
     }
@@ -120,8 +120,35 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
         };
     }
     let mut g = forward_gradient(&mut f, &x, fx, &mut evals);
+    // Initial inverse Hessian: the reciprocal diagonal curvatures from second
+    // differences (2 evaluations per coordinate), so the first steps are
+    // already on the right scale in every coordinate.
     let mut h = identity(d);
     let mut h_scaled = false;
+    let mut diag = Vec::with_capacity(d);
+    let mut xt = x.clone();
+    for i in 0..d {
+        let step = 1e-3 * x[i].abs().max(1e-1);
+        let lo = if x[i] - step >= lower[i] { x[i] - step } else { x[i] + 2.0 * step };
+        xt[i] = x[i] + step;
+        let f1 = f(&xt);
+        xt[i] = lo;
+        let f2 = f(&xt);
+        xt[i] = x[i];
+        evals += 2;
+        let c = if lo < x[i] {
+            (f1 - 2.0 * fx + f2) / (step * step)
+        } else {
+            (fx - 2.0 * f1 + f2) / (step * step)
+        };
+        diag.push(c);
+    }
+    if diag.iter().all(|c| c.is_finite() && *c > 0.0) {
+        for i in 0..d {
+            h[i * d + i] = 1.0 / diag[i];
+        }
+        h_scaled = true;
+    }
     let mut small_steps = 0;
     let mut converged = false;
     let mut iterations = 0;
@@ -207,7 +234,7 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
         x = xn;
         fx = fnew;
         g = gn;
-        if improvement < opts.value_tolerance * (1.0 + fx.abs()) {
+        if improvement < opts.value_tolerance {
             small_steps += 1;
             if small_steps >= 2 {
                 converged = projected_norm(&x, &g, lower) < 1e-3;
