@@ -129,7 +129,11 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
     let mut xt = x.clone();
     for i in 0..d {
         let step = 1e-3 * x[i].abs().max(1e-1);
-        let lo = if x[i] - step >= lower[i] { x[i] - step } else { x[i] + 2.0 * step };
+        let lo = if x[i] - step >= lower[i] {
+            x[i] - step
+        } else {
+            x[i] + 2.0 * step
+        };
         xt[i] = x[i] + step;
         let f1 = f(&xt);
         xt[i] = lo;
