@@ -13,7 +13,8 @@ pub struct OptimOptions {
     /// Stop when the largest projected gradient component is below this.
     pub gradient_tolerance: f64,
     /// Stop when an iteration improves the objective by less than this
-    /// (relative to `1 + |f|`) twice in a row.
+    /// (absolute, in deviance units) twice in a row; the Newton finish then
+    /// takes over.
     pub value_tolerance: f64,
     /// Upper limit on iterations.
     pub max_iterations: usize,

@@ -49,6 +49,23 @@ def simulate(seed, entry_ages, per_cohort, waves, sd_int, sd_slope, corr, sd_sch
     return pd.DataFrame(rows)
 
 
+def simulate_crossed(seed, n, periods, cohorts, sd_period, sd_cohort, sd_res):
+    """An invented repeated cross-section: each row a different person, with
+    crossed period and cohort intercepts."""
+    rng = np.random.default_rng(seed)
+    pe = sd_period * rng.standard_normal(periods)
+    ce = sd_cohort * rng.standard_normal(cohorts)
+    rows = []
+    for i in range(n):
+        p = int(rng.integers(0, periods))
+        c = int(rng.integers(0, cohorts))
+        age = 10 + rng.uniform(0, 14)
+        a = age - 16.0
+        y = 50 + 1.6 * a - 0.12 * a * a + pe[p] + ce[c] + sd_res * rng.standard_normal()
+        rows.append(dict(person=f"R{i + 1:05d}", period=2030 + p, cohort=1990 + c, age=round(age, 4), score=round(y, 4)))
+    return pd.DataFrame(rows)
+
+
 def gls_se(model, result):
     """sqrt(diag((X'V^-1X)^-1)) * sqrt(scale) at the fitted covariance parameters."""
     scale = result.scale
@@ -127,6 +144,11 @@ def main():
     sim_plain.to_csv("tests/data/sim_plain.csv", index=False)
     sim_school.to_csv("tests/data/sim_school.csv", index=False)
     sim_zero.to_csv("tests/data/sim_zero_slope.csv", index=False)
+    sim_crossed = simulate_crossed(14, 1500, 8, 12, 1.5, 2.0, 3.0)
+    sim_crossed.to_csv("tests/data/sim_crossed.csv", index=False)
+    sim_crossed["a"] = sim_crossed["age"] - 16.0
+    sim_crossed["a2"] = sim_crossed["a"] ** 2
+    sim_crossed["one"] = 1
     for d in (sim_plain, sim_school, sim_zero):
         d["a"] = d["age"] - 16.0
         d["a2"] = d["a"] ** 2
@@ -139,6 +161,8 @@ def main():
         "sim_school": lambda: smf.mixedlm("score ~ a + a2", sim_school, groups="school", re_formula="1",
                                           vc_formula={"pupil": "0 + C(pupil)", "pupil_age": "0 + C(pupil):a"}),
         "sim_zero_slope": lambda: smf.mixedlm("score ~ a + a2", sim_zero, groups="pupil", re_formula="~a"),
+        "sim_crossed": lambda: smf.mixedlm("score ~ a + a2", sim_crossed, groups="one", re_formula="0",
+                                           vc_formula={"cohort": "0 + C(cohort)", "period": "0 + C(period)"}),
     }
     result = dict(
         source="statsmodels MixedLM",

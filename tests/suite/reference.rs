@@ -4,7 +4,9 @@
 //! Data: Potthoff & Roy (1964, *Biometrika* 51) dental distances; Goldstein
 //! (1987, *Multilevel Models in Educational and Social Research*) heights of
 //! 26 boys on 9 occasions; three invented cohort-sequential files written by
-//! the same script (plain; with schools; with a true slope variance of zero).
+//! the same script (plain; with schools; with a true slope variance of zero)
+//! and an invented repeated cross-section with crossed period and cohort
+//! intercepts.
 //!
 //! The reference is the best of several optimizers and starts. braid must
 //! reach a log-likelihood at least as high; where the two optima agree, the
@@ -94,6 +96,33 @@ fn cases() -> Vec<Case> {
                 ]),
             ),
         },
+        // Crossed period and cohort intercepts in a repeated cross-section
+        // (each row a different person): the period column takes the wave role.
+        Case {
+            name: "sim_crossed",
+            file: "sim_crossed.csv",
+            roles: Roles {
+                cohort: Some("cohort".into()),
+                wave: Some("period".into()),
+                ..roles("person", "age", "score")
+            },
+            spec: model(
+                2,
+                16.0,
+                Some(vec![
+                    RandomSpec {
+                        factor: "cohort".into(),
+                        intercept: true,
+                        slopes: vec![],
+                    },
+                    RandomSpec {
+                        factor: "period".into(),
+                        intercept: true,
+                        slopes: vec![],
+                    },
+                ]),
+            ),
+        },
         Case {
             name: "sim_zero_slope",
             file: "sim_zero_slope.csv",
@@ -106,7 +135,11 @@ fn cases() -> Vec<Case> {
 /// braid's variance components in the reference's order: the free entries
 /// of cov_re (lower triangle), then the variance components.
 fn braid_components(name: &str, fit: &braid::lmm::Fit) -> Vec<f64> {
-    if name == "sim_school" {
+    if name == "sim_crossed" {
+        // The reference lists variance components by name: cohort, period.
+        let find = |factor: &str| fit.random.iter().find(|r| r.factor == factor).unwrap().covariance[0][0];
+        vec![find("cohort"), find("period")]
+    } else if name == "sim_school" {
         let find = |factor: &str, term: &str| {
             fit.random
                 .iter()
