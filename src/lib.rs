@@ -36,6 +36,7 @@
 
 pub mod cli;
 pub mod data;
+pub mod design;
 pub mod error;
 pub mod infer;
 pub mod lmm;

@@ -6,6 +6,8 @@ mod cli; // what a user sees: the demo, fit outputs, and one-line errors on bad 
 mod closed_form; // balanced one-way random effects: REML equals the ANOVA estimators
 #[path = "suite/common.rs"]
 mod common; // helpers shared by the modules
+#[path = "suite/design.rs"]
+mod design; // the design report against the truth of seeded simulations
 #[path = "suite/invariance.rs"]
 mod invariance; // row order, id recoding, shifting and scaling age
 #[path = "suite/recovery.rs"]

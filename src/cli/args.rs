@@ -21,6 +21,8 @@ pub enum Command {
     Fit(Box<FitArgs>),
     /// Simulate an invented cohort-sequential study, write it with a study file, and fit it.
     Demo(DemoArgs),
+    /// Report what a design covers: cohorts, waves, ages, overlap of neighbouring cohorts, retention.
+    Inspect(Box<InspectArgs>),
 }
 
 /// Estimation criterion on the command line.
@@ -115,6 +117,29 @@ pub struct FitArgs {
     #[arg(long, value_name = "N", default_value_t = 0)]
     pub lines: usize,
     /// Print nothing but errors (the files are still written).
+    #[arg(long)]
+    pub quiet: bool,
+}
+
+/// Flags of `braid inspect`.
+#[derive(Debug, Clone, Default, Args)]
+pub struct InspectArgs {
+    /// The data file (CSV, or Parquet by its .parquet extension).
+    #[arg(value_name = "DATA")]
+    pub data: PathBuf,
+    /// Column roles.
+    #[command(flatten)]
+    pub roles: RoleArgs,
+    /// Width of the age bands of the cohort-by-age table, in years.
+    #[arg(long, value_name = "YEARS", default_value_t = 1.0)]
+    pub band: f64,
+    /// Flag an overlap as thin when either cohort has fewer observations there than this.
+    #[arg(long, value_name = "N", default_value_t = 30)]
+    pub thin: usize,
+    /// Write the design report as JSON to this file.
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
+    /// Print nothing but errors.
     #[arg(long)]
     pub quiet: bool,
 }

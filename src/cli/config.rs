@@ -101,6 +101,28 @@ fn need(value: Option<String>, flag: &str) -> Result<String> {
     })
 }
 
+/// The column roles from flags alone.
+///
+/// # Errors
+/// [`Error::Spec`] when `--id`, `--age` or `--outcome` is missing, or the delimiter is invalid.
+pub fn roles_from_flags(r: &super::args::RoleArgs) -> Result<(Roles, ReadOptions)> {
+    let roles = Roles {
+        id: need(r.id.clone(), "--id")?,
+        age: need(r.age.clone(), "--age")?,
+        outcome: need(r.outcome.clone(), "--outcome")?,
+        cohort: r.cohort.clone(),
+        wave: r.wave.clone(),
+        cluster: r.cluster.clone(),
+        covariates: r.covariates.clone(),
+        categorical: r.categorical.clone(),
+    };
+    let delimiter = match &r.delimiter {
+        Some(d) => parse_delimiter(d)?,
+        None => b',',
+    };
+    Ok((roles, ReadOptions { delimiter }))
+}
+
 impl FitConfig {
     /// Build and validate the configuration from `braid fit` flags.
     ///

@@ -44,6 +44,7 @@ pub fn run(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Fit(a) => fit_command(&FitConfig::from_args(&a)?),
         Command::Demo(a) => demo_command(&a),
+        Command::Inspect(a) => inspect_command(&a),
     }
 }
 
@@ -111,6 +112,27 @@ fn sample_lines(panel: &Panel, k: usize) -> Vec<Line> {
         l.sort_by(|a, b| a.0.total_cmp(&b.0));
     }
     lines
+}
+
+/// `braid inspect`: load, then describe the design.
+fn inspect_command(a: &args::InspectArgs) -> Result<()> {
+    let (roles, read) = config::roles_from_flags(&a.roles)?;
+    let panel = data::load(&a.data, &roles, read)?;
+    let options = crate::design::DesignOptions {
+        band_width: a.band,
+        thin_overlap: a.thin,
+    };
+    let report = crate::design::inspect(&panel, options)?;
+    if !a.quiet {
+        print!("{}", text::design_summary(&panel, &report));
+    }
+    if let Some(path) = &a.json {
+        if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+            report::ensure_dir(parent)?;
+        }
+        report::write_json(path, &report)?;
+    }
+    Ok(())
 }
 
 /// `braid demo`: simulate the invented study, write it with its study file,

@@ -250,3 +250,88 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
     }
     s
 }
+
+/// Render the design report of `braid inspect`.
+pub fn design_summary(panel: &crate::data::Panel, r: &crate::design::DesignReport) -> String {
+    let mut s = String::new();
+    let rule = "─".repeat(86);
+    let _ = writeln!(s, "braid inspect · {}", panel.source.display());
+    let _ = writeln!(s, "{rule}");
+    let _ = writeln!(
+        s,
+        "{:<11}{} participants · {} rows used of {} · cohorts {}",
+        "Data",
+        thousands(panel.id.n_levels()),
+        thousands(panel.n()),
+        thousands(panel.n_rows_read),
+        r.cohort_rule
+    );
+    let sp = &r.span;
+    let _ = writeln!(
+        s,
+        "{:<11}ages {:.2} to {:.2} ({:.1} years of age) covered in {:.1} years of follow-up: {:.1} years of age per year",
+        "Span", sp.age_from, sp.age_to, sp.age_years, sp.calendar_years, sp.acceleration
+    );
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<12}{:<8}{:>8}{:>10}{:>10}{:>10}",
+        "Coverage", "wave", "n", "youngest", "median", "oldest"
+    );
+    for c in &r.cohorts {
+        let _ = writeln!(
+            s,
+            "  {:<10}{:<8}{:>8}{:>10.2}{:>10.2}{:>10.2}   ({} participants)",
+            c.cohort, "all", c.n_obs, c.age_min, c.age_median, c.age_max, c.n_participants
+        );
+        for w in &c.waves {
+            let _ = writeln!(
+                s,
+                "  {:<10}{:<8}{:>8}{:>10.2}{:>10.2}{:>10.2}",
+                "", w.wave, w.n, w.age_min, w.age_median, w.age_max
+            );
+        }
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<24}{:>20}{:>10}{:>10}   link",
+        "Overlap of neighbours", "shared ages", "n (a)", "n (b)"
+    );
+    for o in &r.overlap {
+        let ages = if o.linked {
+            format!("{:.2} to {:.2}", o.age_from, o.age_to)
+        } else {
+            "none".to_string()
+        };
+        let link = if !o.linked {
+            "NOT LINKED"
+        } else if o.thin {
+            "thin"
+        } else {
+            "linked"
+        };
+        let _ = writeln!(
+            s,
+            "  {:<22}{:>20}{:>10}{:>10}   {link}",
+            format!("{} – {}", o.cohort_a, o.cohort_b),
+            ages,
+            o.n_a,
+            o.n_b
+        );
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<12}{:<8}{:>8}{:>10}", "Retention", "wave", "n", "share");
+    let mut last = "";
+    for t in &r.retention {
+        let head = if t.cohort != last { t.cohort.as_str() } else { "" };
+        last = &t.cohort;
+        let _ = writeln!(s, "  {:<10}{:<8}{:>8}{:>9.1}%", head, t.wave, t.n, 100.0 * t.share);
+    }
+    for (i, w) in r.warnings.iter().enumerate() {
+        let _ = writeln!(s, "{:<11}{w}", if i == 0 { "\nWarnings" } else { "" });
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<11}{}", "Caution", super::CAUTIONS[2]);
+    s
+}

@@ -186,3 +186,35 @@ fn parquet_twin_of_the_demo_panel_gives_the_same_fit() {
     let b = braid::fit_panel(&pq, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
     assert_eq!(a.fit.loglik, b.fit.loglik);
 }
+
+#[test]
+fn inspect_writes_the_design_report_with_stable_keys() {
+    let dir = temp_dir("inspect");
+    let json = dir.join("design.json");
+    let out = Command::new(braid_bin())
+        .args(["inspect", data_dir().join("sim_school.csv").to_str().unwrap()])
+        .args(BASE)
+        .args(["--cohort", "cohort", "--wave", "wave", "--json"])
+        .arg(&json)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    for word in ["Coverage", "Overlap of neighbours", "Retention", "Span"] {
+        assert!(stdout.contains(word), "inspect summary lacks '{word}'");
+    }
+    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    for key in ["cohort", "n_participants", "waves", "age_min", "age_median", "age_max"] {
+        assert!(v["cohorts"][0].get(key).is_some(), "cohorts lacks '{key}'");
+    }
+    for key in ["cohort_a", "cohort_b", "age_from", "age_to", "n_a", "n_b", "linked"] {
+        assert!(v["overlap"][0].get(key).is_some(), "overlap lacks '{key}'");
+    }
+    for key in ["cohort", "wave", "n", "share"] {
+        assert!(v["retention"][0].get(key).is_some(), "retention lacks '{key}'");
+    }
+    for key in ["age_from", "age_to", "calendar_years"] {
+        assert!(v["span"].get(key).is_some(), "span lacks '{key}'");
+    }
+    assert_eq!(v["cohorts"].as_array().unwrap().len(), 5);
+}

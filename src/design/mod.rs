@@ -1,0 +1,365 @@
+//! What a cohort-sequential design covers, before any model is fitted:
+//! each cohort's waves and ages, the age overlap of neighbouring cohorts
+//! (which is what links their segments), retention by wave, counts by cohort
+//! and age band, and the age span bought against the calendar time spent.
+//!
+//! Conventions (common practice, notes/decisions.md): cohorts are ordered by
+//! their youngest observed age; two neighbouring cohorts overlap on the
+//! interval where both have observations, [max of the youngest ages, min of
+//! the oldest ages]; retention at a wave is the number of participants seen at
+//! that wave over the number seen at the cohort's first wave.
+
+use std::collections::BTreeMap;
+
+use serde::Serialize;
+
+use crate::data::Panel;
+use crate::error::{Error, Result};
+use crate::spec::basis::quantile_sorted;
+
+/// Settings of the design report.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct DesignOptions {
+    /// Width of the age bands of the cohort × age table, in years.
+    pub band_width: f64,
+    /// An overlap with fewer observations than this in either cohort is
+    /// flagged as thin (common practice: about 30 per cohort for a stable
+    /// mean at the shared ages).
+    pub thin_overlap: usize,
+}
+
+impl Default for DesignOptions {
+    fn default() -> Self {
+        DesignOptions {
+            band_width: 1.0,
+            thin_overlap: 30,
+        }
+    }
+}
+
+/// One wave of one cohort.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct WaveCoverage {
+    /// Wave label.
+    pub wave: String,
+    /// Observations.
+    pub n: usize,
+    /// Youngest age.
+    pub age_min: f64,
+    /// Median age.
+    pub age_median: f64,
+    /// Oldest age.
+    pub age_max: f64,
+}
+
+/// One cohort's coverage.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct CohortCoverage {
+    /// Cohort label.
+    pub cohort: String,
+    /// Participants.
+    pub n_participants: usize,
+    /// Observations.
+    pub n_obs: usize,
+    /// Per wave, in wave order.
+    pub waves: Vec<WaveCoverage>,
+    /// Youngest age.
+    pub age_min: f64,
+    /// Median age.
+    pub age_median: f64,
+    /// Oldest age.
+    pub age_max: f64,
+}
+
+/// The shared ages of two neighbouring cohorts.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Overlap {
+    /// The younger cohort.
+    pub cohort_a: String,
+    /// The older cohort.
+    pub cohort_b: String,
+    /// Start of the shared age interval (NaN when there is none).
+    pub age_from: f64,
+    /// End of the shared age interval (NaN when there is none).
+    pub age_to: f64,
+    /// Observations of cohort a inside the interval.
+    pub n_a: usize,
+    /// Observations of cohort b inside the interval.
+    pub n_b: usize,
+    /// Whether the two segments share ages at all.
+    pub linked: bool,
+    /// Whether either cohort has fewer observations there than the threshold.
+    pub thin: bool,
+}
+
+/// Retention of one cohort at one wave.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Retention {
+    /// Cohort label.
+    pub cohort: String,
+    /// Wave label.
+    pub wave: String,
+    /// Participants observed at this wave.
+    pub n: usize,
+    /// Share of the participants observed at the cohort's first wave.
+    pub share: f64,
+}
+
+/// Observations of one cohort in one age band.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct BandCount {
+    /// Cohort label.
+    pub cohort: String,
+    /// Start of the band (inclusive), years.
+    pub age_from: f64,
+    /// End of the band (exclusive), years.
+    pub age_to: f64,
+    /// Observations.
+    pub n: usize,
+}
+
+/// The age span covered against the calendar time it took.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Span {
+    /// Youngest age observed.
+    pub age_from: f64,
+    /// Oldest age observed.
+    pub age_to: f64,
+    /// Years of age covered.
+    pub age_years: f64,
+    /// Calendar years of follow-up: the longest age range within one
+    /// participant, a lower bound on the study's duration when no assessment
+    /// dates are given.
+    pub calendar_years: f64,
+    /// Age years covered per calendar year of follow-up.
+    pub acceleration: f64,
+}
+
+/// The design report of `braid inspect`, with stable JSON keys.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct DesignReport {
+    /// How cohorts were defined.
+    pub cohort_rule: String,
+    /// Coverage per cohort.
+    pub cohorts: Vec<CohortCoverage>,
+    /// Overlap of each pair of neighbouring cohorts.
+    pub overlap: Vec<Overlap>,
+    /// Retention by cohort and wave.
+    pub retention: Vec<Retention>,
+    /// Cohort × age-band counts.
+    pub bands: Vec<BandCount>,
+    /// Age span and calendar time.
+    pub span: Span,
+    /// Warnings in plain words.
+    pub warnings: Vec<String>,
+}
+
+/// Numeric-aware ordering of labels.
+fn label_key(s: &str) -> (f64, String) {
+    (s.trim().parse::<f64>().unwrap_or(f64::INFINITY), s.to_string())
+}
+
+/// Summarise the design of a panel.
+///
+/// # Errors
+/// [`Error::Spec`] for a band width that is not a positive number.
+pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
+    if !(options.band_width.is_finite() && options.band_width > 0.0) {
+        return Err(Error::Spec {
+            parameter: "--band".into(),
+            message: format!("band width {} is not a positive number of years", options.band_width),
+        });
+    }
+    let n = panel.n();
+    let n_id = panel.id.n_levels();
+    // First age and within-person range per participant.
+    let mut first = vec![f64::INFINITY; n_id];
+    let mut last = vec![f64::NEG_INFINITY; n_id];
+    for r in 0..n {
+        let k = panel.id.codes[r] as usize;
+        first[k] = first[k].min(panel.age[r]);
+        last[k] = last[k].max(panel.age[r]);
+    }
+    let (cohort_of, cohort_rule): (Vec<String>, String) = match &panel.cohort {
+        Some(c) => (
+            (0..n).map(|r| c.label(r).to_string()).collect(),
+            format!("from column '{}'", panel.roles.cohort.as_deref().unwrap_or("")),
+        ),
+        None => (
+            (0..n)
+                .map(|r| format!("{}", first[panel.id.codes[r] as usize].floor()))
+                .collect(),
+            "derived: whole-year age at the first assessment".to_string(),
+        ),
+    };
+    // Waves: the column, or the order of assessments within a participant.
+    let wave_of: Vec<String> = match &panel.wave {
+        Some(w) => (0..n).map(|r| w.label(r).to_string()).collect(),
+        None => {
+            let mut order: Vec<usize> = (0..n).collect();
+            order.sort_by(|&a, &b| {
+                panel.id.codes[a]
+                    .cmp(&panel.id.codes[b])
+                    .then(panel.age[a].total_cmp(&panel.age[b]))
+            });
+            let mut rank = vec![0usize; n];
+            let mut prev = u32::MAX;
+            let mut k = 0;
+            for &r in &order {
+                if panel.id.codes[r] != prev {
+                    prev = panel.id.codes[r];
+                    k = 0;
+                }
+                k += 1;
+                rank[r] = k;
+            }
+            rank.iter().map(|k| k.to_string()).collect()
+        }
+    };
+    // Group rows by cohort, then wave.
+    let mut by_cohort: BTreeMap<(OrderedAge, String), Vec<usize>> = BTreeMap::new();
+    for (r, label) in cohort_of.iter().enumerate() {
+        let (k, s) = label_key(label);
+        by_cohort.entry((OrderedAge(k), s)).or_default().push(r);
+    }
+    let mut cohorts = Vec::new();
+    let mut retention = Vec::new();
+    let mut bands = Vec::new();
+    for ((_, label), rows) in &by_cohort {
+        let mut ages: Vec<f64> = rows.iter().map(|&r| panel.age[r]).collect();
+        ages.sort_by(f64::total_cmp);
+        let mut ids: Vec<u32> = rows.iter().map(|&r| panel.id.codes[r]).collect();
+        ids.sort_unstable();
+        ids.dedup();
+        let mut by_wave: BTreeMap<(OrderedAge, String), Vec<usize>> = BTreeMap::new();
+        for &r in rows {
+            let (k, s) = label_key(&wave_of[r]);
+            by_wave.entry((OrderedAge(k), s)).or_default().push(r);
+        }
+        let mut waves = Vec::new();
+        let mut base = None;
+        for ((_, w), wrows) in &by_wave {
+            let mut wa: Vec<f64> = wrows.iter().map(|&r| panel.age[r]).collect();
+            wa.sort_by(f64::total_cmp);
+            let mut wid: Vec<u32> = wrows.iter().map(|&r| panel.id.codes[r]).collect();
+            wid.sort_unstable();
+            wid.dedup();
+            let b = *base.get_or_insert(wid.len());
+            retention.push(Retention {
+                cohort: label.clone(),
+                wave: w.clone(),
+                n: wid.len(),
+                share: wid.len() as f64 / b as f64,
+            });
+            waves.push(WaveCoverage {
+                wave: w.clone(),
+                n: wrows.len(),
+                age_min: wa[0],
+                age_median: quantile_sorted(&wa, 0.5),
+                age_max: wa[wa.len() - 1],
+            });
+        }
+        let bw = options.band_width;
+        let mut counts: BTreeMap<i64, usize> = BTreeMap::new();
+        for &a in &ages {
+            *counts.entry((a / bw).floor() as i64).or_default() += 1;
+        }
+        for (b, c) in counts {
+            bands.push(BandCount {
+                cohort: label.clone(),
+                age_from: b as f64 * bw,
+                age_to: (b + 1) as f64 * bw,
+                n: c,
+            });
+        }
+        cohorts.push(CohortCoverage {
+            cohort: label.clone(),
+            n_participants: ids.len(),
+            n_obs: rows.len(),
+            waves,
+            age_min: ages[0],
+            age_median: quantile_sorted(&ages, 0.5),
+            age_max: ages[ages.len() - 1],
+        });
+    }
+    // Neighbours in order of their youngest age.
+    let mut order: Vec<usize> = (0..cohorts.len()).collect();
+    order.sort_by(|&a, &b| cohorts[a].age_min.total_cmp(&cohorts[b].age_min));
+    let rows_of: Vec<&Vec<usize>> = by_cohort.values().collect();
+    let mut overlap = Vec::new();
+    let mut warnings = Vec::new();
+    for w in order.windows(2) {
+        let (a, b) = (&cohorts[w[0]], &cohorts[w[1]]);
+        let from = b.age_min.max(a.age_min);
+        let to = a.age_max.min(b.age_max);
+        let linked = from <= to;
+        let inside = |k: usize| {
+            rows_of[k]
+                .iter()
+                .filter(|&&r| linked && panel.age[r] >= from && panel.age[r] <= to)
+                .count()
+        };
+        let (n_a, n_b) = (inside(w[0]), inside(w[1]));
+        let thin = linked && (n_a < options.thin_overlap || n_b < options.thin_overlap);
+        if !linked {
+            warnings.push(format!(
+                "cohorts {} and {} share no ages (a gap from {:.2} to {:.2}): their segments cannot be linked, so cohort and age differences are confounded there",
+                a.cohort, b.cohort, a.age_max, b.age_min
+            ));
+        } else if thin {
+            warnings.push(format!(
+                "cohorts {} and {} overlap thinly ({} and {} observations between {:.2} and {:.2}, fewer than {}): the link between their segments is weak",
+                a.cohort, b.cohort, n_a, n_b, from, to, options.thin_overlap
+            ));
+        }
+        overlap.push(Overlap {
+            cohort_a: a.cohort.clone(),
+            cohort_b: b.cohort.clone(),
+            age_from: if linked { from } else { f64::NAN },
+            age_to: if linked { to } else { f64::NAN },
+            n_a,
+            n_b,
+            linked,
+            thin,
+        });
+    }
+    let (lo, hi) = panel
+        .age
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &a| (l.min(a), h.max(a)));
+    let calendar = (0..n_id).map(|k| last[k] - first[k]).fold(0.0, f64::max);
+    let span = Span {
+        age_from: lo,
+        age_to: hi,
+        age_years: hi - lo,
+        calendar_years: calendar,
+        acceleration: if calendar > 0.0 { (hi - lo) / calendar } else { f64::NAN },
+    };
+    Ok(DesignReport {
+        cohort_rule,
+        cohorts,
+        overlap,
+        retention,
+        bands,
+        span,
+        warnings,
+    })
+}
+
+/// A totally ordered f64 for map keys.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct OrderedAge(f64);
+
+impl Eq for OrderedAge {}
+
+impl PartialOrd for OrderedAge {
+    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(other))
+    }
+}
+
+impl Ord for OrderedAge {
+    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
+        self.0.total_cmp(&other.0)
+    }
+}
