@@ -9,7 +9,7 @@
 //! the oldest ages]; retention at a wave is the number of participants seen at
 //! that wave over the number seen at the cohort's first wave.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, BTreeSet};
 
 use serde::Serialize;
 
@@ -135,6 +135,64 @@ pub struct Span {
     pub acceleration: f64,
 }
 
+/// Counts of missingness patterns over each cohort's waves.
+#[derive(Debug, Clone, Copy, Serialize, PartialEq, Eq, Default)]
+pub struct Patterns {
+    /// Seen at every wave of their cohort.
+    pub complete: usize,
+    /// Seen at the first waves only, then never again (dropout).
+    pub monotone: usize,
+    /// Missed a wave and came back.
+    pub intermittent: usize,
+}
+
+/// Baseline comparison of those who stayed to the cohort's last wave with
+/// those who did not: evidence on whether data are missing completely at random.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct BaselineComparison {
+    /// The variable compared (the outcome or a numeric covariate), at each
+    /// participant's first assessment.
+    pub variable: String,
+    /// Participants who stayed.
+    pub n_stayers: usize,
+    /// Participants who left.
+    pub n_leavers: usize,
+    /// Mean among stayers.
+    pub stayers_mean: f64,
+    /// Mean among leavers.
+    pub leavers_mean: f64,
+    /// Stayers minus leavers.
+    pub difference: f64,
+    /// Its standard error (unequal variances).
+    pub se: f64,
+    /// The difference over the root mean of the two variances.
+    pub standardized: f64,
+}
+
+/// Attrition: patterns and the baseline comparison.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Attrition {
+    /// Missingness patterns.
+    pub patterns: Patterns,
+    /// Baseline comparisons, outcome first.
+    pub baseline: Vec<BaselineComparison>,
+}
+
+/// Exact collinearities that limit what a model can separate.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Collinear {
+    /// Whether age, period and birth cohort are exactly collinear; `None`
+    /// when the file has no assessment period to check it with.
+    pub age_period_cohort: Option<bool>,
+    /// Whether time in study (age minus age at the first assessment) is an
+    /// exact linear function of the number of prior assessments.
+    pub time_retest: bool,
+    /// R² of time in study on the number of prior assessments.
+    pub time_retest_r2: f64,
+    /// What follows, in words.
+    pub notes: Vec<String>,
+}
+
 /// The design report of `braid inspect`, with stable JSON keys.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct DesignReport {
@@ -150,6 +208,10 @@ pub struct DesignReport {
     pub bands: Vec<BandCount>,
     /// Age span and calendar time.
     pub span: Span,
+    /// Missingness patterns and the stayers–leavers comparison.
+    pub attrition: Attrition,
+    /// Collinearity checks.
+    pub collinear: Collinear,
     /// Warnings in plain words.
     pub warnings: Vec<String>,
 }
@@ -335,6 +397,7 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         calendar_years: calendar,
         acceleration: if calendar > 0.0 { (hi - lo) / calendar } else { f64::NAN },
     };
+    let (attrition, collinear) = attrition_and_collinearity(panel, &cohort_of, &wave_of, &mut warnings);
     Ok(DesignReport {
         cohort_rule,
         cohorts,
@@ -342,6 +405,8 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         retention,
         bands,
         span,
+        attrition,
+        collinear,
         warnings,
     })
 }
@@ -362,4 +427,174 @@ impl Ord for OrderedAge {
     fn cmp(&self, other: &Self) -> std::cmp::Ordering {
         self.0.total_cmp(&other.0)
     }
+}
+
+/// Above this R², time in study counts as an exact function of the number of
+/// prior assessments (rounding of ages in a file leaves far more).
+const EXACT_R2: f64 = 1.0 - 1e-10;
+
+/// Above this R², the two count as nearly collinear (common practice).
+const NEAR_R2: f64 = 0.99;
+
+/// Above this absolute standardized baseline difference between stayers and
+/// leavers, braid warns (common practice: a "small" effect size).
+const BASELINE_WARNING: f64 = 0.2;
+
+fn mean_var(v: &[f64]) -> (f64, f64) {
+    let n = v.len() as f64;
+    let m = v.iter().sum::<f64>() / n;
+    let var = if v.len() > 1 {
+        v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (n - 1.0)
+    } else {
+        f64::NAN
+    };
+    (m, var)
+}
+
+type WaveSet<'a> = BTreeSet<(OrderedAge, &'a str)>;
+
+fn attrition_and_collinearity(
+    panel: &Panel,
+    cohort_of: &[String],
+    wave_of: &[String],
+    warnings: &mut Vec<String>,
+) -> (Attrition, Collinear) {
+    let n = panel.n();
+    let n_id = panel.id.n_levels();
+    let key = |r: usize| (OrderedAge(label_key(&wave_of[r]).0), wave_of[r].as_str());
+    // Each cohort's wave set, and each participant's.
+    let mut cohort_waves: BTreeMap<&str, WaveSet> = BTreeMap::new();
+    let mut person_waves: Vec<WaveSet> = vec![BTreeSet::new(); n_id];
+    let mut person_cohort: Vec<&str> = vec![""; n_id];
+    let mut first_row: Vec<usize> = vec![usize::MAX; n_id];
+    for (r, cohort) in cohort_of.iter().enumerate() {
+        let k = panel.id.codes[r] as usize;
+        cohort_waves.entry(cohort.as_str()).or_default().insert(key(r));
+        person_waves[k].insert(key(r));
+        person_cohort[k] = cohort.as_str();
+        if first_row[k] == usize::MAX || panel.age[r] < panel.age[first_row[k]] {
+            first_row[k] = r;
+        }
+    }
+    let mut patterns = Patterns::default();
+    let mut stayer = vec![false; n_id];
+    for k in 0..n_id {
+        let all: Vec<_> = cohort_waves[person_cohort[k]].iter().collect();
+        let seen = &person_waves[k];
+        let last_seen = all.iter().rposition(|w| seen.contains(*w)).unwrap_or(0);
+        let prefix = all[..=last_seen].iter().all(|w| seen.contains(*w));
+        if seen.len() == all.len() {
+            patterns.complete += 1;
+        } else if prefix {
+            patterns.monotone += 1;
+        } else {
+            patterns.intermittent += 1;
+        }
+        stayer[k] = last_seen + 1 == all.len();
+    }
+    let mut variables: Vec<(String, Vec<f64>)> = vec![(panel.roles.outcome.clone(), panel.outcome.clone())];
+    for c in &panel.covariates {
+        if let crate::data::CovariateValues::Numeric(v) = &c.values {
+            variables.push((c.name.clone(), v.clone()));
+        }
+    }
+    let mut baseline = Vec::new();
+    for (name, values) in variables {
+        let (mut st, mut lv) = (Vec::new(), Vec::new());
+        for k in 0..n_id {
+            let v = values[first_row[k]];
+            if stayer[k] {
+                st.push(v);
+            } else {
+                lv.push(v);
+            }
+        }
+        if st.len() < 2 || lv.len() < 2 {
+            continue;
+        }
+        let ((ms, vs), (ml, vl)) = (mean_var(&st), mean_var(&lv));
+        let difference = ms - ml;
+        let se = (vs / st.len() as f64 + vl / lv.len() as f64).sqrt();
+        let standardized = difference / ((vs + vl) / 2.0).sqrt();
+        if standardized.abs() > BASELINE_WARNING {
+            warnings.push(format!(
+                "those who left differ from those who stayed at baseline on {name} (standardized difference {standardized:.2}): \
+                 the data are not missing completely at random; a likelihood-based fit stays valid if dropout depends only on what was observed"
+            ));
+        }
+        baseline.push(BaselineComparison {
+            variable: name,
+            n_stayers: st.len(),
+            n_leavers: lv.len(),
+            stayers_mean: ms,
+            leavers_mean: ml,
+            difference,
+            se,
+            standardized,
+        });
+    }
+    // Time in study against the number of prior assessments.
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&a, &b| {
+        panel.id.codes[a]
+            .cmp(&panel.id.codes[b])
+            .then(panel.age[a].total_cmp(&panel.age[b]))
+    });
+    let mut time = vec![0.0; n];
+    let mut prior = vec![0.0; n];
+    let mut prev = u32::MAX;
+    let mut count = 0.0;
+    for &r in &order {
+        let k = panel.id.codes[r];
+        if k != prev {
+            prev = k;
+            count = 0.0;
+        } else {
+            count += 1.0;
+        }
+        time[r] = panel.age[r] - panel.age[first_row[k as usize]];
+        prior[r] = count;
+    }
+    let r2 = r_squared(&time, &prior);
+    let time_retest = r2 >= EXACT_R2;
+    let mut notes =
+        vec!["age–period–cohort collinearity needs assessment dates or a period column; not checked".to_string()];
+    if time_retest {
+        notes.push(
+            "time in study is an exact linear function of the number of prior assessments: a retest effect cannot be separated from within-person change with age"
+                .into(),
+        );
+    } else if r2 >= NEAR_R2 {
+        notes.push(format!(
+            "time in study and the number of prior assessments are nearly collinear (R² = {r2:.4}): a retest effect would be estimated very imprecisely"
+        ));
+    }
+    (
+        Attrition { patterns, baseline },
+        Collinear {
+            age_period_cohort: None,
+            time_retest,
+            time_retest_r2: r2,
+            notes,
+        },
+    )
+}
+
+/// R² of the simple regression of `y` on `x`.
+fn r_squared(y: &[f64], x: &[f64]) -> f64 {
+    let n = y.len() as f64;
+    let (my, mx) = (y.iter().sum::<f64>() / n, x.iter().sum::<f64>() / n);
+    let (mut sxy, mut sxx, mut syy) = (0.0, 0.0, 0.0);
+    for (a, b) in y.iter().zip(x) {
+        sxy += (a - my) * (b - mx);
+        sxx += (b - mx).powi(2);
+        syy += (a - my).powi(2);
+    }
+    if syy == 0.0 {
+        return 1.0;
+    }
+    if sxx == 0.0 {
+        return 0.0;
+    }
+    sxy * sxy / (sxx * syy)
 }

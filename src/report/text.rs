@@ -328,6 +328,35 @@ pub fn design_summary(panel: &crate::data::Panel, r: &crate::design::DesignRepor
         last = &t.cohort;
         let _ = writeln!(s, "  {:<10}{:<8}{:>8}{:>9.1}%", head, t.wave, t.n, 100.0 * t.share);
     }
+    let p = &r.attrition.patterns;
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<11}{} complete · {} monotone dropout · {} intermittent (missed a wave, came back)",
+        "Patterns", p.complete, p.monotone, p.intermittent
+    );
+    if !r.attrition.baseline.is_empty() {
+        let _ = writeln!(
+            s,
+            "{:<24}{:>10}{:>10}{:>12}{:>9}{:>14}",
+            "Baseline: stayed − left", "stayed", "left", "difference", "SE", "standardized"
+        );
+        for b in &r.attrition.baseline {
+            let _ = writeln!(
+                s,
+                "  {:<22}{:>10.3}{:>10.3}{:>12.3}{:>9.3}{:>14.3}",
+                b.variable, b.stayers_mean, b.leavers_mean, b.difference, b.se, b.standardized
+            );
+        }
+    }
+    let _ = writeln!(
+        s,
+        "{:<11}time in study on prior assessments: R² = {:.4}",
+        "Collinear", r.collinear.time_retest_r2
+    );
+    for n in &r.collinear.notes {
+        let _ = writeln!(s, "{:<11}{n}", "");
+    }
     for (i, w) in r.warnings.iter().enumerate() {
         let _ = writeln!(s, "{:<11}{w}", if i == 0 { "\nWarnings" } else { "" });
     }

@@ -83,3 +83,87 @@ fn cohorts_that_share_no_ages_are_reported_as_not_linked() {
         2
     );
 }
+
+#[test]
+fn attrition_patterns_and_baseline_comparison_match_the_simulated_records() {
+    let design = Design::demo();
+    let sim = simulate(&design);
+    let report = inspect(&sim.panel(true), DesignOptions::default()).unwrap();
+    let mut waves: BTreeMap<String, BTreeSet<usize>> = BTreeMap::new();
+    let mut first_score: BTreeMap<String, (usize, f64)> = BTreeMap::new();
+    for r in &sim.rows {
+        waves.entry(r.id.clone()).or_default().insert(r.wave);
+        let e = first_score.entry(r.id.clone()).or_insert((r.wave, r.score));
+        if r.wave < e.0 {
+            *e = (r.wave, r.score);
+        }
+    }
+    let (mut complete, mut monotone, mut intermittent) = (0, 0, 0);
+    for w in waves.values() {
+        let k = *w.iter().max().unwrap();
+        if w.len() == design.waves {
+            complete += 1;
+        } else if w.len() == k {
+            monotone += 1;
+        } else {
+            intermittent += 1;
+        }
+    }
+    let p = report.attrition.patterns;
+    assert_eq!(
+        (p.complete, p.monotone, p.intermittent),
+        (complete, monotone, intermittent)
+    );
+    assert!(
+        p.monotone > 0 && p.intermittent > 0,
+        "the demo has both kinds of missingness"
+    );
+    // Welch difference of baseline scores, stayers (seen at the last wave) minus leavers.
+    let (mut st, mut lv) = (Vec::new(), Vec::new());
+    for (id, w) in &waves {
+        let v = first_score[id].1;
+        if w.contains(&design.waves) {
+            st.push(v)
+        } else {
+            lv.push(v)
+        }
+    }
+    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
+    let var = |v: &[f64]| {
+        let m = mean(v);
+        v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (v.len() as f64 - 1.0)
+    };
+    let b = &report.attrition.baseline[0];
+    assert_eq!(b.variable, "score");
+    assert_eq!((b.n_stayers, b.n_leavers), (st.len(), lv.len()));
+    let diff = mean(&st) - mean(&lv);
+    assert!((b.difference - diff).abs() < 1e-9);
+    assert!((b.se - (var(&st) / st.len() as f64 + var(&lv) / lv.len() as f64).sqrt()).abs() < 1e-9);
+    // Dropout in the simulation is completely at random: no large difference.
+    assert!(b.standardized.abs() < 0.2, "{b:?}");
+}
+
+#[test]
+fn fixed_schedule_makes_time_in_study_collinear_with_prior_assessments() {
+    // Closed form: with ages exactly entry + (wave − 1) and no missed waves,
+    // time in study equals the number of prior assessments. (A missed wave
+    // breaks the identity: the retest count then lags behind time.)
+    let mut design = Design::demo();
+    design.per_cohort = 30;
+    design.skip = 0.0;
+    let mut panel = simulate(&design).panel(true);
+    let waves = panel.wave.clone().unwrap();
+    let cohorts = panel.cohort.clone().unwrap();
+    for r in 0..panel.n() {
+        let entry: f64 = cohorts.label(r).parse().unwrap();
+        let w: f64 = waves.label(r).parse().unwrap();
+        panel.age[r] = entry + w - 1.0;
+    }
+    let report = inspect(&panel, DesignOptions::default()).unwrap();
+    assert!(report.collinear.time_retest, "{:?}", report.collinear);
+    // The demo's assessment dates vary by ±0.1 year: nearly, not exactly, collinear.
+    let jittered = inspect(&simulate(&design).panel(true), DesignOptions::default()).unwrap();
+    assert!(!jittered.collinear.time_retest);
+    assert!(jittered.collinear.time_retest_r2 > 0.99, "{:?}", jittered.collinear);
+    assert!(jittered.collinear.notes.iter().any(|n| n.contains("nearly collinear")));
+}
