@@ -2,7 +2,7 @@
 //!
 //! ```text
 //! cargo build --release
-//! cargo run --release --example bench -- [small|large|all] [WORK_DIR]
+//! cargo run --release --example bench -- [small|large|inspect|all] [WORK_DIR]
 //! ```
 //!
 //! - `small`: a 3,000-participant three-wave file; REML, quadratic age,
@@ -16,6 +16,7 @@
 //! - `large`: about 1,000,000 rows (333,335 participants in 50 schools), the
 //!   same model plus a school intercept; wall time and peak memory of the
 //!   whole CLI run with every output.
+//! - `inspect`: `braid inspect` with JSON output on the same 1,000,000-row file.
 //!
 //! Peak memory is read with GNU time (`time -f %M`, found on PATH). Figures
 //! are recorded in notes/benchmarks.md.
@@ -195,6 +196,43 @@ fn large(work: &Path) {
     println!("  median wall {:.2} s", median(runs.iter().map(|r| r.0).collect()));
 }
 
+/// Time `braid inspect` on the 1,000,000-row file (written by `large` when absent).
+fn inspect(work: &Path) {
+    let file = work.join("bench_1m.csv");
+    if !file.exists() {
+        write(&design(66_667, 50, 1_000_000), &file);
+    }
+    let mut walls = Vec::new();
+    for _ in 0..3 {
+        let t0 = Instant::now();
+        let o = Command::new(braid_bin())
+            .arg("inspect")
+            .arg(&file)
+            .args([
+                "--id",
+                "pupil",
+                "--age",
+                "age",
+                "--outcome",
+                "score",
+                "--cohort",
+                "cohort",
+                "--wave",
+                "wave",
+            ])
+            .args(["--quiet", "--json"])
+            .arg(work.join("design.json"))
+            .output()
+            .expect("run braid inspect");
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        walls.push(t0.elapsed().as_secs_f64());
+    }
+    println!(
+        "inspect: 1,000,005 rows, runs {walls:.2?} s, median {:.2} s",
+        median(walls.clone())
+    );
+}
+
 fn main() {
     let args: Vec<String> = std::env::args().collect();
     let which = args.get(1).map(String::as_str).unwrap_or("all");
@@ -208,5 +246,8 @@ fn main() {
     }
     if which == "large" || which == "all" {
         large(&work);
+    }
+    if which == "inspect" || which == "all" {
+        inspect(&work);
     }
 }
