@@ -240,6 +240,8 @@ impl Simulated {
             id: "pupil".into(),
             age: "age".into(),
             outcome: "score".into(),
+            birth_date: None,
+            date: None,
             cohort: Some("cohort".into()),
             wave: Some("wave".into()),
             cluster: if with_school { Some("school".into()) } else { None },

@@ -40,9 +40,15 @@ pub struct RoleArgs {
     /// Column holding the participant id.
     #[arg(long, value_name = "COLUMN")]
     pub id: Option<String>,
-    /// Column holding exact age in years.
+    /// Column holding exact age in years (with --birth-date and --date: the name given to the computed age).
     #[arg(long, value_name = "COLUMN")]
     pub age: Option<String>,
+    /// Column holding the birth date (YYYY-MM-DD); with --date, age is computed as decimal years.
+    #[arg(long, value_name = "COLUMN", requires = "date")]
+    pub birth_date: Option<String>,
+    /// Column holding the assessment date (YYYY-MM-DD).
+    #[arg(long, value_name = "COLUMN", requires = "birth_date")]
+    pub date: Option<String>,
     /// Column holding the outcome.
     #[arg(long, value_name = "COLUMN")]
     pub outcome: Option<String>,

@@ -106,9 +106,16 @@ fn need(value: Option<String>, flag: &str) -> Result<String> {
 /// # Errors
 /// [`Error::Spec`] when `--id`, `--age` or `--outcome` is missing, or the delimiter is invalid.
 pub fn roles_from_flags(r: &super::args::RoleArgs) -> Result<(Roles, ReadOptions)> {
+    let from_dates = r.birth_date.is_some() && r.date.is_some();
     let roles = Roles {
         id: need(r.id.clone(), "--id")?,
-        age: need(r.age.clone(), "--age")?,
+        age: if from_dates {
+            r.age.clone().unwrap_or_else(|| "age".into())
+        } else {
+            need(r.age.clone(), "--age")?
+        },
+        birth_date: r.birth_date.clone(),
+        date: r.date.clone(),
         outcome: need(r.outcome.clone(), "--outcome")?,
         cohort: r.cohort.clone(),
         wave: r.wave.clone(),
@@ -158,9 +165,19 @@ impl FitConfig {
         let pick = |flag: &Option<String>, from: fn(&Roles) -> Option<String>| {
             flag.clone().or_else(|| s_roles.as_ref().and_then(from))
         };
+        let birth_date = pick(&r.birth_date, |x| x.birth_date.clone());
+        let date = pick(&r.date, |x| x.date.clone());
+        let age = match (&birth_date, &date) {
+            (Some(_), Some(_)) => {
+                pick(&r.age, |x| Some(x.age.clone()).filter(|a| !a.is_empty())).unwrap_or_else(|| "age".into())
+            }
+            _ => need(pick(&r.age, |x| Some(x.age.clone()).filter(|a| !a.is_empty())), "--age")?,
+        };
         let roles = Roles {
             id: need(pick(&r.id, |x| Some(x.id.clone())), "--id")?,
-            age: need(pick(&r.age, |x| Some(x.age.clone())), "--age")?,
+            age,
+            birth_date,
+            date,
             outcome: need(pick(&r.outcome, |x| Some(x.outcome.clone())), "--outcome")?,
             cohort: pick(&r.cohort, |x| x.cohort.clone()),
             wave: pick(&r.wave, |x| x.wave.clone()),

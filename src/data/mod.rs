@@ -8,6 +8,7 @@
 //! - a participant id is required on every row;
 //! - with a wave column, two rows for one participant and wave are an error.
 
+pub mod dates;
 pub mod read;
 
 use std::collections::HashMap;
@@ -24,10 +25,19 @@ use read::RawColumn;
 pub struct Roles {
     /// Participant identifier.
     pub id: String,
-    /// Exact age at assessment, in years.
+    /// Exact age at assessment, in years (may be left out of a study file
+    /// when ages come from dates).
+    #[serde(default)]
     pub age: String,
     /// The outcome measure.
     pub outcome: String,
+    /// Birth date (ISO YYYY-MM-DD); with `date`, age is computed from the two
+    /// and `age` names the computed column.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub birth_date: Option<String>,
+    /// Assessment date (ISO YYYY-MM-DD).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub date: Option<String>,
     /// Birth cohort (optional).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub cohort: Option<String>,
@@ -48,11 +58,15 @@ pub struct Roles {
 impl Roles {
     /// Every (role, column) pair, in a fixed order.
     pub fn all(&self) -> Vec<(String, String)> {
-        let mut v = vec![
-            ("--id".to_string(), self.id.clone()),
-            ("--age".to_string(), self.age.clone()),
-            ("--outcome".to_string(), self.outcome.clone()),
-        ];
+        let mut v = vec![("--id".to_string(), self.id.clone())];
+        match self.dates() {
+            Some((b, d)) => {
+                v.push(("--birth-date".to_string(), b.to_string()));
+                v.push(("--date".to_string(), d.to_string()));
+            }
+            None => v.push(("--age".to_string(), self.age.clone())),
+        }
+        v.push(("--outcome".to_string(), self.outcome.clone()));
         for (role, c) in [
             ("--cohort", &self.cohort),
             ("--wave", &self.wave),
@@ -66,6 +80,16 @@ impl Roles {
             v.push(("--covariate".to_string(), c.clone()));
         }
         v
+    }
+}
+
+impl Roles {
+    /// The birth-date and assessment-date columns, when age comes from dates.
+    pub fn dates(&self) -> Option<(&str, &str)> {
+        match (&self.birth_date, &self.date) {
+            (Some(b), Some(d)) => Some((b.as_str(), d.as_str())),
+            _ => None,
+        }
     }
 }
 
@@ -349,6 +373,17 @@ fn validate_roles(roles: &Roles) -> Result<()> {
             }
         }
     }
+    if roles.birth_date.is_some() != roles.date.is_some() {
+        return Err(Error::Spec {
+            parameter: if roles.birth_date.is_some() {
+                "--date"
+            } else {
+                "--birth-date"
+            }
+            .into(),
+            message: "ages from dates need both --birth-date and --date".into(),
+        });
+    }
     for c in &roles.categorical {
         if !roles.covariates.contains(c) {
             return Err(Error::Spec {
@@ -363,7 +398,38 @@ fn validate_roles(roles: &Roles) -> Result<()> {
 fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
     let n = table.n_rows;
     let col = |name: &str| &table.columns[name];
-    let (age_col, y_col) = (col(&roles.age), col(&roles.outcome));
+    let y_col = col(&roles.outcome);
+    // Age: a numeric column, or computed from two date columns.
+    let age_at = |r: usize| -> Result<Option<f64>> {
+        match roles.dates() {
+            None => number_at(path, &roles.age, col(&roles.age), r),
+            Some((b, d)) => {
+                let (Some(bs), Some(ds)) = (label_at(col(b), r), label_at(col(d), r)) else {
+                    return Ok(None);
+                };
+                let parse = |column: &str, s: &str| {
+                    dates::Date::parse(s).ok_or_else(|| Error::BadValue {
+                        path: path.to_path_buf(),
+                        column: column.to_string(),
+                        row: r + 1,
+                        value: s.to_string(),
+                        advice: "is not a calendar date in YYYY-MM-DD form; fix the cell or leave it empty".into(),
+                    })
+                };
+                let (birth, date) = (parse(b, &bs)?, parse(d, &ds)?);
+                match dates::decimal_age(birth, date) {
+                    Some(a) => Ok(Some(a)),
+                    None => Err(Error::BadValue {
+                        path: path.to_path_buf(),
+                        column: d.to_string(),
+                        row: r + 1,
+                        value: ds,
+                        advice: format!("is before the birth date {bs}; check both dates"),
+                    }),
+                }
+            }
+        }
+    };
     let mut dropped = DropReport::default();
     let mut keep_rows = Vec::with_capacity(n);
     let mut age = Vec::with_capacity(n);
@@ -390,7 +456,7 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
     }
     'rows: for r in 0..n {
         let y = number_at(path, &roles.outcome, y_col, r)?;
-        let a = number_at(path, &roles.age, age_col, r)?;
+        let a = age_at(r)?;
         let Some(y) = y else {
             dropped.missing_outcome += 1;
             continue;
@@ -492,6 +558,39 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         });
     }
     let row: Vec<usize> = keep_rows.iter().map(|r| r + 1).collect();
+    // A participant's cohort and birth date cannot change between waves.
+    let mut fixed: Vec<(&str, Vec<String>)> = Vec::new();
+    if let Some(c) = &roles.cohort {
+        fixed.push((c.as_str(), labels(c, true)?));
+    }
+    if let Some((b, _)) = roles.dates() {
+        fixed.push((
+            b,
+            keep_rows
+                .iter()
+                .map(|&r| label_at(col(b), r).unwrap_or_default())
+                .collect(),
+        ));
+    }
+    for (column, values) in &fixed {
+        let mut first: Vec<Option<usize>> = vec![None; id.n_levels()];
+        for (k, v) in values.iter().enumerate() {
+            let who = id.codes[k] as usize;
+            match first[who] {
+                None => first[who] = Some(k),
+                Some(f) if values[f] != *v => {
+                    return Err(Error::Data {
+                        path: path.to_path_buf(),
+                        message: format!(
+                            "participant '{}' has {column} '{}' in row {} but '{}' in row {}; a participant's {column} cannot change between waves",
+                            id.levels[who], values[f], row[f], v, row[k]
+                        ),
+                    });
+                }
+                Some(_) => {}
+            }
+        }
+    }
     if id.n_levels() < 2 {
         return Err(Error::Data {
             path: path.to_path_buf(),
