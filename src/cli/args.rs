@@ -125,6 +125,9 @@ pub struct FitArgs {
     /// Print nothing but errors (the files are still written).
     #[arg(long)]
     pub quiet: bool,
+    /// Overwrite an existing --out folder's files or --json file.
+    #[arg(long)]
+    pub force: bool,
 }
 
 /// Flags of `braid inspect`.
@@ -148,6 +151,9 @@ pub struct InspectArgs {
     /// Print nothing but errors.
     #[arg(long)]
     pub quiet: bool,
+    /// Overwrite an existing --json file.
+    #[arg(long)]
+    pub force: bool,
 }
 
 /// Flags of `braid demo`.
@@ -162,6 +168,9 @@ pub struct DemoArgs {
     /// Print nothing but errors.
     #[arg(long)]
     pub quiet: bool,
+    /// Overwrite the files of an existing --out folder.
+    #[arg(long)]
+    pub force: bool,
 }
 
 #[cfg(test)]

@@ -81,6 +81,8 @@ pub struct FitConfig {
     pub lines: usize,
     /// Suppress printing.
     pub quiet: bool,
+    /// Overwrite existing outputs.
+    pub force: bool,
 }
 
 fn parse_delimiter(s: &str) -> Result<u8> {
@@ -264,6 +266,7 @@ impl FitConfig {
             predictions: args.predictions,
             lines: args.lines,
             quiet: args.quiet,
+            force: args.force,
         })
     }
 }

@@ -50,6 +50,12 @@ pub fn run(cli: Cli) -> Result<()> {
 
 /// `braid fit`: load, specify, fit, infer, report.
 fn fit_command(config: &FitConfig) -> Result<()> {
+    if let Some(dir) = &config.out {
+        report::check_output(dir, true, config.force, "--out")?;
+    }
+    if let Some(file) = &config.json {
+        report::check_output(file, false, config.force, "--json")?;
+    }
     let panel = data::load(&config.data, &config.roles, config.read)?;
     let analysis = crate::fit_panel(&panel, &config.model, &config.trajectory)?;
     if !config.quiet {
@@ -117,6 +123,9 @@ fn sample_lines(panel: &Panel, k: usize) -> Vec<Line> {
 /// `braid inspect`: load, then describe the design.
 fn inspect_command(a: &args::InspectArgs) -> Result<()> {
     let (roles, read) = config::roles_from_flags(&a.roles)?;
+    if let Some(file) = &a.json {
+        report::check_output(file, false, a.force, "--json")?;
+    }
     let panel = data::load(&a.data, &roles, read)?;
     let options = crate::design::DesignOptions {
         band_width: a.band,
@@ -142,6 +151,7 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
     if let Some(s) = a.seed {
         design.seed = s;
     }
+    report::check_output(&a.out, true, a.force, "--out")?;
     let sim = simulate::simulate(&design);
     report::ensure_dir(&a.out)?;
     let panel_path = a.out.join("panel.csv");

@@ -224,6 +224,34 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     cells
 }
 
+/// Refuse to write over earlier results: an output folder that exists and
+/// holds files, or an output file that exists, is an error unless `force`.
+///
+/// # Errors
+/// [`Error::Spec`] naming the flag and the path.
+pub fn check_output(path: &Path, is_folder: bool, force: bool, flag: &str) -> Result<()> {
+    if force || !path.exists() {
+        return Ok(());
+    }
+    let occupied = if is_folder {
+        fs::read_dir(path).map(|mut d| d.next().is_some()).unwrap_or(true)
+    } else {
+        true
+    };
+    if occupied {
+        return Err(Error::Spec {
+            parameter: flag.to_string(),
+            message: format!(
+                "{} already exists{}; name a new {} or pass --force to overwrite",
+                path.display(),
+                if is_folder { " and holds files" } else { "" },
+                if is_folder { "folder" } else { "file" }
+            ),
+        });
+    }
+    Ok(())
+}
+
 /// Create the output folder (refusing one that is a file).
 ///
 /// # Errors

@@ -218,3 +218,73 @@ fn inspect_writes_the_design_report_with_stable_keys() {
     }
     assert_eq!(v["cohorts"].as_array().unwrap().len(), 5);
 }
+
+#[test]
+fn an_output_folder_with_files_is_refused_unless_forced() {
+    let dir = temp_dir("force");
+    let run = |extra: &[&str]| {
+        Command::new(braid_bin())
+            .args(["fit", data_dir().join("dental.csv").to_str().unwrap()])
+            .args([
+                "--id",
+                "Subject",
+                "--age",
+                "age",
+                "--outcome",
+                "distance",
+                "--degree",
+                "1",
+                "--quiet",
+                "--out",
+            ])
+            .arg(&dir)
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    assert!(run(&[]).status.success(), "an empty folder is fine");
+    let second = run(&[]);
+    assert_eq!(second.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&second.stderr);
+    assert!(
+        stderr.contains("already exists and holds files") && stderr.contains("--force"),
+        "{stderr}"
+    );
+    assert!(run(&["--force"]).status.success());
+}
+
+#[test]
+fn a_read_only_input_is_read_and_left_unchanged() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = temp_dir("read-only");
+    let input = dir.join("dental.csv");
+    fs::copy(data_dir().join("dental.csv"), &input).unwrap();
+    fs::set_permissions(&input, fs::Permissions::from_mode(0o444)).unwrap();
+    let before = fs::read(&input).unwrap();
+    let out = Command::new(braid_bin())
+        .args([
+            "fit",
+            input.to_str().unwrap(),
+            "--id",
+            "Subject",
+            "--age",
+            "age",
+            "--outcome",
+            "distance",
+            "--quiet",
+        ])
+        .arg("--json")
+        .arg(dir.join("fit.json"))
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(fs::read(&input).unwrap(), before);
+    assert_eq!(fs::metadata(&input).unwrap().permissions().mode() & 0o777, 0o444);
+    // Only the named output was written next to the input.
+    let mut names: Vec<String> = fs::read_dir(&dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().into_string().unwrap())
+        .collect();
+    names.sort();
+    assert_eq!(names, ["dental.csv", "fit.json"]);
+}
