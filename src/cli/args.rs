@@ -44,14 +44,23 @@ pub struct RoleArgs {
     #[arg(long, value_name = "COLUMN")]
     pub age: Option<String>,
     /// Column holding the birth date (YYYY-MM-DD); with --date, age is computed as decimal years.
-    #[arg(long, value_name = "COLUMN", requires = "date")]
+    #[arg(long, value_name = "COLUMN")]
     pub birth_date: Option<String>,
     /// Column holding the assessment date (YYYY-MM-DD).
-    #[arg(long, value_name = "COLUMN", requires = "birth_date")]
+    #[arg(long, value_name = "COLUMN")]
     pub date: Option<String>,
     /// Column holding the outcome.
     #[arg(long, value_name = "COLUMN")]
     pub outcome: Option<String>,
+    /// Wide files (one row per participant): the outcome's column at each wave, in order (comma-separated).
+    #[arg(long, value_name = "COLUMNS", value_delimiter = ',')]
+    pub wide_outcome: Vec<String>,
+    /// Wide files: the age column at each wave, in the same order.
+    #[arg(long, value_name = "COLUMNS", value_delimiter = ',')]
+    pub wide_age: Vec<String>,
+    /// Wide files: the assessment-date column at each wave (with --birth-date).
+    #[arg(long, value_name = "COLUMNS", value_delimiter = ',')]
+    pub wide_date: Vec<String>,
     /// Column holding the birth cohort.
     #[arg(long, value_name = "COLUMN")]
     pub cohort: Option<String>,

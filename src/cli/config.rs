@@ -108,28 +108,55 @@ fn need(value: Option<String>, flag: &str) -> Result<String> {
 /// # Errors
 /// [`Error::Spec`] when `--id`, `--age` or `--outcome` is missing, or the delimiter is invalid.
 pub fn roles_from_flags(r: &super::args::RoleArgs) -> Result<(Roles, ReadOptions)> {
-    let from_dates = r.birth_date.is_some() && r.date.is_some();
-    let roles = Roles {
-        id: need(r.id.clone(), "--id")?,
-        age: if from_dates {
-            r.age.clone().unwrap_or_else(|| "age".into())
-        } else {
-            need(r.age.clone(), "--age")?
-        },
-        birth_date: r.birth_date.clone(),
-        date: r.date.clone(),
-        outcome: need(r.outcome.clone(), "--outcome")?,
-        cohort: r.cohort.clone(),
-        wave: r.wave.clone(),
-        cluster: r.cluster.clone(),
-        covariates: r.covariates.clone(),
-        categorical: r.categorical.clone(),
-    };
+    let roles = merge_roles(r, None)?;
     let delimiter = match &r.delimiter {
         Some(d) => parse_delimiter(d)?,
         None => b',',
     };
     Ok((roles, ReadOptions { delimiter }))
+}
+
+/// Column roles from flags, each falling back to a study file's value.
+/// With ages from dates, or in a wide file, `--age` and `--outcome` only name
+/// the derived columns and default to "age" and "outcome".
+fn merge_roles(r: &super::args::RoleArgs, study: Option<&Roles>) -> Result<Roles> {
+    let pick =
+        |flag: &Option<String>, from: fn(&Roles) -> Option<String>| flag.clone().or_else(|| study.and_then(from));
+    let list = |flag: &Vec<String>, from: fn(&Roles) -> Vec<String>| {
+        if flag.is_empty() {
+            study.map(from).unwrap_or_default()
+        } else {
+            flag.clone()
+        }
+    };
+    let birth_date = pick(&r.birth_date, |x| x.birth_date.clone());
+    let date = pick(&r.date, |x| x.date.clone());
+    let wide_outcome = list(&r.wide_outcome, |x| x.wide_outcome.clone());
+    let wide = !wide_outcome.is_empty();
+    let derived_age = wide || (birth_date.is_some() && date.is_some());
+    let label =
+        |flag: &Option<String>, from: fn(&Roles) -> Option<String>, default: &str, name: &str, derived: bool| {
+            match pick(flag, from).filter(|a| !a.is_empty()) {
+                Some(v) => Ok(v),
+                None if derived => Ok(default.to_string()),
+                None => need(None, name),
+            }
+        };
+    Ok(Roles {
+        id: need(pick(&r.id, |x| Some(x.id.clone()).filter(|a| !a.is_empty())), "--id")?,
+        age: label(&r.age, |x| Some(x.age.clone()), "age", "--age", derived_age)?,
+        outcome: label(&r.outcome, |x| Some(x.outcome.clone()), "outcome", "--outcome", wide)?,
+        birth_date,
+        date,
+        wide_outcome,
+        wide_age: list(&r.wide_age, |x| x.wide_age.clone()),
+        wide_date: list(&r.wide_date, |x| x.wide_date.clone()),
+        cohort: pick(&r.cohort, |x| x.cohort.clone()),
+        wave: pick(&r.wave, |x| x.wave.clone()),
+        cluster: pick(&r.cluster, |x| x.cluster.clone()),
+        covariates: list(&r.covariates, |x| x.covariates.clone()),
+        categorical: list(&r.categorical, |x| x.categorical.clone()),
+    })
 }
 
 impl FitConfig {
@@ -164,37 +191,7 @@ impl FitConfig {
         };
         let r = &args.roles;
         let s_roles = study.as_ref().map(|s| s.roles.clone());
-        let pick = |flag: &Option<String>, from: fn(&Roles) -> Option<String>| {
-            flag.clone().or_else(|| s_roles.as_ref().and_then(from))
-        };
-        let birth_date = pick(&r.birth_date, |x| x.birth_date.clone());
-        let date = pick(&r.date, |x| x.date.clone());
-        let age = match (&birth_date, &date) {
-            (Some(_), Some(_)) => {
-                pick(&r.age, |x| Some(x.age.clone()).filter(|a| !a.is_empty())).unwrap_or_else(|| "age".into())
-            }
-            _ => need(pick(&r.age, |x| Some(x.age.clone()).filter(|a| !a.is_empty())), "--age")?,
-        };
-        let roles = Roles {
-            id: need(pick(&r.id, |x| Some(x.id.clone())), "--id")?,
-            age,
-            birth_date,
-            date,
-            outcome: need(pick(&r.outcome, |x| Some(x.outcome.clone())), "--outcome")?,
-            cohort: pick(&r.cohort, |x| x.cohort.clone()),
-            wave: pick(&r.wave, |x| x.wave.clone()),
-            cluster: pick(&r.cluster, |x| x.cluster.clone()),
-            covariates: if r.covariates.is_empty() {
-                s_roles.as_ref().map(|x| x.covariates.clone()).unwrap_or_default()
-            } else {
-                r.covariates.clone()
-            },
-            categorical: if r.categorical.is_empty() {
-                s_roles.as_ref().map(|x| x.categorical.clone()).unwrap_or_default()
-            } else {
-                r.categorical.clone()
-            },
-        };
+        let roles = merge_roles(r, s_roles.as_ref())?;
         let delimiter = match (&r.delimiter, study.as_ref().and_then(|s| s.data.delimiter.clone())) {
             (Some(d), _) => parse_delimiter(d)?,
             (None, Some(d)) => parse_delimiter(&d)?,

@@ -38,6 +38,16 @@ pub struct Roles {
     /// Assessment date (ISO YYYY-MM-DD).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub date: Option<String>,
+    /// Wide files: the outcome's column at each wave, in wave order. With
+    /// these, `outcome`, `age` and `wave` name the reshaped long columns.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub wide_outcome: Vec<String>,
+    /// Wide files: the age column at each wave, in wave order.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub wide_age: Vec<String>,
+    /// Wide files: the assessment-date column at each wave (with `birth_date`).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub wide_date: Vec<String>,
     /// Birth cohort (optional).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub cohort: Option<String>,
@@ -58,6 +68,9 @@ pub struct Roles {
 impl Roles {
     /// Every (role, column) pair, in a fixed order.
     pub fn all(&self) -> Vec<(String, String)> {
+        if self.is_wide() {
+            return self.all_wide();
+        }
         let mut v = vec![("--id".to_string(), self.id.clone())];
         match self.dates() {
             Some((b, d)) => {
@@ -84,6 +97,37 @@ impl Roles {
 }
 
 impl Roles {
+    /// Whether the file is wide (one row per participant).
+    pub fn is_wide(&self) -> bool {
+        !self.wide_outcome.is_empty()
+    }
+
+    /// The columns of a wide file, with their roles.
+    fn all_wide(&self) -> Vec<(String, String)> {
+        let mut v = vec![("--id".to_string(), self.id.clone())];
+        if let Some(b) = &self.birth_date {
+            v.push(("--birth-date".to_string(), b.clone()));
+        }
+        for c in &self.wide_outcome {
+            v.push(("--wide-outcome".to_string(), c.clone()));
+        }
+        for c in &self.wide_age {
+            v.push(("--wide-age".to_string(), c.clone()));
+        }
+        for c in &self.wide_date {
+            v.push(("--wide-date".to_string(), c.clone()));
+        }
+        for (role, c) in [("--cohort", &self.cohort), ("--cluster", &self.cluster)] {
+            if let Some(c) = c {
+                v.push((role.to_string(), c.clone()));
+            }
+        }
+        for c in &self.covariates {
+            v.push(("--covariate".to_string(), c.clone()));
+        }
+        v
+    }
+
     /// The birth-date and assessment-date columns, when age comes from dates.
     pub fn dates(&self) -> Option<(&str, &str)> {
         match (&self.birth_date, &self.date) {
@@ -350,7 +394,126 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
             message: "the file has a header but no data rows; add data or check that the right file was given".into(),
         });
     }
+    if roles.is_wide() {
+        let (long, long_roles, file_row) = reshape_wide(path, roles, &table)?;
+        let mut panel = build(path, &long_roles, &long)?;
+        panel.row = panel.row.iter().map(|&r| file_row[r - 1]).collect();
+        return Ok(panel);
+    }
     build(path, roles, &table)
+}
+
+/// Reshape a wide table (one row per participant, one column per wave for the
+/// outcome and for age or date) to long, participant by participant in wave
+/// order. Wide cells are checked first, so errors name the file's own column
+/// and row. Returns the long table, its roles, and each long row's file row.
+fn reshape_wide(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<(read::RawTable, Roles, Vec<usize>)> {
+    let k = roles.wide_outcome.len();
+    let times = if roles.wide_date.is_empty() {
+        &roles.wide_age
+    } else {
+        &roles.wide_date
+    };
+    if times.len() != k {
+        return Err(Error::Spec {
+            parameter: if roles.wide_date.is_empty() {
+                "--wide-age"
+            } else {
+                "--wide-date"
+            }
+            .into(),
+            message: format!(
+                "{} columns for {} outcome columns; give one per wave, in the same order",
+                times.len(),
+                k
+            ),
+        });
+    }
+    if !roles.wide_date.is_empty() && roles.birth_date.is_none() {
+        return Err(Error::Spec {
+            parameter: "--wide-date".into(),
+            message: "dates per wave need --birth-date".into(),
+        });
+    }
+    if roles.wide_date.is_empty() && roles.birth_date.is_some() {
+        return Err(Error::Spec {
+            parameter: "--birth-date".into(),
+            message: "in a wide file, give the assessment dates with --wide-date".into(),
+        });
+    }
+    let n = table.n_rows;
+    let col = |name: &str| &table.columns[name];
+    // Check every numeric wide cell in place.
+    for r in 0..n {
+        for c in roles.wide_outcome.iter().chain(roles.wide_age.iter()) {
+            number_at(path, c, col(c), r)?;
+        }
+    }
+    let text = |c: &RawColumn, r: usize| label_at(c, r);
+    let number = |c: &RawColumn, r: usize| -> Option<String> {
+        match c {
+            RawColumn::Number(v) => v[r].map(|x| x.to_string()),
+            RawColumn::Text(v) => v[r].clone(),
+        }
+    };
+    let mut file_row = Vec::with_capacity(n * k);
+    let mut out: Vec<(String, Vec<Option<String>>)> = Vec::new();
+    let outcome_name = roles.outcome.clone();
+    let age_name = roles.age.clone();
+    let wave_name = roles.wave.clone().unwrap_or_else(|| "wave".into());
+    let mut constant: Vec<String> = vec![roles.id.clone()];
+    constant.extend(roles.cohort.iter().cloned());
+    constant.extend(roles.cluster.iter().cloned());
+    constant.extend(roles.birth_date.iter().cloned());
+    constant.extend(roles.covariates.iter().cloned());
+    for c in &constant {
+        out.push((c.clone(), Vec::with_capacity(n * k)));
+    }
+    let time_name = if roles.wide_date.is_empty() {
+        age_name.clone()
+    } else {
+        roles.date.clone().unwrap_or_else(|| "date".into())
+    };
+    let mut y = Vec::with_capacity(n * k);
+    let mut t = Vec::with_capacity(n * k);
+    let mut w = Vec::with_capacity(n * k);
+    for r in 0..n {
+        for (wave, (outcome_col, time_col)) in roles.wide_outcome.iter().zip(times).enumerate() {
+            for (j, c) in constant.iter().enumerate() {
+                out[j].1.push(number(col(c), r).or_else(|| text(col(c), r)));
+            }
+            y.push(number(col(outcome_col), r));
+            t.push(number(col(time_col), r));
+            w.push(Some((wave + 1).to_string()));
+            file_row.push(r + 1);
+        }
+    }
+    let mut columns: std::collections::HashMap<String, RawColumn> =
+        out.into_iter().map(|(c, v)| (c, RawColumn::Text(v))).collect();
+    columns.insert(outcome_name.clone(), RawColumn::Text(y));
+    columns.insert(time_name.clone(), RawColumn::Text(t));
+    columns.insert(wave_name.clone(), RawColumn::Text(w));
+    let long_roles = Roles {
+        wide_outcome: Vec::new(),
+        wide_age: Vec::new(),
+        wide_date: Vec::new(),
+        wave: Some(wave_name),
+        date: if roles.wide_date.is_empty() {
+            None
+        } else {
+            Some(time_name)
+        },
+        ..roles.clone()
+    };
+    Ok((
+        read::RawTable {
+            path: path.to_path_buf(),
+            n_rows: n * k,
+            columns,
+        },
+        long_roles,
+        file_row,
+    ))
 }
 
 fn validate_roles(roles: &Roles) -> Result<()> {
@@ -373,7 +536,7 @@ fn validate_roles(roles: &Roles) -> Result<()> {
             }
         }
     }
-    if roles.birth_date.is_some() != roles.date.is_some() {
+    if !roles.is_wide() && roles.birth_date.is_some() != roles.date.is_some() {
         return Err(Error::Spec {
             parameter: if roles.birth_date.is_some() {
                 "--date"
