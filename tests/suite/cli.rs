@@ -297,7 +297,9 @@ fn a_wide_file_and_its_long_twin_give_identical_fits() {
     let (header, rows) = sim.table();
     braid::data::read::write_csv(&dir.join("long.csv"), &header, &rows).unwrap();
     // The same records, one row per pupil: score_w and age_w for waves 1–4.
-    let mut wide: BTreeMap<String, (String, String, Vec<(String, String)>)> = BTreeMap::new();
+    // Per pupil: school, cohort, and (score, age) text at each wave.
+    type WideRow = (String, String, Vec<(String, String)>);
+    let mut wide: BTreeMap<String, WideRow> = BTreeMap::new();
     for r in &rows {
         let e =
             wide.entry(r[0].clone())
