@@ -117,11 +117,17 @@ pub fn header(path: &Path, delimiter: u8) -> Result<Vec<String>> {
 /// # Errors
 /// [`Error::Io`] or [`Error::Parse`] when the file cannot be read as a table.
 pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawTable> {
-    let parse = |e: PolarsError| Error::Parse {
-        path: path.to_path_buf(),
-        message: format!(
-            "cannot be read as a table ({e}); check the delimiter, quoting and that every row has the same number of fields"
-        ),
+    let parse = |e: PolarsError| {
+        let text = e.to_string();
+        let advice = if text.to_ascii_lowercase().contains("utf-8") || text.to_ascii_lowercase().contains("utf8") {
+            "save the file as UTF-8 text"
+        } else {
+            "check the delimiter, quoting and that every row has the same number of fields"
+        };
+        Error::Parse {
+            path: path.to_path_buf(),
+            message: format!("cannot be read as a table ({text}); {advice}"),
+        }
     };
     let df = match format_of(path) {
         Format::Csv => {
