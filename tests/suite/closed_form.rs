@@ -43,6 +43,17 @@ fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
     (problem, groups)
 }
 
+fn reml(problem: &MixedProblem) -> braid::lmm::Fit {
+    lmm::fit(
+        problem,
+        FitOptions {
+            method: Method::Reml,
+            ..Default::default()
+        },
+    )
+    .unwrap()
+}
+
 fn anova(groups: &[Vec<f64>]) -> (f64, f64, f64) {
     let a = groups.len() as f64;
     let n = groups[0].len() as f64;
@@ -63,14 +74,7 @@ fn reml_equals_anova_estimators_in_balanced_one_way_design() {
         let (problem, groups) = balanced(a, n, seed);
         let (msb, mse, grand) = anova(&groups);
         assert!(msb > mse, "the identity needs a positive variance estimate");
-        let fit = lmm::fit(
-            &problem,
-            FitOptions {
-                method: Method::Reml,
-                ..Default::default()
-            },
-        )
-        .unwrap();
+        let fit = reml(&problem);
         let var_group = fit.random[0].covariance[0][0];
         assert!(
             rel(fit.sigma2, mse, 1e-12) < CLOSED_FORM_REL,
@@ -112,14 +116,7 @@ fn zero_between_group_variation_is_a_reported_boundary_estimate() {
     let n = problem.y.len() as f64;
     let mean = problem.y.iter().sum::<f64>() / n;
     let sst: f64 = problem.y.iter().map(|v| (v - mean).powi(2)).sum();
-    let fit = lmm::fit(
-        &problem,
-        FitOptions {
-            method: Method::Reml,
-            ..Default::default()
-        },
-    )
-    .unwrap();
+    let fit = reml(&problem);
     assert_eq!(
         fit.info.boundary,
         vec!["group:intercept".to_string()],
