@@ -276,6 +276,7 @@ impl Simulated {
                 None
             },
             covariates: Vec::new(),
+            calendar: None,
         }
     }
 

@@ -89,6 +89,24 @@ impl Date {
     }
 }
 
+/// A date as a decimal calendar year: the year plus the elapsed share of it,
+/// in days (1 January is `year + 0`).
+pub fn decimal_year(date: Date) -> f64 {
+    let start = Date {
+        year: date.year,
+        month: 1,
+        day: 1,
+    }
+    .days();
+    let next = Date {
+        year: date.year + 1,
+        month: 1,
+        day: 1,
+    }
+    .days();
+    date.year as f64 + (date.days() - start) as f64 / (next - start) as f64
+}
+
 /// Decimal age at `date` of someone born on `birth`, by the anniversary rule;
 /// `None` when `date` is before `birth`.
 pub fn decimal_age(birth: Date, date: Date) -> Option<f64> {

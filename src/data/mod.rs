@@ -252,6 +252,18 @@ pub struct Panel {
     pub cluster: Option<Codes>,
     /// Covariates, in the order given.
     pub covariates: Vec<Covariate>,
+    /// With ages from dates: the assessment date and the birth date of each
+    /// row as decimal calendar years (year + elapsed share of that year).
+    pub calendar: Option<Calendar>,
+}
+
+/// Calendar time of each row, when ages come from dates.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Calendar {
+    /// Assessment date as a decimal year (the period).
+    pub period: Vec<f64>,
+    /// Birth date as a decimal year (the cohort).
+    pub birth: Vec<f64>,
 }
 
 impl Panel {
@@ -721,6 +733,17 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         });
     }
     let row: Vec<usize> = keep_rows.iter().map(|r| r + 1).collect();
+    let calendar = roles.dates().map(|(b, d)| {
+        let year_of = |c: &str, r: usize| {
+            label_at(col(c), r)
+                .and_then(|s| dates::Date::parse(&s))
+                .map_or(f64::NAN, dates::decimal_year)
+        };
+        Calendar {
+            period: keep_rows.iter().map(|&r| year_of(d, r)).collect(),
+            birth: keep_rows.iter().map(|&r| year_of(b, r)).collect(),
+        }
+    });
     // A participant's cohort and birth date cannot change between waves.
     let mut fixed: Vec<(&str, Vec<String>)> = Vec::new();
     if let Some(c) = &roles.cohort {
@@ -805,5 +828,6 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         wave,
         cluster,
         covariates,
+        calendar,
     })
 }

@@ -182,8 +182,11 @@ pub struct Attrition {
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct Collinear {
     /// Whether age, period and birth cohort are exactly collinear; `None`
-    /// when the file has no assessment period to check it with.
+    /// when the file has no dates to check it with.
     pub age_period_cohort: Option<bool>,
+    /// With dates: the largest |age − (period − cohort)| in years, where period
+    /// and cohort are the assessment and birth dates as decimal years.
+    pub age_period_cohort_gap: Option<f64>,
     /// Whether time in study (age minus age at the first assessment) is an
     /// exact linear function of the number of prior assessments.
     pub time_retest: bool,
@@ -433,6 +436,11 @@ impl Ord for OrderedAge {
 /// prior assessments (rounding of ages in a file leaves far more).
 const EXACT_R2: f64 = 1.0 - 1e-10;
 
+/// Age is period − cohort up to calendar conventions: the anniversary rule
+/// and decimal calendar years differ by at most about two days, so with dates a
+/// largest gap below this (in years, about 3.7 days) is exact collinearity.
+const APC_GAP: f64 = 0.01;
+
 /// Above this R², the two count as nearly collinear (common practice).
 const NEAR_R2: f64 = 0.99;
 
@@ -557,8 +565,29 @@ fn attrition_and_collinearity(
     }
     let r2 = r_squared(&time, &prior);
     let time_retest = r2 >= EXACT_R2;
-    let mut notes =
-        vec!["age–period–cohort collinearity needs assessment dates or a period column; not checked".to_string()];
+    let mut notes = Vec::new();
+    let (apc, apc_gap) = match &panel.calendar {
+        Some(cal) => {
+            let gap = panel
+                .age
+                .iter()
+                .zip(cal.period.iter().zip(&cal.birth))
+                .map(|(a, (p, b))| (a - (p - b)).abs())
+                .fold(0.0, f64::max);
+            (Some(gap <= APC_GAP), Some(gap))
+        }
+        None => (None, None),
+    };
+    match apc {
+        Some(true) => notes.push(format!(
+            "age, period and cohort are exactly collinear (age = period − cohort to within {:.4} years): linear age, period and cohort \
+             effects cannot be told apart without a constraint; only their identified combinations and curvatures can be \
+             estimated (Holford 1983)",
+            apc_gap.unwrap_or(f64::NAN)
+        )),
+        Some(false) => notes.push("age is not an exact function of period − cohort here; check the dates".to_string()),
+        None => notes.push("age–period–cohort collinearity needs birth and assessment dates; not checked".to_string()),
+    }
     if time_retest {
         notes.push(
             "time in study is an exact linear function of the number of prior assessments: a retest effect cannot be separated from within-person change with age"
@@ -572,7 +601,8 @@ fn attrition_and_collinearity(
     (
         Attrition { patterns, baseline },
         Collinear {
-            age_period_cohort: None,
+            age_period_cohort: apc,
+            age_period_cohort_gap: apc_gap,
             time_retest,
             time_retest_r2: r2,
             notes,

@@ -167,3 +167,38 @@ fn fixed_schedule_makes_time_in_study_collinear_with_prior_assessments() {
     assert!(jittered.collinear.time_retest_r2 > 0.99, "{:?}", jittered.collinear);
     assert!(jittered.collinear.notes.iter().any(|n| n.contains("nearly collinear")));
 }
+
+#[test]
+fn with_dates_age_period_and_cohort_are_reported_collinear() {
+    // Closed form: age = period − cohort, where period and cohort are the
+    // assessment and birth dates in years; only calendar conventions (leap
+    // days) separate the two sides, by a few days at most.
+    let dir = crate::common::temp_dir("apc-dates");
+    let path = dir.join("dated.csv");
+    let mut text = String::from("pupil,born,seen,score\n");
+    for (k, born) in ["2008-02-29", "2009-07-15", "2010-12-31", "2011-01-01", "2012-06-30"]
+        .iter()
+        .enumerate()
+    {
+        for (w, seen) in ["2021-03-01", "2022-02-28", "2023-09-30"].iter().enumerate() {
+            text.push_str(&format!("P{k},{born},{seen},{}\n", 40 + k + 2 * w));
+        }
+    }
+    std::fs::write(&path, text).unwrap();
+    let roles = braid::data::Roles {
+        id: "pupil".into(),
+        age: "age".into(),
+        outcome: "score".into(),
+        birth_date: Some("born".into()),
+        date: Some("seen".into()),
+        ..Default::default()
+    };
+    let panel = braid::data::load(&path, &roles, Default::default()).unwrap();
+    let report = inspect(&panel, DesignOptions::default()).unwrap();
+    assert_eq!(report.collinear.age_period_cohort, Some(true));
+    let gap = report.collinear.age_period_cohort_gap.unwrap();
+    assert!(gap < 0.01, "{gap}");
+    // Without dates there is nothing to check it with.
+    let plain = inspect(&simulate(&Design::demo()).panel(true), DesignOptions::default()).unwrap();
+    assert_eq!(plain.collinear.age_period_cohort, None);
+}
