@@ -224,6 +224,26 @@ fn label_key(s: &str) -> (f64, String) {
     (s.trim().parse::<f64>().unwrap_or(f64::INFINITY), s.to_string())
 }
 
+/// Rows grouped by their label, groups in numeric-aware label order.
+fn group_by_label(labels: &[String], rows: impl Iterator<Item = usize>) -> BTreeMap<(OrderedAge, String), Vec<usize>> {
+    let mut groups: BTreeMap<(OrderedAge, String), Vec<usize>> = BTreeMap::new();
+    for r in rows {
+        let (k, s) = label_key(&labels[r]);
+        groups.entry((OrderedAge(k), s)).or_default().push(r);
+    }
+    groups
+}
+
+/// The sorted ages of some rows and the number of distinct participants among them.
+fn sorted_ages_and_people(panel: &Panel, rows: &[usize]) -> (Vec<f64>, usize) {
+    let mut ages: Vec<f64> = rows.iter().map(|&r| panel.age[r]).collect();
+    ages.sort_by(f64::total_cmp);
+    let mut ids: Vec<u32> = rows.iter().map(|&r| panel.id.codes[r]).collect();
+    ids.sort_unstable();
+    ids.dedup();
+    (ages, ids.len())
+}
+
 /// Summarise the design of a panel.
 ///
 /// # Errors
@@ -282,39 +302,23 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         }
     };
     // Group rows by cohort, then wave.
-    let mut by_cohort: BTreeMap<(OrderedAge, String), Vec<usize>> = BTreeMap::new();
-    for (r, label) in cohort_of.iter().enumerate() {
-        let (k, s) = label_key(label);
-        by_cohort.entry((OrderedAge(k), s)).or_default().push(r);
-    }
+    let by_cohort = group_by_label(&cohort_of, 0..n);
     let mut cohorts = Vec::new();
     let mut retention = Vec::new();
     let mut bands = Vec::new();
     for ((_, label), rows) in &by_cohort {
-        let mut ages: Vec<f64> = rows.iter().map(|&r| panel.age[r]).collect();
-        ages.sort_by(f64::total_cmp);
-        let mut ids: Vec<u32> = rows.iter().map(|&r| panel.id.codes[r]).collect();
-        ids.sort_unstable();
-        ids.dedup();
-        let mut by_wave: BTreeMap<(OrderedAge, String), Vec<usize>> = BTreeMap::new();
-        for &r in rows {
-            let (k, s) = label_key(&wave_of[r]);
-            by_wave.entry((OrderedAge(k), s)).or_default().push(r);
-        }
+        let (ages, people) = sorted_ages_and_people(panel, rows);
+        let by_wave = group_by_label(&wave_of, rows.iter().copied());
         let mut waves = Vec::new();
         let mut base = None;
         for ((_, w), wrows) in &by_wave {
-            let mut wa: Vec<f64> = wrows.iter().map(|&r| panel.age[r]).collect();
-            wa.sort_by(f64::total_cmp);
-            let mut wid: Vec<u32> = wrows.iter().map(|&r| panel.id.codes[r]).collect();
-            wid.sort_unstable();
-            wid.dedup();
-            let b = *base.get_or_insert(wid.len());
+            let (wa, seen) = sorted_ages_and_people(panel, wrows);
+            let b = *base.get_or_insert(seen);
             retention.push(Retention {
                 cohort: label.clone(),
                 wave: w.clone(),
-                n: wid.len(),
-                share: wid.len() as f64 / b as f64,
+                n: seen,
+                share: seen as f64 / b as f64,
             });
             waves.push(WaveCoverage {
                 wave: w.clone(),
@@ -339,7 +343,7 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         }
         cohorts.push(CohortCoverage {
             cohort: label.clone(),
-            n_participants: ids.len(),
+            n_participants: people,
             n_obs: rows.len(),
             waves,
             age_min: ages[0],
