@@ -11,7 +11,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::data::{Codes, DropReport, Panel, Roles};
+use crate::data::{Calendar, CalendarSource, Codes, DropReport, Panel, Roles};
 
 /// A small deterministic random-number generator (xoshiro256**).
 #[derive(Debug, Clone)]
@@ -163,13 +163,16 @@ pub struct SimRow {
     pub cohort: String,
     /// Wave number, from 1.
     pub wave: usize,
-    /// Calendar year of the assessment.
-    pub year: i32,
+    /// Calendar time of the assessment as a decimal year.
+    pub year: f64,
     /// Exact age, years.
     pub age: f64,
     /// Outcome.
     pub score: f64,
 }
+
+/// Each wave's fieldwork centres on this share of the calendar year (autumn).
+const FIELDWORK_START: f64 = 0.75;
 
 /// A simulated study.
 #[derive(Debug, Clone)]
@@ -209,7 +212,8 @@ pub fn simulate(design: &Design) -> Simulated {
                     break;
                 }
                 let missed = w > 0 && rng.uniform() < design.skip;
-                let age = age0 + w as f64 * design.wave_gap + 0.2 * (rng.uniform() - 0.5);
+                let offset = w as f64 * design.wave_gap + 0.2 * (rng.uniform() - 0.5);
+                let age = age0 + offset;
                 let e = t.sd_residual * rng.normal();
                 if missed {
                     continue;
@@ -220,7 +224,7 @@ pub fn simulate(design: &Design) -> Simulated {
                     school: format!("S{:02}", school + 1),
                     cohort: format!("{}", entry),
                     wave: w + 1,
-                    year: design.first_year + (w as f64 * design.wave_gap).round() as i32,
+                    year: f64::from(design.first_year) + FIELDWORK_START + offset,
                     age,
                     score,
                 });
@@ -248,6 +252,8 @@ impl Simulated {
             cohort: Some("cohort".into()),
             wave: Some("wave".into()),
             cluster: if with_school { Some("school".into()) } else { None },
+            period: Some("year".into()),
+            birth_year: None,
             covariates: vec![],
             categorical: vec![],
         }
@@ -276,7 +282,11 @@ impl Simulated {
                 None
             },
             covariates: Vec::new(),
-            calendar: None,
+            calendar: Some(Calendar {
+                period: self.rows.iter().map(|r| r.year).collect(),
+                birth: self.rows.iter().map(|r| r.year - r.age).collect(),
+                source: CalendarSource::BirthFromPeriod,
+            }),
         }
     }
 
@@ -292,7 +302,7 @@ impl Simulated {
                     r.school.clone(),
                     r.cohort.clone(),
                     r.wave.to_string(),
-                    r.year.to_string(),
+                    format!("{:.4}", r.year),
                     format!("{:.4}", r.age),
                     format!("{:.3}", r.score),
                 ]

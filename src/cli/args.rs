@@ -70,6 +70,12 @@ pub struct RoleArgs {
     /// Column holding the cluster (for example the school); adds a random intercept per cluster.
     #[arg(long, value_name = "COLUMN")]
     pub cluster: Option<String>,
+    /// Column holding the period: the calendar time of each assessment as a (decimal) year. Not needed with --date.
+    #[arg(long, value_name = "COLUMN")]
+    pub period: Option<String>,
+    /// Column holding the birth year as a number. Not needed with --birth-date.
+    #[arg(long, value_name = "COLUMN")]
+    pub birth_year: Option<String>,
     /// A covariate column (repeatable); numeric unless its values are text or it is also given to --categorical.
     #[arg(long = "covariate", value_name = "COLUMN")]
     pub covariates: Vec<String>,
@@ -142,12 +148,21 @@ pub struct FitArgs {
 /// Flags of `braid inspect`.
 #[derive(Debug, Clone, Default, Args)]
 pub struct InspectArgs {
-    /// The data file (CSV, or Parquet by its .parquet extension).
+    /// The data file (CSV, or Parquet by its .parquet extension); may come from --study instead.
     #[arg(value_name = "DATA")]
-    pub data: PathBuf,
+    pub data: Option<PathBuf>,
+    /// A study file (TOML) giving the data file and column roles; flags override it.
+    #[arg(long, value_name = "FILE")]
+    pub study: Option<PathBuf>,
     /// Column roles.
     #[command(flatten)]
     pub roles: RoleArgs,
+    /// Derived cohorts, when the file has no cohort column (or to override it).
+    #[command(flatten)]
+    pub derive: DeriveArgs,
+    /// Folder for design.json and the Lexis diagram and coverage chart (PNG and SVG).
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
     /// Width of the age bands of the cohort-by-age table, in years.
     #[arg(long, value_name = "YEARS", default_value_t = 1.0)]
     pub band: f64,
@@ -163,6 +178,69 @@ pub struct InspectArgs {
     /// Overwrite an existing --json file.
     #[arg(long)]
     pub force: bool,
+}
+
+/// How cohort is derived from birth year or first age.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum CohortFromArg {
+    /// Whole-year age at the participant's first assessment.
+    FirstAge,
+    /// Calendar year of birth (needs dates, --birth-year or --period).
+    BirthYear,
+}
+
+/// How wave is derived.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum WaveFromArg {
+    /// The k-th assessment of each participant, in order of age.
+    Order,
+    /// Calendar rounds counted from each cohort's first assessment (needs dates or --period).
+    Calendar,
+}
+
+/// Rules for deriving cohort and wave.
+#[derive(Debug, Clone, Default, Args)]
+pub struct DeriveArgs {
+    /// Derive cohort this way [default: the --cohort column; else birth year when the file has calendar times; else first age].
+    #[arg(long, value_name = "RULE")]
+    pub cohort_from: Option<CohortFromArg>,
+    /// Width of derived cohort groups, in years.
+    #[arg(long, value_name = "YEARS", default_value_t = 1.0)]
+    pub cohort_width: f64,
+    /// Derive wave this way [default: the --wave column; else calendar rounds when the file has calendar times; else order].
+    #[arg(long, value_name = "RULE")]
+    pub wave_from: Option<WaveFromArg>,
+    /// Length of a derived calendar round (wave), in years.
+    #[arg(long, value_name = "YEARS", default_value_t = 1.0)]
+    pub wave_length: f64,
+}
+
+impl DeriveArgs {
+    /// The cohort rule these flags ask for.
+    pub fn cohort_rule(&self) -> crate::data::derive::CohortRule {
+        use crate::data::derive::CohortRule;
+        match self.cohort_from {
+            None => CohortRule::Auto,
+            Some(CohortFromArg::FirstAge) => CohortRule::FirstAge {
+                width: self.cohort_width,
+            },
+            Some(CohortFromArg::BirthYear) => CohortRule::BirthYear {
+                width: self.cohort_width,
+            },
+        }
+    }
+
+    /// The wave rule these flags ask for.
+    pub fn wave_rule(&self) -> crate::data::derive::WaveRule {
+        use crate::data::derive::WaveRule;
+        match self.wave_from {
+            None => WaveRule::Auto,
+            Some(WaveFromArg::Order) => WaveRule::Order,
+            Some(WaveFromArg::Calendar) => WaveRule::Calendar {
+                length: self.wave_length,
+            },
+        }
+    }
 }
 
 /// Flags of `braid demo`.

@@ -154,26 +154,41 @@ fn merge_roles(r: &super::args::RoleArgs, study: Option<&Roles>) -> Result<Roles
         cohort: pick(&r.cohort, |x| x.cohort.clone()),
         wave: pick(&r.wave, |x| x.wave.clone()),
         cluster: pick(&r.cluster, |x| x.cluster.clone()),
+        period: pick(&r.period, |x| x.period.clone()),
+        birth_year: pick(&r.birth_year, |x| x.birth_year.clone()),
         covariates: list(&r.covariates, |x| x.covariates.clone()),
         categorical: list(&r.categorical, |x| x.categorical.clone()),
     })
 }
 
-impl FitConfig {
-    /// Build and validate the configuration from `braid fit` flags.
+/// The data file, its column roles and read options, from flags and an
+/// optional study file (flags win).
+#[derive(Debug, Clone)]
+pub struct Source {
+    /// The data file.
+    pub data: PathBuf,
+    /// Column roles.
+    pub roles: Roles,
+    /// How to read the file.
+    pub read: ReadOptions,
+    /// The study file, when one was given.
+    pub study: Option<Study>,
+}
+
+impl Source {
+    /// Resolve the data file and roles from flags and an optional study file.
+    /// A relative data path in a study file is taken from the study file's folder.
     ///
     /// # Errors
-    /// [`Error::Spec`] for a missing data file or role, or an invalid option;
+    /// [`Error::Spec`] for no data file, a missing role or a bad delimiter;
     /// errors of [`Study::read`] for a bad study file.
-    pub fn from_args(args: &FitArgs) -> Result<FitConfig> {
-        let study = args.study.as_deref().map(Study::read).transpose()?;
-        let base_dir = args
-            .study
-            .as_deref()
+    pub fn resolve(data: Option<&PathBuf>, study_path: Option<&Path>, r: &super::args::RoleArgs) -> Result<Source> {
+        let study = study_path.map(Study::read).transpose()?;
+        let base_dir = study_path
             .and_then(Path::parent)
             .map(Path::to_path_buf)
             .unwrap_or_default();
-        let data = match (&args.data, &study) {
+        let data = match (data, &study) {
             (Some(d), _) => d.clone(),
             (None, Some(s)) => {
                 if s.data.file.is_absolute() {
@@ -189,14 +204,34 @@ impl FitConfig {
                 });
             }
         };
-        let r = &args.roles;
-        let s_roles = study.as_ref().map(|s| s.roles.clone());
-        let roles = merge_roles(r, s_roles.as_ref())?;
+        let roles = merge_roles(r, study.as_ref().map(|s| &s.roles))?;
         let delimiter = match (&r.delimiter, study.as_ref().and_then(|s| s.data.delimiter.clone())) {
             (Some(d), _) => parse_delimiter(d)?,
             (None, Some(d)) => parse_delimiter(&d)?,
             (None, None) => b',',
         };
+        Ok(Source {
+            data,
+            roles,
+            read: ReadOptions { delimiter },
+            study,
+        })
+    }
+}
+
+impl FitConfig {
+    /// Build and validate the configuration from `braid fit` flags.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] for a missing data file or role, or an invalid option;
+    /// errors of [`Study::read`] for a bad study file.
+    pub fn from_args(args: &FitArgs) -> Result<FitConfig> {
+        let Source {
+            data,
+            roles,
+            read,
+            study,
+        } = Source::resolve(args.data.as_ref(), args.study.as_deref(), &args.roles)?;
         let mut model = study.map(|s| s.model).unwrap_or_default();
         if let Some(m) = args.method {
             model.method = match m {
@@ -251,7 +286,7 @@ impl FitConfig {
         }
         Ok(FitConfig {
             data,
-            read: ReadOptions { delimiter },
+            read,
             roles,
             model,
             out: args.out.clone(),

@@ -19,6 +19,7 @@ use config::{DataSection, FitConfig, Study};
 
 /// Parse the process arguments and run; returns the exit code.
 pub fn main_exit_code() -> i32 {
+    quiet_decoder_panics();
     let cli = match Cli::try_parse() {
         Ok(c) => c,
         Err(e) => {
@@ -34,6 +35,18 @@ pub fn main_exit_code() -> i32 {
             e.exit_code()
         }
     }
+}
+
+/// The Parquet decoder panics on some damaged files; braid catches that and
+/// reports a one-line error, so the default panic message is silenced for
+/// panics inside a guarded read (and only there).
+fn quiet_decoder_panics() {
+    let default = std::panic::take_hook();
+    std::panic::set_hook(Box::new(move |info| {
+        if !data::read::in_parquet_read() {
+            default(info);
+        }
+    }));
 }
 
 /// Run one parsed command.
@@ -122,14 +135,19 @@ fn sample_lines(panel: &Panel, k: usize) -> Vec<Line> {
 
 /// `braid inspect`: load, then describe the design.
 fn inspect_command(a: &args::InspectArgs) -> Result<()> {
-    let (roles, read) = config::roles_from_flags(&a.roles)?;
+    let source = config::Source::resolve(a.data.as_ref(), a.study.as_deref(), &a.roles)?;
     if let Some(file) = &a.json {
         report::check_output(file, false, a.force, "--json")?;
     }
-    let panel = data::load(&a.data, &roles, read)?;
+    if let Some(dir) = &a.out {
+        report::check_output(dir, true, a.force, "--out")?;
+    }
+    let panel = data::load(&source.data, &source.roles, source.read)?;
     let options = crate::design::DesignOptions {
         band_width: a.band,
         thin_overlap: a.thin,
+        cohort_rule: a.derive.cohort_rule(),
+        wave_rule: a.derive.wave_rule(),
     };
     let report = crate::design::inspect(&panel, options)?;
     if !a.quiet {
@@ -140,6 +158,12 @@ fn inspect_command(a: &args::InspectArgs) -> Result<()> {
             report::ensure_dir(parent)?;
         }
         report::write_json(path, &report)?;
+    }
+    if let Some(dir) = &a.out {
+        let written = report::write_design_outputs(dir, &panel, &report, options)?;
+        if !a.quiet {
+            println!("\nWritten to {}: {}", dir.display(), written.join(", "));
+        }
     }
     Ok(())
 }
@@ -222,5 +246,12 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
         ];
         print!("{}", text::fit_summary(&analysis.report, Some(&truth)));
     }
-    write_outputs(&a.out, &panel, &analysis, 60, a.quiet)
+    write_outputs(&a.out, &panel, &analysis, 60, a.quiet)?;
+    let options = crate::design::DesignOptions::default();
+    let design_report = crate::design::inspect(&panel, options)?;
+    let written = report::write_design_outputs(&a.out, &panel, &design_report, options)?;
+    if !a.quiet {
+        println!("Wrote the design report and figures: {}", written.join(", "));
+    }
+    Ok(())
 }

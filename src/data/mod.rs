@@ -9,6 +9,7 @@
 //! - with a wave column, two rows for one participant and wave are an error.
 
 pub mod dates;
+pub mod derive;
 pub mod read;
 
 use std::collections::HashMap;
@@ -57,6 +58,13 @@ pub struct Roles {
     /// Cluster such as school (optional).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub cluster: Option<String>,
+    /// Period: the calendar time of each assessment as a (decimal) year
+    /// (optional; ignored when ages come from dates, which give it).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub period: Option<String>,
+    /// Birth year as a number (optional; ignored when ages come from dates).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub birth_year: Option<String>,
     /// Covariates: numeric where every value is a number, otherwise categorical.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub covariates: Vec<String>,
@@ -80,10 +88,17 @@ impl Roles {
             None => v.push(("--age".to_string(), self.age.clone())),
         }
         v.push(("--outcome".to_string(), self.outcome.clone()));
+        let calendar = if self.dates().is_some() {
+            (&None, &None)
+        } else {
+            (&self.period, &self.birth_year)
+        };
         for (role, c) in [
             ("--cohort", &self.cohort),
             ("--wave", &self.wave),
             ("--cluster", &self.cluster),
+            ("--period", calendar.0),
+            ("--birth-year", calendar.1),
         ] {
             if let Some(c) = c {
                 v.push((role.to_string(), c.clone()));
@@ -117,7 +132,16 @@ impl Roles {
         for c in &self.wide_date {
             v.push(("--wide-date".to_string(), c.clone()));
         }
-        for (role, c) in [("--cohort", &self.cohort), ("--cluster", &self.cluster)] {
+        let birth_year = if self.birth_date.is_some() {
+            &None
+        } else {
+            &self.birth_year
+        };
+        for (role, c) in [
+            ("--cohort", &self.cohort),
+            ("--cluster", &self.cluster),
+            ("--birth-year", birth_year),
+        ] {
             if let Some(c) = c {
                 v.push((role.to_string(), c.clone()));
             }
@@ -257,13 +281,41 @@ pub struct Panel {
     pub calendar: Option<Calendar>,
 }
 
-/// Calendar time of each row, when ages come from dates.
+/// Calendar time of each row: from dates, or from period and birth-year columns.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Calendar {
-    /// Assessment date as a decimal year (the period).
+    /// Assessment time as a decimal year (the period).
     pub period: Vec<f64>,
-    /// Birth date as a decimal year (the cohort).
+    /// Birth time as a decimal year (the cohort).
     pub birth: Vec<f64>,
+    /// Where the two came from.
+    pub source: CalendarSource,
+}
+
+/// Where a panel's calendar times came from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CalendarSource {
+    /// Birth and assessment dates (ages computed from them).
+    Dates,
+    /// A period column and a birth-year column, both given.
+    Columns,
+    /// A period column; birth time derived as period − age.
+    BirthFromPeriod,
+    /// A birth-year column; period derived as birth year + age.
+    PeriodFromBirth,
+}
+
+impl CalendarSource {
+    /// In words.
+    pub fn describe(self) -> &'static str {
+        match self {
+            CalendarSource::Dates => "birth and assessment dates",
+            CalendarSource::Columns => "the period and birth-year columns",
+            CalendarSource::BirthFromPeriod => "the period column, with birth time derived as period − age",
+            CalendarSource::PeriodFromBirth => "the birth-year column, with period derived as birth year + age",
+        }
+    }
 }
 
 impl Panel {
@@ -477,6 +529,7 @@ fn reshape_wide(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<(r
     constant.extend(roles.cohort.iter().cloned());
     constant.extend(roles.cluster.iter().cloned());
     constant.extend(roles.birth_date.iter().cloned());
+    constant.extend(roles.birth_year.iter().filter(|_| roles.birth_date.is_none()).cloned());
     constant.extend(roles.covariates.iter().cloned());
     for c in &constant {
         out.push((c.clone(), Vec::with_capacity(n * k)));
@@ -557,6 +610,12 @@ fn validate_roles(roles: &Roles) -> Result<()> {
             }
             .into(),
             message: "ages from dates need both --birth-date and --date".into(),
+        });
+    }
+    if roles.is_wide() && roles.period.is_some() {
+        return Err(Error::Spec {
+            parameter: "--period".into(),
+            message: "a wide file has one assessment time per wave: give them with --wide-date (and --birth-date), or a --birth-year column".into(),
         });
     }
     for c in &roles.categorical {
@@ -733,21 +792,14 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         });
     }
     let row: Vec<usize> = keep_rows.iter().map(|r| r + 1).collect();
-    let calendar = roles.dates().map(|(b, d)| {
-        let year_of = |c: &str, r: usize| {
-            label_at(col(c), r)
-                .and_then(|s| dates::Date::parse(&s))
-                .map_or(f64::NAN, dates::decimal_year)
-        };
-        Calendar {
-            period: keep_rows.iter().map(|&r| year_of(d, r)).collect(),
-            birth: keep_rows.iter().map(|&r| year_of(b, r)).collect(),
-        }
-    });
+    let calendar = calendar_of(path, roles, table, &keep_rows, &age)?;
     // A participant's cohort and birth date cannot change between waves.
     let mut fixed: Vec<(&str, Vec<String>)> = Vec::new();
     if let Some(c) = &roles.cohort {
         fixed.push((c.as_str(), labels(c, true)?));
+    }
+    if let (None, Some(b)) = (roles.dates(), &roles.birth_year) {
+        fixed.push((b.as_str(), labels(b, true)?));
     }
     if let Some((b, _)) = roles.dates() {
         fixed.push((
@@ -829,5 +881,63 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         cluster,
         covariates,
         calendar,
+    })
+}
+
+/// Calendar times of the kept rows: from dates, or from period and birth-year
+/// columns (one derived from the other and age when only one is given).
+fn calendar_of(
+    path: &Path,
+    roles: &Roles,
+    table: &read::RawTable,
+    keep_rows: &[usize],
+    age: &[f64],
+) -> Result<Option<Calendar>> {
+    let col = |name: &str| &table.columns[name];
+    if let Some((b, d)) = roles.dates() {
+        let year_of = |c: &str, r: usize| {
+            label_at(col(c), r)
+                .and_then(|s| dates::Date::parse(&s))
+                .map_or(f64::NAN, dates::decimal_year)
+        };
+        return Ok(Some(Calendar {
+            period: keep_rows.iter().map(|&r| year_of(d, r)).collect(),
+            birth: keep_rows.iter().map(|&r| year_of(b, r)).collect(),
+            source: CalendarSource::Dates,
+        }));
+    }
+    let numbers = |name: &str| -> Result<Vec<f64>> {
+        keep_rows
+            .iter()
+            .map(|&r| {
+                number_at(path, name, col(name), r)?.ok_or_else(|| Error::BadValue {
+                    path: path.to_path_buf(),
+                    column: name.to_string(),
+                    row: r + 1,
+                    value: String::new(),
+                    advice: "is empty; every row with an outcome and age needs a value in this column".into(),
+                })
+            })
+            .collect()
+    };
+    let period = roles.period.as_deref().map(numbers).transpose()?;
+    let birth = roles.birth_year.as_deref().map(numbers).transpose()?;
+    Ok(match (period, birth) {
+        (Some(period), Some(birth)) => Some(Calendar {
+            period,
+            birth,
+            source: CalendarSource::Columns,
+        }),
+        (Some(period), None) => Some(Calendar {
+            birth: period.iter().zip(age).map(|(p, a)| p - a).collect(),
+            period,
+            source: CalendarSource::BirthFromPeriod,
+        }),
+        (None, Some(birth)) => Some(Calendar {
+            period: birth.iter().zip(age).map(|(b, a)| b + a).collect(),
+            birth,
+            source: CalendarSource::PeriodFromBirth,
+        }),
+        (None, None) => None,
     })
 }

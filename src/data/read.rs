@@ -102,14 +102,41 @@ pub fn header(path: &Path, delimiter: u8) -> Result<Vec<String>> {
         }
         Format::Parquet => {
             let file = File::open(path).map_err(io)?;
-            let mut reader = ParquetReader::new(file);
-            let schema = reader.schema().map_err(|e| Error::Parse {
-                path: path.to_path_buf(),
-                message: format!("not a readable Parquet file ({e}); check that the file is complete"),
-            })?;
-            Ok(schema.iter_names().map(|n| n.to_string()).collect())
+            guard_damaged(path, || {
+                let mut reader = ParquetReader::new(file);
+                let schema = reader.schema().map_err(|e| Error::Parse {
+                    path: path.to_path_buf(),
+                    message: format!("not a readable Parquet file ({e}); check that the file is complete"),
+                })?;
+                Ok(schema.iter_names().map(|n| n.to_string()).collect())
+            })
         }
     }
+}
+
+/// Guarded Parquet reads in progress (the decoder may run on worker threads,
+/// so this is process-wide rather than per thread).
+static PARQUET_READS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+
+/// Whether a guarded Parquet read is in progress (for the binary's panic hook).
+pub fn in_parquet_read() -> bool {
+    PARQUET_READS.load(std::sync::atomic::Ordering::SeqCst) > 0
+}
+
+/// Run a Parquet read, turning a panic of the decoder on a damaged file
+/// (some corrupt metadata makes it panic rather than return an error) into
+/// an [`Error::Parse`] naming the file.
+fn guard_damaged<T>(path: &Path, read: impl FnOnce() -> Result<T>) -> Result<T> {
+    PARQUET_READS.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+    let out = std::panic::catch_unwind(std::panic::AssertUnwindSafe(read));
+    PARQUET_READS.fetch_sub(1, std::sync::atomic::Ordering::SeqCst);
+    out.unwrap_or_else(|_| {
+        Err(Error::Parse {
+            path: path.to_path_buf(),
+            message: "is a damaged Parquet file (its metadata cannot be decoded); export it again from the source"
+                .into(),
+        })
+    })
 }
 
 /// Read the named columns of a file.
@@ -147,10 +174,12 @@ pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawT
                 path: path.to_path_buf(),
                 message: e.to_string(),
             })?;
-            ParquetReader::new(file)
-                .with_columns(Some(names.to_vec()))
-                .finish()
-                .map_err(parse)?
+            guard_damaged(path, || {
+                ParquetReader::new(file)
+                    .with_columns(Some(names.to_vec()))
+                    .finish()
+                    .map_err(parse)
+            })?
         }
     };
     let n_rows = df.height();
@@ -226,16 +255,17 @@ pub fn write_parquet(path: &Path, columns: Vec<(String, RawColumn)>) -> Result<(
 }
 
 /// Columns from a text table: a column becomes numeric when every cell is a
-/// number, text otherwise.
+/// number, text otherwise. A short row's missing cells are empty text.
 pub fn columns_from_text(header: &[&str], rows: &[Vec<String>]) -> Vec<(String, RawColumn)> {
     header
         .iter()
         .enumerate()
         .map(|(j, name)| {
-            let nums: Option<Vec<Option<f64>>> = rows.iter().map(|r| r[j].parse::<f64>().ok().map(Some)).collect();
+            let at = |r: &Vec<String>| r.get(j).cloned().unwrap_or_default();
+            let nums: Option<Vec<Option<f64>>> = rows.iter().map(|r| at(r).parse::<f64>().ok().map(Some)).collect();
             let col = match nums {
                 Some(v) => RawColumn::Number(v),
-                None => RawColumn::Text(rows.iter().map(|r| Some(r[j].clone())).collect()),
+                None => RawColumn::Text(rows.iter().map(|r| Some(at(r))).collect()),
             };
             (name.to_string(), col)
         })

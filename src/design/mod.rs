@@ -13,7 +13,8 @@ use std::collections::{BTreeMap, BTreeSet};
 
 use serde::Serialize;
 
-use crate::data::Panel;
+use crate::data::derive::{self, CohortRule, WaveRule};
+use crate::data::{CalendarSource, Panel};
 use crate::error::{Error, Result};
 use crate::spec::basis::quantile_sorted;
 
@@ -26,12 +27,18 @@ pub struct DesignOptions {
     /// flagged as thin (common practice: about 30 per cohort for a stable
     /// mean at the shared ages).
     pub thin_overlap: usize,
+    /// How cohorts are found when the file has no cohort column.
+    pub cohort_rule: CohortRule,
+    /// How waves are found when the file has no wave column.
+    pub wave_rule: WaveRule,
 }
 
 impl Default for DesignOptions {
     fn default() -> Self {
         DesignOptions {
             band_width: 1.0,
+            cohort_rule: CohortRule::Auto,
+            wave_rule: WaveRule::Auto,
             thin_overlap: 30,
         }
     }
@@ -187,6 +194,10 @@ pub struct Collinear {
     /// With dates: the largest |age − (period − cohort)| in years, where period
     /// and cohort are the assessment and birth dates as decimal years.
     pub age_period_cohort_gap: Option<f64>,
+    /// R² of age on period and cohort; below 1 only when years are rounded.
+    pub age_period_cohort_r2: Option<f64>,
+    /// Where the period and cohort times came from.
+    pub calendar_source: Option<CalendarSource>,
     /// Whether time in study (age minus age at the first assessment) is an
     /// exact linear function of the number of prior assessments.
     pub time_retest: bool,
@@ -201,6 +212,8 @@ pub struct Collinear {
 pub struct DesignReport {
     /// How cohorts were defined.
     pub cohort_rule: String,
+    /// How waves were defined.
+    pub wave_rule: String,
     /// Coverage per cohort.
     pub cohorts: Vec<CohortCoverage>,
     /// Overlap of each pair of neighbouring cohorts.
@@ -265,50 +278,18 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         first[k] = first[k].min(panel.age[r]);
         last[k] = last[k].max(panel.age[r]);
     }
-    let (cohort_of, cohort_rule): (Vec<String>, String) = match &panel.cohort {
-        Some(c) => (
-            (0..n).map(|r| c.label(r).to_string()).collect(),
-            format!("from column '{}'", panel.roles.cohort.as_deref().unwrap_or("")),
-        ),
-        None => (
-            (0..n)
-                .map(|r| format!("{}", first[panel.id.codes[r] as usize].floor()))
-                .collect(),
-            "derived: whole-year age at the first assessment".to_string(),
-        ),
-    };
-    // Waves: the column, or the order of assessments within a participant.
-    let wave_of: Vec<String> = match &panel.wave {
-        Some(w) => (0..n).map(|r| w.label(r).to_string()).collect(),
-        None => {
-            let mut order: Vec<usize> = (0..n).collect();
-            order.sort_by(|&a, &b| {
-                panel.id.codes[a]
-                    .cmp(&panel.id.codes[b])
-                    .then(panel.age[a].total_cmp(&panel.age[b]))
-            });
-            let mut rank = vec![0usize; n];
-            let mut prev = u32::MAX;
-            let mut k = 0;
-            for &r in &order {
-                if panel.id.codes[r] != prev {
-                    prev = panel.id.codes[r];
-                    k = 0;
-                }
-                k += 1;
-                rank[r] = k;
-            }
-            rank.iter().map(|k| k.to_string()).collect()
-        }
-    };
+    let cohort = derive::cohorts(panel, options.cohort_rule)?;
+    let wave = derive::waves(panel, options.wave_rule, &cohort.labels)?;
+    let mut warnings: Vec<String> = cohort.warnings.iter().chain(&wave.warnings).cloned().collect();
+    let (cohort_of, wave_of) = (&cohort.labels, &wave.labels);
     // Group rows by cohort, then wave.
-    let by_cohort = group_by_label(&cohort_of, 0..n);
+    let by_cohort = group_by_label(cohort_of, 0..n);
     let mut cohorts = Vec::new();
     let mut retention = Vec::new();
     let mut bands = Vec::new();
     for ((_, label), rows) in &by_cohort {
         let (ages, people) = sorted_ages_and_people(panel, rows);
-        let by_wave = group_by_label(&wave_of, rows.iter().copied());
+        let by_wave = group_by_label(wave_of, rows.iter().copied());
         let mut waves = Vec::new();
         let mut base = None;
         for ((_, w), wrows) in &by_wave {
@@ -329,15 +310,15 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
             });
         }
         let bw = options.band_width;
-        let mut counts: BTreeMap<i64, usize> = BTreeMap::new();
+        let mut counts: BTreeMap<OrderedAge, usize> = BTreeMap::new();
         for &a in &ages {
-            *counts.entry((a / bw).floor() as i64).or_default() += 1;
+            *counts.entry(OrderedAge((a / bw).floor())).or_default() += 1;
         }
         for (b, c) in counts {
             bands.push(BandCount {
                 cohort: label.clone(),
-                age_from: b as f64 * bw,
-                age_to: (b + 1) as f64 * bw,
+                age_from: b.0 * bw,
+                age_to: (b.0 + 1.0) * bw,
                 n: c,
             });
         }
@@ -356,7 +337,6 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
     order.sort_by(|&a, &b| cohorts[a].age_min.total_cmp(&cohorts[b].age_min));
     let rows_of: Vec<&Vec<usize>> = by_cohort.values().collect();
     let mut overlap = Vec::new();
-    let mut warnings = Vec::new();
     for w in order.windows(2) {
         let (a, b) = (&cohorts[w[0]], &cohorts[w[1]]);
         let from = b.age_min.max(a.age_min);
@@ -404,9 +384,10 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         calendar_years: calendar,
         acceleration: if calendar > 0.0 { (hi - lo) / calendar } else { f64::NAN },
     };
-    let (attrition, collinear) = attrition_and_collinearity(panel, &cohort_of, &wave_of, &mut warnings);
+    let (attrition, collinear) = attrition_and_collinearity(panel, cohort_of, wave_of, &mut warnings);
     Ok(DesignReport {
-        cohort_rule,
+        cohort_rule: cohort.rule,
+        wave_rule: wave.rule,
         cohorts,
         overlap,
         retention,
@@ -444,6 +425,11 @@ const EXACT_R2: f64 = 1.0 - 1e-10;
 /// and decimal calendar years differ by at most about two days, so with dates a
 /// largest gap below this (in years, about 3.7 days) is exact collinearity.
 const APC_GAP: f64 = 0.01;
+
+/// With period and birth year in whole years, age departs from period − cohort
+/// by less than a year (the birthday may fall before or after the assessment
+/// in that year); up to this gap the departure is rounding alone.
+const ROUNDING_GAP: f64 = 1.0 + APC_GAP;
 
 /// Above this R², the two count as nearly collinear (common practice).
 const NEAR_R2: f64 = 0.99;
@@ -570,7 +556,7 @@ fn attrition_and_collinearity(
     let r2 = r_squared(&time, &prior);
     let time_retest = r2 >= EXACT_R2;
     let mut notes = Vec::new();
-    let (apc, apc_gap) = match &panel.calendar {
+    let (apc, apc_gap, apc_r2) = match &panel.calendar {
         Some(cal) => {
             let gap = panel
                 .age
@@ -578,19 +564,38 @@ fn attrition_and_collinearity(
                 .zip(cal.period.iter().zip(&cal.birth))
                 .map(|(a, (p, b))| (a - (p - b)).abs())
                 .fold(0.0, f64::max);
-            (Some(gap <= APC_GAP), Some(gap))
+            let r2 = r_squared_two(&panel.age, &cal.period, &cal.birth);
+            (Some(gap <= APC_GAP), Some(gap), Some(r2))
         }
-        None => (None, None),
+        None => (None, None, None),
     };
-    match apc {
-        Some(true) => notes.push(format!(
-            "age, period and cohort are exactly collinear (age = period − cohort to within {:.4} years): linear age, period and cohort \
-             effects cannot be told apart without a constraint; only their identified combinations and curvatures can be \
-             estimated (Holford 1983)",
+    let source = panel.calendar.as_ref().map(|c| c.source);
+    let unidentified = "linear age, period and cohort effects cannot be told apart without a constraint; only their \
+                        identified combinations and curvatures can be estimated (Holford 1983)";
+    match (apc, source) {
+        (Some(true), Some(CalendarSource::BirthFromPeriod | CalendarSource::PeriodFromBirth)) => notes.push(format!(
+            "age, period and cohort are exactly collinear by construction ({}): {unidentified}",
+            source.map_or("", CalendarSource::describe)
+        )),
+        (Some(true), _) => notes.push(format!(
+            "age, period and cohort are exactly collinear (age = period − cohort to within {:.4} years): {unidentified}",
             apc_gap.unwrap_or(f64::NAN)
         )),
-        Some(false) => notes.push("age is not an exact function of period − cohort here; check the dates".to_string()),
-        None => notes.push("age–period–cohort collinearity needs birth and assessment dates; not checked".to_string()),
+        (Some(false), _) if apc_gap.is_some_and(|g| g <= ROUNDING_GAP) => notes.push(format!(
+            "age differs from period − cohort by up to {:.2} years (R² of age on period and cohort = {:.4}), as when \
+             years are whole numbers: the linear effects are then separated only by that rounding, which carries no \
+             information about them; treat them as not identified (Holford 1983)",
+            apc_gap.unwrap_or(f64::NAN),
+            apc_r2.unwrap_or(f64::NAN)
+        )),
+        (Some(false), _) => notes.push(format!(
+            "age is far from period − cohort (by up to {:.2} years); check the period and birth-year columns",
+            apc_gap.unwrap_or(f64::NAN)
+        )),
+        (None, _) => notes.push(
+            "age–period–cohort collinearity needs birth and assessment dates, or a --period or --birth-year column; not checked"
+                .to_string(),
+        ),
     }
     if time_retest {
         notes.push(
@@ -607,11 +612,40 @@ fn attrition_and_collinearity(
         Collinear {
             age_period_cohort: apc,
             age_period_cohort_gap: apc_gap,
+            age_period_cohort_r2: apc_r2,
+            calendar_source: source,
             time_retest,
             time_retest_r2: r2,
             notes,
         },
     )
+}
+
+/// R² of the regression of `y` on `a` and `b` (with an intercept).
+fn r_squared_two(y: &[f64], a: &[f64], b: &[f64]) -> f64 {
+    let n = y.len() as f64;
+    let mean = |v: &[f64]| v.iter().sum::<f64>() / n;
+    let (my, ma, mb) = (mean(y), mean(a), mean(b));
+    let (mut saa, mut sbb, mut sab, mut say, mut sby, mut syy) = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
+    for i in 0..y.len() {
+        let (dy, da, db) = (y[i] - my, a[i] - ma, b[i] - mb);
+        saa += da * da;
+        sbb += db * db;
+        sab += da * db;
+        say += da * dy;
+        sby += db * dy;
+        syy += dy * dy;
+    }
+    if syy == 0.0 {
+        return 1.0;
+    }
+    let det = saa * sbb - sab * sab;
+    if det.abs() <= 1e-12 * (saa * sbb).max(f64::MIN_POSITIVE) {
+        // a and b collinear: fall back to the better single regressor.
+        return r_squared(y, a).max(r_squared(y, b));
+    }
+    let (ca, cb) = ((sbb * say - sab * sby) / det, (saa * sby - sab * say) / det);
+    ((ca * say + cb * sby) / syy).clamp(0.0, 1.0)
 }
 
 /// R² of the simple regression of `y` on `x`.

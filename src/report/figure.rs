@@ -21,17 +21,17 @@ pub type Line = Vec<(f64, f64)>;
 static FONT: Once = Once::new();
 static FONT_BYTES: &[u8] = include_bytes!("font/DejaVuSans.ttf");
 
-fn register_font() {
+pub(crate) fn register_font() {
     FONT.call_once(|| {
         // The embedded font is valid; a failure here would leave text blank, not crash.
         let _ = plotters::style::register_font("sans-serif", FontStyle::Normal, FONT_BYTES);
     });
 }
 
-const GROUND: RGBColor = RGBColor(252, 250, 245);
-const INK: RGBColor = RGBColor(40, 40, 48);
-const CURVE: RGBColor = RGBColor(0, 95, 105);
-const PALETTE: [RGBColor; 8] = [
+pub(crate) const GROUND: RGBColor = RGBColor(252, 250, 245);
+pub(crate) const INK: RGBColor = RGBColor(40, 40, 48);
+pub(crate) const CURVE: RGBColor = RGBColor(0, 95, 105);
+pub(crate) const PALETTE: [RGBColor; 8] = [
     RGBColor(204, 102, 0),
     RGBColor(120, 60, 160),
     RGBColor(200, 40, 80),

@@ -1,6 +1,7 @@
 //! Reporting: the serializable fit report, text tables, JSON/CSV files and
 //! figures. Nothing here computes an estimate; it arranges results.
 
+pub mod design_figure;
 pub mod figure;
 pub mod text;
 
@@ -399,4 +400,29 @@ pub fn write_fit_outputs(dir: &Path, report: &FitReport, lines: &[figure::Line])
     figure::trajectory_png(&out.png, report, lines)?;
     figure::trajectory_svg(&out.svg, report, lines)?;
     Ok(out)
+}
+
+/// Write `braid inspect --out DIR`: design.json, and the Lexis diagram and
+/// coverage chart as PNG and SVG. Returns the file names written.
+///
+/// # Errors
+/// [`Error::Output`] when a file cannot be written; errors of the cohort rule.
+pub fn write_design_outputs(
+    dir: &Path,
+    panel: &crate::data::Panel,
+    report: &crate::design::DesignReport,
+    options: crate::design::DesignOptions,
+) -> Result<Vec<String>> {
+    ensure_dir(dir)?;
+    write_json(&dir.join("design.json"), report)?;
+    let cohorts = crate::data::derive::cohorts(panel, options.cohort_rule)?;
+    let lexis = design_figure::lexis_data(panel, report, &cohorts.labels);
+    design_figure::lexis(&dir.join("lexis.png"), &dir.join("lexis.svg"), &lexis)?;
+    design_figure::coverage(&dir.join("coverage.png"), &dir.join("coverage.svg"), report)?;
+    Ok(
+        ["design.json", "lexis.png", "lexis.svg", "coverage.png", "coverage.svg"]
+            .iter()
+            .map(|s| s.to_string())
+            .collect(),
+    )
 }

@@ -259,13 +259,14 @@ pub fn design_summary(panel: &crate::data::Panel, r: &crate::design::DesignRepor
     let _ = writeln!(s, "{rule}");
     let _ = writeln!(
         s,
-        "{:<11}{} participants · {} rows used of {} · cohorts {}",
+        "{:<11}{} participants · {} rows used of {}",
         "Data",
         thousands(panel.id.n_levels()),
         thousands(panel.n()),
         thousands(panel.n_rows_read),
-        r.cohort_rule
     );
+    let _ = writeln!(s, "{:<11}cohorts {}", "Rules", r.cohort_rule);
+    let _ = writeln!(s, "{:<11}waves {}", "", r.wave_rule);
     let sp = &r.span;
     let _ = writeln!(
         s,

@@ -153,9 +153,42 @@ fn demo_writes_its_panel_study_file_and_fit() {
         "trajectory.csv",
         "trajectory.png",
         "trajectory.svg",
+        "design.json",
+        "lexis.png",
+        "lexis.svg",
+        "coverage.png",
+        "coverage.svg",
     ] {
         assert!(dir.join(f).exists(), "demo did not write {f}");
     }
+    // Its study file drives `braid inspect --study` too, into a new folder.
+    let figures = dir.join("design");
+    let inspect = Command::new(braid_bin())
+        .args(["inspect", "--quiet", "--study"])
+        .arg(dir.join("study.toml"))
+        .arg("--out")
+        .arg(&figures)
+        .output()
+        .unwrap();
+    assert!(inspect.status.success(), "{}", String::from_utf8_lossy(&inspect.stderr));
+    for f in ["design.json", "lexis.png", "lexis.svg", "coverage.png", "coverage.svg"] {
+        assert!(
+            figures.join(f).metadata().unwrap().len() > 1000,
+            "inspect did not write {f}"
+        );
+    }
+    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(figures.join("design.json")).unwrap()).unwrap();
+    assert_eq!(v["collinear"]["calendar_source"], "birth_from_period");
+    assert_eq!(v["collinear"]["age_period_cohort"], true);
+    // A second run into the same folder is refused without --force.
+    let again = Command::new(braid_bin())
+        .args(["inspect", "--quiet", "--study"])
+        .arg(dir.join("study.toml"))
+        .arg("--out")
+        .arg(&figures)
+        .output()
+        .unwrap();
+    assert_eq!(again.status.code(), Some(2));
     // The study file it wrote fits again through `braid fit --study`.
     let refit = Command::new(braid_bin())
         .args(["fit", "--quiet", "--study"])
@@ -318,9 +351,13 @@ fn a_wide_file_and_its_long_twin_give_identical_fits() {
         ));
     }
     fs::write(dir.join("wide.csv"), text).unwrap();
-    let long_roles = braid::simulate::Simulated::roles(true);
+    let long_roles = braid::data::Roles {
+        period: None,
+        ..braid::simulate::Simulated::roles(true)
+    };
     let wide_roles = braid::data::Roles {
         wave: None,
+        period: None,
         wide_outcome: (1..=4).map(|w| format!("score_{w}")).collect(),
         wide_age: (1..=4).map(|w| format!("age_{w}")).collect(),
         ..long_roles.clone()

@@ -198,7 +198,111 @@ fn with_dates_age_period_and_cohort_are_reported_collinear() {
     assert_eq!(report.collinear.age_period_cohort, Some(true));
     let gap = report.collinear.age_period_cohort_gap.unwrap();
     assert!(gap < 0.01, "{gap}");
-    // Without dates there is nothing to check it with.
-    let plain = inspect(&simulate(&Design::demo()).panel(true), DesignOptions::default()).unwrap();
+    // Without calendar times there is nothing to check it with.
+    let mut undated = simulate(&Design::demo()).panel(true);
+    undated.calendar = None;
+    let plain = inspect(&undated, DesignOptions::default()).unwrap();
     assert_eq!(plain.collinear.age_period_cohort, None);
+}
+
+/// A hand-made file with dates: three participants, two birth years.
+/// Decimal ages and years follow the anniversary rule of `data::dates`.
+fn dated_file(dir: &std::path::Path) -> std::path::PathBuf {
+    let path = dir.join("dated.csv");
+    std::fs::write(
+        &path,
+        "id,born,seen,y\n\
+         A,2008-03-01,2020-10-01,1.0\n\
+         A,2008-03-01,2021-10-15,2.0\n\
+         A,2008-03-01,2022-09-20,3.5\n\
+         B,2010-07-01,2020-10-03,2.0\n\
+         B,2010-07-01,2022-10-01,3.0\n\
+         C,2010-01-10,2020-11-01,1.5\n\
+         C,2010-01-10,2021-04-01,2.5\n",
+    )
+    .unwrap();
+    path
+}
+
+// Cohort and wave derived from dates, under each rule, against labels worked
+// out by hand from the file above.
+#[test]
+fn cohorts_and_waves_derived_from_dates_follow_the_stated_rule() {
+    use braid::data::derive::{CohortRule, WaveRule, cohorts, waves};
+    let dir = crate::common::temp_dir("derive");
+    let mut roles = crate::common::roles("id", "age", "y");
+    roles.birth_date = Some("born".into());
+    roles.date = Some("seen".into());
+    let panel = braid::data::load(&dated_file(&dir), &roles, Default::default()).unwrap();
+    let labels = |d: braid::data::derive::Derived| d.labels.join(" ");
+    // Birth year (the default with dates), single years and pairs of years.
+    let by_birth = cohorts(&panel, CohortRule::Auto).unwrap();
+    assert!(by_birth.rule.contains("year of birth"), "{}", by_birth.rule);
+    assert_eq!(by_birth.labels.join(" "), "2008 2008 2008 2010 2010 2010 2010");
+    let pairs = cohorts(&panel, CohortRule::BirthYear { width: 2.0 }).unwrap();
+    assert!(pairs.rule.contains("groups of 2 years"));
+    // C is born 2010-01-10 and B 2010-07-01: both in the 2010–2011 pair.
+    assert_eq!(labels(pairs), "2008 2008 2008 2010 2010 2010 2010");
+    // Whole-year age at the first assessment: A 12.58, B 10.26, C 10.81.
+    let by_age = cohorts(&panel, CohortRule::FirstAge { width: 1.0 }).unwrap();
+    assert_eq!(labels(by_age), "12 12 12 10 10 10 10");
+    // Waves: yearly rounds from each cohort's first assessment (2020-10-01
+    // for 2008, 2020-10-03 for 2010), to the nearest round: A's third visit
+    // on 2022-09-20 is 1.97 years on, round 3; B skips a round; C's second
+    // visit comes half a year later (0.41 rounds) and clashes with its first.
+    let w = waves(&panel, WaveRule::Auto, &by_birth.labels).unwrap();
+    assert!(w.rule.contains("rounds of 1 year"), "{}", w.rule);
+    assert_eq!(w.labels.join(" "), "1 2 3 1 3 1 1");
+    assert_eq!(w.warnings.len(), 1, "{:?}", w.warnings);
+    assert!(w.warnings[0].contains("'C'"), "{}", w.warnings[0]);
+    // Half-year rounds separate C's visits.
+    let half = waves(&panel, WaveRule::Calendar { length: 0.5 }, &by_birth.labels).unwrap();
+    assert_eq!(half.labels.join(" "), "1 3 5 1 5 1 2");
+    assert!(half.warnings.is_empty());
+    // Order of assessment needs no dates.
+    let order = waves(&panel, WaveRule::Order, &by_birth.labels).unwrap();
+    assert_eq!(labels(order), "1 2 3 1 2 1 2");
+    // Bad widths are refused with the flag named.
+    let e = cohorts(&panel, CohortRule::FirstAge { width: 0.0 }).unwrap_err();
+    assert!(e.to_string().contains("--cohort-width"), "{e}");
+    // And the design report uses the derived labels and states the rules.
+    let report = inspect(&panel, DesignOptions::default()).unwrap();
+    assert_eq!(report.cohorts.len(), 2);
+    assert!(report.cohort_rule.contains("year of birth") && report.wave_rule.contains("rounds"));
+    assert!(report.warnings.iter().any(|w| w.contains("'C'")));
+}
+
+// Without dates: a period column alone makes cohort = period − age exact by
+// construction; whole-number period and birth-year columns leave age within a
+// year of period − cohort, which braid calls near-collinear.
+#[test]
+fn period_and_birth_year_columns_give_the_collinearity_check() {
+    let dir = crate::common::temp_dir("period");
+    let path = dir.join("years.csv");
+    let mut text = String::from("id,age,y,year,born\n");
+    let mut rng = braid::simulate::Rng::new(7);
+    for i in 0..60 {
+        let born = 2000 + i % 6;
+        let birthday = rng.uniform();
+        for w in 0..3 {
+            let when = 2015.0 + w as f64 + 0.3 * rng.uniform();
+            let age = when - born as f64 - birthday;
+            text.push_str(&format!("P{i},{age:.4},{:.3},{},{born}\n", rng.normal(), when.floor()));
+        }
+    }
+    std::fs::write(&path, text).unwrap();
+    let mut roles = crate::common::roles("id", "age", "y");
+    roles.period = Some("year".into());
+    let panel = braid::data::load(&path, &roles, Default::default()).unwrap();
+    let c = inspect(&panel, DesignOptions::default()).unwrap().collinear;
+    assert_eq!(c.age_period_cohort, Some(true));
+    assert!(c.notes[0].contains("by construction"), "{}", c.notes[0]);
+    roles.birth_year = Some("born".into());
+    let panel = braid::data::load(&path, &roles, Default::default()).unwrap();
+    let c = inspect(&panel, DesignOptions::default()).unwrap().collinear;
+    assert_eq!(c.age_period_cohort, Some(false));
+    let (gap, r2) = (c.age_period_cohort_gap.unwrap(), c.age_period_cohort_r2.unwrap());
+    assert!(gap > 0.5 && gap < 1.0, "gap {gap}");
+    assert!(r2 > 0.9 && r2 < 1.0, "R² {r2}");
+    assert!(c.notes[0].contains("not identified"), "{}", c.notes[0]);
 }

@@ -1,5 +1,7 @@
-//! Property test of intake: seeded random CSV files and study files never
-//! make braid panic; every one either loads or returns an error value. The CI
+//! Property test of intake: seeded random CSV files, Parquet files (some
+//! with corrupted bytes) and study files never make braid panic; every one
+//! either loads or returns an error value, and loaded panels go through the
+//! fit and the design report. The CI
 //! run uses `BRAID_FUZZ_CASES` inputs (default 2,000); the full run of
 //! 100,000 is recorded in notes/decisions.md with its command.
 
@@ -115,10 +117,44 @@ fn random_csv(rng: &mut Rng) -> (String, Roles) {
         roles.covariates = vec!["x".into()];
     }
     if rng.uniform() < 0.15 {
+        roles.period = Some("other".into());
+    }
+    if rng.uniform() < 0.1 {
+        roles.birth_year = Some("school".into());
+    }
+    if rng.uniform() < 0.15 {
         roles.birth_date = Some("born".into());
         roles.date = Some("seen".into());
     }
     (text, roles)
+}
+
+/// The same table as Parquet, sometimes with bytes flipped or cut off.
+fn parquet_twin(rng: &mut Rng, text: &str, delimiter: u8, path: &std::path::Path) -> bool {
+    let d = delimiter as char;
+    let mut lines = text.lines();
+    let Some(head) = lines.next() else { return false };
+    let header: Vec<&str> = head.split(d).collect();
+    let rows: Vec<Vec<String>> = lines.map(|l| l.split(d).map(str::to_string).collect()).collect();
+    if data::read::write_parquet(path, data::read::columns_from_text(&header, &rows)).is_err() {
+        return false;
+    }
+    if rng.uniform() < 0.3 {
+        let mut bytes = std::fs::read(path).unwrap();
+        if rng.uniform() < 0.5 {
+            let cut = (rng.uniform() * bytes.len() as f64) as usize;
+            bytes.truncate(cut);
+        } else {
+            for _ in 0..1 + (rng.uniform() * 8.0) as usize {
+                let at = (rng.uniform() * bytes.len() as f64) as usize % bytes.len().max(1);
+                if let Some(b) = bytes.get_mut(at) {
+                    *b ^= 1 + (rng.uniform() * 254.0) as u8;
+                }
+            }
+        }
+        std::fs::write(path, bytes).unwrap();
+    }
+    true
 }
 
 fn random_study(rng: &mut Rng) -> String {
@@ -160,7 +196,7 @@ fn random_files_and_study_files_never_panic() {
         .unwrap_or(2_000);
     let dir = temp_dir("fuzz");
     let mut rng = Rng::new(424_242);
-    let (mut loaded, mut refused) = (0usize, 0usize);
+    let (mut loaded, mut refused, mut parquets) = (0usize, 0usize, 0usize);
     for case in 0..cases {
         let (text, roles) = random_csv(&mut rng);
         let path = dir.join(format!("case{}.csv", case % 16));
@@ -172,12 +208,21 @@ fn random_files_and_study_files_never_panic() {
         } else {
             b','
         };
+        // Every third case goes through a Parquet twin of the same table instead.
+        let parquet = dir.join(format!("case{}.parquet", case % 16));
+        let path = if case % 3 == 0 && parquet_twin(&mut rng, &text, delimiter, &parquet) {
+            parquets += 1;
+            parquet
+        } else {
+            path
+        };
         let result = catch_unwind(AssertUnwindSafe(|| {
             let panel = data::load(&path, &roles, ReadOptions { delimiter })?;
             if panel.n() <= 60 {
                 // The whole pipeline must turn bad data into errors too.
                 let spec = braid::spec::ModelSpec::default();
                 let _ = braid::fit_panel(&panel, &spec, &braid::infer::TrajectoryRequest::grid(3));
+                let _ = braid::design::inspect(&panel, braid::design::DesignOptions::default());
             }
             Ok::<_, braid::Error>(())
         }));
@@ -202,6 +247,9 @@ fn random_files_and_study_files_never_panic() {
         }));
         assert!(parsed.is_ok(), "panic on generated study file {case}");
     }
-    println!("{cases} generated inputs: {loaded} loaded, {refused} refused with an error, none panicked");
+    println!(
+        "{cases} generated inputs ({parquets} as Parquet): {loaded} loaded, {refused} refused with an error, none panicked"
+    );
+    assert!(parquets > cases / 6, "too few Parquet cases: {parquets}");
     assert_eq!(loaded + refused, cases);
 }

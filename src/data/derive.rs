@@ -1,0 +1,246 @@
+//! Cohort and wave when a file does not give them: the rules, and the labels
+//! they give each row. Every rule is reported in words beside the results it
+//! shapes, because a different rule gives a different design.
+
+use serde::{Deserialize, Serialize};
+
+use super::Panel;
+use crate::error::{Error, Result};
+
+/// How each row's cohort is found.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum CohortRule {
+    /// The cohort column when one is given; otherwise birth year when the
+    /// file has calendar times, otherwise age at the first assessment.
+    #[default]
+    Auto,
+    /// Whole-year age at the participant's first assessment, in groups of
+    /// `width` years.
+    FirstAge {
+        /// Group width in years.
+        width: f64,
+    },
+    /// Calendar year of birth, in groups of `width` years.
+    BirthYear {
+        /// Group width in years.
+        width: f64,
+    },
+}
+
+/// How each row's wave is found.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum WaveRule {
+    /// The wave column when one is given; otherwise calendar rounds when the
+    /// file has calendar times, otherwise the order of assessments.
+    #[default]
+    Auto,
+    /// The k-th assessment of a participant, in order of age.
+    Order,
+    /// Rounds of `length` years counted from the cohort's earliest assessment:
+    /// wave = round((period − cohort start) / length) + 1, so fieldwork that
+    /// drifts by less than half a round from year to year stays in its round.
+    Calendar {
+        /// Round length in years.
+        length: f64,
+    },
+}
+
+/// Labels for every row, and the rule that made them.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Derived {
+    /// One label per row of the panel.
+    pub labels: Vec<String>,
+    /// The rule in words.
+    pub rule: String,
+    /// Problems the rule met, in words.
+    pub warnings: Vec<String>,
+}
+
+/// Guards floor() against values a rounding error below a group boundary.
+const FLOOR_GUARD: f64 = 1e-9;
+
+fn group_label(x: f64, width: f64) -> String {
+    let g = ((x / width) + FLOOR_GUARD).floor() * width;
+    if (g - g.round()).abs() < 1e-9 {
+        format!("{}", g.round() as i64)
+    } else {
+        format!("{g:.2}")
+    }
+}
+
+fn check_width(width: f64, flag: &str) -> Result<()> {
+    if width.is_finite() && width > 0.0 {
+        Ok(())
+    } else {
+        Err(Error::Spec {
+            parameter: flag.into(),
+            message: format!("{width} is not a positive number of years"),
+        })
+    }
+}
+
+fn years(width: f64) -> String {
+    if width == 1.0 {
+        "single years".into()
+    } else {
+        format!("groups of {width} years, each labelled by its first year")
+    }
+}
+
+/// Each row's cohort under a rule.
+///
+/// # Errors
+/// [`Error::Spec`] for a width that is not positive, or a birth-year rule on
+/// a file with no calendar times.
+pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
+    let n = panel.n();
+    let rule = match (rule, &panel.cohort, &panel.calendar) {
+        (CohortRule::Auto, Some(c), _) => {
+            return Ok(Derived {
+                labels: (0..n).map(|r| c.label(r).to_string()).collect(),
+                rule: format!("from column '{}'", panel.roles.cohort.as_deref().unwrap_or("")),
+                warnings: Vec::new(),
+            });
+        }
+        (CohortRule::Auto, None, Some(_)) => CohortRule::BirthYear { width: 1.0 },
+        (CohortRule::Auto, None, None) => CohortRule::FirstAge { width: 1.0 },
+        (r, _, _) => r,
+    };
+    match rule {
+        CohortRule::BirthYear { width } => {
+            check_width(width, "--cohort-width")?;
+            let Some(cal) = &panel.calendar else {
+                return Err(Error::Spec {
+                    parameter: "--cohort-from".into(),
+                    message: "birth-year cohorts need birth dates, a --birth-year column or a --period column".into(),
+                });
+            };
+            Ok(Derived {
+                labels: cal.birth.iter().map(|&b| group_label(b, width)).collect(),
+                rule: format!(
+                    "derived: year of birth (from {}), in {}",
+                    cal.source.describe(),
+                    years(width)
+                ),
+                warnings: Vec::new(),
+            })
+        }
+        CohortRule::FirstAge { width } => {
+            check_width(width, "--cohort-width")?;
+            let mut first = vec![f64::INFINITY; panel.id.n_levels()];
+            for r in 0..n {
+                let k = panel.id.codes[r] as usize;
+                first[k] = first[k].min(panel.age[r]);
+            }
+            Ok(Derived {
+                labels: (0..n)
+                    .map(|r| group_label(first[panel.id.codes[r] as usize], width))
+                    .collect(),
+                rule: format!("derived: whole-year age at the first assessment, in {}", years(width)),
+                warnings: Vec::new(),
+            })
+        }
+        CohortRule::Auto => unreachable!("resolved above"),
+    }
+}
+
+/// Each row's rank among its participant's assessments, in order of age.
+fn assessment_order(panel: &Panel) -> Vec<usize> {
+    let n = panel.n();
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&a, &b| {
+        panel.id.codes[a]
+            .cmp(&panel.id.codes[b])
+            .then(panel.age[a].total_cmp(&panel.age[b]))
+    });
+    let mut rank = vec![0usize; n];
+    let mut prev = u32::MAX;
+    let mut k = 0;
+    for &r in &order {
+        if panel.id.codes[r] != prev {
+            prev = panel.id.codes[r];
+            k = 0;
+        }
+        k += 1;
+        rank[r] = k;
+    }
+    rank
+}
+
+/// Each row's wave under a rule, given each row's cohort.
+///
+/// # Errors
+/// [`Error::Spec`] for a round length that is not positive, or a calendar
+/// rule on a file with no calendar times.
+pub fn waves(panel: &Panel, rule: WaveRule, cohort_of: &[String]) -> Result<Derived> {
+    let n = panel.n();
+    let rule = match (rule, &panel.wave, &panel.calendar) {
+        (WaveRule::Auto, Some(w), _) => {
+            return Ok(Derived {
+                labels: (0..n).map(|r| w.label(r).to_string()).collect(),
+                rule: format!("from column '{}'", panel.roles.wave.as_deref().unwrap_or("")),
+                warnings: Vec::new(),
+            });
+        }
+        (WaveRule::Auto, None, Some(_)) => WaveRule::Calendar { length: 1.0 },
+        (WaveRule::Auto, None, None) => WaveRule::Order,
+        (r, _, _) => r,
+    };
+    match rule {
+        WaveRule::Order => Ok(Derived {
+            labels: assessment_order(panel).iter().map(|k| k.to_string()).collect(),
+            rule: "derived: the order of each participant's assessments by age".into(),
+            warnings: Vec::new(),
+        }),
+        WaveRule::Calendar { length } => {
+            check_width(length, "--wave-length")?;
+            let Some(cal) = &panel.calendar else {
+                return Err(Error::Spec {
+                    parameter: "--wave-from".into(),
+                    message: "calendar waves need assessment dates or a --period column".into(),
+                });
+            };
+            let mut start: std::collections::HashMap<&str, f64> = std::collections::HashMap::new();
+            for (c, &p) in cohort_of.iter().zip(&cal.period) {
+                let s = start.entry(c.as_str()).or_insert(p);
+                *s = s.min(p);
+            }
+            let labels: Vec<String> = (0..n)
+                .map(|r| {
+                    let k = ((cal.period[r] - start[cohort_of[r].as_str()]) / length).round();
+                    format!("{}", k as i64 + 1)
+                })
+                .collect();
+            let mut seen = std::collections::HashSet::with_capacity(n);
+            let mut clashes = 0usize;
+            let mut example = None;
+            for (r, label) in labels.iter().enumerate() {
+                if !seen.insert((panel.id.codes[r], label.as_str())) {
+                    clashes += 1;
+                    example.get_or_insert(r);
+                }
+            }
+            let mut warnings = Vec::new();
+            if let Some(r) = example {
+                warnings.push(format!(
+                    "{clashes} assessments share a derived wave with an earlier one of the same participant (first: '{}' in wave {}); \
+                     give a shorter --wave-length or a --wave column",
+                    panel.id.label(r),
+                    labels[r]
+                ));
+            }
+            Ok(Derived {
+                labels,
+                rule: format!(
+                    "derived: rounds of {length} year{} from each cohort's first assessment, to the nearest round (from {})",
+                    if length == 1.0 { "" } else { "s" },
+                    cal.source.describe()
+                ),
+                warnings,
+            })
+        }
+        WaveRule::Auto => unreachable!("resolved above"),
+    }
+}

@@ -1,0 +1,324 @@
+//! Design figures (PNG and SVG): the Lexis diagram and the coverage chart.
+//!
+//! Both share the look of the trajectory figure: warm off-white ground, one
+//! colour per cohort in the order of their youngest age.
+//!
+//! - **Lexis diagram.** Calendar time across, age up. Each sampled
+//!   participant is a lifeline from first to last assessment, with a dot at
+//!   each assessment, so each cohort appears as a band of parallel diagonal
+//!   segments. Thin grey diagonals mark constant birth years. Without
+//!   calendar times in the file the horizontal axis is time since the
+//!   participant's first assessment, and the axis title says so.
+//! - **Coverage chart.** One row per cohort, one tile per age band, shaded by
+//!   the number of observations with the count written in; a dark bar between
+//!   neighbouring rows marks their shared ages.
+
+use std::path::Path;
+
+use plotters::coord::Shift;
+use plotters::prelude::*;
+
+use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, register_font};
+use crate::data::Panel;
+use crate::design::DesignReport;
+use crate::error::{Error, Result};
+
+/// At most this many lifelines per cohort in the Lexis diagram, chosen evenly
+/// through the participants in file order.
+pub const LIFELINES_PER_COHORT: usize = 60;
+
+/// One cohort's lifelines: (time, age) points in time order.
+#[derive(Debug, Clone)]
+pub struct LexisCohort {
+    /// Cohort label.
+    pub cohort: String,
+    /// Participants in the cohort.
+    pub n_participants: usize,
+    /// Sampled lifelines.
+    pub lines: Vec<Vec<(f64, f64)>>,
+}
+
+/// What the Lexis diagram draws.
+#[derive(Debug, Clone)]
+pub struct LexisData {
+    /// Horizontal axis title.
+    pub time_label: String,
+    /// Whether times are calendar years (then birth-year diagonals are drawn).
+    pub calendar: bool,
+    /// Cohorts in order of their youngest age.
+    pub cohorts: Vec<LexisCohort>,
+}
+
+/// Collect the Lexis diagram's lifelines from a panel and its design report
+/// (whose cohort labels, in row order, are `cohort_of`).
+pub fn lexis_data(panel: &Panel, report: &DesignReport, cohort_of: &[String]) -> LexisData {
+    let n_id = panel.id.n_levels();
+    let mut first = vec![f64::INFINITY; n_id];
+    for r in 0..panel.n() {
+        let k = panel.id.codes[r] as usize;
+        first[k] = first[k].min(panel.age[r]);
+    }
+    let time = |r: usize| match &panel.calendar {
+        Some(c) => c.period[r],
+        None => panel.age[r] - first[panel.id.codes[r] as usize],
+    };
+    // Participants of each cohort, in order of first appearance.
+    let mut order: Vec<&str> = report.cohorts.iter().map(|c| c.cohort.as_str()).collect();
+    order.sort_by(|a, b| {
+        let age = |l: &str| report.cohorts.iter().find(|c| c.cohort == l).map_or(0.0, |c| c.age_min);
+        age(a).total_cmp(&age(b))
+    });
+    let mut members: Vec<Vec<u32>> = vec![Vec::new(); order.len()];
+    let mut cohort_of_person: Vec<usize> = vec![usize::MAX; n_id];
+    for (r, c) in cohort_of.iter().enumerate() {
+        let k = panel.id.codes[r] as usize;
+        if cohort_of_person[k] == usize::MAX {
+            let j = order.iter().position(|o| o == c).unwrap_or(0);
+            cohort_of_person[k] = j;
+            members[j].push(k as u32);
+        }
+    }
+    let mut slot: Vec<Option<(usize, usize)>> = vec![None; n_id];
+    let mut cohorts: Vec<LexisCohort> = Vec::with_capacity(order.len());
+    for (j, m) in members.iter().enumerate() {
+        let take = m.len().min(LIFELINES_PER_COHORT);
+        for i in 0..take {
+            let who = m[i * m.len() / take] as usize;
+            slot[who] = Some((j, i));
+        }
+        cohorts.push(LexisCohort {
+            cohort: order[j].to_string(),
+            n_participants: m.len(),
+            lines: vec![Vec::new(); take],
+        });
+    }
+    for r in 0..panel.n() {
+        if let Some((j, i)) = slot[panel.id.codes[r] as usize] {
+            cohorts[j].lines[i].push((time(r), panel.age[r]));
+        }
+    }
+    for c in &mut cohorts {
+        for l in &mut c.lines {
+            l.sort_by(|a, b| a.0.total_cmp(&b.0));
+        }
+    }
+    LexisData {
+        time_label: match &panel.calendar {
+            Some(c) => format!("calendar year of assessment (from {})", c.source.describe()),
+            None => "years since the participant's first assessment (no calendar times in the file)".into(),
+        },
+        calendar: panel.calendar.is_some(),
+        cohorts,
+    }
+}
+
+fn bounds(data: &LexisData) -> ((f64, f64), (f64, f64)) {
+    let (mut t0, mut t1, mut a0, mut a1) = (f64::INFINITY, f64::NEG_INFINITY, f64::INFINITY, f64::NEG_INFINITY);
+    for c in &data.cohorts {
+        for l in &c.lines {
+            for &(t, a) in l {
+                t0 = t0.min(t);
+                t1 = t1.max(t);
+                a0 = a0.min(a);
+                a1 = a1.max(a);
+            }
+        }
+    }
+    let pad = |lo: f64, hi: f64| {
+        let p = 0.05 * (hi - lo).max(1.0);
+        (lo - p, hi + p)
+    };
+    (pad(t0, t1), pad(a0, a1))
+}
+
+fn draw_lexis<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, data: &LexisData) -> std::result::Result<(), String> {
+    let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
+    root.fill(&GROUND).map_err(e)?;
+    let ((t0, t1), (a0, a1)) = bounds(data);
+    let mut chart = ChartBuilder::on(&root)
+        .caption(
+            "Lexis diagram: each cohort's assessments along its diagonal",
+            ("sans-serif", 22).into_font().color(&INK),
+        )
+        .margin(24)
+        .x_label_area_size(52)
+        .y_label_area_size(60)
+        .build_cartesian_2d(t0..t1, a0..a1)
+        .map_err(e)?;
+    chart
+        .configure_mesh()
+        .x_desc(data.time_label.clone())
+        .y_desc("age (years)")
+        .axis_desc_style(("sans-serif", 16).into_font().color(&INK))
+        .label_style(("sans-serif", 14).into_font().color(&INK))
+        .bold_line_style(RGBColor(232, 228, 218))
+        .light_line_style(GROUND)
+        .axis_style(RGBColor(150, 145, 135))
+        .draw()
+        .map_err(e)?;
+    if data.calendar {
+        // Constant birth year b: age = t − b, drawn every two years.
+        let (b0, b1) = ((t0 - a1).floor() as i64, (t1 - a0).ceil() as i64);
+        for b in (b0..=b1).filter(|b| b % 2 == 0) {
+            let b = b as f64;
+            chart
+                .draw_series(LineSeries::new(
+                    [(t0, t0 - b), (t1, t1 - b)],
+                    RGBColor(205, 200, 190).stroke_width(1),
+                ))
+                .map_err(e)?;
+        }
+    }
+    for (k, c) in data.cohorts.iter().enumerate() {
+        let color = PALETTE[k % PALETTE.len()];
+        for l in &c.lines {
+            chart
+                .draw_series(LineSeries::new(l.iter().copied(), color.mix(0.45).stroke_width(1)))
+                .map_err(e)?;
+        }
+        let shown: usize = c.lines.len();
+        chart
+            .draw_series(
+                c.lines
+                    .iter()
+                    .flatten()
+                    .map(|&(t, a)| Circle::new((t, a), 3, color.mix(0.85).filled())),
+            )
+            .map_err(e)?
+            .label(format!("cohort {} ({} shown of {})", c.cohort, shown, c.n_participants))
+            .legend(move |(x, y)| Circle::new((x + 11, y), 5, color.filled()));
+    }
+    chart
+        .configure_series_labels()
+        .position(SeriesLabelPosition::UpperLeft)
+        .background_style(GROUND.mix(0.9))
+        .border_style(RGBColor(200, 195, 185))
+        .label_font(("sans-serif", 14).into_font().color(&INK))
+        .draw()
+        .map_err(e)?;
+    root.present().map_err(e)?;
+    Ok(())
+}
+
+fn draw_coverage<DB: DrawingBackend>(
+    root: DrawingArea<DB, Shift>,
+    report: &DesignReport,
+) -> std::result::Result<(), String> {
+    let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
+    root.fill(&GROUND).map_err(e)?;
+    let mut order: Vec<&crate::design::CohortCoverage> = report.cohorts.iter().collect();
+    order.sort_by(|a, b| a.age_min.total_cmp(&b.age_min));
+    let k = order.len();
+    let row_of = |c: &str| order.iter().position(|o| o.cohort == c);
+    let (mut x0, mut x1) = (f64::INFINITY, f64::NEG_INFINITY);
+    let mut max_n = 1usize;
+    for b in &report.bands {
+        x0 = x0.min(b.age_from);
+        x1 = x1.max(b.age_to);
+        max_n = max_n.max(b.n);
+    }
+    let labels: Vec<String> = order.iter().map(|c| c.cohort.clone()).collect();
+    let mut chart = ChartBuilder::on(&root)
+        .caption(
+            "Coverage: observations per cohort and age band (bars between rows: shared ages)",
+            ("sans-serif", 22).into_font().color(&INK),
+        )
+        .margin(24)
+        .x_label_area_size(52)
+        .y_label_area_size(80)
+        .build_cartesian_2d(x0..x1, -0.6..(k as f64 - 0.4))
+        .map_err(e)?;
+    chart
+        .configure_mesh()
+        .disable_y_mesh()
+        .x_desc("age (years)")
+        .y_desc("cohort")
+        .y_labels(k.max(1))
+        .y_label_formatter(&|y: &f64| {
+            let i = y.round();
+            if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < labels.len() {
+                labels[i as usize].clone()
+            } else {
+                String::new()
+            }
+        })
+        .axis_desc_style(("sans-serif", 16).into_font().color(&INK))
+        .label_style(("sans-serif", 14).into_font().color(&INK))
+        .bold_line_style(RGBColor(232, 228, 218))
+        .light_line_style(GROUND)
+        .axis_style(RGBColor(150, 145, 135))
+        .draw()
+        .map_err(e)?;
+    let width_px = f64::from(SIZE.0 - 130) / (x1 - x0).max(1e-9);
+    for b in &report.bands {
+        let Some(row) = row_of(&b.cohort) else { continue };
+        let y = row as f64;
+        let share = b.n as f64 / max_n as f64;
+        let fill = CURVE.mix(0.12 + 0.78 * share);
+        chart
+            .draw_series(std::iter::once(Rectangle::new(
+                [(b.age_from, y - 0.38), (b.age_to, y + 0.38)],
+                fill.filled(),
+            )))
+            .map_err(e)?;
+        if (b.age_to - b.age_from) * width_px >= 34.0 {
+            let ink = if share > 0.5 { GROUND } else { INK };
+            chart
+                .draw_series(std::iter::once(Text::new(
+                    b.n.to_string(),
+                    ((b.age_from + b.age_to) / 2.0, y),
+                    ("sans-serif", 13)
+                        .into_font()
+                        .color(&ink)
+                        .pos(plotters::style::text_anchor::Pos::new(
+                            plotters::style::text_anchor::HPos::Center,
+                            plotters::style::text_anchor::VPos::Center,
+                        )),
+                )))
+                .map_err(e)?;
+        }
+    }
+    for o in report.overlap.iter().filter(|o| o.linked) {
+        let (Some(a), Some(b)) = (row_of(&o.cohort_a), row_of(&o.cohort_b)) else {
+            continue;
+        };
+        let y = (a as f64 + b as f64) / 2.0;
+        chart
+            .draw_series(std::iter::once(Rectangle::new(
+                [(o.age_from, y - 0.05), (o.age_to, y + 0.05)],
+                INK.mix(if o.thin { 0.35 } else { 0.85 }).filled(),
+            )))
+            .map_err(e)?;
+    }
+    root.present().map_err(e)?;
+    Ok(())
+}
+
+macro_rules! render {
+    ($path:expr, $backend:ident, $draw:expr) => {{
+        register_font();
+        let root = $backend::new($path, SIZE).into_drawing_area();
+        $draw(root).map_err(|m: String| Error::Output {
+            path: $path.to_path_buf(),
+            message: format!("cannot draw the figure ({m})"),
+        })
+    }};
+}
+
+/// Draw the Lexis diagram as PNG and SVG.
+///
+/// # Errors
+/// [`Error::Output`] when a file cannot be drawn or written.
+pub fn lexis(png: &Path, svg: &Path, data: &LexisData) -> Result<()> {
+    render!(png, BitMapBackend, |root| draw_lexis(root, data))?;
+    render!(svg, SVGBackend, |root| draw_lexis(root, data))
+}
+
+/// Draw the coverage chart as PNG and SVG.
+///
+/// # Errors
+/// [`Error::Output`] when a file cannot be drawn or written.
+pub fn coverage(png: &Path, svg: &Path, report: &DesignReport) -> Result<()> {
+    render!(png, BitMapBackend, |root| draw_coverage(root, report))?;
+    render!(svg, SVGBackend, |root| draw_coverage(root, report))
+}
