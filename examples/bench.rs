@@ -74,6 +74,7 @@ fn time_braid(file: &Path, out: &Path, school: bool, json_only: bool) -> (f64, f
         "--center",
         "16",
         "--quiet",
+        "--force",
     ]);
     if json_only {
         cmd.arg("--json").arg(out.join("fit.json"));

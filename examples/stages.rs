@@ -53,6 +53,13 @@ fn main() {
     let t = Instant::now();
     let traj = braid::infer::trajectory(&fit, &frame, &TrajectoryRequest::default());
     let t_traj = t.elapsed();
+    let t = Instant::now();
+    let report = braid::report::FitReport::new(&panel, &frame, &fit, traj.clone());
+    let t_report = t.elapsed();
+    let t = Instant::now();
+    let json = serde_json::to_string_pretty(&report).unwrap();
+    let t_json = t.elapsed();
+    println!("report {t_report:?}, JSON {t_json:?} ({} bytes)", json.len());
     println!("rows {}, participants {}", panel.n(), panel.id.n_levels());
     println!(
         "load {:?}, frame {:?}, cross-products {:?}, one evaluation {:?}",

@@ -174,13 +174,18 @@ impl Codes {
     /// Code labels; levels are sorted (numerically when all labels are
     /// numbers), or in order of first appearance when `sort` is false.
     pub fn new(labels: &[String], sort: bool) -> Codes {
+        Codes::from_strs(labels.iter().map(String::as_str), sort)
+    }
+
+    /// Code borrowed labels (see [`Codes::new`]).
+    pub fn from_strs<'a>(labels: impl Iterator<Item = &'a str>, sort: bool) -> Codes {
         let mut index: HashMap<&str, u32> = HashMap::new();
         let mut levels: Vec<String> = Vec::new();
-        let mut codes = Vec::with_capacity(labels.len());
+        let mut codes = Vec::with_capacity(labels.size_hint().0);
         for l in labels {
             let next = levels.len() as u32;
-            let c = *index.entry(l.as_str()).or_insert_with(|| {
-                levels.push(l.clone());
+            let c = *index.entry(l).or_insert_with(|| {
+                levels.push(l.to_string());
                 next
             });
             codes.push(c);
@@ -339,7 +344,7 @@ impl Default for ReadOptions {
 }
 
 /// Cells that mean "missing" (common practice).
-fn is_missing(s: &str) -> bool {
+pub(crate) fn is_missing(s: &str) -> bool {
     matches!(s, "" | "NA" | "." | "na" | "N/A")
 }
 
@@ -451,7 +456,13 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
     wanted.dedup();
     let mut seen = std::collections::HashSet::new();
     wanted.retain(|c| seen.insert(c.clone()));
-    let table = read::read_columns(path, &wanted, options.delimiter)?;
+    let mut numeric: Vec<String> = vec![roles.outcome.clone()];
+    if roles.dates().is_none() {
+        numeric.push(roles.age.clone());
+    }
+    numeric.extend(roles.period.iter().chain(&roles.birth_year).cloned());
+    numeric.extend(roles.wide_outcome.iter().chain(&roles.wide_age).cloned());
+    let table = read::read_columns(path, &wanted, &numeric, options.delimiter)?;
     if table.n_rows == 0 {
         return Err(Error::Data {
             path: path.to_path_buf(),
@@ -740,22 +751,32 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             })
             .collect()
     };
-    let id = Codes::new(&labels(&roles.id, true)?, false);
-    let cohort = roles
-        .cohort
-        .as_deref()
-        .map(|c| labels(c, true).map(|l| Codes::new(&l, true)))
-        .transpose()?;
-    let wave = roles
-        .wave
-        .as_deref()
-        .map(|c| labels(c, true).map(|l| Codes::new(&l, true)))
-        .transpose()?;
-    let cluster = roles
-        .cluster
-        .as_deref()
-        .map(|c| labels(c, true).map(|l| Codes::new(&l, true)))
-        .transpose()?;
+    // Label columns: coded straight from the text, every cell required.
+    let codes_of = |name: &str, sort: bool| -> Result<Codes> {
+        match col(name) {
+            RawColumn::Text(v) => {
+                let cells: Vec<&str> = keep_rows
+                    .iter()
+                    .map(|&r| match v[r].as_deref().map(str::trim) {
+                        Some(t) if !is_missing(t) => Ok(t),
+                        _ => Err(Error::BadValue {
+                            path: path.to_path_buf(),
+                            column: name.to_string(),
+                            row: r + 1,
+                            value: String::new(),
+                            advice: "is empty; every row needs a value in this column".into(),
+                        }),
+                    })
+                    .collect::<Result<_>>()?;
+                Ok(Codes::from_strs(cells.into_iter(), sort))
+            }
+            RawColumn::Number(_) => Ok(Codes::new(&labels(name, true)?, sort)),
+        }
+    };
+    let id = codes_of(&roles.id, false)?;
+    let cohort = roles.cohort.as_deref().map(|c| codes_of(c, true)).transpose()?;
+    let wave = roles.wave.as_deref().map(|c| codes_of(c, true)).transpose()?;
+    let cluster = roles.cluster.as_deref().map(|c| codes_of(c, true)).transpose()?;
     let mut covariates = Vec::with_capacity(roles.covariates.len());
     for (k, c) in roles.covariates.iter().enumerate() {
         let values = if cov_numeric[k] {

@@ -139,11 +139,15 @@ fn guard_damaged<T>(path: &Path, read: impl FnOnce() -> Result<T>) -> Result<T> 
     })
 }
 
-/// Read the named columns of a file.
+/// Below this size a CSV file is read on one thread.
+const SMALL_CSV_BYTES: u64 = 4 << 20;
+
+/// Read the named columns of a file; the columns in `numeric` are parsed as
+/// numbers when every cell allows it.
 ///
 /// # Errors
 /// [`Error::Io`] or [`Error::Parse`] when the file cannot be read as a table.
-pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawTable> {
+pub fn read_columns(path: &Path, names: &[String], numeric: &[String], delimiter: u8) -> Result<RawTable> {
     let parse = |e: PolarsError| {
         let text = e.to_string();
         let advice = if text.to_ascii_lowercase().contains("utf-8") || text.to_ascii_lowercase().contains("utf8") {
@@ -159,7 +163,10 @@ pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawT
     let df = match format_of(path) {
         Format::Csv => {
             let cols: Arc<[PlSmallStr]> = names.iter().map(|n| PlSmallStr::from(n.as_str())).collect();
+            // Small files read faster on one thread than split into chunks.
+            let small = std::fs::metadata(path).is_ok_and(|m| m.len() < SMALL_CSV_BYTES);
             CsvReadOptions::default()
+                .with_n_threads(if small { Some(1) } else { None })
                 .with_has_header(true)
                 .with_infer_schema_length(Some(0))
                 .with_columns(Some(cols))
@@ -189,7 +196,24 @@ pub fn read_columns(path: &Path, names: &[String], delimiter: u8) -> Result<RawT
         let raw = match col.dtype() {
             DataType::String => {
                 let ca = col.str().map_err(parse)?;
-                RawColumn::Text(ca.iter().map(|v| v.map(str::to_string)).collect())
+                // Numeric roles are parsed straight from the text when every
+                // cell is a finite number or a missing-value token; otherwise
+                // the text is kept so that the bad cell is reported as written.
+                let parsed: Option<Vec<Option<f64>>> = if numeric.contains(name) {
+                    ca.iter()
+                        .map(|v| match v.map(str::trim) {
+                            None => Some(None),
+                            Some(t) if super::is_missing(t) => Some(None),
+                            Some(t) => t.parse::<f64>().ok().filter(|x| x.is_finite()).map(Some),
+                        })
+                        .collect()
+                } else {
+                    None
+                };
+                match parsed {
+                    Some(v) => RawColumn::Number(v),
+                    None => RawColumn::Text(ca.iter().map(|v| v.map(str::to_string)).collect()),
+                }
             }
             dt if dt.is_primitive_numeric() => {
                 let c = col.cast(&DataType::Float64).map_err(parse)?;

@@ -271,18 +271,74 @@ fn primary_fixed<const Q: usize>(
             tq[r][c] = t1[r * Q + c];
         }
     }
+    let (logdet, xy, blocks_l, blocks_w) = if keep || cp.n1 < PARALLEL_LEVELS {
+        primary_range::<Q>(cp, &tq, t, e, 0..cp.n1, keep)
+    } else {
+        // Fixed chunks, summed in chunk order: the result does not depend on
+        // how many threads run them.
+        use rayon::prelude::*;
+        let linked = !cp.links.is_empty();
+        let parts: Vec<(f64, Vec<f64>, Vec<f64>)> = (0..CHUNKS)
+            .into_par_iter()
+            .map(|c| {
+                let range = c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS;
+                let mut local = if linked { vec![0.0; m * m] } else { Vec::new() };
+                let (ld, xy, _, _) = primary_range::<Q>(cp, &tq, t, &mut local, range, false);
+                (ld, xy, local)
+            })
+            .collect();
+        let mut logdet = 0.0;
+        let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
+        for (ld, part_xy, local) in parts {
+            logdet += ld;
+            xy.iter_mut().zip(&part_xy).for_each(|(a, b)| *a += b);
+            e.iter_mut().zip(&local).for_each(|(a, b)| *a += b);
+        }
+        (logdet, xy, Vec::new(), Vec::new())
+    };
+    for a in 0..=p {
+        for b in 0..=a {
+            e[(q2 + a) * m + q2 + b] -= xy[a * (a + 1) / 2 + b];
+        }
+    }
+    (logdet, blocks_l, blocks_w)
+}
+
+/// Above this many primary levels a search evaluation runs in parallel.
+const PARALLEL_LEVELS: usize = 2000;
+
+/// The number of chunks the primary levels are split into when in parallel.
+const CHUNKS: usize = 4;
+
+/// Blocks L and W of the kept primary levels.
+type Kept = (Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>);
+
+/// The primary levels in `range`: subtracts each level's link-column terms
+/// from `e` and returns log|L|² of the range, the range's X–y block of
+/// Σ WᵢᵀWᵢ (packed lower triangle, not yet subtracted) and the kept blocks.
+fn primary_range<const Q: usize>(
+    cp: &CrossProducts,
+    tq: &[[f64; Q]; Q],
+    t: &[Vec<f64>],
+    e: &mut [f64],
+    range: std::ops::Range<usize>,
+    keep: bool,
+) -> (f64, Vec<f64>, Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>) {
+    let m = cp.m;
+    let p = cp.p;
+    let q2 = cp.q2_total;
+    let tq = *tq;
     let mut logdet = LogDet::new();
-    let mut blocks_l = Vec::new();
-    let mut blocks_w = Vec::new();
+    let (mut blocks_l, mut blocks_w): Kept = (Vec::new(), Vec::new());
     if keep {
-        blocks_l.reserve(cp.n1 * Q * Q);
-        blocks_w.reserve(cp.n1);
+        blocks_l.reserve(range.len() * Q * Q);
+        blocks_w.reserve(range.len());
     }
     // The X–y block of Σ WᵢᵀWᵢ, packed lower triangle.
     let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
     let mut cols: Vec<usize> = Vec::with_capacity(p + 8);
     let mut w: Vec<[f64; Q]> = Vec::with_capacity(p + 8);
-    for i in 0..cp.n1 {
+    for i in range {
         let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
         // A = Tᵀ G T + I.
         let mut gt = [[0.0f64; Q]; Q];
@@ -381,9 +437,11 @@ fn primary_fixed<const Q: usize>(
         }
         for a in 0..=p {
             let wa = w[n_link + a];
-            let row = &mut e[(q2 + a) * m..(q2 + a) * m + m];
-            for b in 0..n_link {
-                row[cols[b]] -= dot::<Q>(&wa, &w[b]);
+            if n_link > 0 {
+                let row = &mut e[(q2 + a) * m..(q2 + a) * m + m];
+                for b in 0..n_link {
+                    row[cols[b]] -= dot::<Q>(&wa, &w[b]);
+                }
             }
             let acc = &mut xy[a * (a + 1) / 2..a * (a + 1) / 2 + a + 1];
             for (b, v) in acc.iter_mut().enumerate() {
@@ -406,12 +464,7 @@ fn primary_fixed<const Q: usize>(
             blocks_w.push((cols.clone(), vals));
         }
     }
-    for a in 0..=p {
-        for b in 0..=a {
-            e[(q2 + a) * m + q2 + b] -= xy[a * (a + 1) / 2 + b];
-        }
-    }
-    (logdet.total(), blocks_l, blocks_w)
+    (logdet.total(), xy, blocks_l, blocks_w)
 }
 
 #[inline(always)]

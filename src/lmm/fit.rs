@@ -750,6 +750,7 @@ const HESSIAN_STEP: f64 = 3e-4;
 /// A(θ) (= log|L_Z|², plus log|R_X|² for REML) and of r²(θ), and ∂cov(β̂)/∂θ
 /// at a fixed σ².
 struct PieceDerivatives {
+    c0: Vec<f64>,
     a_hess: Vec<f64>,
     r2_grad: Vec<f64>,
     r2_hess: Vec<f64>,
@@ -781,6 +782,7 @@ fn piece_derivatives(
     };
     let f0 = at(&[])?;
     let (a0, r0) = (a_of(&f0), f0.pieces.pwrss);
+    let c0 = fixed_cov(&f0, cp.q2_total, p, sigma2);
     let mut a_hess = vec![0.0; d * d];
     let mut r2_hess = vec![0.0; d * d];
     let mut r2_grad = vec![0.0; d];
@@ -814,6 +816,7 @@ fn piece_derivatives(
         }
     }
     Some(PieceDerivatives {
+        c0,
         a_hess,
         r2_grad,
         r2_hess,
@@ -848,11 +851,7 @@ fn sensitivity(
         .map(|&i| HESSIAN_STEP * theta[i].abs().max(theta_scale[i]))
         .collect();
     let derivs = piece_derivatives(cp, theta, free, &h, method, sigma2, &mut evals);
-    let c0 = criterion::evaluate(cp, theta, false)
-        .ok()
-        .map(|f| fixed_cov(&f, cp.q2_total, p, sigma2));
-    evals += 1;
-    let (Some(derivs), Some(c0)) = (derivs, c0) else {
+    let Some(derivs) = derivs else {
         let nan = VarianceSensitivity {
             acov: vec![f64::NAN; k * k],
             dcov: vec![vec![f64::NAN; p * p]; k],
@@ -860,6 +859,7 @@ fn sensitivity(
         return ((nan, evals), None);
     };
     let PieceDerivatives {
+        c0,
         a_hess,
         r2_grad,
         r2_hess,

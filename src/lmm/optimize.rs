@@ -462,7 +462,7 @@ pub fn newton_polish(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lowe
         decrement = Some(dec);
         // Stop at the target, or when the decrement has stopped shrinking:
         // the finite-difference gradient has reached its rounding floor.
-        if dec < POLISH_DECREMENT || (!fresh && dec > 0.1 * previous) {
+        if dec < POLISH_DECREMENT * fx.abs().max(1.0) || (!fresh && dec > 0.1 * previous) {
             break;
         }
         let mut alpha = 1.0;
@@ -503,6 +503,7 @@ pub fn newton_polish(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lowe
     }
 }
 
-/// The Newton finish stops when the decrement falls below this: a parameter
-/// error of about √(decrement / curvature), far below any reported digit.
+/// The Newton finish stops when the decrement falls below this share of |f|
+/// (the rounding of f itself): a parameter error of about
+/// √(decrement / curvature), far below any reported digit.
 const POLISH_DECREMENT: f64 = 1e-16;

@@ -163,8 +163,9 @@ impl FitReport {
 /// column, rows are grouped by whole-year age.
 pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     let n = panel.n();
-    let cohort_of: Vec<String> = match &panel.cohort {
-        Some(c) => (0..n).map(|r| c.label(r).to_string()).collect(),
+    // Integer keys per row; labels are made once per group.
+    let cohort_key: Vec<i64> = match &panel.cohort {
+        Some(c) => c.codes.iter().map(|&k| i64::from(k)).collect(),
         None => {
             let mut first = vec![f64::INFINITY; panel.id.n_levels()];
             for r in 0..n {
@@ -172,24 +173,34 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
                 first[k] = first[k].min(panel.age[r]);
             }
             (0..n)
-                .map(|r| format!("entry age {}", first[panel.id.codes[r] as usize].floor()))
+                .map(|r| first[panel.id.codes[r] as usize].floor() as i64)
                 .collect()
         }
     };
-    let wave_of: Vec<String> = match &panel.wave {
-        Some(w) => (0..n).map(|r| w.label(r).to_string()).collect(),
-        None => (0..n).map(|r| format!("age {}", panel.age[r].floor())).collect(),
+    let cohort_label = |k: i64| match &panel.cohort {
+        Some(c) => c.levels[k as usize].clone(),
+        None => format!("entry age {k}"),
     };
-    let mut groups: BTreeMap<(String, String), (usize, f64, f64, f64)> = BTreeMap::new();
+    let wave_key = |r: usize| match &panel.wave {
+        Some(w) => i64::from(w.codes[r]),
+        None => panel.age[r].floor() as i64,
+    };
+    let wave_label = |k: i64| match &panel.wave {
+        Some(w) => w.levels[k as usize].clone(),
+        None => format!("age {k}"),
+    };
+    let mut sums: std::collections::HashMap<(i64, i64), (usize, f64, f64, f64)> = std::collections::HashMap::new();
     for r in 0..n {
-        let e = groups
-            .entry((cohort_of[r].clone(), wave_of[r].clone()))
-            .or_insert((0, 0.0, 0.0, 0.0));
+        let e = sums.entry((cohort_key[r], wave_key(r))).or_insert((0, 0.0, 0.0, 0.0));
         e.0 += 1;
         e.1 += panel.age[r];
         e.2 += panel.outcome[r];
         e.3 += panel.outcome[r] * panel.outcome[r];
     }
+    let groups: BTreeMap<(String, String), (usize, f64, f64, f64)> = sums
+        .into_iter()
+        .map(|((c, w), v)| ((cohort_label(c), wave_label(w)), v))
+        .collect();
     let mut cells: Vec<CellMean> = groups
         .into_iter()
         .map(|((cohort, wave), (k, sa, sy, syy))| {
