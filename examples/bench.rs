@@ -112,7 +112,7 @@ fn median(mut v: Vec<f64>) -> f64 {
 fn small(work: &Path) {
     let file = work.join("bench_3000.csv");
     let rows = write(&design(600, 1, 3000), &file);
-    let runs: Vec<(f64, f64, f64)> = (0..5)
+    let runs: Vec<(f64, f64, f64)> = (0..21)
         .map(|_| time_braid(&file, &work.join("out_small"), false, true))
         .collect();
     let braid_s = median(runs.iter().map(|r| r.0).collect());
@@ -121,7 +121,7 @@ fn small(work: &Path) {
         .map(|_| time_braid(&file, &work.join("out_small_all"), false, false).0)
         .collect();
     println!("small: 3,000 participants, {rows} rows");
-    println!("  braid fit --json (whole run, median of 5): {braid_s:.3} s, REML loglik {braid_ll:.6}");
+    println!("  braid fit --json (whole run, median of 21): {braid_s:.3} s, REML loglik {braid_ll:.6}");
     println!(
         "  braid fit --out, with CSV and figures (median of 5): {:.3} s",
         median(full)

@@ -39,6 +39,7 @@ pub mod data;
 pub mod design;
 pub mod error;
 pub mod infer;
+pub mod linkage;
 pub mod lmm;
 pub mod report;
 pub mod simulate;

@@ -90,6 +90,10 @@ pub struct Truth {
     pub sd_school: f64,
     /// Residual SD.
     pub sd_residual: f64,
+    /// A shift of the whole trajectory per cohort, in `Design::entry_ages`
+    /// order (empty: cohorts converge, no shift).
+    #[serde(default)]
+    pub cohort_shift: Vec<f64>,
 }
 
 impl Truth {
@@ -147,6 +151,7 @@ impl Design {
                 correlation: 0.3,
                 sd_school: 2.0,
                 sd_residual: 3.0,
+                cohort_shift: Vec::new(),
             },
         }
     }
@@ -194,7 +199,8 @@ pub fn simulate(design: &Design) -> Simulated {
     let rho = t.correlation.clamp(-1.0, 1.0);
     let mut rows = Vec::new();
     let mut serial = 0usize;
-    for &entry in &design.entry_ages {
+    for (c, &entry) in design.entry_ages.iter().enumerate() {
+        let shift = t.cohort_shift.get(c).copied().unwrap_or(0.0);
         for _ in 0..design.per_cohort {
             serial += 1;
             let id = format!("P{serial:06}");
@@ -218,7 +224,7 @@ pub fn simulate(design: &Design) -> Simulated {
                 if missed {
                     continue;
                 }
-                let score = t.mean_at(age) + b0 + b1 * (age - t.center) + school_effect[school] + e;
+                let score = t.mean_at(age) + shift + b0 + b1 * (age - t.center) + school_effect[school] + e;
                 rows.push(SimRow {
                     id: id.clone(),
                     school: format!("S{:02}", school + 1),

@@ -23,6 +23,8 @@ pub enum Command {
     Demo(DemoArgs),
     /// Report what a design covers: cohorts, waves, ages, overlap of neighbouring cohorts, retention.
     Inspect(Box<InspectArgs>),
+    /// Test whether cohorts agree where their ages overlap, before pooling them into one curve.
+    Converge(Box<ConvergeArgs>),
 }
 
 /// Estimation criterion on the command line.
@@ -176,6 +178,59 @@ pub struct InspectArgs {
     #[arg(long)]
     pub quiet: bool,
     /// Overwrite an existing --json file.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// Flags of `braid converge`.
+#[derive(Debug, Clone, Default, Args)]
+pub struct ConvergeArgs {
+    /// The data file (CSV, or Parquet by its .parquet extension); may come from --study instead.
+    #[arg(value_name = "DATA")]
+    pub data: Option<PathBuf>,
+    /// A study file (TOML) stating the data, roles and model; flags override it.
+    #[arg(long, value_name = "FILE")]
+    pub study: Option<PathBuf>,
+    /// Column roles.
+    #[command(flatten)]
+    pub roles: RoleArgs,
+    /// Derived cohorts, when the file has no cohort column.
+    #[command(flatten)]
+    pub derive: DeriveArgs,
+    /// Degree of the centred age polynomial, 1 to 4 [default: 2].
+    #[arg(long, value_name = "N", conflicts_with_all = ["knots", "knot_ages"])]
+    pub degree: Option<usize>,
+    /// Use a natural cubic spline in age with K interior knots at quantiles of age.
+    #[arg(long, value_name = "K", conflicts_with = "knot_ages")]
+    pub knots: Option<usize>,
+    /// Use a natural cubic spline with interior knots at these ages (comma-separated).
+    #[arg(long, value_name = "AGES", value_delimiter = ',')]
+    pub knot_ages: Option<Vec<f64>>,
+    /// Give participants a random intercept only (no random age slope).
+    #[arg(long)]
+    pub no_slope: bool,
+    /// Age at which cohort level differences are measured [default: the median age inside the overlaps].
+    #[arg(long, value_name = "AGE")]
+    pub reference_age: Option<f64>,
+    /// Equivalence margin in outcome units (instead of --margin-sd).
+    #[arg(long, value_name = "UNITS", conflicts_with = "margin_sd")]
+    pub margin: Option<f64>,
+    /// Equivalence margin in SDs of the outcome [default: 0.2].
+    #[arg(long, value_name = "SD")]
+    pub margin_sd: Option<f64>,
+    /// Shared ages compared per pair of neighbouring cohorts.
+    #[arg(long, value_name = "N", default_value_t = 5)]
+    pub shared_ages: usize,
+    /// Write the report as JSON to this file.
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
+    /// Folder for converge.json and the shared-age figure (PNG and SVG).
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
+    /// Print nothing but errors.
+    #[arg(long)]
+    pub quiet: bool,
+    /// Overwrite existing outputs.
     #[arg(long)]
     pub force: bool,
 }

@@ -58,6 +58,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Fit(a) => fit_command(&FitConfig::from_args(&a)?),
         Command::Demo(a) => demo_command(&a),
         Command::Inspect(a) => inspect_command(&a),
+        Command::Converge(a) => converge_command(&a),
     }
 }
 
@@ -163,6 +164,78 @@ fn inspect_command(a: &args::InspectArgs) -> Result<()> {
         let written = report::write_design_outputs(dir, &panel, &report, options)?;
         if !a.quiet {
             println!("\nWritten to {}: {}", dir.display(), written.join(", "));
+        }
+    }
+    Ok(())
+}
+
+/// `braid converge`: load, fit the nested cohort models, test, report.
+fn converge_command(a: &args::ConvergeArgs) -> Result<()> {
+    let config = FitConfig::from_args(&args::FitArgs {
+        data: a.data.clone(),
+        study: a.study.clone(),
+        roles: a.roles.clone(),
+        degree: a.degree,
+        knots: a.knots,
+        knot_ages: a.knot_ages.clone(),
+        no_slope: a.no_slope,
+        grid: 2,
+        ..Default::default()
+    })?;
+    if let Some(file) = &a.json {
+        report::check_output(file, false, a.force, "--json")?;
+    }
+    if let Some(dir) = &a.out {
+        report::check_output(dir, true, a.force, "--out")?;
+    }
+    for (flag, v) in [
+        ("--margin", a.margin),
+        ("--margin-sd", a.margin_sd),
+        ("--reference-age", a.reference_age),
+    ] {
+        if let Some(x) = v.filter(|x| !x.is_finite() || (flag != "--reference-age" && *x <= 0.0)) {
+            return Err(Error::Spec {
+                parameter: flag.into(),
+                message: format!("{x} is not a usable value; give a positive finite number"),
+            });
+        }
+    }
+    if a.shared_ages == 0 || a.shared_ages > 1000 {
+        return Err(Error::Spec {
+            parameter: "--shared-ages".into(),
+            message: format!("{} shared ages; choose between 1 and 1000", a.shared_ages),
+        });
+    }
+    let panel = data::load(&config.data, &config.roles, config.read)?;
+    let options = crate::linkage::ConvergeOptions {
+        reference_age: a.reference_age,
+        margin: match (a.margin, a.margin_sd) {
+            (Some(m), _) => crate::linkage::Margin::Outcome(m),
+            (None, Some(s)) => crate::linkage::Margin::Sd(s),
+            (None, None) => crate::linkage::Margin::Sd(crate::linkage::DEFAULT_MARGIN_SD),
+        },
+        shared_ages: a.shared_ages,
+        cohort_rule: a.derive.cohort_rule(),
+    };
+    let result = crate::linkage::converge(&panel, &config.model, &options)?;
+    if !a.quiet {
+        print!("{}", text::converge_summary(&panel, &result));
+    }
+    if let Some(path) = &a.json {
+        if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+            report::ensure_dir(parent)?;
+        }
+        report::write_json(path, &result)?;
+    }
+    if let Some(dir) = &a.out {
+        report::ensure_dir(dir)?;
+        report::write_json(&dir.join("converge.json"), &result)?;
+        report::converge_figure::shared_ages(&dir.join("shared_ages.png"), &dir.join("shared_ages.svg"), &result)?;
+        if !a.quiet {
+            println!(
+                "\nWritten to {}: converge.json, shared_ages.png, shared_ages.svg",
+                dir.display()
+            );
         }
     }
     Ok(())

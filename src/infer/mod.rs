@@ -7,6 +7,7 @@
 //! covariance of the variance parameters φ. The derivation is in
 //! `notes/criterion.md`.
 
+pub mod tests;
 pub mod trajectory;
 
 use serde::Serialize;

@@ -313,6 +313,9 @@ const CHUNKS: usize = 4;
 /// Blocks L and W of the kept primary levels.
 type Kept = (Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>);
 
+/// log|L|² of a range of levels, its X–y block, and its kept blocks.
+type RangeOut = (f64, Vec<f64>, Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>);
+
 /// The primary levels in `range`: subtracts each level's link-column terms
 /// from `e` and returns log|L|² of the range, the range's X–y block of
 /// Σ WᵢᵀWᵢ (packed lower triangle, not yet subtracted) and the kept blocks.
@@ -323,7 +326,7 @@ fn primary_range<const Q: usize>(
     e: &mut [f64],
     range: std::ops::Range<usize>,
     keep: bool,
-) -> (f64, Vec<f64>, Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>) {
+) -> RangeOut {
     let m = cp.m;
     let p = cp.p;
     let q2 = cp.q2_total;

@@ -1,6 +1,7 @@
 //! Reporting: the serializable fit report, text tables, JSON/CSV files and
 //! figures. Nothing here computes an estimate; it arranges results.
 
+pub mod converge_figure;
 pub mod design_figure;
 pub mod figure;
 pub mod text;
@@ -190,8 +191,8 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
         None => format!("age {k}"),
     };
     let mut sums: std::collections::HashMap<(i64, i64), (usize, f64, f64, f64)> = std::collections::HashMap::new();
-    for r in 0..n {
-        let e = sums.entry((cohort_key[r], wave_key(r))).or_insert((0, 0.0, 0.0, 0.0));
+    for (r, &ck) in cohort_key.iter().enumerate() {
+        let e = sums.entry((ck, wave_key(r))).or_insert((0, 0.0, 0.0, 0.0));
         e.0 += 1;
         e.1 += panel.age[r];
         e.2 += panel.outcome[r];

@@ -365,3 +365,116 @@ pub fn design_summary(panel: &crate::data::Panel, r: &crate::design::DesignRepor
     let _ = writeln!(s, "{:<11}{}", "Caution", super::CAUTIONS[2]);
     s
 }
+
+/// Wrap text at `width` columns, indenting continuation lines by `indent`.
+fn wrap(text: &str, width: usize, indent: usize) -> String {
+    let mut out = String::new();
+    let mut line = 0;
+    for word in text.split_whitespace() {
+        if line > 0 && line + 1 + word.chars().count() > width {
+            out.push('\n');
+            out.push_str(&" ".repeat(indent));
+            line = 0;
+        } else if line > 0 {
+            out.push(' ');
+            line += 1;
+        }
+        out.push_str(word);
+        line += word.chars().count();
+    }
+    out
+}
+
+/// The `braid converge` summary.
+pub fn converge_summary(panel: &crate::data::Panel, r: &crate::linkage::ConvergeReport) -> String {
+    let mut s = String::new();
+    let rule = "─".repeat(86);
+    let _ = writeln!(s, "braid converge · {}", panel.source.display());
+    let _ = writeln!(s, "{rule}");
+    let _ = writeln!(
+        s,
+        "{:<11}{} participants · {} rows · cohorts {} (reference: {})",
+        "Data",
+        thousands(panel.id.n_levels()),
+        thousands(panel.n()),
+        r.cohorts.join(", "),
+        r.cohorts[0]
+    );
+    let _ = writeln!(s, "{:<11}cohorts {}", "Rules", r.cohort_rule);
+    let _ = writeln!(s, "{:<11}level differences measured at age {:.2}", "", r.reference_age);
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<12}{:<58}{:>12}{:>6}{:>10}{:>10}",
+        "Models", "", "loglik", "k", "AIC", "BIC"
+    );
+    for m in &r.models {
+        let _ = writeln!(
+            s,
+            "  {:<10}{:<58}{:>12.3}{:>6}{:>10.1}{:>10.1}",
+            m.name,
+            format!("{} ({})", m.description, m.method),
+            m.loglik,
+            m.n_params,
+            m.aic,
+            m.bic
+        );
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<12}{:<50}{:>10}{:>12}{:>10}", "Tests", "", "statistic", "df", "p");
+    for t in &r.tests {
+        let df = match t.df_denominator {
+            Some(d) => format!("{}, {:.1}", t.df, d),
+            None => format!("{}", t.df),
+        };
+        let _ = writeln!(s, "  {:<58}{:>10.3}{:>12}{:>10.4}", t.name, t.statistic, df, t.p);
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<14}{:>7}{:>10}{:>8}{:>20}{:>20}{:>9}{:>8}",
+        "Shared ages", "age", "b − a", "SE", "95% pointwise", "95% simultaneous", "p Holm", "within"
+    );
+    let mut pair = String::new();
+    for d in &r.shared_ages {
+        let this = format!("{} – {}", d.cohort_a, d.cohort_b);
+        let label = if this == pair { String::new() } else { this.clone() };
+        pair = this;
+        let _ = writeln!(
+            s,
+            "  {:<12}{:>7.2}{:>10.3}{:>8.3}{:>20}{:>20}{:>9.4}{:>8}",
+            label,
+            d.age,
+            d.difference,
+            d.se,
+            format!("{:.2} to {:.2}", d.lower, d.upper),
+            format!("{:.2} to {:.2}", d.lower_simultaneous, d.upper_simultaneous),
+            d.p_holm,
+            if d.equivalent { "yes" } else { "no" }
+        );
+    }
+    let _ = writeln!(
+        s,
+        "{:<11}\"within\": the difference lies inside ±{:.3} by two one-sided tests at the 5% level",
+        "", r.margin
+    );
+    if let Some(b) = &r.between_within {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "{:<11}between persons {:.3} (SE {:.3}) · within persons {:.3} (SE {:.3}) · difference {:.3}, p = {:.4}",
+            "Age slopes", b.between, b.between_se, b.within, b.within_se, b.difference, b.p
+        );
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<11}{}", "Verdict", wrap(&r.verdict, 75, 11));
+    for (i, a) in r.assumptions.iter().enumerate() {
+        let _ = writeln!(s, "{:<11}{}", if i == 0 { "Assumes" } else { "" }, wrap(a, 75, 11));
+    }
+    for (i, n) in r.notes.iter().enumerate() {
+        let _ = writeln!(s, "{:<11}{}", if i == 0 { "Notes" } else { "" }, wrap(n, 75, 11));
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<11}{}", "Caution", super::CAUTIONS[2]);
+    s
+}
