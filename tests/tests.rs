@@ -12,6 +12,8 @@ mod design; // the design report against the truth of seeded simulations
 mod fuzz; // seeded random CSV files and study files never make braid panic
 #[path = "suite/invariance.rs"]
 mod invariance; // row order, id recoding, shifting and scaling age
+#[path = "suite/linkage.rs"]
+mod linkage; // convergence tests: reference likelihood ratios, size and power
 #[path = "suite/recovery.rs"]
 mod recovery; // seeded simulations recover the known truth
 #[path = "suite/reference.rs"]

@@ -408,3 +408,58 @@ fn a_wide_file_and_its_long_twin_give_identical_fits() {
         .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
 }
+
+#[test]
+fn converge_writes_tests_shared_ages_verdict_and_figure() {
+    let dir = temp_dir("converge");
+    let out = Command::new(braid_bin())
+        .args(["converge", data_dir().join("sim_plain.csv").to_str().unwrap()])
+        .args(BASE)
+        .args(["--cohort", "cohort", "--margin", "1.5", "--out"])
+        .arg(&dir)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    for word in ["Models", "Tests", "Shared ages", "Verdict", "Assumes"] {
+        assert!(stdout.contains(word), "converge summary lacks '{word}'");
+    }
+    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(dir.join("converge.json")).unwrap()).unwrap();
+    for key in ["name", "statistic", "df", "p", "method"] {
+        assert!(v["tests"][0].get(key).is_some(), "tests lacks '{key}'");
+    }
+    for key in [
+        "cohort_a",
+        "cohort_b",
+        "age",
+        "difference",
+        "lower",
+        "upper",
+        "equivalent",
+    ] {
+        assert!(v["shared_ages"][0].get(key).is_some(), "shared_ages lacks '{key}'");
+    }
+    assert!(v["verdict"].as_str().unwrap().contains("converge"));
+    assert!(v["assumptions"].as_array().unwrap().len() >= 3);
+    assert_eq!(v["margin"], 1.5);
+    for f in ["shared_ages.png", "shared_ages.svg"] {
+        assert!(
+            dir.join(f).metadata().unwrap().len() > 1000,
+            "converge did not write {f}"
+        );
+    }
+    // One cohort only is refused with a one-line error.
+    let one = Command::new(braid_bin())
+        .args([
+            "converge",
+            data_dir().join("bad").join("good_small.csv").to_str().unwrap(),
+        ])
+        .args(BASE)
+        .args(["--cohort-from", "first-age", "--cohort-width", "100"])
+        .output()
+        .unwrap();
+    assert_eq!(one.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&one.stderr);
+    assert_eq!(err.lines().count(), 1, "{err}");
+    assert!(err.contains("one cohort only"), "{err}");
+}

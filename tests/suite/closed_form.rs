@@ -96,6 +96,17 @@ fn reml_equals_anova_estimators_in_balanced_one_way_design() {
         let df = fe[0].df;
         println!("a = {a}: Satterthwaite df {df:.10} (closed form {})", a - 1);
         assert!(rel(df, (a - 1) as f64, 1.0) < SATTERTHWAITE_REL, "df {df} vs {}", a - 1);
+        // The Wald F of the same single contrast (converge's multi-df test)
+        // has denominator df 2E/(E − 1) with E = ν/(ν − 2), which is ν again:
+        // a − 1 (closed form), and F = t².
+        let f = braid::infer::tests::wald_f(&fit, "mean", &[vec![1.0]]);
+        let den = f.df_denominator.unwrap();
+        assert!(
+            rel(den, (a - 1) as f64, 1.0) < SATTERTHWAITE_REL,
+            "F df {den} vs {}",
+            a - 1
+        );
+        assert!(rel(f.statistic, fe[0].t * fe[0].t, 1e-12) < CLOSED_FORM_REL);
     }
 }
 

@@ -1,0 +1,113 @@
+//! `braid converge`: likelihood ratios against statsmodels MixedLM, the size
+//! of the cohort tests when cohorts converge, and their power when one cohort
+//! is shifted.
+
+use braid::linkage::{ConvergeOptions, converge};
+use braid::simulate::{Design, simulate};
+use braid::spec::ModelSpec;
+
+use crate::common::{load, roles};
+use crate::tolerance::LOGLIK_ABS;
+
+// Source: statsmodels MixedLM (ML), version in tests/reference/converge.json,
+// made by tests/reference/converge_reference.py on tests/data/sim_plain.csv.
+#[test]
+fn likelihood_ratios_are_twice_the_reference_loglik_differences() {
+    let text =
+        std::fs::read_to_string(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/converge.json"))
+            .unwrap();
+    let reference: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let ll = |m: &str| reference["models"][m]["loglik"].as_f64().unwrap();
+    let mut r = roles("pupil", "age", "score");
+    r.cohort = Some("cohort".into());
+    let panel = load("sim_plain.csv", &r);
+    let report = converge(&panel, &ModelSpec::default(), &ConvergeOptions::default()).unwrap();
+    for (k, m) in ["M0", "M1", "M2"].iter().enumerate() {
+        let braid = report.models[k].loglik;
+        assert_eq!(report.models[k].method, "ML");
+        assert!(
+            (braid - ll(m)).abs() < LOGLIK_ABS,
+            "{m}: braid {braid} vs reference {}",
+            ll(m)
+        );
+    }
+    let lrt = [(0, "M0", "M1", 4.0), (1, "M1", "M2", 8.0)];
+    for (i, small, large, df) in lrt {
+        let t = &report.tests[i];
+        let want = 2.0 * (ll(large) - ll(small));
+        assert!(
+            (t.statistic - want).abs() < 4.0 * LOGLIK_ABS,
+            "{}: {} vs {want}",
+            t.name,
+            t.statistic
+        );
+        assert_eq!(t.df, df);
+    }
+    assert_eq!(report.cohorts, ["10", "12", "14", "16", "18"]);
+    assert_eq!(report.shared_ages.len(), 4 * 5);
+}
+
+/// The demo design without schools, with `per_cohort` pupils per cohort and
+/// the middle cohort shifted by `shift_sd` outcome SDs.
+fn design(seed: u64, shift_sd: f64, per_cohort: usize) -> Design {
+    let mut d = Design::demo();
+    d.seed = seed;
+    d.per_cohort = per_cohort;
+    d.schools = 1;
+    d.truth.sd_school = 0.0;
+    // 0.3 SD of the outcome at the centre age: √(5² + 3²) for the intercept
+    // and residual SDs of the demo truth.
+    let sd = (d.truth.sd_intercept.powi(2) + d.truth.sd_residual.powi(2)).sqrt();
+    d.truth.cohort_shift = vec![0.0, 0.0, shift_sd * sd, 0.0, 0.0];
+    d
+}
+
+/// Share of replicates in which the M1-vs-M0 and the M2-vs-M1 tests reject at 5%.
+pub fn rejection_rates(reps: usize, first_seed: u64, shift_sd: f64, per_cohort: usize) -> (f64, f64) {
+    let (mut level, mut trend) = (0usize, 0usize);
+    for i in 0..reps {
+        let sim = simulate(&design(first_seed + i as u64, shift_sd, per_cohort));
+        let panel = sim.panel(false);
+        let report = converge(&panel, &ModelSpec::default(), &ConvergeOptions::default()).unwrap();
+        level += usize::from(report.tests[0].p < 0.05);
+        trend += usize::from(report.tests[1].p < 0.05);
+    }
+    (level as f64 / reps as f64, trend as f64 / reps as f64)
+}
+
+fn reps() -> usize {
+    std::env::var("BRAID_CALIBRATION_REPS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(100)
+}
+
+// Size: cohorts that converge. The issue asks for 3.5%–6.5% over 1,000
+// replicates (run with BRAID_CALIBRATION_REPS=1000; the result is recorded in
+// notes/benchmarks.md). With fewer replicates the band widens to the
+// binomial 99.9% range around 5% (normal approximation, closed form).
+#[test]
+fn cohort_tests_hold_their_level_when_cohorts_converge() {
+    let n = reps();
+    let (level, trend) = rejection_rates(n, 70_000, 0.0, 100);
+    let (lo, hi) = if n >= 1000 {
+        (0.035, 0.065)
+    } else {
+        let half = 3.29 * (0.05 * 0.95 / n as f64).sqrt();
+        ((0.05 - half).max(0.0), 0.05 + half)
+    };
+    println!("{n} convergent replicates: M1 vs M0 rejects {level:.3}, M2 vs M1 rejects {trend:.3}");
+    assert!((lo..=hi).contains(&level), "M1 vs M0 size {level} outside {lo}..{hi}");
+    assert!((lo..=hi).contains(&trend), "M2 vs M1 size {trend} outside {lo}..{hi}");
+}
+
+// Power: the demo's 240 pupils per cohort (no schools), the middle cohort
+// (entering at 16) shifted by 0.3 SD; the level test must reject in at least
+// 80% of replicates.
+#[test]
+fn a_shifted_cohort_is_found() {
+    let n = reps().min(200);
+    let (level, _) = rejection_rates(n, 90_000, 0.3, 240);
+    println!("{n} replicates with a 0.3 SD shift: M1 vs M0 rejects {level:.3}");
+    assert!(level >= 0.8, "power {level}");
+}
