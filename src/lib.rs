@@ -34,6 +34,7 @@
 //! assert!((slope.lower..slope.upper).contains(&1.6) || (slope.estimate - 1.6).abs() < 4.0 * slope.se);
 //! ```
 
+pub mod apc;
 pub mod cli;
 pub mod data;
 pub mod design;

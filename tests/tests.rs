@@ -1,5 +1,7 @@
 //! braid's integration tests: one binary, one module per concern.
 
+#[path = "suite/apc.rs"]
+mod apc; // age–period–cohort: Holford's table, Kupper's null vector, bounds
 #[path = "suite/cli.rs"]
 mod cli; // what a user sees: the demo, fit outputs, and one-line errors on bad input
 #[path = "suite/closed_form.rs"]

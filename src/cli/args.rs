@@ -25,6 +25,8 @@ pub enum Command {
     Inspect(Box<InspectArgs>),
     /// Test whether cohorts agree where their ages overlap, before pooling them into one curve.
     Converge(Box<ConvergeArgs>),
+    /// Say what the data identify about age, period and cohort effects, and what each constraint adds.
+    Apc(Box<ApcArgs>),
 }
 
 /// Estimation criterion on the command line.
@@ -231,6 +233,51 @@ pub struct ConvergeArgs {
     #[arg(long)]
     pub quiet: bool,
     /// Overwrite existing outputs.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// Flags of `braid apc`.
+#[derive(Debug, Clone, Default, Args)]
+pub struct ApcArgs {
+    /// The data file (CSV, or Parquet by its .parquet extension).
+    #[arg(value_name = "DATA")]
+    pub data: PathBuf,
+    /// Column holding age (exact years for records; the group's first year for a table).
+    #[arg(long, value_name = "COLUMN")]
+    pub age: String,
+    /// Column holding the period (calendar year of assessment, or the group's first year).
+    #[arg(long, value_name = "COLUMN")]
+    pub period: String,
+    /// Records: column holding a continuous outcome.
+    #[arg(long, value_name = "COLUMN", required_unless_present = "events", conflicts_with_all = ["events", "exposure"])]
+    pub outcome: Option<String>,
+    /// A table of counts: column holding the number of events.
+    #[arg(long, value_name = "COLUMN", requires = "exposure")]
+    pub events: Option<String>,
+    /// A table of counts: column holding the exposure (person-years).
+    #[arg(long, value_name = "COLUMN", requires = "events")]
+    pub exposure: Option<String>,
+    /// Records: width of the age and period groups in years [default: about eight age groups].
+    #[arg(long, value_name = "YEARS")]
+    pub width: Option<f64>,
+    /// A just-identifying constraint (repeatable): equal:DIM:L1,L2, zero-slope:DIM or min-norm
+    /// [default: equal:age:1,2, equal:cohort:1,2, zero-slope:period and min-norm].
+    #[arg(long = "constraint", value_name = "RULE")]
+    pub constraints: Vec<String>,
+    /// An assumption for the bounds (repeatable): DIM-slope>=V, DIM-slope<=V, DIM-slope=V, DIM:nondecreasing or DIM:nonincreasing.
+    #[arg(long = "assume", value_name = "RULE")]
+    pub assumptions: Vec<String>,
+    /// Field delimiter of a CSV file [default: ,].
+    #[arg(long, value_name = "CHAR")]
+    pub delimiter: Option<String>,
+    /// Write the report as JSON to this file.
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
+    /// Print nothing but errors.
+    #[arg(long)]
+    pub quiet: bool,
+    /// Overwrite an existing --json file.
     #[arg(long)]
     pub force: bool,
 }

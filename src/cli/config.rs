@@ -85,7 +85,7 @@ pub struct FitConfig {
     pub force: bool,
 }
 
-fn parse_delimiter(s: &str) -> Result<u8> {
+pub(crate) fn parse_delimiter(s: &str) -> Result<u8> {
     match s {
         "\\t" | "tab" | "\t" => Ok(b'\t'),
         _ if s.len() == 1 && s.is_ascii() => Ok(s.as_bytes()[0]),

@@ -59,6 +59,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Demo(a) => demo_command(&a),
         Command::Inspect(a) => inspect_command(&a),
         Command::Converge(a) => converge_command(&a),
+        Command::Apc(a) => apc_command(&a),
     }
 }
 
@@ -237,6 +238,72 @@ fn converge_command(a: &args::ConvergeArgs) -> Result<()> {
                 dir.display()
             );
         }
+    }
+    Ok(())
+}
+
+/// `braid apc`: read a table of counts or records, fit, and report what is identified.
+fn apc_command(a: &args::ApcArgs) -> Result<()> {
+    use crate::apc::analysis::{Assumption, Constraint};
+    let constraints: Vec<Constraint> = a
+        .constraints
+        .iter()
+        .map(|c| Constraint::parse(c))
+        .collect::<Result<_>>()?;
+    let assumptions: Vec<Assumption> = a
+        .assumptions
+        .iter()
+        .map(|c| Assumption::parse(c))
+        .collect::<Result<_>>()?;
+    if let Some(file) = &a.json {
+        report::check_output(file, false, a.force, "--json")?;
+    }
+    let read = data::ReadOptions {
+        delimiter: match &a.delimiter {
+            Some(d) => config::parse_delimiter(d)?,
+            None => b',',
+        },
+    };
+    let data = match (&a.outcome, &a.events, &a.exposure) {
+        (Some(y), _, _) => {
+            let t = data::numeric_table(
+                &a.data,
+                &[("--age", &a.age), ("--period", &a.period), ("--outcome", y)],
+                read,
+            )?;
+            crate::apc::intake::from_records(&t, a.width)?
+        }
+        (None, Some(ev), Some(ex)) => {
+            let t = data::numeric_table(
+                &a.data,
+                &[
+                    ("--age", &a.age),
+                    ("--period", &a.period),
+                    ("--events", ev),
+                    ("--exposure", ex),
+                ],
+                read,
+            )?;
+            crate::apc::intake::from_table(&t, [&a.age, &a.period, ev, ex])?
+        }
+        _ => {
+            return Err(Error::Spec {
+                parameter: "--outcome".into(),
+                message:
+                    "give --outcome COLUMN (records) or --events COLUMN with --exposure COLUMN (a table of counts)"
+                        .into(),
+            });
+        }
+    };
+    let result = crate::apc::analysis::analyse(&data, &constraints, &assumptions)?;
+    if !a.quiet {
+        print!("{}", text::apc_summary(&a.data, &result));
+    }
+    if let Some(path) = &a.json {
+        if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+            report::ensure_dir(parent)?;
+        }
+        report::write_json(path, &result)?;
     }
     Ok(())
 }

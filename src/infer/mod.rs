@@ -81,6 +81,13 @@ pub fn t_quantile(prob: f64, df: f64) -> f64 {
 
 /// Distribution function of t(df) (normal for very large or undefined df).
 pub fn t_cdf(x: f64, df: f64) -> f64 {
+    // statrs panics outside the support; a zero SE gives ±∞ or NaN here.
+    if x.is_nan() {
+        return f64::NAN;
+    }
+    if x.is_infinite() {
+        return if x > 0.0 { 1.0 } else { 0.0 };
+    }
     if df.is_finite() && df > 0.0 && df < NORMAL_DF {
         StudentsT::new(0.0, 1.0, df).map(|t| t.cdf(x)).unwrap_or(f64::NAN)
     } else {

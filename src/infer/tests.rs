@@ -32,8 +32,14 @@ pub fn chi2_sf(x: f64, df: f64) -> f64 {
     if df <= 0.0 {
         return if x > 0.0 { 0.0 } else { 1.0 };
     }
+    if x.is_nan() {
+        return f64::NAN;
+    }
     if x <= 0.0 {
         return 1.0;
+    }
+    if x == f64::INFINITY {
+        return 0.0;
     }
     ChiSquared::new(df).map_or(f64::NAN, |c| 1.0 - c.cdf(x))
 }
@@ -131,7 +137,11 @@ pub fn wald_f(fit: &Fit, name: &str, l: &[Vec<f64>]) -> TestResult {
     } else {
         (fit.n_obs - p) as f64
     };
-    let p_value = FisherSnedecor::new(qf, den).map_or(f64::NAN, |d| 1.0 - d.cdf(f));
+    let p_value = if !f.is_finite() {
+        if f == f64::INFINITY { 0.0 } else { f64::NAN }
+    } else {
+        FisherSnedecor::new(qf, den).map_or(f64::NAN, |d| 1.0 - d.cdf(f.max(0.0)))
+    };
     TestResult {
         name: name.to_string(),
         statistic: f,

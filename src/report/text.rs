@@ -478,3 +478,126 @@ pub fn converge_summary(panel: &crate::data::Panel, r: &crate::linkage::Converge
     let _ = writeln!(s, "{:<11}{}", "Caution", super::CAUTIONS[2]);
     s
 }
+
+/// The `braid apc` summary.
+pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport) -> String {
+    let mut s = String::new();
+    let rule = "─".repeat(86);
+    let _ = writeln!(s, "braid apc · {}", source.display());
+    let _ = writeln!(s, "{rule}");
+    let _ = writeln!(
+        s,
+        "{:<11}{} ({} observations) · {} age groups × {} periods → {} cohorts",
+        "Data",
+        if r.outcome == "counts" {
+            "a table of counts with exposure, Poisson log-linear"
+        } else {
+            "records with a continuous outcome, least squares"
+        },
+        thousands(r.n_obs),
+        r.shape.a,
+        r.shape.p,
+        r.shape.a + r.shape.p - 1
+    );
+    let _ = writeln!(
+        s,
+        "{:<11}rank deficiency {} (max |X·v| = {:.1e}); null vector in sum-to-zero coding (Kupper et al. 1985):",
+        "Design", r.rank_deficiency, r.null_vector_residual
+    );
+    let line: Vec<String> = r
+        .null_vector
+        .iter()
+        .skip(1)
+        .map(|t| format!("{:+.1}", t.value))
+        .collect();
+    let _ = writeln!(s, "{:<11}{}", "", wrap(&line.join(" "), 75, 11));
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<16}{:>14}{:>8}", "Deviance", "", "df");
+    for d in &r.deviance_table {
+        let _ = writeln!(s, "  {:<14}{:>14.4}{:>8}", d.model, d.deviance, d.df);
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<60}{:>12}{:>10}",
+        "Identified (no constraint needed)", "estimate", "SE"
+    );
+    for q in r.identified.iter().filter(|q| !q.quantity.contains("deviation")) {
+        let _ = writeln!(s, "  {:<58}{:>12.4}{:>10.4}", q.quantity, q.estimate, q.se);
+    }
+    let _ = writeln!(
+        s,
+        "{:<11}(deviations from linearity of every level are in the JSON)",
+        ""
+    );
+    for t in &r.curvature_tests {
+        let _ = writeln!(
+            s,
+            "{:<11}no curvature in {}: statistic {:.3} on {} df, p = {:.4}",
+            "Curvature",
+            t.dimension.name(),
+            t.statistic,
+            t.df,
+            t.p
+        );
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<11}every solution is b₀ + t·v; b₀ is the minimum-norm solution",
+        "Solutions"
+    );
+    let _ = writeln!(
+        s,
+        "  {:<58}{:>9}{:>9}{:>9}{:>9}",
+        "constraint", "t", "age", "period", "cohort"
+    );
+    for sol in &r.solutions {
+        let slope = |d: &str| sol.slopes.iter().find(|x| x.term == d).map_or(f64::NAN, |x| x.value);
+        let _ = writeln!(
+            s,
+            "  {:<58}{:>9.4}{:>9.4}{:>9.4}{:>9.4}",
+            sol.constraint,
+            sol.t,
+            slope("age"),
+            slope("period"),
+            slope("cohort")
+        );
+    }
+    let _ = writeln!(
+        s,
+        "{:<11}(slopes per group step; the level effects of each solution are in the JSON; fitted values agree to {:.1e})",
+        "", r.fitted_max_difference
+    );
+    if let Some(b) = &r.bounds {
+        let _ = writeln!(s);
+        let _ = writeln!(s, "{:<11}assuming {}", "Bounds", b.assumptions.join("; "));
+        if b.contradiction {
+            let _ = writeln!(
+                s,
+                "{:<11}these assumptions contradict the data: no solution satisfies them all",
+                ""
+            );
+        } else {
+            let end = |x: Option<f64>, inf: &str| x.map_or(inf.to_string(), |v| format!("{v:.4}"));
+            let _ = writeln!(s, "{:<11}t from {} to {}", "", end(b.t_from, "−∞"), end(b.t_to, "+∞"));
+            for sb in &b.slopes {
+                let _ = writeln!(
+                    s,
+                    "{:<11}{} slope from {} to {}",
+                    "",
+                    sb.dimension.name(),
+                    end(sb.from, "−∞"),
+                    end(sb.to, "+∞")
+                );
+            }
+        }
+    }
+    let _ = writeln!(s);
+    for (i, a) in r.assumptions.iter().enumerate() {
+        let _ = writeln!(s, "{:<11}{}", if i == 0 { "Assumes" } else { "" }, wrap(a, 75, 11));
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<11}{}", "Caution", super::CAUTIONS[2]);
+    s
+}

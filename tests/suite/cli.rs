@@ -463,3 +463,74 @@ fn converge_writes_tests_shared_ages_verdict_and_figure() {
     assert_eq!(err.lines().count(), 1, "{err}");
     assert!(err.contains("one cohort only"), "{err}");
 }
+
+#[test]
+fn apc_writes_the_identification_report_with_stable_keys() {
+    let dir = temp_dir("apc");
+    let json = dir.join("apc.json");
+    let out = Command::new(braid_bin())
+        .args(["apc", data_dir().join("holford_prostate.csv").to_str().unwrap()])
+        .args([
+            "--age",
+            "age",
+            "--period",
+            "period",
+            "--events",
+            "deaths",
+            "--exposure",
+            "population",
+        ])
+        .args(["--assume", "period-slope>=0", "--json"])
+        .arg(&json)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    for word in ["Deviance", "Identified", "Solutions", "Bounds", "Assumes"] {
+        assert!(stdout.contains(word), "apc summary lacks '{word}'");
+    }
+    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    assert_eq!(v["rank_deficiency"], 1);
+    for key in [
+        "null_vector",
+        "deviance_table",
+        "identified",
+        "solutions",
+        "bounds",
+        "assumptions",
+    ] {
+        assert!(v.get(key).is_some(), "apc JSON lacks '{key}'");
+    }
+    for key in ["term", "value"] {
+        assert!(v["null_vector"][0].get(key).is_some());
+    }
+    for key in ["model", "deviance", "df"] {
+        assert!(v["deviance_table"][0].get(key).is_some());
+    }
+    for key in ["quantity", "estimate", "se"] {
+        assert!(v["identified"][0].get(key).is_some());
+    }
+    for key in ["constraint", "t", "effects"] {
+        assert!(v["solutions"][0].get(key).is_some());
+    }
+    // A constraint that is not one is a one-line error with exit code 2.
+    let bad = Command::new(braid_bin())
+        .args(["apc", data_dir().join("holford_prostate.csv").to_str().unwrap()])
+        .args([
+            "--age",
+            "age",
+            "--period",
+            "period",
+            "--events",
+            "deaths",
+            "--exposure",
+            "population",
+        ])
+        .args(["--constraint", "equal:age:1"])
+        .output()
+        .unwrap();
+    assert_eq!(bad.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&bad.stderr);
+    assert_eq!(err.lines().count(), 1, "{err}");
+    assert!(err.contains("--constraint"), "{err}");
+}

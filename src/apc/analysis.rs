@@ -1,0 +1,882 @@
+//! The identification report: the fits, the line of solutions, what is
+//! identified, the constrained solutions and the bounds.
+
+use faer::linalg::solvers::Solve;
+use serde::Serialize;
+use statrs::distribution::{ChiSquared, ContinuousCDF, FisherSnedecor};
+
+use super::glm::{self, Cell, Family, GlmFit};
+use super::{Dimension, Shape, complement_basis, null_vector};
+use crate::error::{Error, Result};
+
+const DIMENSIONS: [Dimension; 3] = [Dimension::Age, Dimension::Period, Dimension::Cohort];
+
+/// A just-identifying constraint.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Constraint {
+    /// Two levels of one dimension have equal effects (1-based levels).
+    Equal {
+        /// Dimension.
+        dimension: Dimension,
+        /// First level.
+        first: usize,
+        /// Second level.
+        second: usize,
+    },
+    /// The linear trend of one dimension is zero.
+    ZeroSlope {
+        /// Dimension.
+        dimension: Dimension,
+    },
+    /// The minimum-norm solution in this coding.
+    MinNorm,
+}
+
+impl Constraint {
+    /// Parse `equal:DIM:L1,L2`, `zero-slope:DIM` or `min-norm`.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] naming `--constraint` for anything else.
+    pub fn parse(s: &str) -> Result<Constraint> {
+        let bad = |m: &str| Error::Spec {
+            parameter: "--constraint".into(),
+            message: format!("'{s}': {m}; use equal:age:1,2, zero-slope:period or min-norm"),
+        };
+        let parts: Vec<&str> = s.trim().split(':').collect();
+        match parts.as_slice() {
+            ["min-norm"] => Ok(Constraint::MinNorm),
+            ["zero-slope", d] => Ok(Constraint::ZeroSlope {
+                dimension: Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?,
+            }),
+            ["equal", d, levels] => {
+                let l: Vec<usize> = levels
+                    .split(',')
+                    .map(|x| x.trim().parse().map_err(|_| bad("levels must be whole numbers")))
+                    .collect::<Result<_>>()?;
+                if l.len() != 2 || l[0] == l[1] || l[0] == 0 || l[1] == 0 {
+                    return Err(bad("give two different levels, counted from 1"));
+                }
+                Ok(Constraint::Equal {
+                    dimension: Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?,
+                    first: l[0],
+                    second: l[1],
+                })
+            }
+            _ => Err(bad("not a constraint")),
+        }
+    }
+
+    /// In words.
+    pub fn describe(&self, labels: &Labels) -> String {
+        match self {
+            Constraint::Equal {
+                dimension,
+                first,
+                second,
+            } => {
+                let l = labels.of(*dimension);
+                format!(
+                    "{} effects of {} and {} are equal",
+                    dimension.name(),
+                    l.get(first - 1).cloned().unwrap_or_default(),
+                    l.get(second - 1).cloned().unwrap_or_default()
+                )
+            }
+            Constraint::ZeroSlope { dimension } => format!("the {} effects have no linear trend", dimension.name()),
+            Constraint::MinNorm => "minimum norm, the intrinsic estimator (critique: Luo 2013)".into(),
+        }
+    }
+}
+
+/// An assumption for the bounds.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Assumption {
+    /// A dimension's linear slope compared with a value: sense is ">=", "<=" or "=".
+    Slope {
+        /// Dimension.
+        dimension: Dimension,
+        /// ">=", "<=" or "=".
+        sense: String,
+        /// The value.
+        value: f64,
+    },
+    /// A dimension's effects never decrease (or never increase).
+    Monotone {
+        /// Dimension.
+        dimension: Dimension,
+        /// True: never decrease.
+        increasing: bool,
+    },
+}
+
+impl Assumption {
+    /// Parse `DIM-slope>=V`, `DIM-slope<=V`, `DIM-slope=V`, `DIM:nondecreasing`
+    /// or `DIM:nonincreasing`.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] naming `--assume`.
+    pub fn parse(s: &str) -> Result<Assumption> {
+        let bad = |m: &str| Error::Spec {
+            parameter: "--assume".into(),
+            message: format!("'{s}': {m}; use for example period-slope>=0 or cohort:nondecreasing"),
+        };
+        let t = s.trim();
+        if let Some((d, m)) = t.split_once(':') {
+            let dimension = Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?;
+            return match m {
+                "nondecreasing" => Ok(Assumption::Monotone {
+                    dimension,
+                    increasing: true,
+                }),
+                "nonincreasing" => Ok(Assumption::Monotone {
+                    dimension,
+                    increasing: false,
+                }),
+                _ => Err(bad("unknown shape")),
+            };
+        }
+        for sense in [">=", "<=", "="] {
+            if let Some((lhs, rhs)) = t.split_once(sense) {
+                let d = lhs
+                    .strip_suffix("-slope")
+                    .ok_or_else(|| bad("the left side must be DIM-slope"))?;
+                let dimension = Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?;
+                let value: f64 = rhs.trim().parse().map_err(|_| bad("the right side must be a number"))?;
+                if !value.is_finite() {
+                    return Err(bad("the right side must be finite"));
+                }
+                return Ok(Assumption::Slope {
+                    dimension,
+                    sense: sense.to_string(),
+                    value,
+                });
+            }
+        }
+        Err(bad("not an assumption"))
+    }
+
+    /// In words.
+    pub fn describe(&self) -> String {
+        match self {
+            Assumption::Slope {
+                dimension,
+                sense,
+                value,
+            } => {
+                let s = match sense.as_str() {
+                    ">=" => "at least",
+                    "<=" => "at most",
+                    _ => "exactly",
+                };
+                format!("the {} slope is {s} {value}", dimension.name())
+            }
+            Assumption::Monotone { dimension, increasing } => format!(
+                "the {} effects never {}",
+                dimension.name(),
+                if *increasing { "decrease" } else { "increase" }
+            ),
+        }
+    }
+}
+
+/// Group labels of each dimension.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Labels {
+    /// Age groups.
+    pub age: Vec<String>,
+    /// Periods.
+    pub period: Vec<String>,
+    /// Cohorts (birth years: period − age).
+    pub cohort: Vec<String>,
+}
+
+impl Labels {
+    /// The labels of a dimension.
+    pub fn of(&self, d: Dimension) -> &Vec<String> {
+        match d {
+            Dimension::Age => &self.age,
+            Dimension::Period => &self.period,
+            Dimension::Cohort => &self.cohort,
+        }
+    }
+}
+
+/// The data of an APC analysis: cells of an age × period table.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ApcData {
+    /// Table shape.
+    pub shape: Shape,
+    /// Cells with their totals.
+    pub cells: Vec<Cell>,
+    /// Counts (Poisson) or a continuous outcome (Gaussian).
+    pub family: Family,
+    /// Labels.
+    pub labels: Labels,
+    /// Observations: records, or cells of a table.
+    pub n_obs: usize,
+}
+
+/// A named value.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Term {
+    /// Name.
+    pub term: String,
+    /// Value.
+    pub value: f64,
+}
+
+/// One row of the deviance table.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct DevianceRow {
+    /// A, A+P, A+C, P+C, A+drift or APC.
+    pub model: String,
+    /// Poisson deviance, or the residual sum of squares.
+    pub deviance: f64,
+    /// Residual df.
+    pub df: usize,
+}
+
+/// An identified quantity.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Identified {
+    /// What it is.
+    pub quantity: String,
+    /// Estimate.
+    pub estimate: f64,
+    /// Standard error.
+    pub se: f64,
+}
+
+/// A Wald test of no curvature in one dimension.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct CurvatureTest {
+    /// Dimension.
+    pub dimension: Dimension,
+    /// χ² (counts) or F (continuous).
+    pub statistic: f64,
+    /// Numerator df: levels − 2.
+    pub df: usize,
+    /// p-value.
+    pub p: f64,
+}
+
+/// Level effects of each dimension (sum to zero within a dimension).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Effects {
+    /// Age effects.
+    pub age: Vec<f64>,
+    /// Period effects.
+    pub period: Vec<f64>,
+    /// Cohort effects.
+    pub cohort: Vec<f64>,
+}
+
+/// One constrained solution: b₀ + t·v.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Solution {
+    /// The constraint in words.
+    pub constraint: String,
+    /// The constraint as given.
+    pub rule: Constraint,
+    /// Its position on the line of solutions.
+    pub t: f64,
+    /// Level effects.
+    pub effects: Effects,
+    /// Linear slopes of the age, period and cohort effects (per group step).
+    pub slopes: Vec<Term>,
+}
+
+/// The bounds that sign or shape assumptions allow.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Bounds {
+    /// The assumptions in words.
+    pub assumptions: Vec<String>,
+    /// Whether they contradict the data (no t satisfies them all).
+    pub contradiction: bool,
+    /// The interval of t they allow (infinite ends are null).
+    pub t_from: Option<f64>,
+    /// Upper end.
+    pub t_to: Option<f64>,
+    /// Bounds on each linear slope (null ends are unbounded).
+    pub slopes: Vec<SlopeBound>,
+}
+
+/// Bounds on one slope.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct SlopeBound {
+    /// Dimension.
+    pub dimension: Dimension,
+    /// Lowest allowed value.
+    pub from: Option<f64>,
+    /// Highest allowed value.
+    pub to: Option<f64>,
+}
+
+/// The report, with stable JSON keys.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ApcReport {
+    /// "counts" or "continuous".
+    pub outcome: String,
+    /// Age groups, periods and cohorts.
+    pub shape: Shape,
+    /// Group labels.
+    pub labels: Labels,
+    /// Observations used.
+    pub n_obs: usize,
+    /// Rank deficiency of the APC design, found numerically.
+    pub rank_deficiency: usize,
+    /// Kupper's closed-form null vector in this coding.
+    pub null_vector: Vec<Term>,
+    /// max |X v| over cells: the numerical check of the null vector.
+    pub null_vector_residual: f64,
+    /// The deviance table.
+    pub deviance_table: Vec<DevianceRow>,
+    /// What is identified, with SEs.
+    pub identified: Vec<Identified>,
+    /// Wald tests of no curvature.
+    pub curvature_tests: Vec<CurvatureTest>,
+    /// The minimum-norm solution b₀ (the line's origin).
+    pub line_origin: Vec<Term>,
+    /// The constrained solutions.
+    pub solutions: Vec<Solution>,
+    /// Largest difference between the fitted values of any two solutions.
+    pub fitted_max_difference: f64,
+    /// Bounds, when assumptions were given.
+    pub bounds: Option<Bounds>,
+    /// What every number rests on.
+    pub assumptions: Vec<String>,
+}
+
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    a.iter().zip(b).map(|(x, y)| x * y).sum()
+}
+
+fn quad(c: &[f64], cov: &[f64]) -> f64 {
+    let q = c.len();
+    let mut acc = 0.0;
+    for i in 0..q {
+        if c[i] == 0.0 {
+            continue;
+        }
+        acc += c[i] * dot(&cov[i * q..(i + 1) * q], c);
+    }
+    acc
+}
+
+/// Coefficients of the least-squares slope of a dimension's level effects on
+/// the level index, as a functional of the coded parameters.
+fn slope_functional(shape: Shape, d: Dimension) -> Vec<f64> {
+    let rows = shape.effect_rows(d);
+    let l = rows.len() as f64;
+    let mean = (l + 1.0) / 2.0;
+    let sxx: f64 = (1..=rows.len()).map(|i| (i as f64 - mean).powi(2)).sum();
+    let mut c = vec![0.0; shape.n_params()];
+    for (i, r) in rows.iter().enumerate() {
+        let w = (i as f64 + 1.0 - mean) / sxx;
+        for (ck, rk) in c.iter_mut().zip(r) {
+            *ck += w * rk;
+        }
+    }
+    c
+}
+
+fn effects(shape: Shape, b: &[f64]) -> Effects {
+    let of = |d| shape.effect_rows(d).iter().map(|r| dot(r, b)).collect();
+    Effects {
+        age: of(Dimension::Age),
+        period: of(Dimension::Period),
+        cohort: of(Dimension::Cohort),
+    }
+}
+
+/// Full coded rows of every cell, and the rows of the submodels.
+fn submodel_rows(data: &ApcData, cols: &[usize], drift: bool) -> Vec<Vec<f64>> {
+    let s = data.shape;
+    data.cells
+        .iter()
+        .map(|c| {
+            let full = s.row(c.i, c.j);
+            let mut r: Vec<f64> = cols.iter().map(|&k| full[k]).collect();
+            if drift {
+                r.push(c.j as f64 - (s.p as f64 + 1.0) / 2.0);
+            }
+            r
+        })
+        .collect()
+}
+
+/// Run the analysis.
+///
+/// # Errors
+/// [`Error::Spec`] for a constraint that does not identify the model or a
+/// level out of range; errors of the fits.
+pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assumption]) -> Result<ApcReport> {
+    let s = data.shape;
+    super::check_shape(s)?;
+    let q = s.n_params();
+    let v = null_vector(s);
+    let basis = complement_basis(&v);
+    let full: Vec<Vec<f64>> = data.cells.iter().map(|c| s.row(c.i, c.j)).collect();
+    let null_vector_residual = full.iter().map(|r| dot(r, &v).abs()).fold(0.0, f64::max);
+    // The APC fit in the coordinates of the complement basis.
+    let reduced: Vec<Vec<f64>> = full
+        .iter()
+        .map(|r| {
+            (0..q - 1)
+                .map(|c| (0..q).map(|k| r[k] * basis[k * (q - 1) + c]).sum())
+                .collect()
+        })
+        .collect();
+    let apc = glm::fit(&data.cells, &reduced, data.family)?;
+    let b0: Vec<f64> = (0..q)
+        .map(|k| (0..q - 1).map(|c| basis[k * (q - 1) + c] * apc.coef[c]).sum())
+        .collect();
+    // cov(b₀) = B cov(γ) Bᵀ.
+    let mut cov = vec![0.0; q * q];
+    for r in 0..q {
+        for c in 0..q {
+            let mut acc = 0.0;
+            for a in 0..q - 1 {
+                let bra = basis[r * (q - 1) + a];
+                if bra == 0.0 {
+                    continue;
+                }
+                for b in 0..q - 1 {
+                    acc += bra * apc.cov[a * (q - 1) + b] * basis[c * (q - 1) + b];
+                }
+            }
+            cov[r * q + c] = acc;
+        }
+    }
+    let rank_deficiency = rank_deficiency(&full, &data.cells, &apc, data.family);
+    // Deviance table.
+    let (age_cols, per_cols, coh_cols): (Vec<usize>, Vec<usize>, Vec<usize>) = (
+        (s.offset(Dimension::Age)..s.offset(Dimension::Age) + s.a - 1).collect(),
+        (s.offset(Dimension::Period)..s.offset(Dimension::Period) + s.p - 1).collect(),
+        (s.offset(Dimension::Cohort)..s.offset(Dimension::Cohort) + s.k() - 1).collect(),
+    );
+    let cat = |parts: &[&Vec<usize>]| -> Vec<usize> {
+        let mut c = vec![0];
+        for p in parts {
+            c.extend(p.iter().copied());
+        }
+        c
+    };
+    let mut deviance_table = Vec::new();
+    let mut drift_fit: Option<GlmFit> = None;
+    for (name, cols, drift) in [
+        ("A", cat(&[&age_cols]), false),
+        ("A+P", cat(&[&age_cols, &per_cols]), false),
+        ("A+C", cat(&[&age_cols, &coh_cols]), false),
+        ("P+C", cat(&[&per_cols, &coh_cols]), false),
+        ("A+drift", cat(&[&age_cols]), true),
+    ] {
+        let f = glm::fit(&data.cells, &submodel_rows(data, &cols, drift), data.family)?;
+        deviance_table.push(DevianceRow {
+            model: name.into(),
+            deviance: f.deviance,
+            df: residual_df(data, f.df, f.coef.len()),
+        });
+        if drift {
+            drift_fit = Some(f);
+        }
+    }
+    deviance_table.push(DevianceRow {
+        model: "APC".into(),
+        deviance: apc.deviance,
+        df: residual_df(data, apc.df, q - 1),
+    });
+    // Identified quantities.
+    let mut identified = Vec::new();
+    let push = |id: &mut Vec<Identified>, name: String, c: &[f64]| {
+        id.push(Identified {
+            quantity: name,
+            estimate: dot(c, &b0),
+            se: quad(c, &cov).max(0.0).sqrt(),
+        });
+    };
+    let sl = |d| slope_functional(s, d);
+    let comb = |a: &[f64], b: &[f64], sign: f64| -> Vec<f64> { a.iter().zip(b).map(|(x, y)| x + sign * y).collect() };
+    let (sa, sp, sc) = (sl(Dimension::Age), sl(Dimension::Period), sl(Dimension::Cohort));
+    push(
+        &mut identified,
+        "age slope + period slope (change within a cohort)".into(),
+        &comb(&sa, &sp, 1.0),
+    );
+    push(
+        &mut identified,
+        "age slope − cohort slope (cross-sectional age gradient)".into(),
+        &comb(&sa, &sc, -1.0),
+    );
+    push(
+        &mut identified,
+        "period slope + cohort slope (the drift)".into(),
+        &comb(&sp, &sc, 1.0),
+    );
+    if let Some(f) = &drift_fit {
+        let k = f.coef.len() - 1;
+        identified.push(Identified {
+            quantity: "drift per period step in the A+drift model".into(),
+            estimate: f.coef[k],
+            se: f.cov[k * (k + 1) + k].max(0.0).sqrt(),
+        });
+    }
+    let mut curvature_tests = Vec::new();
+    for d in DIMENSIONS {
+        let rows = s.effect_rows(d);
+        let labels = data.labels.of(d);
+        let mut second: Vec<Vec<f64>> = Vec::new();
+        for l in 1..rows.len() - 1 {
+            let c: Vec<f64> = (0..q)
+                .map(|k| rows[l - 1][k] - 2.0 * rows[l][k] + rows[l + 1][k])
+                .collect();
+            push(
+                &mut identified,
+                format!("{} second difference at {}", d.name(), labels[l]),
+                &c,
+            );
+            second.push(c);
+        }
+        let slope = sl(d);
+        let mean = (rows.len() as f64 + 1.0) / 2.0;
+        for (l, r) in rows.iter().enumerate() {
+            let c: Vec<f64> = (0..q).map(|k| r[k] - (l as f64 + 1.0 - mean) * slope[k]).collect();
+            push(
+                &mut identified,
+                format!("{} deviation from linearity at {}", d.name(), labels[l]),
+                &c,
+            );
+        }
+        curvature_tests.push(curvature_test(d, &second, &b0, &cov, data.family, apc.df));
+    }
+    // Constrained solutions.
+    let list: Vec<Constraint> = if constraints.is_empty() {
+        vec![
+            Constraint::Equal {
+                dimension: Dimension::Age,
+                first: 1,
+                second: 2,
+            },
+            Constraint::Equal {
+                dimension: Dimension::Cohort,
+                first: 1,
+                second: 2,
+            },
+            Constraint::ZeroSlope {
+                dimension: Dimension::Period,
+            },
+            Constraint::MinNorm,
+        ]
+    } else {
+        constraints.to_vec()
+    };
+    let vv = dot(&v, &v);
+    let mut solutions = Vec::new();
+    for c in &list {
+        let t = match c {
+            Constraint::MinNorm => -dot(&b0, &v) / vv,
+            Constraint::ZeroSlope { dimension } => {
+                let f = sl(*dimension);
+                solve_t(&f, &b0, &v, c, &data.labels)?
+            }
+            Constraint::Equal {
+                dimension,
+                first,
+                second,
+            } => {
+                let rows = s.effect_rows(*dimension);
+                if *first > rows.len() || *second > rows.len() {
+                    return Err(Error::Spec {
+                        parameter: "--constraint".into(),
+                        message: format!(
+                            "{} has {} levels; level {} does not exist",
+                            dimension.name(),
+                            rows.len(),
+                            first.max(second)
+                        ),
+                    });
+                }
+                let f: Vec<f64> = (0..q).map(|k| rows[first - 1][k] - rows[second - 1][k]).collect();
+                solve_t(&f, &b0, &v, c, &data.labels)?
+            }
+        };
+        let b: Vec<f64> = b0.iter().zip(&v).map(|(x, y)| x + t * y).collect();
+        solutions.push(Solution {
+            constraint: c.describe(&data.labels),
+            rule: c.clone(),
+            t,
+            effects: effects(s, &b),
+            slopes: DIMENSIONS
+                .iter()
+                .map(|&d| Term {
+                    term: d.name().into(),
+                    value: dot(&sl(d), &b),
+                })
+                .collect(),
+        });
+    }
+    // Fitted values agree across solutions.
+    let mut fitted_max_difference: f64 = 0.0;
+    let eta = |t: f64| -> Vec<f64> {
+        let b: Vec<f64> = b0.iter().zip(&v).map(|(x, y)| x + t * y).collect();
+        full.iter().map(|r| dot(r, &b)).collect()
+    };
+    let base = eta(0.0);
+    for sol in &solutions {
+        for (x, y) in eta(sol.t).iter().zip(&base) {
+            fitted_max_difference = fitted_max_difference.max((x - y).abs());
+        }
+    }
+    let bounds = if assumptions.is_empty() {
+        None
+    } else {
+        Some(bounds(s, &b0, &v, assumptions))
+    };
+    let mut notes = vec![
+        "Age, period and cohort are exactly collinear (cohort = period − age): the linear trends of the three are not \
+         identified, and each constrained solution rests on its constraint, which the data cannot test (Holford 1983)."
+            .to_string(),
+        "Identified without any constraint: fitted values, second differences, deviations from linearity, the \
+         drift, and the sums age + period, period + cohort and the difference age − cohort of the linear slopes."
+            .to_string(),
+        "The solutions differ only by t·v along one line in parameter space; the report gives each constraint's t."
+            .to_string(),
+        "The minimum-norm solution (the intrinsic estimator) is a constraint like any other: it depends on the coding \
+         and on the numbers of groups, not on the data (Luo 2013, Demography 50)."
+            .to_string(),
+        "Associations are not causes: age, period and cohort effects describe these data, not mechanisms.".into(),
+    ];
+    if data.family == Family::Gaussian {
+        notes.push(
+            "A continuous outcome is fitted by least squares with one residual variance; records are independent."
+                .into(),
+        );
+    }
+    if bounds.is_some() {
+        notes.push("The bounds are on the estimates and take the stated assumptions as true; they carry no sampling uncertainty.".into());
+    }
+    Ok(ApcReport {
+        outcome: match data.family {
+            Family::Poisson => "counts".into(),
+            Family::Gaussian => "continuous".into(),
+        },
+        shape: s,
+        labels: data.labels.clone(),
+        n_obs: data.n_obs,
+        rank_deficiency,
+        null_vector: term_names(s)
+            .into_iter()
+            .zip(&v)
+            .map(|(term, &value)| Term { term, value })
+            .collect(),
+        null_vector_residual,
+        deviance_table,
+        identified,
+        curvature_tests,
+        line_origin: term_names(s)
+            .into_iter()
+            .zip(&b0)
+            .map(|(term, &value)| Term { term, value })
+            .collect(),
+        solutions,
+        fitted_max_difference,
+        bounds,
+        assumptions: notes,
+    })
+}
+
+fn residual_df(data: &ApcData, _glm_df: usize, q: usize) -> usize {
+    match data.family {
+        Family::Poisson => data.cells.len().saturating_sub(q),
+        Family::Gaussian => data.n_obs.saturating_sub(q),
+    }
+}
+
+/// Names of the coded parameters.
+pub fn term_names(s: Shape) -> Vec<String> {
+    let mut v = vec!["intercept".to_string()];
+    for d in DIMENSIONS {
+        for l in 1..s.levels(d) {
+            v.push(format!("{} {l}", d.name()));
+        }
+    }
+    v
+}
+
+fn solve_t(f: &[f64], b0: &[f64], v: &[f64], c: &Constraint, labels: &Labels) -> Result<f64> {
+    let fv = dot(f, v);
+    if fv.abs() < 1e-9 {
+        return Err(Error::Spec {
+            parameter: "--constraint".into(),
+            message: format!(
+                "'{}' does not identify the model: it holds along the whole line of solutions",
+                c.describe(labels)
+            ),
+        });
+    }
+    Ok(-dot(f, b0) / fv)
+}
+
+/// Numerical rank deficiency of the weighted APC design: eigenvalues of XᵀWX
+/// below 1e-10 of the largest.
+fn rank_deficiency(full: &[Vec<f64>], cells: &[Cell], fit: &GlmFit, family: Family) -> usize {
+    let q = full[0].len();
+    let m = faer::Mat::from_fn(q, q, |r, c| {
+        full.iter()
+            .zip(cells.iter().zip(&fit.fitted))
+            .map(|(x, (cell, mu))| {
+                let w = match family {
+                    Family::Poisson => *mu,
+                    Family::Gaussian => cell.e,
+                };
+                w * x[r] * x[c]
+            })
+            .sum::<f64>()
+    });
+    let Ok(values) = m.self_adjoint_eigenvalues(faer::Side::Lower) else {
+        return usize::MAX;
+    };
+    let top = values.iter().cloned().fold(0.0, f64::max);
+    values.iter().filter(|&&e| e < 1e-10 * top).count()
+}
+
+fn curvature_test(
+    d: Dimension,
+    rows: &[Vec<f64>],
+    b: &[f64],
+    cov: &[f64],
+    family: Family,
+    df_resid: usize,
+) -> CurvatureTest {
+    let m = rows.len();
+    let est: Vec<f64> = rows.iter().map(|r| dot(r, b)).collect();
+    let q = b.len();
+    let lcl = faer::Mat::from_fn(m, m, |i, j| {
+        let mut acc = 0.0;
+        for a in 0..q {
+            if rows[i][a] == 0.0 {
+                continue;
+            }
+            acc += rows[i][a] * dot(&cov[a * q..(a + 1) * q], &rows[j]);
+        }
+        acc
+    });
+    let stat = match lcl.llt(faer::Side::Lower) {
+        Ok(llt) => {
+            let rhs = faer::Mat::from_fn(m, 1, |i, _| est[i]);
+            let sol = llt.solve(&rhs);
+            (0..m).map(|i| est[i] * sol[(i, 0)]).sum::<f64>()
+        }
+        Err(_) => f64::NAN,
+    };
+    // statrs panics outside the support, so non-finite statistics (a perfect
+    // fit has no residual variance) are handled here.
+    let tail = |x: f64, cdf: &dyn Fn(f64) -> f64| {
+        if x.is_nan() {
+            f64::NAN
+        } else if x == f64::INFINITY {
+            0.0
+        } else {
+            1.0 - cdf(x.max(0.0))
+        }
+    };
+    let (statistic, p) = match family {
+        Family::Poisson => (
+            stat,
+            ChiSquared::new(m as f64).map_or(f64::NAN, |c| tail(stat, &|x| c.cdf(x))),
+        ),
+        Family::Gaussian => {
+            let f = stat / m as f64;
+            (
+                f,
+                FisherSnedecor::new(m as f64, df_resid.max(1) as f64).map_or(f64::NAN, |c| tail(f, &|x| c.cdf(x))),
+            )
+        }
+    };
+    CurvatureTest {
+        dimension: d,
+        statistic,
+        df: m,
+        p,
+    }
+}
+
+/// The interval of t that the assumptions allow, and the slopes' bounds.
+fn bounds(s: Shape, b0: &[f64], v: &[f64], assumptions: &[Assumption]) -> Bounds {
+    // Each assumption: g(t) = g0 + t·gv compared with a value.
+    let mut lo = f64::NEG_INFINITY;
+    let mut hi = f64::INFINITY;
+    let mut contradiction = false;
+    let mut apply = |g0: f64, gv: f64, sense: &str, value: f64| {
+        let r = value - g0;
+        const FLAT: f64 = 1e-12;
+        if gv.abs() < FLAT {
+            let holds = match sense {
+                ">=" => g0 >= value - 1e-12,
+                "<=" => g0 <= value + 1e-12,
+                _ => (g0 - value).abs() <= 1e-9,
+            };
+            contradiction |= !holds;
+            return;
+        }
+        let t = r / gv;
+        match (sense, gv > 0.0) {
+            (">=", true) | ("<=", false) => lo = lo.max(t),
+            (">=", false) | ("<=", true) => hi = hi.min(t),
+            _ => {
+                lo = lo.max(t);
+                hi = hi.min(t);
+            }
+        }
+    };
+    for a in assumptions {
+        match a {
+            Assumption::Slope {
+                dimension,
+                sense,
+                value,
+            } => {
+                let f = slope_functional(s, *dimension);
+                apply(dot(&f, b0), dot(&f, v), sense, *value);
+            }
+            Assumption::Monotone { dimension, increasing } => {
+                let rows = s.effect_rows(*dimension);
+                for l in 0..rows.len() - 1 {
+                    let f: Vec<f64> = rows[l + 1].iter().zip(&rows[l]).map(|(x, y)| x - y).collect();
+                    apply(dot(&f, b0), dot(&f, v), if *increasing { ">=" } else { "<=" }, 0.0);
+                }
+            }
+        }
+    }
+    if lo > hi + 1e-9 * (1.0 + lo.abs().max(hi.abs())) {
+        contradiction = true;
+    }
+    let finite = |x: f64| if x.is_finite() { Some(x) } else { None };
+    let slopes = DIMENSIONS
+        .iter()
+        .map(|&d| {
+            let f = slope_functional(s, d);
+            let (g0, gv) = (dot(&f, b0), dot(&f, v));
+            let ends = [g0 + lo * gv, g0 + hi * gv];
+            let (mut from, mut to) = (ends[0].min(ends[1]), ends[0].max(ends[1]));
+            if gv.abs() < 1e-12 {
+                from = g0;
+                to = g0;
+            }
+            SlopeBound {
+                dimension: d,
+                from: if contradiction { None } else { finite(from) },
+                to: if contradiction { None } else { finite(to) },
+            }
+        })
+        .collect();
+    Bounds {
+        assumptions: assumptions.iter().map(Assumption::describe).collect(),
+        contradiction,
+        t_from: if contradiction { None } else { finite(lo) },
+        t_to: if contradiction { None } else { finite(hi) },
+        slopes,
+    }
+}

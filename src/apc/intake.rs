@@ -1,0 +1,185 @@
+//! From columns to the cells of an age × period table: a table of counts
+//! with exposure, or individual records grouped into bands of equal width.
+
+use std::path::Path;
+
+use super::Shape;
+use super::analysis::{ApcData, Labels};
+use super::glm::{Cell, Family};
+use crate::data::NumericTable;
+use crate::error::{Error, Result};
+
+/// Default number of age groups when records are grouped from the data.
+pub const DEFAULT_AGE_GROUPS: f64 = 8.0;
+
+fn label(x: f64) -> String {
+    if (x - x.round()).abs() < 1e-9 {
+        format!("{}", x.round() as i64)
+    } else {
+        format!("{x:.2}")
+    }
+}
+
+fn labels(age0: f64, period0: f64, width: f64, shape: Shape) -> Labels {
+    Labels {
+        age: (0..shape.a).map(|i| label(age0 + i as f64 * width)).collect(),
+        period: (0..shape.p).map(|j| label(period0 + j as f64 * width)).collect(),
+        // Cohort k = a − i + j: earliest birth = first period − last age group.
+        cohort: (1..=shape.k())
+            .map(|k| label(period0 - age0 + (k as f64 - shape.a as f64) * width))
+            .collect(),
+    }
+}
+
+/// Distinct sorted values and their common spacing, if any.
+fn spacing(values: &[f64]) -> (Vec<f64>, Option<f64>) {
+    let mut v = values.to_vec();
+    v.sort_by(f64::total_cmp);
+    v.dedup_by(|a, b| (*a - *b).abs() < 1e-9);
+    if v.len() < 2 {
+        return (v, None);
+    }
+    let d = v[1] - v[0];
+    let even = v
+        .windows(2)
+        .all(|w| ((w[1] - w[0]) - d).abs() < 1e-6 * d.abs().max(1.0));
+    (v, if even { Some(d) } else { None })
+}
+
+/// A table of counts: columns age, period, events, exposure.
+///
+/// # Errors
+/// [`Error::Data`] for unequal or mismatched group spacing, or a repeated
+/// cell; [`Error::BadValue`] for negative events or non-positive exposure.
+pub fn from_table(t: &NumericTable, names: [&str; 4]) -> Result<ApcData> {
+    let path = &t.source;
+    let (age, period, events, exposure) = (&t.columns[0], &t.columns[1], &t.columns[2], &t.columns[3]);
+    for (k, &r) in t.rows.iter().enumerate() {
+        if events[k] < 0.0 {
+            return Err(bad(path, names[2], r, events[k], "is negative; events are counts"));
+        }
+        if exposure[k] <= 0.0 {
+            return Err(bad(
+                path,
+                names[3],
+                r,
+                exposure[k],
+                "is not positive; exposure is person-time at risk",
+            ));
+        }
+    }
+    let (ages, da) = spacing(age);
+    let (periods, dp) = spacing(period);
+    let width = match (da, dp) {
+        (Some(a), Some(p)) if (a - p).abs() < 1e-6 * a.abs().max(1.0) => a,
+        _ => {
+            return Err(Error::Data {
+                path: path.to_path_buf(),
+                message: format!(
+                    "age groups ({}) and periods ({}) must be evenly spaced with the same width, so that cohort = period − age indexes whole groups",
+                    ages.iter().map(|x| label(*x)).collect::<Vec<_>>().join(", "),
+                    periods.iter().map(|x| label(*x)).collect::<Vec<_>>().join(", ")
+                ),
+            });
+        }
+    };
+    let shape = Shape {
+        a: ages.len(),
+        p: periods.len(),
+    };
+    let mut seen = std::collections::HashMap::new();
+    let mut cells = Vec::with_capacity(age.len());
+    for k in 0..age.len() {
+        let i = ((age[k] - ages[0]) / width).round() as usize + 1;
+        let j = ((period[k] - periods[0]) / width).round() as usize + 1;
+        if let Some(prev) = seen.insert((i, j), t.rows[k]) {
+            return Err(Error::Data {
+                path: path.to_path_buf(),
+                message: format!(
+                    "age {} and period {} appear in rows {prev} and {}; give each cell once",
+                    label(age[k]),
+                    label(period[k]),
+                    t.rows[k]
+                ),
+            });
+        }
+        cells.push(Cell {
+            i,
+            j,
+            y: events[k],
+            e: exposure[k],
+            yy: 0.0,
+        });
+    }
+    Ok(ApcData {
+        shape,
+        cells,
+        family: Family::Poisson,
+        labels: labels(ages[0], periods[0], width, shape),
+        n_obs: age.len(),
+    })
+}
+
+fn bad(path: &Path, column: &str, row: usize, value: f64, advice: &str) -> Error {
+    Error::BadValue {
+        path: path.to_path_buf(),
+        column: column.to_string(),
+        row,
+        value: value.to_string(),
+        advice: advice.to_string(),
+    }
+}
+
+/// Individual records: columns age, period, outcome, grouped into bands of
+/// `width` years from the youngest age and the earliest period (default:
+/// the whole number of years giving about eight age groups).
+///
+/// # Errors
+/// [`Error::Spec`] for a width that is not positive.
+pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
+    let (age, period, y) = (&t.columns[0], &t.columns[1], &t.columns[2]);
+    let min = |v: &[f64]| v.iter().cloned().fold(f64::INFINITY, f64::min);
+    let max = |v: &[f64]| v.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+    let (a0, p0) = (min(age).floor(), min(period).floor());
+    let width = match width {
+        Some(w) if w.is_finite() && w > 0.0 => w,
+        Some(w) => {
+            return Err(Error::Spec {
+                parameter: "--width".into(),
+                message: format!("{w} is not a positive number of years"),
+            });
+        }
+        None => ((max(age) - a0) / DEFAULT_AGE_GROUPS).ceil().max(1.0),
+    };
+    let a = ((max(age) - a0) / width).floor() as usize + 1;
+    let p = ((max(period) - p0) / width).floor() as usize + 1;
+    let shape = Shape { a, p };
+    let mut sums = vec![(0.0, 0.0, 0.0); a * p];
+    for k in 0..age.len() {
+        let i = ((age[k] - a0) / width).floor() as usize;
+        let j = ((period[k] - p0) / width).floor() as usize;
+        let s = &mut sums[i * p + j];
+        s.0 += y[k];
+        s.1 += 1.0;
+        s.2 += y[k] * y[k];
+    }
+    let cells = sums
+        .iter()
+        .enumerate()
+        .filter(|(_, s)| s.1 > 0.0)
+        .map(|(idx, s)| Cell {
+            i: idx / p + 1,
+            j: idx % p + 1,
+            y: s.0,
+            e: s.1,
+            yy: s.2,
+        })
+        .collect();
+    Ok(ApcData {
+        shape,
+        cells,
+        family: Family::Gaussian,
+        labels: labels(a0, p0, width, shape),
+        n_obs: age.len(),
+    })
+}

@@ -1,0 +1,264 @@
+//! The age–period–cohort report: Holford's table against a reference GLM,
+//! Kupper's null vector, invariances along the line of solutions, and bounds
+//! on a constructed example with known slopes.
+
+use braid::apc::analysis::{Assumption, Constraint, analyse};
+use braid::apc::glm::{Cell, Family};
+use braid::apc::{Dimension, Shape, intake, null_vector};
+use braid::data::NumericTable;
+
+use crate::common::data_dir;
+
+/// Deviances against a reference GLM, absolute (the issue asks for 1e-6).
+const DEVIANCE_ABS: f64 = 1e-6;
+/// Quantities that must not move along the line of solutions.
+const INVARIANT_ABS: f64 = 1e-9;
+/// The closed-form null vector against the numerical one.
+const NULL_VECTOR_ABS: f64 = 1e-12;
+
+fn holford() -> braid::apc::analysis::ApcData {
+    let t = braid::data::numeric_table(
+        &data_dir().join("holford_prostate.csv"),
+        &[
+            ("--age", "age"),
+            ("--period", "period"),
+            ("--events", "deaths"),
+            ("--exposure", "population"),
+        ],
+        Default::default(),
+    )
+    .unwrap();
+    intake::from_table(&t, ["age", "period", "deaths", "population"]).unwrap()
+}
+
+// Source: statsmodels GLM (Poisson, log link, offset log population), version
+// in tests/reference/apc.json, made by tests/reference/apc_reference.py on
+// Holford (1983, Biometrics 39), Table 2.
+#[test]
+fn holford_deviances_match_the_reference_glm() {
+    let text =
+        std::fs::read_to_string(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/apc.json"))
+            .unwrap();
+    let reference: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let report = analyse(&holford(), &[], &[]).unwrap();
+    assert_eq!(report.rank_deficiency, 1);
+    assert_eq!(report.deviance_table.len(), 6);
+    for row in &report.deviance_table {
+        let r = &reference["models"][&row.model];
+        let dev = r["deviance"].as_f64().unwrap();
+        assert!(
+            (row.deviance - dev).abs() < DEVIANCE_ABS,
+            "{}: {} vs {dev}",
+            row.model,
+            row.deviance
+        );
+        assert_eq!(row.df as u64, r["df"].as_u64().unwrap(), "{} df", row.model);
+    }
+}
+
+// Holford (1983): second differences are identified, so every constraint gives
+// the same ones; fitted values agree along the line (closed-form identity).
+#[test]
+fn second_differences_and_fits_do_not_depend_on_the_constraint() {
+    let constraints: Vec<Constraint> = ["equal:age:1,2", "equal:period:3,4", "zero-slope:cohort", "min-norm"]
+        .iter()
+        .map(|c| Constraint::parse(c).unwrap())
+        .collect();
+    let report = analyse(&holford(), &constraints, &[]).unwrap();
+    assert_eq!(report.solutions.len(), 4);
+    let second = |e: &[f64]| -> Vec<f64> { e.windows(3).map(|w| w[0] - 2.0 * w[1] + w[2]).collect() };
+    let base = &report.solutions[0].effects;
+    for sol in &report.solutions[1..] {
+        for (x, y) in second(&sol.effects.age).iter().zip(second(&base.age)) {
+            assert!((x - y).abs() < INVARIANT_ABS, "{}: {x} vs {y}", sol.constraint);
+        }
+        for (x, y) in second(&sol.effects.cohort).iter().zip(second(&base.cohort)) {
+            assert!((x - y).abs() < INVARIANT_ABS);
+        }
+    }
+    // And they equal the identified second differences of the report.
+    let reported: Vec<f64> = report
+        .identified
+        .iter()
+        .filter(|q| q.quantity.starts_with("age second difference"))
+        .map(|q| q.estimate)
+        .collect();
+    for (x, y) in reported.iter().zip(second(&base.age)) {
+        assert!((x - y).abs() < INVARIANT_ABS);
+    }
+    assert!(report.fitted_max_difference < INVARIANT_ABS);
+    // Each constraint holds in its own solution.
+    let s0 = &report.solutions[0].effects.age;
+    assert!((s0[0] - s0[1]).abs() < INVARIANT_ABS);
+    let s1 = &report.solutions[1].effects.period;
+    assert!((s1[2] - s1[3]).abs() < INVARIANT_ABS);
+    let cohort_slope = report.solutions[2]
+        .slopes
+        .iter()
+        .find(|t| t.term == "cohort")
+        .unwrap()
+        .value;
+    assert!(cohort_slope.abs() < INVARIANT_ABS);
+    // Age + period slope is the same in every solution (Holford 1983).
+    let sum = |k: usize| {
+        let s = &report.solutions[k].slopes;
+        s[0].value + s[1].value
+    };
+    for k in 1..4 {
+        assert!((sum(k) - sum(0)).abs() < INVARIANT_ABS);
+    }
+}
+
+// Kupper et al. (1985): the null vector of the coded design in closed form,
+// against the numerical null space (the eigenvector of XᵀX with the smallest
+// eigenvalue), for four table shapes; the minimum-norm solution is
+// orthogonal to it.
+#[test]
+fn null_vector_is_kuppers_closed_form() {
+    for (a, p) in [(5, 4), (7, 7), (3, 10), (10, 3)] {
+        let shape = Shape { a, p };
+        let q = shape.n_params();
+        let mut xtx = faer::Mat::<f64>::zeros(q, q);
+        for i in 1..=a {
+            for j in 1..=p {
+                let x = shape.row(i, j);
+                for r in 0..q {
+                    for c in 0..q {
+                        xtx[(r, c)] += x[r] * x[c];
+                    }
+                }
+            }
+        }
+        let eig = xtx.self_adjoint_eigen(faer::Side::Lower).unwrap();
+        let s = eig.S().column_vector();
+        assert!(
+            s[0].abs() < 1e-10 * s[q - 1] && s[1] > 1e-6 * s[q - 1],
+            "{a}×{p}: rank deficiency is not 1"
+        );
+        let u = eig.U();
+        let v = null_vector(shape);
+        let norm = v.iter().map(|x| x * x).sum::<f64>().sqrt();
+        let sign = if (0..q).map(|r| u[(r, 0)] * v[r]).sum::<f64>() < 0.0 {
+            -1.0
+        } else {
+            1.0
+        };
+        for r in 0..q {
+            assert!(
+                (sign * u[(r, 0)] - v[r] / norm).abs() < NULL_VECTOR_ABS,
+                "{a}×{p} entry {r}: {} vs {}",
+                sign * u[(r, 0)],
+                v[r] / norm
+            );
+        }
+        // A Poisson table of this shape (rates with age and cohort curvature).
+        let cells: Vec<Cell> = (1..=a)
+            .flat_map(|i| (1..=p).map(move |j| (i, j)))
+            .map(|(i, j)| {
+                let k = shape.cohort(i, j) as f64;
+                let rate = (-6.0 + 0.3 * i as f64 - 0.02 * (i as f64).powi(2) + 0.05 * k + 0.1 * (k * 0.7).sin()).exp();
+                Cell {
+                    i,
+                    j,
+                    y: (rate * 1e5).round(),
+                    e: 1e5,
+                    yy: 0.0,
+                }
+            })
+            .collect();
+        let data = braid::apc::analysis::ApcData {
+            shape,
+            cells,
+            family: Family::Poisson,
+            labels: braid::apc::analysis::Labels {
+                age: (1..=a).map(|i| i.to_string()).collect(),
+                period: (1..=p).map(|j| j.to_string()).collect(),
+                cohort: (1..a + p).map(|k| k.to_string()).collect(),
+            },
+            n_obs: a * p,
+        };
+        let report = analyse(&data, &[], &[]).unwrap();
+        let b0: Vec<f64> = report.line_origin.iter().map(|t| t.value).collect();
+        let dot: f64 = b0.iter().zip(&v).map(|(x, y)| x * y).sum();
+        assert!(dot.abs() < 1e-10, "{a}×{p}: b₀·v = {dot}");
+        assert!(report.fitted_max_difference < INVARIANT_ABS);
+        assert!(report.null_vector_residual < NULL_VECTOR_ABS);
+    }
+}
+
+/// Records with exactly known effects (no noise): age, period and cohort
+/// effects with linear trends 0.5, 0.3 and −0.2 per group step plus
+/// curvature, in 5-year groups.
+fn constructed() -> (NumericTable, [f64; 3]) {
+    let (a, p) = (7usize, 6usize);
+    let age_fx = |i: usize| 0.5 * i as f64 + 0.1 * (i as f64 - 4.0).powi(2);
+    let per_fx = |j: usize| 0.3 * j as f64;
+    let coh_fx = |k: usize| -0.2 * k as f64 + 0.3 * (k as f64).sin();
+    let mut cols = vec![Vec::new(), Vec::new(), Vec::new()];
+    for i in 1..=a {
+        for j in 1..=p {
+            let k = a - i + j;
+            for r in 0..3 {
+                cols[0].push(20.0 + 5.0 * (i - 1) as f64 + 1.0 + r as f64);
+                cols[1].push(2000.0 + 5.0 * (j - 1) as f64 + 2.0);
+                cols[2].push(10.0 + age_fx(i) + per_fx(j) + coh_fx(k));
+            }
+        }
+    }
+    // True slopes of the centred effects on the level index (least squares).
+    let slope = |f: &dyn Fn(usize) -> f64, l: usize| {
+        let m = (l as f64 + 1.0) / 2.0;
+        let ys: Vec<f64> = (1..=l).map(f).collect();
+        let ybar = ys.iter().sum::<f64>() / l as f64;
+        let sxy: f64 = (1..=l).map(|x| (x as f64 - m) * (ys[x - 1] - ybar)).sum();
+        let sxx: f64 = (1..=l).map(|x| (x as f64 - m).powi(2)).sum();
+        sxy / sxx
+    };
+    let truth = [slope(&age_fx, a), slope(&per_fx, p), slope(&coh_fx, a + p - 1)];
+    let n = cols[0].len();
+    (
+        NumericTable {
+            source: "constructed".into(),
+            columns: cols,
+            n_rows_read: n,
+            dropped: 0,
+            rows: (1..=n).collect(),
+        },
+        truth,
+    )
+}
+
+// Fosse & Winship (2019): sign assumptions bound the slopes; the true slopes
+// lie inside, and an equality assumption pins them to a point (the truth).
+#[test]
+fn bounds_contain_the_truth_and_shrink_to_a_point() {
+    let (table, truth) = constructed();
+    let data = intake::from_records(&table, Some(5.0)).unwrap();
+    assert_eq!((data.shape.a, data.shape.p), (7, 6));
+    let ge = [Assumption::parse("period-slope>=0").unwrap()];
+    let report = analyse(&data, &[], &ge).unwrap();
+    let b = report.bounds.unwrap();
+    assert!(!b.contradiction);
+    for (sb, t) in b.slopes.iter().zip(truth) {
+        let lo = sb.from.unwrap_or(f64::NEG_INFINITY);
+        let hi = sb.to.unwrap_or(f64::INFINITY);
+        assert!(
+            lo - 1e-9 <= t && t <= hi + 1e-9,
+            "{:?}: {t} not in [{lo}, {hi}]",
+            sb.dimension
+        );
+    }
+    let eq = [Assumption::parse(&format!("period-slope={}", truth[1])).unwrap()];
+    let point = analyse(&data, &[], &eq).unwrap().bounds.unwrap();
+    for (sb, t) in point.slopes.iter().zip(truth) {
+        assert!((sb.from.unwrap() - t).abs() < INVARIANT_ABS, "{:?}", sb.dimension);
+        assert!((sb.to.unwrap() - t).abs() < INVARIANT_ABS);
+    }
+    // Assumptions that no solution meets are reported as a contradiction.
+    let clash = [
+        Assumption::parse("period-slope>=1").unwrap(),
+        Assumption::parse("age-slope>=10").unwrap(),
+    ];
+    assert!(analyse(&data, &[], &clash).unwrap().bounds.unwrap().contradiction);
+    assert_eq!(Dimension::parse("cohort"), Some(Dimension::Cohort));
+}
