@@ -216,6 +216,10 @@ pub struct ApcData {
     pub labels: Labels,
     /// Observations: records, or cells of a table.
     pub n_obs: usize,
+    /// Group width in years.
+    pub width: f64,
+    /// First year of the youngest age group and of the earliest period.
+    pub origin: (f64, f64),
 }
 
 /// A named value.
@@ -347,6 +351,8 @@ pub struct ApcReport {
     pub bounds: Option<Bounds>,
     /// What every number rests on.
     pub assumptions: Vec<String>,
+    /// The hierarchical APC fit, when asked for (records only).
+    pub hierarchical: Option<super::hierarchical::Hierarchical>,
 }
 
 fn dot(a: &[f64], b: &[f64]) -> f64 {
@@ -684,6 +690,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         fitted_max_difference,
         bounds,
         assumptions: notes,
+        hierarchical: None,
     })
 }
 

@@ -117,6 +117,8 @@ pub fn from_table(t: &NumericTable, names: [&str; 4]) -> Result<ApcData> {
         family: Family::Poisson,
         labels: labels(ages[0], periods[0], width, shape),
         n_obs: age.len(),
+        width,
+        origin: (ages[0], periods[0]),
     })
 }
 
@@ -181,5 +183,7 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
         family: Family::Gaussian,
         labels: labels(a0, p0, width, shape),
         n_obs: age.len(),
+        width,
+        origin: (a0, p0),
     })
 }

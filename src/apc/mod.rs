@@ -17,6 +17,7 @@
 
 pub mod analysis;
 pub mod glm;
+pub mod hierarchical;
 pub mod intake;
 
 use serde::Serialize;

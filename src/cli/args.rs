@@ -268,16 +268,22 @@ pub struct ApcArgs {
     /// An assumption for the bounds (repeatable): DIM-slope>=V, DIM-slope<=V, DIM-slope=V, DIM:nondecreasing or DIM:nonincreasing.
     #[arg(long = "assume", value_name = "RULE")]
     pub assumptions: Vec<String>,
+    /// Records: also fit the hierarchical model (age polynomial, crossed random period and cohort intercepts).
+    #[arg(long, requires = "outcome")]
+    pub hierarchical: bool,
     /// Field delimiter of a CSV file [default: ,].
     #[arg(long, value_name = "CHAR")]
     pub delimiter: Option<String>,
     /// Write the report as JSON to this file.
     #[arg(long, value_name = "FILE")]
     pub json: Option<PathBuf>,
+    /// Folder for apc.json and the figures (effects under each constraint, second differences, bounds).
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
     /// Print nothing but errors.
     #[arg(long)]
     pub quiet: bool,
-    /// Overwrite an existing --json file.
+    /// Overwrite an existing --json file or --out folder.
     #[arg(long)]
     pub force: bool,
 }

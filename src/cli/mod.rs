@@ -264,6 +264,10 @@ fn apc_command(a: &args::ApcArgs) -> Result<()> {
             None => b',',
         },
     };
+    if let Some(dir) = &a.out {
+        report::check_output(dir, true, a.force, "--out")?;
+    }
+    let mut records = None;
     let data = match (&a.outcome, &a.events, &a.exposure) {
         (Some(y), _, _) => {
             let t = data::numeric_table(
@@ -271,7 +275,9 @@ fn apc_command(a: &args::ApcArgs) -> Result<()> {
                 &[("--age", &a.age), ("--period", &a.period), ("--outcome", y)],
                 read,
             )?;
-            crate::apc::intake::from_records(&t, a.width)?
+            let d = crate::apc::intake::from_records(&t, a.width)?;
+            records = Some(t);
+            d
         }
         (None, Some(ev), Some(ex)) => {
             let t = data::numeric_table(
@@ -295,9 +301,20 @@ fn apc_command(a: &args::ApcArgs) -> Result<()> {
             });
         }
     };
-    let result = crate::apc::analysis::analyse(&data, &constraints, &assumptions)?;
+    let mut result = crate::apc::analysis::analyse(&data, &constraints, &assumptions)?;
+    if let (true, Some(t)) = (a.hierarchical, &records) {
+        result.hierarchical = Some(crate::apc::hierarchical::fit(t, &data)?);
+    }
     if !a.quiet {
         print!("{}", text::apc_summary(&a.data, &result));
+    }
+    if let Some(dir) = &a.out {
+        report::ensure_dir(dir)?;
+        report::write_json(&dir.join("apc.json"), &result)?;
+        let files = report::apc_figure::write(dir, &result)?;
+        if !a.quiet {
+            println!("\nWritten to {}: apc.json, {}", dir.display(), files.join(", "));
+        }
     }
     if let Some(path) = &a.json {
         if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {

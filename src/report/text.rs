@@ -593,6 +593,27 @@ pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport
             }
         }
     }
+    if let Some(h) = &r.hierarchical {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "{:<11}age polynomial centred at {:.2}, crossed random period and cohort intercepts (REML, Yang & Land 2006)",
+            "Hierarchical", h.center
+        );
+        for fe in &h.fixed {
+            let _ = writeln!(
+                s,
+                "{:<11}{:<12}{:>12.5}  SE {:>9.5}  df {:>8.1}  p {:.4}",
+                "", fe.term, fe.estimate, fe.se, fe.df, fe.p
+            );
+        }
+        let _ = writeln!(
+            s,
+            "{:<11}SD period {:.4} · SD cohort {:.4} · SD residual {:.4} · REML loglik {:.3}",
+            "", h.sd_period, h.sd_cohort, h.sd_residual, h.loglik
+        );
+        let _ = writeln!(s, "{:<11}{}", "", wrap(&h.caution, 75, 11));
+    }
     let _ = writeln!(s);
     for (i, a) in r.assumptions.iter().enumerate() {
         let _ = writeln!(s, "{:<11}{}", if i == 0 { "Assumes" } else { "" }, wrap(a, 75, 11));

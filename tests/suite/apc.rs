@@ -176,6 +176,8 @@ fn null_vector_is_kuppers_closed_form() {
                 cohort: (1..a + p).map(|k| k.to_string()).collect(),
             },
             n_obs: a * p,
+            width: 1.0,
+            origin: (1.0, 1.0),
         };
         let report = analyse(&data, &[], &[]).unwrap();
         let b0: Vec<f64> = report.line_origin.iter().map(|t| t.value).collect();
@@ -261,4 +263,56 @@ fn bounds_contain_the_truth_and_shrink_to_a_point() {
     ];
     assert!(analyse(&data, &[], &clash).unwrap().bounds.unwrap().contradiction);
     assert_eq!(Dimension::parse("cohort"), Some(Dimension::Cohort));
+}
+
+// Source: statsmodels MixedLM, variance-components form (crossed period and
+// cohort intercepts, REML), version in tests/reference/apc.json, made by
+// tests/reference/apc_reference.py on the invented repeated cross-section
+// tests/data/hapc_cross_section.csv.
+#[test]
+fn hierarchical_apc_matches_the_reference_variance_components_fit() {
+    use crate::tolerance::{FIXED_REL, LOGLIK_ABS, VARIANCE_REL, rel};
+    let text =
+        std::fs::read_to_string(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/apc.json"))
+            .unwrap();
+    let reference: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let h = &reference["hierarchical"];
+    let t = braid::data::numeric_table(
+        &data_dir().join("hapc_cross_section.csv"),
+        &[("--age", "age"), ("--period", "year"), ("--outcome", "score")],
+        Default::default(),
+    )
+    .unwrap();
+    let data = intake::from_records(&t, Some(5.0)).unwrap();
+    let fit = braid::apc::hierarchical::fit(&t, &data).unwrap();
+    let ll = h["loglik"].as_f64().unwrap();
+    assert!(fit.loglik > ll - LOGLIK_ABS, "braid {} vs reference {ll}", fit.loglik);
+    assert!(
+        (fit.loglik - ll).abs() < LOGLIK_ABS,
+        "braid {} vs reference {ll}",
+        fit.loglik
+    );
+    for (k, fe) in fit.fixed.iter().enumerate() {
+        let want = h["fe"][k].as_f64().unwrap();
+        assert!(
+            rel(fe.estimate, want, 1e-3) < FIXED_REL,
+            "{}: {} vs {want}",
+            fe.term,
+            fe.estimate
+        );
+    }
+    let names: Vec<&str> = h["vc_names"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    for (name, sd) in [("period", fit.sd_period), ("cohort", fit.sd_cohort)] {
+        let k = names.iter().position(|n| *n == name).unwrap();
+        let want = h["vcomp"][k].as_f64().unwrap();
+        assert!(rel(sd * sd, want, 1e-6) < VARIANCE_REL, "{name}: {} vs {want}", sd * sd);
+    }
+    let scale = h["scale"].as_f64().unwrap();
+    assert!(rel(fit.sd_residual.powi(2), scale, 1e-6) < VARIANCE_REL);
+    assert!(fit.caution.contains("hidden constraint"));
 }
