@@ -235,8 +235,8 @@ fn line_figure<DB: DrawingBackend>(root: Panel<DB>, r: &ApcReport) -> std::resul
         .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
-    if let Some(b) = &r.bounds {
-        if !b.contradiction {
+    if let Some(b) = r.bounds.as_ref().filter(|b| !b.contradiction) {
+        {
             let (a, z) = (b.t_from.unwrap_or(t0).max(t0), b.t_to.unwrap_or(t1).min(t1));
             chart
                 .draw_series(std::iter::once(Rectangle::new(
