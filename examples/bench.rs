@@ -2,7 +2,7 @@
 //!
 //! ```text
 //! cargo build --release
-//! cargo run --release --example bench -- [small|large|inspect|all] [WORK_DIR]
+//! cargo run --release --example bench -- [small|large|inspect|apc|all] [WORK_DIR]
 //! ```
 //!
 //! - `small`: a 3,000-participant three-wave file; REML, quadratic age,
@@ -17,6 +17,9 @@
 //!   same model plus a school intercept; wall time and peak memory of the
 //!   whole CLI run with every output.
 //! - `inspect`: `braid inspect` with JSON output on the same 1,000,000-row file.
+//! - `apc`: `braid apc` on an invented repeated cross-section of 1,000,000
+//!   records (the APC factor model by least squares), and `--hierarchical`
+//!   (crossed random period and cohort intercepts) on 30,000 records.
 //!
 //! Peak memory is read with GNU time (`time -f %M`, found on PATH). Figures
 //! are recorded in notes/benchmarks.md.
@@ -221,7 +224,7 @@ fn inspect(work: &Path) {
                 "--wave",
                 "wave",
             ])
-            .args(["--quiet", "--json"])
+            .args(["--quiet", "--force", "--json"])
             .arg(work.join("design.json"))
             .output()
             .expect("run braid inspect");
@@ -230,6 +233,62 @@ fn inspect(work: &Path) {
     }
     println!(
         "inspect: 1,000,005 rows, runs {walls:.2?} s, median {:.2} s",
+        median(walls.clone())
+    );
+}
+
+/// An invented repeated cross-section: exact ages 20–69, assessment years
+/// 2000–2029, crossed period and cohort effects in 5-year groups.
+fn write_cross_section(path: &Path, n: usize, seed: u64) {
+    use std::io::Write;
+    let mut rng = braid::simulate::Rng::new(seed);
+    let period: Vec<f64> = (0..6).map(|_| 1.5 * rng.normal()).collect();
+    let cohort: Vec<f64> = (0..16).map(|_| 2.0 * rng.normal()).collect();
+    let mut w = std::io::BufWriter::new(std::fs::File::create(path).expect("create"));
+    writeln!(w, "age,year,score").expect("write");
+    for _ in 0..n {
+        let age = 20.0 + 49.999 * rng.uniform();
+        let year = 2000.0 + 29.999 * rng.uniform();
+        let (i, j) = (((age - 20.0) / 5.0) as usize, ((year - 2000.0) / 5.0) as usize);
+        let c = age - 45.0;
+        let y = 30.0 + 0.2 * c - 0.004 * c * c + period[j] + cohort[9 - i + j] + 3.0 * rng.normal();
+        writeln!(w, "{age:.3},{year:.3},{y:.4}").expect("write");
+    }
+}
+
+/// Wall time of one `braid apc` run on a records file.
+fn time_apc(file: &Path, hierarchical: bool, json: &Path) -> f64 {
+    let mut cmd = Command::new(braid_bin());
+    cmd.arg("apc").arg(file);
+    cmd.args(["--age", "age", "--period", "year", "--outcome", "score", "--width", "5"]);
+    cmd.args(["--quiet", "--force", "--json"]).arg(json);
+    if hierarchical {
+        cmd.arg("--hierarchical");
+    }
+    let t0 = Instant::now();
+    let o = cmd.output().expect("run braid apc");
+    let wall = t0.elapsed().as_secs_f64();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    wall
+}
+
+fn apc(work: &Path) {
+    let big = work.join("apc_1m.csv");
+    if !big.exists() {
+        write_cross_section(&big, 1_000_000, 1983);
+    }
+    let walls: Vec<f64> = (0..3).map(|_| time_apc(&big, false, &work.join("apc_1m.json"))).collect();
+    println!(
+        "apc factor model: 1,000,000 records, runs {walls:.2?} s, median {:.2} s",
+        median(walls.clone())
+    );
+    let small = work.join("apc_30k.csv");
+    if !small.exists() {
+        write_cross_section(&small, 30_000, 2006);
+    }
+    let walls: Vec<f64> = (0..5).map(|_| time_apc(&small, true, &work.join("apc_30k.json"))).collect();
+    println!(
+        "apc --hierarchical: 30,000 records, runs {walls:.2?} s, median {:.2} s",
         median(walls.clone())
     );
 }
@@ -250,5 +309,8 @@ fn main() {
     }
     if which == "inspect" || which == "all" {
         inspect(&work);
+    }
+    if which == "apc" || which == "all" {
+        apc(&work);
     }
 }
