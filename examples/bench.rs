@@ -277,7 +277,9 @@ fn apc(work: &Path) {
     if !big.exists() {
         write_cross_section(&big, 1_000_000, 1983);
     }
-    let walls: Vec<f64> = (0..3).map(|_| time_apc(&big, false, &work.join("apc_1m.json"))).collect();
+    let walls: Vec<f64> = (0..3)
+        .map(|_| time_apc(&big, false, &work.join("apc_1m.json")))
+        .collect();
     println!(
         "apc factor model: 1,000,000 records, runs {walls:.2?} s, median {:.2} s",
         median(walls.clone())
@@ -286,7 +288,9 @@ fn apc(work: &Path) {
     if !small.exists() {
         write_cross_section(&small, 30_000, 2006);
     }
-    let walls: Vec<f64> = (0..5).map(|_| time_apc(&small, true, &work.join("apc_30k.json"))).collect();
+    let walls: Vec<f64> = (0..5)
+        .map(|_| time_apc(&small, true, &work.join("apc_30k.json")))
+        .collect();
     println!(
         "apc --hierarchical: 30,000 records, runs {walls:.2?} s, median {:.2} s",
         median(walls.clone())

@@ -223,6 +223,10 @@ pub struct ConvergeArgs {
     /// Shared ages compared per pair of neighbouring cohorts.
     #[arg(long, value_name = "N", default_value_t = 5)]
     pub shared_ages: usize,
+    /// Add a retest term and check whether this design identifies it: the number of prior assessments (count),
+    /// first versus later (later), or its square root (sqrt).
+    #[arg(long, value_name = "FORM")]
+    pub retest: Option<RetestArg>,
     /// Write the report as JSON to this file.
     #[arg(long, value_name = "FILE")]
     pub json: Option<PathBuf>,
@@ -286,6 +290,17 @@ pub struct ApcArgs {
     /// Overwrite an existing --json file or --out folder.
     #[arg(long)]
     pub force: bool,
+}
+
+/// The form of a retest term.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum RetestArg {
+    /// The number of prior assessments.
+    Count,
+    /// 1 from the second assessment on.
+    Later,
+    /// The square root of the number of prior assessments.
+    Sqrt,
 }
 
 /// How cohort is derived from birth year or first age.

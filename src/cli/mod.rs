@@ -217,6 +217,11 @@ fn converge_command(a: &args::ConvergeArgs) -> Result<()> {
         },
         shared_ages: a.shared_ages,
         cohort_rule: a.derive.cohort_rule(),
+        retest: a.retest.map(|r| match r {
+            args::RetestArg::Count => crate::linkage::retest::RetestForm::Count,
+            args::RetestArg::Later => crate::linkage::retest::RetestForm::Later,
+            args::RetestArg::Sqrt => crate::linkage::retest::RetestForm::Sqrt,
+        }),
     };
     let result = crate::linkage::converge(&panel, &config.model, &options)?;
     if !a.quiet {

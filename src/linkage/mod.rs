@@ -14,6 +14,8 @@
 //! fit splits age into baseline age (between persons) and time since
 //! baseline (within persons).
 
+pub mod retest;
+
 use serde::Serialize;
 
 use crate::data::Panel;
@@ -59,6 +61,8 @@ pub struct ConvergeOptions {
     pub shared_ages: usize,
     /// How cohorts are found.
     pub cohort_rule: CohortRule,
+    /// Add and check a retest term.
+    pub retest: Option<retest::RetestForm>,
 }
 
 impl Default for ConvergeOptions {
@@ -68,6 +72,7 @@ impl Default for ConvergeOptions {
             margin: Margin::Sd(DEFAULT_MARGIN_SD),
             shared_ages: DEFAULT_SHARED_AGES,
             cohort_rule: CohortRule::Auto,
+            retest: None,
         }
     }
 }
@@ -172,6 +177,8 @@ pub struct ConvergeReport {
     pub simultaneous_critical: f64,
     /// Between- and within-person age slopes (linear part).
     pub between_within: Option<BetweenWithin>,
+    /// The retest check, when asked for.
+    pub retest: Option<retest::RetestReport>,
     /// The verdict in plain words.
     pub verdict: String,
     /// What the verdict rests on.
@@ -438,7 +445,17 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         }
     }
     let between_within = between_within(panel, &frame, &spec0, &mut notes);
-    let (verdict, assumptions) = verdict(&tests, &shared_ages, margin, reference_age, &between_within);
+    let retest = options.retest.map(|f| retest::check(panel, &frame, f)).transpose()?;
+    let (mut verdict, assumptions) = verdict(&tests, &shared_ages, margin, reference_age, &between_within);
+    if let Some(r) = &retest {
+        verdict.push_str(&format!(" Retest: {}.", r.message));
+        if let (Some(e), Some(w)) = (r.estimate, r.age_slope_with) {
+            verdict.push_str(&format!(
+                " With the term ({:.3} per unit), the linear age term moves from {:.3} to {:.3}.",
+                e, r.age_slope_without, w
+            ));
+        }
+    }
     Ok(ConvergeReport {
         cohort_rule: cohort.rule,
         cohorts,
@@ -450,6 +467,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         shared_ages,
         simultaneous_critical: crit,
         between_within,
+        retest,
         verdict,
         assumptions,
         notes,

@@ -466,6 +466,25 @@ pub fn converge_summary(panel: &crate::data::Panel, r: &crate::linkage::Converge
             "Age slopes", b.between, b.between_se, b.within, b.within_se, b.difference, b.p
         );
     }
+    if let Some(t) = &r.retest {
+        let _ = writeln!(s);
+        let est = match (t.estimate, t.se, t.p) {
+            (Some(e), Some(se), Some(p)) => format!("estimate {e:.3} (SE {se:.3}, p = {p:.4}) · "),
+            _ => String::new(),
+        };
+        let with = t.age_slope_with.map_or("not fitted".to_string(), |w| format!("{w:.3}"));
+        let _ = writeln!(
+            s,
+            "{:<11}{}: {} · R² on the age terms {:.4} · {}linear age term {:.3} without, {} with",
+            "Retest",
+            t.form.name(),
+            t.status,
+            t.r2,
+            est,
+            t.age_slope_without,
+            with
+        );
+    }
     let _ = writeln!(s);
     let _ = writeln!(s, "{:<11}{}", "Verdict", wrap(&r.verdict, 75, 11));
     for (i, a) in r.assumptions.iter().enumerate() {
