@@ -154,7 +154,7 @@ pub fn check(panel: &Panel, frame: &ModelFrame, form: RetestForm) -> Result<Rete
     let age_slope_without = base.beta[1];
     let why = "the number of prior assessments is fixed by age when everyone of an age has been tested equally often \
                (one cohort on one schedule), so a retest effect cannot be told apart from change with age";
-    if !(r2 < NOT_IDENTIFIED_R2) {
+    if r2.is_nan() || r2 >= NOT_IDENTIFIED_R2 {
         return Ok(RetestReport {
             form,
             status: "not identified".into(),
