@@ -220,6 +220,18 @@ pub struct ApcData {
     pub width: f64,
     /// First year of the youngest age group and of the earliest period.
     pub origin: (f64, f64),
+    /// Panels: the participant of each cell (then every cell is one record),
+    /// for a random intercept per participant.
+    pub ids: Option<Vec<u32>>,
+}
+
+/// Fit one model: a GLM on cell totals, or for panels a linear mixed model
+/// with a random intercept per participant (ML, so that deviances compare).
+fn fit_model(data: &ApcData, rows: &[Vec<f64>]) -> Result<GlmFit> {
+    match &data.ids {
+        None => glm::fit(&data.cells, rows, data.family),
+        Some(ids) => glm::fit_mixed(&data.cells, rows, ids),
+    }
 }
 
 /// A named value.
@@ -353,6 +365,21 @@ pub struct ApcReport {
     pub assumptions: Vec<String>,
     /// The hierarchical APC fit, when asked for (records only).
     pub hierarchical: Option<super::hierarchical::Hierarchical>,
+    /// Panels: how the identification problem appears in a cohort-sequential
+    /// design, and what the linkage assumption buys.
+    pub panel: Option<PanelView>,
+}
+
+/// The APC problem in the user's own cohort-sequential panel.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PanelView {
+    /// Participants.
+    pub n_participants: usize,
+    /// The test of period effects beyond age and cohort (APC against A+C):
+    /// a likelihood ratio of their ML fits.
+    pub period_beyond_cohort: crate::infer::tests::TestResult,
+    /// What it means, in words.
+    pub text: Vec<String>,
 }
 
 fn dot(a: &[f64], b: &[f64]) -> f64 {
@@ -435,7 +462,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
                 .collect()
         })
         .collect();
-    let apc = glm::fit(&data.cells, &reduced, data.family)?;
+    let apc = fit_model(data, &reduced)?;
     let b0: Vec<f64> = (0..q)
         .map(|k| (0..q - 1).map(|c| basis[k * (q - 1) + c] * apc.coef[c]).sum())
         .collect();
@@ -479,7 +506,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         ("P+C", cat(&[&per_cols, &coh_cols]), false),
         ("A+drift", cat(&[&age_cols]), true),
     ] {
-        let f = glm::fit(&data.cells, &submodel_rows(data, &cols, drift), data.family)?;
+        let f = fit_model(data, &submodel_rows(data, &cols, drift))?;
         deviance_table.push(DevianceRow {
             model: name.into(),
             deviance: f.deviance,
@@ -635,6 +662,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
             fitted_max_difference = fitted_max_difference.max((x - y).abs());
         }
     }
+    let panel = data.ids.as_ref().map(|ids| panel_view(ids, &deviance_table));
     let bounds = if assumptions.is_empty() {
         None
     } else {
@@ -691,6 +719,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         bounds,
         assumptions: notes,
         hierarchical: None,
+        panel,
     })
 }
 
@@ -885,5 +914,53 @@ fn bounds(s: Shape, b0: &[f64], v: &[f64], assumptions: &[Assumption]) -> Bounds
         t_from: if contradiction { None } else { finite(lo) },
         t_to: if contradiction { None } else { finite(hi) },
         slopes,
+    }
+}
+
+fn panel_view(ids: &[u32], table: &[DevianceRow]) -> PanelView {
+    let find = |m: &str| table.iter().find(|r| r.model == m);
+    let (ac, apc) = (find("A+C"), find("APC"));
+    let test = match (ac, apc) {
+        (Some(ac), Some(apc)) => crate::infer::tests::likelihood_ratio(
+            "period effects beyond age and cohort (APC vs A+C)",
+            -ac.deviance / 2.0,
+            -apc.deviance / 2.0,
+            ac.df.saturating_sub(apc.df),
+            false,
+        ),
+        _ => crate::infer::tests::likelihood_ratio("period effects beyond age and cohort", 0.0, 0.0, 0, false),
+    };
+    let mut n: Vec<u32> = ids.to_vec();
+    n.sort_unstable();
+    n.dedup();
+    let text = vec![
+        "In a cohort-sequential panel each participant's age rises one for one with the period, and cohort = period − \
+         age, so the linear trends of age, period and cohort cannot be separated here either."
+            .to_string(),
+        "The stitched trajectory of braid fit assumes that there are no period effects: the linkage (convergence) \
+         assumption. Under it, cohort differences are identified through the ages that neighbouring cohorts share; \
+         braid converge tests them (M1, M2) at those ages."
+            .to_string(),
+        format!(
+            "The A+C model is that assumption in factor form. Adding period factors (APC against A+C) changes the \
+             deviance by {:.3} on {} df, p = {:.4}: {}.",
+            test.statistic,
+            test.df,
+            test.p,
+            if test.p < 0.05 {
+                "there are period effects that age and cohort do not absorb, so the no-period assumption fails in \
+                 its nonlinear part and the stitched curve should not be read as an age trajectory alone"
+            } else {
+                "no evidence of period effects beyond age and cohort; this tests only their nonlinear part"
+            }
+        ),
+        "A linear period trend is invisible to every test: it is exactly a combination of linear age and cohort \
+         trends, so the linkage assumption about it stays an assumption."
+            .to_string(),
+    ];
+    PanelView {
+        n_participants: n.len(),
+        period_beyond_cohort: test,
+        text,
     }
 }

@@ -24,11 +24,45 @@ fn labels(age0: f64, period0: f64, width: f64, shape: Shape) -> Labels {
     Labels {
         age: (0..shape.a).map(|i| label(age0 + i as f64 * width)).collect(),
         period: (0..shape.p).map(|j| label(period0 + j as f64 * width)).collect(),
-        // Cohort k = a − i + j: earliest birth = first period − last age group.
-        cohort: (1..=shape.k())
-            .map(|k| label(period0 - age0 + (k as f64 - shape.a as f64) * width))
+        // Full cohort index k = a − i + j: earliest birth = first period − last age group.
+        cohort: (0..shape.k())
+            .map(|k| label(period0 - age0 + ((shape.k0 + k) as f64 - shape.a as f64) * width))
             .collect(),
     }
+}
+
+/// Trim the cohorts to those observed, and check that every age group,
+/// period and cohort in between has observations.
+fn observed_shape(path: &Path, a: usize, p: usize, cells: &[Cell]) -> Result<Shape> {
+    let full = |c: &Cell| a + c.j - c.i;
+    let k0 = cells.iter().map(full).min().unwrap_or(1);
+    let k1 = cells.iter().map(full).max().unwrap_or(1);
+    let shape = Shape {
+        a,
+        p,
+        k0,
+        kn: k1 - k0 + 1,
+    };
+    for (name, levels, of) in [
+        ("age group", a, &(|c: &Cell| c.i) as &dyn Fn(&Cell) -> usize),
+        ("period", p, &|c: &Cell| c.j),
+        ("cohort", shape.kn, &|c: &Cell| full(c) - k0 + 1),
+    ] {
+        let mut seen = vec![false; levels];
+        for c in cells.iter() {
+            seen[of(c) - 1] = true;
+        }
+        if let Some(l) = seen.iter().position(|s| !s) {
+            return Err(Error::Data {
+                path: path.to_path_buf(),
+                message: format!(
+                    "{name} {} of {levels} has no observations, so its effect cannot be estimated; choose a wider --width or drop the empty group",
+                    l + 1
+                ),
+            });
+        }
+    }
+    Ok(shape)
 }
 
 /// Distinct sorted values and their common spacing, if any.
@@ -83,10 +117,7 @@ pub fn from_table(t: &NumericTable, names: [&str; 4]) -> Result<ApcData> {
             });
         }
     };
-    let shape = Shape {
-        a: ages.len(),
-        p: periods.len(),
-    };
+    let (a_n, p_n) = (ages.len(), periods.len());
     let mut seen = std::collections::HashMap::new();
     let mut cells = Vec::with_capacity(age.len());
     for k in 0..age.len() {
@@ -111,6 +142,7 @@ pub fn from_table(t: &NumericTable, names: [&str; 4]) -> Result<ApcData> {
             yy: 0.0,
         });
     }
+    let shape = observed_shape(path, a_n, p_n, &cells)?;
     Ok(ApcData {
         shape,
         cells,
@@ -119,6 +151,7 @@ pub fn from_table(t: &NumericTable, names: [&str; 4]) -> Result<ApcData> {
         n_obs: age.len(),
         width,
         origin: (ages[0], periods[0]),
+        ids: None,
     })
 }
 
@@ -155,7 +188,6 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
     };
     let a = ((max(age) - a0) / width).floor() as usize + 1;
     let p = ((max(period) - p0) / width).floor() as usize + 1;
-    let shape = Shape { a, p };
     let mut sums = vec![(0.0, 0.0, 0.0); a * p];
     for k in 0..age.len() {
         let i = ((age[k] - a0) / width).floor() as usize;
@@ -165,7 +197,7 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
         s.1 += 1.0;
         s.2 += y[k] * y[k];
     }
-    let cells = sums
+    let cells: Vec<Cell> = sums
         .iter()
         .enumerate()
         .filter(|(_, s)| s.1 > 0.0)
@@ -177,6 +209,7 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
             yy: s.2,
         })
         .collect();
+    let shape = observed_shape(&t.source, a, p, &cells)?;
     Ok(ApcData {
         shape,
         cells,
@@ -185,5 +218,32 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
         n_obs: age.len(),
         width,
         origin: (a0, p0),
+        ids: None,
+    })
+}
+
+/// Panels: records of participants seen repeatedly, one cell per record so
+/// that a random intercept per participant can be fitted.
+///
+/// # Errors
+/// Those of [`from_records`].
+pub fn from_panel(t: &NumericTable, ids: &[u32], width: Option<f64>) -> Result<ApcData> {
+    let grouped = from_records(t, width)?;
+    let (a0, p0) = grouped.origin;
+    let w = grouped.width;
+    let (age, period, y) = (&t.columns[0], &t.columns[1], &t.columns[2]);
+    let cells = (0..age.len())
+        .map(|k| Cell {
+            i: ((age[k] - a0) / w).floor() as usize + 1,
+            j: ((period[k] - p0) / w).floor() as usize + 1,
+            y: y[k],
+            e: 1.0,
+            yy: y[k] * y[k],
+        })
+        .collect();
+    Ok(ApcData {
+        cells,
+        ids: Some(ids.to_vec()),
+        ..grouped
     })
 }

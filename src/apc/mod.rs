@@ -64,12 +64,26 @@ pub struct Shape {
     pub a: usize,
     /// Periods.
     pub p: usize,
+    /// The first observed cohort, in the full indexing k = a − i + j (1-based).
+    pub k0: usize,
+    /// Observed cohorts (a + p − 1 for a full table; fewer when the corner
+    /// cohorts of a sparse design have no observations).
+    pub kn: usize,
 }
 
 impl Shape {
-    /// Cohorts, a + p − 1.
+    /// A full table: every cohort from 1 to a + p − 1.
+    pub fn full(a: usize, p: usize) -> Shape {
+        Shape {
+            a,
+            p,
+            k0: 1,
+            kn: a + p - 1,
+        }
+    }
+    /// Cohorts.
     pub fn k(&self) -> usize {
-        self.a + self.p - 1
+        self.kn
     }
     /// Number of coded parameters, 1 + (a − 1) + (p − 1) + (K − 1).
     pub fn n_params(&self) -> usize {
@@ -91,9 +105,9 @@ impl Shape {
             Dimension::Cohort => self.a + self.p - 1,
         }
     }
-    /// Cohort index (1-based) of age i and period j (1-based).
+    /// Cohort index (1-based, among the observed cohorts) of age i and period j (1-based).
     pub fn cohort(&self, i: usize, j: usize) -> usize {
-        self.a - i + j
+        self.a + j - i + 1 - self.k0
     }
     /// The coded design row of cell (i, j), 1-based indices.
     pub fn row(&self, i: usize, j: usize) -> Vec<f64> {
@@ -139,13 +153,17 @@ impl Shape {
 
 /// Kupper et al. (1985): the null vector of the coded APC design, 0 for the
 /// intercept, i − (a+1)/2 for age, (p+1)/2 − j for period and k − (a+p)/2 for
-/// cohort (each over the coded levels 1..L−1).
+/// cohort (each over the coded levels 1..L−1). With only cohorts k0..k0+K−1
+/// observed, the cohort entries are k − (K+1)/2 and the intercept takes the
+/// constant −(a − k0 + 1 − (a+1)/2 + (p+1)/2 − (K+1)/2), which is 0 for a full
+/// table (derivation in notes/decisions.md).
 pub fn null_vector(shape: Shape) -> Vec<f64> {
-    let (a, p) = (shape.a as f64, shape.p as f64);
-    let mut v = vec![0.0];
+    let (a, p, kn) = (shape.a as f64, shape.p as f64, shape.kn as f64);
+    let c = a - shape.k0 as f64 + 1.0;
+    let mut v = vec![-(c - (a + 1.0) / 2.0 + (p + 1.0) / 2.0 - (kn + 1.0) / 2.0)];
     v.extend((1..shape.a).map(|i| i as f64 - (a + 1.0) / 2.0));
     v.extend((1..shape.p).map(|j| (p + 1.0) / 2.0 - j as f64));
-    v.extend((1..shape.k()).map(|k| k as f64 - (a + p) / 2.0));
+    v.extend((1..shape.k()).map(|k| k as f64 - (kn + 1.0) / 2.0));
     v
 }
 
@@ -156,7 +174,7 @@ pub fn complement_basis(v: &[f64]) -> Vec<f64> {
     let n = v.len();
     let norm = v.iter().map(|x| x * x).sum::<f64>().sqrt();
     let u: Vec<f64> = v.iter().map(|x| x / norm).collect();
-    // w = u − e₁ (u₁ = 0 here, so w is never zero).
+    // w = u − e₁ (u₁ < 1 since v has more than one nonzero entry).
     let mut w = u.clone();
     w[0] -= 1.0;
     let ww: f64 = w.iter().map(|x| x * x).sum();
@@ -175,12 +193,12 @@ pub fn complement_basis(v: &[f64]) -> Vec<f64> {
 /// # Errors
 /// [`Error::Spec`] with fewer than 3 age groups or periods.
 pub fn check_shape(shape: Shape) -> Result<()> {
-    if shape.a < 3 || shape.p < 3 {
+    if shape.a < 3 || shape.p < 3 || shape.kn < 3 {
         return Err(Error::Spec {
             parameter: "--width".into(),
             message: format!(
-                "{} age groups and {} periods: an age–period–cohort model needs at least 3 of each; choose a narrower --width",
-                shape.a, shape.p
+                "{} age groups, {} periods and {} cohorts: an age–period–cohort model needs at least 3 of each; choose a narrower --width",
+                shape.a, shape.p, shape.kn
             ),
         });
     }
@@ -194,7 +212,7 @@ mod unit {
     // Kupper et al. (1985): X v = 0 for every cell (closed form, 5×4).
     #[test]
     fn null_vector_annihilates_every_row() {
-        let s = Shape { a: 5, p: 4 };
+        let s = Shape::full(5, 4);
         let v = null_vector(s);
         for i in 1..=s.a {
             for j in 1..=s.p {
@@ -206,9 +224,32 @@ mod unit {
     }
 
     // The complement basis is orthonormal and orthogonal to v (identity).
+    // With corner cohorts missing (cohorts 3..8 of 10 observed, a = 5, p = 6)
+    // the trimmed null vector still annihilates every observed cell.
+    #[test]
+    fn trimmed_null_vector_annihilates_the_observed_cells() {
+        let s = Shape {
+            a: 5,
+            p: 6,
+            k0: 3,
+            kn: 6,
+        };
+        let v = null_vector(s);
+        for i in 1..=s.a {
+            for j in 1..=s.p {
+                let k = s.a + j - i;
+                if !(3..=8).contains(&k) {
+                    continue;
+                }
+                let dot: f64 = s.row(i, j).iter().zip(&v).map(|(a, b)| a * b).sum();
+                assert!(dot.abs() < 1e-12, "cell ({i},{j}): {dot}");
+            }
+        }
+    }
+
     #[test]
     fn complement_basis_is_orthonormal() {
-        let v = null_vector(Shape { a: 4, p: 3 });
+        let v = null_vector(Shape::full(4, 3));
         let n = v.len();
         let b = complement_basis(&v);
         for c1 in 0..n - 1 {

@@ -253,6 +253,9 @@ pub struct ApcArgs {
     /// Column holding the period (calendar year of assessment, or the group's first year).
     #[arg(long, value_name = "COLUMN")]
     pub period: String,
+    /// Panels: column holding the participant id (adds a random intercept per participant).
+    #[arg(long, value_name = "COLUMN", requires = "outcome")]
+    pub id: Option<String>,
     /// Records: column holding a continuous outcome.
     #[arg(long, value_name = "COLUMN", required_unless_present = "events", conflicts_with_all = ["events", "exposure"])]
     pub outcome: Option<String>,

@@ -274,6 +274,27 @@ fn apc_command(a: &args::ApcArgs) -> Result<()> {
     }
     let mut records = None;
     let data = match (&a.outcome, &a.events, &a.exposure) {
+        (Some(y), _, _) if a.id.is_some() => {
+            let roles = data::Roles {
+                id: a.id.clone().unwrap_or_default(),
+                age: a.age.clone(),
+                outcome: y.clone(),
+                period: Some(a.period.clone()),
+                ..Default::default()
+            };
+            let panel = data::load(&a.data, &roles, read)?;
+            let period = panel.calendar.as_ref().map(|c| c.period.clone()).unwrap_or_default();
+            let t = data::NumericTable {
+                source: panel.source.clone(),
+                columns: vec![panel.age.clone(), period, panel.outcome.clone()],
+                n_rows_read: panel.n_rows_read,
+                dropped: panel.dropped.total(),
+                rows: panel.row.clone(),
+            };
+            let d = crate::apc::intake::from_panel(&t, &panel.id.codes, a.width)?;
+            records = Some(t);
+            d
+        }
         (Some(y), _, _) => {
             let t = data::numeric_table(
                 &a.data,

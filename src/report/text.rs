@@ -510,6 +510,8 @@ pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport
         "Data",
         if r.outcome == "counts" {
             "a table of counts with exposure, Poisson log-linear"
+        } else if r.panel.is_some() {
+            "panel records, linear mixed model with a random intercept per participant (ML)"
         } else {
             "records with a continuous outcome, least squares"
         },
@@ -531,7 +533,14 @@ pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport
         .collect();
     let _ = writeln!(s, "{:<11}{}", "", wrap(&line.join(" "), 75, 11));
     let _ = writeln!(s);
-    let _ = writeln!(s, "{:<16}{:>14}{:>8}", "Deviance", "", "df");
+    let kind = if r.outcome == "counts" {
+        "(Poisson deviance)"
+    } else if r.panel.is_some() {
+        "(−2 × ML log-likelihood)"
+    } else {
+        "(residual sum of squares)"
+    };
+    let _ = writeln!(s, "{:<16}{:>14}{:>8}  {kind}", "Deviance", "", "df");
     for d in &r.deviance_table {
         let _ = writeln!(s, "  {:<14}{:>14.4}{:>8}", d.model, d.deviance, d.df);
     }
@@ -610,6 +619,12 @@ pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport
                     end(sb.to, "+∞")
                 );
             }
+        }
+    }
+    if let Some(pv) = &r.panel {
+        let _ = writeln!(s);
+        for (i, t) in pv.text.iter().enumerate() {
+            let _ = writeln!(s, "{:<11}{}", if i == 0 { "Your panel" } else { "" }, wrap(t, 75, 11));
         }
     }
     if let Some(h) = &r.hierarchical {

@@ -116,7 +116,7 @@ fn second_differences_and_fits_do_not_depend_on_the_constraint() {
 #[test]
 fn null_vector_is_kuppers_closed_form() {
     for (a, p) in [(5, 4), (7, 7), (3, 10), (10, 3)] {
-        let shape = Shape { a, p };
+        let shape = Shape::full(a, p);
         let q = shape.n_params();
         let mut xtx = faer::Mat::<f64>::zeros(q, q);
         for i in 1..=a {
@@ -178,6 +178,7 @@ fn null_vector_is_kuppers_closed_form() {
             n_obs: a * p,
             width: 1.0,
             origin: (1.0, 1.0),
+            ids: None,
         };
         let report = analyse(&data, &[], &[]).unwrap();
         let b0: Vec<f64> = report.line_origin.iter().map(|t| t.value).collect();
@@ -315,4 +316,39 @@ fn hierarchical_apc_matches_the_reference_variance_components_fit() {
     let scale = h["scale"].as_f64().unwrap();
     assert!(rel(fit.sd_residual.powi(2), scale, 1e-6) < VARIANCE_REL);
     assert!(fit.caution.contains("hidden constraint"));
+}
+
+// A cohort-sequential panel (the simulated demo design, which has no period
+// effects): the corner cohorts are empty and trimmed, the trimmed null vector
+// annihilates every record's row, fitted values agree across constraints,
+// and the test of period effects beyond age and cohort keeps its level here.
+#[test]
+fn a_cohort_sequential_panel_shows_the_problem_and_the_linkage_test() {
+    let sim = braid::simulate::simulate(&braid::simulate::Design {
+        per_cohort: 60,
+        ..braid::simulate::Design::demo()
+    });
+    let panel = sim.panel(false);
+    let period = panel.calendar.as_ref().unwrap().period.clone();
+    let t = NumericTable {
+        source: "simulated".into(),
+        columns: vec![panel.age.clone(), period, panel.outcome.clone()],
+        n_rows_read: panel.n(),
+        dropped: 0,
+        rows: (1..=panel.n()).collect(),
+    };
+    let data = intake::from_panel(&t, &panel.id.codes, Some(1.0)).unwrap();
+    assert!(
+        data.shape.kn < data.shape.a + data.shape.p - 1,
+        "corner cohorts are trimmed"
+    );
+    let report = analyse(&data, &[], &[]).unwrap();
+    assert_eq!(report.rank_deficiency, 1);
+    assert!(report.null_vector_residual < NULL_VECTOR_ABS);
+    assert!(report.fitted_max_difference < INVARIANT_ABS);
+    let view = report.panel.unwrap();
+    assert_eq!(view.n_participants, panel.id.n_levels());
+    assert!(view.period_beyond_cohort.df >= 1.0);
+    assert!(view.period_beyond_cohort.p > 0.001, "{:?}", view.period_beyond_cohort);
+    assert!(view.text.iter().any(|t| t.contains("converge")));
 }
