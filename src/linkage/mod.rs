@@ -15,6 +15,7 @@
 //! baseline (within persons).
 
 pub mod retest;
+pub mod variance;
 
 use serde::Serialize;
 
@@ -330,7 +331,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
     let m2 = fit_with(&p2, Method::Ml)?;
     let m2r = fit_with(&p2, Method::Reml)?;
     let kc = cohorts.len() - 1;
-    let models = vec![
+    let mut models = vec![
         summary("M0", "one common trajectory", &m0),
         summary(
             "M1",
@@ -350,7 +351,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
             })
             .collect()
     };
-    let tests = vec![
+    let mut tests = vec![
         likelihood_ratio("M1 vs M0: cohorts differ in level", m0.loglik, m1.loglik, kc, false),
         likelihood_ratio(
             "M2 vs M1: cohorts differ in age trend",
@@ -439,6 +440,26 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         })
         .collect();
     let mut notes = Vec::new();
+    match variance::m3_test(&frame.problem, &m2r, &k_of, cohorts.len(), 1 + nb)? {
+        Ok((test, loglik, converged)) => {
+            models.push(ModelSummary {
+                name: "M3".into(),
+                description: "M2 + cohort-specific covariances and residual variance".into(),
+                method: "REML".into(),
+                loglik,
+                n_params: m2r.n_params + kc * (frame.problem.n_theta() + 1),
+                aic: -2.0 * loglik + 2.0 * (m2r.n_params + kc * (frame.problem.n_theta() + 1)) as f64,
+                bic: -2.0 * loglik + (m2r.n_params + kc * (frame.problem.n_theta() + 1)) as f64 * (n as f64).ln(),
+                converged,
+            });
+            tests.push(test);
+        }
+        Err(why) => notes.push(format!("M3 not fitted: {why}")),
+    }
+    let m0r = fit_with(&frame.problem, Method::Reml)?;
+    if let Some(t) = variance::random_slope_test(&frame.problem, &m0r)? {
+        tests.push(t);
+    }
     for m in [&m0, &m1, &m2, &m2r] {
         if !m.info.converged {
             notes.push("a fit of the sequence did not reach a certified minimum; read its test with care".to_string());
@@ -447,6 +468,19 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
     let between_within = between_within(panel, &frame, &spec0, &mut notes);
     let retest = options.retest.map(|f| retest::check(panel, &frame, f)).transpose()?;
     let (mut verdict, assumptions) = verdict(&tests, &shared_ages, margin, reference_age, &between_within);
+    if let Some(t) = tests.iter().find(|t| t.name.starts_with("M3")) {
+        verdict.push_str(&format!(
+            " Cohort-specific covariances and residual variances (M3 against M2): χ² = {:.2} on {} df, p = {:.3}{}.",
+            t.statistic,
+            t.df,
+            t.p,
+            if t.p < 1.0 - LEVEL {
+                ": the cohorts differ in how much people vary, so one covariance for all is not supported"
+            } else {
+                ""
+            }
+        ));
+    }
     if let Some(r) = &retest {
         verdict.push_str(&format!(" Retest: {}.", r.message));
         if let (Some(e), Some(w)) = (r.estimate, r.age_slope_with) {

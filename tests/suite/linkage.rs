@@ -169,3 +169,51 @@ fn retest_identification_on_three_designs() {
     assert!(report.retest.is_some());
     assert!(report.verdict.contains("Retest"));
 }
+
+// M3's REML log-likelihood is the sum of separate per-cohort REML fits
+// (closed form: the REML criterion is additive over independent blocks with a
+// block-diagonal X). Two cohorts that are copies of each other (disjoint ids)
+// give M3 = 2 × one cohort's REML log-likelihood and an M3-vs-M2 statistic of
+// zero, since M2's common covariance is then each copy's own.
+#[test]
+fn m3_of_two_identical_cohorts_is_twice_one_and_adds_nothing() {
+    let sim = simulate(&design(515, 0.0, 80));
+    let mut text = String::from("pupil,cohort,age,score\n");
+    let mut single = String::from("pupil,age,score\n");
+    for r in sim.rows.iter().filter(|r| r.cohort == "14") {
+        text.push_str(&format!("A{},a,{},{}\n", r.id, r.age, r.score));
+        text.push_str(&format!("B{},b,{},{}\n", r.id, r.age, r.score));
+        single.push_str(&format!("{},{},{}\n", r.id, r.age, r.score));
+    }
+    let dir = crate::common::temp_dir("m3");
+    std::fs::write(dir.join("twins.csv"), text).unwrap();
+    std::fs::write(dir.join("single.csv"), single).unwrap();
+    let mut r = roles("pupil", "age", "score");
+    r.cohort = Some("cohort".into());
+    let twins = braid::data::load(&dir.join("twins.csv"), &r, Default::default()).unwrap();
+    let one = braid::data::load(
+        &dir.join("single.csv"),
+        &roles("pupil", "age", "score"),
+        Default::default(),
+    )
+    .unwrap();
+    let report = converge(&twins, &ModelSpec::default(), &ConvergeOptions::default()).unwrap();
+    let m3 = report.models.iter().find(|m| m.name == "M3").unwrap();
+    // The single cohort's REML fit, centred where converge centres.
+    let spec = ModelSpec {
+        center: Some(report.reference_age),
+        ..Default::default()
+    };
+    let fit = braid::fit_panel(&one, &spec, &braid::infer::TrajectoryRequest::grid(2)).unwrap();
+    assert!(
+        (m3.loglik - 2.0 * fit.fit.loglik).abs() < crate::tolerance::REFIT_LOGLIK_ABS * 10.0,
+        "M3 {} vs 2 × {}",
+        m3.loglik,
+        fit.fit.loglik
+    );
+    let t = report.tests.iter().find(|t| t.name.starts_with("M3")).unwrap();
+    assert!(t.statistic < 1e-5, "{}", t.statistic);
+    // The random-slope test uses the boundary mixture and says so.
+    let slope = report.tests.iter().find(|t| t.name.contains("slope")).unwrap();
+    assert!(slope.method.contains("mixture"), "{}", slope.method);
+}
