@@ -253,6 +253,9 @@ pub struct ApcArgs {
     /// Column holding the period (calendar year of assessment, or the group's first year).
     #[arg(long, value_name = "COLUMN")]
     pub period: String,
+    /// Records: column holding the birth year, when given rather than derived; braid checks it against period − age.
+    #[arg(long, value_name = "COLUMN", requires = "outcome")]
+    pub cohort: Option<String>,
     /// Panels: column holding the participant id (adds a random intercept per participant).
     #[arg(long, value_name = "COLUMN", requires = "outcome")]
     pub id: Option<String>,

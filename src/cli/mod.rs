@@ -328,6 +328,28 @@ fn apc_command(a: &args::ApcArgs) -> Result<()> {
         }
     };
     let mut result = crate::apc::analysis::analyse(&data, &constraints, &assumptions)?;
+    if let (Some(c), Some(t)) = (&a.cohort, &records) {
+        let births = data::numeric_table(&a.data, &[("--cohort", c)], read)?;
+        // Rows with a missing birth year are not in the records' rows; match by row number.
+        let by_row: std::collections::HashMap<usize, f64> = births
+            .rows
+            .iter()
+            .copied()
+            .zip(births.columns[0].iter().copied())
+            .collect();
+        let mut kept = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
+        for (k, r) in t.rows.iter().enumerate() {
+            if let Some(&b) = by_row.get(r) {
+                kept.0.push(*r);
+                kept.1.push(t.columns[0][k]);
+                kept.2.push(t.columns[1][k]);
+                kept.3.push(b);
+            }
+        }
+        result.cohort_check = Some(crate::apc::analysis::check_cohort(
+            &a.data, c, &kept.0, &kept.1, &kept.2, &kept.3,
+        )?);
+    }
     if let (true, Some(t)) = (a.hierarchical, &records) {
         result.hierarchical = Some(crate::apc::hierarchical::fit(t, &data)?);
     }

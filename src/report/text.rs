@@ -621,6 +621,10 @@ pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport
             }
         }
     }
+    if let Some(c) = &r.cohort_check {
+        let _ = writeln!(s);
+        let _ = writeln!(s, "{:<11}{}", "Cohorts", wrap(&c.note, 75, 11));
+    }
     if let Some(pv) = &r.panel {
         let _ = writeln!(s);
         for (i, t) in pv.text.iter().enumerate() {

@@ -534,3 +534,43 @@ fn apc_writes_the_identification_report_with_stable_keys() {
     assert_eq!(err.lines().count(), 1, "{err}");
     assert!(err.contains("--constraint"), "{err}");
 }
+
+#[test]
+fn apc_checks_a_given_birth_year_column_and_fits_the_hierarchical_model() {
+    let dir = temp_dir("apc-cohort");
+    // The invented cross-section with a whole-year birth year column.
+    let text = fs::read_to_string(data_dir().join("hapc_cross_section.csv")).unwrap();
+    let mut out = String::from("age,year,score,born\n");
+    for line in text.lines().skip(1) {
+        let f: Vec<f64> = line.split(',').map(|x| x.parse().unwrap()).collect();
+        out.push_str(&format!("{},{},{},{}\n", f[0], f[1], f[2], (f[1] - f[0]).floor()));
+    }
+    let file = dir.join("births.csv");
+    fs::write(&file, out).unwrap();
+    let json = dir.join("apc.json");
+    let run = |cohort: &str, json: &std::path::Path| {
+        Command::new(braid_bin())
+            .arg("apc")
+            .arg(&file)
+            .args(["--age", "age", "--period", "year", "--outcome", "score", "--width", "5"])
+            .args(["--cohort", cohort, "--hierarchical", "--quiet", "--json"])
+            .arg(json)
+            .output()
+            .unwrap()
+    };
+    let ok = run("born", &json);
+    assert!(ok.status.success(), "{}", String::from_utf8_lossy(&ok.stderr));
+    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    assert!(v["cohort_check"]["max_gap"].as_f64().unwrap() <= 1.0);
+    assert!(
+        v["hierarchical"]["caution"]
+            .as_str()
+            .unwrap()
+            .contains("hidden constraint")
+    );
+    // A column that is not a birth year is refused, naming a row.
+    let bad = run("score", &dir.join("other.json"));
+    assert_eq!(bad.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&bad.stderr);
+    assert!(err.contains("is not a birth year") && err.contains("data row"), "{err}");
+}
