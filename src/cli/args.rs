@@ -103,24 +103,15 @@ pub struct FitArgs {
     /// Column roles.
     #[command(flatten)]
     pub roles: RoleArgs,
-    /// Degree of the centred age polynomial, 1 to 4 [default: 2].
-    #[arg(long, value_name = "N", conflicts_with_all = ["knots", "knot_ages"])]
-    pub degree: Option<usize>,
-    /// Use a natural cubic spline in age with K interior knots at quantiles of age.
-    #[arg(long, value_name = "K", conflicts_with = "knot_ages")]
-    pub knots: Option<usize>,
-    /// Use a natural cubic spline with interior knots at these ages (comma-separated).
-    #[arg(long, value_name = "AGES", value_delimiter = ',')]
-    pub knot_ages: Option<Vec<f64>>,
+    /// The age basis and random part.
+    #[command(flatten)]
+    pub model: ModelArgs,
     /// Centre age of the basis and of the random slope [default: the mean age].
     #[arg(long, value_name = "AGE")]
     pub center: Option<f64>,
     /// Estimation criterion [default: reml].
     #[arg(long, value_enum)]
     pub method: Option<MethodArg>,
-    /// Give participants a random intercept only (no random age slope).
-    #[arg(long)]
-    pub no_slope: bool,
     /// Folder for fit.json, trajectory.csv, trajectory.png and trajectory.svg.
     #[arg(long, value_name = "DIR")]
     pub out: Option<PathBuf>,
@@ -147,6 +138,23 @@ pub struct FitArgs {
     /// Overwrite an existing --out folder's files or --json file.
     #[arg(long)]
     pub force: bool,
+}
+
+/// The age basis and random part, shared by the commands that fit models.
+#[derive(Debug, Clone, Default, Args)]
+pub struct ModelArgs {
+    /// Degree of the centred age polynomial, 1 to 4 [default: 2].
+    #[arg(long, value_name = "N", conflicts_with_all = ["knots", "knot_ages"])]
+    pub degree: Option<usize>,
+    /// Use a natural cubic spline in age with K interior knots at quantiles of age.
+    #[arg(long, value_name = "K", conflicts_with = "knot_ages")]
+    pub knots: Option<usize>,
+    /// Use a natural cubic spline with interior knots at these ages (comma-separated).
+    #[arg(long, value_name = "AGES", value_delimiter = ',')]
+    pub knot_ages: Option<Vec<f64>>,
+    /// Give participants a random intercept only (no random age slope).
+    #[arg(long)]
+    pub no_slope: bool,
 }
 
 /// Flags of `braid inspect`.
@@ -199,18 +207,9 @@ pub struct ConvergeArgs {
     /// Derived cohorts, when the file has no cohort column.
     #[command(flatten)]
     pub derive: DeriveArgs,
-    /// Degree of the centred age polynomial, 1 to 4 [default: 2].
-    #[arg(long, value_name = "N", conflicts_with_all = ["knots", "knot_ages"])]
-    pub degree: Option<usize>,
-    /// Use a natural cubic spline in age with K interior knots at quantiles of age.
-    #[arg(long, value_name = "K", conflicts_with = "knot_ages")]
-    pub knots: Option<usize>,
-    /// Use a natural cubic spline with interior knots at these ages (comma-separated).
-    #[arg(long, value_name = "AGES", value_delimiter = ',')]
-    pub knot_ages: Option<Vec<f64>>,
-    /// Give participants a random intercept only (no random age slope).
-    #[arg(long)]
-    pub no_slope: bool,
+    /// The age basis and random part.
+    #[command(flatten)]
+    pub model: ModelArgs,
     /// Age at which cohort level differences are measured [default: the median age inside the overlaps].
     #[arg(long, value_name = "AGE")]
     pub reference_age: Option<f64>,

@@ -239,16 +239,16 @@ impl FitConfig {
                 MethodArg::Ml => Method::Ml,
             };
         }
-        if let Some(d) = args.degree {
+        if let Some(d) = args.model.degree {
             model.age = AgeSpec::Polynomial { degree: d };
         }
-        if let Some(k) = args.knots {
+        if let Some(k) = args.model.knots {
             model.age = AgeSpec::Spline {
                 interior_knots: Some(k),
                 knots: None,
             };
         }
-        if let Some(k) = &args.knot_ages {
+        if let Some(k) = &args.model.knot_ages {
             model.age = AgeSpec::Spline {
                 interior_knots: None,
                 knots: Some(k.clone()),
@@ -257,7 +257,7 @@ impl FitConfig {
         if let Some(c) = args.center {
             model.center = Some(c);
         }
-        if args.no_slope {
+        if args.model.no_slope {
             let mut terms = vec![RandomSpec {
                 factor: roles.id.clone(),
                 intercept: true,
@@ -334,7 +334,10 @@ mod tests {
                 cluster: Some("school".into()),
                 ..Default::default()
             },
-            degree: Some(3),
+            model: super::super::args::ModelArgs {
+                degree: Some(3),
+                ..Default::default()
+            },
             center: Some(16.0),
             method: Some(MethodArg::Ml),
             grid: 101,

@@ -176,10 +176,7 @@ fn converge_command(a: &args::ConvergeArgs) -> Result<()> {
         data: a.data.clone(),
         study: a.study.clone(),
         roles: a.roles.clone(),
-        degree: a.degree,
-        knots: a.knots,
-        knot_ages: a.knot_ages.clone(),
-        no_slope: a.no_slope,
+        model: a.model.clone(),
         grid: 2,
         ..Default::default()
     })?;

@@ -146,8 +146,9 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
     }
 }
 
-/// Each row's rank among its participant's assessments, in order of age.
-fn assessment_order(panel: &Panel) -> Vec<usize> {
+/// Each row's rank (1, 2, ...) among its participant's assessments, in
+/// order of age.
+pub fn assessment_order(panel: &Panel) -> Vec<usize> {
     let n = panel.n();
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&a, &b| {

@@ -78,31 +78,15 @@ pub struct RetestReport {
 /// The retest column for each row: prior assessments counted in age order
 /// within each participant.
 pub fn column(panel: &Panel, form: RetestForm) -> Vec<f64> {
-    let n = panel.n();
-    let mut order: Vec<usize> = (0..n).collect();
-    order.sort_by(|&a, &b| {
-        panel.id.codes[a]
-            .cmp(&panel.id.codes[b])
-            .then(panel.age[a].total_cmp(&panel.age[b]))
-    });
-    let mut prior = vec![0.0; n];
-    let mut prev = u32::MAX;
-    let mut k = 0.0;
-    for &r in &order {
-        if panel.id.codes[r] != prev {
-            prev = panel.id.codes[r];
-            k = 0.0;
-        } else {
-            k += 1.0;
-        }
-        prior[r] = k;
-    }
-    prior
+    crate::data::derive::assessment_order(panel)
         .into_iter()
-        .map(|c| match form {
-            RetestForm::Count => c,
-            RetestForm::Later => f64::from(u8::from(c > 0.0)),
-            RetestForm::Sqrt => c.sqrt(),
+        .map(|rank| {
+            let c = (rank - 1) as f64;
+            match form {
+                RetestForm::Count => c,
+                RetestForm::Later => f64::from(u8::from(c > 0.0)),
+                RetestForm::Sqrt => c.sqrt(),
+            }
         })
         .collect()
 }

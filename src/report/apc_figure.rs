@@ -19,7 +19,7 @@ use plotters::coord::Shift;
 use plotters::prelude::*;
 use plotters::style::FontTransform;
 
-use super::figure::{GROUND, INK, PALETTE, register_font};
+use super::figure::{GROUND, INK, PALETTE, register_font, styled_legend, styled_mesh};
 use crate::apc::Dimension;
 use crate::apc::analysis::ApcReport;
 use crate::error::{Error, Result};
@@ -78,8 +78,7 @@ fn effects_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimensi
         .y_label_area_size(56)
         .build_cartesian_2d(-0.4..(n as f64 - 0.6), lo..hi)
         .map_err(e)?;
-    chart
-        .configure_mesh()
+    styled_mesh(&mut chart, 12)
         .x_labels(n.min(14))
         .x_label_formatter(&formatter)
         .x_desc(d.name())
@@ -88,11 +87,6 @@ fn effects_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimensi
         } else {
             "effect"
         })
-        .axis_desc_style(("sans-serif", 15).into_font().color(&INK))
-        .label_style(("sans-serif", 12).into_font().color(&INK))
-        .bold_line_style(RGBColor(232, 228, 218))
-        .light_line_style(GROUND)
-        .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
     for (k, (v, s)) in series.iter().zip(&r.solutions).enumerate() {
@@ -117,14 +111,7 @@ fn effects_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimensi
             .map_err(e)?;
     }
     if d == Dimension::Age {
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperLeft)
-            .background_style(GROUND.mix(0.9))
-            .border_style(RGBColor(200, 195, 185))
-            .label_font(("sans-serif", 12).into_font().color(&INK))
-            .draw()
-            .map_err(e)?;
+        styled_legend(&mut chart, SeriesLabelPosition::UpperLeft, 12)?;
     }
     Ok(())
 }
@@ -162,16 +149,10 @@ fn curvature_panel<DB: DrawingBackend>(
         .y_label_area_size(56)
         .build_cartesian_2d(-0.4..(n as f64 - 0.6), lo..hi)
         .map_err(e)?;
-    chart
-        .configure_mesh()
+    styled_mesh(&mut chart, 12)
         .x_labels(n.min(14))
         .x_label_formatter(&formatter)
         .x_desc(d.name())
-        .axis_desc_style(("sans-serif", 15).into_font().color(&INK))
-        .label_style(("sans-serif", 12).into_font().color(&INK))
-        .bold_line_style(RGBColor(232, 228, 218))
-        .light_line_style(GROUND)
-        .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
     chart
@@ -224,15 +205,9 @@ fn line_figure<DB: DrawingBackend>(root: Panel<DB>, r: &ApcReport) -> std::resul
         .y_label_area_size(68)
         .build_cartesian_2d(t0..t1, lo..hi)
         .map_err(e)?;
-    chart
-        .configure_mesh()
+    styled_mesh(&mut chart, 14)
         .x_desc("t (position on the line of solutions)")
         .y_desc("slope per group step")
-        .axis_desc_style(("sans-serif", 16).into_font().color(&INK))
-        .label_style(("sans-serif", 14).into_font().color(&INK))
-        .bold_line_style(RGBColor(232, 228, 218))
-        .light_line_style(GROUND)
-        .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
     if let Some(b) = r.bounds.as_ref().filter(|b| !b.contradiction) {
@@ -276,14 +251,7 @@ fn line_figure<DB: DrawingBackend>(root: Panel<DB>, r: &ApcReport) -> std::resul
             )))
             .map_err(e)?;
     }
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::LowerRight)
-        .background_style(GROUND.mix(0.9))
-        .border_style(RGBColor(200, 195, 185))
-        .label_font(("sans-serif", 13).into_font().color(&INK))
-        .draw()
-        .map_err(e)?;
+    styled_legend(&mut chart, SeriesLabelPosition::LowerRight, 13)?;
     root.present().map_err(e)?;
     Ok(())
 }

@@ -12,7 +12,7 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, register_font};
+use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, register_font, styled_legend, styled_mesh};
 use crate::error::{Error, Result};
 use crate::linkage::ConvergeReport;
 
@@ -43,15 +43,9 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
         .y_label_area_size(68)
         .build_cartesian_2d((x0 - px)..(x1 + px), (y0 - py)..(y1 + py))
         .map_err(e)?;
-    chart
-        .configure_mesh()
+    styled_mesh(&mut chart, 14)
         .x_desc("age (years)")
         .y_desc("later minus earlier cohort (outcome units)")
-        .axis_desc_style(("sans-serif", 16).into_font().color(&INK))
-        .label_style(("sans-serif", 14).into_font().color(&INK))
-        .bold_line_style(RGBColor(232, 228, 218))
-        .light_line_style(GROUND)
-        .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
     chart
@@ -106,14 +100,7 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
             .label(format!("cohort {b} − cohort {a}"))
             .legend(move |(x, y)| Circle::new((x + 11, y), 5, color.filled()));
     }
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::UpperLeft)
-        .background_style(GROUND.mix(0.9))
-        .border_style(RGBColor(200, 195, 185))
-        .label_font(("sans-serif", 14).into_font().color(&INK))
-        .draw()
-        .map_err(e)?;
+    styled_legend(&mut chart, SeriesLabelPosition::UpperLeft, 14)?;
     root.present().map_err(e)?;
     Ok(())
 }

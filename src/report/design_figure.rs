@@ -18,7 +18,7 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, register_font};
+use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, register_font, styled_legend, styled_mesh};
 use crate::data::Panel;
 use crate::design::DesignReport;
 use crate::error::{Error, Result};
@@ -145,15 +145,9 @@ fn draw_lexis<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, data: &LexisData
         .y_label_area_size(60)
         .build_cartesian_2d(t0..t1, a0..a1)
         .map_err(e)?;
-    chart
-        .configure_mesh()
+    styled_mesh(&mut chart, 14)
         .x_desc(data.time_label.clone())
         .y_desc("age (years)")
-        .axis_desc_style(("sans-serif", 16).into_font().color(&INK))
-        .label_style(("sans-serif", 14).into_font().color(&INK))
-        .bold_line_style(RGBColor(232, 228, 218))
-        .light_line_style(GROUND)
-        .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
     if data.calendar {
@@ -188,14 +182,7 @@ fn draw_lexis<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, data: &LexisData
             .label(format!("cohort {} ({} shown of {})", c.cohort, shown, c.n_participants))
             .legend(move |(x, y)| Circle::new((x + 11, y), 5, color.filled()));
     }
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::UpperLeft)
-        .background_style(GROUND.mix(0.9))
-        .border_style(RGBColor(200, 195, 185))
-        .label_font(("sans-serif", 14).into_font().color(&INK))
-        .draw()
-        .map_err(e)?;
+    styled_legend(&mut chart, SeriesLabelPosition::UpperLeft, 14)?;
     root.present().map_err(e)?;
     Ok(())
 }
@@ -228,8 +215,7 @@ fn draw_coverage<DB: DrawingBackend>(
         .y_label_area_size(80)
         .build_cartesian_2d(x0..x1, -0.6..(k as f64 - 0.4))
         .map_err(e)?;
-    chart
-        .configure_mesh()
+    styled_mesh(&mut chart, 14)
         .disable_y_mesh()
         .x_desc("age (years)")
         .y_desc("cohort")
@@ -242,11 +228,6 @@ fn draw_coverage<DB: DrawingBackend>(
                 String::new()
             }
         })
-        .axis_desc_style(("sans-serif", 16).into_font().color(&INK))
-        .label_style(("sans-serif", 14).into_font().color(&INK))
-        .bold_line_style(RGBColor(232, 228, 218))
-        .light_line_style(GROUND)
-        .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
     let width_px = f64::from(SIZE.0 - 130) / (x1 - x0).max(1e-9);

@@ -8,7 +8,13 @@
 use std::path::Path;
 use std::sync::Once;
 
+use plotters::chart::{ChartContext, MeshStyle};
+use plotters::coord::CoordTranslate;
 use plotters::coord::Shift;
+use plotters::coord::types::RangedCoordf64;
+
+/// The coordinate system of every braid figure.
+pub(crate) type Plane = Cartesian2d<RangedCoordf64, RangedCoordf64>;
 use plotters::prelude::*;
 use plotters::style::FontStyle;
 
@@ -44,6 +50,41 @@ pub(crate) const PALETTE: [RGBColor; 8] = [
 
 /// Size of the figures in pixels.
 pub const SIZE: (u32, u32) = (1000, 640);
+
+/// braid's mesh: a pale grid, muted axes and ink labels at `label` points
+/// (axis titles two points larger). Callers add titles and formatters.
+pub(crate) fn styled_mesh<'a, 'b, DB: DrawingBackend>(
+    chart: &'b mut ChartContext<'a, DB, Plane>,
+    label: u32,
+) -> MeshStyle<'a, 'b, RangedCoordf64, RangedCoordf64, DB> {
+    let mut mesh = chart.configure_mesh();
+    mesh.axis_desc_style(("sans-serif", label + 2).into_font().color(&INK))
+        .label_style(("sans-serif", label).into_font().color(&INK))
+        .bold_line_style(RGBColor(232, 228, 218))
+        .light_line_style(GROUND)
+        .axis_style(RGBColor(150, 145, 135));
+    mesh
+}
+
+/// braid's legend box at `position`, with text of `size` points.
+pub(crate) fn styled_legend<'a, DB, CT>(
+    chart: &mut ChartContext<'a, DB, CT>,
+    position: SeriesLabelPosition,
+    size: u32,
+) -> std::result::Result<(), String>
+where
+    DB: DrawingBackend + 'a,
+    CT: CoordTranslate,
+{
+    chart
+        .configure_series_labels()
+        .position(position)
+        .background_style(GROUND.mix(0.9))
+        .border_style(RGBColor(200, 195, 185))
+        .label_font(("sans-serif", size).into_font().color(&INK))
+        .draw()
+        .map_err(|e| e.to_string())
+}
 
 fn draw<DB: DrawingBackend>(
     root: DrawingArea<DB, Shift>,
@@ -86,15 +127,9 @@ fn draw<DB: DrawingBackend>(
         .y_label_area_size(68)
         .build_cartesian_2d((x0 - pad_x)..(x1 + pad_x), (lo - pad_y)..(hi + pad_y))
         .map_err(e)?;
-    chart
-        .configure_mesh()
+    styled_mesh(&mut chart, 14)
         .x_desc(format!("{} (years)", report.data.age))
         .y_desc(report.data.outcome.clone())
-        .axis_desc_style(("sans-serif", 17).into_font().color(&INK))
-        .label_style(("sans-serif", 14).into_font().color(&INK))
-        .bold_line_style(RGBColor(225, 220, 210))
-        .light_line_style(RGBColor(242, 238, 230))
-        .axis_style(RGBColor(150, 145, 135))
         .draw()
         .map_err(e)?;
     for l in lines {
@@ -158,14 +193,7 @@ fn draw<DB: DrawingBackend>(
             .label(label)
             .legend(move |(x, y)| Circle::new((x + 11, y), 5, color.filled()));
     }
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::LowerRight)
-        .background_style(GROUND.mix(0.9))
-        .border_style(RGBColor(200, 195, 185))
-        .label_font(("sans-serif", 14).into_font().color(&INK))
-        .draw()
-        .map_err(e)?;
+    styled_legend(&mut chart, SeriesLabelPosition::LowerRight, 14)?;
     root.present().map_err(e)?;
     Ok(())
 }
