@@ -48,6 +48,11 @@ fn main() {
     }
     let t_eval = t.elapsed() / reps;
     let t = Instant::now();
+    for _ in 0..reps {
+        std::hint::black_box(lmm::criterion::deviance_gradient(&cp, &theta, lmm::Method::Reml));
+    }
+    println!("one evaluation with gradient {:?}", t.elapsed() / reps);
+    let t = Instant::now();
     let fit = lmm::fit(&frame.problem, FitOptions::default()).unwrap();
     let t_fit = t.elapsed();
     let t = Instant::now();

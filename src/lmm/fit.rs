@@ -369,7 +369,15 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     let mut evaluations = 4;
     let mut iterations = 0;
     let mut restarts = 0;
-    let mut current = descend(&sdev, &start_x, &lower, &unit, options.optim);
+    // The analytic gradient in the scaled coordinates, when the model has one.
+    let sgrad = |x: &[f64]| -> Option<Vec<f64>> {
+        let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
+        criterion::deviance_gradient(&cp, &th, method)
+            .map(|(_, g)| g.iter().zip(&theta_scale).map(|(a, s)| a * s).collect())
+    };
+    let analytic = criterion::deviance_gradient(&cp, &start, method).is_some();
+    let grad: optimize::Gradient = if analytic { Some(&sgrad) } else { None };
+    let mut current = descend(&sdev, grad, &start_x, &lower, &unit, options.optim);
     iterations += current.iterations;
     evaluations += current.evaluations;
     // A zero diagonal entry of T is a stationary point of the criterion (it is
@@ -390,7 +398,7 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
             }
         }
         let Some((from, _)) = candidate else { break };
-        let next = descend(&sdev, &from, &lower, &unit, options.optim);
+        let next = descend(&sdev, grad, &from, &lower, &unit, options.optim);
         iterations += next.iterations;
         evaluations += next.evaluations;
         restarts += 1;
@@ -484,7 +492,14 @@ struct Descent {
     evaluations: usize,
 }
 
-fn descend(dev: &impl Fn(&[f64]) -> f64, start: &[f64], lower: &[f64], base: &[f64], optim: OptimOptions) -> Descent {
+fn descend(
+    dev: &impl Fn(&[f64]) -> f64,
+    grad: optimize::Gradient,
+    start: &[f64],
+    lower: &[f64],
+    base: &[f64],
+    optim: OptimOptions,
+) -> Descent {
     // The search stops early and hands over to the Newton finish; when the
     // finish cannot certify a minimum (the point is not yet in the region of
     // positive curvature), the search resumes with a tighter tolerance.
@@ -497,8 +512,9 @@ fn descend(dev: &impl Fn(&[f64]) -> f64, start: &[f64], lower: &[f64], base: &[f
         optim.value_tolerance * 1e-3,
         optim.value_tolerance * 1e-6,
     ] {
-        let result = optimize::minimize(
+        let result = optimize::minimize_with(
             dev,
+            grad,
             &x,
             lower,
             OptimOptions {
@@ -508,7 +524,7 @@ fn descend(dev: &impl Fn(&[f64]) -> f64, start: &[f64], lower: &[f64], base: &[f
         );
         iterations += result.iterations;
         evaluations += result.evaluations;
-        let p = optimize::newton_polish(dev, &result.x, result.value, lower);
+        let p = optimize::newton_polish_with(dev, grad, &result.x, result.value, lower);
         evaluations += p.evaluations;
         x = p.x.clone();
         let done = p.decrement.is_some_and(|d| d < NEWTON_DECREMENT_TOLERANCE);
@@ -537,7 +553,7 @@ fn descend(dev: &impl Fn(&[f64]) -> f64, start: &[f64], lower: &[f64], base: &[f
     }
     if theta != polished.x {
         // Certify the snapped point over the coordinates still free.
-        polished = optimize::newton_polish(dev, &theta, value, lower);
+        polished = optimize::newton_polish_with(dev, grad, &theta, value, lower);
         evaluations += polished.evaluations;
         theta = polished.x.clone();
         value = polished.value;

@@ -103,8 +103,32 @@ fn projected_norm(x: &[f64], g: &[f64], lower: &[f64]) -> f64 {
         .fold(0.0, f64::max)
 }
 
+/// An analytic gradient, when the criterion has one (`None` at a point where
+/// it cannot be computed: finite differences are used there).
+pub type Gradient<'a> = Option<&'a dyn Fn(&[f64]) -> Option<Vec<f64>>>;
+
+/// The gradient at `x`: analytic when available, else forward differences.
+fn gradient_at(f: &mut impl FnMut(&[f64]) -> f64, grad: Gradient, x: &[f64], fx: f64, evals: &mut usize) -> Vec<f64> {
+    if let Some(g) = grad.and_then(|g| g(x)) {
+        *evals += 1;
+        return g;
+    }
+    forward_gradient(f, x, fx, evals)
+}
+
 /// Minimise `f` subject to `x ≥ lower` from `x0`.
-pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opts: OptimOptions) -> OptimResult {
+pub fn minimize(f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opts: OptimOptions) -> OptimResult {
+    minimize_with(f, None, x0, lower, opts)
+}
+
+/// [`minimize`] with an analytic gradient when one is given.
+pub fn minimize_with(
+    mut f: impl FnMut(&[f64]) -> f64,
+    grad: Gradient,
+    x0: &[f64],
+    lower: &[f64],
+    opts: OptimOptions,
+) -> OptimResult {
     let d = x0.len();
     let mut x: Vec<f64> = x0.iter().zip(lower).map(|(&a, &l)| a.max(l)).collect();
     let mut evals = 0usize;
@@ -120,7 +144,7 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
             converged: true,
         };
     }
-    let mut g = forward_gradient(&mut f, &x, fx, &mut evals);
+    let mut g = gradient_at(&mut f, grad, &x, fx, &mut evals);
     // Initial inverse Hessian: the reciprocal diagonal curvatures from second
     // differences (2 evaluations per coordinate), so the first steps are
     // already on the right scale in every coordinate.
@@ -221,7 +245,7 @@ pub fn minimize(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opt
             converged = projected_norm(&x, &g, lower) < 1e-3;
             break;
         };
-        let gn = forward_gradient(&mut f, &xn, fnew, &mut evals);
+        let gn = gradient_at(&mut f, grad, &xn, fnew, &mut evals);
         let s: Vec<f64> = (0..d).map(|i| xn[i] - x[i]).collect();
         let yv: Vec<f64> = (0..d).map(|i| gn[i] - g[i]).collect();
         let sy: f64 = s.iter().zip(&yv).map(|(a, b)| a * b).sum();
@@ -424,7 +448,59 @@ pub struct Polished {
 /// A few safeguarded Newton steps with finite-difference derivatives, to
 /// finish a quasi-Newton run to full precision and to certify the minimum
 /// through the decrement and the curvature.
-pub fn newton_polish(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lower: &[f64]) -> Polished {
+pub fn newton_polish(f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lower: &[f64]) -> Polished {
+    newton_polish_with(f, None, x0, f0, lower)
+}
+
+/// The Hessian over `free` by central differences of an analytic gradient
+/// (forward differences next to a bound), symmetrised.
+fn gradient_hessian(
+    g: &dyn Fn(&[f64]) -> Option<Vec<f64>>,
+    x: &[f64],
+    lower: &[f64],
+    free: &[usize],
+    evals: &mut usize,
+) -> Option<Vec<f64>> {
+    let k = free.len();
+    let mut out = vec![0.0; k * k];
+    let g0 = g(x)?;
+    *evals += 1;
+    let mut xt = x.to_vec();
+    for (a, &ia) in free.iter().enumerate() {
+        let h = 1e-4 * x[ia].abs().max(1e-2);
+        xt[ia] = x[ia] + h;
+        let gp = g(&xt)?;
+        let (gm, den) = if x[ia] - h >= lower[ia] {
+            xt[ia] = x[ia] - h;
+            (g(&xt)?, 2.0 * h)
+        } else {
+            (g0.clone(), h)
+        };
+        xt[ia] = x[ia];
+        *evals += 2;
+        for (b, &ib) in free.iter().enumerate() {
+            out[b * k + a] = (gp[ib] - gm[ib]) / den;
+        }
+    }
+    for a in 0..k {
+        for b in 0..a {
+            let v = 0.5 * (out[a * k + b] + out[b * k + a]);
+            out[a * k + b] = v;
+            out[b * k + a] = v;
+        }
+    }
+    Some(out)
+}
+
+/// [`newton_polish`] with an analytic gradient when one is given: the
+/// gradient is exact and the Hessian comes from differences of gradients.
+pub fn newton_polish_with(
+    mut f: impl FnMut(&[f64]) -> f64,
+    grad: Gradient,
+    x0: &[f64],
+    f0: f64,
+    lower: &[f64],
+) -> Polished {
     let d = x0.len();
     let mut x = x0.to_vec();
     let mut fx = f0;
@@ -446,9 +522,19 @@ pub fn newton_polish(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lowe
         let fresh = hess.as_ref().is_none_or(|(f_prev, _)| *f_prev != free);
         // The gradient always comes from the fine central differences; the
         // Hessian stencil's coarser one would bias the Newton steps.
-        g = gradient(&mut f, &x, fx, lower, &mut evals);
+        let analytic = grad.and_then(|gf| gf(&x));
+        g = match analytic {
+            Some(v) => {
+                evals += 1;
+                v
+            }
+            None => gradient(&mut f, &x, fx, lower, &mut evals),
+        };
         if fresh {
-            let (_, h) = hessian(&mut f, &x, fx, lower, &free, &mut evals);
+            let h = match grad.and_then(|gf| gradient_hessian(gf, &x, lower, &free, &mut evals)) {
+                Some(h) => h,
+                None => hessian(&mut f, &x, fx, lower, &free, &mut evals).1,
+            };
             hess = Some((free.clone(), h));
         }
         let h = &hess.as_ref().expect("set above").1;
@@ -463,6 +549,23 @@ pub fn newton_polish(mut f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lowe
         // Stop at the target, or when the decrement has stopped shrinking:
         // the finite-difference gradient has reached its rounding floor.
         if dec < POLISH_DECREMENT * fx.abs().max(1.0) || (!fresh && dec > 0.1 * previous) {
+            // With an exact gradient the last Newton step is worth taking: it
+            // squares the remaining error (kept only if f does not rise
+            // beyond its rounding).
+            if grad.is_some() && dec >= 0.0 {
+                let xn: Vec<f64> = (0..d)
+                    .map(|i| match free.iter().position(|&j| j == i) {
+                        Some(k) => (x[i] + step[k]).max(lower[i]),
+                        None => x[i],
+                    })
+                    .collect();
+                let fnew = f(&xn);
+                evals += 1;
+                if fnew <= fx + 1e-13 * (1.0 + fx.abs()) {
+                    x = xn;
+                    fx = fnew;
+                }
+            }
             break;
         }
         let mut alpha = 1.0;
