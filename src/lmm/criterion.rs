@@ -720,6 +720,28 @@ mod tests {
 /// `∂r² = ξᵀ ∂S ξ` with `ξ = [−S_XX⁻¹ s_Xy; 1]`. `None` when the model has
 /// other random terms or the factorisation fails.
 pub fn deviance_gradient(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<(f64, Vec<f64>)> {
+    gradient_eval(cp, theta, method).map(|g| (g.deviance, g.grad))
+}
+
+/// One evaluation with the analytic gradient, and its pieces: the gradients
+/// of A(θ) (= log|L_Z|², plus log|R_X|² for REML) and of r²(θ), and S_XX⁻¹
+/// (so that cov(β̂) = σ² S_XX⁻¹ at this θ).
+#[derive(Debug, Clone)]
+pub struct GradientEval {
+    /// The profiled deviance.
+    pub deviance: f64,
+    /// Its gradient in θ.
+    pub grad: Vec<f64>,
+    /// Gradient of A(θ).
+    pub a_grad: Vec<f64>,
+    /// Gradient of r²(θ).
+    pub r2_grad: Vec<f64>,
+    /// S_XX⁻¹, p×p row-major.
+    pub sxx_inv: Vec<f64>,
+}
+
+/// See [`deviance_gradient`]; `None` under the same conditions.
+pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
     if !cp.secondary.is_empty() || cp.q2_total != 0 {
         return None;
     }
@@ -790,6 +812,8 @@ pub fn deviance_gradient(cp: &CrossProducts, theta: &[f64], method: Method) -> O
         Method::Reml => ((cp.n - p) as f64, true),
     };
     let mut grad = vec![0.0; theta.len()];
+    let mut a_grad = vec![0.0; theta.len()];
+    let mut r2_grad = vec![0.0; theta.len()];
     for k in 0..nt {
         let blk = &acc[k * c1 * c1..(k + 1) * c1 * c1];
         // ∂S = −(M + Mᵀ).
@@ -809,8 +833,16 @@ pub fn deviance_gradient(cp: &CrossProducts, theta: &[f64], method: Method) -> O
             }
         }
         grad[off + k] = dlog[k] + dx + nu * dr2 / r2;
+        a_grad[off + k] = dlog[k] + dx;
+        r2_grad[off + k] = dr2;
     }
-    Some((pieces.profiled_deviance(method, cp.n, p), grad))
+    Some(GradientEval {
+        deviance: pieces.profiled_deviance(method, cp.n, p),
+        grad,
+        a_grad,
+        r2_grad,
+        sxx_inv: (0..p * p).map(|k| inv[(k / p, k % p)]).collect(),
+    })
 }
 
 #[cfg(test)]

@@ -840,6 +840,68 @@ fn piece_derivatives(
     })
 }
 
+/// [`PieceDerivatives`] from central differences of the analytic piece
+/// gradients (one random term only): 1 + 2d evaluations instead of
+/// 1 + 2d², and no second differences of values.
+fn gradient_derivatives(
+    cp: &CrossProducts,
+    theta: &[f64],
+    free: &[usize],
+    h: &[f64],
+    method: Method,
+    sigma2: f64,
+    evals: &mut usize,
+) -> Option<PieceDerivatives> {
+    let d = free.len();
+    let mut at = |i: Option<(usize, f64)>| {
+        let mut th = theta.to_vec();
+        if let Some((j, v)) = i {
+            th[free[j]] += v;
+        }
+        *evals += 1;
+        criterion::gradient_eval(cp, &th, method)
+    };
+    let g0 = at(None)?;
+    let c0: Vec<f64> = g0.sxx_inv.iter().map(|v| sigma2 * v).collect();
+    let r2_grad: Vec<f64> = free.iter().map(|&i| g0.r2_grad[i]).collect();
+    let mut a_hess = vec![0.0; d * d];
+    let mut r2_hess = vec![0.0; d * d];
+    let mut dcov = Vec::with_capacity(d);
+    for i in 0..d {
+        let gp = at(Some((i, h[i])))?;
+        let gm = at(Some((i, -h[i])))?;
+        let den = 2.0 * h[i];
+        for (j, &fj) in free.iter().enumerate() {
+            a_hess[j * d + i] = (gp.a_grad[fj] - gm.a_grad[fj]) / den;
+            r2_hess[j * d + i] = (gp.r2_grad[fj] - gm.r2_grad[fj]) / den;
+        }
+        dcov.push(
+            gp.sxx_inv
+                .iter()
+                .zip(&gm.sxx_inv)
+                .map(|(x, y)| sigma2 * (x - y) / den)
+                .collect(),
+        );
+    }
+    for i in 0..d {
+        for j in 0..i {
+            let va = 0.5 * (a_hess[i * d + j] + a_hess[j * d + i]);
+            let vr = 0.5 * (r2_hess[i * d + j] + r2_hess[j * d + i]);
+            a_hess[i * d + j] = va;
+            a_hess[j * d + i] = va;
+            r2_hess[i * d + j] = vr;
+            r2_hess[j * d + i] = vr;
+        }
+    }
+    Some(PieceDerivatives {
+        c0,
+        a_hess,
+        r2_grad,
+        r2_hess,
+        dcov,
+    })
+}
+
 /// The deviance Hessian over φ = (θ_free, σ²), its inverse (×2) and the
 /// derivatives of cov(β̂), for Satterthwaite df. The θ-derivatives of the
 /// pieces are central differences; the σ² derivatives are exact, since
@@ -866,7 +928,10 @@ fn sensitivity(
         .iter()
         .map(|&i| HESSIAN_STEP * theta[i].abs().max(theta_scale[i]))
         .collect();
-    let derivs = piece_derivatives(cp, theta, free, &h, method, sigma2, &mut evals);
+    let derivs = match gradient_derivatives(cp, theta, free, &h, method, sigma2, &mut evals) {
+        Some(d) => Some(d),
+        None => piece_derivatives(cp, theta, free, &h, method, sigma2, &mut evals),
+    };
     let Some(derivs) = derivs else {
         let nan = VarianceSensitivity {
             acov: vec![f64::NAN; k * k],
