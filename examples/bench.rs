@@ -21,7 +21,8 @@
 //!   records (the APC factor model by least squares), and `--hierarchical`
 //!   (crossed random period and cohort intercepts) on 30,000 records.
 //!
-//! Peak memory is read with GNU time (`time -f %M`, found on PATH). Figures
+//! Peak memory (large) is read with GNU time (`time -f %M`, found on PATH);
+//! the small runs spawn braid directly, so their wall time is braid's alone. Figures
 //! are recorded in notes/benchmarks.md.
 
 use std::path::{Path, PathBuf};
@@ -60,13 +61,22 @@ fn braid_bin() -> PathBuf {
         .expect("target folder")
 }
 
-/// Run `braid fit` under GNU time; returns (wall seconds, peak RSS in MB, loglik).
-/// With `json_only` the run writes `out/fit.json` through `--json`; otherwise
-/// it writes every output (`--out`: JSON, CSV, PNG and SVG).
-fn time_braid(file: &Path, out: &Path, school: bool, json_only: bool) -> (f64, f64, f64) {
+/// Run `braid fit`; returns (wall seconds, peak RSS in MB, loglik). With
+/// `memory` it runs under GNU time for the peak RSS (which adds the wrapper's
+/// own start-up to the wall time, a few ms); otherwise braid is spawned
+/// directly and the RSS is NaN. With `json_only` the run writes
+/// `out/fit.json` through `--json`; otherwise it writes every output
+/// (`--out`: JSON, CSV, PNG and SVG).
+fn time_braid(file: &Path, out: &Path, school: bool, json_only: bool, memory: bool) -> (f64, f64, f64) {
     std::fs::create_dir_all(out).expect("output folder");
-    let mut cmd = Command::new("time");
-    cmd.args(["-f", "%e %M"]).arg(braid_bin()).arg("fit").arg(file);
+    let mut cmd = if memory {
+        let mut c = Command::new("time");
+        c.args(["-f", "%e %M"]).arg(braid_bin());
+        c
+    } else {
+        Command::new(braid_bin())
+    };
+    cmd.arg("fit").arg(file);
     cmd.args([
         "--id",
         "pupil",
@@ -97,11 +107,11 @@ fn time_braid(file: &Path, out: &Path, school: bool, json_only: bool) -> (f64, f
     );
     let stderr = String::from_utf8_lossy(&o.stderr);
     let last = stderr.lines().last().unwrap_or("");
-    let rss_kb: f64 = last
-        .split_whitespace()
-        .nth(1)
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(f64::NAN);
+    let rss_kb: f64 = if memory {
+        last.split_whitespace().nth(1).and_then(|v| v.parse().ok()).unwrap_or(f64::NAN)
+    } else {
+        f64::NAN
+    };
     let json: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(out.join("fit.json")).unwrap()).unwrap();
     (wall, rss_kb / 1024.0, json["loglik"].as_f64().unwrap())
@@ -116,12 +126,12 @@ fn small(work: &Path) {
     let file = work.join("bench_3000.csv");
     let rows = write(&design(600, 1, 3000), &file);
     let runs: Vec<(f64, f64, f64)> = (0..21)
-        .map(|_| time_braid(&file, &work.join("out_small"), false, true))
+        .map(|_| time_braid(&file, &work.join("out_small"), false, true, false))
         .collect();
     let braid_s = median(runs.iter().map(|r| r.0).collect());
     let braid_ll = runs[0].2;
     let full: Vec<f64> = (0..5)
-        .map(|_| time_braid(&file, &work.join("out_small_all"), false, false).0)
+        .map(|_| time_braid(&file, &work.join("out_small_all"), false, false, false).0)
         .collect();
     println!("small: 3,000 participants, {rows} rows");
     println!("  braid fit --json (whole run, median of 21): {braid_s:.3} s, REML loglik {braid_ll:.6}");
@@ -186,7 +196,7 @@ fn large(work: &Path) {
         t0.elapsed().as_secs_f64()
     );
     let runs: Vec<(f64, f64, f64)> = (0..3)
-        .map(|_| time_braid(&file, &work.join("out_large"), true, false))
+        .map(|_| time_braid(&file, &work.join("out_large"), true, false, true))
         .collect();
     for (i, r) in runs.iter().enumerate() {
         println!(
