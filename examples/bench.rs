@@ -108,7 +108,10 @@ fn time_braid(file: &Path, out: &Path, school: bool, json_only: bool, memory: bo
     let stderr = String::from_utf8_lossy(&o.stderr);
     let last = stderr.lines().last().unwrap_or("");
     let rss_kb: f64 = if memory {
-        last.split_whitespace().nth(1).and_then(|v| v.parse().ok()).unwrap_or(f64::NAN)
+        last.split_whitespace()
+            .nth(1)
+            .and_then(|v| v.parse().ok())
+            .unwrap_or(f64::NAN)
     } else {
         f64::NAN
     };

@@ -9,6 +9,10 @@ use super::glm::{Cell, Family};
 use crate::data::NumericTable;
 use crate::error::{Error, Result};
 
+/// At most this many age groups or periods (a guard against a wrong column
+/// or width, whose table would not fit in memory).
+pub const MAX_GROUPS: usize = 200;
+
 /// Default number of age groups when records are grouped from the data.
 pub const DEFAULT_AGE_GROUPS: f64 = 8.0;
 
@@ -104,6 +108,16 @@ pub fn from_table(t: &NumericTable, names: [&str; 4]) -> Result<ApcData> {
     }
     let (ages, da) = spacing(age);
     let (periods, dp) = spacing(period);
+    if ages.len() > MAX_GROUPS || periods.len() > MAX_GROUPS {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!(
+                "{} age groups and {} periods: more than {MAX_GROUPS}; check that the age and period columns hold group starts",
+                ages.len(),
+                periods.len()
+            ),
+        });
+    }
     let width = match (da, dp) {
         (Some(a), Some(p)) if (a - p).abs() < 1e-6 * a.abs().max(1.0) => a,
         _ => {
@@ -186,8 +200,21 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
         }
         None => ((max(age) - a0) / DEFAULT_AGE_GROUPS).ceil().max(1.0),
     };
-    let a = ((max(age) - a0) / width).floor() as usize + 1;
-    let p = ((max(period) - p0) / width).floor() as usize + 1;
+    let (a_span, p_span) = ((max(age) - a0) / width, (max(period) - p0) / width);
+    if !(a_span < MAX_GROUPS as f64 && p_span < MAX_GROUPS as f64) {
+        return Err(Error::Data {
+            path: t.source.clone(),
+            message: format!(
+                "ages {} to {} and periods {} to {} make more than {MAX_GROUPS} groups of {width} years; choose a wider --width or check the columns",
+                label(min(age)),
+                label(max(age)),
+                label(min(period)),
+                label(max(period))
+            ),
+        });
+    }
+    let a = a_span.floor() as usize + 1;
+    let p = p_span.floor() as usize + 1;
     let mut sums = vec![(0.0, 0.0, 0.0); a * p];
     for k in 0..age.len() {
         let i = ((age[k] - a0) / width).floor() as usize;

@@ -267,8 +267,8 @@ pub struct ApcArgs {
     /// A table of counts: column holding the exposure (person-years).
     #[arg(long, value_name = "COLUMN", requires = "events")]
     pub exposure: Option<String>,
-    /// Records: width of the age and period groups in years [default: about eight age groups].
-    #[arg(long, value_name = "YEARS")]
+    /// Records: width of the age and period groups in years [default: about eight age groups]; a table keeps its own groups.
+    #[arg(long, value_name = "YEARS", conflicts_with = "events")]
     pub width: Option<f64>,
     /// A just-identifying constraint (repeatable): equal:DIM:L1,L2, zero-slope:DIM or min-norm
     /// [default: equal:age:1,2, equal:cohort:1,2, zero-slope:period and min-norm].

@@ -23,9 +23,20 @@ pub fn main_exit_code() -> i32 {
     let cli = match Cli::try_parse() {
         Ok(c) => c,
         Err(e) => {
-            let code = if e.use_stderr() { 2 } else { 0 };
-            let _ = e.print();
-            return code;
+            if !e.use_stderr() {
+                // --help and --version print in full.
+                let _ = e.print();
+                return 0;
+            }
+            // Usage errors in one line, like every other error.
+            let text = e.render().to_string();
+            let first = text
+                .lines()
+                .find(|l| !l.trim().is_empty())
+                .unwrap_or("invalid arguments");
+            let first = first.trim_start_matches("error: ");
+            eprintln!("braid: error: {first} (see braid --help)");
+            return 2;
         }
     };
     match run(cli) {

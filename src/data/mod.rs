@@ -992,6 +992,14 @@ pub fn numeric_table(path: &Path, columns: &[(&str, &str)], options: ReadOptions
             message: "no such file".into(),
         });
     }
+    for (i, (role, column)) in columns.iter().enumerate() {
+        if let Some((other, _)) = columns[..i].iter().find(|(_, c)| c == column) {
+            return Err(Error::Spec {
+                parameter: role.to_string(),
+                message: format!("column '{column}' is already used for {other}; give each role its own column"),
+            });
+        }
+    }
     let header = read::header(path, options.delimiter)?;
     for (role, column) in columns {
         if !header.iter().any(|h| h == column) {

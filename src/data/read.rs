@@ -148,6 +148,14 @@ const SMALL_CSV_BYTES: u64 = 4 << 20;
 /// # Errors
 /// [`Error::Io`] or [`Error::Parse`] when the file cannot be read as a table.
 pub fn read_columns(path: &Path, names: &[String], numeric: &[String], delimiter: u8) -> Result<RawTable> {
+    // polars panics when a column is asked for twice; ask once.
+    let mut unique: Vec<String> = Vec::with_capacity(names.len());
+    for n in names {
+        if !unique.contains(n) {
+            unique.push(n.clone());
+        }
+    }
+    let names = &unique[..];
     let parse = |e: PolarsError| {
         let text = e.to_string();
         let advice = if text.to_ascii_lowercase().contains("utf-8") || text.to_ascii_lowercase().contains("utf8") {

@@ -18,7 +18,12 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
         let cols: Vec<&str> = line.split('\t').collect();
         let (file, extra, expected) = (cols[0], cols[1], cols[2]);
         let mut cmd = Command::new(braid_bin());
-        cmd.arg("fit");
+        // "apc!..." runs `braid apc` with only the listed flags; otherwise `braid fit`.
+        let (command, extra) = match extra.strip_prefix("apc") {
+            Some(rest) => ("apc", rest),
+            None => ("fit", extra),
+        };
+        cmd.arg(command);
         let path = bad.join(file);
         if file.ends_with(".toml") {
             cmd.arg("--study").arg(&path);
