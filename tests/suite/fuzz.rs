@@ -229,10 +229,11 @@ fn random_files_and_study_files_never_panic() {
         // The age–period–cohort intake and report, on the same file.
         let apc = catch_unwind(AssertUnwindSafe(|| {
             let names = [("--age", "age"), ("--period", "x"), ("--outcome", "y")];
-            if let Ok(t) = data::numeric_table(&path, &names, ReadOptions { delimiter }) {
-                if let Ok(d) = braid::apc::intake::from_records(&t, Some(2.0)) {
-                    let _ = braid::apc::analysis::analyse(&d, &[], &[]);
-                }
+            if let Some(d) = data::numeric_table(&path, &names, ReadOptions { delimiter })
+                .ok()
+                .and_then(|t| braid::apc::intake::from_records(&t, Some(2.0)).ok())
+            {
+                let _ = braid::apc::analysis::analyse(&d, &[], &[]);
             }
         }));
         assert!(apc.is_ok(), "panic in the APC route on generated input {case}:\n{text}");
