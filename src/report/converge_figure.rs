@@ -100,7 +100,7 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
             .label(format!("cohort {b} − cohort {a}"))
             .legend(move |(x, y)| Circle::new((x + 11, y), 5, color.filled()));
     }
-    styled_legend(&mut chart, SeriesLabelPosition::UpperLeft, 14)?;
+    styled_legend(&mut chart, SeriesLabelPosition::UpperMiddle, 14)?;
     root.present().map_err(e)?;
     Ok(())
 }
