@@ -1,6 +1,7 @@
 //! Hierarchical APC (Yang & Land 2006, *Sociological Methodology* 36): a
 //! fixed polynomial in exact age, with period groups and cohort groups as
-//! crossed random intercepts, fitted by REML with the engine.
+//! crossed random intercepts, fitted by REML with the engine. For panels a
+//! random intercept per participant is added.
 //!
 //! Treating period and cohort as random draws with mean zero sets their
 //! linear trends to zero unless age absorbs them: that is a constraint like
@@ -33,6 +34,8 @@ pub struct Hierarchical {
     pub sd_cohort: f64,
     /// Residual SD.
     pub sd_residual: f64,
+    /// Panels: SD of the participant intercepts.
+    pub sd_participant: Option<f64>,
     /// Predicted period effects (BLUPs), by period group.
     pub period_effects: Vec<Term>,
     /// Predicted cohort effects (BLUPs), by cohort group.
@@ -75,14 +78,25 @@ pub fn fit(t: &NumericTable, data: &ApcData) -> Result<Hierarchical> {
         columns: vec!["intercept".into()],
         z: vec![vec![1.0; n]],
     };
+    let mut terms = vec![
+        term("period", per, &data.labels.period),
+        term("cohort", coh, &data.labels.cohort),
+    ];
+    // Panels: participants are seen repeatedly, so they get an intercept too.
+    if let Some(ids) = &data.ids {
+        let mut levels: Vec<u32> = ids.clone();
+        levels.sort_unstable();
+        levels.dedup();
+        let index: std::collections::HashMap<u32, u32> =
+            levels.iter().enumerate().map(|(k, &l)| (l, k as u32)).collect();
+        let names: Vec<String> = levels.iter().map(|l| l.to_string()).collect();
+        terms.push(term("participant", ids.iter().map(|l| index[l]).collect(), &names));
+    }
     let problem = MixedProblem {
         y: y.clone(),
         x_names: vec!["intercept".into(), "age".into(), "age^2".into()],
         x,
-        terms: vec![
-            term("period", per, &data.labels.period),
-            term("cohort", coh, &data.labels.cohort),
-        ],
+        terms,
     };
     let f = lmm::fit(
         &problem,
@@ -107,6 +121,7 @@ pub fn fit(t: &NumericTable, data: &ApcData) -> Result<Hierarchical> {
         sd_period: f.random[0].sd[0],
         sd_cohort: f.random[1].sd[0],
         sd_residual: f.sigma2.sqrt(),
+        sd_participant: f.random.get(2).map(|r| r.sd[0]),
         period_effects: effects(0, &data.labels.period),
         cohort_effects: effects(1, &data.labels.cohort),
         loglik: f.loglik,

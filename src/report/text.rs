@@ -635,8 +635,14 @@ pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport
         let _ = writeln!(s);
         let _ = writeln!(
             s,
-            "{:<11}age polynomial centred at {:.2}, crossed random period and cohort intercepts (REML, Yang & Land 2006)",
-            "Hierarchical", h.center
+            "{:<11}age polynomial centred at {:.2}, crossed random period and cohort intercepts{} (REML, Yang & Land 2006)",
+            "HAPC",
+            h.center,
+            if h.sd_participant.is_some() {
+                " and a participant intercept"
+            } else {
+                ""
+            }
         );
         for fe in &h.fixed {
             let _ = writeln!(
@@ -647,8 +653,14 @@ pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport
         }
         let _ = writeln!(
             s,
-            "{:<11}SD period {:.4} · SD cohort {:.4} · SD residual {:.4} · REML loglik {:.3}",
-            "", h.sd_period, h.sd_cohort, h.sd_residual, h.loglik
+            "{:<11}SD period {:.4} · SD cohort {:.4}{} · SD residual {:.4} · REML loglik {:.3}",
+            "",
+            h.sd_period,
+            h.sd_cohort,
+            h.sd_participant
+                .map_or(String::new(), |v| format!(" · SD participant {v:.4}")),
+            h.sd_residual,
+            h.loglik
         );
         let _ = writeln!(s, "{:<11}{}", "", wrap(&h.caution, 75, 11));
     }

@@ -351,4 +351,11 @@ fn a_cohort_sequential_panel_shows_the_problem_and_the_linkage_test() {
     assert!(view.period_beyond_cohort.df >= 1.0);
     assert!(view.period_beyond_cohort.p > 0.001, "{:?}", view.period_beyond_cohort);
     assert!(view.text.iter().any(|t| t.contains("converge")));
+    // The hierarchical model of a panel adds a participant intercept. In the
+    // truth of Design::demo a person's level at the centre has SD 5, and the
+    // unfitted school effect (SD 2) adds to it: √(5² + 2²) ≈ 5.4, plus some
+    // of the slope variance; the estimate must be of that size.
+    let h = braid::apc::hierarchical::fit(&t, &data).unwrap();
+    let sd = h.sd_participant.unwrap();
+    assert!((3.5..7.5).contains(&sd), "participant SD {sd}");
 }
