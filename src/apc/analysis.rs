@@ -540,7 +540,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
             cov[r * q + c] = acc;
         }
     }
-    let rank_deficiency = rank_deficiency(&full, &data.cells, &apc, data.family);
+    let rank_deficiency = rank_deficiency(s, &data.cells, &apc, data.family);
     // Deviance table.
     let (age_cols, per_cols, coh_cols): (Vec<usize>, Vec<usize>, Vec<usize>) = (
         (s.offset(Dimension::Age)..s.offset(Dimension::Age) + s.a - 1).collect(),
@@ -815,20 +815,30 @@ fn solve_t(f: &[f64], b0: &[f64], v: &[f64], c: &Constraint, labels: &Labels) ->
 
 /// Numerical rank deficiency of the weighted APC design: eigenvalues of XᵀWX
 /// below 1e-10 of the largest.
-fn rank_deficiency(full: &[Vec<f64>], cells: &[Cell], fit: &GlmFit, family: Family) -> usize {
-    let q = full[0].len();
-    let m = faer::Mat::from_fn(q, q, |r, c| {
-        full.iter()
-            .zip(cells.iter().zip(&fit.fitted))
-            .map(|(x, (cell, mu))| {
-                let w = match family {
-                    Family::Poisson => *mu,
-                    Family::Gaussian => cell.e,
-                };
-                w * x[r] * x[c]
-            })
-            .sum::<f64>()
-    });
+fn rank_deficiency(shape: Shape, cells: &[Cell], fit: &GlmFit, family: Family) -> usize {
+    // The weights summed per age × period cell first: panels hold one cell
+    // per record, and XᵀWX depends only on the cell totals.
+    let mut weight: std::collections::BTreeMap<(usize, usize), f64> = std::collections::BTreeMap::new();
+    for (cell, mu) in cells.iter().zip(&fit.fitted) {
+        let w = match family {
+            Family::Poisson => *mu,
+            Family::Gaussian => cell.e,
+        };
+        *weight.entry((cell.i, cell.j)).or_default() += w;
+    }
+    let q = shape.n_params();
+    let mut m = faer::Mat::<f64>::zeros(q, q);
+    for (&(i, j), &w) in &weight {
+        let x = shape.row(i, j);
+        for r in 0..q {
+            if x[r] == 0.0 {
+                continue;
+            }
+            for c in 0..q {
+                m[(r, c)] += w * x[r] * x[c];
+            }
+        }
+    }
     let Ok(values) = m.self_adjoint_eigenvalues(faer::Side::Lower) else {
         return usize::MAX;
     };

@@ -466,7 +466,10 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         }
     }
     let between_within = between_within(panel, &frame, &spec0, &mut notes);
-    let retest = options.retest.map(|f| retest::check(panel, &frame, f)).transpose()?;
+    let retest = options
+        .retest
+        .map(|f| retest::check_with(panel, &frame, &m0r, f))
+        .transpose()?;
     let (mut verdict, assumptions) = verdict(&tests, &shared_ages, margin, reference_age, &between_within);
     if let Some(t) = tests.iter().find(|t| t.name.starts_with("M3")) {
         verdict.push_str(&format!(

@@ -15,7 +15,7 @@ use serde::Serialize;
 use crate::data::Panel;
 use crate::error::Result;
 use crate::infer;
-use crate::lmm::{self, FitOptions, Method, MixedProblem};
+use crate::lmm::{self, Method};
 use crate::spec::ModelFrame;
 
 /// The form of the retest term.
@@ -121,20 +121,20 @@ fn r_squared(x: &[f64], p: usize, y: &[f64]) -> f64 {
 /// # Errors
 /// Errors of the engine.
 pub fn check(panel: &Panel, frame: &ModelFrame, form: RetestForm) -> Result<RetestReport> {
+    let base = super::fit_with(&frame.problem, Method::Reml)?;
+    check_with(panel, frame, &base, form)
+}
+
+/// [`check`] given M0's REML fit (`base`), so a caller that has it does not
+/// fit it again.
+///
+/// # Errors
+/// Errors of the engine.
+pub fn check_with(panel: &Panel, frame: &ModelFrame, base: &lmm::Fit, form: RetestForm) -> Result<RetestReport> {
     let col = column(panel, form);
     let p = frame.problem.p();
     let r2 = r_squared(&frame.problem.x, p, &col);
     let vif = 1.0 / (1.0 - r2).max(f64::MIN_POSITIVE);
-    let fit = |problem: &MixedProblem| {
-        lmm::fit(
-            problem,
-            FitOptions {
-                method: Method::Reml,
-                ..Default::default()
-            },
-        )
-    };
-    let base = fit(&frame.problem)?;
     let age_slope_without = base.beta[1];
     let why = "the number of prior assessments is fixed by age when everyone of an age has been tested equally often \
                (one cohort on one schedule), so a retest effect cannot be told apart from change with age";
@@ -156,7 +156,7 @@ pub fn check(panel: &Panel, frame: &ModelFrame, form: RetestForm) -> Result<Rete
         });
     }
     let problem = super::with_columns(&frame.problem, &[form.name().to_string()], &[col]);
-    let with = fit(&problem)?;
+    let with = super::fit_with(&problem, Method::Reml)?;
     let mut c = vec![0.0; problem.p()];
     c[problem.p() - 1] = 1.0;
     let k = infer::contrast(&with, &c);

@@ -16,17 +16,7 @@
 
 use crate::error::Result;
 use crate::infer::tests::{TestResult, likelihood_ratio};
-use crate::lmm::{self, Fit, FitOptions, Method, MixedProblem, RandomTermData};
-
-fn reml(problem: &MixedProblem) -> Result<Fit> {
-    lmm::fit(
-        problem,
-        FitOptions {
-            method: Method::Reml,
-            ..Default::default()
-        },
-    )
-}
+use crate::lmm::{Fit, Method, MixedProblem, RandomTermData};
 
 /// The rows of `problem` in `rows`, with the X columns in `cols` and each
 /// random term's levels renumbered over the levels present.
@@ -94,7 +84,7 @@ pub fn m3_test(
     let mut converged = true;
     for k in 0..n_cohorts {
         let rows: Vec<usize> = (0..cohort_of.len()).filter(|&r| cohort_of[r] == k).collect();
-        let f = reml(&subset(m0_problem, &rows, &cols))?;
+        let f = super::fit_with(&subset(m0_problem, &rows, &cols), Method::Reml)?;
         loglik += f.loglik;
         converged &= f.info.converged;
     }
@@ -120,7 +110,7 @@ pub fn random_slope_test(m0_problem: &MixedProblem, m0_reml: &Fit) -> Result<Opt
     let mut reduced = m0_problem.clone();
     reduced.terms[0].columns.truncate(1);
     reduced.terms[0].z.truncate(1);
-    let f = reml(&reduced)?;
+    let f = super::fit_with(&reduced, Method::Reml)?;
     let mut test = likelihood_ratio(
         &format!("participants differ in their {} slope (REML)", t.columns[1]),
         f.loglik,

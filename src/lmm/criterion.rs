@@ -740,9 +740,15 @@ pub struct GradientEval {
     pub sxx_inv: Vec<f64>,
 }
 
+/// Whether [`gradient_eval`] applies: one random term (the primary one),
+/// with 1 to 4 coefficients per level.
+pub fn has_gradient(cp: &CrossProducts) -> bool {
+    cp.secondary.is_empty() && cp.q2_total == 0 && cp.primary.is_some() && (1..=4).contains(&cp.q1)
+}
+
 /// See [`deviance_gradient`]; `None` under the same conditions.
 pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
-    if !cp.secondary.is_empty() || cp.q2_total != 0 {
+    if !has_gradient(cp) {
         return None;
     }
     let k1 = cp.primary?;

@@ -375,8 +375,11 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
         criterion::deviance_gradient(&cp, &th, method)
             .map(|(_, g)| g.iter().zip(&theta_scale).map(|(a, s)| a * s).collect())
     };
-    let analytic = criterion::deviance_gradient(&cp, &start, method).is_some();
-    let grad: optimize::Gradient = if analytic { Some(&sgrad) } else { None };
+    let grad: optimize::Gradient = if criterion::has_gradient(&cp) {
+        Some(&sgrad)
+    } else {
+        None
+    };
     let mut current = descend(&sdev, grad, &start_x, &lower, &unit, options.optim);
     iterations += current.iterations;
     evaluations += current.evaluations;
