@@ -343,40 +343,7 @@ fn primary_range<const Q: usize>(
     let mut w: Vec<[f64; Q]> = Vec::with_capacity(p + 8);
     for i in range {
         let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-        // A = Tᵀ G T + I.
-        let mut gt = [[0.0f64; Q]; Q];
-        for r in 0..Q {
-            for c in 0..Q {
-                let mut acc = 0.0;
-                for s in c..Q {
-                    acc += gi[r * Q + s] * tq[s][c];
-                }
-                gt[r][c] = acc;
-            }
-        }
-        let mut l = [[0.0f64; Q]; Q];
-        // Reciprocal pivots: divisions are replaced by multiplications.
-        let mut inv = [0.0f64; Q];
-        for j in 0..Q {
-            for r in j..Q {
-                let mut acc = if r == j { 1.0 } else { 0.0 };
-                for s in r..Q {
-                    acc += tq[s][r] * gt[s][j];
-                }
-                // acc = A[r][j]; Cholesky column j.
-                for k in 0..j {
-                    acc -= l[r][k] * l[j][k];
-                }
-                if r == j {
-                    let d = acc.sqrt();
-                    l[j][j] = d;
-                    inv[j] = 1.0 / d;
-                    logdet.push(d);
-                } else {
-                    l[r][j] = acc * inv[j];
-                }
-            }
-        }
+        let (_, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
         // Columns of B = Tᵀ Z₁ᵢᵀ [Z₂Λ₂ X y], then W = L⁻¹ B.
         cols.clear();
         w.clear();
@@ -468,6 +435,51 @@ fn primary_range<const Q: usize>(
         }
     }
     (logdet.total(), xy, blocks_l, blocks_w)
+}
+
+/// One primary level's block: `GT = Gᵢ T`, and `L`, the Cholesky factor of
+/// `A = TᵀGᵢT + I` (positive definite, since A ≥ I), with its reciprocal
+/// pivots; the pivots go into `logdet`.
+#[inline(always)]
+fn level_block<const Q: usize>(
+    gi: &[f64],
+    tq: &[[f64; Q]; Q],
+    logdet: &mut LogDet,
+) -> ([[f64; Q]; Q], [[f64; Q]; Q], [f64; Q]) {
+    let mut gt = [[0.0f64; Q]; Q];
+    for r in 0..Q {
+        for c in 0..Q {
+            let mut acc = 0.0;
+            for s in c..Q {
+                acc += gi[r * Q + s] * tq[s][c];
+            }
+            gt[r][c] = acc;
+        }
+    }
+    let mut l = [[0.0f64; Q]; Q];
+    // Reciprocal pivots: divisions are replaced by multiplications.
+    let mut inv = [0.0f64; Q];
+    for j in 0..Q {
+        for r in j..Q {
+            let mut acc = if r == j { 1.0 } else { 0.0 };
+            for s in r..Q {
+                acc += tq[s][r] * gt[s][j];
+            }
+            // acc = A[r][j]; Cholesky column j.
+            for k in 0..j {
+                acc -= l[r][k] * l[j][k];
+            }
+            if r == j {
+                let d = acc.sqrt();
+                l[j][j] = d;
+                inv[j] = 1.0 / d;
+                logdet.push(d);
+            } else {
+                l[r][j] = acc * inv[j];
+            }
+        }
+    }
+    (gt, l, inv)
 }
 
 #[inline(always)]
@@ -960,40 +972,7 @@ fn grad_levels<const Q: usize>(cp: &CrossProducts, t: &[f64], range: std::ops::R
     for i in range {
         let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
         let ci = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
-        let mut gt = [[0.0f64; Q]; Q];
-        for r in 0..Q {
-            for c in 0..Q {
-                let mut s = 0.0;
-                for x in c..Q {
-                    s += gi[r * Q + x] * tq[x][c];
-                }
-                gt[r][c] = s;
-            }
-        }
-        let mut l = [[0.0f64; Q]; Q];
-        let mut inv = [0.0f64; Q];
-        for j in 0..Q {
-            for r in j..Q {
-                let mut s = if r == j { 1.0 } else { 0.0 };
-                for x in r..Q {
-                    s += tq[x][r] * gt[x][j];
-                }
-                for x in 0..j {
-                    s -= l[r][x] * l[j][x];
-                }
-                if r == j {
-                    if s <= 0.0 {
-                        return None;
-                    }
-                    let d = s.sqrt();
-                    l[j][j] = d;
-                    inv[j] = 1.0 / d;
-                    logdet.push(d);
-                } else {
-                    l[r][j] = s * inv[j];
-                }
-            }
-        }
+        let (gt, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
         // Solve A v = w in place (forward then backward with L).
         let solve = |w: &mut [f64; Q]| {
             for r in 0..Q {
