@@ -449,13 +449,14 @@ pub struct Polished {
 /// finish a quasi-Newton run to full precision and to certify the minimum
 /// through the decrement and the curvature.
 pub fn newton_polish(f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lower: &[f64]) -> Polished {
-    newton_polish_with(f, None, x0, f0, lower)
+    newton_polish_with(f, None, None, x0, f0, lower)
 }
 
 /// The Hessian over `free` by central differences of an analytic gradient
 /// (forward differences next to a bound), symmetrised.
 fn gradient_hessian(
     g: &dyn Fn(&[f64]) -> Option<Vec<f64>>,
+    g0: &[f64],
     x: &[f64],
     lower: &[f64],
     free: &[usize],
@@ -463,8 +464,6 @@ fn gradient_hessian(
 ) -> Option<Vec<f64>> {
     let k = free.len();
     let mut out = vec![0.0; k * k];
-    let g0 = g(x)?;
-    *evals += 1;
     let mut xt = x.to_vec();
     for (a, &ia) in free.iter().enumerate() {
         let h = 1e-4 * x[ia].abs().max(1e-2);
@@ -474,7 +473,7 @@ fn gradient_hessian(
             xt[ia] = x[ia] - h;
             (g(&xt)?, 2.0 * h)
         } else {
-            (g0.clone(), h)
+            (g0.to_vec(), h)
         };
         xt[ia] = x[ia];
         *evals += 2;
@@ -492,11 +491,18 @@ fn gradient_hessian(
     Some(out)
 }
 
+/// A caller's own gradient-and-Hessian stencil over the free coordinates
+/// (row-major `free.len()²`), used in place of [`gradient_hessian`] when it
+/// gives one; the caller may keep what it computed there.
+pub type HessianAt<'a> = Option<&'a dyn Fn(&[f64], &[usize]) -> Option<(Vec<f64>, Vec<f64>)>>;
+
 /// [`newton_polish`] with an analytic gradient when one is given: the
-/// gradient is exact and the Hessian comes from differences of gradients.
+/// gradient is exact and the Hessian comes from differences of gradients
+/// (from `hess_at` when that is given and succeeds).
 pub fn newton_polish_with(
     mut f: impl FnMut(&[f64]) -> f64,
     grad: Gradient,
+    hess_at: HessianAt,
     x0: &[f64],
     f0: f64,
     lower: &[f64],
@@ -520,22 +526,37 @@ pub fn newton_polish_with(
             break;
         }
         let fresh = hess.as_ref().is_none_or(|(f_prev, _)| *f_prev != free);
-        // The gradient always comes from the fine central differences; the
-        // Hessian stencil's coarser one would bias the Newton steps.
-        let analytic = grad.and_then(|gf| gf(&x));
-        g = match analytic {
-            Some(v) => {
-                evals += 1;
-                v
-            }
-            None => gradient(&mut f, &x, fx, lower, &mut evals),
+        // The caller's stencil gives the gradient with the Hessian.
+        let stencil = if fresh {
+            hess_at.and_then(|hf| hf(&x, &free))
+        } else {
+            None
         };
-        if fresh {
-            let h = match grad.and_then(|gf| gradient_hessian(gf, &x, lower, &free, &mut evals)) {
-                Some(h) => h,
-                None => hessian(&mut f, &x, fx, lower, &free, &mut evals).1,
-            };
+        if let Some((gs, h)) = stencil {
+            evals += 1 + 2 * free.len();
+            g = vec![0.0; d];
+            for (k, &i) in free.iter().enumerate() {
+                g[i] = gs[k];
+            }
             hess = Some((free.clone(), h));
+        } else {
+            // The gradient always comes from the fine central differences; the
+            // Hessian stencil's coarser one would bias the Newton steps.
+            let analytic = grad.and_then(|gf| gf(&x));
+            g = match analytic {
+                Some(v) => {
+                    evals += 1;
+                    v
+                }
+                None => gradient(&mut f, &x, fx, lower, &mut evals),
+            };
+            if fresh {
+                let h = match grad.and_then(|gf| gradient_hessian(gf, &g, &x, lower, &free, &mut evals)) {
+                    Some(h) => h,
+                    None => hessian(&mut f, &x, fx, lower, &free, &mut evals).1,
+                };
+                hess = Some((free.clone(), h));
+            }
         }
         let h = &hess.as_ref().expect("set above").1;
         let gf: Vec<f64> = free.iter().map(|&i| g[i]).collect();
