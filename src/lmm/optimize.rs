@@ -145,14 +145,23 @@ pub fn minimize_with(
         };
     }
     let mut g = gradient_at(&mut f, grad, &x, fx, &mut evals);
-    // Initial inverse Hessian: the reciprocal diagonal curvatures from second
-    // differences (2 evaluations per coordinate), so the first steps are
-    // already on the right scale in every coordinate.
     let mut h = identity(d);
     let mut h_scaled = false;
+    // With an analytic gradient, the initial inverse Hessian is the inverse
+    // of forward differences of the gradient (one gradient per coordinate),
+    // so the search starts with Newton steps.
+    if let Some(gf) = grad {
+        if let Some(inv) = forward_inverse_hessian(gf, &x, &g, &mut evals) {
+            h = inv;
+            h_scaled = true;
+        }
+    }
+    // Otherwise the reciprocal diagonal curvatures from second differences
+    // (2 evaluations per coordinate), so the first steps are already on the
+    // right scale in every coordinate.
     let mut diag = Vec::with_capacity(d);
     let mut xt = x.clone();
-    for i in 0..d {
+    for i in (0..d).take_while(|_| !h_scaled) {
         let step = 1e-3 * x[i].abs().max(1e-1);
         let lo = if x[i] - step >= lower[i] {
             x[i] - step
@@ -172,7 +181,7 @@ pub fn minimize_with(
         };
         diag.push(c);
     }
-    if diag.iter().all(|c| c.is_finite() && *c > 0.0) {
+    if !h_scaled && diag.iter().all(|c| c.is_finite() && *c > 0.0) {
         for i in 0..d {
             h[i * d + i] = 1.0 / diag[i];
         }
@@ -282,6 +291,49 @@ pub fn minimize_with(
         gradient_norm,
         converged,
     }
+}
+
+/// The inverse of the Hessian from forward differences of the gradient
+/// (upward steps, so always inside the lower bounds), symmetrised; `None`
+/// when a gradient fails or the matrix is not positive definite.
+fn forward_inverse_hessian(
+    gf: &dyn Fn(&[f64]) -> Option<Vec<f64>>,
+    x: &[f64],
+    g: &[f64],
+    evals: &mut usize,
+) -> Option<Vec<f64>> {
+    let d = x.len();
+    let mut hm = vec![0.0; d * d];
+    let mut xt = x.to_vec();
+    for i in 0..d {
+        let s = 1e-3 * x[i].abs().max(1e-1);
+        xt[i] = x[i] + s;
+        let gi = gf(&xt);
+        xt[i] = x[i];
+        *evals += 1;
+        let gi = gi?;
+        for j in 0..d {
+            hm[j * d + i] = (gi[j] - g[j]) / s;
+        }
+    }
+    for i in 0..d {
+        for j in 0..i {
+            let v = 0.5 * (hm[i * d + j] + hm[j * d + i]);
+            hm[i * d + j] = v;
+            hm[j * d + i] = v;
+        }
+    }
+    // Invert column by column through Newton directions of unit vectors.
+    let mut inv = vec![0.0; d * d];
+    for j in 0..d {
+        let mut e = vec![0.0; d];
+        e[j] = -1.0;
+        let col = newton_direction(&hm, &e)?;
+        for i in 0..d {
+            inv[i * d + j] = col[i];
+        }
+    }
+    inv.iter().all(|v| v.is_finite()).then_some(inv)
 }
 
 fn identity(d: usize) -> Vec<f64> {
