@@ -227,24 +227,23 @@ fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f64]) -> Opt
     let mut sum_bb = vec![0.0; q * q];
     let mut sum_ginv = vec![0.0; q * q];
     let (mut rss, mut df, mut used) = (0.0, 0usize, 0usize);
+    let mut ginv = vec![0.0; q * q];
+    let mut work = vec![0.0; q * q];
+    let mut b = vec![0.0; q];
     for l in 0..levels {
-        if count[l] <= q {
+        if count[l] <= q || !spd_inverse(&cp.g[l * q * q..(l + 1) * q * q], q, &mut ginv, &mut work) {
             continue;
         }
-        let g = Mat::from_fn(q, q, |a, b| cp.g[l * q * q + a * q + b]);
-        let Ok(gl) = g.llt(faer::Side::Lower) else { continue };
-        use faer::linalg::solvers::DenseSolveCore;
-        let ginv = gl.inverse();
-        let b: Vec<f64> = (0..q)
-            .map(|a| (0..q).map(|c| ginv[(a, c)] * zte[l * q + c]).sum())
-            .collect();
+        for a in 0..q {
+            b[a] = (0..q).map(|c| ginv[a * q + c] * zte[l * q + c]).sum();
+        }
         rss += ete[l] - (0..q).map(|a| b[a] * zte[l * q + a]).sum::<f64>();
         df += count[l] - q;
         used += 1;
         for a in 0..q {
             for c in 0..q {
                 sum_bb[a * q + c] += b[a] * b[c];
-                sum_ginv[a * q + c] += ginv[(a, c)];
+                sum_ginv[a * q + c] += ginv[a * q + c];
             }
         }
     }
@@ -288,6 +287,49 @@ fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f64]) -> Opt
         }
     }
     Some(start)
+}
+
+/// The inverse of a small symmetric positive definite q×q matrix (row-major)
+/// into `out`, through its Cholesky factor in `work`; `false` when it is not
+/// positive definite. No allocation: the moment start calls it per level.
+fn spd_inverse(g: &[f64], q: usize, out: &mut [f64], work: &mut [f64]) -> bool {
+    let l = work;
+    for j in 0..q {
+        let mut d = g[j * q + j];
+        for k in 0..j {
+            d -= l[j * q + k] * l[j * q + k];
+        }
+        if d.is_nan() || d <= 0.0 {
+            return false;
+        }
+        let d = d.sqrt();
+        l[j * q + j] = d;
+        for i in j + 1..q {
+            let mut v = g[i * q + j];
+            for k in 0..j {
+                v -= l[i * q + k] * l[j * q + k];
+            }
+            l[i * q + j] = v / d;
+        }
+    }
+    // Column c of the inverse solves L Lᵀ x = e_c.
+    for c in 0..q {
+        for i in 0..q {
+            let mut v = if i == c { 1.0 } else { 0.0 };
+            for k in 0..i {
+                v -= l[i * q + k] * out[k * q + c];
+            }
+            out[i * q + c] = v / l[i * q + i];
+        }
+        for i in (0..q).rev() {
+            let mut v = out[i * q + c];
+            for k in i + 1..q {
+                v -= l[k * q + i] * out[k * q + c];
+            }
+            out[i * q + c] = v / l[i * q + i];
+        }
+    }
+    true
 }
 
 /// Fit a linear mixed model by REML or ML.
@@ -1091,4 +1133,26 @@ fn sensitivity(
         Err(_) => vec![f64::NAN; k * k],
     };
     ((VarianceSensitivity { acov, dcov }, evals), min_curvature)
+}
+
+#[cfg(test)]
+mod small_inverse_tests {
+    use super::spd_inverse;
+
+    // Closed-form identity: G · G⁻¹ = I, and a matrix that is not positive
+    // definite is refused.
+    #[test]
+    fn spd_inverse_gives_the_inverse() {
+        let g = [4.0, 1.0, 0.5, 1.0, 3.0, 0.2, 0.5, 0.2, 2.0];
+        let (mut inv, mut work) = ([0.0; 9], [0.0; 9]);
+        assert!(spd_inverse(&g, 3, &mut inv, &mut work));
+        for i in 0..3 {
+            for j in 0..3 {
+                let v: f64 = (0..3).map(|k| g[i * 3 + k] * inv[k * 3 + j]).sum();
+                let want = if i == j { 1.0 } else { 0.0 };
+                assert!((v - want).abs() < 1e-14, "({i},{j}) {v}");
+            }
+        }
+        assert!(!spd_inverse(&[1.0, 2.0, 2.0, 1.0], 2, &mut inv, &mut work));
+    }
 }

@@ -150,11 +150,9 @@ pub fn minimize_with(
     // With an analytic gradient, the initial inverse Hessian is the inverse
     // of forward differences of the gradient (one gradient per coordinate),
     // so the search starts with Newton steps.
-    if let Some(gf) = grad {
-        if let Some(inv) = forward_inverse_hessian(gf, &x, &g, &mut evals) {
-            h = inv;
-            h_scaled = true;
-        }
+    if let Some(inv) = grad.and_then(|gf| forward_inverse_hessian(gf, &x, &g, &mut evals)) {
+        h = inv;
+        h_scaled = true;
     }
     // Otherwise the reciprocal diagonal curvatures from second differences
     // (2 evaluations per coordinate), so the first steps are already on the
