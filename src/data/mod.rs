@@ -13,6 +13,11 @@ pub mod derive;
 pub mod read;
 
 use std::collections::HashMap;
+
+/// A hash map with a fast, fixed (hence reproducible) hasher, for the
+/// label and key lookups done once per row (foldhash, already a dependency
+/// of the table reader; notes/decisions.md).
+pub type FastMap<K, V> = HashMap<K, V, foldhash::fast::FixedState>;
 use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
@@ -179,7 +184,7 @@ impl Codes {
 
     /// Code borrowed labels (see [`Codes::new`]).
     pub fn from_strs<'a>(labels: impl Iterator<Item = &'a str>, sort: bool) -> Codes {
-        let mut index: HashMap<&str, u32> = HashMap::new();
+        let mut index: FastMap<&str, u32> = FastMap::default();
         let mut levels: Vec<String> = Vec::new();
         let mut codes = Vec::with_capacity(labels.size_hint().0);
         for l in labels {
@@ -872,7 +877,7 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         });
     }
     if let Some(w) = &wave {
-        let mut seen: HashMap<(u32, u32), usize> = HashMap::with_capacity(id.codes.len());
+        let mut seen: FastMap<(u32, u32), usize> = FastMap::with_capacity_and_hasher(id.codes.len(), Default::default());
         for r in 0..id.codes.len() {
             if let Some(prev) = seen.insert((id.codes[r], w.codes[r]), r) {
                 return Err(Error::Data {

@@ -191,7 +191,7 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
         Some(w) => w.levels[k as usize].clone(),
         None => format!("age {k}"),
     };
-    let mut sums: std::collections::HashMap<(i64, i64), (usize, f64, f64, f64)> = std::collections::HashMap::new();
+    let mut sums: crate::data::FastMap<(i64, i64), (usize, f64, f64, f64)> = Default::default();
     for (r, &ck) in cohort_key.iter().enumerate() {
         let e = sums.entry((ck, wave_key(r))).or_insert((0, 0.0, 0.0, 0.0));
         e.0 += 1;
