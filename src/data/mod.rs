@@ -877,7 +877,8 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         });
     }
     if let Some(w) = &wave {
-        let mut seen: FastMap<(u32, u32), usize> = FastMap::with_capacity_and_hasher(id.codes.len(), Default::default());
+        let mut seen: FastMap<(u32, u32), usize> =
+            FastMap::with_capacity_and_hasher(id.codes.len(), Default::default());
         for r in 0..id.codes.len() {
             if let Some(prev) = seen.insert((id.codes[r], w.codes[r]), r) {
                 return Err(Error::Data {
