@@ -341,6 +341,8 @@ fn primary_range<const Q: usize>(
     let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
     let mut cols: Vec<usize> = Vec::with_capacity(p + 8);
     let mut w: Vec<[f64; Q]> = Vec::with_capacity(p + 8);
+    // The X–y columns present at this level (ascending within 0..=p).
+    let mut present: Vec<usize> = Vec::with_capacity(p + 1);
     for i in range {
         let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
         let (_, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
@@ -367,11 +369,18 @@ fn primary_range<const Q: usize>(
             }
         }
         let zi = &cp.zxy[i * Q * (p + 1)..(i + 1) * Q * (p + 1)];
+        // A column of Zᵢᵀ[X y] that is exactly zero (an indicator of another
+        // cohort, say) adds nothing to WᵀW, so it is left out.
+        present.clear();
         for c in 0..=p {
             let mut raw = [0.0f64; Q];
             for (r, rv) in raw.iter_mut().enumerate() {
                 *rv = zi[r * (p + 1) + c];
             }
+            if raw.iter().all(|v| *v == 0.0) {
+                continue;
+            }
+            present.push(c);
             cols.push(q2 + c);
             w.push(raw);
         }
@@ -395,9 +404,9 @@ fn primary_range<const Q: usize>(
             }
             *col = b;
         }
-        // S −= WᵀW on the lower triangle; `cols` ascend, the last p + 1
-        // columns are always X and y, whose block is summed locally.
-        let n_link = cols.len() - (p + 1);
+        // S −= WᵀW on the lower triangle; `cols` ascend, the last columns
+        // are the X and y columns present, whose block is summed locally.
+        let n_link = cols.len() - present.len();
         for a in 0..n_link {
             let row = &mut e[cols[a] * m..cols[a] * m + m];
             let wa = w[a];
@@ -405,8 +414,8 @@ fn primary_range<const Q: usize>(
                 row[cols[b]] -= dot::<Q>(&wa, &w[b]);
             }
         }
-        for a in 0..=p {
-            let wa = w[n_link + a];
+        for (ia, &a) in present.iter().enumerate() {
+            let wa = w[n_link + ia];
             if n_link > 0 {
                 let row = &mut e[(q2 + a) * m..(q2 + a) * m + m];
                 for b in 0..n_link {
@@ -414,8 +423,8 @@ fn primary_range<const Q: usize>(
                 }
             }
             let acc = &mut xy[a * (a + 1) / 2..a * (a + 1) / 2 + a + 1];
-            for (b, v) in acc.iter_mut().enumerate() {
-                *v += dot::<Q>(&wa, &w[n_link + b]);
+            for (ib, &b) in present[..=ia].iter().enumerate() {
+                acc[b] += dot::<Q>(&wa, &w[n_link + ib]);
             }
         }
         if keep {
