@@ -2,7 +2,7 @@
 //!
 //! ```text
 //! cargo build --release
-//! cargo run --release --example bench -- [small|large|inspect|apc|all] [WORK_DIR]
+//! cargo run --release --example bench -- [small|large|inspect|converge|apc|all] [WORK_DIR]
 //! ```
 //!
 //! - `small`: a 3,000-participant three-wave file; REML, quadratic age,
@@ -17,6 +17,9 @@
 //!   same model plus a school intercept; wall time and peak memory of the
 //!   whole CLI run with every output.
 //! - `inspect`: `braid inspect` with JSON output on the same 1,000,000-row file.
+//! - `converge`: `braid converge` on a 30,000-participant file (the demo's
+//!   five cohorts, four waves with its dropout), without and with the school
+//!   term (with it, M3 is one grouped fit instead of per-cohort fits).
 //! - `apc`: `braid apc` on an invented repeated cross-section of 1,000,000
 //!   records (the APC factor model by least squares), and `--hierarchical`
 //!   (crossed random period and cohort intercepts) on 30,000 records.
@@ -337,6 +340,73 @@ fn apc(work: &Path) {
     );
 }
 
+/// `braid converge` on 30,000 participants, three runs each without and
+/// with the school term.
+fn converge(work: &Path) {
+    let file = work.join("converge_30k.csv");
+    let mut d = Design::demo();
+    d.per_cohort = 6000;
+    d.seed = 30_000;
+    let rows = write(&d, &file);
+    println!("converge: 30,000 participants in {} schools, {rows} rows", d.schools);
+    for school in [false, true] {
+        let json = work.join(if school {
+            "converge_school.json"
+        } else {
+            "converge.json"
+        });
+        let walls: Vec<f64> = (0..3)
+            .map(|_| {
+                let mut cmd = Command::new(braid_bin());
+                cmd.arg("converge").arg(&file);
+                cmd.args([
+                    "--id",
+                    "pupil",
+                    "--age",
+                    "age",
+                    "--outcome",
+                    "score",
+                    "--cohort",
+                    "cohort",
+                ]);
+                cmd.args(["--wave", "wave", "--quiet", "--force", "--json"]).arg(&json);
+                if school {
+                    cmd.args(["--cluster", "school"]);
+                }
+                let t0 = Instant::now();
+                let o = cmd.output().expect("run braid converge");
+                let wall = t0.elapsed().as_secs_f64();
+                assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+                wall
+            })
+            .collect();
+        let out: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
+        let m3 = out["tests"]
+            .as_array()
+            .and_then(|t| {
+                t.iter()
+                    .find(|t| t["name"].as_str().is_some_and(|n| n.starts_with("M3")))
+            })
+            .map(|t| {
+                format!(
+                    "M3 statistic {:.3} on {} df",
+                    t["statistic"].as_f64().unwrap_or(f64::NAN),
+                    t["df"]
+                )
+            })
+            .unwrap_or_else(|| "no M3".into());
+        println!(
+            "  {}: runs {walls:.2?} s, median {:.2} s; {m3}",
+            if school {
+                "with --cluster school"
+            } else {
+                "participants only"
+            },
+            median(walls.clone())
+        );
+    }
+}
+
 fn main() {
     let args: Vec<String> = std::env::args().collect();
     let which = args.get(1).map(String::as_str).unwrap_or("all");
@@ -353,6 +423,9 @@ fn main() {
     }
     if which == "inspect" || which == "all" {
         inspect(&work);
+    }
+    if which == "converge" || which == "all" {
+        converge(&work);
     }
     if which == "apc" || which == "all" {
         apc(&work);

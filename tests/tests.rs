@@ -12,6 +12,8 @@ mod common; // helpers shared by the modules
 mod design; // the design report against the truth of seeded simulations
 #[path = "suite/fuzz.rs"]
 mod fuzz; // seeded random CSV files and study files never make braid panic
+#[path = "suite/grouped.rs"]
+mod grouped; // group-specific covariances: the separable identity and recovery
 #[path = "suite/invariance.rs"]
 mod invariance; // row order, id recoding, shifting and scaling age
 #[path = "suite/linkage.rs"]

@@ -440,19 +440,20 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         })
         .collect();
     let mut notes = Vec::new();
-    match variance::m3_test(&frame.problem, &m2r, &k_of, cohorts.len(), 1 + nb)? {
-        Ok((test, loglik, converged)) => {
+    match variance::m3_test(&frame.problem, &p2, &m2r, &k_of, &cohorts, 1 + nb)? {
+        Ok(m3) => {
             models.push(ModelSummary {
                 name: "M3".into(),
                 description: "M2 + cohort-specific covariances and residual variance".into(),
                 method: "REML".into(),
-                loglik,
-                n_params: m2r.n_params + kc * (frame.problem.n_theta() + 1),
-                aic: -2.0 * loglik + 2.0 * (m2r.n_params + kc * (frame.problem.n_theta() + 1)) as f64,
-                bic: -2.0 * loglik + (m2r.n_params + kc * (frame.problem.n_theta() + 1)) as f64 * (n as f64).ln(),
-                converged,
+                loglik: m3.loglik,
+                n_params: m3.n_params,
+                aic: -2.0 * m3.loglik + 2.0 * m3.n_params as f64,
+                bic: -2.0 * m3.loglik + m3.n_params as f64 * (n as f64).ln(),
+                converged: m3.converged,
             });
-            tests.push(test);
+            notes.push(format!("M3 fitted as {}.", m3.route));
+            tests.push(m3.test);
         }
         Err(why) => notes.push(format!("M3 not fitted: {why}")),
     }

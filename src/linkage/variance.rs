@@ -6,7 +6,11 @@
 //!   participant belongs to one cohort and M3's parameters are disjoint by
 //!   cohort, so its REML log-likelihood is the sum of separate REML fits per
 //!   cohort (the REML criterion is additive over independent blocks with a
-//!   block-diagonal X). It is compared with M2 by REML (same fixed effects).
+//!   block-diagonal X). Otherwise (shared covariates, a school term crossing
+//!   cohorts) M3 is one fit of M2's design with a participant covariance and
+//!   a residual variance per cohort ([`crate::lmm::grouped`]); the two routes
+//!   agree where both apply (tests/suite/grouped.rs). M3 is compared with M2
+//!   by REML (same fixed effects).
 //!   The null (one covariance for all cohorts) is an interior point unless the
 //!   common covariance is itself on its boundary.
 //! - **Random slope**: do participants differ in their rate of change? M0
@@ -16,6 +20,7 @@
 
 use crate::error::Result;
 use crate::infer::tests::{TestResult, likelihood_ratio};
+use crate::lmm::grouped::{Grouping, fit_grouped};
 use crate::lmm::{Fit, Method, MixedProblem, RandomTermData};
 
 /// The rows of `problem` in `rows`, with the X columns in `cols` and each
@@ -59,44 +64,90 @@ fn subset(problem: &MixedProblem, rows: &[usize], cols: &[usize]) -> MixedProble
     }
 }
 
-/// M3 against M2 (REML), when M2 is fully cohort-specific; `None` with the
-/// reason otherwise. `cohort_of` gives each row's cohort position (0 =
-/// reference), `base_cols` the intercept and age-basis columns of M0.
+/// What the M3 step found: the test against M2, M3's REML log-likelihood,
+/// its number of parameters, whether it converged, and how it was fitted.
+pub struct M3 {
+    /// M3 against M2.
+    pub test: TestResult,
+    /// M3's REML log-likelihood.
+    pub loglik: f64,
+    /// M3's parameters.
+    pub n_params: usize,
+    /// Whether every fit behind it converged.
+    pub converged: bool,
+    /// How it was fitted, in words.
+    pub route: String,
+}
+
+/// M3 against M2 (REML). `cohort_of` gives each row's cohort position (0 =
+/// reference), `base_cols` the intercept and age-basis columns of M0,
+/// `m2_problem` and `m2_reml` M2's design and REML fit. When M2 is fully
+/// cohort-specific and participants are the only grouping factor, M3 is the
+/// sum of separate REML fits per cohort; otherwise (covariates or a cluster
+/// term shared across cohorts) it is one fit with cohort-specific
+/// participant covariance and residual variance ([`crate::lmm::grouped`]).
+/// `Err` holds the reason when M3 cannot be fitted.
 pub fn m3_test(
     m0_problem: &MixedProblem,
+    m2_problem: &MixedProblem,
     m2_reml: &Fit,
     cohort_of: &[usize],
-    n_cohorts: usize,
+    cohort_names: &[String],
     base_cols: usize,
-) -> Result<std::result::Result<(TestResult, f64, bool), String>> {
-    if m0_problem.p() != base_cols {
-        return Ok(Err(
-            "M3 needs a fixed part of age terms only (covariates are shared across cohorts)".into(),
-        ));
-    }
-    if m0_problem.terms.len() != 1 {
-        return Ok(Err(
-            "M3 needs participants as the only grouping factor (a cluster term is shared across cohorts)".into(),
-        ));
-    }
-    let cols: Vec<usize> = (0..base_cols).collect();
-    let mut loglik = 0.0;
-    let mut converged = true;
-    for k in 0..n_cohorts {
-        let rows: Vec<usize> = (0..cohort_of.len()).filter(|&r| cohort_of[r] == k).collect();
-        let f = super::fit_with(&subset(m0_problem, &rows, &cols), Method::Reml)?;
-        loglik += f.loglik;
-        converged &= f.info.converged;
-    }
-    let per = m0_problem.n_theta() + 1;
-    let test = likelihood_ratio(
-        "M3 vs M2: cohorts differ in covariances (REML)",
-        m2_reml.loglik,
+) -> Result<std::result::Result<M3, String>> {
+    let n_cohorts = cohort_names.len();
+    let Some(first) = m0_problem.terms.first() else {
+        return Ok(Err("M3 needs a participant term".into()));
+    };
+    let per = first.n_theta() + 1;
+    let df = (n_cohorts - 1) * per;
+    let name = "M3 vs M2: cohorts differ in covariances (REML)";
+    let separable = m0_problem.p() == base_cols && m0_problem.terms.len() == 1;
+    let (loglik, converged, route) = if separable {
+        let cols: Vec<usize> = (0..base_cols).collect();
+        let mut loglik = 0.0;
+        let mut converged = true;
+        for k in 0..n_cohorts {
+            let rows: Vec<usize> = (0..cohort_of.len()).filter(|&r| cohort_of[r] == k).collect();
+            let f = super::fit_with(&subset(m0_problem, &rows, &cols), Method::Reml)?;
+            loglik += f.loglik;
+            converged &= f.info.converged;
+        }
+        (
+            loglik,
+            converged,
+            "the sum of separate REML fits per cohort (the model separates by cohort)".to_string(),
+        )
+    } else {
+        let grouping = Grouping {
+            names: cohort_names.to_vec(),
+            of_row: cohort_of.iter().map(|&k| k as u32).collect(),
+        };
+        match fit_grouped(m2_problem, &grouping, Method::Reml, Some(&m2_reml.theta)) {
+            Ok(g) => (
+                g.loglik,
+                g.converged,
+                format!(
+                    "one REML fit with a {} covariance and a residual variance per cohort{}",
+                    first.factor,
+                    if m2_problem.terms.len() > 1 {
+                        " and the other random terms shared"
+                    } else {
+                        ""
+                    }
+                ),
+            ),
+            Err(e) => return Ok(Err(e.to_string())),
+        }
+    };
+    let test = likelihood_ratio(name, m2_reml.loglik, loglik, df, false);
+    Ok(Ok(M3 {
+        test,
         loglik,
-        (n_cohorts - 1) * per,
-        false,
-    );
-    Ok(Ok((test, loglik, converged)))
+        n_params: m2_reml.n_params + df,
+        converged,
+        route,
+    }))
 }
 
 /// The random-slope test (REML, χ̄² mixture), when M0 has a random slope.

@@ -65,11 +65,26 @@ pub struct CrossProducts {
     /// intercept's estimate, by exactly this amount, and it keeps yᵀy small so
     /// that r² is computed without cancellation.
     pub y_shift: f64,
+    /// With row groups ([`CrossProducts::with_row_groups`]), the dense part
+    /// of each group's rows (each m×m, full symmetric; they sum to
+    /// [`Self::dense`]); empty otherwise.
+    pub dense_groups: Vec<Vec<f64>>,
 }
 
 impl CrossProducts {
     /// Gather the cross-products in one pass over the rows.
     pub fn new(problem: &MixedProblem) -> Self {
+        Self::build(problem, None)
+    }
+
+    /// [`CrossProducts::new`], keeping the dense part of each row group
+    /// apart as well (`group[r]` in `0..n_groups`), for models whose
+    /// residual variance differs between groups.
+    pub fn with_row_groups(problem: &MixedProblem, group: &[u32], n_groups: usize) -> Self {
+        Self::build(problem, Some((group, n_groups)))
+    }
+
+    fn build(problem: &MixedProblem, groups: Option<(&[u32], usize)>) -> Self {
         let n = problem.n();
         let p = problem.p();
         let terms = &problem.terms;
@@ -89,6 +104,10 @@ impl CrossProducts {
         }
         let m = q2_total + p + 1;
         let mut dense = vec![0.0; m * m];
+        let mut dense_groups: Vec<Vec<f64>> = match groups {
+            Some((_, k)) => vec![vec![0.0; m * m]; k],
+            None => Vec::new(),
+        };
         let intercept = (0..p).find(|&j| (0..n).all(|r| problem.x[r * p + j] == 1.0));
         let y_shift = match intercept {
             Some(_) if n > 0 => problem.y.iter().sum::<f64>() / n as f64,
@@ -206,8 +225,12 @@ impl CrossProducts {
                 w.push((q2_total + j, xv));
             }
             w.push((m - 1, problem.y[r] - y_shift));
+            let target = match groups {
+                Some((g, _)) => &mut dense_groups[g[r] as usize],
+                None => &mut dense,
+            };
             for (ia, &(a, va)) in w.iter().enumerate() {
-                let row = &mut dense[a * m..(a + 1) * m];
+                let row = &mut target[a * m..(a + 1) * m];
                 for &(b, vb) in &w[..=ia] {
                     row[b] += va * vb;
                 }
@@ -223,11 +246,23 @@ impl CrossProducts {
             }
         }
         // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
-        for a in 0..m {
-            for b in 0..a {
-                let s = dense[a * m + b] + dense[b * m + a];
-                dense[a * m + b] = s;
-                dense[b * m + a] = s;
+        let symmetrise = |d: &mut [f64]| {
+            for a in 0..m {
+                for b in 0..a {
+                    let s = d[a * m + b] + d[b * m + a];
+                    d[a * m + b] = s;
+                    d[b * m + a] = s;
+                }
+            }
+        };
+        for d in &mut dense_groups {
+            symmetrise(d);
+        }
+        if dense_groups.is_empty() {
+            symmetrise(&mut dense);
+        } else {
+            for d in &dense_groups {
+                dense.iter_mut().zip(d).for_each(|(a, b)| *a += b);
             }
         }
         CrossProducts {
@@ -250,6 +285,7 @@ impl CrossProducts {
             term_q: terms.iter().map(|t| t.q()).collect(),
             intercept,
             y_shift,
+            dense_groups,
         }
     }
 }

@@ -150,7 +150,7 @@ fn theta_names(problem: &MixedProblem) -> Vec<String> {
 }
 
 /// Scale-aware start: diagonal factor with entries `0.5/(√q · rms(z))`.
-fn base_start(problem: &MixedProblem) -> Vec<f64> {
+pub(super) fn base_start(problem: &MixedProblem) -> Vec<f64> {
     let mut theta = Vec::with_capacity(problem.n_theta());
     for t in &problem.terms {
         let q = t.q();
@@ -171,7 +171,7 @@ fn base_start(problem: &MixedProblem) -> Vec<f64> {
 }
 
 /// The search scale of each θ entry: the start value of its row's diagonal.
-fn row_scales(problem: &MixedProblem, base: &[f64]) -> Vec<f64> {
+pub(super) fn row_scales(problem: &MixedProblem, base: &[f64]) -> Vec<f64> {
     let mut scales = Vec::with_capacity(base.len());
     let mut offset = 0;
     for t in &problem.terms {
@@ -419,7 +419,6 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     let unit: Vec<f64> = base.iter().zip(&theta_scale).map(|(a, s)| a / s).collect();
     let mut evaluations = 4;
     let mut iterations = 0;
-    let mut restarts = 0;
     // The analytic gradient in the scaled coordinates, when the model has one.
     let sgrad = |x: &[f64]| -> Option<Vec<f64>> {
         let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
@@ -449,37 +448,10 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     } else {
         None
     };
-    let mut current = descend(&sdev, grad, hess_at, &start_x, &lower, &unit, options.optim);
-    iterations += current.iterations;
-    evaluations += current.evaluations;
-    // A zero diagonal entry of T is a stationary point of the criterion (it is
-    // even in that entry), so a boundary optimum is only accepted when moving
-    // back into the interior along each boundary coordinate does not lower the
-    // deviance. Otherwise restart from the best interior point found.
-    for _ in 0..MAX_RESTARTS {
-        let mut candidate: Option<(Vec<f64>, f64)> = None;
-        for i in (0..current.theta.len()).filter(|&i| current.theta[i] <= lower[i]) {
-            for scale in [0.01, 0.1, 0.5, 1.0, 2.0] {
-                let mut trial = current.theta.clone();
-                trial[i] = scale;
-                let d = sdev(&trial);
-                evaluations += 1;
-                if d < current.value - 1e-9 && candidate.as_ref().is_none_or(|c| d < c.1) {
-                    candidate = Some((trial, d));
-                }
-            }
-        }
-        let Some((from, _)) = candidate else { break };
-        let next = descend(&sdev, grad, hess_at, &from, &lower, &unit, options.optim);
-        iterations += next.iterations;
-        evaluations += next.evaluations;
-        restarts += 1;
-        if next.value < current.value - 1e-10 {
-            current = next;
-        } else {
-            break;
-        }
-    }
+    let (current, searched) = search(&sdev, grad, hess_at, &start_x, &lower, &unit, options.optim);
+    iterations += searched.0;
+    evaluations += searched.1;
+    let restarts = searched.2;
     let theta: Vec<f64> = current.theta.iter().zip(&theta_scale).map(|(x, s)| x * s).collect();
     let polished = current.polished;
     let factor = criterion::evaluate(&cp, &theta, true).map_err(|_| Error::Numerical {
@@ -555,12 +527,60 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     })
 }
 
+/// Descents from `start` (scaled coordinates) until a boundary optimum
+/// survives the interior check. Returns the last accepted descent with the
+/// iterations, evaluations and restarts used.
+///
+/// A zero diagonal entry of T is a stationary point of the criterion (it is
+/// even in that entry), so a boundary optimum is only accepted when moving
+/// back into the interior along each boundary coordinate does not lower the
+/// deviance. Otherwise the search restarts from the best interior point found.
+pub(super) fn search(
+    sdev: &impl Fn(&[f64]) -> f64,
+    grad: optimize::Gradient,
+    hess_at: optimize::HessianAt,
+    start: &[f64],
+    lower: &[f64],
+    unit: &[f64],
+    optim: OptimOptions,
+) -> (Descent, (usize, usize, usize)) {
+    let mut current = descend(sdev, grad, hess_at, start, lower, unit, optim);
+    let mut iterations = current.iterations;
+    let mut evaluations = current.evaluations;
+    let mut restarts = 0;
+    for _ in 0..MAX_RESTARTS {
+        let mut candidate: Option<(Vec<f64>, f64)> = None;
+        for i in (0..current.theta.len()).filter(|&i| current.theta[i] <= lower[i]) {
+            for scale in [0.01, 0.1, 0.5, 1.0, 2.0] {
+                let mut trial = current.theta.clone();
+                trial[i] = scale;
+                let d = sdev(&trial);
+                evaluations += 1;
+                if d < current.value - 1e-9 && candidate.as_ref().is_none_or(|c| d < c.1) {
+                    candidate = Some((trial, d));
+                }
+            }
+        }
+        let Some((from, _)) = candidate else { break };
+        let next = descend(sdev, grad, hess_at, &from, lower, unit, optim);
+        iterations += next.iterations;
+        evaluations += next.evaluations;
+        restarts += 1;
+        if next.value < current.value - 1e-10 {
+            current = next;
+        } else {
+            break;
+        }
+    }
+    (current, (iterations, evaluations, restarts))
+}
+
 /// One descent: quasi-Newton search, Newton finish, and snapping of
 /// diagonal entries that sit a hair inside the boundary.
-struct Descent {
-    theta: Vec<f64>,
-    value: f64,
-    polished: optimize::Polished,
+pub(super) struct Descent {
+    pub(super) theta: Vec<f64>,
+    pub(super) value: f64,
+    pub(super) polished: optimize::Polished,
     iterations: usize,
     evaluations: usize,
 }

@@ -12,7 +12,8 @@
 //! - [`crossprod`]: the one pass over the rows that gathers every cross-product;
 //! - [`criterion`]: one evaluation of the profiled criterion for a θ;
 //! - [`optimize`]: the bounded quasi-Newton optimiser;
-//! - [`fit`]: the fit itself, start values, restarts and post-fit quantities.
+//! - [`fit`]: the fit itself, start values, restarts and post-fit quantities;
+//! - [`grouped`]: covariances and residual variances specific to groups of levels.
 //!
 //! The engine sees plain Rust types and faer matrices only.
 #![allow(non_snake_case)]
@@ -20,6 +21,7 @@
 pub mod criterion;
 pub mod crossprod;
 pub mod fit;
+pub mod grouped;
 pub mod optimize;
 
 pub use fit::{Fit, FitInfo, FitOptions, RandomComponent, fit};

@@ -26,6 +26,25 @@ pub const REFIT_LOGLIK_ABS: f64 = 1e-7;
 /// Parameters after a fresh optimisation, relative.
 pub const REFIT_PARAM_REL: f64 = 1e-5;
 
+/// Two different optimisations of one likelihood (a joint fit against a sum
+/// of separate fits, searched with finite-difference gradients), absolute.
+pub const SEPARATE_FITS_LOGLIK_ABS: f64 = 1e-5;
+
+/// Variance parameters from those two routes, relative.
+pub const SEPARATE_FITS_PARAM_REL: f64 = 1e-3;
+
+/// Recovery of a residual SD from about 1,600 rows per group (sampling
+/// error about 2.5%), relative.
+pub const RECOVERY_RESIDUAL_SD_REL: f64 = 0.1;
+
+/// Recovery of a participant-level SD from 400 participants per group
+/// (sampling error about 5–8%), relative.
+pub const RECOVERY_LEVEL_SD_REL: f64 = 0.2;
+
+/// Recovery of a cluster SD from 20 clusters (sampling error about 16%),
+/// relative.
+pub const RECOVERY_CLUSTER_SD_REL: f64 = 0.4;
+
 /// Relative difference, with a floor on the scale so that values near zero
 /// are compared on the scale `floor`.
 pub fn rel(a: f64, b: f64, floor: f64) -> f64 {

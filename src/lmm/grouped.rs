@@ -1,0 +1,400 @@
+//! Random-effect covariances and residual variances that differ between
+//! groups of the primary term's levels (cohorts, say, with each participant
+//! in one cohort), while the fixed part and any other random term are shared.
+//!
+//! Group g has its own factor T_g and a row scale s_g (s₀ = 1): its rows'
+//! residual variance is σ²/s_g². Scaling a group's rows by s_g turns the
+//! model into one with a common residual variance σ², whose criterion the
+//! engine already evaluates, and −2ℓ gains log|D| = −2 Σ_g n_g log s_g (the
+//! Jacobian of the scaling; the same for ML and REML). Because a level lies in
+//! one group, both changes act on its cross-products alone: with
+//! M = s_g T_g, the level enters with `MᵀGᵢM`, `Mᵀ(s_g Zᵢᵀ[X y])` and
+//! `Mᵀ(s_g Zᵢᵀ Z₂)` and the primary factor set to the identity, and the
+//! dense part is Σ_g s_g² (its rows' part). The derivation is in
+//! `notes/criterion.md`.
+
+use std::cell::RefCell;
+
+use super::crossprod::CrossProducts;
+use super::fit::{RandomComponent, base_start, row_scales};
+use super::optimize::{self, OptimOptions};
+use super::{Method, MixedProblem, criterion, unpack_factor};
+use crate::error::{Error, Result};
+
+/// The group of each row; every level of the primary term must lie in one.
+#[derive(Debug, Clone)]
+pub struct Grouping {
+    /// Group labels, in group-index order (the first is the reference).
+    pub names: Vec<String>,
+    /// Group index of each row.
+    pub of_row: Vec<u32>,
+}
+
+/// One group's estimates.
+#[derive(Debug, Clone)]
+pub struct GroupComponent {
+    /// The group's label.
+    pub group: String,
+    /// Levels of the primary term in the group.
+    pub n_levels: usize,
+    /// Rows in the group.
+    pub n_obs: usize,
+    /// Covariance of the primary term's coefficients in this group.
+    pub covariance: Vec<Vec<f64>>,
+    /// Their standard deviations.
+    pub sd: Vec<f64>,
+    /// The group's residual variance.
+    pub residual_variance: f64,
+}
+
+/// A fit with group-specific covariances and residual variances.
+#[derive(Debug, Clone)]
+pub struct GroupedFit {
+    /// REML or ML.
+    pub method: Method,
+    /// The maximised log-likelihood (REML or ML).
+    pub loglik: f64,
+    /// Fixed effects plus covariance parameters plus residual variances.
+    pub n_params: usize,
+    /// The primary term's factor name.
+    pub factor: String,
+    /// The primary term's coefficient names.
+    pub terms: Vec<String>,
+    /// Per group.
+    pub groups: Vec<GroupComponent>,
+    /// The other random terms, shared by all groups.
+    pub others: Vec<RandomComponent>,
+    /// Whether the search stopped at a small gradient.
+    pub converged: bool,
+    /// Evaluations of the criterion.
+    pub evaluations: usize,
+}
+
+/// The search stops after two steps that each improve the deviance by less
+/// than this.
+const GROUPED_VALUE_TOLERANCE: f64 = 1e-8;
+
+/// The fitted parameters φ = (T_g per group, other terms' θ, s₁..s_{G−1}).
+struct Layout {
+    k1: usize,
+    nt1: usize,
+    q1: usize,
+    n_groups: usize,
+    /// Per primary level, its group.
+    level_group: Vec<u32>,
+    /// Rows per group.
+    n_rows: Vec<usize>,
+}
+
+impl Layout {
+    fn n_phi(&self, cp: &CrossProducts) -> usize {
+        let others: usize = (0..cp.term_q.len())
+            .filter(|&k| k != self.k1)
+            .map(|k| cp.term_q[k] * (cp.term_q[k] + 1) / 2)
+            .sum();
+        self.n_groups * self.nt1 + others + self.n_groups - 1
+    }
+
+    /// The engine's θ for the transformed problem: the primary factor is the
+    /// identity, the other terms' entries come from φ.
+    fn engine_theta(&self, cp: &CrossProducts, phi: &[f64]) -> Vec<f64> {
+        let mut theta = Vec::new();
+        let mut at = self.n_groups * self.nt1;
+        for (k, &q) in cp.term_q.iter().enumerate() {
+            let nt = q * (q + 1) / 2;
+            if k == self.k1 {
+                for j in 0..q {
+                    for i in j..q {
+                        theta.push(if i == j { 1.0 } else { 0.0 });
+                    }
+                }
+            } else {
+                theta.extend_from_slice(&phi[at..at + nt]);
+                at += nt;
+            }
+        }
+        theta
+    }
+
+    fn scales(&self, phi: &[f64]) -> Vec<f64> {
+        let start = phi.len() - (self.n_groups - 1);
+        std::iter::once(1.0).chain(phi[start..].iter().copied()).collect()
+    }
+
+    fn factor(&self, phi: &[f64], g: usize) -> Vec<f64> {
+        unpack_factor(&phi[g * self.nt1..(g + 1) * self.nt1], self.q1)
+    }
+}
+
+/// Overwrite `out`'s per-level and dense cross-products with those of the
+/// transformed problem at φ; returns log|D|.
+fn transform(base: &CrossProducts, out: &mut CrossProducts, lay: &Layout, phi: &[f64]) -> f64 {
+    let q = lay.q1;
+    let c1 = base.p + 1;
+    let s = lay.scales(phi);
+    let t: Vec<Vec<f64>> = (0..lay.n_groups).map(|g| lay.factor(phi, g)).collect();
+    let mut mm = vec![0.0; q * q];
+    let mut tmp = vec![0.0; q * q];
+    for i in 0..base.n1 {
+        let g = lay.level_group[i] as usize;
+        let sg = s[g];
+        for (v, tv) in mm.iter_mut().zip(&t[g]) {
+            *v = sg * tv;
+        }
+        // G' = Mᵀ G M.
+        let gi = &base.g[i * q * q..(i + 1) * q * q];
+        for r in 0..q {
+            for c in 0..q {
+                tmp[r * q + c] = (0..q).map(|k| gi[r * q + k] * mm[k * q + c]).sum();
+            }
+        }
+        let go = &mut out.g[i * q * q..(i + 1) * q * q];
+        for r in 0..q {
+            for c in 0..q {
+                go[r * q + c] = (0..q).map(|k| mm[k * q + r] * tmp[k * q + c]).sum();
+            }
+        }
+        // Zᵢᵀ[X y] and the links: Mᵀ (s · block).
+        let zi = &base.zxy[i * q * c1..(i + 1) * q * c1];
+        let zo = &mut out.zxy[i * q * c1..(i + 1) * q * c1];
+        for r in 0..q {
+            for c in 0..c1 {
+                zo[r * c1 + c] = sg * (0..q).map(|k| mm[k * q + r] * zi[k * c1 + c]).sum::<f64>();
+            }
+        }
+        let (lo, hi) = base.link_ranges[i];
+        for link in &base.links[lo..hi] {
+            let qs = base.term_q[base.secondary[link.secondary]];
+            let v = &base.link_values[link.start..link.start + q * qs];
+            let vo = &mut out.link_values[link.start..link.start + q * qs];
+            for r in 0..q {
+                for c in 0..qs {
+                    vo[r * qs + c] = sg * (0..q).map(|k| mm[k * q + r] * v[k * qs + c]).sum::<f64>();
+                }
+            }
+        }
+    }
+    out.dense.iter_mut().for_each(|v| *v = 0.0);
+    for (g, d) in base.dense_groups.iter().enumerate() {
+        let w = s[g] * s[g];
+        out.dense.iter_mut().zip(d).for_each(|(a, b)| *a += w * b);
+    }
+    -2.0 * lay
+        .n_rows
+        .iter()
+        .zip(&s)
+        .map(|(&n, &sg)| n as f64 * sg.ln())
+        .sum::<f64>()
+}
+
+/// Fit `problem` with the primary term's covariance and the residual
+/// variance specific to each group of `grouping`. `start` is the θ of the
+/// same model with shared parameters (its fit is the natural start: every
+/// group begins at the shared estimate).
+///
+/// # Errors
+/// [`Error::Spec`] when there is no random term, a level of the primary term
+/// has rows in two groups, or a group has no rows.
+pub fn fit_grouped(
+    problem: &MixedProblem,
+    grouping: &Grouping,
+    method: Method,
+    start: Option<&[f64]>,
+) -> Result<GroupedFit> {
+    let n_groups = grouping.names.len();
+    let spec = |message: String| Error::Spec {
+        parameter: "groups".into(),
+        message,
+    };
+    if grouping.of_row.len() != problem.n() || n_groups == 0 {
+        return Err(spec("one group per row is needed".into()));
+    }
+    let base = CrossProducts::with_row_groups(problem, &grouping.of_row, n_groups);
+    let Some(k1) = base.primary else {
+        return Err(spec("group-specific covariances need a random term".into()));
+    };
+    let term = &problem.terms[k1];
+    let mut level_group = vec![u32::MAX; base.n1];
+    let mut n_rows = vec![0usize; n_groups];
+    for (r, &g) in grouping.of_row.iter().enumerate() {
+        let l = term.level[r] as usize;
+        n_rows[g as usize] += 1;
+        if level_group[l] == u32::MAX {
+            level_group[l] = g;
+        } else if level_group[l] != g {
+            return Err(spec(format!(
+                "'{}' level '{}' has rows in groups '{}' and '{}'; each level must lie in one group",
+                term.factor, term.level_names[l], grouping.names[level_group[l] as usize], grouping.names[g as usize]
+            )));
+        }
+    }
+    if let Some(g) = n_rows.iter().position(|&c| c == 0) {
+        return Err(spec(format!("group '{}' has no rows", grouping.names[g])));
+    }
+    level_group.iter_mut().filter(|g| **g == u32::MAX).for_each(|g| *g = 0);
+    let q1 = base.q1;
+    let nt1 = q1 * (q1 + 1) / 2;
+    let lay = Layout {
+        k1,
+        nt1,
+        q1,
+        n_groups,
+        level_group,
+        n_rows,
+    };
+    let n_phi = lay.n_phi(&base);
+
+    // Start, bounds and search scales, term by term as the plain fit does.
+    let shared = start.map(<[f64]>::to_vec).unwrap_or_else(|| base_start(problem));
+    let plain_scale = row_scales(problem, &base_start(problem));
+    let mut phi0 = Vec::with_capacity(n_phi);
+    let mut lower = Vec::with_capacity(n_phi);
+    let mut scale = Vec::with_capacity(n_phi);
+    let lower_plain = problem.theta_lower();
+    let off1 = base.theta_offset[k1];
+    for _ in 0..n_groups {
+        phi0.extend_from_slice(&shared[off1..off1 + nt1]);
+        lower.extend_from_slice(&lower_plain[off1..off1 + nt1]);
+        scale.extend_from_slice(&plain_scale[off1..off1 + nt1]);
+    }
+    for (k, &q) in base.term_q.iter().enumerate().filter(|(k, _)| *k != k1) {
+        let off = base.theta_offset[k];
+        let nt = q * (q + 1) / 2;
+        phi0.extend_from_slice(&shared[off..off + nt]);
+        lower.extend_from_slice(&lower_plain[off..off + nt]);
+        scale.extend_from_slice(&plain_scale[off..off + nt]);
+    }
+    for _ in 1..n_groups {
+        phi0.push(1.0);
+        lower.push(0.0);
+        scale.push(1.0);
+    }
+    let work = RefCell::new(base.clone());
+    let (n, p) = (problem.n(), problem.p());
+    let deviance_at = |phi: &[f64]| -> f64 {
+        if lay.scales(phi).iter().any(|&s| s <= 0.0) {
+            return f64::INFINITY;
+        }
+        let mut cp = work.borrow_mut();
+        let logdet_r = transform(&base, &mut cp, &lay, phi);
+        match criterion::evaluate(&cp, &lay.engine_theta(&cp, phi), false) {
+            Ok(f) => f.pieces.profiled_deviance(method, n, p) + logdet_r,
+            Err(_) => f64::INFINITY,
+        }
+    };
+    let unscale = |x: &[f64]| -> Vec<f64> { x.iter().zip(&scale).map(|(a, s)| a * s).collect() };
+    let sdev = |x: &[f64]| deviance_at(&unscale(x));
+    let start_x: Vec<f64> = phi0.iter().zip(&scale).map(|(a, s)| a / s).collect();
+    if !sdev(&start_x).is_finite() {
+        return Err(Error::Numerical {
+            step: "group-specific start".into(),
+            message: "the criterion cannot be evaluated at the shared estimate".into(),
+        });
+    }
+    // A quasi-Newton search with forward-difference gradients, without the
+    // plain fit's Newton finish: its difference Hessian would cost 2d² + 1
+    // evaluations (801 for five cohorts), several times the search itself,
+    // and a likelihood-ratio statistic needs the optimum's value, which the
+    // search reaches to about 1e-6 (tests/suite/grouped.rs checks it against
+    // the separable case).
+    let found = optimize::minimize(
+        sdev,
+        &start_x,
+        &lower,
+        OptimOptions {
+            value_tolerance: GROUPED_VALUE_TOLERANCE,
+            ..OptimOptions::default()
+        },
+    );
+    let evaluations = found.evaluations;
+    let phi = unscale(&found.x);
+    let deviance = found.value;
+    let converged = found.converged;
+
+    // σ² (the reference group's residual variance) from the final pieces.
+    let mut cp = work.borrow_mut();
+    transform(&base, &mut cp, &lay, &phi);
+    let theta_engine = lay.engine_theta(&cp, &phi);
+    let factor = criterion::evaluate(&cp, &theta_engine, false).map_err(|_| Error::Numerical {
+        step: "group-specific fit".into(),
+        message: "the criterion failed at the optimum; please report this with the data shape".into(),
+    })?;
+    let sigma2 = factor.pieces.sigma2(method, n, p);
+    let s = lay.scales(&phi);
+    let mut levels_in = vec![0usize; n_groups];
+    for &g in &lay.level_group {
+        levels_in[g as usize] += 1;
+    }
+    let groups = (0..n_groups)
+        .map(|g| {
+            let t = lay.factor(&phi, g);
+            let cov: Vec<Vec<f64>> = (0..q1)
+                .map(|i| {
+                    (0..q1)
+                        .map(|j| sigma2 * (0..q1).map(|c| t[i * q1 + c] * t[j * q1 + c]).sum::<f64>())
+                        .collect()
+                })
+                .collect();
+            GroupComponent {
+                group: grouping.names[g].clone(),
+                n_levels: levels_in[g],
+                n_obs: lay.n_rows[g],
+                sd: (0..q1).map(|i| cov[i][i].max(0.0).sqrt()).collect(),
+                covariance: cov,
+                residual_variance: sigma2 / (s[g] * s[g]),
+            }
+        })
+        .collect();
+    let others = problem
+        .terms
+        .iter()
+        .enumerate()
+        .filter(|(k, _)| *k != k1)
+        .map(|(k, t)| {
+            let q = t.q();
+            let off = base.theta_offset[k];
+            let tk = unpack_factor(&theta_engine[off..off + q * (q + 1) / 2], q);
+            let cov: Vec<Vec<f64>> = (0..q)
+                .map(|i| {
+                    (0..q)
+                        .map(|j| sigma2 * (0..q).map(|c| tk[i * q + c] * tk[j * q + c]).sum::<f64>())
+                        .collect()
+                })
+                .collect();
+            let sd: Vec<f64> = (0..q).map(|i| cov[i][i].max(0.0).sqrt()).collect();
+            RandomComponent {
+                factor: t.factor.clone(),
+                terms: t.columns.clone(),
+                n_levels: t.n_levels(),
+                correlation: (0..q)
+                    .map(|i| {
+                        (0..q)
+                            .map(|j| {
+                                if i == j {
+                                    1.0
+                                } else if sd[i] > 0.0 && sd[j] > 0.0 {
+                                    cov[i][j] / (sd[i] * sd[j])
+                                } else {
+                                    f64::NAN
+                                }
+                            })
+                            .collect()
+                    })
+                    .collect(),
+                covariance: cov,
+                sd,
+            }
+        })
+        .collect();
+    Ok(GroupedFit {
+        method,
+        loglik: -deviance / 2.0,
+        n_params: p + n_phi + 1,
+        factor: term.factor.clone(),
+        terms: term.columns.clone(),
+        groups,
+        others,
+        converged,
+        evaluations,
+    })
+}
