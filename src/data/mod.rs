@@ -371,7 +371,7 @@ fn number_at(path: &Path, column: &str, col: &RawColumn, r: usize) -> Result<Opt
                 "is not a finite number; store missing values as nulls",
             )),
         },
-        RawColumn::Text(v) => match v[r].as_deref().map(str::trim) {
+        RawColumn::Text(v) => match v.get(r).map(str::trim) {
             None => Ok(None),
             Some(s) if is_missing(s) => Ok(None),
             Some(s) => match s.parse::<f64>() {
@@ -392,11 +392,7 @@ fn number_at(path: &Path, column: &str, col: &RawColumn, r: usize) -> Result<Opt
 /// A label cell: `None` when missing.
 fn label_at(col: &RawColumn, r: usize) -> Option<String> {
     match col {
-        RawColumn::Text(v) => v[r]
-            .as_deref()
-            .map(str::trim)
-            .filter(|s| !is_missing(s))
-            .map(str::to_string),
+        RawColumn::Text(v) => v.get(r).map(str::trim).filter(|s| !is_missing(s)).map(str::to_string),
         RawColumn::Number(v) => v[r].map(|x| {
             if x.fract() == 0.0 && x.abs() < 1e15 {
                 format!("{}", x as i64)
@@ -533,7 +529,7 @@ fn reshape_wide(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<(r
     let number = |c: &RawColumn, r: usize| -> Option<String> {
         match c {
             RawColumn::Number(v) => v[r].map(|x| x.to_string()),
-            RawColumn::Text(v) => v[r].clone(),
+            RawColumn::Text(v) => v.get(r).map(str::to_string),
         }
     };
     let mut file_row = Vec::with_capacity(n * k);
@@ -570,10 +566,10 @@ fn reshape_wide(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<(r
         }
     }
     let mut columns: std::collections::HashMap<String, RawColumn> =
-        out.into_iter().map(|(c, v)| (c, RawColumn::Text(v))).collect();
-    columns.insert(outcome_name.clone(), RawColumn::Text(y));
-    columns.insert(time_name.clone(), RawColumn::Text(t));
-    columns.insert(wave_name.clone(), RawColumn::Text(w));
+        out.into_iter().map(|(c, v)| (c, RawColumn::Text(v.into()))).collect();
+    columns.insert(outcome_name.clone(), RawColumn::Text(y.into()));
+    columns.insert(time_name.clone(), RawColumn::Text(t.into()));
+    columns.insert(wave_name.clone(), RawColumn::Text(w.into()));
     let long_roles = Roles {
         wide_outcome: Vec::new(),
         wide_age: Vec::new(),
@@ -649,12 +645,17 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
     let n = table.n_rows;
     let col = |name: &str| &table.columns[name];
     let y_col = col(&roles.outcome);
+    // The columns read per row, looked up once.
+    let dates = roles.dates().map(|(b, d)| (b, d, col(b), col(d)));
+    let age_col = if dates.is_none() { Some(col(&roles.age)) } else { None };
+    let cov_cols: Vec<&RawColumn> = roles.covariates.iter().map(|c| col(c)).collect();
     // Age: a numeric column, or computed from two date columns.
     let age_at = |r: usize| -> Result<Option<f64>> {
-        match roles.dates() {
-            None => number_at(path, &roles.age, col(&roles.age), r),
-            Some((b, d)) => {
-                let (Some(bs), Some(ds)) = (label_at(col(b), r), label_at(col(d), r)) else {
+        match (age_col, dates) {
+            (Some(c), _) => number_at(path, &roles.age, c, r),
+            (None, None) => Ok(None),
+            (None, Some((b, d, bc, dc))) => {
+                let (Some(bs), Some(ds)) = (label_at(bc, r), label_at(dc, r)) else {
                     return Ok(None);
                 };
                 let parse = |column: &str, s: &str| {
@@ -717,9 +718,9 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
         };
         for (k, c) in roles.covariates.iter().enumerate() {
             let missing = if cov_numeric[k] {
-                number_at(path, c, col(c), r)?.is_none()
+                number_at(path, c, cov_cols[k], r)?.is_none()
             } else {
-                label_at(col(c), r).is_none()
+                label_at(cov_cols[k], r).is_none()
             };
             if missing {
                 dropped.missing_covariate += 1;
@@ -762,7 +763,7 @@ fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
             RawColumn::Text(v) => {
                 let cells: Vec<&str> = keep_rows
                     .iter()
-                    .map(|&r| match v[r].as_deref().map(str::trim) {
+                    .map(|&r| match v.get(r).map(str::trim) {
                         Some(t) if !is_missing(t) => Ok(t),
                         _ => Err(Error::BadValue {
                             path: path.to_path_buf(),

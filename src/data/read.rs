@@ -14,11 +14,64 @@ use polars::prelude::*;
 
 use crate::error::{Error, Result};
 
+/// A column of text cells in one buffer (a cell is a range of it, or
+/// missing): reading a label column costs one allocation, not one per cell.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct TextCells {
+    text: String,
+    /// Per cell, its byte range in `text`; `None` for a missing cell.
+    spans: Vec<Option<(u32, u32)>>,
+}
+
+impl TextCells {
+    /// Number of cells.
+    pub fn len(&self) -> usize {
+        self.spans.len()
+    }
+    /// Whether there are no cells.
+    pub fn is_empty(&self) -> bool {
+        self.spans.is_empty()
+    }
+    /// Cell `r` (`None` when missing).
+    pub fn get(&self, r: usize) -> Option<&str> {
+        self.spans[r].map(|(a, b)| &self.text[a as usize..b as usize])
+    }
+    /// The cells in order.
+    pub fn iter(&self) -> impl Iterator<Item = Option<&str>> + '_ {
+        (0..self.len()).map(|r| self.get(r))
+    }
+}
+
+impl<'a> FromIterator<Option<&'a str>> for TextCells {
+    fn from_iter<I: IntoIterator<Item = Option<&'a str>>>(cells: I) -> Self {
+        let cells = cells.into_iter();
+        let n = cells.size_hint().0;
+        let mut out = TextCells {
+            text: String::with_capacity(8 * n),
+            spans: Vec::with_capacity(n),
+        };
+        for c in cells {
+            out.spans.push(c.map(|t| {
+                let a = out.text.len() as u32;
+                out.text.push_str(t);
+                (a, out.text.len() as u32)
+            }));
+        }
+        out
+    }
+}
+
+impl From<Vec<Option<String>>> for TextCells {
+    fn from(cells: Vec<Option<String>>) -> Self {
+        cells.iter().map(|c| c.as_deref()).collect()
+    }
+}
+
 /// One column, as braid sees it.
 #[derive(Debug, Clone)]
 pub enum RawColumn {
     /// Text cells (`None` for an empty cell).
-    Text(Vec<Option<String>>),
+    Text(TextCells),
     /// Numeric cells from a typed file (`None` for a null).
     Number(Vec<Option<f64>>),
 }
@@ -208,19 +261,24 @@ pub fn read_columns(path: &Path, names: &[String], numeric: &[String], delimiter
                 // cell is a finite number or a missing-value token; otherwise
                 // the text is kept so that the bad cell is reported as written.
                 let parsed: Option<Vec<Option<f64>>> = if numeric.contains(name) {
-                    ca.iter()
-                        .map(|v| match v.map(str::trim) {
-                            None => Some(None),
-                            Some(t) if super::is_missing(t) => Some(None),
-                            Some(t) => t.parse::<f64>().ok().filter(|x| x.is_finite()).map(Some),
-                        })
-                        .collect()
+                    let mut out = Vec::with_capacity(ca.len());
+                    for v in ca.iter() {
+                        out.push(match v.map(str::trim) {
+                            None => None,
+                            Some(t) if super::is_missing(t) => None,
+                            Some(t) => match t.parse::<f64>() {
+                                Ok(x) if x.is_finite() => Some(x),
+                                _ => break,
+                            },
+                        });
+                    }
+                    (out.len() == ca.len()).then_some(out)
                 } else {
                     None
                 };
                 match parsed {
                     Some(v) => RawColumn::Number(v),
-                    None => RawColumn::Text(ca.iter().map(|v| v.map(str::to_string)).collect()),
+                    None => RawColumn::Text(ca.iter().collect()),
                 }
             }
             dt if dt.is_primitive_numeric() => {
@@ -231,7 +289,7 @@ pub fn read_columns(path: &Path, names: &[String], numeric: &[String], delimiter
             _ => {
                 let c = col.cast(&DataType::String).map_err(parse)?;
                 let ca = c.str().map_err(parse)?;
-                RawColumn::Text(ca.iter().map(|v| v.map(str::to_string)).collect())
+                RawColumn::Text(ca.iter().collect())
             }
         };
         columns.insert(name.clone(), raw);
@@ -275,7 +333,7 @@ pub fn write_parquet(path: &Path, columns: Vec<(String, RawColumn)>) -> Result<(
         .into_iter()
         .map(|(name, c)| match c {
             RawColumn::Number(v) => Column::new(name.as_str().into(), v),
-            RawColumn::Text(v) => Column::new(name.as_str().into(), v),
+            RawColumn::Text(v) => Column::new(name.as_str().into(), v.iter().collect::<Vec<Option<&str>>>()),
         })
         .collect();
     let mut df = DataFrame::new_infer_height(cols).map_err(|e| out(e.to_string()))?;
@@ -297,9 +355,25 @@ pub fn columns_from_text(header: &[&str], rows: &[Vec<String>]) -> Vec<(String, 
             let nums: Option<Vec<Option<f64>>> = rows.iter().map(|r| at(r).parse::<f64>().ok().map(Some)).collect();
             let col = match nums {
                 Some(v) => RawColumn::Number(v),
-                None => RawColumn::Text(rows.iter().map(|r| Some(at(r))).collect()),
+                None => RawColumn::Text(rows.iter().map(|r| Some(r.get(j).map_or("", String::as_str))).collect()),
             };
             (name.to_string(), col)
         })
         .collect()
+}
+
+#[cfg(test)]
+mod text_cells_tests {
+    use super::TextCells;
+
+    // Identity: the cells come back as they went in, missing ones included.
+    #[test]
+    fn text_cells_round_trip() {
+        let cells = vec![Some("P01"), None, Some(""), Some("Ørsted Vale"), Some("P01")];
+        let t: TextCells = cells.iter().copied().collect();
+        assert_eq!(t.len(), 5);
+        assert_eq!(t.iter().collect::<Vec<_>>(), cells);
+        let owned: Vec<Option<String>> = cells.iter().map(|c| c.map(str::to_string)).collect();
+        assert_eq!(TextCells::from(owned), t);
+    }
 }
