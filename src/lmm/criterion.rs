@@ -85,9 +85,58 @@ pub struct Factor {
     pub dense_l: Mat<f64>,
     /// Per primary level, `Lᵢ` (q₁×q₁ row-major), when kept.
     pub blocks_l: Vec<f64>,
-    /// Per primary level, `Wᵢ` restricted to its own columns, when kept:
-    /// values (q₁ × ncols row-major) and the dense column index of each column.
-    pub blocks_w: Vec<(Vec<usize>, Vec<f64>)>,
+    /// Per primary level, `Wᵢ` restricted to its own columns, when kept.
+    pub blocks_w: KeptW,
+}
+
+/// Per primary level, `Wᵢ` restricted to its own columns, in flat arrays:
+/// the dense column index of each column and the values (q₁ × ncols
+/// row-major), one allocation for all levels.
+#[derive(Debug, Clone, Default)]
+pub struct KeptW {
+    q1: usize,
+    /// Level i's columns are `cols[start[i]..start[i + 1]]`.
+    start: Vec<usize>,
+    cols: Vec<usize>,
+    vals: Vec<f64>,
+}
+
+impl KeptW {
+    fn with_capacity(q1: usize, levels: usize, cols_per_level: usize) -> KeptW {
+        let mut start = Vec::with_capacity(levels + 1);
+        start.push(0);
+        KeptW {
+            q1,
+            start,
+            cols: Vec::with_capacity(levels * cols_per_level),
+            vals: Vec::with_capacity(levels * cols_per_level * q1),
+        }
+    }
+
+    /// Append a level: its columns, and `fill` writes its q₁ × ncols values.
+    fn push_with(&mut self, cols: &[usize], fill: impl FnOnce(&mut [f64])) {
+        let at = self.vals.len();
+        self.vals.resize(at + self.q1 * cols.len(), 0.0);
+        fill(&mut self.vals[at..]);
+        self.cols.extend_from_slice(cols);
+        self.start.push(self.cols.len());
+    }
+
+    /// Level `i`'s dense column indices and values (q₁ × ncols row-major).
+    pub fn level(&self, i: usize) -> (&[usize], &[f64]) {
+        let (a, b) = (self.start[i], self.start[i + 1]);
+        (&self.cols[a..b], &self.vals[self.q1 * a..self.q1 * b])
+    }
+
+    /// Number of kept levels.
+    pub fn len(&self) -> usize {
+        self.start.len().saturating_sub(1)
+    }
+
+    /// Whether no level is kept.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
 }
 
 /// Build the per-term lower-triangular factors `T_k` (row-major) from θ.
@@ -154,7 +203,7 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
 
     let mut logdet_z = 0.0;
     let mut blocks_l = Vec::new();
-    let mut blocks_w = Vec::new();
+    let mut blocks_w = KeptW::default();
     if let Some(k1) = cp.primary {
         let out = match cp.q1 {
             1 => primary_fixed::<1>(cp, &t[k1], &t, &mut e, keep),
@@ -227,7 +276,7 @@ pub fn deviance(cp: &CrossProducts, theta: &[f64], method: Method) -> f64 {
 }
 
 /// Per-level results: log|L₁|², and when kept the blocks Lᵢ and Wᵢ.
-type PrimaryOut = (f64, Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>);
+type PrimaryOut = (f64, Vec<f64>, KeptW);
 
 /// Accumulates Σ 2·ln(dᵢ) for pivots dᵢ ≥ 1 with few logarithms: the pivots
 /// are multiplied together and the logarithm taken when the product is large.
@@ -294,7 +343,7 @@ fn primary_fixed<const Q: usize>(
             xy.iter_mut().zip(&part_xy).for_each(|(a, b)| *a += b);
             e.iter_mut().zip(&local).for_each(|(a, b)| *a += b);
         }
-        (logdet, xy, Vec::new(), Vec::new())
+        (logdet, xy, Vec::new(), KeptW::default())
     };
     for a in 0..=p {
         for b in 0..=a {
@@ -311,10 +360,10 @@ const PARALLEL_LEVELS: usize = 2000;
 const CHUNKS: usize = 4;
 
 /// Blocks L and W of the kept primary levels.
-type Kept = (Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>);
+type Kept = (Vec<f64>, KeptW);
 
 /// log|L|² of a range of levels, its X–y block, and its kept blocks.
-type RangeOut = (f64, Vec<f64>, Vec<f64>, Vec<(Vec<usize>, Vec<f64>)>);
+type RangeOut = (f64, Vec<f64>, Vec<f64>, KeptW);
 
 /// The primary levels in `range`: subtracts each level's link-column terms
 /// from `e` and returns log|L|² of the range, the range's X–y block of
@@ -332,10 +381,10 @@ fn primary_range<const Q: usize>(
     let q2 = cp.q2_total;
     let tq = *tq;
     let mut logdet = LogDet::new();
-    let (mut blocks_l, mut blocks_w): Kept = (Vec::new(), Vec::new());
+    let (mut blocks_l, mut blocks_w): Kept = (Vec::new(), KeptW::default());
     if keep {
         blocks_l.reserve(range.len() * Q * Q);
-        blocks_w.reserve(range.len());
+        blocks_w = KeptW::with_capacity(Q, range.len(), p + 2);
     }
     // The X–y block of Σ WᵢᵀWᵢ, packed lower triangle.
     let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
@@ -434,13 +483,13 @@ fn primary_range<const Q: usize>(
                 }
             }
             let nc = cols.len();
-            let mut vals = vec![0.0; Q * nc];
-            for (c, col) in w.iter().enumerate() {
-                for r in 0..Q {
-                    vals[r * nc + c] = col[r];
+            blocks_w.push_with(&cols, |vals| {
+                for (c, col) in w.iter().enumerate() {
+                    for r in 0..Q {
+                        vals[r * nc + c] = col[r];
+                    }
                 }
-            }
-            blocks_w.push((cols.clone(), vals));
+            });
         }
     }
     (logdet.total(), xy, blocks_l, blocks_w)
@@ -507,7 +556,7 @@ fn primary_general(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64]
     let q2 = cp.q2_total;
     let mut logdet = LogDet::new();
     let mut blocks_l = Vec::new();
-    let mut blocks_w = Vec::new();
+    let mut blocks_w = KeptW::default();
     {
         let q1 = cp.q1;
         let mut a = vec![0.0; q1 * q1];
@@ -518,7 +567,7 @@ fn primary_general(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64]
         let mut bt: Vec<f64> = Vec::new();
         if keep {
             blocks_l.reserve(cp.n1 * q1 * q1);
-            blocks_w.reserve(cp.n1);
+            blocks_w = KeptW::with_capacity(q1, cp.n1, cp.p + 2);
         }
         for i in 0..cp.n1 {
             // A = T₁ᵀ Gᵢ T₁ + I.
@@ -642,7 +691,7 @@ fn primary_general(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64]
             }
             if keep {
                 blocks_l.extend_from_slice(&l);
-                blocks_w.push((cols.clone(), wv.clone()));
+                blocks_w.push_with(&cols, |vals| vals.copy_from_slice(&wv));
             }
         }
     }
