@@ -696,11 +696,11 @@ fn solve_pls(cp: &CrossProducts, f: &Factor) -> (Vec<f64>, Vec<Vec<f64>>) {
     if let Some(k1) = cp.primary {
         let q1 = cp.q1;
         let mut u1 = vec![0.0; cp.n1 * q1];
+        let mut rhs = vec![0.0; q1];
         for i in 0..cp.n1 {
             let (cols, w) = f.blocks_w.level(i);
             let nc = cols.len();
             let li = &f.blocks_l[i * q1 * q1..(i + 1) * q1 * q1];
-            let mut rhs = vec![0.0; q1];
             for r in 0..q1 {
                 let mut v = 0.0;
                 for (c, &dc) in cols.iter().enumerate() {
