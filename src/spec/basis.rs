@@ -116,6 +116,18 @@ impl AgeBasis {
         }
     }
 
+    /// [`AgeBasis::eval`], appended to `out` (no allocation for a
+    /// polynomial: the model frame calls it once per row).
+    pub fn extend_eval(&self, age: f64, out: &mut Vec<f64>) {
+        match self {
+            AgeBasis::Polynomial { degree, center } => {
+                let a = age - center;
+                out.extend((1..=*degree).map(|k| a.powi(k as i32)));
+            }
+            AgeBasis::Spline { .. } => out.extend(self.eval(age)),
+        }
+    }
+
     /// First derivatives of the columns with respect to age.
     pub fn deriv(&self, age: f64) -> Vec<f64> {
         match self {

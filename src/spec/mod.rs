@@ -285,7 +285,7 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
     let mut x = Vec::with_capacity(n * p);
     for r in 0..n {
         x.push(1.0);
-        x.extend(basis.eval(panel.age[r]));
+        basis.extend_eval(panel.age[r], &mut x);
         for c in &cov_cols {
             x.push(c[r]);
         }
@@ -297,20 +297,22 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
     let mut terms = Vec::with_capacity(random.len());
     let center = basis.center();
     for rs in &random {
-        let codes = if rs.factor == panel.roles.id {
-            panel.id.clone()
+        let coded_numeric;
+        let codes: &crate::data::Codes = if rs.factor == panel.roles.id {
+            &panel.id
         } else if Some(&rs.factor) == panel.roles.cluster.as_ref() {
-            panel.cluster.clone().expect("cluster role present")
+            panel.cluster.as_ref().expect("cluster role present")
         } else if Some(&rs.factor) == panel.roles.cohort.as_ref() {
-            panel.cohort.clone().expect("cohort role present")
+            panel.cohort.as_ref().expect("cohort role present")
         } else if Some(&rs.factor) == panel.roles.wave.as_ref() {
-            panel.wave.clone().expect("wave role present")
+            panel.wave.as_ref().expect("wave role present")
         } else if let Some(cv) = panel.covariates.iter().find(|c| c.name == rs.factor) {
             match &cv.values {
-                CovariateValues::Categorical(c) => c.clone(),
+                CovariateValues::Categorical(c) => c,
                 CovariateValues::Numeric(v) => {
                     let labels: Vec<String> = v.iter().map(|x| x.to_string()).collect();
-                    crate::data::Codes::new(&labels, true)
+                    coded_numeric = crate::data::Codes::new(&labels, true);
+                    &coded_numeric
                 }
             }
         } else {
