@@ -420,10 +420,10 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     let mut evaluations = 4;
     let mut iterations = 0;
     // The analytic gradient in the scaled coordinates, when the model has one.
-    let sgrad = |x: &[f64]| -> Option<Vec<f64>> {
+    let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
         let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
         criterion::deviance_gradient(&cp, &th, method)
-            .map(|(_, g)| g.iter().zip(&theta_scale).map(|(a, s)| a * s).collect())
+            .map(|(d, g)| (d, g.iter().zip(&theta_scale).map(|(a, s)| a * s).collect()))
     };
     let grad: optimize::Gradient = if criterion::has_gradient(&cp) {
         Some(&sgrad)

@@ -105,11 +105,18 @@ fn projected_norm(x: &[f64], g: &[f64], lower: &[f64]) -> f64 {
 
 /// An analytic gradient, when the criterion has one (`None` at a point where
 /// it cannot be computed: finite differences are used there).
-pub type Gradient<'a> = Option<&'a dyn Fn(&[f64]) -> Option<Vec<f64>>>;
+/// It returns the objective's value with the gradient (one evaluation gives
+/// both), so the search takes its values from it too.
+pub type Gradient<'a> = Option<&'a dyn Fn(&[f64]) -> Option<(f64, Vec<f64>)>>;
+
+/// The gradient alone from a [`Gradient`] function.
+fn gradient_only(g: &dyn Fn(&[f64]) -> Option<(f64, Vec<f64>)>, x: &[f64]) -> Option<Vec<f64>> {
+    g(x).map(|(_, v)| v)
+}
 
 /// The gradient at `x`: analytic when available, else forward differences.
 fn gradient_at(f: &mut impl FnMut(&[f64]) -> f64, grad: Gradient, x: &[f64], fx: f64, evals: &mut usize) -> Vec<f64> {
-    if let Some(g) = grad.and_then(|g| g(x)) {
+    if let Some(g) = grad.and_then(|g| gradient_only(g, x)) {
         *evals += 1;
         return g;
     }
@@ -132,7 +139,13 @@ pub fn minimize_with(
     let d = x0.len();
     let mut x: Vec<f64> = x0.iter().zip(lower).map(|(&a, &l)| a.max(l)).collect();
     let mut evals = 0usize;
-    let mut fx = f(&x);
+    // With an analytic gradient one evaluation gives the value and the
+    // gradient, at the start and at each trial point of the line search.
+    let mut start = if d > 0 { grad.and_then(|gf| gf(&x)) } else { None };
+    let mut fx = match &start {
+        Some((v, _)) => *v,
+        None => f(&x),
+    };
     evals += 1;
     if d == 0 {
         return OptimResult {
@@ -144,7 +157,10 @@ pub fn minimize_with(
             converged: true,
         };
     }
-    let mut g = gradient_at(&mut f, grad, &x, fx, &mut evals);
+    let mut g = match start.take() {
+        Some((_, g)) => g,
+        None => gradient_at(&mut f, grad, &x, fx, &mut evals),
+    };
     let mut h = identity(d);
     let mut h_scaled = false;
     // With an analytic gradient, the initial inverse Hessian is the inverse
@@ -233,16 +249,19 @@ pub fn minimize_with(
         let mut accepted = None;
         for _ in 0..40 {
             let xn: Vec<f64> = (0..d).map(|i| (x[i] + alpha * dir[i]).max(lower[i])).collect();
-            let fnew = f(&xn);
+            let (fnew, gnew) = match grad.and_then(|gf| gf(&xn)) {
+                Some((v, gv)) => (v, Some(gv)),
+                None => (f(&xn), None),
+            };
             evals += 1;
             let decrease: f64 = (0..d).map(|i| g[i] * (xn[i] - x[i])).sum();
             if fnew.is_finite() && fnew <= fx + 1e-4 * decrease.min(0.0) {
-                accepted = Some((xn, fnew));
+                accepted = Some((xn, fnew, gnew));
                 break;
             }
             alpha *= 0.5;
         }
-        let Some((xn, fnew)) = accepted else {
+        let Some((xn, fnew, gnew)) = accepted else {
             // No descent along the direction: restart BFGS once, else stop.
             if h_scaled {
                 h = identity(d);
@@ -252,7 +271,10 @@ pub fn minimize_with(
             converged = projected_norm(&x, &g, lower) < 1e-3;
             break;
         };
-        let gn = gradient_at(&mut f, grad, &xn, fnew, &mut evals);
+        let gn = match gnew {
+            Some(gv) => gv,
+            None => gradient_at(&mut f, grad, &xn, fnew, &mut evals),
+        };
         let s: Vec<f64> = (0..d).map(|i| xn[i] - x[i]).collect();
         let yv: Vec<f64> = (0..d).map(|i| gn[i] - g[i]).collect();
         let sy: f64 = s.iter().zip(&yv).map(|(a, b)| a * b).sum();
@@ -295,7 +317,7 @@ pub fn minimize_with(
 /// (upward steps, so always inside the lower bounds), symmetrised; `None`
 /// when a gradient fails or the matrix is not positive definite.
 fn forward_inverse_hessian(
-    gf: &dyn Fn(&[f64]) -> Option<Vec<f64>>,
+    gf: &dyn Fn(&[f64]) -> Option<(f64, Vec<f64>)>,
     x: &[f64],
     g: &[f64],
     evals: &mut usize,
@@ -306,7 +328,7 @@ fn forward_inverse_hessian(
     for i in 0..d {
         let s = 1e-3 * x[i].abs().max(1e-1);
         xt[i] = x[i] + s;
-        let gi = gf(&xt);
+        let gi = gradient_only(gf, &xt);
         xt[i] = x[i];
         *evals += 1;
         let gi = gi?;
@@ -505,7 +527,7 @@ pub fn newton_polish(f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lower: &
 /// The Hessian over `free` by central differences of an analytic gradient
 /// (forward differences next to a bound), symmetrised.
 fn gradient_hessian(
-    g: &dyn Fn(&[f64]) -> Option<Vec<f64>>,
+    gf: &dyn Fn(&[f64]) -> Option<(f64, Vec<f64>)>,
     g0: &[f64],
     x: &[f64],
     lower: &[f64],
@@ -518,10 +540,10 @@ fn gradient_hessian(
     for (a, &ia) in free.iter().enumerate() {
         let h = 1e-4 * x[ia].abs().max(1e-2);
         xt[ia] = x[ia] + h;
-        let gp = g(&xt)?;
+        let gp = gradient_only(gf, &xt)?;
         let (gm, den) = if x[ia] - h >= lower[ia] {
             xt[ia] = x[ia] - h;
-            (g(&xt)?, 2.0 * h)
+            (gradient_only(gf, &xt)?, 2.0 * h)
         } else {
             (g0.to_vec(), h)
         };
@@ -592,7 +614,7 @@ pub fn newton_polish_with(
         } else {
             // The gradient always comes from the fine central differences; the
             // Hessian stencil's coarser one would bias the Newton steps.
-            let analytic = grad.and_then(|gf| gf(&x));
+            let analytic = grad.and_then(|gf| gradient_only(gf, &x));
             g = match analytic {
                 Some(v) => {
                     evals += 1;
