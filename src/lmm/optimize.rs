@@ -107,14 +107,14 @@ fn projected_norm(x: &[f64], g: &[f64], lower: &[f64]) -> f64 {
 /// it cannot be computed: finite differences are used there).
 /// It returns the objective's value with the gradient (one evaluation gives
 /// both), so the search takes its values from it too.
-pub type Gradient<'a> = Option<&'a GradientFn>;
+pub type Gradient<'a> = Option<&'a GradientFn<'a>>;
 
 /// A function giving the value and gradient at a point (`None` where it
 /// cannot be computed).
-pub type GradientFn = dyn Fn(&[f64]) -> Option<(f64, Vec<f64>)>;
+pub type GradientFn<'a> = dyn Fn(&[f64]) -> Option<(f64, Vec<f64>)> + 'a;
 
 /// The gradient alone from a [`Gradient`] function.
-fn gradient_only(g: &GradientFn, x: &[f64]) -> Option<Vec<f64>> {
+fn gradient_only(g: &GradientFn<'_>, x: &[f64]) -> Option<Vec<f64>> {
     g(x).map(|(_, v)| v)
 }
 
@@ -320,7 +320,7 @@ pub fn minimize_with(
 /// The inverse of the Hessian from forward differences of the gradient
 /// (upward steps, so always inside the lower bounds), symmetrised; `None`
 /// when a gradient fails or the matrix is not positive definite.
-fn forward_inverse_hessian(gf: &GradientFn, x: &[f64], g: &[f64], evals: &mut usize) -> Option<Vec<f64>> {
+fn forward_inverse_hessian(gf: &GradientFn<'_>, x: &[f64], g: &[f64], evals: &mut usize) -> Option<Vec<f64>> {
     let d = x.len();
     let mut hm = vec![0.0; d * d];
     let mut xt = x.to_vec();
@@ -526,7 +526,7 @@ pub fn newton_polish(f: impl FnMut(&[f64]) -> f64, x0: &[f64], f0: f64, lower: &
 /// The Hessian over `free` by central differences of an analytic gradient
 /// (forward differences next to a bound), symmetrised.
 fn gradient_hessian(
-    gf: &GradientFn,
+    gf: &GradientFn<'_>,
     g0: &[f64],
     x: &[f64],
     lower: &[f64],
