@@ -186,6 +186,9 @@ pub struct ConvergeReport {
     pub assumptions: Vec<String>,
     /// Notes (fit problems, skipped parts).
     pub notes: Vec<String>,
+    /// Each cohort's random-effect SDs and residual SD under M3 (empty when
+    /// M3 was not fitted).
+    pub cohort_variances: Vec<variance::CohortVariance>,
 }
 
 /// A problem with extra fixed-effect columns appended to X.
@@ -440,11 +443,12 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         })
         .collect();
     let mut notes = Vec::new();
+    let mut cohort_variances = Vec::new();
     match variance::m3_test(&frame.problem, &p2, &m2r, &k_of, &cohorts, 1 + nb)? {
         Ok(m3) => {
             models.push(ModelSummary {
                 name: "M3".into(),
-                description: "M2 + cohort-specific covariances and residual variance".into(),
+                description: "M2 + covariances and residual variance per cohort".into(),
                 method: "REML".into(),
                 loglik: m3.loglik,
                 n_params: m3.n_params,
@@ -454,6 +458,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
             });
             notes.push(format!("M3 fitted as {}.", m3.route));
             tests.push(m3.test);
+            cohort_variances = m3.cohorts;
         }
         Err(why) => notes.push(format!("M3 not fitted: {why}")),
     }
@@ -509,6 +514,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         verdict,
         assumptions,
         notes,
+        cohort_variances,
     })
 }
 

@@ -77,6 +77,21 @@ pub struct M3 {
     pub converged: bool,
     /// How it was fitted, in words.
     pub route: String,
+    /// Each cohort's random-effect SDs and residual SD under M3.
+    pub cohorts: Vec<CohortVariance>,
+}
+
+/// One cohort's variance components under M3.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct CohortVariance {
+    /// The cohort's label.
+    pub cohort: String,
+    /// The participant term's coefficients.
+    pub terms: Vec<String>,
+    /// Their SDs in this cohort.
+    pub sd: Vec<f64>,
+    /// The cohort's residual SD.
+    pub residual_sd: f64,
 }
 
 /// M3 against M2 (REML). `cohort_of` gives each row's cohort position (0 =
@@ -103,6 +118,7 @@ pub fn m3_test(
     let df = (n_cohorts - 1) * per;
     let name = "M3 vs M2: cohorts differ in covariances (REML)";
     let separable = m0_problem.p() == base_cols && m0_problem.terms.len() == 1;
+    let mut cohorts = Vec::with_capacity(n_cohorts);
     let (loglik, converged, route) = if separable {
         let cols: Vec<usize> = (0..base_cols).collect();
         let mut loglik = 0.0;
@@ -112,6 +128,12 @@ pub fn m3_test(
             let f = super::fit_with(&subset(m0_problem, &rows, &cols), Method::Reml)?;
             loglik += f.loglik;
             converged &= f.info.converged;
+            cohorts.push(CohortVariance {
+                cohort: cohort_names[k].clone(),
+                terms: first.columns.clone(),
+                sd: f.random.first().map(|c| c.sd.clone()).unwrap_or_default(),
+                residual_sd: f.sigma2.sqrt(),
+            });
         }
         (
             loglik,
@@ -125,7 +147,15 @@ pub fn m3_test(
         };
         match fit_grouped(m2_problem, &grouping, Method::Reml, Some(&m2_reml.theta)) {
             Ok(g) => (
-                g.loglik,
+                {
+                    cohorts.extend(g.groups.iter().map(|c| CohortVariance {
+                        cohort: c.group.clone(),
+                        terms: g.terms.clone(),
+                        sd: c.sd.clone(),
+                        residual_sd: c.residual_variance.sqrt(),
+                    }));
+                    g.loglik
+                },
                 g.converged,
                 format!(
                     "one REML fit with a {} covariance and a residual variance per cohort{}",
@@ -147,6 +177,7 @@ pub fn m3_test(
         n_params: m2_reml.n_params + df,
         converged,
         route,
+        cohorts,
     }))
 }
 

@@ -420,6 +420,21 @@ pub fn converge_summary(panel: &crate::data::Panel, r: &crate::linkage::Converge
             m.bic
         );
     }
+    if let Some(first) = r.cohort_variances.first() {
+        let _ = writeln!(s);
+        let _ = write!(s, "{:<12}{:<14}", "Under M3", "cohort");
+        for t in &first.terms {
+            let _ = write!(s, "{:>14}", format!("SD {t}"));
+        }
+        let _ = writeln!(s, "{:>14}", "residual SD");
+        for c in &r.cohort_variances {
+            let _ = write!(s, "{:<12}{:<14}", "", c.cohort);
+            for v in &c.sd {
+                let _ = write!(s, "{v:>14.3}");
+            }
+            let _ = writeln!(s, "{:>14.3}", c.residual_sd);
+        }
+    }
     let _ = writeln!(s);
     let _ = writeln!(s, "{:<12}{:<50}{:>10}{:>12}{:>10}", "Tests", "", "statistic", "df", "p");
     for t in &r.tests {

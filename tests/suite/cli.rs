@@ -579,3 +579,43 @@ fn apc_checks_a_given_birth_year_column_and_fits_the_hierarchical_model() {
     let err = String::from_utf8_lossy(&bad.stderr);
     assert!(err.contains("is not a birth year") && err.contains("data row"), "{err}");
 }
+
+// With a school term crossing cohorts, M3 is the grouped fit: its test, the
+// route in the notes, and one variance row per cohort are in the JSON.
+#[test]
+fn converge_with_a_school_term_fits_m3_and_reports_each_cohorts_variances() {
+    let dir = temp_dir("converge_school");
+    let json = dir.join("c.json");
+    let out = Command::new(braid_bin())
+        .args(["converge", data_dir().join("sim_school.csv").to_str().unwrap()])
+        .args(BASE)
+        .args(["--cohort", "cohort", "--cluster", "school", "--quiet", "--json"])
+        .arg(&json)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    let n_cohorts = v["cohorts"].as_array().unwrap().len();
+    let m3 = v["tests"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|t| t["name"].as_str().unwrap().starts_with("M3"))
+        .expect("an M3 test");
+    // df = (cohorts − 1) × (3 covariance parameters + 1 residual variance).
+    assert_eq!(m3["df"].as_f64().unwrap(), ((n_cohorts - 1) * 4) as f64);
+    assert!(m3["p"].as_f64().unwrap() >= 0.0);
+    let rows = v["cohort_variances"].as_array().unwrap();
+    assert_eq!(rows.len(), n_cohorts);
+    for r in rows {
+        assert!(r["residual_sd"].as_f64().unwrap() > 0.0);
+        assert_eq!(r["sd"].as_array().unwrap().len(), 2);
+    }
+    let notes = v["notes"].as_array().unwrap();
+    assert!(
+        notes
+            .iter()
+            .any(|n| n.as_str().unwrap().contains("residual variance per cohort")),
+        "{notes:?}"
+    );
+}
