@@ -123,13 +123,13 @@ pub fn m3_test(
         let cols: Vec<usize> = (0..base_cols).collect();
         let mut loglik = 0.0;
         let mut converged = true;
-        for k in 0..n_cohorts {
+        for (k, name) in cohort_names.iter().enumerate() {
             let rows: Vec<usize> = (0..cohort_of.len()).filter(|&r| cohort_of[r] == k).collect();
             let f = super::fit_with(&subset(m0_problem, &rows, &cols), Method::Reml)?;
             loglik += f.loglik;
             converged &= f.info.converged;
             cohorts.push(CohortVariance {
-                cohort: cohort_names[k].clone(),
+                cohort: name.clone(),
                 terms: first.columns.clone(),
                 sd: f.random.first().map(|c| c.sd.clone()).unwrap_or_default(),
                 residual_sd: f.sigma2.sqrt(),
