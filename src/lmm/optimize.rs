@@ -253,7 +253,14 @@ pub fn minimize_with(
         let mut accepted = None;
         for _ in 0..40 {
             let xn: Vec<f64> = (0..d).map(|i| (x[i] + alpha * dir[i]).max(lower[i])).collect();
-            let (fnew, gnew) = match grad.and_then(|gf| gf(&xn)) {
+            // The full step usually succeeds, so its gradient is taken with
+            // its value; shorter steps are tried on the value alone.
+            let joint = if alpha == 1.0 {
+                grad.and_then(|gf| gf(&xn))
+            } else {
+                None
+            };
+            let (fnew, gnew) = match joint {
                 Some((v, gv)) => (v, Some(gv)),
                 None => (f(&xn), None),
             };
