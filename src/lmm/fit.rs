@@ -803,40 +803,51 @@ fn components(problem: &MixedProblem, cp: &CrossProducts, theta: &[f64], sigma2:
         .terms
         .iter()
         .enumerate()
-        .map(|(k, term)| {
-            let q = term.q();
-            let tk = &t[k];
-            let cov: Vec<Vec<f64>> = (0..q)
-                .map(|i| {
-                    (0..q)
-                        .map(|j| sigma2 * (0..q).map(|c| tk[i * q + c] * tk[j * q + c]).sum::<f64>())
-                        .collect()
-                })
-                .collect();
-            let sd: Vec<f64> = (0..q).map(|i| cov[i][i].max(0.0).sqrt()).collect();
-            let correlation = (0..q)
-                .map(|i| {
-                    (0..q)
-                        .map(|j| {
-                            if i == j {
-                                1.0
-                            } else if sd[i] > 0.0 && sd[j] > 0.0 {
-                                cov[i][j] / (sd[i] * sd[j])
-                            } else {
-                                f64::NAN
-                            }
-                        })
-                        .collect()
-                })
-                .collect();
-            RandomComponent {
-                factor: term.factor.clone(),
-                terms: term.columns.clone(),
-                n_levels: term.n_levels(),
-                covariance: cov,
-                sd,
-                correlation,
-            }
+        .map(|(k, term)| RandomComponent::from_factor(term, &t[k], sigma2))
+        .collect()
+}
+
+impl RandomComponent {
+    /// The component of `term` whose relative factor is `t` (q×q lower,
+    /// row-major): covariance σ²TTᵀ, SDs and correlations (NaN where an SD
+    /// is zero).
+    pub(super) fn from_factor(term: &super::RandomTermData, t: &[f64], sigma2: f64) -> RandomComponent {
+        let q = term.q();
+        let covariance = factor_covariance(t, q, sigma2);
+        let sd: Vec<f64> = (0..q).map(|i| covariance[i][i].max(0.0).sqrt()).collect();
+        let correlation = (0..q)
+            .map(|i| {
+                (0..q)
+                    .map(|j| {
+                        if i == j {
+                            1.0
+                        } else if sd[i] > 0.0 && sd[j] > 0.0 {
+                            covariance[i][j] / (sd[i] * sd[j])
+                        } else {
+                            f64::NAN
+                        }
+                    })
+                    .collect()
+            })
+            .collect();
+        RandomComponent {
+            factor: term.factor.clone(),
+            terms: term.columns.clone(),
+            n_levels: term.n_levels(),
+            covariance,
+            sd,
+            correlation,
+        }
+    }
+}
+
+/// σ²TTᵀ for a q×q lower-triangular factor T (row-major).
+pub(super) fn factor_covariance(t: &[f64], q: usize, sigma2: f64) -> Vec<Vec<f64>> {
+    (0..q)
+        .map(|i| {
+            (0..q)
+                .map(|j| sigma2 * (0..q).map(|c| t[i * q + c] * t[j * q + c]).sum::<f64>())
+                .collect()
         })
         .collect()
 }

@@ -16,7 +16,7 @@
 use std::cell::RefCell;
 
 use super::crossprod::CrossProducts;
-use super::fit::{RandomComponent, base_start, row_scales};
+use super::fit::{RandomComponent, base_start, factor_covariance, row_scales};
 use super::optimize::{self, OptimOptions};
 use super::{Method, MixedProblem, criterion, unpack_factor};
 use crate::error::{Error, Result};
@@ -327,20 +327,13 @@ pub fn fit_grouped(
     }
     let groups = (0..n_groups)
         .map(|g| {
-            let t = lay.factor(&phi, g);
-            let cov: Vec<Vec<f64>> = (0..q1)
-                .map(|i| {
-                    (0..q1)
-                        .map(|j| sigma2 * (0..q1).map(|c| t[i * q1 + c] * t[j * q1 + c]).sum::<f64>())
-                        .collect()
-                })
-                .collect();
+            let covariance = factor_covariance(&lay.factor(&phi, g), q1, sigma2);
             GroupComponent {
                 group: grouping.names[g].clone(),
                 n_levels: levels_in[g],
                 n_obs: lay.n_rows[g],
-                sd: (0..q1).map(|i| cov[i][i].max(0.0).sqrt()).collect(),
-                covariance: cov,
+                sd: (0..q1).map(|i| covariance[i][i].max(0.0).sqrt()).collect(),
+                covariance,
                 residual_variance: sigma2 / (s[g] * s[g]),
             }
         })
@@ -353,37 +346,7 @@ pub fn fit_grouped(
         .map(|(k, t)| {
             let q = t.q();
             let off = base.theta_offset[k];
-            let tk = unpack_factor(&theta_engine[off..off + q * (q + 1) / 2], q);
-            let cov: Vec<Vec<f64>> = (0..q)
-                .map(|i| {
-                    (0..q)
-                        .map(|j| sigma2 * (0..q).map(|c| tk[i * q + c] * tk[j * q + c]).sum::<f64>())
-                        .collect()
-                })
-                .collect();
-            let sd: Vec<f64> = (0..q).map(|i| cov[i][i].max(0.0).sqrt()).collect();
-            RandomComponent {
-                factor: t.factor.clone(),
-                terms: t.columns.clone(),
-                n_levels: t.n_levels(),
-                correlation: (0..q)
-                    .map(|i| {
-                        (0..q)
-                            .map(|j| {
-                                if i == j {
-                                    1.0
-                                } else if sd[i] > 0.0 && sd[j] > 0.0 {
-                                    cov[i][j] / (sd[i] * sd[j])
-                                } else {
-                                    f64::NAN
-                                }
-                            })
-                            .collect()
-                    })
-                    .collect(),
-                covariance: cov,
-                sd,
-            }
+            RandomComponent::from_factor(t, &unpack_factor(&theta_engine[off..off + q * (q + 1) / 2], q), sigma2)
         })
         .collect();
     Ok(GroupedFit {
