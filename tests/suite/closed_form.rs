@@ -5,8 +5,9 @@
 //! *Variance Components*, ch. 3–4). The data are invented; the identity is
 //! what is checked.
 
+use crate::common::reml;
 use braid::infer;
-use braid::lmm::{self, FitOptions, Method, MixedProblem, RandomTermData};
+use braid::lmm::{MixedProblem, RandomTermData};
 use braid::simulate::Rng;
 
 use crate::tolerance::{CLOSED_FORM_REL, SATTERTHWAITE_REL, rel};
@@ -41,17 +42,6 @@ fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
         }],
     };
     (problem, groups)
-}
-
-fn reml(problem: &MixedProblem) -> braid::lmm::Fit {
-    lmm::fit(
-        problem,
-        FitOptions {
-            method: Method::Reml,
-            ..Default::default()
-        },
-    )
-    .unwrap()
 }
 
 fn anova(groups: &[Vec<f64>]) -> (f64, f64, f64) {

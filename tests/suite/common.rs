@@ -36,3 +36,15 @@ pub fn load(file: &str, roles: &Roles) -> Panel {
 pub fn braid_bin() -> PathBuf {
     PathBuf::from(env!("CARGO_BIN_EXE_braid"))
 }
+
+/// A REML fit of a problem that is known to fit (test data only).
+pub fn reml(problem: &braid::lmm::MixedProblem) -> braid::lmm::Fit {
+    braid::lmm::fit(
+        problem,
+        braid::lmm::FitOptions {
+            method: braid::lmm::Method::Reml,
+            ..Default::default()
+        },
+    )
+    .unwrap()
+}

@@ -1,8 +1,9 @@
 //! Group-specific covariances and residual variances (the engine behind
 //! converge's M3 when cohorts share a school term or covariates).
 
+use crate::common::reml;
 use braid::lmm::grouped::{Grouping, fit_grouped};
-use braid::lmm::{self, FitOptions, Method, MixedProblem, RandomTermData};
+use braid::lmm::{Method, MixedProblem, RandomTermData};
 use braid::simulate::Rng;
 
 use crate::tolerance::{
@@ -94,17 +95,6 @@ fn cohort_rows(problem: &MixedProblem, grouping: &Grouping, c: u32) -> MixedProb
             z: t.z.iter().map(|z| rows.iter().map(|&r| z[r]).collect()).collect(),
         }],
     }
-}
-
-fn reml(problem: &MixedProblem) -> lmm::Fit {
-    lmm::fit(
-        problem,
-        FitOptions {
-            method: Method::Reml,
-            ..Default::default()
-        },
-    )
-    .unwrap()
 }
 
 // Closed-form identity: with cohort-specific fixed effects, participants as
