@@ -294,23 +294,8 @@ fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f64]) -> Opt
 /// positive definite. No allocation: the moment start calls it per level.
 fn spd_inverse(g: &[f64], q: usize, out: &mut [f64], work: &mut [f64]) -> bool {
     let l = work;
-    for j in 0..q {
-        let mut d = g[j * q + j];
-        for k in 0..j {
-            d -= l[j * q + k] * l[j * q + k];
-        }
-        if d.is_nan() || d <= 0.0 {
-            return false;
-        }
-        let d = d.sqrt();
-        l[j * q + j] = d;
-        for i in j + 1..q {
-            let mut v = g[i * q + j];
-            for k in 0..j {
-                v -= l[i * q + k] * l[j * q + k];
-            }
-            l[i * q + j] = v / d;
-        }
+    if !optimize::small_cholesky(g, q, l) {
+        return false;
     }
     // Column c of the inverse solves L Lᵀ x = e_c.
     for c in 0..q {
@@ -535,7 +520,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
 /// even in that entry), so a boundary optimum is only accepted when moving
 /// back into the interior along each boundary coordinate does not lower the
 /// deviance. Otherwise the search restarts from the best interior point found.
-pub(super) fn search(
+fn search(
     sdev: &impl Fn(&[f64]) -> f64,
     grad: optimize::Gradient,
     hess_at: optimize::HessianAt,
@@ -577,10 +562,10 @@ pub(super) fn search(
 
 /// One descent: quasi-Newton search, Newton finish, and snapping of
 /// diagonal entries that sit a hair inside the boundary.
-pub(super) struct Descent {
-    pub(super) theta: Vec<f64>,
-    pub(super) value: f64,
-    pub(super) polished: optimize::Polished,
+struct Descent {
+    theta: Vec<f64>,
+    value: f64,
+    polished: optimize::Polished,
     iterations: usize,
     evaluations: usize,
 }

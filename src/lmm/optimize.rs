@@ -466,17 +466,17 @@ pub fn hessian(
     (grad, out)
 }
 
-/// Solve `H d = −g` by Cholesky; `None` when H is not positive definite.
-fn newton_direction(h: &[f64], g: &[f64]) -> Option<Vec<f64>> {
-    let k = g.len();
-    let mut l = vec![0.0; k * k];
+/// The lower Cholesky factor of a small symmetric k×k matrix (row-major,
+/// lower triangle read) into `l` (its strict upper triangle is left as it
+/// was); `false` when the matrix is not positive definite.
+pub(super) fn small_cholesky(h: &[f64], k: usize, l: &mut [f64]) -> bool {
     for j in 0..k {
         let mut d = h[j * k + j];
         for s in 0..j {
             d -= l[j * k + s] * l[j * k + s];
         }
         if d.is_nan() || d <= 0.0 {
-            return None;
+            return false;
         }
         let d = d.sqrt();
         l[j * k + j] = d;
@@ -487,6 +487,16 @@ fn newton_direction(h: &[f64], g: &[f64]) -> Option<Vec<f64>> {
             }
             l[i * k + j] = v / d;
         }
+    }
+    true
+}
+
+/// Solve `H d = −g` by Cholesky; `None` when H is not positive definite.
+fn newton_direction(h: &[f64], g: &[f64]) -> Option<Vec<f64>> {
+    let k = g.len();
+    let mut l = vec![0.0; k * k];
+    if !small_cholesky(h, k, &mut l) {
+        return None;
     }
     let mut y = vec![0.0; k];
     for i in 0..k {
