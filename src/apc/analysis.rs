@@ -40,7 +40,7 @@ impl Constraint {
     /// [`Error::Spec`] naming `--constraint` for anything else.
     pub fn parse(s: &str) -> Result<Constraint> {
         let bad = |m: &str| Error::Spec {
-            parameter: "--constraint".into(),
+            parameter: "constraint".into(),
             message: format!("'{s}': {m}; use equal:age:1,2, zero-slope:period or min-norm"),
         };
         let parts: Vec<&str> = s.trim().split(':').collect();
@@ -119,7 +119,7 @@ impl Assumption {
     /// [`Error::Spec`] naming `--assume`.
     pub fn parse(s: &str) -> Result<Assumption> {
         let bad = |m: &str| Error::Spec {
-            parameter: "--assume".into(),
+            parameter: "assume".into(),
             message: format!("'{s}': {m}; use for example period-slope>=0 or cohort:nondecreasing"),
         };
         let t = s.trim();
@@ -333,6 +333,10 @@ pub struct SlopeBound {
 /// The report, with stable JSON keys.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ApcReport {
+    /// What was read and used.
+    pub data: crate::data::DataSummary,
+    /// The settings that produced the report.
+    pub options: super::ApcOptions,
     /// "counts" or "continuous".
     pub outcome: String,
     /// Age groups, periods and cohorts.
@@ -679,7 +683,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
                 let rows = s.effect_rows(*dimension);
                 if *first > rows.len() || *second > rows.len() {
                     return Err(Error::Spec {
-                        parameter: "--constraint".into(),
+                        parameter: "constraint".into(),
                         message: format!(
                             "{} has {} levels; level {} does not exist",
                             dimension.name(),
@@ -749,6 +753,8 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         notes.push("The bounds are on the estimates and take the stated assumptions as true; they carry no sampling uncertainty.".into());
     }
     Ok(ApcReport {
+        data: crate::data::DataSummary::default(),
+        options: super::ApcOptions::default(),
         outcome: match data.family {
             Family::Poisson => "counts".into(),
             Family::Gaussian => "continuous".into(),
@@ -803,7 +809,7 @@ fn solve_t(f: &[f64], b0: &[f64], v: &[f64], c: &Constraint, labels: &Labels) ->
     let fv = dot(f, v);
     if fv.abs() < 1e-9 {
         return Err(Error::Spec {
-            parameter: "--constraint".into(),
+            parameter: "constraint".into(),
             message: format!(
                 "'{}' does not identify the model: it holds along the whole line of solutions",
                 c.describe(labels)

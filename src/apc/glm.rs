@@ -76,7 +76,7 @@ pub fn fit(cells: &[Cell], x: &[Vec<f64>], family: Family) -> Result<GlmFit> {
     let q = x.first().map_or(0, Vec::len);
     let singular = || Error::Numerical {
         step: "age–period–cohort fit".into(),
-        message: "the design is singular (a group with no observations, or too few groups); choose another --width"
+        message: "the design is singular (a group with no observations, or too few groups); choose another `width`"
             .into(),
     };
     match family {

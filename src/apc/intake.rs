@@ -60,7 +60,7 @@ fn observed_shape(path: &Path, a: usize, p: usize, cells: &[Cell]) -> Result<Sha
             return Err(Error::Data {
                 path: path.to_path_buf(),
                 message: format!(
-                    "{name} {} of {levels} has no observations, so its effect cannot be estimated; choose a wider --width or drop the empty group",
+                    "{name} {} of {levels} has no observations, so its effect cannot be estimated; choose a wider `width` or drop the empty group",
                     l + 1
                 ),
             });
@@ -194,7 +194,7 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
         Some(w) if w.is_finite() && w > 0.0 => w,
         Some(w) => {
             return Err(Error::Spec {
-                parameter: "--width".into(),
+                parameter: "width".into(),
                 message: format!("{w} is not a positive number of years"),
             });
         }
@@ -205,7 +205,7 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
         return Err(Error::Data {
             path: t.source.clone(),
             message: format!(
-                "ages {} to {} and periods {} to {} make more than {MAX_GROUPS} groups of {width} years; choose a wider --width or check the columns",
+                "ages {} to {} and periods {} to {} make more than {MAX_GROUPS} groups of {width} years; choose a wider `width` or check the columns",
                 label(min(age)),
                 label(max(age)),
                 label(min(period)),

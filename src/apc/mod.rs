@@ -18,7 +18,10 @@
 pub mod analysis;
 pub mod glm;
 pub mod hierarchical;
+pub mod identify;
 pub mod intake;
+
+pub use identify::{ApcColumns, ApcInput, ApcOptions, identify};
 
 use serde::Serialize;
 
@@ -195,9 +198,9 @@ pub fn complement_basis(v: &[f64]) -> Vec<f64> {
 pub fn check_shape(shape: Shape) -> Result<()> {
     if shape.a < 3 || shape.p < 3 || shape.kn < 3 {
         return Err(Error::Spec {
-            parameter: "--width".into(),
+            parameter: "width".into(),
             message: format!(
-                "{} age groups, {} periods and {} cohorts: an age–period–cohort model needs at least 3 of each; choose a narrower --width",
+                "{} age groups, {} periods and {} cohorts: an age–period–cohort model needs at least 3 of each; choose a narrower `width`",
                 shape.a, shape.p, shape.kn
             ),
         });

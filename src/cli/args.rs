@@ -91,9 +91,9 @@ pub struct RoleArgs {
     pub delimiter: Option<String>,
 }
 
-/// Flags of `braid fit`.
+/// Where the data come from: a file, a study file, or both (flags win).
 #[derive(Debug, Clone, Default, Args)]
-pub struct FitArgs {
+pub struct InputArgs {
     /// The data file (CSV, or Parquet by its .parquet extension); optional with --study.
     #[arg(value_name = "DATA")]
     pub data: Option<PathBuf>,
@@ -103,6 +103,32 @@ pub struct FitArgs {
     /// Column roles.
     #[command(flatten)]
     pub roles: RoleArgs,
+}
+
+/// Where the results go, shared by every command.
+#[derive(Debug, Clone, Default, Args)]
+pub struct OutputArgs {
+    /// Write the report's JSON document to this file (no other files are
+    /// written unless --out is also given).
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
+    /// Folder for the report's JSON document, figures and tables (created if missing).
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
+    /// Print nothing but errors (the files are still written).
+    #[arg(long)]
+    pub quiet: bool,
+    /// Overwrite an existing --json file or the files of an existing --out folder.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// Flags of `braid fit`.
+#[derive(Debug, Clone, Default, Args)]
+pub struct FitArgs {
+    /// The data and column roles.
+    #[command(flatten)]
+    pub input: InputArgs,
     /// The age basis and random part.
     #[command(flatten)]
     pub model: ModelArgs,
@@ -112,13 +138,6 @@ pub struct FitArgs {
     /// Estimation criterion [default: reml].
     #[arg(long, value_enum)]
     pub method: Option<MethodArg>,
-    /// Folder for fit.json, trajectory.csv, trajectory.png and trajectory.svg.
-    #[arg(long, value_name = "DIR")]
-    pub out: Option<PathBuf>,
-    /// Write the fit's JSON document to this file (no other files are written
-    /// unless --out is also given).
-    #[arg(long, value_name = "FILE")]
-    pub json: Option<PathBuf>,
     /// Number of ages on the trajectory grid.
     #[arg(long, value_name = "N", default_value_t = 101)]
     pub grid: usize,
@@ -132,12 +151,9 @@ pub struct FitArgs {
     /// Draw this many participants' observed paths as thin lines in the figure.
     #[arg(long, value_name = "N", default_value_t = 0)]
     pub lines: usize,
-    /// Print nothing but errors (the files are still written).
-    #[arg(long)]
-    pub quiet: bool,
-    /// Overwrite an existing --out folder's files or --json file.
-    #[arg(long)]
-    pub force: bool,
+    /// Where the results go: --out writes fit.json, trajectory.csv, trajectory.png and trajectory.svg.
+    #[command(flatten)]
+    pub output: OutputArgs,
 }
 
 /// The age basis and random part, shared by the commands that fit models.
@@ -160,50 +176,29 @@ pub struct ModelArgs {
 /// Flags of `braid inspect`.
 #[derive(Debug, Clone, Default, Args)]
 pub struct InspectArgs {
-    /// The data file (CSV, or Parquet by its .parquet extension); may come from --study instead.
-    #[arg(value_name = "DATA")]
-    pub data: Option<PathBuf>,
-    /// A study file (TOML) giving the data file and column roles; flags override it.
-    #[arg(long, value_name = "FILE")]
-    pub study: Option<PathBuf>,
-    /// Column roles.
+    /// The data and column roles.
     #[command(flatten)]
-    pub roles: RoleArgs,
+    pub input: InputArgs,
     /// Derived cohorts, when the file has no cohort column (or to override it).
     #[command(flatten)]
     pub derive: DeriveArgs,
-    /// Folder for design.json and the Lexis diagram and coverage chart (PNG and SVG).
-    #[arg(long, value_name = "DIR")]
-    pub out: Option<PathBuf>,
     /// Width of the age bands of the cohort-by-age table, in years.
     #[arg(long, value_name = "YEARS", default_value_t = 1.0)]
     pub band: f64,
     /// Flag an overlap as thin when either cohort has fewer observations there than this.
     #[arg(long, value_name = "N", default_value_t = 30)]
     pub thin: usize,
-    /// Write the design report as JSON to this file.
-    #[arg(long, value_name = "FILE")]
-    pub json: Option<PathBuf>,
-    /// Print nothing but errors.
-    #[arg(long)]
-    pub quiet: bool,
-    /// Overwrite an existing --json file.
-    #[arg(long)]
-    pub force: bool,
+    /// Where the results go: --out writes design.json and the Lexis diagram and coverage chart (PNG and SVG).
+    #[command(flatten)]
+    pub output: OutputArgs,
 }
 
 /// Flags of `braid converge`.
 #[derive(Debug, Clone, Default, Args)]
 pub struct ConvergeArgs {
-    /// The data file (CSV, or Parquet by its .parquet extension); may come from --study instead.
-    #[arg(value_name = "DATA")]
-    pub data: Option<PathBuf>,
-    /// A study file (TOML) stating the data, roles and model; flags override it.
-    #[arg(long, value_name = "FILE")]
-    pub study: Option<PathBuf>,
-    /// Column roles.
+    /// The data and column roles.
     #[command(flatten)]
-    pub roles: RoleArgs,
+    pub input: InputArgs,
     /// Derived cohorts, when the file has no cohort column.
     #[command(flatten)]
     pub derive: DeriveArgs,
@@ -226,18 +221,9 @@ pub struct ConvergeArgs {
     /// first versus later (later), or its square root (sqrt).
     #[arg(long, value_name = "FORM")]
     pub retest: Option<RetestArg>,
-    /// Write the report as JSON to this file.
-    #[arg(long, value_name = "FILE")]
-    pub json: Option<PathBuf>,
-    /// Folder for converge.json and the shared-age figure (PNG and SVG).
-    #[arg(long, value_name = "DIR")]
-    pub out: Option<PathBuf>,
-    /// Print nothing but errors.
-    #[arg(long)]
-    pub quiet: bool,
-    /// Overwrite existing outputs.
-    #[arg(long)]
-    pub force: bool,
+    /// Where the results go: --out writes converge.json and the shared-age figure (PNG and SVG).
+    #[command(flatten)]
+    pub output: OutputArgs,
 }
 
 /// Flags of `braid apc`.
@@ -283,18 +269,10 @@ pub struct ApcArgs {
     /// Field delimiter of a CSV file [default: ,].
     #[arg(long, value_name = "CHAR")]
     pub delimiter: Option<String>,
-    /// Write the report as JSON to this file.
-    #[arg(long, value_name = "FILE")]
-    pub json: Option<PathBuf>,
-    /// Folder for apc.json and the figures (effects under each constraint, second differences, bounds).
-    #[arg(long, value_name = "DIR")]
-    pub out: Option<PathBuf>,
-    /// Print nothing but errors.
-    #[arg(long)]
-    pub quiet: bool,
-    /// Overwrite an existing --json file or --out folder.
-    #[arg(long)]
-    pub force: bool,
+    /// Where the results go: --out writes apc.json and the figures (effects under each constraint, second
+    /// differences, bounds).
+    #[command(flatten)]
+    pub output: OutputArgs,
 }
 
 /// The form of a retest term.

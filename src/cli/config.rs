@@ -5,10 +5,16 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use super::args::{FitArgs, MethodArg};
+use super::args::{ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, RetestArg};
+use crate::FitRequest;
+use crate::apc::analysis::{Assumption, Constraint};
+use crate::apc::{ApcColumns, ApcOptions};
 use crate::data::{ReadOptions, Roles};
+use crate::design::DesignOptions;
 use crate::error::{Error, Result};
 use crate::infer::TrajectoryRequest;
+use crate::linkage::retest::RetestForm;
+use crate::linkage::{ConvergeOptions, DEFAULT_MARGIN_SD, Margin};
 use crate::lmm::Method;
 use crate::spec::{AgeSpec, ModelSpec, RandomSpec};
 
@@ -58,33 +64,6 @@ impl Study {
     }
 }
 
-/// A validated fit configuration: one route for flags and study files alike.
-#[derive(Debug, Clone, PartialEq)]
-pub struct FitConfig {
-    /// The data file.
-    pub data: PathBuf,
-    /// Reading options.
-    pub read: ReadOptions,
-    /// Column roles.
-    pub roles: Roles,
-    /// The model.
-    pub model: ModelSpec,
-    /// Output folder.
-    pub out: Option<PathBuf>,
-    /// A JSON file to write.
-    pub json: Option<PathBuf>,
-    /// Where to evaluate the trajectory.
-    pub trajectory: TrajectoryRequest,
-    /// Whether to write per-row predictions and BLUPs.
-    pub predictions: bool,
-    /// Individual paths to draw.
-    pub lines: usize,
-    /// Suppress printing.
-    pub quiet: bool,
-    /// Overwrite existing outputs.
-    pub force: bool,
-}
-
 pub(crate) fn parse_delimiter(s: &str) -> Result<u8> {
     match s {
         "\\t" | "tab" | "\t" => Ok(b'\t'),
@@ -101,19 +80,6 @@ fn need(value: Option<String>, flag: &str) -> Result<String> {
         parameter: flag.into(),
         message: format!("is required: name the column with {flag} COLUMN (or give it in a study file's [roles])"),
     })
-}
-
-/// The column roles from flags alone.
-///
-/// # Errors
-/// [`Error::Spec`] when `--id`, `--age` or `--outcome` is missing, or the delimiter is invalid.
-pub fn roles_from_flags(r: &super::args::RoleArgs) -> Result<(Roles, ReadOptions)> {
-    let roles = merge_roles(r, None)?;
-    let delimiter = match &r.delimiter {
-        Some(d) => parse_delimiter(d)?,
-        None => b',',
-    };
-    Ok((roles, ReadOptions { delimiter }))
 }
 
 /// Column roles from flags, each falling back to a study file's value.
@@ -182,7 +148,8 @@ impl Source {
     /// # Errors
     /// [`Error::Spec`] for no data file, a missing role or a bad delimiter;
     /// errors of [`Study::read`] for a bad study file.
-    pub fn resolve(data: Option<&PathBuf>, study_path: Option<&Path>, r: &super::args::RoleArgs) -> Result<Source> {
+    pub fn resolve(input: &InputArgs) -> Result<Source> {
+        let (data, study_path, r) = (input.data.as_ref(), input.study.as_deref(), &input.roles);
         let study = study_path.map(Study::read).transpose()?;
         let base_dir = study_path
             .and_then(Path::parent)
@@ -219,87 +186,150 @@ impl Source {
     }
 }
 
-impl FitConfig {
-    /// Build and validate the configuration from `braid fit` flags.
+/// The model from a study file (or the default), with the model flags applied.
+pub fn model_from(
+    study: Option<&Study>,
+    m: &ModelArgs,
+    center: Option<f64>,
+    method: Option<MethodArg>,
+    roles: &Roles,
+) -> ModelSpec {
+    let mut model = study.map(|s| s.model.clone()).unwrap_or_default();
+    if let Some(m) = method {
+        model.method = match m {
+            MethodArg::Reml => Method::Reml,
+            MethodArg::Ml => Method::Ml,
+        };
+    }
+    if let Some(d) = m.degree {
+        model.age = AgeSpec::Polynomial { degree: d };
+    }
+    if let Some(k) = m.knots {
+        model.age = AgeSpec::Spline {
+            interior_knots: Some(k),
+            knots: None,
+        };
+    }
+    if let Some(k) = &m.knot_ages {
+        model.age = AgeSpec::Spline {
+            interior_knots: None,
+            knots: Some(k.clone()),
+        };
+    }
+    if let Some(c) = center {
+        model.center = Some(c);
+    }
+    if m.no_slope {
+        let intercept = |factor: &String| RandomSpec {
+            factor: factor.clone(),
+            intercept: true,
+            slopes: vec![],
+        };
+        model.random = Some(
+            std::iter::once(&roles.id)
+                .chain(&roles.cluster)
+                .map(intercept)
+                .collect(),
+        );
+    }
+    model
+}
+
+impl FitArgs {
+    /// The data source and the validated fit request these flags ask for.
     ///
     /// # Errors
     /// [`Error::Spec`] for a missing data file or role, or an invalid option;
     /// errors of [`Study::read`] for a bad study file.
-    pub fn from_args(args: &FitArgs) -> Result<FitConfig> {
-        let Source {
-            data,
-            roles,
-            read,
-            study,
-        } = Source::resolve(args.data.as_ref(), args.study.as_deref(), &args.roles)?;
-        let mut model = study.map(|s| s.model).unwrap_or_default();
-        if let Some(m) = args.method {
-            model.method = match m {
-                MethodArg::Reml => Method::Reml,
-                MethodArg::Ml => Method::Ml,
-            };
-        }
-        if let Some(d) = args.model.degree {
-            model.age = AgeSpec::Polynomial { degree: d };
-        }
-        if let Some(k) = args.model.knots {
-            model.age = AgeSpec::Spline {
-                interior_knots: Some(k),
-                knots: None,
-            };
-        }
-        if let Some(k) = &args.model.knot_ages {
-            model.age = AgeSpec::Spline {
-                interior_knots: None,
-                knots: Some(k.clone()),
-            };
-        }
-        if let Some(c) = args.center {
-            model.center = Some(c);
-        }
-        if args.model.no_slope {
-            let mut terms = vec![RandomSpec {
-                factor: roles.id.clone(),
-                intercept: true,
-                slopes: vec![],
-            }];
-            if let Some(c) = &roles.cluster {
-                terms.push(RandomSpec {
-                    factor: c.clone(),
-                    intercept: true,
-                    slopes: vec![],
-                });
-            }
-            model.random = Some(terms);
-        }
-        if let Some(a) = args.at.iter().find(|a| !a.is_finite()) {
-            return Err(Error::Spec {
-                parameter: "--at".into(),
-                message: format!("{a} is not a finite age"),
-            });
-        }
-        if args.grid < 2 || args.grid > 100_000 {
-            return Err(Error::Spec {
-                parameter: "--grid".into(),
-                message: format!("{} grid ages; choose between 2 and 100000", args.grid),
-            });
-        }
-        Ok(FitConfig {
-            data,
-            read,
-            roles,
-            model,
-            out: args.out.clone(),
-            json: args.json.clone(),
-            trajectory: TrajectoryRequest {
-                grid: args.grid,
-                at: args.at.clone(),
-            },
-            predictions: args.predictions,
-            lines: args.lines,
-            quiet: args.quiet,
-            force: args.force,
-        })
+    pub fn request(&self) -> Result<(Source, FitRequest)> {
+        let source = Source::resolve(&self.input)?;
+        let model = model_from(
+            source.study.as_ref(),
+            &self.model,
+            self.center,
+            self.method,
+            &source.roles,
+        );
+        let trajectory = TrajectoryRequest {
+            grid: self.grid,
+            at: self.at.clone(),
+        };
+        let request = FitRequest::new(model, trajectory)?
+            .with_predictions(self.predictions)
+            .with_paths(self.lines);
+        Ok((source, request))
+    }
+}
+
+impl InspectArgs {
+    /// The data source and the validated design options.
+    ///
+    /// # Errors
+    /// Those of [`Source::resolve`] and [`DesignOptions::new`].
+    pub fn options(&self) -> Result<(Source, DesignOptions)> {
+        let d = &self.derive;
+        let options = DesignOptions::new(self.band, self.thin, d.cohort_rule(), d.wave_rule())?;
+        Ok((Source::resolve(&self.input)?, options))
+    }
+}
+
+impl ConvergeArgs {
+    /// The data source, the model of M0 and the validated options.
+    ///
+    /// # Errors
+    /// Those of [`Source::resolve`] and [`ConvergeOptions::new`].
+    pub fn options(&self) -> Result<(Source, ModelSpec, ConvergeOptions)> {
+        let source = Source::resolve(&self.input)?;
+        let model = model_from(source.study.as_ref(), &self.model, None, None, &source.roles);
+        let margin = match (self.margin, self.margin_sd) {
+            (Some(m), _) => Margin::Outcome(m),
+            (None, Some(s)) => Margin::Sd(s),
+            (None, None) => Margin::Sd(DEFAULT_MARGIN_SD),
+        };
+        let retest = self.retest.map(|r| match r {
+            RetestArg::Count => RetestForm::Count,
+            RetestArg::Later => RetestForm::Later,
+            RetestArg::Sqrt => RetestForm::Sqrt,
+        });
+        let cohort_rule = self.derive.cohort_rule();
+        let options = ConvergeOptions::new(self.reference_age, margin, self.shared_ages, cohort_rule, retest)?;
+        Ok((source, model, options))
+    }
+}
+
+impl ApcArgs {
+    /// The columns, the read options and the validated APC options.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] for a bad delimiter, constraint, assumption or width.
+    pub fn options(&self) -> Result<(ApcColumns, ReadOptions, ApcOptions)> {
+        let constraints = self
+            .constraints
+            .iter()
+            .map(|c| Constraint::parse(c))
+            .collect::<Result<_>>()?;
+        let assumptions = self
+            .assumptions
+            .iter()
+            .map(|c| Assumption::parse(c))
+            .collect::<Result<_>>()?;
+        let delimiter = self
+            .delimiter
+            .as_deref()
+            .map(parse_delimiter)
+            .transpose()?
+            .unwrap_or(b',');
+        let columns = ApcColumns {
+            age: self.age.clone(),
+            period: self.period.clone(),
+            outcome: self.outcome.clone(),
+            events: self.events.clone(),
+            exposure: self.exposure.clone(),
+            id: self.id.clone(),
+            birth_year: self.cohort.clone(),
+        };
+        let options = ApcOptions::new(self.width, constraints, assumptions, self.hierarchical)?;
+        Ok((columns, ReadOptions { delimiter }, options))
     }
 }
 
@@ -307,7 +337,7 @@ impl FitConfig {
 mod tests {
     use super::*;
 
-    // A study file and the equivalent flags build the same validated config.
+    // A study file and the equivalent flags build the same source and validated request.
     #[test]
     fn study_file_and_flags_agree() {
         let dir = std::env::temp_dir().join(format!("braid-config-{}", std::process::id()));
@@ -319,19 +349,26 @@ mod tests {
              [model]\nmethod = \"ml\"\ncenter = 16.0\n[model.age]\nbasis = \"polynomial\"\ndegree = 3\n",
         )
         .unwrap();
-        let from_study = FitConfig::from_args(&FitArgs {
-            study: Some(study),
+        let from_study = FitArgs {
+            input: InputArgs {
+                study: Some(study),
+                ..Default::default()
+            },
             grid: 101,
             ..Default::default()
-        })
+        }
+        .request()
         .unwrap();
         let flags = FitArgs {
-            data: Some(dir.join("panel.csv")),
-            roles: super::super::args::RoleArgs {
-                id: Some("pupil".into()),
-                age: Some("age".into()),
-                outcome: Some("score".into()),
-                cluster: Some("school".into()),
+            input: InputArgs {
+                data: Some(dir.join("panel.csv")),
+                roles: super::super::args::RoleArgs {
+                    id: Some("pupil".into()),
+                    age: Some("age".into()),
+                    outcome: Some("score".into()),
+                    cluster: Some("school".into()),
+                    ..Default::default()
+                },
                 ..Default::default()
             },
             model: super::super::args::ModelArgs {
@@ -343,8 +380,11 @@ mod tests {
             grid: 101,
             ..Default::default()
         };
-        let from_flags = FitConfig::from_args(&flags).unwrap();
-        assert_eq!(from_study, from_flags);
+        let from_flags = flags.request().unwrap();
+        assert_eq!(from_study.1, from_flags.1);
+        assert_eq!(from_study.0.data, from_flags.0.data);
+        assert_eq!(from_study.0.roles, from_flags.0.roles);
+        assert_eq!(from_study.0.read, from_flags.0.read);
         fs::remove_dir_all(&dir).unwrap();
     }
 }

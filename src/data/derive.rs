@@ -110,11 +110,11 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
     };
     match rule {
         CohortRule::BirthYear { width } => {
-            check_width(width, "--cohort-width")?;
+            check_width(width, "cohort_width")?;
             let Some(cal) = &panel.calendar else {
                 return Err(Error::Spec {
-                    parameter: "--cohort-from".into(),
-                    message: "birth-year cohorts need birth dates, a --birth-year column or a --period column".into(),
+                    parameter: "cohort_from".into(),
+                    message: "birth-year cohorts need birth dates, a `birth_year` column or a `period` column".into(),
                 });
             };
             Ok(Derived {
@@ -128,7 +128,7 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
             })
         }
         CohortRule::FirstAge { width } => {
-            check_width(width, "--cohort-width")?;
+            check_width(width, "cohort_width")?;
             let mut first = vec![f64::INFINITY; panel.id.n_levels()];
             for r in 0..n {
                 let k = panel.id.codes[r] as usize;
@@ -196,11 +196,11 @@ pub fn waves(panel: &Panel, rule: WaveRule, cohort_of: &[String]) -> Result<Deri
             warnings: Vec::new(),
         }),
         WaveRule::Calendar { length } => {
-            check_width(length, "--wave-length")?;
+            check_width(length, "wave_length")?;
             let Some(cal) = &panel.calendar else {
                 return Err(Error::Spec {
-                    parameter: "--wave-from".into(),
-                    message: "calendar waves need assessment dates or a --period column".into(),
+                    parameter: "wave_from".into(),
+                    message: "calendar waves need assessment dates or a `period` column".into(),
                 });
             };
             let mut start: std::collections::HashMap<&str, f64> = std::collections::HashMap::new();
@@ -227,7 +227,7 @@ pub fn waves(panel: &Panel, rule: WaveRule, cohort_of: &[String]) -> Result<Deri
             if let Some(r) = example {
                 warnings.push(format!(
                     "{clashes} assessments share a derived wave with an earlier one of the same participant (first: '{}' in wave {}); \
-                     give a shorter --wave-length or a --wave column",
+                     give a shorter `wave_length` or a `wave` column",
                     panel.id.label(r),
                     labels[r]
                 ));

@@ -10,7 +10,11 @@
 
 pub mod dates;
 pub mod derive;
+pub mod paths;
 pub mod read;
+pub mod summary;
+
+pub use summary::DataSummary;
 
 use std::collections::HashMap;
 
@@ -84,33 +88,33 @@ impl Roles {
         if self.is_wide() {
             return self.all_wide();
         }
-        let mut v = vec![("--id".to_string(), self.id.clone())];
+        let mut v = vec![("id".to_string(), self.id.clone())];
         match self.dates() {
             Some((b, d)) => {
-                v.push(("--birth-date".to_string(), b.to_string()));
-                v.push(("--date".to_string(), d.to_string()));
+                v.push(("birth_date".to_string(), b.to_string()));
+                v.push(("date".to_string(), d.to_string()));
             }
-            None => v.push(("--age".to_string(), self.age.clone())),
+            None => v.push(("age".to_string(), self.age.clone())),
         }
-        v.push(("--outcome".to_string(), self.outcome.clone()));
+        v.push(("outcome".to_string(), self.outcome.clone()));
         let calendar = if self.dates().is_some() {
             (&None, &None)
         } else {
             (&self.period, &self.birth_year)
         };
         for (role, c) in [
-            ("--cohort", &self.cohort),
-            ("--wave", &self.wave),
-            ("--cluster", &self.cluster),
-            ("--period", calendar.0),
-            ("--birth-year", calendar.1),
+            ("cohort", &self.cohort),
+            ("wave", &self.wave),
+            ("cluster", &self.cluster),
+            ("period", calendar.0),
+            ("birth_year", calendar.1),
         ] {
             if let Some(c) = c {
                 v.push((role.to_string(), c.clone()));
             }
         }
         for c in &self.covariates {
-            v.push(("--covariate".to_string(), c.clone()));
+            v.push(("covariates".to_string(), c.clone()));
         }
         v
     }
@@ -124,18 +128,18 @@ impl Roles {
 
     /// The columns of a wide file, with their roles.
     fn all_wide(&self) -> Vec<(String, String)> {
-        let mut v = vec![("--id".to_string(), self.id.clone())];
+        let mut v = vec![("id".to_string(), self.id.clone())];
         if let Some(b) = &self.birth_date {
-            v.push(("--birth-date".to_string(), b.clone()));
+            v.push(("birth_date".to_string(), b.clone()));
         }
         for c in &self.wide_outcome {
-            v.push(("--wide-outcome".to_string(), c.clone()));
+            v.push(("wide_outcome".to_string(), c.clone()));
         }
         for c in &self.wide_age {
-            v.push(("--wide-age".to_string(), c.clone()));
+            v.push(("wide_age".to_string(), c.clone()));
         }
         for c in &self.wide_date {
-            v.push(("--wide-date".to_string(), c.clone()));
+            v.push(("wide_date".to_string(), c.clone()));
         }
         let birth_year = if self.birth_date.is_some() {
             &None
@@ -143,16 +147,16 @@ impl Roles {
             &self.birth_year
         };
         for (role, c) in [
-            ("--cohort", &self.cohort),
-            ("--cluster", &self.cluster),
-            ("--birth-year", birth_year),
+            ("cohort", &self.cohort),
+            ("cluster", &self.cluster),
+            ("birth_year", birth_year),
         ] {
             if let Some(c) = c {
                 v.push((role.to_string(), c.clone()));
             }
         }
         for c in &self.covariates {
-            v.push(("--covariate".to_string(), c.clone()));
+            v.push(("covariates".to_string(), c.clone()));
         }
         v
     }
@@ -250,12 +254,19 @@ pub struct DropReport {
     pub missing_age: usize,
     /// Rows whose covariate was missing (and age and outcome present).
     pub missing_covariate: usize,
+    /// Tables: rows missing a value in another named column.
+    #[serde(skip_serializing_if = "is_zero")]
+    pub missing_other: usize,
+}
+
+fn is_zero(n: &usize) -> bool {
+    *n == 0
 }
 
 impl DropReport {
     /// Total rows dropped.
     pub fn total(&self) -> usize {
-        self.missing_outcome + self.missing_age + self.missing_covariate
+        self.missing_outcome + self.missing_age + self.missing_covariate + self.missing_other
     }
 }
 
@@ -433,7 +444,7 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
                 for d in [';', '\t', '|'] {
                     if header[0].contains(d) {
                         available = vec![format!(
-                            "{} (one column only: the file looks {}-delimited; pass --delimiter '{}')",
+                            "{} (one column only: the file looks {}-delimited; set the `delimiter` to '{}')",
                             header[0],
                             match d {
                                 ';' => "semicolon",
@@ -447,7 +458,7 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
             }
             return Err(Error::MissingColumn {
                 path: path.to_path_buf(),
-                role,
+                role: role.into(),
                 column,
                 available,
             });
@@ -493,9 +504,9 @@ fn reshape_wide(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<(r
     if times.len() != k {
         return Err(Error::Spec {
             parameter: if roles.wide_date.is_empty() {
-                "--wide-age"
+                "wide_age"
             } else {
-                "--wide-date"
+                "wide_date"
             }
             .into(),
             message: format!(
@@ -507,14 +518,14 @@ fn reshape_wide(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<(r
     }
     if !roles.wide_date.is_empty() && roles.birth_date.is_none() {
         return Err(Error::Spec {
-            parameter: "--wide-date".into(),
-            message: "dates per wave need --birth-date".into(),
+            parameter: "wide_date".into(),
+            message: "dates per wave need a `birth_date` column".into(),
         });
     }
     if roles.wide_date.is_empty() && roles.birth_date.is_some() {
         return Err(Error::Spec {
-            parameter: "--birth-date".into(),
-            message: "in a wide file, give the assessment dates with --wide-date".into(),
+            parameter: "birth_date".into(),
+            message: "in a wide file, give the assessment dates with `wide_date`".into(),
         });
     }
     let n = table.n_rows;
@@ -597,7 +608,7 @@ fn validate_roles(roles: &Roles) -> Result<()> {
     for (role, c) in roles.all() {
         if c.trim().is_empty() {
             return Err(Error::Spec {
-                parameter: role,
+                parameter: role.into(),
                 message: "the column name is empty; name a column of the file".into(),
             });
         }
@@ -606,9 +617,10 @@ fn validate_roles(roles: &Roles) -> Result<()> {
     for (i, (ra, ca)) in all.iter().enumerate() {
         for (rb, cb) in &all[..i] {
             if ca == cb {
-                return Err(Error::Spec {
-                    parameter: ra.clone(),
-                    message: format!("column '{ca}' is already used for {rb}; give each role its own column"),
+                return Err(Error::SharedColumn {
+                    column: ca.clone(),
+                    first: rb.as_str().into(),
+                    second: ra.as_str().into(),
                 });
             }
         }
@@ -616,25 +628,25 @@ fn validate_roles(roles: &Roles) -> Result<()> {
     if !roles.is_wide() && roles.birth_date.is_some() != roles.date.is_some() {
         return Err(Error::Spec {
             parameter: if roles.birth_date.is_some() {
-                "--date"
+                "date"
             } else {
-                "--birth-date"
+                "birth_date"
             }
             .into(),
-            message: "ages from dates need both --birth-date and --date".into(),
+            message: "ages from dates need both a `birth_date` and a `date` column".into(),
         });
     }
     if roles.is_wide() && roles.period.is_some() {
         return Err(Error::Spec {
-            parameter: "--period".into(),
-            message: "a wide file has one assessment time per wave: give them with --wide-date (and --birth-date), or a --birth-year column".into(),
+            parameter: "period".into(),
+            message: "a wide file has one assessment time per wave: give them with `wide_date` (and `birth_date`), or a `birth_year` column".into(),
         });
     }
     for c in &roles.categorical {
         if !roles.covariates.contains(c) {
             return Err(Error::Spec {
-                parameter: "--categorical".into(),
-                message: format!("'{c}' is not among the covariates; also pass it with --covariate"),
+                parameter: "categorical".into(),
+                message: format!("'{c}' is not among the covariates; also list it under `covariates`"),
             });
         }
     }
@@ -1001,9 +1013,10 @@ pub fn numeric_table(path: &Path, columns: &[(&str, &str)], options: ReadOptions
     }
     for (i, (role, column)) in columns.iter().enumerate() {
         if let Some((other, _)) = columns[..i].iter().find(|(_, c)| c == column) {
-            return Err(Error::Spec {
-                parameter: role.to_string(),
-                message: format!("column '{column}' is already used for {other}; give each role its own column"),
+            return Err(Error::SharedColumn {
+                column: column.to_string(),
+                first: (*other).into(),
+                second: (*role).into(),
             });
         }
     }
@@ -1012,7 +1025,7 @@ pub fn numeric_table(path: &Path, columns: &[(&str, &str)], options: ReadOptions
         if !header.iter().any(|h| h == column) {
             return Err(Error::MissingColumn {
                 path: path.to_path_buf(),
-                role: role.to_string(),
+                role: (*role).into(),
                 column: column.to_string(),
                 available: header.clone(),
             });

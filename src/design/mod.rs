@@ -9,17 +9,19 @@
 //! the oldest ages]; retention at a wave is the number of participants seen at
 //! that wave over the number seen at the cohort's first wave.
 
+pub mod lexis;
+
 use std::collections::{BTreeMap, BTreeSet};
 
 use serde::Serialize;
 
 use crate::data::derive::{self, CohortRule, WaveRule};
-use crate::data::{CalendarSource, Panel};
+use crate::data::{CalendarSource, DataSummary, Panel};
 use crate::error::{Error, Result};
 use crate::spec::basis::quantile_sorted;
 
-/// Settings of the design report.
-#[derive(Debug, Clone, Copy, PartialEq)]
+/// Settings of the design report, validated by [`DesignOptions::new`].
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct DesignOptions {
     /// Width of the age bands of the cohort × age table, in years.
     pub band_width: f64,
@@ -31,6 +33,33 @@ pub struct DesignOptions {
     pub cohort_rule: CohortRule,
     /// How waves are found when the file has no wave column.
     pub wave_rule: WaveRule,
+}
+
+impl DesignOptions {
+    /// Validated settings.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] for a band width that is not a positive number of years.
+    pub fn new(band_width: f64, thin_overlap: usize, cohort_rule: CohortRule, wave_rule: WaveRule) -> Result<Self> {
+        let options = DesignOptions {
+            band_width,
+            thin_overlap,
+            cohort_rule,
+            wave_rule,
+        };
+        options.validate()?;
+        Ok(options)
+    }
+
+    fn validate(&self) -> Result<()> {
+        if !(self.band_width.is_finite() && self.band_width > 0.0) {
+            return Err(Error::Spec {
+                parameter: "band".into(),
+                message: format!("band width {} is not a positive number of years", self.band_width),
+            });
+        }
+        Ok(())
+    }
 }
 
 impl Default for DesignOptions {
@@ -210,6 +239,10 @@ pub struct Collinear {
 /// The design report of `braid inspect`, with stable JSON keys.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct DesignReport {
+    /// What was read and used.
+    pub data: DataSummary,
+    /// The settings that produced the report.
+    pub options: DesignOptions,
     /// How cohorts were defined.
     pub cohort_rule: String,
     /// How waves were defined.
@@ -230,6 +263,9 @@ pub struct DesignReport {
     pub collinear: Collinear,
     /// Warnings in plain words.
     pub warnings: Vec<String>,
+    /// The Lexis diagram's sampled lifelines (for the figure; not in the JSON).
+    #[serde(skip)]
+    pub lexis: lexis::LexisData,
 }
 
 /// Numeric-aware ordering of labels.
@@ -262,12 +298,7 @@ fn sorted_ages_and_people(panel: &Panel, rows: &[usize]) -> (Vec<f64>, usize) {
 /// # Errors
 /// [`Error::Spec`] for a band width that is not a positive number.
 pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
-    if !(options.band_width.is_finite() && options.band_width > 0.0) {
-        return Err(Error::Spec {
-            parameter: "--band".into(),
-            message: format!("band width {} is not a positive number of years", options.band_width),
-        });
-    }
+    options.validate()?;
     let n = panel.n();
     let n_id = panel.id.n_levels();
     // First age and within-person range per participant.
@@ -385,7 +416,9 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         acceleration: if calendar > 0.0 { (hi - lo) / calendar } else { f64::NAN },
     };
     let (attrition, collinear) = attrition_and_collinearity(panel, cohort_of, wave_of, &mut warnings);
-    Ok(DesignReport {
+    let mut report = DesignReport {
+        data: panel.summary(),
+        options,
         cohort_rule: cohort.rule,
         wave_rule: wave.rule,
         cohorts,
@@ -396,7 +429,10 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         attrition,
         collinear,
         warnings,
-    })
+        lexis: lexis::LexisData::default(),
+    };
+    report.lexis = lexis::lexis_data(panel, &report, cohort_of);
+    Ok(report)
 }
 
 /// A totally ordered f64 for map keys.
@@ -593,7 +629,7 @@ fn attrition_and_collinearity(
             apc_gap.unwrap_or(f64::NAN)
         )),
         (None, _) => notes.push(
-            "age–period–cohort collinearity needs birth and assessment dates, or a --period or --birth-year column; not checked"
+            "age–period–cohort collinearity needs birth and assessment dates, or a period or birth-year column; not checked"
                 .to_string(),
         ),
     }

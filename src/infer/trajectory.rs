@@ -49,7 +49,7 @@ pub struct Extremum {
 }
 
 /// What to evaluate the trajectory at.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct TrajectoryRequest {
     /// Number of equally spaced ages over the observed range (at least 2).
     pub grid: usize,

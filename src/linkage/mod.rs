@@ -19,8 +19,8 @@ pub mod variance;
 
 use serde::Serialize;
 
-use crate::data::Panel;
 use crate::data::derive::{self, CohortRule};
+use crate::data::{DataSummary, Panel};
 use crate::error::{Error, Result};
 use crate::infer::tests::{TestResult, holm, likelihood_ratio, wald_f};
 use crate::infer::{self, Contrast, LEVEL};
@@ -50,8 +50,8 @@ const SIMULTANEOUS_DRAWS: usize = 20_000;
 /// Seed of those draws, fixed so that reports are reproducible.
 const SIMULTANEOUS_SEED: u64 = 1953;
 
-/// Settings of the convergence analysis.
-#[derive(Debug, Clone, PartialEq)]
+/// Settings of the convergence analysis, validated by [`ConvergeOptions::new`].
+#[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ConvergeOptions {
     /// Age at which cohort level differences are measured; default: the
     /// median age of the observations inside the neighbours' overlaps.
@@ -64,6 +64,56 @@ pub struct ConvergeOptions {
     pub cohort_rule: CohortRule,
     /// Add and check a retest term.
     pub retest: Option<retest::RetestForm>,
+}
+
+impl ConvergeOptions {
+    /// Validated settings.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] for a margin that is not a positive finite number, a
+    /// reference age that is not finite, or a number of shared ages outside
+    /// 1 to 1,000.
+    pub fn new(
+        reference_age: Option<f64>,
+        margin: Margin,
+        shared_ages: usize,
+        cohort_rule: CohortRule,
+        retest: Option<retest::RetestForm>,
+    ) -> Result<Self> {
+        let options = ConvergeOptions {
+            reference_age,
+            margin,
+            shared_ages,
+            cohort_rule,
+            retest,
+        };
+        options.validate()?;
+        Ok(options)
+    }
+
+    fn validate(&self) -> Result<()> {
+        let (key, m) = match self.margin {
+            Margin::Outcome(m) => ("margin", m),
+            Margin::Sd(m) => ("margin_sd", m),
+        };
+        let bad = |key: &str, x: f64, what: &str| Error::Spec {
+            parameter: key.into(),
+            message: format!("{x} is not a usable value; give {what}"),
+        };
+        if !(m.is_finite() && m > 0.0) {
+            return Err(bad(key, m, "a positive finite number"));
+        }
+        if let Some(a) = self.reference_age.filter(|a| !a.is_finite()) {
+            return Err(bad("reference_age", a, "a finite age"));
+        }
+        if self.shared_ages == 0 || self.shared_ages > 1000 {
+            return Err(Error::Spec {
+                parameter: "shared_ages".into(),
+                message: format!("{} shared ages; choose between 1 and 1000", self.shared_ages),
+            });
+        }
+        Ok(())
+    }
 }
 
 impl Default for ConvergeOptions {
@@ -158,6 +208,12 @@ pub struct BetweenWithin {
 /// The convergence report, with stable JSON keys.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct ConvergeReport {
+    /// What was read and used.
+    pub data: DataSummary,
+    /// The model of M0, as given.
+    pub model: ModelSpec,
+    /// The settings that produced the report.
+    pub options: ConvergeOptions,
     /// How cohorts were found.
     pub cohort_rule: String,
     /// Cohorts in order of their youngest age (the first is the reference).
@@ -240,6 +296,7 @@ fn fit_with(problem: &MixedProblem, method: Method) -> Result<Fit> {
 /// [`Error::Data`] with fewer than two cohorts, or no overlap between any
 /// neighbours; errors of the model frame and the fits.
 pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> Result<ConvergeReport> {
+    options.validate()?;
     let cohort = derive::cohorts(panel, options.cohort_rule)?;
     let design = crate::design::inspect(
         panel,
@@ -255,7 +312,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         return Err(Error::Data {
             path: panel.source.clone(),
             message: format!(
-                "one cohort only ({}): convergence compares cohorts; give --cohort or check the cohort rule",
+                "one cohort only ({}): convergence compares cohorts; name a `cohort` column or check the cohort rule",
                 cohort.rule
             ),
         });
@@ -500,6 +557,9 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         }
     }
     Ok(ConvergeReport {
+        data: panel.summary(),
+        model: model.clone(),
+        options: options.clone(),
         cohort_rule: cohort.rule,
         cohorts,
         reference_age,

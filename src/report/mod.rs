@@ -5,15 +5,19 @@ pub mod apc_figure;
 pub mod converge_figure;
 pub mod design_figure;
 pub mod figure;
+pub mod predictions;
+pub mod render;
 pub mod text;
+
+pub use render::Render;
 
 use std::collections::BTreeMap;
 use std::fs;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use serde::Serialize;
 
-use crate::data::{DropReport, Panel};
+use crate::data::Panel;
 use crate::error::{Error, Result};
 use crate::infer::{self, FixedEffect, Trajectory};
 use crate::lmm::{Fit, FitInfo, RandomComponent};
@@ -26,32 +30,7 @@ pub const CAUTIONS: [&str; 3] = [
     "Only de-identified data belong in braid; follow the study's ethics approval and data-protection rules when sharing these outputs.",
 ];
 
-/// What was read and used.
-#[derive(Debug, Clone, Serialize, PartialEq)]
-pub struct DataSummary {
-    /// The input file.
-    pub file: String,
-    /// Data rows in the file.
-    pub n_rows_read: usize,
-    /// Rows used.
-    pub n_obs: usize,
-    /// Rows left out, by reason.
-    pub dropped: DropReport,
-    /// Participants.
-    pub n_participants: usize,
-    /// Cohorts (when a cohort column is given).
-    pub n_cohorts: Option<usize>,
-    /// Clusters (when a cluster column is given).
-    pub n_clusters: Option<usize>,
-    /// Youngest age.
-    pub age_min: f64,
-    /// Oldest age.
-    pub age_max: f64,
-    /// Name of the outcome column.
-    pub outcome: String,
-    /// Name of the age column.
-    pub age: String,
-}
+pub use crate::data::DataSummary;
 
 /// A cohort's observed mean at one wave, for the figure and the table.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -113,6 +92,18 @@ pub struct FitReport {
     pub info: FitInfo,
     /// Cautions for the reader.
     pub cautions: Vec<String>,
+    /// The request that produced the report.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub options: Option<crate::FitRequest>,
+    /// Observed paths of a few participants, drawn beside the curve.
+    #[serde(skip)]
+    pub paths: Vec<crate::data::paths::Path>,
+    /// Per-row and per-group predictions, when asked for.
+    #[serde(skip)]
+    pub predictions: Option<predictions::Predictions>,
+    /// A simulation's true values, printed beside the estimates.
+    #[serde(skip)]
+    pub truth: Option<Vec<(String, f64)>>,
 }
 
 impl FitReport {
@@ -122,7 +113,6 @@ impl FitReport {
         for r in &fit.random {
             n_groups.insert(r.factor.clone(), r.n_levels);
         }
-        let (age_min, age_max) = frame.age_range;
         FitReport {
             braid_version: env!("CARGO_PKG_VERSION").to_string(),
             method: fit.method.label().to_string(),
@@ -138,24 +128,16 @@ impl FitReport {
             converged: fit.info.converged,
             boundary: fit.info.boundary.clone(),
             trajectory,
-            data: DataSummary {
-                file: panel.source.display().to_string(),
-                n_rows_read: panel.n_rows_read,
-                n_obs: panel.n(),
-                dropped: panel.dropped,
-                n_participants: panel.id.n_levels(),
-                n_cohorts: panel.cohort.as_ref().map(|c| c.n_levels()),
-                n_clusters: panel.cluster.as_ref().map(|c| c.n_levels()),
-                age_min,
-                age_max,
-                outcome: frame.outcome_name.clone(),
-                age: frame.age_name.clone(),
-            },
+            data: panel.summary(),
             model: frame.description.clone(),
             basis: frame.basis.clone(),
             cells: cell_means(panel),
             info: fit.info.clone(),
             cautions: CAUTIONS.iter().map(|s| s.to_string()).collect(),
+            options: None,
+            paths: Vec::new(),
+            predictions: None,
+            truth: None,
         }
     }
 }
@@ -238,34 +220,6 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     cells
 }
 
-/// Refuse to write over earlier results: an output folder that exists and
-/// holds files, or an output file that exists, is an error unless `force`.
-///
-/// # Errors
-/// [`Error::Spec`] naming the flag and the path.
-pub fn check_output(path: &Path, is_folder: bool, force: bool, flag: &str) -> Result<()> {
-    if force || !path.exists() {
-        return Ok(());
-    }
-    let occupied = if is_folder {
-        fs::read_dir(path).map(|mut d| d.next().is_some()).unwrap_or(true)
-    } else {
-        true
-    };
-    if occupied {
-        return Err(Error::Spec {
-            parameter: flag.to_string(),
-            message: format!(
-                "{} already exists{}; name a new {} or pass --force to overwrite",
-                path.display(),
-                if is_folder { " and holds files" } else { "" },
-                if is_folder { "folder" } else { "file" }
-            ),
-        });
-    }
-    Ok(())
-}
-
 /// Create the output folder (refusing one that is a file).
 ///
 /// # Errors
@@ -274,7 +228,7 @@ pub fn ensure_dir(dir: &Path) -> Result<()> {
     if dir.exists() && !dir.is_dir() {
         return Err(Error::Output {
             path: dir.to_path_buf(),
-            message: "exists and is not a folder; name a folder for --out".into(),
+            message: "exists and is not a folder; name a folder for the outputs".into(),
         });
     }
     fs::create_dir_all(dir).map_err(|e| Error::Output {
@@ -287,7 +241,7 @@ pub fn ensure_dir(dir: &Path) -> Result<()> {
 ///
 /// # Errors
 /// [`Error::Output`] when the file cannot be written.
-pub fn write_json<T: Serialize>(path: &Path, value: &T) -> Result<()> {
+pub fn write_json<T: Serialize + ?Sized>(path: &Path, value: &T) -> Result<()> {
     let text = serde_json::to_string_pretty(value).map_err(|e| Error::Output {
         path: path.to_path_buf(),
         message: e.to_string(),
@@ -314,128 +268,4 @@ pub fn write_trajectory_csv(path: &Path, t: &Trajectory) -> Result<()> {
         path: path.to_path_buf(),
         message: format!("cannot write ({e})"),
     })
-}
-
-/// Write `predictions.csv` (one row per observation used: file row, id, age,
-/// outcome, conditional and marginal fitted values, residual) and
-/// `random_effects.csv` (one row per group: factor, level, and one column per
-/// coefficient). Returns the two paths.
-///
-/// # Errors
-/// [`Error::Output`] when a file cannot be written.
-pub fn write_predictions(dir: &Path, panel: &Panel, frame: &ModelFrame, fit: &Fit) -> Result<(PathBuf, PathBuf)> {
-    use std::fmt::Write as _;
-    ensure_dir(dir)?;
-    let pred = dir.join("predictions.csv");
-    let mut s = format!(
-        "row,{},{},{},fitted,marginal,residual\n",
-        panel.roles.id, frame.age_name, frame.outcome_name
-    );
-    for r in 0..panel.n() {
-        let _ = writeln!(
-            s,
-            "{},{},{},{},{:.8},{:.8},{:.8}",
-            panel.row[r],
-            csv_field(panel.id.label(r)),
-            panel.age[r],
-            panel.outcome[r],
-            fit.fitted[r],
-            fit.fitted_marginal[r],
-            fit.residuals[r]
-        );
-    }
-    fs::write(&pred, s).map_err(|e| Error::Output {
-        path: pred.clone(),
-        message: format!("cannot write ({e})"),
-    })?;
-    let re = dir.join("random_effects.csv");
-    let width = frame.problem.terms.iter().map(|t| t.q()).max().unwrap_or(0);
-    let mut s = String::from("factor,level");
-    for k in 1..=width {
-        let _ = write!(s, ",coefficient_{k},value_{k}");
-    }
-    s.push('\n');
-    for (t, term) in frame.problem.terms.iter().enumerate() {
-        for (lvl, name) in term.level_names.iter().enumerate() {
-            let _ = write!(s, "{},{}", csv_field(&term.factor), csv_field(name));
-            for (c, col) in term.columns.iter().enumerate() {
-                let _ = write!(s, ",{},{:.8}", csv_field(col), fit.blups[t][lvl][c]);
-            }
-            for _ in term.q()..width {
-                s.push_str(",,");
-            }
-            s.push('\n');
-        }
-    }
-    fs::write(&re, s).map_err(|e| Error::Output {
-        path: re.clone(),
-        message: format!("cannot write ({e})"),
-    })?;
-    Ok((pred, re))
-}
-
-/// Quote a CSV field when it holds a delimiter, quote or line break.
-fn csv_field(s: &str) -> String {
-    if s.contains([',', '"', '\n', '\r']) {
-        format!("\"{}\"", s.replace('"', "\"\""))
-    } else {
-        s.to_string()
-    }
-}
-
-/// Paths of the files `braid fit --out DIR` writes.
-#[derive(Debug, Clone, Serialize, PartialEq)]
-pub struct FitOutputs {
-    /// `fit.json`.
-    pub json: PathBuf,
-    /// `trajectory.csv`.
-    pub csv: PathBuf,
-    /// `trajectory.png`.
-    pub png: PathBuf,
-    /// `trajectory.svg`.
-    pub svg: PathBuf,
-}
-
-/// Write every output of a fit into `dir`.
-///
-/// # Errors
-/// [`Error::Output`] when a file cannot be written.
-pub fn write_fit_outputs(dir: &Path, report: &FitReport, lines: &[figure::Line]) -> Result<FitOutputs> {
-    ensure_dir(dir)?;
-    let out = FitOutputs {
-        json: dir.join("fit.json"),
-        csv: dir.join("trajectory.csv"),
-        png: dir.join("trajectory.png"),
-        svg: dir.join("trajectory.svg"),
-    };
-    write_json(&out.json, report)?;
-    write_trajectory_csv(&out.csv, &report.trajectory)?;
-    figure::trajectory_png(&out.png, report, lines)?;
-    figure::trajectory_svg(&out.svg, report, lines)?;
-    Ok(out)
-}
-
-/// Write `braid inspect --out DIR`: design.json, and the Lexis diagram and
-/// coverage chart as PNG and SVG. Returns the file names written.
-///
-/// # Errors
-/// [`Error::Output`] when a file cannot be written; errors of the cohort rule.
-pub fn write_design_outputs(
-    dir: &Path,
-    panel: &crate::data::Panel,
-    report: &crate::design::DesignReport,
-    options: crate::design::DesignOptions,
-) -> Result<Vec<String>> {
-    ensure_dir(dir)?;
-    write_json(&dir.join("design.json"), report)?;
-    let cohorts = crate::data::derive::cohorts(panel, options.cohort_rule)?;
-    let lexis = design_figure::lexis_data(panel, report, &cohorts.labels);
-    design_figure::lexis(&dir.join("lexis.png"), &dir.join("lexis.svg"), &lexis)?;
-    design_figure::coverage(&dir.join("coverage.png"), &dir.join("coverage.svg"), report)?;
-    Ok(
-        ["design.json", "lexis.png", "lexis.svg", "coverage.png", "coverage.svg"]
-            .iter()
-            .map(|s| s.to_string())
-            .collect(),
-    )
 }

@@ -61,7 +61,7 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
         s,
         "{:<11}{} participants · {} rows used of {} ({dropped})",
         "Data",
-        thousands(d.n_participants),
+        thousands(d.n_participants.unwrap_or(0)),
         thousands(d.n_obs),
         thousands(d.n_rows_read)
     );
@@ -252,18 +252,18 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
 }
 
 /// Render the design report of `braid inspect`.
-pub fn design_summary(panel: &crate::data::Panel, r: &crate::design::DesignReport) -> String {
+pub fn design_summary(r: &crate::design::DesignReport) -> String {
     let mut s = String::new();
     let rule = "─".repeat(86);
-    let _ = writeln!(s, "braid inspect · {}", panel.source.display());
+    let _ = writeln!(s, "braid inspect · {}", r.data.file);
     let _ = writeln!(s, "{rule}");
     let _ = writeln!(
         s,
         "{:<11}{} participants · {} rows used of {}",
         "Data",
-        thousands(panel.id.n_levels()),
-        thousands(panel.n()),
-        thousands(panel.n_rows_read),
+        thousands(r.data.n_participants.unwrap_or(0)),
+        thousands(r.data.n_obs),
+        thousands(r.data.n_rows_read),
     );
     let _ = writeln!(s, "{:<11}cohorts {}", "Rules", r.cohort_rule);
     let _ = writeln!(s, "{:<11}waves {}", "", r.wave_rule);
@@ -386,17 +386,17 @@ fn wrap(text: &str, width: usize, indent: usize) -> String {
 }
 
 /// The `braid converge` summary.
-pub fn converge_summary(panel: &crate::data::Panel, r: &crate::linkage::ConvergeReport) -> String {
+pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
     let mut s = String::new();
     let rule = "─".repeat(86);
-    let _ = writeln!(s, "braid converge · {}", panel.source.display());
+    let _ = writeln!(s, "braid converge · {}", r.data.file);
     let _ = writeln!(s, "{rule}");
     let _ = writeln!(
         s,
         "{:<11}{} participants · {} rows · cohorts {} (reference: {})",
         "Data",
-        thousands(panel.id.n_levels()),
-        thousands(panel.n()),
+        thousands(r.data.n_participants.unwrap_or(0)),
+        thousands(r.data.n_obs),
         r.cohorts.join(", "),
         r.cohorts[0]
     );
@@ -514,10 +514,10 @@ pub fn converge_summary(panel: &crate::data::Panel, r: &crate::linkage::Converge
 }
 
 /// The `braid apc` summary.
-pub fn apc_summary(source: &std::path::Path, r: &crate::apc::analysis::ApcReport) -> String {
+pub fn apc_summary(r: &crate::apc::analysis::ApcReport) -> String {
     let mut s = String::new();
     let rule = "─".repeat(86);
-    let _ = writeln!(s, "braid apc · {}", source.display());
+    let _ = writeln!(s, "braid apc · {}", r.data.file);
     let _ = writeln!(s, "{rule}");
     let _ = writeln!(
         s,

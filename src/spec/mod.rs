@@ -152,7 +152,7 @@ impl ModelFrame {
 
 fn spec_err(parameter: &str, message: String) -> Error {
     Error::Spec {
-        parameter: parameter.to_string(),
+        parameter: parameter.into(),
         message,
     }
 }
@@ -168,7 +168,7 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
     let (lo, hi) = (sorted[0], sorted[sorted.len() - 1]);
     let center = center.unwrap_or_else(|| ages.iter().sum::<f64>() / ages.len() as f64);
     if !center.is_finite() {
-        return Err(spec_err("--center", format!("centre {center} is not a finite age")));
+        return Err(spec_err("center", format!("centre {center} is not a finite age")));
     }
     let mut distinct = sorted.clone();
     distinct.dedup();
@@ -176,13 +176,15 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
         AgeSpec::Polynomial { degree } => {
             if !(1..=4).contains(degree) {
                 return Err(spec_err(
-                    "--degree",
-                    format!("degree {degree} is not supported; choose 1, 2, 3 or 4 (or a spline with --knots)"),
+                    "degree",
+                    format!(
+                        "degree {degree} is not supported; choose 1, 2, 3 or 4 (or a spline with interior `knots`)"
+                    ),
                 ));
             }
             if distinct.len() <= *degree {
                 return Err(spec_err(
-                    "--degree",
+                    "degree",
                     format!(
                         "{} distinct ages cannot support a degree-{degree} polynomial; lower the degree",
                         distinct.len()
@@ -214,7 +216,7 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
                 (Some(kn), None) => {
                     if *kn == 0 || *kn > 20 {
                         return Err(spec_err(
-                            "--knots",
+                            "knots",
                             format!("{kn} interior knots; choose between 1 and 20"),
                         ));
                     }
@@ -229,13 +231,13 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
             all.push(hi);
             if all.windows(2).any(|w| w[1] - w[0] <= 1e-9 * (hi - lo)) {
                 return Err(spec_err(
-                    "--knots",
+                    "knots",
                     "two knots coincide (ages are too concentrated for this many knots); use fewer knots or give them explicitly".into(),
                 ));
             }
             if distinct.len() < all.len() {
                 return Err(spec_err(
-                    "--knots",
+                    "knots",
                     format!(
                         "{} distinct ages cannot support {} knots; use fewer",
                         distinct.len(),

@@ -18,11 +18,13 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
         let cols: Vec<&str> = line.split('\t').collect();
         let (file, extra, expected) = (cols[0], cols[1], cols[2]);
         let mut cmd = Command::new(braid_bin());
-        // "apc!..." runs `braid apc` with only the listed flags; otherwise `braid fit`.
-        let (command, extra) = match extra.strip_prefix("apc") {
-            Some(rest) => ("apc", rest),
-            None => ("fit", extra),
-        };
+        // "apc!..." runs `braid apc` with only the listed flags, "inspect|..."
+        // runs `braid inspect` with the base roles and the listed flags;
+        // otherwise `braid fit`.
+        let (command, extra) = ["apc", "inspect", "converge"]
+            .iter()
+            .find_map(|c| extra.strip_prefix(c).map(|rest| (*c, rest.trim_start_matches('|'))))
+            .unwrap_or(("fit", extra));
         cmd.arg(command);
         let path = bad.join(file);
         if file.ends_with(".toml") {
@@ -220,8 +222,8 @@ fn parquet_twin_of_the_demo_panel_gives_the_same_fit() {
     assert_eq!(csv.id, pq.id);
     assert_eq!(csv.cohort, pq.cohort);
     let spec = braid::spec::ModelSpec::default();
-    let a = braid::fit_panel(&csv, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
-    let b = braid::fit_panel(&pq, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
+    let a = crate::common::fit(&csv, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
+    let b = crate::common::fit(&pq, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
     assert_eq!(a.fit.loglik, b.fit.loglik);
 }
 
@@ -378,8 +380,8 @@ fn a_wide_file_and_its_long_twin_give_identical_fits() {
     assert_eq!(long.outcome, wide.outcome);
     let spec = braid::spec::ModelSpec::default();
     let grid = braid::infer::TrajectoryRequest::grid(5);
-    let a = braid::fit_panel(&long, &spec, &grid).unwrap();
-    let b = braid::fit_panel(&wide, &spec, &grid).unwrap();
+    let a = crate::common::fit(&long, &spec, &grid).unwrap();
+    let b = crate::common::fit(&wide, &spec, &grid).unwrap();
     // The tolerance is 1e-10; the rows arrive in the same order, so
     // the fits agree exactly.
     assert!(

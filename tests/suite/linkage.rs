@@ -204,7 +204,7 @@ fn m3_of_two_identical_cohorts_is_twice_one_and_adds_nothing() {
         center: Some(report.reference_age),
         ..Default::default()
     };
-    let fit = braid::fit_panel(&one, &spec, &braid::infer::TrajectoryRequest::grid(2)).unwrap();
+    let fit = crate::common::fit(&one, &spec, &braid::infer::TrajectoryRequest::grid(2)).unwrap();
     assert!(
         (m3.loglik - 2.0 * fit.fit.loglik).abs() < crate::tolerance::REFIT_LOGLIK_ABS * 10.0,
         "M3 {} vs 2 × {}",

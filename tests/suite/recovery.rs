@@ -13,7 +13,7 @@ fn large_study_recovers_the_true_curve_inside_its_band() {
         center: Some(d.truth.center),
         ..Default::default()
     };
-    let a = braid::fit_panel(&sim.panel(true), &spec, &braid::infer::TrajectoryRequest::grid(101)).unwrap();
+    let a = crate::common::fit(&sim.panel(true), &spec, &braid::infer::TrajectoryRequest::grid(101)).unwrap();
     assert!(a.fit.info.converged);
     let outside: Vec<f64> = a
         .report
@@ -40,7 +40,7 @@ fn linear_age_interval_covers_the_truth_at_its_nominal_rate() {
             center: Some(d.truth.center),
             ..Default::default()
         };
-        let a = braid::fit_panel(&sim.panel(true), &spec, &braid::infer::TrajectoryRequest::grid(2)).unwrap();
+        let a = crate::common::fit(&sim.panel(true), &spec, &braid::infer::TrajectoryRequest::grid(2)).unwrap();
         let f = &a.report.fixed[1];
         assert_eq!(f.term, "age");
         if (f.lower..=f.upper).contains(&d.truth.mean[1]) {

@@ -181,7 +181,7 @@ fn matches_statsmodels_mixedlm_on_growth_and_cohort_sequential_data() {
                 method,
                 ..case.spec.clone()
             };
-            let a = braid::fit_panel(&panel, &spec, &braid::infer::TrajectoryRequest::grid(11)).unwrap();
+            let a = crate::common::fit(&panel, &spec, &braid::infer::TrajectoryRequest::grid(11)).unwrap();
             let fit = &a.fit;
             let ref_ll = r["loglik"].as_f64().unwrap();
             let gap = fit.loglik - ref_ll;

@@ -1,0 +1,103 @@
+//! What every report can do for the one emitter: render its text screen,
+//! and write its JSON and its files into an output folder.
+
+use std::path::Path;
+
+use serde::Serialize;
+
+use super::{apc_figure, converge_figure, design_figure, figure, text, write_json, write_trajectory_csv};
+use crate::apc::analysis::ApcReport;
+use crate::design::DesignReport;
+use crate::error::Result;
+use crate::linkage::ConvergeReport;
+use crate::report::FitReport;
+
+/// A self-describing report: everything needed to render it is inside.
+pub trait Render: Serialize {
+    /// The name of its JSON document in an output folder (`fit.json`).
+    const JSON_FILE: &'static str;
+
+    /// The text screen.
+    fn text(&self) -> String;
+
+    /// Write the figures and tables that go beside the JSON into `dir`,
+    /// which exists; returns the file names, in the order written.
+    ///
+    /// # Errors
+    /// [`crate::Error::Output`] when a file cannot be written.
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>>;
+
+    /// Write the JSON document and every file into `dir`, which exists;
+    /// returns the file names.
+    ///
+    /// # Errors
+    /// [`crate::Error::Output`] when a file cannot be written.
+    fn write_folder(&self, dir: &Path) -> Result<Vec<String>> {
+        write_json(&dir.join(Self::JSON_FILE), self)?;
+        let mut names = vec![Self::JSON_FILE.to_string()];
+        names.extend(self.write_files(dir)?);
+        Ok(names)
+    }
+}
+
+impl Render for FitReport {
+    const JSON_FILE: &'static str = "fit.json";
+
+    fn text(&self) -> String {
+        text::fit_summary(self, self.truth.as_deref())
+    }
+
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        write_trajectory_csv(&dir.join("trajectory.csv"), &self.trajectory)?;
+        figure::trajectory_png(&dir.join("trajectory.png"), self, &self.paths)?;
+        figure::trajectory_svg(&dir.join("trajectory.svg"), self, &self.paths)?;
+        let mut names: Vec<String> = ["trajectory.csv", "trajectory.png", "trajectory.svg"]
+            .map(String::from)
+            .to_vec();
+        if let Some(p) = &self.predictions {
+            names.extend(p.write(dir)?);
+        }
+        Ok(names)
+    }
+}
+
+impl Render for DesignReport {
+    const JSON_FILE: &'static str = "design.json";
+
+    fn text(&self) -> String {
+        text::design_summary(self)
+    }
+
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        design_figure::lexis(&dir.join("lexis.png"), &dir.join("lexis.svg"), &self.lexis)?;
+        design_figure::coverage(&dir.join("coverage.png"), &dir.join("coverage.svg"), self)?;
+        Ok(["lexis.png", "lexis.svg", "coverage.png", "coverage.svg"]
+            .map(String::from)
+            .to_vec())
+    }
+}
+
+impl Render for ConvergeReport {
+    const JSON_FILE: &'static str = "converge.json";
+
+    fn text(&self) -> String {
+        text::converge_summary(self)
+    }
+
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        converge_figure::shared_ages(&dir.join("shared_ages.png"), &dir.join("shared_ages.svg"), self)?;
+        Ok(vec!["shared_ages.png".into(), "shared_ages.svg".into()])
+    }
+}
+
+impl Render for ApcReport {
+    const JSON_FILE: &'static str = "apc.json";
+
+    fn text(&self) -> String {
+        text::apc_summary(self)
+    }
+
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        apc_figure::write(dir, self)
+    }
+}
