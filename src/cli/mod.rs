@@ -131,18 +131,7 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
         ..Default::default()
     };
     let emitter = Emitter::new(&output)?;
-    let study = write_demo_study(&design, &a.out)?;
-    let (source, request) = args::FitArgs {
-        input: args::InputArgs {
-            study: Some(study),
-            ..Default::default()
-        },
-        grid: 101,
-        at: vec![12.0, 18.0, 23.0],
-        lines: 60,
-        ..Default::default()
-    }
-    .request()?;
+    let (source, request) = demo_fit_args(write_demo_study(&design, &a.out)?).request()?;
     let panel = load(&source)?;
     let mut fit = crate::fit_panel(&panel, &request)?.report;
     fit.truth = Some(demo_truth(&design));
@@ -155,6 +144,20 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
         &panel,
         crate::design::DesignOptions::default(),
     )?)
+}
+
+/// The fit flags the demo's study file is run with.
+fn demo_fit_args(study: PathBuf) -> args::FitArgs {
+    args::FitArgs {
+        input: args::InputArgs {
+            study: Some(study),
+            ..Default::default()
+        },
+        grid: 101,
+        at: vec![12.0, 18.0, 23.0],
+        lines: 60,
+        ..Default::default()
+    }
 }
 
 /// The demo's true values, printed beside the estimates.
