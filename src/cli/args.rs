@@ -229,26 +229,13 @@ pub struct ConvergeArgs {
 /// Flags of `braid apc`.
 #[derive(Debug, Clone, Default, Args)]
 pub struct ApcArgs {
-    /// The data file (CSV, or Parquet by its .parquet extension).
-    #[arg(value_name = "DATA")]
-    pub data: PathBuf,
-    /// Column holding age (exact years for records; the group's first year for a table).
-    #[arg(long, value_name = "COLUMN")]
-    pub age: String,
-    /// Column holding the period (calendar year of assessment, or the group's first year).
-    #[arg(long, value_name = "COLUMN")]
-    pub period: String,
-    /// Records: column holding the birth year, when given rather than derived; braid checks it against period − age.
-    #[arg(long, value_name = "COLUMN", requires = "outcome")]
-    pub cohort: Option<String>,
-    /// Panels: column holding the participant id (adds a random intercept per participant).
-    #[arg(long, value_name = "COLUMN", requires = "outcome")]
-    pub id: Option<String>,
-    /// Records: column holding a continuous outcome.
-    #[arg(long, value_name = "COLUMN", required_unless_present = "events", conflicts_with_all = ["events", "exposure"])]
-    pub outcome: Option<String>,
-    /// A table of counts: column holding the number of events.
-    #[arg(long, value_name = "COLUMN", requires = "exposure")]
+    /// The data and column roles: --age (exact years for records; the group's first year for a table),
+    /// --period (calendar year of assessment, or the group's first year), --outcome (records), --id (panels:
+    /// a random intercept per participant), --birth-year (records: checked against period − age).
+    #[command(flatten)]
+    pub input: InputArgs,
+    /// A table of counts: column holding the number of events (instead of --outcome).
+    #[arg(long, value_name = "COLUMN", requires = "exposure", conflicts_with = "outcome")]
     pub events: Option<String>,
     /// A table of counts: column holding the exposure (person-years).
     #[arg(long, value_name = "COLUMN", requires = "events")]
@@ -266,9 +253,6 @@ pub struct ApcArgs {
     /// Records: also fit the hierarchical model (age polynomial, crossed random period and cohort intercepts).
     #[arg(long, requires = "outcome")]
     pub hierarchical: bool,
-    /// Field delimiter of a CSV file [default: ,].
-    #[arg(long, value_name = "CHAR")]
-    pub delimiter: Option<String>,
     /// Where the results go: --out writes apc.json and the figures (effects under each constraint, second
     /// differences, bounds).
     #[command(flatten)]

@@ -85,7 +85,16 @@ fn need(value: Option<String>, flag: &str) -> Result<String> {
 /// Column roles from flags, each falling back to a study file's value.
 /// With ages from dates, or in a wide file, `--age` and `--outcome` only name
 /// the derived columns and default to "age" and "outcome".
-fn merge_roles(r: &super::args::RoleArgs, study: Option<&Roles>) -> Result<Roles> {
+/// With `strict` false, a missing id, age or outcome is left empty for the
+/// command to check (apc needs an id only for panels, an outcome only for records).
+fn merge_roles(r: &super::args::RoleArgs, study: Option<&Roles>, strict: bool) -> Result<Roles> {
+    let need = |value: Option<String>, flag: &str| {
+        if strict {
+            need(value, flag)
+        } else {
+            Ok(value.unwrap_or_default())
+        }
+    };
     let pick =
         |flag: &Option<String>, from: fn(&Roles) -> Option<String>| flag.clone().or_else(|| study.and_then(from));
     let list = |flag: &Vec<String>, from: fn(&Roles) -> Vec<String>| {
@@ -149,6 +158,18 @@ impl Source {
     /// [`Error::Spec`] for no data file, a missing role or a bad delimiter;
     /// errors of [`Study::read`] for a bad study file.
     pub fn resolve(input: &InputArgs) -> Result<Source> {
+        Source::resolve_with(input, true)
+    }
+
+    /// As [`Source::resolve`], but a missing id, age or outcome is left empty.
+    ///
+    /// # Errors
+    /// As [`Source::resolve`], but for the missing roles.
+    pub fn resolve_loose(input: &InputArgs) -> Result<Source> {
+        Source::resolve_with(input, false)
+    }
+
+    fn resolve_with(input: &InputArgs, strict: bool) -> Result<Source> {
         let (data, study_path, r) = (input.data.as_ref(), input.study.as_deref(), &input.roles);
         let study = study_path.map(Study::read).transpose()?;
         let base_dir = study_path
@@ -171,7 +192,7 @@ impl Source {
                 });
             }
         };
-        let roles = merge_roles(r, study.as_ref().map(|s| &s.roles))?;
+        let roles = merge_roles(r, study.as_ref().map(|s| &s.roles), strict)?;
         let delimiter = match (&r.delimiter, study.as_ref().and_then(|s| s.data.delimiter.clone())) {
             (Some(d), _) => parse_delimiter(d)?,
             (None, Some(d)) => parse_delimiter(&d)?,
@@ -298,11 +319,12 @@ impl ConvergeArgs {
 }
 
 impl ApcArgs {
-    /// The columns, the read options and the validated APC options.
+    /// The data file, the columns, the read options and the validated APC options.
     ///
     /// # Errors
-    /// [`Error::Spec`] for a bad delimiter, constraint, assumption or width.
-    pub fn options(&self) -> Result<(ApcColumns, ReadOptions, ApcOptions)> {
+    /// [`Error::Spec`] for a missing role, a bad delimiter, constraint,
+    /// assumption or width; errors of [`Source::resolve_loose`].
+    pub fn options(&self) -> Result<(Source, ApcColumns, ApcOptions)> {
         let constraints = self
             .constraints
             .iter()
@@ -313,23 +335,32 @@ impl ApcArgs {
             .iter()
             .map(|c| Assumption::parse(c))
             .collect::<Result<_>>()?;
-        let delimiter = self
-            .delimiter
-            .as_deref()
-            .map(parse_delimiter)
-            .transpose()?
-            .unwrap_or(b',');
+        let source = Source::resolve_loose(&self.input)?;
+        let r = &source.roles;
+        let nonempty = |s: &String| Some(s.clone()).filter(|s| !s.is_empty());
+        let required = |s: Option<String>, key: &str| {
+            s.ok_or_else(|| Error::Spec {
+                parameter: key.into(),
+                message: "is required: name the column".into(),
+            })
+        };
         let columns = ApcColumns {
-            age: self.age.clone(),
-            period: self.period.clone(),
-            outcome: self.outcome.clone(),
+            age: required(nonempty(&r.age), "age")?,
+            period: required(r.period.clone(), "period")?,
+            outcome: nonempty(&r.outcome).filter(|_| self.events.is_none()),
             events: self.events.clone(),
             exposure: self.exposure.clone(),
-            id: self.id.clone(),
-            birth_year: self.cohort.clone(),
+            id: nonempty(&r.id),
+            birth_year: r.birth_year.clone(),
         };
+        if columns.outcome.is_none() && columns.events.is_none() {
+            return Err(Error::Spec {
+                parameter: "outcome".into(),
+                message: "name the `outcome` column (records), or `events` with `exposure` (a table of counts)".into(),
+            });
+        }
         let options = ApcOptions::new(self.width, constraints, assumptions, self.hierarchical)?;
-        Ok((columns, ReadOptions { delimiter }, options))
+        Ok((source, columns, options))
     }
 }
 

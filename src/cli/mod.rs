@@ -18,7 +18,6 @@ use crate::spec::{AgeSpec, ModelSpec, RandomSpec};
 use args::{Cli, Command, DemoArgs};
 use config::{DataSection, Source, Study};
 use emit::Emitter;
-use routes::Front;
 
 /// Parse the process arguments and run; returns the exit code.
 pub fn main_exit_code() -> i32 {
@@ -42,14 +41,10 @@ pub fn main_exit_code() -> i32 {
             return 2;
         }
     };
-    let front = match cli.command {
-        Command::Apc(_) => Front::Apc,
-        _ => Front::Study,
-    };
     match run(cli) {
         Ok(()) => 0,
         Err(e) => {
-            let e = e.with_routes(|k| routes::route(k, front), |k| routes::spell(k, front));
+            let e = e.with_routes(routes::route, routes::spell);
             eprintln!("braid: error: {}", e.to_string().replace(['\n', '\r'], " "));
             e.exit_code()
         }
@@ -112,9 +107,9 @@ fn converge_command(a: &args::ConvergeArgs) -> Result<()> {
 
 /// `braid apc`: read a table of counts or records, fit, and report what is identified.
 fn apc_command(a: &args::ApcArgs) -> Result<()> {
-    let (columns, read, options) = a.options()?;
+    let (source, columns, options) = a.options()?;
     let emitter = Emitter::new(&a.output)?;
-    let input = crate::apc::ApcInput::read(&a.data, &columns, read)?;
+    let input = crate::apc::ApcInput::read(&source.data, &columns, source.read)?;
     emitter.emit(&crate::apc::identify(&input, &options)?)
 }
 

@@ -2,22 +2,11 @@
 //! The library names options by key; [`route`] and [`spell`] fill in the
 //! command line's spelling for its messages.
 
-/// Which command is running: commands differ in their flags and in whether
-/// they read a study file.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Front {
-    /// A command that reads a study file (fit, inspect, converge, demo).
-    Study,
-    /// `braid apc`, which takes flags only.
-    Apc,
-}
-
 /// The flag for a key, and the study file's table that holds it.
-fn flag_and_table(key: &str, front: Front) -> Option<(String, Option<&'static str>)> {
+fn flag_and_table(key: &str) -> Option<(String, Option<&'static str>)> {
     let flag = |f: &str| format!("--{f}");
     let roles = Some("[roles]");
     Some(match key {
-        "birth_year" if front == Front::Apc => (flag("cohort"), None),
         "id" | "age" | "outcome" | "cohort" | "wave" | "cluster" | "period" | "birth_year" | "birth_date" | "date"
         | "wide_outcome" | "wide_age" | "wide_date" | "categorical" => (flag(&key.replace('_', "-")), roles),
         "covariates" => (flag("covariate"), roles),
@@ -33,17 +22,17 @@ fn flag_and_table(key: &str, front: Front) -> Option<(String, Option<&'static st
 }
 
 /// The full route of a setting named at the head of a message.
-pub fn route(key: &str, front: Front) -> Option<String> {
-    let (flag, table) = flag_and_table(key, front)?;
-    Some(match (table, front) {
-        (Some(t), Front::Study) => format!("{flag} (or `{key}` under {t} in the study file)"),
-        _ => flag,
+pub fn route(key: &str) -> Option<String> {
+    let (flag, table) = flag_and_table(key)?;
+    Some(match table {
+        Some(t) => format!("{flag} (or `{key}` under {t} in the study file)"),
+        None => flag,
     })
 }
 
 /// The short spelling of a setting named inside a message.
-pub fn spell(key: &str, front: Front) -> Option<String> {
-    flag_and_table(key, front).map(|(flag, _)| flag)
+pub fn spell(key: &str) -> Option<String> {
+    flag_and_table(key).map(|(flag, _)| flag)
 }
 
 #[cfg(test)]
@@ -65,11 +54,11 @@ mod tests {
             "band",
             "width",
         ] {
-            assert!(route(key, Front::Study).is_some(), "{key}");
+            assert!(route(key).is_some(), "{key}");
         }
-        assert_eq!(spell("birth_year", Front::Apc).as_deref(), Some("--cohort"));
+        assert_eq!(spell("birth_year").as_deref(), Some("--birth-year"));
         assert_eq!(
-            route("degree", Front::Study).as_deref(),
+            route("degree").as_deref(),
             Some("--degree (or `degree` under [model.age] in the study file)")
         );
     }

@@ -560,7 +560,7 @@ fn apc_checks_a_given_birth_year_column_and_fits_the_hierarchical_model() {
             .arg("apc")
             .arg(&file)
             .args(["--age", "age", "--period", "year", "--outcome", "score", "--width", "5"])
-            .args(["--cohort", cohort, "--hierarchical", "--quiet", "--json"])
+            .args(["--birth-year", cohort, "--hierarchical", "--quiet", "--json"])
             .arg(json)
             .output()
             .unwrap()
