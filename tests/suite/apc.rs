@@ -36,10 +36,7 @@ fn holford() -> braid::apc::analysis::ApcData {
 // Holford (1983, Biometrics 39), Table 2.
 #[test]
 fn holford_deviances_match_the_reference_glm() {
-    let text =
-        std::fs::read_to_string(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/apc.json"))
-            .unwrap();
-    let reference: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let reference = crate::common::reference_json("apc.json");
     let report = analyse(&holford(), &[], &[]).unwrap();
     assert_eq!(report.rank_deficiency, 1);
     assert_eq!(report.deviance_table.len(), 6);
@@ -273,10 +270,7 @@ fn bounds_contain_the_truth_and_shrink_to_a_point() {
 #[test]
 fn hierarchical_apc_matches_the_reference_variance_components_fit() {
     use crate::tolerance::{FIXED_REL, LOGLIK_ABS, VARIANCE_REL, rel};
-    let text =
-        std::fs::read_to_string(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/apc.json"))
-            .unwrap();
-    let reference: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let reference = crate::common::reference_json("apc.json");
     let h = &reference["hierarchical"];
     let t = braid::data::numeric_table(
         &data_dir().join("hapc_cross_section.csv"),

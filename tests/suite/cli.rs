@@ -5,7 +5,7 @@
 use std::fs;
 use std::process::Command;
 
-use crate::common::{braid_bin, data_dir, temp_dir};
+use crate::common::{braid_bin, data_dir, expect_one_line_error, read_json, temp_dir};
 
 const BASE: [&str; 6] = ["--id", "pupil", "--age", "age", "--outcome", "score"];
 
@@ -41,16 +41,7 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
         }
         let before = fs::read(&path).ok();
         let out = cmd.output().unwrap();
-        let stderr = String::from_utf8_lossy(&out.stderr);
-        assert_eq!(
-            out.status.code(),
-            Some(2),
-            "{file}: exit {:?}, stderr {stderr}",
-            out.status.code()
-        );
-        assert!(!stderr.contains("panicked"), "{file}: panic: {stderr}");
-        assert_eq!(stderr.trim_end().lines().count(), 1, "{file}: not one line: {stderr}");
-        assert!(stderr.contains(expected), "{file}: expected '{expected}' in: {stderr}");
+        expect_one_line_error(&out, expected, file);
         assert_eq!(before, fs::read(&path).ok(), "{file} was modified");
         checked += 1;
     }
@@ -78,7 +69,7 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
     ] {
         assert!(stdout.contains(word), "summary lacks '{word}'");
     }
-    let json: serde_json::Value = serde_json::from_str(&fs::read_to_string(dir.join("fit.json")).unwrap()).unwrap();
+    let json: serde_json::Value = read_json(&dir.join("fit.json"));
     for key in [
         "method",
         "n_obs",
@@ -184,7 +175,7 @@ fn demo_writes_its_panel_study_file_and_fit() {
             "inspect did not write {f}"
         );
     }
-    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(figures.join("design.json")).unwrap()).unwrap();
+    let v: serde_json::Value = read_json(&figures.join("design.json"));
     assert_eq!(v["collinear"]["calendar_source"], "birth_from_period");
     assert_eq!(v["collinear"]["age_period_cohort"], true);
     // A second run into the same folder is refused without --force.
@@ -195,7 +186,7 @@ fn demo_writes_its_panel_study_file_and_fit() {
         .arg(&figures)
         .output()
         .unwrap();
-    assert_eq!(again.status.code(), Some(2));
+    expect_one_line_error(&again, "already exists and holds files", "inspect into a full folder");
     // The study file it wrote fits again through `braid fit --study`.
     let refit = Command::new(braid_bin())
         .args(["fit", "--quiet", "--study"])
@@ -243,7 +234,7 @@ fn inspect_writes_the_design_report_with_stable_keys() {
     for word in ["Coverage", "Overlap of neighbours", "Retention", "Span"] {
         assert!(stdout.contains(word), "inspect summary lacks '{word}'");
     }
-    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    let v: serde_json::Value = read_json(&json);
     for key in ["cohort", "n_participants", "waves", "age_min", "age_median", "age_max"] {
         assert!(v["cohorts"][0].get(key).is_some(), "cohorts lacks '{key}'");
     }
@@ -284,12 +275,12 @@ fn an_output_folder_with_files_is_refused_unless_forced() {
     };
     assert!(run(&[]).status.success(), "an empty folder is fine");
     let second = run(&[]);
-    assert_eq!(second.status.code(), Some(2));
-    let stderr = String::from_utf8_lossy(&second.stderr);
-    assert!(
-        stderr.contains("already exists and holds files") && stderr.contains("--force"),
-        "{stderr}"
+    let stderr = expect_one_line_error(
+        &second,
+        "already exists and holds files",
+        "a second run into one folder",
     );
+    assert!(stderr.contains("--force"), "{stderr}");
     assert!(run(&["--force"]).status.success());
 }
 
@@ -431,7 +422,7 @@ fn converge_writes_tests_shared_ages_verdict_and_figure() {
     for word in ["Models", "Tests", "Shared ages", "Verdict", "Assumes"] {
         assert!(stdout.contains(word), "converge summary lacks '{word}'");
     }
-    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(dir.join("converge.json")).unwrap()).unwrap();
+    let v: serde_json::Value = read_json(&dir.join("converge.json"));
     for key in ["name", "statistic", "df", "p", "method"] {
         assert!(v["tests"][0].get(key).is_some(), "tests lacks '{key}'");
     }
@@ -465,10 +456,7 @@ fn converge_writes_tests_shared_ages_verdict_and_figure() {
         .args(["--cohort-from", "first-age", "--cohort-width", "100"])
         .output()
         .unwrap();
-    assert_eq!(one.status.code(), Some(2));
-    let err = String::from_utf8_lossy(&one.stderr);
-    assert_eq!(err.lines().count(), 1, "{err}");
-    assert!(err.contains("one cohort only"), "{err}");
+    expect_one_line_error(&one, "one cohort only", "converge with one cohort");
 }
 
 #[test]
@@ -496,7 +484,7 @@ fn apc_writes_the_identification_report_with_stable_keys() {
     for word in ["Deviance", "Identified", "Solutions", "Bounds", "Assumes"] {
         assert!(stdout.contains(word), "apc summary lacks '{word}'");
     }
-    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    let v: serde_json::Value = read_json(&json);
     assert_eq!(v["rank_deficiency"], 1);
     for key in [
         "null_vector",
@@ -536,10 +524,7 @@ fn apc_writes_the_identification_report_with_stable_keys() {
         .args(["--constraint", "equal:age:1"])
         .output()
         .unwrap();
-    assert_eq!(bad.status.code(), Some(2));
-    let err = String::from_utf8_lossy(&bad.stderr);
-    assert_eq!(err.lines().count(), 1, "{err}");
-    assert!(err.contains("--constraint"), "{err}");
+    expect_one_line_error(&bad, "--constraint", "apc with a constraint that is not one");
 }
 
 #[test]
@@ -567,7 +552,7 @@ fn apc_checks_a_given_birth_year_column_and_fits_the_hierarchical_model() {
     };
     let ok = run("born", &json);
     assert!(ok.status.success(), "{}", String::from_utf8_lossy(&ok.stderr));
-    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    let v: serde_json::Value = read_json(&json);
     assert!(v["cohort_check"]["max_gap"].as_f64().unwrap() <= 1.0);
     assert!(
         v["hierarchical"]["caution"]
@@ -577,9 +562,12 @@ fn apc_checks_a_given_birth_year_column_and_fits_the_hierarchical_model() {
     );
     // A column that is not a birth year is refused, naming a row.
     let bad = run("score", &dir.join("other.json"));
-    assert_eq!(bad.status.code(), Some(2));
-    let err = String::from_utf8_lossy(&bad.stderr);
-    assert!(err.contains("is not a birth year") && err.contains("data row"), "{err}");
+    let err = expect_one_line_error(
+        &bad,
+        "is not a birth year",
+        "apc with a column that is not a birth year",
+    );
+    assert!(err.contains("data row"), "{err}");
 }
 
 // With a school term crossing cohorts, M3 is the grouped fit: its test, the
@@ -596,7 +584,7 @@ fn converge_with_a_school_term_fits_m3_and_reports_each_cohorts_variances() {
         .output()
         .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    let v: serde_json::Value = serde_json::from_str(&fs::read_to_string(&json).unwrap()).unwrap();
+    let v: serde_json::Value = read_json(&json);
     let n_cohorts = v["cohorts"].as_array().unwrap().len();
     let m3 = v["tests"]
         .as_array()

@@ -59,3 +59,35 @@ pub fn fit(
     let request = braid::FitRequest::new(spec.clone(), trajectory.clone())?;
     braid::fit_panel(panel, &request)
 }
+
+/// A reference result from tests/reference (made by the scripts beside it).
+pub fn reference_json(name: &str) -> serde_json::Value {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests")
+        .join("reference")
+        .join(name);
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    serde_json::from_str(&text).unwrap()
+}
+
+/// A JSON document that braid wrote.
+pub fn read_json(path: &Path) -> serde_json::Value {
+    let text = std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    serde_json::from_str(&text).unwrap()
+}
+
+/// The process failed as bad input should: exit code 2, no panic, and one
+/// line on stderr holding `expected`. Returns that line.
+pub fn expect_one_line_error(out: &std::process::Output, expected: &str, what: &str) -> String {
+    let stderr = String::from_utf8_lossy(&out.stderr).to_string();
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "{what}: exit {:?}, stderr {stderr}",
+        out.status.code()
+    );
+    assert!(!stderr.contains("panicked"), "{what}: panic: {stderr}");
+    assert_eq!(stderr.trim_end().lines().count(), 1, "{what}: not one line: {stderr}");
+    assert!(stderr.contains(expected), "{what}: expected '{expected}' in: {stderr}");
+    stderr
+}

@@ -13,10 +13,7 @@ use crate::tolerance::LOGLIK_ABS;
 // made by tests/reference/converge_reference.py on tests/data/sim_plain.csv.
 #[test]
 fn likelihood_ratios_are_twice_the_reference_loglik_differences() {
-    let text =
-        std::fs::read_to_string(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/converge.json"))
-            .unwrap();
-    let reference: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let reference = crate::common::reference_json("converge.json");
     let ll = |m: &str| reference["models"][m]["loglik"].as_f64().unwrap();
     let mut r = roles("pupil", "age", "score");
     r.cohort = Some("cohort".into());

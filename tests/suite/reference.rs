@@ -23,8 +23,7 @@ use crate::common::{load, roles};
 use crate::tolerance::{FIXED_REL, LOGLIK_ABS, VARIANCE_REL, rel};
 
 fn reference() -> Value {
-    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/mixedlm.json");
-    serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+    crate::common::reference_json("mixedlm.json")
 }
 
 fn nums(v: &Value) -> Vec<f64> {

@@ -1,0 +1,200 @@
+//! The screen of `braid apc`.
+
+use std::fmt::Write;
+
+use crate::apc::analysis::ApcReport;
+
+use super::{p_is, thousands, title, wrap};
+
+/// The `braid apc` summary.
+pub fn apc_summary(r: &ApcReport) -> String {
+    let mut s = String::new();
+    title(&mut s, "apc", &r.data);
+    let _ = writeln!(
+        s,
+        "{:<11}{} ({} observations) · {} age groups × {} periods → {} cohorts",
+        "Data",
+        if r.outcome == "counts" {
+            "a table of counts with exposure, Poisson log-linear"
+        } else if r.panel.is_some() {
+            "panel records, linear mixed model with a random intercept per participant (ML)"
+        } else {
+            "records with a continuous outcome, least squares"
+        },
+        thousands(r.n_obs),
+        r.shape.a,
+        r.shape.p,
+        r.shape.a + r.shape.p - 1
+    );
+    let _ = writeln!(
+        s,
+        "{:<11}rank deficiency {} (max |X·v| = {:.1e}); null vector in sum-to-zero coding (Kupper et al. 1985):",
+        "Design", r.rank_deficiency, r.null_vector_residual
+    );
+    let line: Vec<String> = r
+        .null_vector
+        .iter()
+        .skip(1)
+        .map(|t| format!("{:+.1}", t.value))
+        .collect();
+    let _ = writeln!(s, "{:<11}{}", "", wrap(&line.join(" "), 75, 11));
+    let _ = writeln!(s);
+    let kind = if r.outcome == "counts" {
+        "(Poisson deviance)"
+    } else if r.panel.is_some() {
+        "(−2 × ML log-likelihood)"
+    } else {
+        "(residual sum of squares)"
+    };
+    let _ = writeln!(s, "{:<16}{:>14}{:>8}  {kind}", "Deviance", "", "df");
+    for d in &r.deviance_table {
+        let _ = writeln!(s, "  {:<14}{:>14.4}{:>8}", d.model, d.deviance, d.df);
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<60}{:>12}{:>10}",
+        "Identified (no constraint needed)", "estimate", "SE"
+    );
+    for q in r.identified.iter().filter(|q| !q.quantity.contains("deviation")) {
+        let _ = writeln!(s, "  {:<58}{:>12.4}{:>10.4}", q.quantity, q.estimate, q.se);
+    }
+    let _ = writeln!(
+        s,
+        "{:<11}(deviations from linearity of every level are in the JSON)",
+        ""
+    );
+    for t in &r.curvature_tests {
+        let _ = writeln!(
+            s,
+            "{:<11}no curvature in {}: statistic {:.3} on {} df, {}",
+            "Curvature",
+            t.dimension.name(),
+            t.statistic,
+            t.df,
+            p_is(t.p)
+        );
+    }
+    solutions_block(&mut s, r);
+    bounds_block(&mut s, r);
+    records_block(&mut s, r);
+    let _ = writeln!(s);
+    for (i, a) in r.assumptions.iter().enumerate() {
+        let _ = writeln!(s, "{:<11}{}", if i == 0 { "Assumes" } else { "" }, wrap(a, 75, 11));
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<11}{}", "Caution", crate::report::CAUTIONS[2]);
+    s
+}
+
+/// The constrained solutions and their slopes.
+fn solutions_block(s: &mut String, r: &ApcReport) {
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<11}every solution is b₀ + t·v; b₀ is the minimum-norm solution",
+        "Solutions"
+    );
+    let _ = writeln!(
+        s,
+        "  {:<58}{:>9}{:>9}{:>9}{:>9}",
+        "constraint", "t", "age", "period", "cohort"
+    );
+    for sol in &r.solutions {
+        let slope = |d: &str| sol.slopes.iter().find(|x| x.term == d).map_or(f64::NAN, |x| x.value);
+        let _ = writeln!(
+            s,
+            "  {:<58}{:>9.4}{:>9.4}{:>9.4}{:>9.4}",
+            sol.constraint,
+            sol.t,
+            slope("age"),
+            slope("period"),
+            slope("cohort")
+        );
+    }
+    let _ = writeln!(
+        s,
+        "{:<11}(slopes per group step; the level effects of each solution are in the JSON; fitted values agree to {:.1e})",
+        "", r.fitted_max_difference
+    );
+}
+
+/// The bounds under the stated assumptions.
+fn bounds_block(s: &mut String, r: &ApcReport) {
+    if let Some(b) = &r.bounds {
+        let _ = writeln!(s);
+        let _ = writeln!(s, "{:<11}assuming {}", "Bounds", b.assumptions.join("; "));
+        if b.contradiction {
+            let _ = writeln!(
+                s,
+                "{:<11}these assumptions contradict the data: no solution satisfies them all",
+                ""
+            );
+        } else {
+            let end = |x: Option<f64>, inf: &str| x.map_or(inf.to_string(), |v| format!("{v:.4}"));
+            let _ = writeln!(s, "{:<11}t from {} to {}", "", end(b.t_from, "−∞"), end(b.t_to, "+∞"));
+            for sb in &b.slopes {
+                let _ = writeln!(
+                    s,
+                    "{:<11}{} slope from {} to {}",
+                    "",
+                    sb.dimension.name(),
+                    end(sb.from, "−∞"),
+                    end(sb.to, "+∞")
+                );
+            }
+        }
+    }
+}
+
+/// Records: the birth-year check, the panel's view and the hierarchical fit.
+fn records_block(s: &mut String, r: &ApcReport) {
+    if let Some(c) = &r.cohort_check {
+        let _ = writeln!(s);
+        let _ = writeln!(s, "{:<11}{}", "Cohorts", wrap(&c.note, 75, 11));
+    }
+    if let Some(pv) = &r.panel {
+        let _ = writeln!(s);
+        for (i, t) in pv.text.iter().enumerate() {
+            let _ = writeln!(s, "{:<11}{}", if i == 0 { "Your panel" } else { "" }, wrap(t, 75, 11));
+        }
+    }
+    if let Some(h) = &r.hierarchical {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "{:<11}age polynomial centred at {:.2}, crossed random period and cohort intercepts{} (REML, Yang & Land 2006)",
+            "HAPC",
+            h.center,
+            if h.sd_participant.is_some() {
+                " and a participant intercept"
+            } else {
+                ""
+            }
+        );
+        for fe in &h.fixed {
+            let _ = writeln!(
+                s,
+                "{:<11}{:<12}{:>12.5}  SE {:>9.5}  df {:>8.1}  {}",
+                "",
+                fe.term,
+                fe.estimate,
+                fe.se,
+                fe.df,
+                p_is(fe.p)
+            );
+        }
+        let _ = writeln!(
+            s,
+            "{:<11}SD period {:.4} · SD cohort {:.4}{} · SD residual {:.4} · REML loglik {:.3}",
+            "",
+            h.sd_period,
+            h.sd_cohort,
+            h.sd_participant
+                .map_or(String::new(), |v| format!(" · SD participant {v:.4}")),
+            h.sd_residual,
+            h.loglik
+        );
+        let _ = writeln!(s, "{:<11}{}", "", wrap(&h.caution, 75, 11));
+    }
+}

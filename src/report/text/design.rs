@@ -1,0 +1,111 @@
+//! The screen of `braid inspect`.
+
+use std::fmt::Write;
+
+use super::{data_line, title};
+
+/// Render the design report of `braid inspect`.
+pub fn design_summary(r: &crate::design::DesignReport) -> String {
+    let mut s = String::new();
+    title(&mut s, "inspect", &r.data);
+    let _ = writeln!(s, "{:<11}{}", "Data", data_line(&r.data));
+    let _ = writeln!(s, "{:<11}cohorts {}", "Rules", r.cohort_rule);
+    let _ = writeln!(s, "{:<11}waves {}", "", r.wave_rule);
+    let sp = &r.span;
+    let _ = writeln!(
+        s,
+        "{:<11}ages {:.2} to {:.2} ({:.1} years of age) covered in {:.1} years of follow-up: {:.1} years of age per year",
+        "Span", sp.age_from, sp.age_to, sp.age_years, sp.calendar_years, sp.acceleration
+    );
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<12}{:<8}{:>8}{:>10}{:>10}{:>10}",
+        "Coverage", "wave", "n", "youngest", "median", "oldest"
+    );
+    for c in &r.cohorts {
+        let _ = writeln!(
+            s,
+            "  {:<10}{:<8}{:>8}{:>10.2}{:>10.2}{:>10.2}   ({} participants)",
+            c.cohort, "all", c.n_obs, c.age_min, c.age_median, c.age_max, c.n_participants
+        );
+        for w in &c.waves {
+            let _ = writeln!(
+                s,
+                "  {:<10}{:<8}{:>8}{:>10.2}{:>10.2}{:>10.2}",
+                "", w.wave, w.n, w.age_min, w.age_median, w.age_max
+            );
+        }
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<24}{:>20}{:>10}{:>10}   link",
+        "Overlap of neighbours", "shared ages", "n (a)", "n (b)"
+    );
+    for o in &r.overlap {
+        let ages = if o.linked {
+            format!("{:.2} to {:.2}", o.age_from, o.age_to)
+        } else {
+            "none".to_string()
+        };
+        let link = if !o.linked {
+            "NOT LINKED"
+        } else if o.thin {
+            "thin"
+        } else {
+            "linked"
+        };
+        let _ = writeln!(
+            s,
+            "  {:<22}{:>20}{:>10}{:>10}   {link}",
+            format!("{} – {}", o.cohort_a, o.cohort_b),
+            ages,
+            o.n_a,
+            o.n_b
+        );
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<12}{:<8}{:>8}{:>10}", "Retention", "wave", "n", "share");
+    let mut last = "";
+    for t in &r.retention {
+        let head = if t.cohort != last { t.cohort.as_str() } else { "" };
+        last = &t.cohort;
+        let _ = writeln!(s, "  {:<10}{:<8}{:>8}{:>9.1}%", head, t.wave, t.n, 100.0 * t.share);
+    }
+    let p = &r.attrition.patterns;
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "{:<11}{} complete · {} monotone dropout · {} intermittent (missed a wave, came back)",
+        "Patterns", p.complete, p.monotone, p.intermittent
+    );
+    if !r.attrition.baseline.is_empty() {
+        let _ = writeln!(
+            s,
+            "{:<24}{:>10}{:>10}{:>12}{:>9}{:>14}",
+            "Baseline: stayed − left", "stayed", "left", "difference", "SE", "standardized"
+        );
+        for b in &r.attrition.baseline {
+            let _ = writeln!(
+                s,
+                "  {:<22}{:>10.3}{:>10.3}{:>12.3}{:>9.3}{:>14.3}",
+                b.variable, b.stayers_mean, b.leavers_mean, b.difference, b.se, b.standardized
+            );
+        }
+    }
+    let _ = writeln!(
+        s,
+        "{:<11}time in study on prior assessments: R² = {:.4}",
+        "Collinear", r.collinear.time_retest_r2
+    );
+    for n in &r.collinear.notes {
+        let _ = writeln!(s, "{:<11}{n}", "");
+    }
+    for (i, w) in r.warnings.iter().enumerate() {
+        let _ = writeln!(s, "{:<11}{w}", if i == 0 { "\nWarnings" } else { "" });
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<11}{}", "Caution", crate::report::CAUTIONS[2]);
+    s
+}

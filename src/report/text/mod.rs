@@ -1,0 +1,121 @@
+//! The text screens, in braid's own layout: blocks headed by a word in the
+//! left margin, numbers right-aligned in fixed columns. One file per report;
+//! the formatters every screen shares are here.
+
+mod apc;
+mod converge;
+mod design;
+mod fit;
+
+use std::fmt::Write;
+
+pub use apc::apc_summary;
+pub use converge::converge_summary;
+pub use design::design_summary;
+pub use fit::fit_summary;
+
+use crate::data::DataSummary;
+
+/// Width of the rule under a screen's title.
+const RULE_WIDTH: usize = 86;
+
+/// The title line (`braid COMMAND · FILE`) and the rule under it.
+fn title(s: &mut String, command: &str, d: &DataSummary) {
+    let _ = writeln!(s, "braid {command} · {}", d.file);
+    let _ = writeln!(s, "{}", "─".repeat(RULE_WIDTH));
+}
+
+/// Participants and rows used of rows read, with the rows dropped and why.
+fn data_line(d: &DataSummary) -> String {
+    let mut dropped = Vec::new();
+    if d.dropped.missing_outcome > 0 {
+        dropped.push(format!(
+            "{} missing {}",
+            thousands(d.dropped.missing_outcome),
+            d.outcome
+        ));
+    }
+    if d.dropped.missing_age > 0 {
+        dropped.push(format!("{} missing {}", thousands(d.dropped.missing_age), d.age));
+    }
+    if d.dropped.missing_covariate > 0 {
+        dropped.push(format!(
+            "{} missing a covariate",
+            thousands(d.dropped.missing_covariate)
+        ));
+    }
+    if d.dropped.missing_other > 0 {
+        dropped.push(format!("{} missing a value", thousands(d.dropped.missing_other)));
+    }
+    let dropped = if dropped.is_empty() {
+        "none dropped".to_string()
+    } else {
+        format!("dropped {}", dropped.join(", "))
+    };
+    let who = match d.n_participants {
+        Some(n) => format!("{} participants · ", thousands(n)),
+        None => String::new(),
+    };
+    format!(
+        "{who}{} rows used of {} ({dropped})",
+        thousands(d.n_obs),
+        thousands(d.n_rows_read)
+    )
+}
+
+/// "p = .0123", or "p < .0001" for a tiny p-value (the JSON keeps the full double).
+fn p_is(p: f64) -> String {
+    match pval(p).as_str() {
+        "<.0001" => "p < .0001".into(),
+        v => format!("p = {v}"),
+    }
+}
+
+pub(crate) fn thousands(n: usize) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, ch) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i).is_multiple_of(3) {
+            out.push(',');
+        }
+        out.push(ch);
+    }
+    out
+}
+
+fn pval(p: f64) -> String {
+    if !p.is_finite() {
+        "—".into()
+    } else if p < 0.0001 {
+        "<.0001".into()
+    } else {
+        format!("{p:.4}").trim_start_matches('0').to_string()
+    }
+}
+
+fn num(x: f64, width: usize, dec: usize) -> String {
+    if x.is_finite() {
+        format!("{x:>width$.dec$}")
+    } else {
+        format!("{:>width$}", "—")
+    }
+}
+
+/// Wrap text at `width` columns, indenting continuation lines by `indent`.
+fn wrap(text: &str, width: usize, indent: usize) -> String {
+    let mut out = String::new();
+    let mut line = 0;
+    for word in text.split_whitespace() {
+        if line > 0 && line + 1 + word.chars().count() > width {
+            out.push('\n');
+            out.push_str(&" ".repeat(indent));
+            line = 0;
+        } else if line > 0 {
+            out.push(' ');
+            line += 1;
+        }
+        out.push_str(word);
+        line += word.chars().count();
+    }
+    out
+}
