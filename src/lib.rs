@@ -118,6 +118,7 @@ pub mod lmm;
 pub mod report;
 pub mod simulate;
 pub mod spec;
+pub mod stats;
 
 pub use error::{Error, Result};
 

@@ -129,11 +129,7 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
         }
         CohortRule::FirstAge { width } => {
             check_width(width, "cohort_width")?;
-            let mut first = vec![f64::INFINITY; panel.id.n_levels()];
-            for r in 0..n {
-                let k = panel.id.codes[r] as usize;
-                first[k] = first[k].min(panel.age[r]);
-            }
+            let first = panel.first_ages();
             Ok(Derived {
                 labels: (0..n)
                     .map(|r| group_label(first[panel.id.codes[r] as usize], width))

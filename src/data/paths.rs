@@ -6,6 +6,28 @@ use super::Panel;
 pub type Path = Vec<(f64, f64)>;
 
 impl Panel {
+    /// Each participant's youngest age, by participant code.
+    pub fn first_ages(&self) -> Vec<f64> {
+        let mut first = vec![f64::INFINITY; self.id.n_levels()];
+        for (&k, &a) in self.id.codes.iter().zip(&self.age) {
+            first[k as usize] = first[k as usize].min(a);
+        }
+        first
+    }
+
+    /// Each participant's row at their youngest age (the first row among
+    /// equal ages), by participant code.
+    pub fn first_rows(&self) -> Vec<usize> {
+        let mut first = vec![usize::MAX; self.id.n_levels()];
+        for (r, &k) in self.id.codes.iter().enumerate() {
+            let f = &mut first[k as usize];
+            if *f == usize::MAX || self.age[r] < self.age[*f] {
+                *f = r;
+            }
+        }
+        first
+    }
+
     /// The observed paths of `k` participants spread evenly through the file.
     pub fn sample_paths(&self, k: usize) -> Vec<Path> {
         let n_id = self.id.n_levels();

@@ -34,11 +34,7 @@ pub struct LexisData {
 /// (whose cohort labels, in row order, are `cohort_of`).
 pub fn lexis_data(panel: &Panel, report: &DesignReport, cohort_of: &[String]) -> LexisData {
     let n_id = panel.id.n_levels();
-    let mut first = vec![f64::INFINITY; n_id];
-    for r in 0..panel.n() {
-        let k = panel.id.codes[r] as usize;
-        first[k] = first[k].min(panel.age[r]);
-    }
+    let first = panel.first_ages();
     let time = |r: usize| match &panel.calendar {
         Some(c) => c.period[r],
         None => panel.age[r] - first[panel.id.codes[r] as usize],

@@ -637,11 +637,7 @@ fn between_within(
     let n = panel.n();
     let p = frame.problem.p();
     let center = frame.basis.center();
-    let mut first = vec![f64::INFINITY; panel.id.n_levels()];
-    for r in 0..n {
-        let k = panel.id.codes[r] as usize;
-        first[k] = first[k].min(panel.age[r]);
-    }
+    let first = panel.first_ages();
     let mut problem = frame.problem.clone();
     // Column 1 is the linear term (age − centre): replace it by the baseline
     // age, and append time since baseline.

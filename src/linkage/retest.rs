@@ -91,29 +91,13 @@ pub fn column(panel: &Panel, form: RetestForm) -> Vec<f64> {
         .collect()
 }
 
-/// R² of `y` on the columns of the row-major n×p matrix `x` (which holds an
-/// intercept), by the normal equations with a Cholesky factor.
+/// R² of `y` on the columns of the row-major n×p matrix `x` (its constant
+/// column adds nothing: [`crate::stats::r_squared`] fits an intercept).
 fn r_squared(x: &[f64], p: usize, y: &[f64]) -> f64 {
     let n = y.len();
-    let mean = y.iter().sum::<f64>() / n as f64;
-    let syy: f64 = y.iter().map(|v| (v - mean).powi(2)).sum();
-    if syy == 0.0 {
-        return 1.0;
-    }
-    let xtx = faer::Mat::from_fn(p, p, |a, b| (0..n).map(|r| x[r * p + a] * x[r * p + b]).sum::<f64>());
-    let xty = faer::Mat::from_fn(p, 1, |a, _| (0..n).map(|r| x[r * p + a] * y[r]).sum::<f64>());
-    let Ok(llt) = xtx.llt(faer::Side::Lower) else {
-        return f64::NAN;
-    };
-    use faer::linalg::solvers::Solve;
-    let b = llt.solve(&xty);
-    let rss: f64 = (0..n)
-        .map(|r| {
-            let fit: f64 = (0..p).map(|a| x[r * p + a] * b[(a, 0)]).sum();
-            (y[r] - fit).powi(2)
-        })
-        .sum();
-    (1.0 - rss / syy).clamp(0.0, 1.0)
+    let cols: Vec<Vec<f64>> = (0..p).map(|a| (0..n).map(|r| x[r * p + a]).collect()).collect();
+    let refs: Vec<&[f64]> = cols.iter().map(Vec::as_slice).collect();
+    crate::stats::r_squared(y, &refs)
 }
 
 /// Check and, when identified, fit the retest term added to M0 (REML).

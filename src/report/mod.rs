@@ -151,11 +151,7 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     let cohort_key: Vec<i64> = match &panel.cohort {
         Some(c) => c.codes.iter().map(|&k| i64::from(k)).collect(),
         None => {
-            let mut first = vec![f64::INFINITY; panel.id.n_levels()];
-            for r in 0..n {
-                let k = panel.id.codes[r] as usize;
-                first[k] = first[k].min(panel.age[r]);
-            }
+            let first = panel.first_ages();
             (0..n)
                 .map(|r| first[panel.id.codes[r] as usize].floor() as i64)
                 .collect()

@@ -1,0 +1,84 @@
+//! Descriptive helpers that several analyses share: the mean and sample
+//! variance, and the R² of a least-squares regression. One home each, so the
+//! design report, the retest check and the convergence tests agree.
+
+use faer::{Mat, Side};
+
+/// The arithmetic mean (NaN for an empty slice).
+pub fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len() as f64
+}
+
+/// The mean and the sample variance (divisor n − 1; NaN for fewer than two values).
+pub fn mean_var(v: &[f64]) -> (f64, f64) {
+    let m = mean(v);
+    let var = if v.len() > 1 {
+        v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (v.len() as f64 - 1.0)
+    } else {
+        f64::NAN
+    };
+    (m, var)
+}
+
+/// Relative size below which an eigenvalue of the centred cross-product
+/// counts as zero: the regressors are then collinear in that direction.
+const RANK_TOLERANCE: f64 = 1e-12;
+
+/// R² of the least-squares regression of `y` on the columns `x` with an
+/// intercept: the share of the variance of `y` in the span of the centred
+/// columns. Collinear columns are handled by projecting on their span (a
+/// pseudo-inverse), so two collinear regressors give the R² of either. A
+/// constant `y` gives 1 (it is fitted exactly).
+pub fn r_squared(y: &[f64], x: &[&[f64]]) -> f64 {
+    let n = y.len();
+    let my = mean(y);
+    let syy: f64 = y.iter().map(|v| (v - my).powi(2)).sum();
+    if syy == 0.0 {
+        return 1.0;
+    }
+    let means: Vec<f64> = x.iter().map(|c| mean(c)).collect();
+    let p = x.len();
+    let xtx = Mat::from_fn(p, p, |a, b| {
+        (0..n).map(|r| (x[a][r] - means[a]) * (x[b][r] - means[b])).sum::<f64>()
+    });
+    let xty: Vec<f64> = (0..p)
+        .map(|a| (0..n).map(|r| (x[a][r] - means[a]) * (y[r] - my)).sum::<f64>())
+        .collect();
+    let Ok(eig) = xtx.self_adjoint_eigen(Side::Lower) else {
+        return f64::NAN;
+    };
+    let (u, s) = (eig.U(), eig.S().column_vector());
+    let largest = (0..p).map(|k| s[k]).fold(0.0, f64::max);
+    // Explained sum of squares = Σ_k (u_kᵀ Xᵀy)² / λ_k over the nonzero λ_k.
+    let explained: f64 = (0..p)
+        .filter(|&k| s[k] > RANK_TOLERANCE * largest)
+        .map(|k| {
+            let proj: f64 = (0..p).map(|a| u[(a, k)] * xty[a]).sum();
+            proj * proj / s[k]
+        })
+        .sum();
+    (explained / syy).clamp(0.0, 1.0)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Closed-form identities: y on itself has R² 1; y = 2a + b with b
+    // orthogonal to a (and both centred) has R² on a of 4·Saa / (4·Saa + Sbb);
+    // a duplicated regressor changes nothing.
+    #[test]
+    fn r_squared_meets_closed_forms() {
+        let a = [-1.0, 0.0, 1.0, -1.0, 0.0, 1.0];
+        let b = [1.0, -2.0, 1.0, 1.0, -2.0, 1.0];
+        let y: Vec<f64> = a.iter().zip(&b).map(|(a, b)| 2.0 * a + b).collect();
+        assert!((r_squared(&y, &[&y]) - 1.0).abs() < 1e-12);
+        let (saa, sbb) = (4.0, 12.0);
+        let expected = 4.0 * saa / (4.0 * saa + sbb);
+        assert!((r_squared(&y, &[&a]) - expected).abs() < 1e-12);
+        assert!((r_squared(&y, &[&a, &a]) - expected).abs() < 1e-12);
+        assert!((r_squared(&y, &[&a, &b]) - 1.0).abs() < 1e-12);
+        let (m, v) = mean_var(&[1.0, 2.0, 3.0, 4.0]);
+        assert_eq!((m, v), (2.5, 5.0 / 3.0));
+    }
+}
