@@ -438,7 +438,7 @@ pub struct PanelView {
     pub n_participants: usize,
     /// The test of period effects beyond age and cohort (APC against A+C):
     /// a likelihood ratio of their ML fits.
-    pub period_beyond_cohort: crate::infer::tests::TestResult,
+    pub period_beyond_cohort: crate::infer::hypothesis::TestResult,
     /// What it means, in words.
     pub text: Vec<String>,
 }
@@ -995,14 +995,15 @@ fn panel_view(ids: &[u32], table: &[DevianceRow]) -> PanelView {
     let find = |m: &str| table.iter().find(|r| r.model == m);
     let (ac, apc) = (find("A+C"), find("APC"));
     let test = match (ac, apc) {
-        (Some(ac), Some(apc)) => crate::infer::tests::likelihood_ratio(
+        (Some(ac), Some(apc)) => crate::infer::hypothesis::likelihood_ratio(
             "period effects beyond age and cohort (APC vs A+C)",
             -ac.deviance / 2.0,
             -apc.deviance / 2.0,
             ac.df.saturating_sub(apc.df),
             false,
-        ),
-        _ => crate::infer::tests::likelihood_ratio("period effects beyond age and cohort", 0.0, 0.0, 0, false),
+        )
+        .of_kind(crate::infer::hypothesis::TestKind::PeriodBeyondCohort),
+        _ => crate::infer::hypothesis::likelihood_ratio("period effects beyond age and cohort", 0.0, 0.0, 0, false),
     };
     let mut n: Vec<u32> = ids.to_vec();
     n.sort_unstable();

@@ -7,7 +7,7 @@
 //! covariance of the variance parameters φ. The derivation is in
 //! `notes/criterion.md`.
 
-pub mod tests;
+pub mod hypothesis;
 pub mod trajectory;
 
 use serde::Serialize;

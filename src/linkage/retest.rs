@@ -139,7 +139,7 @@ pub fn check_with(panel: &Panel, frame: &ModelFrame, base: &lmm::Fit, form: Rete
             age_slope_with: None,
         });
     }
-    let problem = super::with_columns(&frame.problem, &[form.name().to_string()], &[col]);
+    let problem = super::columns::with_columns(&frame.problem, &[form.name().to_string()], &[col]);
     let with = super::fit_with(&problem, Method::Reml)?;
     let mut c = vec![0.0; problem.p()];
     c[problem.p() - 1] = 1.0;

@@ -19,7 +19,7 @@
 //!   ½χ²(1) + ½χ²(2) mixture (Self & Liang 1987; Stram & Lee 1994).
 
 use crate::error::Result;
-use crate::infer::tests::{TestResult, likelihood_ratio};
+use crate::infer::hypothesis::{TestKind, TestMethod, TestResult, likelihood_ratio};
 use crate::lmm::grouped::{Grouping, fit_grouped};
 use crate::lmm::{Fit, Method, MixedProblem, RandomTermData};
 
@@ -79,6 +79,22 @@ pub struct M3 {
     pub route: String,
     /// Each cohort's random-effect SDs and residual SD under M3.
     pub cohorts: Vec<CohortVariance>,
+}
+
+impl M3 {
+    /// M3's row of the model table, on `n_obs` rows.
+    pub fn summary(&self, n_obs: usize) -> super::ModelSummary {
+        super::ModelSummary {
+            name: "M3".into(),
+            description: "M2 + covariances and residual variance per cohort".into(),
+            method: "REML".into(),
+            loglik: self.loglik,
+            n_params: self.n_params,
+            aic: -2.0 * self.loglik + 2.0 * self.n_params as f64,
+            bic: -2.0 * self.loglik + self.n_params as f64 * (n_obs as f64).ln(),
+            converged: self.converged,
+        }
+    }
 }
 
 /// One cohort's variance components under M3.
@@ -170,7 +186,7 @@ pub fn m3_test(
             Err(e) => return Ok(Err(e.to_string())),
         }
     };
-    let test = likelihood_ratio(name, m2_reml.loglik, loglik, df, false);
+    let test = likelihood_ratio(name, m2_reml.loglik, loglik, df, false).of_kind(TestKind::CohortCovariance);
     Ok(Ok(M3 {
         test,
         loglik,
@@ -200,7 +216,10 @@ pub fn random_slope_test(m0_problem: &MixedProblem, m0_reml: &Fit) -> Result<Opt
         2,
         true,
     );
-    test.method
-        .push_str(": the null puts the slope variance on its boundary (Self & Liang 1987; Stram & Lee 1994)");
+    test.method = TestMethod::BoundaryLikelihoodRatio {
+        df: 2.0,
+        because: Some("the null puts the slope variance on its boundary (Self & Liang 1987; Stram & Lee 1994)"),
+    };
+    test.kind = TestKind::RandomSlope;
     Ok(Some(test))
 }

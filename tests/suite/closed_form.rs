@@ -89,7 +89,7 @@ fn reml_equals_anova_estimators_in_balanced_one_way_design() {
         // The Wald F of the same single contrast (converge's multi-df test)
         // has denominator df 2E/(E − 1) with E = ν/(ν − 2), which is ν again:
         // a − 1 (closed form), and F = t².
-        let f = braid::infer::tests::wald_f(&fit, "mean", &[vec![1.0]]);
+        let f = braid::infer::hypothesis::wald_f(&fit, "mean", &[vec![1.0]]);
         let den = f.df_denominator.unwrap();
         assert!(
             rel(den, (a - 1) as f64, 1.0) < SATTERTHWAITE_REL,

@@ -10,9 +10,109 @@ use statrs::distribution::{ChiSquared, ContinuousCDF, FisherSnedecor};
 use super::contrast;
 use crate::lmm::Fit;
 
+/// What a test asks, so that a verdict finds its tests by kind, never by
+/// name or position.
+#[derive(Debug, Clone, Copy, Default, Serialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum TestKind {
+    /// Cohorts differ in level (M1 against M0).
+    CohortLevel,
+    /// Cohorts differ in age trend (M2 against M1).
+    CohortTrend,
+    /// Cohort level differences, Wald F under M2.
+    CohortLevelWald,
+    /// Cohort differences in the age terms, Wald F under M2.
+    CohortTrendWald,
+    /// Cohorts differ in covariances and residual variance (M3 against M2).
+    CohortCovariance,
+    /// Participants differ in their age slope.
+    RandomSlope,
+    /// Period effects beyond age and cohort (APC against A+C).
+    PeriodBeyondCohort,
+    /// Any other test.
+    #[default]
+    Other,
+}
+
+/// How a test's p-value was computed: its reference distribution.
+#[derive(Debug, Clone, PartialEq)]
+pub enum TestMethod {
+    /// Likelihood ratio against χ²(df).
+    LikelihoodRatio {
+        /// Degrees of freedom.
+        df: f64,
+    },
+    /// Likelihood ratio against ½χ²(df − 1) + ½χ²(df), a variance on its boundary.
+    BoundaryLikelihoodRatio {
+        /// Degrees of freedom of the larger component.
+        df: f64,
+        /// Why the null is on the boundary, in words.
+        because: Option<&'static str>,
+    },
+    /// Wald F with Satterthwaite-type denominator df.
+    WaldF {
+        /// Numerator df.
+        df: f64,
+        /// Denominator df.
+        df_denominator: f64,
+        /// The criterion of the fit (REML or ML).
+        fit: &'static str,
+    },
+    /// A Wald F that could not be computed.
+    NotEstimable,
+}
+
+impl TestMethod {
+    /// The reference distribution, short, for a table row ("χ²(4)", "F(4, 2460.3)").
+    pub fn reference(&self) -> String {
+        match self {
+            TestMethod::LikelihoodRatio { df } => format!("χ²({df})"),
+            TestMethod::BoundaryLikelihoodRatio { df, .. } => format!("½χ²({}) + ½χ²({df})", df - 1.0),
+            TestMethod::WaldF { df, df_denominator, .. } => format!("F({df}, {df_denominator:.1})"),
+            TestMethod::NotEstimable => "—".into(),
+        }
+    }
+}
+
+impl std::fmt::Display for TestMethod {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            TestMethod::LikelihoodRatio { df } => write!(f, "likelihood ratio, χ²({df})"),
+            TestMethod::BoundaryLikelihoodRatio { df, because } => {
+                write!(
+                    f,
+                    "likelihood ratio, ½χ²({}) + ½χ²({df}) mixture (boundary null)",
+                    df - 1.0
+                )?;
+                match because {
+                    Some(b) => write!(f, ": {b}"),
+                    None => Ok(()),
+                }
+            }
+            TestMethod::WaldF {
+                df,
+                df_denominator,
+                fit,
+            } => write!(
+                f,
+                "Wald F({df}, {df_denominator:.1}) from the {fit} fit, denominator df by Satterthwaite (Fai & Cornelius 1996)"
+            ),
+            TestMethod::NotEstimable => write!(f, "Wald F (not computable: the contrasts are not estimable)"),
+        }
+    }
+}
+
+impl Serialize for TestMethod {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.collect_str(self)
+    }
+}
+
 /// One row of a test table, with stable JSON keys.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct TestResult {
+    /// What is tested.
+    pub kind: TestKind,
     /// What is tested, in words.
     pub name: String,
     /// The statistic (χ² or F).
@@ -23,8 +123,17 @@ pub struct TestResult {
     pub df_denominator: Option<f64>,
     /// p-value.
     pub p: f64,
-    /// How it was computed.
-    pub method: String,
+    /// How it was computed (serialised in words).
+    pub method: TestMethod,
+}
+
+impl TestResult {
+    /// The same test, marked as being of `kind`.
+    #[must_use]
+    pub fn of_kind(mut self, kind: TestKind) -> TestResult {
+        self.kind = kind;
+        self
+    }
 }
 
 /// Upper tail of χ²(df) at `x`; df = 0 is a point mass at zero.
@@ -61,16 +170,13 @@ pub fn likelihood_ratio(name: &str, loglik_small: f64, loglik_large: f64, df: us
     let (p, method) = if boundary {
         (
             chibar2_sf(statistic, df),
-            format!(
-                "likelihood ratio, ½χ²({}) + ½χ²({}) mixture (boundary null)",
-                df - 1.0,
-                df
-            ),
+            TestMethod::BoundaryLikelihoodRatio { df, because: None },
         )
     } else {
-        (chi2_sf(statistic, df), format!("likelihood ratio, χ²({df})"))
+        (chi2_sf(statistic, df), TestMethod::LikelihoodRatio { df })
     };
     TestResult {
+        kind: TestKind::Other,
         name: name.to_string(),
         statistic,
         df,
@@ -102,12 +208,13 @@ pub fn wald_f(fit: &Fit, name: &str, l: &[Vec<f64>]) -> TestResult {
         acc
     });
     let nan = TestResult {
+        kind: TestKind::Other,
         name: name.to_string(),
         statistic: f64::NAN,
         df: q as f64,
         df_denominator: None,
         p: f64::NAN,
-        method: "Wald F (not computable: the contrasts are not estimable)".into(),
+        method: TestMethod::NotEstimable,
     };
     let Ok(eig) = lcl.self_adjoint_eigen(faer::Side::Lower) else {
         return nan;
@@ -143,15 +250,17 @@ pub fn wald_f(fit: &Fit, name: &str, l: &[Vec<f64>]) -> TestResult {
         FisherSnedecor::new(qf, den).map_or(f64::NAN, |d| 1.0 - d.cdf(f.max(0.0)))
     };
     TestResult {
+        kind: TestKind::Other,
         name: name.to_string(),
         statistic: f,
         df: qf,
         df_denominator: Some(den),
         p: p_value,
-        method: format!(
-            "Wald F({qf}, {den:.1}) from the {} fit, denominator df by Satterthwaite (Fai & Cornelius 1996)",
-            fit.method.label()
-        ),
+        method: TestMethod::WaldF {
+            df: qf,
+            df_denominator: den,
+            fit: fit.method.label(),
+        },
     }
 }
 
