@@ -1,0 +1,401 @@
+//! Building a validated panel from the columns read: rows kept and dropped,
+//! labels coded, covariates typed, calendar time, and the checks that need
+//! the data.
+
+use std::path::Path;
+
+use super::cells::{label_at, number_at};
+use super::read::{self, RawColumn};
+use super::{
+    Calendar, CalendarSource, Codes, Covariate, CovariateValues, DropReport, FastMap, Panel, Roles, dates, is_missing,
+};
+use crate::error::{Error, Result};
+
+pub(super) fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
+    let kept = keep_rows(path, roles, table)?;
+    let cells = Cells {
+        path,
+        table,
+        rows: &kept.rows,
+    };
+    let id = cells.codes(&roles.id, false)?;
+    let cohort = roles.cohort.as_deref().map(|c| cells.codes(c, true)).transpose()?;
+    let wave = roles.wave.as_deref().map(|c| cells.codes(c, true)).transpose()?;
+    let cluster = roles.cluster.as_deref().map(|c| cells.codes(c, true)).transpose()?;
+    let covariates = covariates(&cells, roles, &kept.numeric)?;
+    let row: Vec<usize> = kept.rows.iter().map(|r| r + 1).collect();
+    let calendar = calendar_of(path, roles, table, &kept.rows, &kept.age)?;
+    check_fixed_per_participant(&cells, roles, &id, &row)?;
+    check_design(path, roles, &id, &kept.age, wave.as_ref(), &row)?;
+    Ok(Panel {
+        source: path.to_path_buf(),
+        roles: roles.clone(),
+        n_rows_read: table.n_rows,
+        dropped: kept.dropped,
+        row,
+        id,
+        age: kept.age,
+        outcome: kept.outcome,
+        cohort,
+        wave,
+        cluster,
+        covariates,
+        calendar,
+    })
+}
+
+/// The rows kept, with their age and outcome, and the rows dropped.
+struct Kept {
+    rows: Vec<usize>,
+    age: Vec<f64>,
+    outcome: Vec<f64>,
+    dropped: DropReport,
+    /// Whether each covariate is numeric.
+    numeric: Vec<bool>,
+}
+
+/// Age of row `r`: a numeric column, or computed from two date columns.
+fn age_at(path: &Path, roles: &Roles, table: &read::RawTable, r: usize) -> Result<Option<f64>> {
+    let col = |name: &str| &table.columns[name];
+    let Some((b, d)) = roles.dates() else {
+        return number_at(path, &roles.age, col(&roles.age), r);
+    };
+    let (Some(bs), Some(ds)) = (label_at(col(b), r), label_at(col(d), r)) else {
+        return Ok(None);
+    };
+    let parse = |column: &str, s: &str| {
+        dates::Date::parse(s).ok_or_else(|| Error::BadValue {
+            path: path.to_path_buf(),
+            column: column.to_string(),
+            row: r + 1,
+            value: s.to_string(),
+            advice: "is not a calendar date in YYYY-MM-DD form; fix the cell or leave it empty".into(),
+        })
+    };
+    let (birth, date) = (parse(b, &bs)?, parse(d, &ds)?);
+    match dates::decimal_age(birth, date) {
+        Some(a) => Ok(Some(a)),
+        None => Err(Error::BadValue {
+            path: path.to_path_buf(),
+            column: d.to_string(),
+            row: r + 1,
+            value: ds,
+            advice: format!("is before the birth date {bs}; check both dates"),
+        }),
+    }
+}
+
+/// Covariates are numeric unless declared categorical or any cell is not a number.
+fn numeric_covariates(roles: &Roles, table: &read::RawTable) -> Vec<bool> {
+    roles
+        .covariates
+        .iter()
+        .map(|c| {
+            !roles.categorical.contains(c)
+                && match &table.columns[c] {
+                    RawColumn::Number(_) => true,
+                    RawColumn::Text(v) => v
+                        .iter()
+                        .flatten()
+                        .map(|s| s.trim())
+                        .filter(|s| !is_missing(s))
+                        .all(|s| s.parse::<f64>().is_ok()),
+                }
+        })
+        .collect()
+}
+
+/// Keep the rows with an outcome, an age and every covariate; count the rest.
+fn keep_rows(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Kept> {
+    let n = table.n_rows;
+    let y_col = &table.columns[&roles.outcome];
+    let cov_cols: Vec<&RawColumn> = roles.covariates.iter().map(|c| &table.columns[c]).collect();
+    let numeric = numeric_covariates(roles, table);
+    let mut kept = Kept {
+        rows: Vec::with_capacity(n),
+        age: Vec::with_capacity(n),
+        outcome: Vec::with_capacity(n),
+        dropped: DropReport::default(),
+        numeric,
+    };
+    'rows: for r in 0..n {
+        let y = number_at(path, &roles.outcome, y_col, r)?;
+        let a = age_at(path, roles, table, r)?;
+        let Some(y) = y else {
+            kept.dropped.missing_outcome += 1;
+            continue;
+        };
+        let Some(a) = a else {
+            kept.dropped.missing_age += 1;
+            continue;
+        };
+        for (k, c) in roles.covariates.iter().enumerate() {
+            let missing = if kept.numeric[k] {
+                number_at(path, c, cov_cols[k], r)?.is_none()
+            } else {
+                label_at(cov_cols[k], r).is_none()
+            };
+            if missing {
+                kept.dropped.missing_covariate += 1;
+                continue 'rows;
+            }
+        }
+        kept.rows.push(r);
+        kept.age.push(a);
+        kept.outcome.push(y);
+    }
+    if kept.rows.is_empty() {
+        let d = kept.dropped;
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!(
+                "no usable rows: {} with a missing outcome, {} with a missing age, {} with a missing covariate; check the column roles",
+                d.missing_outcome, d.missing_age, d.missing_covariate
+            ),
+        });
+    }
+    Ok(kept)
+}
+
+/// The cells of the kept rows.
+struct Cells<'a> {
+    path: &'a Path,
+    table: &'a read::RawTable,
+    rows: &'a [usize],
+}
+
+impl Cells<'_> {
+    /// A column's labels over the kept rows; an empty cell is an error when
+    /// `required`, else "(missing)".
+    fn labels(&self, name: &str, required: bool) -> Result<Vec<String>> {
+        let c = &self.table.columns[name];
+        self.rows
+            .iter()
+            .map(|&r| match label_at(c, r) {
+                Some(s) => Ok(s),
+                None if required => Err(self.empty(name, r)),
+                None => Ok("(missing)".to_string()),
+            })
+            .collect()
+    }
+
+    /// A label column coded straight from the text, every cell required.
+    fn codes(&self, name: &str, sort: bool) -> Result<Codes> {
+        match &self.table.columns[name] {
+            RawColumn::Text(v) => {
+                let cells: Vec<&str> = self
+                    .rows
+                    .iter()
+                    .map(|&r| match v.get(r).map(str::trim) {
+                        Some(t) if !is_missing(t) => Ok(t),
+                        _ => Err(self.empty(name, r)),
+                    })
+                    .collect::<Result<_>>()?;
+                Ok(Codes::from_strs(cells.into_iter(), sort))
+            }
+            RawColumn::Number(_) => Ok(Codes::new(&self.labels(name, true)?, sort)),
+        }
+    }
+
+    fn empty(&self, name: &str, r: usize) -> Error {
+        Error::BadValue {
+            path: self.path.to_path_buf(),
+            column: name.to_string(),
+            row: r + 1,
+            value: String::new(),
+            advice: "is empty; every row needs a value in this column".into(),
+        }
+    }
+}
+
+/// The covariates over the kept rows; one that takes a single value is an error.
+fn covariates(cells: &Cells, roles: &Roles, numeric: &[bool]) -> Result<Vec<Covariate>> {
+    let path = cells.path;
+    let mut covariates = Vec::with_capacity(roles.covariates.len());
+    for (k, c) in roles.covariates.iter().enumerate() {
+        let values = if numeric[k] {
+            let mut v = Vec::with_capacity(cells.rows.len());
+            for &r in cells.rows {
+                v.push(number_at(path, c, &cells.table.columns[c], r)?.unwrap_or(f64::NAN));
+            }
+            let first = v[0];
+            if v.iter().all(|&x| x == first) {
+                return Err(Error::Data {
+                    path: path.to_path_buf(),
+                    message: format!(
+                        "covariate '{c}' takes the single value {first} in every usable row; drop it from the model"
+                    ),
+                });
+            }
+            CovariateValues::Numeric(v)
+        } else {
+            let codes = Codes::new(&cells.labels(c, true)?, true);
+            if codes.n_levels() < 2 {
+                return Err(Error::Data {
+                    path: path.to_path_buf(),
+                    message: format!(
+                        "covariate '{c}' takes the single value '{}' in every usable row; drop it from the model",
+                        codes.levels[0]
+                    ),
+                });
+            }
+            CovariateValues::Categorical(codes)
+        };
+        covariates.push(Covariate {
+            name: c.clone(),
+            values,
+        });
+    }
+    Ok(covariates)
+}
+
+/// A participant's cohort and birth date cannot change between waves.
+fn check_fixed_per_participant(cells: &Cells, roles: &Roles, id: &Codes, row: &[usize]) -> Result<()> {
+    let mut fixed: Vec<(&str, Vec<String>)> = Vec::new();
+    if let Some(c) = &roles.cohort {
+        fixed.push((c.as_str(), cells.labels(c, true)?));
+    }
+    if let (None, Some(b)) = (roles.dates(), &roles.birth_year) {
+        fixed.push((b.as_str(), cells.labels(b, true)?));
+    }
+    if let Some((b, _)) = roles.dates() {
+        let col = &cells.table.columns[b];
+        fixed.push((
+            b,
+            cells
+                .rows
+                .iter()
+                .map(|&r| label_at(col, r).unwrap_or_default())
+                .collect(),
+        ));
+    }
+    for (column, values) in &fixed {
+        let mut first: Vec<Option<usize>> = vec![None; id.n_levels()];
+        for (k, v) in values.iter().enumerate() {
+            let who = id.codes[k] as usize;
+            match first[who] {
+                None => first[who] = Some(k),
+                Some(f) if values[f] != *v => {
+                    return Err(Error::Data {
+                        path: cells.path.to_path_buf(),
+                        message: format!(
+                            "participant '{}' has {column} '{}' in row {} but '{}' in row {}; a participant's {column} cannot change between waves",
+                            id.levels[who], values[f], row[f], v, row[k]
+                        ),
+                    });
+                }
+                Some(_) => {}
+            }
+        }
+    }
+    Ok(())
+}
+
+/// At least two participants, ages that differ, and one row per participant and wave.
+fn check_design(
+    path: &Path,
+    roles: &Roles,
+    id: &Codes,
+    age: &[f64],
+    wave: Option<&Codes>,
+    row: &[usize],
+) -> Result<()> {
+    if id.n_levels() < 2 {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!(
+                "column '{}' holds a single participant ('{}'); a trajectory across participants needs at least two",
+                roles.id, id.levels[0]
+            ),
+        });
+    }
+    let (amin, amax) = age.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| {
+        (lo.min(a), hi.max(a))
+    });
+    if amax - amin <= 0.0 {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!(
+                "column '{}' has the same age {amin} in every usable row; an age trajectory needs ages that differ",
+                roles.age
+            ),
+        });
+    }
+    if let Some(w) = wave {
+        let mut seen: FastMap<(u32, u32), usize> =
+            FastMap::with_capacity_and_hasher(id.codes.len(), Default::default());
+        for r in 0..id.codes.len() {
+            if let Some(prev) = seen.insert((id.codes[r], w.codes[r]), r) {
+                return Err(Error::Data {
+                    path: path.to_path_buf(),
+                    message: format!(
+                        "participant '{}' has two rows for wave '{}' (rows {} and {}); remove the duplicate or check the wave column",
+                        id.label(r),
+                        w.label(r),
+                        row[prev],
+                        row[r]
+                    ),
+                });
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Calendar times of the kept rows: from dates, or from period and birth-year
+/// columns (one derived from the other and age when only one is given).
+fn calendar_of(
+    path: &Path,
+    roles: &Roles,
+    table: &read::RawTable,
+    keep_rows: &[usize],
+    age: &[f64],
+) -> Result<Option<Calendar>> {
+    let col = |name: &str| &table.columns[name];
+    if let Some((b, d)) = roles.dates() {
+        let year_of = |c: &str, r: usize| {
+            label_at(col(c), r)
+                .and_then(|s| dates::Date::parse(&s))
+                .map_or(f64::NAN, dates::decimal_year)
+        };
+        return Ok(Some(Calendar {
+            period: keep_rows.iter().map(|&r| year_of(d, r)).collect(),
+            birth: keep_rows.iter().map(|&r| year_of(b, r)).collect(),
+            source: CalendarSource::Dates,
+        }));
+    }
+    let numbers = |name: &str| -> Result<Vec<f64>> {
+        keep_rows
+            .iter()
+            .map(|&r| {
+                number_at(path, name, col(name), r)?.ok_or_else(|| Error::BadValue {
+                    path: path.to_path_buf(),
+                    column: name.to_string(),
+                    row: r + 1,
+                    value: String::new(),
+                    advice: "is empty; every row with an outcome and age needs a value in this column".into(),
+                })
+            })
+            .collect()
+    };
+    let period = roles.period.as_deref().map(numbers).transpose()?;
+    let birth = roles.birth_year.as_deref().map(numbers).transpose()?;
+    Ok(match (period, birth) {
+        (Some(period), Some(birth)) => Some(Calendar {
+            period,
+            birth,
+            source: CalendarSource::Columns,
+        }),
+        (Some(period), None) => Some(Calendar {
+            birth: period.iter().zip(age).map(|(p, a)| p - a).collect(),
+            period,
+            source: CalendarSource::BirthFromPeriod,
+        }),
+        (None, Some(birth)) => Some(Calendar {
+            period: birth.iter().zip(age).map(|(b, a)| b + a).collect(),
+            birth,
+            source: CalendarSource::PeriodFromBirth,
+        }),
+        (None, None) => None,
+    })
+}
