@@ -1,185 +1,18 @@
 //! The identification report: the fits, the line of solutions, what is
 //! identified, the constrained solutions and the bounds.
 
-use faer::linalg::solvers::Solve;
 use serde::Serialize;
-use statrs::distribution::{ChiSquared, ContinuousCDF, FisherSnedecor};
 
+pub use super::bounds::{Bounds, SlopeBound};
+pub use super::constraints::{Assumption, Constraint, Solution};
 use super::glm::{self, Cell, Family, GlmFit};
+use super::identified::dot;
+pub use super::identified::{CurvatureTest, Effects, Identified};
 use super::{Dimension, Shape, complement_basis, null_vector};
+use super::{bounds, constraints, identified};
 use crate::error::{Error, Result};
 
-const DIMENSIONS: [Dimension; 3] = [Dimension::Age, Dimension::Period, Dimension::Cohort];
-
-/// A just-identifying constraint.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum Constraint {
-    /// Two levels of one dimension have equal effects (1-based levels).
-    Equal {
-        /// Dimension.
-        dimension: Dimension,
-        /// First level.
-        first: usize,
-        /// Second level.
-        second: usize,
-    },
-    /// The linear trend of one dimension is zero.
-    ZeroSlope {
-        /// Dimension.
-        dimension: Dimension,
-    },
-    /// The minimum-norm solution in this coding.
-    MinNorm,
-}
-
-impl Constraint {
-    /// Parse `equal:DIM:L1,L2`, `zero-slope:DIM` or `min-norm`.
-    ///
-    /// # Errors
-    /// [`Error::Spec`] naming `--constraint` for anything else.
-    pub fn parse(s: &str) -> Result<Constraint> {
-        let bad = |m: &str| Error::Spec {
-            parameter: "constraint".into(),
-            message: format!("'{s}': {m}; use equal:age:1,2, zero-slope:period or min-norm"),
-        };
-        let parts: Vec<&str> = s.trim().split(':').collect();
-        match parts.as_slice() {
-            ["min-norm"] => Ok(Constraint::MinNorm),
-            ["zero-slope", d] => Ok(Constraint::ZeroSlope {
-                dimension: Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?,
-            }),
-            ["equal", d, levels] => {
-                let l: Vec<usize> = levels
-                    .split(',')
-                    .map(|x| x.trim().parse().map_err(|_| bad("levels must be whole numbers")))
-                    .collect::<Result<_>>()?;
-                if l.len() != 2 || l[0] == l[1] || l[0] == 0 || l[1] == 0 {
-                    return Err(bad("give two different levels, counted from 1"));
-                }
-                Ok(Constraint::Equal {
-                    dimension: Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?,
-                    first: l[0],
-                    second: l[1],
-                })
-            }
-            _ => Err(bad("not a constraint")),
-        }
-    }
-
-    /// In words.
-    pub fn describe(&self, labels: &Labels) -> String {
-        match self {
-            Constraint::Equal {
-                dimension,
-                first,
-                second,
-            } => {
-                let l = labels.of(*dimension);
-                format!(
-                    "{} effects of {} and {} are equal",
-                    dimension.name(),
-                    l.get(first - 1).cloned().unwrap_or_default(),
-                    l.get(second - 1).cloned().unwrap_or_default()
-                )
-            }
-            Constraint::ZeroSlope { dimension } => format!("the {} effects have no linear trend", dimension.name()),
-            Constraint::MinNorm => "minimum norm, the intrinsic estimator (critique: Luo 2013)".into(),
-        }
-    }
-}
-
-/// An assumption for the bounds.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum Assumption {
-    /// A dimension's linear slope compared with a value: sense is ">=", "<=" or "=".
-    Slope {
-        /// Dimension.
-        dimension: Dimension,
-        /// ">=", "<=" or "=".
-        sense: String,
-        /// The value.
-        value: f64,
-    },
-    /// A dimension's effects never decrease (or never increase).
-    Monotone {
-        /// Dimension.
-        dimension: Dimension,
-        /// True: never decrease.
-        increasing: bool,
-    },
-}
-
-impl Assumption {
-    /// Parse `DIM-slope>=V`, `DIM-slope<=V`, `DIM-slope=V`, `DIM:nondecreasing`
-    /// or `DIM:nonincreasing`.
-    ///
-    /// # Errors
-    /// [`Error::Spec`] naming `--assume`.
-    pub fn parse(s: &str) -> Result<Assumption> {
-        let bad = |m: &str| Error::Spec {
-            parameter: "assume".into(),
-            message: format!("'{s}': {m}; use for example period-slope>=0 or cohort:nondecreasing"),
-        };
-        let t = s.trim();
-        if let Some((d, m)) = t.split_once(':') {
-            let dimension = Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?;
-            return match m {
-                "nondecreasing" => Ok(Assumption::Monotone {
-                    dimension,
-                    increasing: true,
-                }),
-                "nonincreasing" => Ok(Assumption::Monotone {
-                    dimension,
-                    increasing: false,
-                }),
-                _ => Err(bad("unknown shape")),
-            };
-        }
-        for sense in [">=", "<=", "="] {
-            if let Some((lhs, rhs)) = t.split_once(sense) {
-                let d = lhs
-                    .strip_suffix("-slope")
-                    .ok_or_else(|| bad("the left side must be DIM-slope"))?;
-                let dimension = Dimension::parse(d).ok_or_else(|| bad("unknown dimension"))?;
-                let value: f64 = rhs.trim().parse().map_err(|_| bad("the right side must be a number"))?;
-                if !value.is_finite() {
-                    return Err(bad("the right side must be finite"));
-                }
-                return Ok(Assumption::Slope {
-                    dimension,
-                    sense: sense.to_string(),
-                    value,
-                });
-            }
-        }
-        Err(bad("not an assumption"))
-    }
-
-    /// In words.
-    pub fn describe(&self) -> String {
-        match self {
-            Assumption::Slope {
-                dimension,
-                sense,
-                value,
-            } => {
-                let s = match sense.as_str() {
-                    ">=" => "at least",
-                    "<=" => "at most",
-                    _ => "exactly",
-                };
-                format!("the {} slope is {s} {value}", dimension.name())
-            }
-            Assumption::Monotone { dimension, increasing } => format!(
-                "the {} effects never {}",
-                dimension.name(),
-                if *increasing { "decrease" } else { "increase" }
-            ),
-        }
-    }
-}
+pub(super) const DIMENSIONS: [Dimension; 3] = [Dimension::Age, Dimension::Period, Dimension::Cohort];
 
 /// Group labels of each dimension.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -252,82 +85,6 @@ pub struct DevianceRow {
     pub deviance: f64,
     /// Residual df.
     pub df: usize,
-}
-
-/// An identified quantity.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct Identified {
-    /// What it is.
-    pub quantity: String,
-    /// Estimate.
-    pub estimate: f64,
-    /// Standard error.
-    pub se: f64,
-}
-
-/// A Wald test of no curvature in one dimension.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct CurvatureTest {
-    /// Dimension.
-    pub dimension: Dimension,
-    /// χ² (counts) or F (continuous).
-    pub statistic: f64,
-    /// Numerator df: levels − 2.
-    pub df: usize,
-    /// p-value.
-    pub p: f64,
-}
-
-/// Level effects of each dimension (sum to zero within a dimension).
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct Effects {
-    /// Age effects.
-    pub age: Vec<f64>,
-    /// Period effects.
-    pub period: Vec<f64>,
-    /// Cohort effects.
-    pub cohort: Vec<f64>,
-}
-
-/// One constrained solution: b₀ + t·v.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct Solution {
-    /// The constraint in words.
-    pub constraint: String,
-    /// The constraint as given.
-    pub rule: Constraint,
-    /// Its position on the line of solutions.
-    pub t: f64,
-    /// Level effects.
-    pub effects: Effects,
-    /// Linear slopes of the age, period and cohort effects (per group step).
-    pub slopes: Vec<Term>,
-}
-
-/// The bounds that sign or shape assumptions allow.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct Bounds {
-    /// The assumptions in words.
-    pub assumptions: Vec<String>,
-    /// Whether they contradict the data (no t satisfies them all).
-    pub contradiction: bool,
-    /// The interval of t they allow (infinite ends are null).
-    pub t_from: Option<f64>,
-    /// Upper end.
-    pub t_to: Option<f64>,
-    /// Bounds on each linear slope (null ends are unbounded).
-    pub slopes: Vec<SlopeBound>,
-}
-
-/// Bounds on one slope.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct SlopeBound {
-    /// Dimension.
-    pub dimension: Dimension,
-    /// Lowest allowed value.
-    pub from: Option<f64>,
-    /// Highest allowed value.
-    pub to: Option<f64>,
 }
 
 /// The report, with stable JSON keys.
@@ -443,48 +200,6 @@ pub struct PanelView {
     pub text: Vec<String>,
 }
 
-fn dot(a: &[f64], b: &[f64]) -> f64 {
-    a.iter().zip(b).map(|(x, y)| x * y).sum()
-}
-
-fn quad(c: &[f64], cov: &[f64]) -> f64 {
-    let q = c.len();
-    let mut acc = 0.0;
-    for i in 0..q {
-        if c[i] == 0.0 {
-            continue;
-        }
-        acc += c[i] * dot(&cov[i * q..(i + 1) * q], c);
-    }
-    acc
-}
-
-/// Coefficients of the least-squares slope of a dimension's level effects on
-/// the level index, as a functional of the coded parameters.
-fn slope_functional(shape: Shape, d: Dimension) -> Vec<f64> {
-    let rows = shape.effect_rows(d);
-    let l = rows.len() as f64;
-    let mean = (l + 1.0) / 2.0;
-    let sxx: f64 = (1..=rows.len()).map(|i| (i as f64 - mean).powi(2)).sum();
-    let mut c = vec![0.0; shape.n_params()];
-    for (i, r) in rows.iter().enumerate() {
-        let w = (i as f64 + 1.0 - mean) / sxx;
-        for (ck, rk) in c.iter_mut().zip(r) {
-            *ck += w * rk;
-        }
-    }
-    c
-}
-
-fn effects(shape: Shape, b: &[f64]) -> Effects {
-    let of = |d| shape.effect_rows(d).iter().map(|r| dot(r, b)).collect();
-    Effects {
-        age: of(Dimension::Age),
-        period: of(Dimension::Period),
-        cohort: of(Dimension::Cohort),
-    }
-}
-
 /// Full coded rows of every cell, and the rows of the submodels.
 fn submodel_rows(data: &ApcData, cols: &[usize], drift: bool) -> Vec<Vec<f64>> {
     let s = data.shape;
@@ -582,135 +297,8 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         deviance: apc.deviance,
         df: residual_df(data, apc.df, q - 1),
     });
-    // Identified quantities.
-    let mut identified = Vec::new();
-    let push = |id: &mut Vec<Identified>, name: String, c: &[f64]| {
-        id.push(Identified {
-            quantity: name,
-            estimate: dot(c, &b0),
-            se: quad(c, &cov).max(0.0).sqrt(),
-        });
-    };
-    let sl = |d| slope_functional(s, d);
-    let comb = |a: &[f64], b: &[f64], sign: f64| -> Vec<f64> { a.iter().zip(b).map(|(x, y)| x + sign * y).collect() };
-    let (sa, sp, sc) = (sl(Dimension::Age), sl(Dimension::Period), sl(Dimension::Cohort));
-    push(
-        &mut identified,
-        "age slope + period slope (change within a cohort)".into(),
-        &comb(&sa, &sp, 1.0),
-    );
-    push(
-        &mut identified,
-        "age slope − cohort slope (cross-sectional age gradient)".into(),
-        &comb(&sa, &sc, -1.0),
-    );
-    push(
-        &mut identified,
-        "period slope + cohort slope (the drift)".into(),
-        &comb(&sp, &sc, 1.0),
-    );
-    if let Some(f) = &drift_fit {
-        let k = f.coef.len() - 1;
-        identified.push(Identified {
-            quantity: "drift per period step in the A+drift model".into(),
-            estimate: f.coef[k],
-            se: f.cov[k * (k + 1) + k].max(0.0).sqrt(),
-        });
-    }
-    let mut curvature_tests = Vec::new();
-    for d in DIMENSIONS {
-        let rows = s.effect_rows(d);
-        let labels = data.labels.of(d);
-        let mut second: Vec<Vec<f64>> = Vec::new();
-        for l in 1..rows.len() - 1 {
-            let c: Vec<f64> = (0..q)
-                .map(|k| rows[l - 1][k] - 2.0 * rows[l][k] + rows[l + 1][k])
-                .collect();
-            push(
-                &mut identified,
-                format!("{} second difference at {}", d.name(), labels[l]),
-                &c,
-            );
-            second.push(c);
-        }
-        let slope = sl(d);
-        let mean = (rows.len() as f64 + 1.0) / 2.0;
-        for (l, r) in rows.iter().enumerate() {
-            let c: Vec<f64> = (0..q).map(|k| r[k] - (l as f64 + 1.0 - mean) * slope[k]).collect();
-            push(
-                &mut identified,
-                format!("{} deviation from linearity at {}", d.name(), labels[l]),
-                &c,
-            );
-        }
-        curvature_tests.push(curvature_test(d, &second, &b0, &cov, data.family, apc.df));
-    }
-    // Constrained solutions.
-    let list: Vec<Constraint> = if constraints.is_empty() {
-        vec![
-            Constraint::Equal {
-                dimension: Dimension::Age,
-                first: 1,
-                second: 2,
-            },
-            Constraint::Equal {
-                dimension: Dimension::Cohort,
-                first: 1,
-                second: 2,
-            },
-            Constraint::ZeroSlope {
-                dimension: Dimension::Period,
-            },
-            Constraint::MinNorm,
-        ]
-    } else {
-        constraints.to_vec()
-    };
-    let vv = dot(&v, &v);
-    let mut solutions = Vec::new();
-    for c in &list {
-        let t = match c {
-            Constraint::MinNorm => -dot(&b0, &v) / vv,
-            Constraint::ZeroSlope { dimension } => {
-                let f = sl(*dimension);
-                solve_t(&f, &b0, &v, c, &data.labels)?
-            }
-            Constraint::Equal {
-                dimension,
-                first,
-                second,
-            } => {
-                let rows = s.effect_rows(*dimension);
-                if *first > rows.len() || *second > rows.len() {
-                    return Err(Error::Spec {
-                        parameter: "constraint".into(),
-                        message: format!(
-                            "{} has {} levels; level {} does not exist",
-                            dimension.name(),
-                            rows.len(),
-                            first.max(second)
-                        ),
-                    });
-                }
-                let f: Vec<f64> = (0..q).map(|k| rows[first - 1][k] - rows[second - 1][k]).collect();
-                solve_t(&f, &b0, &v, c, &data.labels)?
-            }
-        };
-        let b: Vec<f64> = b0.iter().zip(&v).map(|(x, y)| x + t * y).collect();
-        solutions.push(Solution {
-            constraint: c.describe(&data.labels),
-            rule: c.clone(),
-            t,
-            effects: effects(s, &b),
-            slopes: DIMENSIONS
-                .iter()
-                .map(|&d| Term {
-                    term: d.name().into(),
-                    value: dot(&sl(d), &b),
-                })
-                .collect(),
-        });
-    }
+    let (identified, curvature_tests) = identified::identified(data, &b0, &cov, drift_fit.as_ref(), apc.df);
+    let solutions = constraints::solutions(data, &b0, &v, constraints)?;
     // Fitted values agree across solutions.
     let mut fitted_max_difference: f64 = 0.0;
     let eta = |t: f64| -> Vec<f64> {
@@ -727,7 +315,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
     let bounds = if assumptions.is_empty() {
         None
     } else {
-        Some(bounds(s, &b0, &v, assumptions))
+        Some(bounds::bounds(s, &b0, &v, assumptions))
     };
     let mut notes = vec![
         "Age, period and cohort are exactly collinear (cohort = period − age): the linear trends of the three are not \
@@ -805,20 +393,6 @@ pub fn term_names(s: Shape) -> Vec<String> {
     v
 }
 
-fn solve_t(f: &[f64], b0: &[f64], v: &[f64], c: &Constraint, labels: &Labels) -> Result<f64> {
-    let fv = dot(f, v);
-    if fv.abs() < 1e-9 {
-        return Err(Error::Spec {
-            parameter: "constraint".into(),
-            message: format!(
-                "'{}' does not identify the model: it holds along the whole line of solutions",
-                c.describe(labels)
-            ),
-        });
-    }
-    Ok(-dot(f, b0) / fv)
-}
-
 /// Numerical rank deficiency of the weighted APC design: eigenvalues of XᵀWX
 /// below 1e-10 of the largest.
 fn rank_deficiency(shape: Shape, cells: &[Cell], fit: &GlmFit, family: Family) -> usize {
@@ -850,145 +424,6 @@ fn rank_deficiency(shape: Shape, cells: &[Cell], fit: &GlmFit, family: Family) -
     };
     let top = values.iter().cloned().fold(0.0, f64::max);
     values.iter().filter(|&&e| e < 1e-10 * top).count()
-}
-
-fn curvature_test(
-    d: Dimension,
-    rows: &[Vec<f64>],
-    b: &[f64],
-    cov: &[f64],
-    family: Family,
-    df_resid: usize,
-) -> CurvatureTest {
-    let m = rows.len();
-    let est: Vec<f64> = rows.iter().map(|r| dot(r, b)).collect();
-    let q = b.len();
-    let lcl = faer::Mat::from_fn(m, m, |i, j| {
-        let mut acc = 0.0;
-        for a in 0..q {
-            if rows[i][a] == 0.0 {
-                continue;
-            }
-            acc += rows[i][a] * dot(&cov[a * q..(a + 1) * q], &rows[j]);
-        }
-        acc
-    });
-    let stat = match lcl.llt(faer::Side::Lower) {
-        Ok(llt) => {
-            let rhs = faer::Mat::from_fn(m, 1, |i, _| est[i]);
-            let sol = llt.solve(&rhs);
-            (0..m).map(|i| est[i] * sol[(i, 0)]).sum::<f64>()
-        }
-        Err(_) => f64::NAN,
-    };
-    // statrs panics outside the support, so non-finite statistics (a perfect
-    // fit has no residual variance) are handled here.
-    let tail = |x: f64, cdf: &dyn Fn(f64) -> f64| {
-        if x.is_nan() {
-            f64::NAN
-        } else if x == f64::INFINITY {
-            0.0
-        } else {
-            1.0 - cdf(x.max(0.0))
-        }
-    };
-    let (statistic, p) = match family {
-        Family::Poisson => (
-            stat,
-            ChiSquared::new(m as f64).map_or(f64::NAN, |c| tail(stat, &|x| c.cdf(x))),
-        ),
-        Family::Gaussian => {
-            let f = stat / m as f64;
-            (
-                f,
-                FisherSnedecor::new(m as f64, df_resid.max(1) as f64).map_or(f64::NAN, |c| tail(f, &|x| c.cdf(x))),
-            )
-        }
-    };
-    CurvatureTest {
-        dimension: d,
-        statistic,
-        df: m,
-        p,
-    }
-}
-
-/// The interval of t that the assumptions allow, and the slopes' bounds.
-fn bounds(s: Shape, b0: &[f64], v: &[f64], assumptions: &[Assumption]) -> Bounds {
-    // Each assumption: g(t) = g0 + t·gv compared with a value.
-    let mut lo = f64::NEG_INFINITY;
-    let mut hi = f64::INFINITY;
-    let mut contradiction = false;
-    let mut apply = |g0: f64, gv: f64, sense: &str, value: f64| {
-        let r = value - g0;
-        const FLAT: f64 = 1e-12;
-        if gv.abs() < FLAT {
-            let holds = match sense {
-                ">=" => g0 >= value - 1e-12,
-                "<=" => g0 <= value + 1e-12,
-                _ => (g0 - value).abs() <= 1e-9,
-            };
-            contradiction |= !holds;
-            return;
-        }
-        let t = r / gv;
-        match (sense, gv > 0.0) {
-            (">=", true) | ("<=", false) => lo = lo.max(t),
-            (">=", false) | ("<=", true) => hi = hi.min(t),
-            _ => {
-                lo = lo.max(t);
-                hi = hi.min(t);
-            }
-        }
-    };
-    for a in assumptions {
-        match a {
-            Assumption::Slope {
-                dimension,
-                sense,
-                value,
-            } => {
-                let f = slope_functional(s, *dimension);
-                apply(dot(&f, b0), dot(&f, v), sense, *value);
-            }
-            Assumption::Monotone { dimension, increasing } => {
-                let rows = s.effect_rows(*dimension);
-                for l in 0..rows.len() - 1 {
-                    let f: Vec<f64> = rows[l + 1].iter().zip(&rows[l]).map(|(x, y)| x - y).collect();
-                    apply(dot(&f, b0), dot(&f, v), if *increasing { ">=" } else { "<=" }, 0.0);
-                }
-            }
-        }
-    }
-    if lo > hi + 1e-9 * (1.0 + lo.abs().max(hi.abs())) {
-        contradiction = true;
-    }
-    let finite = |x: f64| if x.is_finite() { Some(x) } else { None };
-    let slopes = DIMENSIONS
-        .iter()
-        .map(|&d| {
-            let f = slope_functional(s, d);
-            let (g0, gv) = (dot(&f, b0), dot(&f, v));
-            let ends = [g0 + lo * gv, g0 + hi * gv];
-            let (mut from, mut to) = (ends[0].min(ends[1]), ends[0].max(ends[1]));
-            if gv.abs() < 1e-12 {
-                from = g0;
-                to = g0;
-            }
-            SlopeBound {
-                dimension: d,
-                from: if contradiction { None } else { finite(from) },
-                to: if contradiction { None } else { finite(to) },
-            }
-        })
-        .collect();
-    Bounds {
-        assumptions: assumptions.iter().map(Assumption::describe).collect(),
-        contradiction,
-        t_from: if contradiction { None } else { finite(lo) },
-        t_to: if contradiction { None } else { finite(hi) },
-        slopes,
-    }
 }
 
 fn panel_view(ids: &[u32], table: &[DevianceRow]) -> PanelView {

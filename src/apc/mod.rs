@@ -16,8 +16,11 @@
 //! full rank), so b₀ = Bγ̂ and cov(b₀) = B cov(γ̂) Bᵀ.
 
 pub mod analysis;
+mod bounds;
+mod constraints;
 pub mod glm;
 pub mod hierarchical;
+mod identified;
 pub mod identify;
 pub mod intake;
 
