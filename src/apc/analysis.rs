@@ -317,29 +317,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
     } else {
         Some(bounds::bounds(s, &b0, &v, assumptions))
     };
-    let mut notes = vec![
-        "Age, period and cohort are exactly collinear (cohort = period − age): the linear trends of the three are not \
-         identified, and each constrained solution rests on its constraint, which the data cannot test (Holford 1983)."
-            .to_string(),
-        "Identified without any constraint: fitted values, second differences, deviations from linearity, the \
-         drift, and the sums age + period, period + cohort and the difference age − cohort of the linear slopes."
-            .to_string(),
-        "The solutions differ only by t·v along one line in parameter space; the report gives each constraint's t."
-            .to_string(),
-        "The minimum-norm solution (the intrinsic estimator) is a constraint like any other: it depends on the coding \
-         and on the numbers of groups, not on the data (Luo 2013, Demography 50)."
-            .to_string(),
-        "Associations are not causes: age, period and cohort effects describe these data, not mechanisms.".into(),
-    ];
-    if data.family == Family::Gaussian {
-        notes.push(
-            "A continuous outcome is fitted by least squares with one residual variance; records are independent."
-                .into(),
-        );
-    }
-    if bounds.is_some() {
-        notes.push("The bounds are on the estimates and take the stated assumptions as true; they carry no sampling uncertainty.".into());
-    }
+    let notes = assumptions_of(data.family, bounds.is_some());
     Ok(ApcReport {
         data: crate::data::DataSummary::default(),
         options: super::ApcOptions::default(),
@@ -373,6 +351,34 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         panel,
         cohort_check: None,
     })
+}
+
+/// What every number of the report rests on, in words.
+fn assumptions_of(family: Family, with_bounds: bool) -> Vec<String> {
+    let mut notes = vec![
+        "Age, period and cohort are exactly collinear (cohort = period − age): the linear trends of the three are not \
+         identified, and each constrained solution rests on its constraint, which the data cannot test (Holford 1983)."
+            .to_string(),
+        "Identified without any constraint: fitted values, second differences, deviations from linearity, the \
+         drift, and the sums age + period, period + cohort and the difference age − cohort of the linear slopes."
+            .to_string(),
+        "The solutions differ only by t·v along one line in parameter space; the report gives each constraint's t."
+            .to_string(),
+        "The minimum-norm solution (the intrinsic estimator) is a constraint like any other: it depends on the coding \
+         and on the numbers of groups, not on the data (Luo 2013, Demography 50)."
+            .to_string(),
+        "Associations are not causes: age, period and cohort effects describe these data, not mechanisms.".into(),
+    ];
+    if family == Family::Gaussian {
+        notes.push(
+            "A continuous outcome is fitted by least squares with one residual variance; records are independent."
+                .into(),
+        );
+    }
+    if with_bounds {
+        notes.push("The bounds are on the estimates and take the stated assumptions as true; they carry no sampling uncertainty.".into());
+    }
+    notes
 }
 
 fn residual_df(data: &ApcData, _glm_df: usize, q: usize) -> usize {

@@ -16,8 +16,10 @@
 use std::cell::RefCell;
 
 use super::crossprod::CrossProducts;
-use super::fit::{RandomComponent, base_start, factor_covariance, row_scales};
+use super::fit::RandomComponent;
 use super::optimize::{self, OptimOptions};
+use super::solution::factor_covariance;
+use super::start::{base_start, row_scales};
 use super::{Method, MixedProblem, criterion, unpack_factor};
 use crate::error::{Error, Result};
 

@@ -23,6 +23,10 @@ pub mod crossprod;
 pub mod fit;
 pub mod grouped;
 pub mod optimize;
+mod search;
+mod sensitivity;
+mod solution;
+mod start;
 
 pub use fit::{Fit, FitInfo, FitOptions, RandomComponent, fit};
 

@@ -1,0 +1,207 @@
+//! The solution at the optimum: fixed effects and their covariance, the
+//! predicted random effects, fitted values and the variance components.
+
+use faer::Mat;
+
+use super::MixedProblem;
+use super::criterion::{self, Factor};
+use super::crossprod::CrossProducts;
+use super::fit::RandomComponent;
+
+/// Solve the PLS system `Lᵀx = l_y` for `[u₂, β]`, then each `u₁ᵢ`.
+/// Returns β and the spherical random effects u per term (problem order, flat).
+pub(super) fn solve_pls(cp: &CrossProducts, f: &Factor) -> (Vec<f64>, Vec<Vec<f64>>) {
+    let m = cp.m;
+    let k = m - 1;
+    let l = &f.dense_l;
+    let mut x = vec![0.0; k];
+    for i in (0..k).rev() {
+        let mut v = l[(k, i)];
+        for j in i + 1..k {
+            v -= l[(j, i)] * x[j];
+        }
+        x[i] = v / l[(i, i)];
+    }
+    let q2 = cp.q2_total;
+    let mut beta = x[q2..q2 + cp.p].to_vec();
+    if let Some(j) = cp.intercept {
+        beta[j] += cp.y_shift;
+    }
+    let mut u = vec![Vec::new(); cp.term_q.len()];
+    for (s, &kt) in cp.secondary.iter().enumerate() {
+        let end = if s + 1 < cp.secondary.len() {
+            cp.secondary_offset[s + 1]
+        } else {
+            q2
+        };
+        u[kt] = x[cp.secondary_offset[s]..end].to_vec();
+    }
+    if let Some(k1) = cp.primary {
+        let q1 = cp.q1;
+        let mut u1 = vec![0.0; cp.n1 * q1];
+        let mut rhs = vec![0.0; q1];
+        for i in 0..cp.n1 {
+            let (cols, w) = f.blocks_w.level(i);
+            let nc = cols.len();
+            let li = &f.blocks_l[i * q1 * q1..(i + 1) * q1 * q1];
+            for r in 0..q1 {
+                let mut v = 0.0;
+                for (c, &dc) in cols.iter().enumerate() {
+                    if dc == m - 1 {
+                        v += w[r * nc + c];
+                    } else {
+                        v -= w[r * nc + c] * x[dc];
+                    }
+                }
+                rhs[r] = v;
+            }
+            // Lᵢᵀ u = rhs (back substitution).
+            for r in (0..q1).rev() {
+                let mut v = rhs[r];
+                for s in r + 1..q1 {
+                    v -= li[s * q1 + r] * u1[i * q1 + s];
+                }
+                u1[i * q1 + r] = v / li[r * q1 + r];
+            }
+        }
+        u[k1] = u1;
+    }
+    (beta, u)
+}
+
+/// `σ²(L_X L_Xᵀ)⁻¹` from the fixed block of the dense factor.
+pub(super) fn fixed_cov(f: &Factor, q2: usize, p: usize, sigma2: f64) -> Vec<f64> {
+    let lx = Mat::from_fn(p, p, |i, j| f.dense_l[(q2 + i, q2 + j)]);
+    let inv = lower_inverse(&lx);
+    let mut c = vec![0.0; p * p];
+    for i in 0..p {
+        for j in 0..p {
+            let mut acc = 0.0;
+            for k in i.max(j)..p {
+                acc += inv[(k, i)] * inv[(k, j)];
+            }
+            c[i * p + j] = sigma2 * acc;
+        }
+    }
+    c
+}
+
+/// Inverse of a lower-triangular matrix by forward substitution.
+pub(super) fn lower_inverse(l: &Mat<f64>) -> Mat<f64> {
+    let p = l.nrows();
+    let mut inv = Mat::<f64>::zeros(p, p);
+    for j in 0..p {
+        inv[(j, j)] = 1.0 / l[(j, j)];
+        for i in j + 1..p {
+            let mut v = 0.0;
+            for k in j..i {
+                v -= l[(i, k)] * inv[(k, j)];
+            }
+            inv[(i, j)] = v / l[(i, i)];
+        }
+    }
+    inv
+}
+
+type Conditional = (Vec<Vec<Vec<f64>>>, Vec<f64>, Vec<f64>);
+
+/// BLUPs b = Λu per term and level, conditional and marginal fitted values.
+pub(super) fn conditional(
+    problem: &MixedProblem,
+    cp: &CrossProducts,
+    theta: &[f64],
+    beta: &[f64],
+    u: &[Vec<f64>],
+) -> Conditional {
+    let t = criterion::factors(cp, theta);
+    let mut blups = Vec::with_capacity(problem.terms.len());
+    for (k, term) in problem.terms.iter().enumerate() {
+        let q = term.q();
+        let tk = &t[k];
+        let per_level: Vec<Vec<f64>> = (0..term.n_levels())
+            .map(|lvl| {
+                let uu = &u[k][lvl * q..(lvl + 1) * q];
+                (0..q).map(|r| (0..=r).map(|c| tk[r * q + c] * uu[c]).sum()).collect()
+            })
+            .collect();
+        blups.push(per_level);
+    }
+    let p = problem.p();
+    let n = problem.n();
+    let mut fitted = vec![0.0; n];
+    let mut marginal = vec![0.0; n];
+    for r in 0..n {
+        let xr = &problem.x[r * p..(r + 1) * p];
+        let xb: f64 = xr.iter().zip(beta).map(|(a, b)| a * b).sum();
+        marginal[r] = xb;
+        let mut zb = 0.0;
+        for (k, term) in problem.terms.iter().enumerate() {
+            let b = &blups[k][term.level[r] as usize];
+            for (c, bc) in b.iter().enumerate() {
+                zb += term.z[c][r] * bc;
+            }
+        }
+        fitted[r] = xb + zb;
+    }
+    (blups, fitted, marginal)
+}
+
+pub(super) fn components(
+    problem: &MixedProblem,
+    cp: &CrossProducts,
+    theta: &[f64],
+    sigma2: f64,
+) -> Vec<RandomComponent> {
+    let t = criterion::factors(cp, theta);
+    problem
+        .terms
+        .iter()
+        .enumerate()
+        .map(|(k, term)| RandomComponent::from_factor(term, &t[k], sigma2))
+        .collect()
+}
+
+impl RandomComponent {
+    /// The component of `term` whose relative factor is `t` (q×q lower,
+    /// row-major): covariance σ²TTᵀ, SDs and correlations (NaN where an SD
+    /// is zero).
+    pub(super) fn from_factor(term: &super::RandomTermData, t: &[f64], sigma2: f64) -> RandomComponent {
+        let q = term.q();
+        let covariance = factor_covariance(t, q, sigma2);
+        let sd: Vec<f64> = (0..q).map(|i| covariance[i][i].max(0.0).sqrt()).collect();
+        let correlation = (0..q)
+            .map(|i| {
+                (0..q)
+                    .map(|j| {
+                        if i == j {
+                            1.0
+                        } else if sd[i] > 0.0 && sd[j] > 0.0 {
+                            covariance[i][j] / (sd[i] * sd[j])
+                        } else {
+                            f64::NAN
+                        }
+                    })
+                    .collect()
+            })
+            .collect();
+        RandomComponent {
+            factor: term.factor.clone(),
+            terms: term.columns.clone(),
+            n_levels: term.n_levels(),
+            covariance,
+            sd,
+            correlation,
+        }
+    }
+}
+
+/// σ²TTᵀ for a q×q lower-triangular factor T (row-major).
+pub(super) fn factor_covariance(t: &[f64], q: usize, sigma2: f64) -> Vec<Vec<f64>> {
+    (0..q)
+        .map(|i| {
+            (0..q)
+                .map(|j| sigma2 * (0..q).map(|c| t[i * q + c] * t[j * q + c]).sum::<f64>())
+                .collect()
+        })
+        .collect()
+}
