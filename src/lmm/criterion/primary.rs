@@ -1,0 +1,487 @@
+//! The primary term's block-diagonal factorisation, level by level: a kernel
+//! for each small fixed number of coefficients, a general one, and the
+//! parallel split over levels.
+
+// Index loops mirror the matrix notation of the derivation.
+#![allow(clippy::needless_range_loop)]
+
+use super::super::crossprod::CrossProducts;
+use super::*;
+
+/// The primary levels for q₁ = Q, with fixed-size arrays so the small
+/// products unroll.
+pub(super) fn primary_fixed<const Q: usize>(
+    cp: &CrossProducts,
+    t1: &[f64],
+    t: &[Vec<f64>],
+    e: &mut [f64],
+    keep: bool,
+) -> PrimaryOut {
+    let m = cp.m;
+    let p = cp.p;
+    let q2 = cp.q2_total;
+    let mut tq = [[0.0f64; Q]; Q];
+    for r in 0..Q {
+        for c in 0..Q {
+            tq[r][c] = t1[r * Q + c];
+        }
+    }
+    let (logdet, xy, blocks_l, blocks_w) = if keep || cp.n1 < PARALLEL_LEVELS {
+        primary_range::<Q>(cp, &tq, t, e, 0..cp.n1, keep)
+    } else {
+        // Fixed chunks, summed in chunk order: the result does not depend on
+        // how many threads run them.
+        use rayon::prelude::*;
+        let linked = !cp.links.is_empty();
+        let parts: Vec<(f64, Vec<f64>, Vec<f64>)> = (0..CHUNKS)
+            .into_par_iter()
+            .map(|c| {
+                let range = c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS;
+                let mut local = if linked { vec![0.0; m * m] } else { Vec::new() };
+                let (ld, xy, _, _) = primary_range::<Q>(cp, &tq, t, &mut local, range, false);
+                (ld, xy, local)
+            })
+            .collect();
+        let mut logdet = 0.0;
+        let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
+        for (ld, part_xy, local) in parts {
+            logdet += ld;
+            xy.iter_mut().zip(&part_xy).for_each(|(a, b)| *a += b);
+            e.iter_mut().zip(&local).for_each(|(a, b)| *a += b);
+        }
+        (logdet, xy, Vec::new(), KeptW::default())
+    };
+    for a in 0..=p {
+        for b in 0..=a {
+            e[(q2 + a) * m + q2 + b] -= xy[a * (a + 1) / 2 + b];
+        }
+    }
+    (logdet, blocks_l, blocks_w)
+}
+
+/// Above this many primary levels a search evaluation runs in parallel.
+pub(super) const PARALLEL_LEVELS: usize = 2000;
+
+/// The number of chunks the primary levels are split into when in parallel.
+pub(super) const CHUNKS: usize = 4;
+
+/// Blocks L and W of the kept primary levels.
+type Kept = (Vec<f64>, KeptW);
+
+/// log|L|² of a range of levels, its X–y block, and its kept blocks.
+type RangeOut = (f64, Vec<f64>, Vec<f64>, KeptW);
+
+/// The primary levels in `range`: subtracts each level's link-column terms
+/// from `e` and returns log|L|² of the range, the range's X–y block of
+/// Σ WᵢᵀWᵢ (packed lower triangle, not yet subtracted) and the kept blocks.
+pub(super) fn primary_range<const Q: usize>(
+    cp: &CrossProducts,
+    tq: &[[f64; Q]; Q],
+    t: &[Vec<f64>],
+    e: &mut [f64],
+    range: std::ops::Range<usize>,
+    keep: bool,
+) -> RangeOut {
+    let m = cp.m;
+    let p = cp.p;
+    let q2 = cp.q2_total;
+    let tq = *tq;
+    let mut logdet = LogDet::new();
+    let (mut blocks_l, mut blocks_w): Kept = (Vec::new(), KeptW::default());
+    if keep {
+        blocks_l.reserve(range.len() * Q * Q);
+        blocks_w = KeptW::with_capacity(Q, range.len(), p + 2);
+    }
+    // The X–y block of Σ WᵢᵀWᵢ, packed lower triangle.
+    let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
+    let mut cols: Vec<usize> = Vec::with_capacity(p + 8);
+    let mut w: Vec<[f64; Q]> = Vec::with_capacity(p + 8);
+    // The X–y columns present at this level (ascending within 0..=p).
+    let mut present: Vec<usize> = Vec::with_capacity(p + 1);
+    for i in range {
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let (_, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
+        // Columns of B = Tᵀ Z₁ᵢᵀ [Z₂Λ₂ X y], then W = L⁻¹ B.
+        cols.clear();
+        w.clear();
+        let (lo, hi) = cp.link_ranges[i];
+        for link in &cp.links[lo..hi] {
+            let kt = cp.secondary[link.secondary];
+            let qs = cp.term_q[kt];
+            let ts = &t[kt];
+            let v = &cp.link_values[link.start..link.start + Q * qs];
+            for c in 0..qs {
+                let mut raw = [0.0f64; Q];
+                for (r, rv) in raw.iter_mut().enumerate() {
+                    let mut acc = 0.0;
+                    for s in c..qs {
+                        acc += v[r * qs + s] * ts[s * qs + c];
+                    }
+                    *rv = acc;
+                }
+                cols.push(link.offset + c);
+                w.push(raw);
+            }
+        }
+        let zi = &cp.zxy[i * Q * (p + 1)..(i + 1) * Q * (p + 1)];
+        // A column of Zᵢᵀ[X y] that is exactly zero (an indicator of another
+        // cohort, say) adds nothing to WᵀW, so it is left out.
+        present.clear();
+        for c in 0..=p {
+            let mut raw = [0.0f64; Q];
+            for (r, rv) in raw.iter_mut().enumerate() {
+                *rv = zi[r * (p + 1) + c];
+            }
+            if raw.iter().all(|v| *v == 0.0) {
+                continue;
+            }
+            present.push(c);
+            cols.push(q2 + c);
+            w.push(raw);
+        }
+        for col in w.iter_mut() {
+            // b = Tᵀ raw (T lower, so Tᵀ upper).
+            let mut b = [0.0f64; Q];
+            for r in 0..Q {
+                let mut acc = 0.0;
+                for s in r..Q {
+                    acc += tq[s][r] * col[s];
+                }
+                b[r] = acc;
+            }
+            // Forward substitution L x = b.
+            for r in 0..Q {
+                let mut acc = b[r];
+                for k in 0..r {
+                    acc -= l[r][k] * b[k];
+                }
+                b[r] = acc * inv[r];
+            }
+            *col = b;
+        }
+        // S −= WᵀW on the lower triangle; `cols` ascend, the last columns
+        // are the X and y columns present, whose block is summed locally.
+        let n_link = cols.len() - present.len();
+        for a in 0..n_link {
+            let row = &mut e[cols[a] * m..cols[a] * m + m];
+            let wa = w[a];
+            for b in 0..=a {
+                row[cols[b]] -= dot::<Q>(&wa, &w[b]);
+            }
+        }
+        for (ia, &a) in present.iter().enumerate() {
+            let wa = w[n_link + ia];
+            if n_link > 0 {
+                let row = &mut e[(q2 + a) * m..(q2 + a) * m + m];
+                for b in 0..n_link {
+                    row[cols[b]] -= dot::<Q>(&wa, &w[b]);
+                }
+            }
+            let acc = &mut xy[a * (a + 1) / 2..a * (a + 1) / 2 + a + 1];
+            for (ib, &b) in present[..=ia].iter().enumerate() {
+                acc[b] += dot::<Q>(&wa, &w[n_link + ib]);
+            }
+        }
+        if keep {
+            for r in 0..Q {
+                for c in 0..Q {
+                    blocks_l.push(l[r][c]);
+                }
+            }
+            let nc = cols.len();
+            blocks_w.push_with(&cols, |vals| {
+                for (c, col) in w.iter().enumerate() {
+                    for r in 0..Q {
+                        vals[r * nc + c] = col[r];
+                    }
+                }
+            });
+        }
+    }
+    (logdet.total(), xy, blocks_l, blocks_w)
+}
+
+/// One primary level's block: `GT = Gᵢ T`, and `L`, the Cholesky factor of
+/// `A = TᵀGᵢT + I` (positive definite, since A ≥ I), with its reciprocal
+/// pivots; the pivots go into `logdet`.
+#[inline(always)]
+pub(super) fn level_block<const Q: usize>(
+    gi: &[f64],
+    tq: &[[f64; Q]; Q],
+    logdet: &mut LogDet,
+) -> ([[f64; Q]; Q], [[f64; Q]; Q], [f64; Q]) {
+    let mut gt = [[0.0f64; Q]; Q];
+    for r in 0..Q {
+        for c in 0..Q {
+            let mut acc = 0.0;
+            for s in c..Q {
+                acc += gi[r * Q + s] * tq[s][c];
+            }
+            gt[r][c] = acc;
+        }
+    }
+    let mut l = [[0.0f64; Q]; Q];
+    // Reciprocal pivots: divisions are replaced by multiplications.
+    let mut inv = [0.0f64; Q];
+    for j in 0..Q {
+        for r in j..Q {
+            let mut acc = if r == j { 1.0 } else { 0.0 };
+            for s in r..Q {
+                acc += tq[s][r] * gt[s][j];
+            }
+            // acc = A[r][j]; Cholesky column j.
+            for k in 0..j {
+                acc -= l[r][k] * l[j][k];
+            }
+            if r == j {
+                let d = acc.sqrt();
+                l[j][j] = d;
+                inv[j] = 1.0 / d;
+                logdet.push(d);
+            } else {
+                l[r][j] = acc * inv[j];
+            }
+        }
+    }
+    (gt, l, inv)
+}
+
+#[inline(always)]
+pub(super) fn dot<const Q: usize>(a: &[f64; Q], b: &[f64; Q]) -> f64 {
+    let mut acc = 0.0;
+    for r in 0..Q {
+        acc += a[r] * b[r];
+    }
+    acc
+}
+
+/// The primary levels for any q₁.
+pub(super) fn primary_general(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64], keep: bool) -> PrimaryOut {
+    let m = cp.m;
+    let p = cp.p;
+    let q2 = cp.q2_total;
+    let mut logdet = LogDet::new();
+    let mut blocks_l = Vec::new();
+    let mut blocks_w = KeptW::default();
+    {
+        let q1 = cp.q1;
+        let mut a = vec![0.0; q1 * q1];
+        let mut tmp = vec![0.0; q1 * q1];
+        let mut l = vec![0.0; q1 * q1];
+        let mut cols: Vec<usize> = Vec::new();
+        let mut wv: Vec<f64> = Vec::new();
+        let mut bt: Vec<f64> = Vec::new();
+        if keep {
+            blocks_l.reserve(cp.n1 * q1 * q1);
+            blocks_w = KeptW::with_capacity(q1, cp.n1, cp.p + 2);
+        }
+        for i in 0..cp.n1 {
+            // A = T₁ᵀ Gᵢ T₁ + I.
+            let gi = &cp.g[i * q1 * q1..(i + 1) * q1 * q1];
+            for r in 0..q1 {
+                for c in 0..q1 {
+                    let mut acc = 0.0;
+                    for s in c..q1 {
+                        acc += gi[r * q1 + s] * t1[s * q1 + c];
+                    }
+                    tmp[r * q1 + c] = acc;
+                }
+            }
+            for r in 0..q1 {
+                for c in 0..=r {
+                    let mut acc = 0.0;
+                    for s in r..q1 {
+                        acc += t1[s * q1 + r] * tmp[s * q1 + c];
+                    }
+                    a[r * q1 + c] = acc + if r == c { 1.0 } else { 0.0 };
+                }
+            }
+            // Small Cholesky; A ≥ I so it cannot fail.
+            for j in 0..q1 {
+                let mut d = a[j * q1 + j];
+                for s in 0..j {
+                    d -= l[j * q1 + s] * l[j * q1 + s];
+                }
+                let d = d.sqrt();
+                l[j * q1 + j] = d;
+                logdet.push(d);
+                for r in j + 1..q1 {
+                    let mut v = a[r * q1 + j];
+                    for s in 0..j {
+                        v -= l[r * q1 + s] * l[j * q1 + s];
+                    }
+                    l[r * q1 + j] = v / d;
+                }
+                for r in 0..j {
+                    l[r * q1 + j] = 0.0;
+                }
+            }
+            // B = T₁ᵀ [Vᵢ T_s ... | Zᵢᵀ X y], columns gathered with their dense index.
+            cols.clear();
+            bt.clear();
+            let (lo, hi) = cp.link_ranges[i];
+            let mut ncols = 0;
+            for link in &cp.links[lo..hi] {
+                ncols += cp.term_q[cp.secondary[link.secondary]];
+            }
+            ncols += p + 1;
+            bt.resize(q1 * ncols, 0.0);
+            let mut col = 0;
+            for link in &cp.links[lo..hi] {
+                let kt = cp.secondary[link.secondary];
+                let qs = cp.term_q[kt];
+                let ts = &t[kt];
+                let v = &cp.link_values[link.start..link.start + q1 * qs];
+                for c in 0..qs {
+                    cols.push(link.offset + c);
+                    for r in 0..q1 {
+                        // (V T_s)[r, c]
+                        let mut acc = 0.0;
+                        for s in c..qs {
+                            acc += v[r * qs + s] * ts[s * qs + c];
+                        }
+                        bt[r * ncols + col + c] = acc;
+                    }
+                }
+                col += qs;
+            }
+            let zi = &cp.zxy[i * q1 * (p + 1)..(i + 1) * q1 * (p + 1)];
+            for c in 0..=p {
+                cols.push(q2 + c);
+                for r in 0..q1 {
+                    bt[r * ncols + col + c] = zi[r * (p + 1) + c];
+                }
+            }
+            // Left-multiply by T₁ᵀ (upper triangular), in place row by row.
+            wv.clear();
+            wv.resize(q1 * ncols, 0.0);
+            for r in 0..q1 {
+                for s in r..q1 {
+                    let f = t1[s * q1 + r];
+                    if f != 0.0 {
+                        for c in 0..ncols {
+                            wv[r * ncols + c] += f * bt[s * ncols + c];
+                        }
+                    }
+                }
+            }
+            // W = L⁻¹ B (forward substitution).
+            for r in 0..q1 {
+                for s in 0..r {
+                    let f = l[r * q1 + s];
+                    if f != 0.0 {
+                        for c in 0..ncols {
+                            wv[r * ncols + c] -= f * wv[s * ncols + c];
+                        }
+                    }
+                }
+                let d = l[r * q1 + r];
+                for c in 0..ncols {
+                    wv[r * ncols + c] /= d;
+                }
+            }
+            // S −= WᵀW on the lower triangle.
+            for ca in 0..ncols {
+                let ia = cols[ca];
+                for cb in 0..ncols {
+                    let ib = cols[cb];
+                    if ib > ia {
+                        continue;
+                    }
+                    let mut acc = 0.0;
+                    for r in 0..q1 {
+                        acc += wv[r * ncols + ca] * wv[r * ncols + cb];
+                    }
+                    e[ia * m + ib] -= acc;
+                }
+            }
+            if keep {
+                blocks_l.extend_from_slice(&l);
+                blocks_w.push_with(&cols, |vals| vals.copy_from_slice(&wv));
+            }
+        }
+    }
+    (logdet.total(), blocks_l, blocks_w)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::lmm::{MixedProblem, RandomTermData};
+    use crate::simulate::Rng;
+
+    fn problem(q1: usize) -> MixedProblem {
+        let mut rng = Rng::new(5);
+        let n = 300;
+        let mut y = Vec::new();
+        let mut x = Vec::new();
+        let mut z1 = vec![Vec::new(); q1];
+        let mut lvl1 = Vec::new();
+        let mut lvl2 = Vec::new();
+        for r in 0..n {
+            y.push(rng.normal());
+            x.extend([1.0, rng.normal()]);
+            for c in 0..q1 {
+                z1[c].push(if c == 0 { 1.0 } else { rng.normal() });
+            }
+            lvl1.push((r / 3) as u32);
+            lvl2.push((rng.uniform() * 7.0) as u32);
+        }
+        MixedProblem {
+            y,
+            x_names: vec!["a".into(), "b".into()],
+            x,
+            terms: vec![
+                RandomTermData {
+                    factor: "p".into(),
+                    level_names: (0..100).map(|i| i.to_string()).collect(),
+                    level: lvl1,
+                    columns: (0..q1).map(|c| c.to_string()).collect(),
+                    z: z1,
+                },
+                RandomTermData {
+                    factor: "s".into(),
+                    level_names: (0..7).map(|i| i.to_string()).collect(),
+                    level: lvl2,
+                    columns: vec!["i".into()],
+                    z: vec![vec![1.0; n]],
+                },
+            ],
+        }
+    }
+
+    // The fixed-size kernel and the general kernel are two codings of one
+    // algorithm: they must agree to rounding on every output.
+    #[test]
+    fn fixed_and_general_kernels_agree() {
+        for q1 in 1..=4 {
+            let prob = problem(q1);
+            let cp = CrossProducts::new(&prob);
+            let mut rng = Rng::new(9);
+            let theta: Vec<f64> = (0..prob.n_theta()).map(|_| 0.2 + rng.uniform()).collect();
+            let t = factors(&cp, &theta);
+            let k1 = cp.primary.unwrap();
+            let mut e1 = cp.dense.clone();
+            let mut e2 = cp.dense.clone();
+            let a = match q1 {
+                1 => primary_fixed::<1>(&cp, &t[k1], &t, &mut e1, true),
+                2 => primary_fixed::<2>(&cp, &t[k1], &t, &mut e1, true),
+                3 => primary_fixed::<3>(&cp, &t[k1], &t, &mut e1, true),
+                _ => primary_fixed::<4>(&cp, &t[k1], &t, &mut e1, true),
+            };
+            let b = primary_general(&cp, &t[k1], &t, &mut e2, true);
+            assert!(
+                (a.0 - b.0).abs() < 1e-9 * b.0.abs().max(1.0),
+                "q1 {q1}: {} vs {}",
+                a.0,
+                b.0
+            );
+            let m = cp.m;
+            for i in 0..m {
+                for j in 0..=i {
+                    assert!((e1[i * m + j] - e2[i * m + j]).abs() < 1e-9, "q1 {q1} S[{i},{j}]");
+                }
+            }
+        }
+    }
+}
