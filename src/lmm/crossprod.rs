@@ -88,20 +88,13 @@ impl CrossProducts {
         let n = problem.n();
         let p = problem.p();
         let terms = &problem.terms;
-        let primary = (0..terms.len()).max_by_key(|&k| (terms[k].n_levels(), usize::MAX - k));
-        let mut theta_offset = Vec::with_capacity(terms.len());
-        let mut acc = 0;
-        for t in terms {
-            theta_offset.push(acc);
-            acc += t.n_theta();
-        }
-        let secondary: Vec<usize> = (0..terms.len()).filter(|&k| Some(k) != primary).collect();
-        let mut secondary_offset = Vec::with_capacity(secondary.len());
-        let mut q2_total = 0;
-        for &k in &secondary {
-            secondary_offset.push(q2_total);
-            q2_total += terms[k].n_levels() * terms[k].q();
-        }
+        let Layout {
+            primary,
+            theta_offset,
+            secondary,
+            secondary_offset,
+            q2_total,
+        } = Layout::of(terms);
         let m = q2_total + p + 1;
         let mut dense = vec![0.0; m * m];
         let mut dense_groups: Vec<Vec<f64>> = match groups {
@@ -121,21 +114,7 @@ impl CrossProducts {
             None => (0, 0),
         };
         let order: Vec<usize> = match primary {
-            Some(k) => {
-                let mut count = vec![0usize; n1 + 1];
-                for &l in &terms[k].level {
-                    count[l as usize + 1] += 1;
-                }
-                for i in 0..n1 {
-                    count[i + 1] += count[i];
-                }
-                let mut order = vec![0usize; n];
-                for (r, &l) in terms[k].level.iter().enumerate() {
-                    order[count[l as usize]] = r;
-                    count[l as usize] += 1;
-                }
-                order
-            }
+            Some(k) => rows_by_level(&terms[k].level, n1),
             None => (0..n).collect(),
         };
 
@@ -174,20 +153,8 @@ impl CrossProducts {
                     *zc = terms[k].z[c][r];
                 }
                 let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
-                for a in 0..q1 {
-                    for b in 0..q1 {
-                        gi[a * q1 + b] += z1[a] * z1[b];
-                    }
-                }
                 let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
-                let xr = &problem.x[r * p..(r + 1) * p];
-                for a in 0..q1 {
-                    let row = &mut zi[a * (p + 1)..(a + 1) * (p + 1)];
-                    for (j, xv) in xr.iter().enumerate() {
-                        row[j] += z1[a] * xv;
-                    }
-                    row[p] += z1[a] * (problem.y[r] - y_shift);
-                }
+                add_primary_row(gi, zi, &z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
             }
             w.clear();
             for (s, &kt) in secondary.iter().enumerate() {
@@ -199,20 +166,7 @@ impl CrossProducts {
                 }
                 if primary.is_some() {
                     // Coupling block Z₁ᵢᵀ Z_s,j for this row.
-                    let found = links[level_start_link..].iter().position(|l| l.offset == offset);
-                    let start = match found {
-                        Some(pos) => links[level_start_link + pos].start,
-                        None => {
-                            let start = link_values.len();
-                            link_values.resize(start + q1 * qs, 0.0);
-                            links.push(Link {
-                                secondary: s,
-                                offset,
-                                start,
-                            });
-                            start
-                        }
-                    };
+                    let start = link_start(&mut links, &mut link_values, level_start_link, s, offset, q1 * qs);
                     for a in 0..q1 {
                         for c in 0..qs {
                             link_values[start + a * qs + c] += z1[a] * t.z[c][r];
@@ -246,20 +200,11 @@ impl CrossProducts {
             }
         }
         // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
-        let symmetrise = |d: &mut [f64]| {
-            for a in 0..m {
-                for b in 0..a {
-                    let s = d[a * m + b] + d[b * m + a];
-                    d[a * m + b] = s;
-                    d[b * m + a] = s;
-                }
-            }
-        };
         for d in &mut dense_groups {
-            symmetrise(d);
+            symmetrise(d, m);
         }
         if dense_groups.is_empty() {
-            symmetrise(&mut dense);
+            symmetrise(&mut dense, m);
         } else {
             for d in &dense_groups {
                 dense.iter_mut().zip(d).for_each(|(a, b)| *a += b);
@@ -286,6 +231,117 @@ impl CrossProducts {
             intercept,
             y_shift,
             dense_groups,
+        }
+    }
+}
+
+/// Where each term's parameters and dense columns go: the primary term
+/// (the one with most levels) is factored level by level, the others
+/// (secondary) join the dense block.
+struct Layout {
+    primary: Option<usize>,
+    theta_offset: Vec<usize>,
+    secondary: Vec<usize>,
+    secondary_offset: Vec<usize>,
+    q2_total: usize,
+}
+
+impl Layout {
+    fn of(terms: &[super::RandomTermData]) -> Layout {
+        let primary = (0..terms.len()).max_by_key(|&k| (terms[k].n_levels(), usize::MAX - k));
+        let mut theta_offset = Vec::with_capacity(terms.len());
+        let mut acc = 0;
+        for t in terms {
+            theta_offset.push(acc);
+            acc += t.n_theta();
+        }
+        let secondary: Vec<usize> = (0..terms.len()).filter(|&k| Some(k) != primary).collect();
+        let mut secondary_offset = Vec::with_capacity(secondary.len());
+        let mut q2_total = 0;
+        for &k in &secondary {
+            secondary_offset.push(q2_total);
+            q2_total += terms[k].n_levels() * terms[k].q();
+        }
+        Layout {
+            primary,
+            theta_offset,
+            secondary,
+            secondary_offset,
+            q2_total,
+        }
+    }
+}
+
+/// Add one row's primary cross-products: Z₁ᵢᵀZ₁ᵢ into `gi` and Z₁ᵢᵀ[X y]
+/// into `zi` (q1 rows of p + 1).
+#[inline]
+fn add_primary_row(gi: &mut [f64], zi: &mut [f64], z1: &[f64], xr: &[f64], y: f64) {
+    let q1 = z1.len();
+    let p = xr.len();
+    for a in 0..q1 {
+        for b in 0..q1 {
+            gi[a * q1 + b] += z1[a] * z1[b];
+        }
+    }
+    for a in 0..q1 {
+        let row = &mut zi[a * (p + 1)..(a + 1) * (p + 1)];
+        for (j, xv) in xr.iter().enumerate() {
+            row[j] += z1[a] * xv;
+        }
+        row[p] += z1[a] * y;
+    }
+}
+
+/// Where the coupling block of the current primary level and the secondary
+/// column block at `offset` starts in `link_values`, made (zeroed, `size`
+/// values) on first sight.
+#[inline]
+fn link_start(
+    links: &mut Vec<Link>,
+    link_values: &mut Vec<f64>,
+    level_start: usize,
+    secondary: usize,
+    offset: usize,
+    size: usize,
+) -> usize {
+    if let Some(pos) = links[level_start..].iter().position(|l| l.offset == offset) {
+        return links[level_start + pos].start;
+    }
+    let start = link_values.len();
+    link_values.resize(start + size, 0.0);
+    links.push(Link {
+        secondary,
+        offset,
+        start,
+    });
+    start
+}
+
+/// Row indices grouped by level (a counting sort), levels in order.
+fn rows_by_level(level: &[u32], n_levels: usize) -> Vec<usize> {
+    let mut count = vec![0usize; n_levels + 1];
+    for &l in level {
+        count[l as usize + 1] += 1;
+    }
+    for i in 0..n_levels {
+        count[i + 1] += count[i];
+    }
+    let mut order = vec![0usize; level.len()];
+    for (r, &l) in level.iter().enumerate() {
+        order[count[l as usize]] = r;
+        count[l as usize] += 1;
+    }
+    order
+}
+
+/// Add the transpose of the strict lower triangle to the upper one and back:
+/// the pairs were accumulated in one order only.
+fn symmetrise(d: &mut [f64], m: usize) {
+    for a in 0..m {
+        for b in 0..a {
+            let s = d[a * m + b] + d[b * m + a];
+            d[a * m + b] = s;
+            d[b * m + a] = s;
         }
     }
 }

@@ -177,28 +177,11 @@ pub fn minimize_with(
     // Otherwise the reciprocal diagonal curvatures from second differences
     // (2 evaluations per coordinate), so the first steps are already on the
     // right scale in every coordinate.
-    let mut diag = Vec::with_capacity(d);
-    let mut xt = x.clone();
-    for i in (0..d).take_while(|_| !h_scaled) {
-        let step = 1e-3 * x[i].abs().max(1e-1);
-        let lo = if x[i] - step >= lower[i] {
-            x[i] - step
-        } else {
-            x[i] + 2.0 * step
-        };
-        xt[i] = x[i] + step;
-        let f1 = f(&xt);
-        xt[i] = lo;
-        let f2 = f(&xt);
-        xt[i] = x[i];
-        evals += 2;
-        let c = if lo < x[i] {
-            (f1 - 2.0 * fx + f2) / (step * step)
-        } else {
-            (fx - 2.0 * f1 + f2) / (step * step)
-        };
-        diag.push(c);
-    }
+    let diag = if h_scaled {
+        Vec::new()
+    } else {
+        diagonal_curvatures(&mut f, &x, fx, lower, &mut evals)
+    };
     if !h_scaled && diag.iter().all(|c| c.is_finite() && *c > 0.0) {
         for i in 0..d {
             h[i * d + i] = 1.0 / diag[i];
@@ -215,21 +198,7 @@ pub fn minimize_with(
             converged = true;
             break;
         }
-        // Free set: not (at bound with outward gradient).
-        let free: Vec<bool> = (0..d).map(|i| !(x[i] <= lower[i] && g[i] > 0.0)).collect();
-        let mut dir = vec![0.0; d];
-        for i in 0..d {
-            if !free[i] {
-                continue;
-            }
-            let mut acc = 0.0;
-            for j in 0..d {
-                if free[j] {
-                    acc -= h[i * d + j] * g[j];
-                }
-            }
-            dir[i] = acc;
-        }
+        let (free, mut dir) = projected_direction(&h, &g, &x, lower);
         let mut slope: f64 = dir.iter().zip(&g).map(|(a, b)| a * b).sum();
         if slope.is_nan() || slope >= 0.0 {
             h = identity(d);
@@ -248,31 +217,7 @@ pub fn minimize_with(
                 slope *= s;
             }
         }
-        // Backtracking projected line search.
-        let mut alpha = 1.0;
-        let mut accepted = None;
-        for _ in 0..40 {
-            let xn: Vec<f64> = (0..d).map(|i| (x[i] + alpha * dir[i]).max(lower[i])).collect();
-            // The full step usually succeeds, so its gradient is taken with
-            // its value; shorter steps are tried on the value alone.
-            let joint = if alpha == 1.0 {
-                grad.and_then(|gf| gf(&xn))
-            } else {
-                None
-            };
-            let (fnew, gnew) = match joint {
-                Some((v, gv)) => (v, Some(gv)),
-                None => (f(&xn), None),
-            };
-            evals += 1;
-            let decrease: f64 = (0..d).map(|i| g[i] * (xn[i] - x[i])).sum();
-            if fnew.is_finite() && fnew <= fx + 1e-4 * decrease.min(0.0) {
-                accepted = Some((xn, fnew, gnew));
-                break;
-            }
-            alpha *= 0.5;
-        }
-        let Some((xn, fnew, gnew)) = accepted else {
+        let Some((xn, fnew, gnew)) = line_search(&mut f, grad, &x, fx, &g, &dir, lower, &mut evals) else {
             // No descent along the direction: restart BFGS once, else stop.
             if h_scaled {
                 h = identity(d);
@@ -322,6 +267,99 @@ pub fn minimize_with(
         gradient_norm,
         converged,
     }
+}
+
+/// A point along `dir` from `x`, projected on the bounds, meeting the
+/// Armijo condition: the full step first, then halved steps (backtracking).
+/// The full step usually succeeds, so its gradient is taken with its value;
+/// shorter steps are tried on the value alone.
+#[allow(clippy::too_many_arguments)]
+fn line_search(
+    f: &mut impl FnMut(&[f64]) -> f64,
+    grad: Gradient,
+    x: &[f64],
+    fx: f64,
+    g: &[f64],
+    dir: &[f64],
+    lower: &[f64],
+    evals: &mut usize,
+) -> Option<(Vec<f64>, f64, Option<Vec<f64>>)> {
+    let d = x.len();
+    let mut alpha = 1.0;
+    for _ in 0..40 {
+        let xn: Vec<f64> = (0..d).map(|i| (x[i] + alpha * dir[i]).max(lower[i])).collect();
+        let joint = if alpha == 1.0 {
+            grad.and_then(|gf| gf(&xn))
+        } else {
+            None
+        };
+        let (fnew, gnew) = match joint {
+            Some((v, gv)) => (v, Some(gv)),
+            None => (f(&xn), None),
+        };
+        *evals += 1;
+        let decrease: f64 = (0..d).map(|i| g[i] * (xn[i] - x[i])).sum();
+        if fnew.is_finite() && fnew <= fx + 1e-4 * decrease.min(0.0) {
+            return Some((xn, fnew, gnew));
+        }
+        alpha *= 0.5;
+    }
+    None
+}
+
+/// Second differences along each coordinate (2 evaluations each), stepping
+/// up instead of down where the lower bound is near.
+fn diagonal_curvatures(
+    f: &mut impl FnMut(&[f64]) -> f64,
+    x: &[f64],
+    fx: f64,
+    lower: &[f64],
+    evals: &mut usize,
+) -> Vec<f64> {
+    let mut diag = Vec::with_capacity(x.len());
+    let mut xt = x.to_vec();
+    for i in 0..x.len() {
+        let step = 1e-3 * x[i].abs().max(1e-1);
+        let lo = if x[i] - step >= lower[i] {
+            x[i] - step
+        } else {
+            x[i] + 2.0 * step
+        };
+        xt[i] = x[i] + step;
+        let f1 = f(&xt);
+        xt[i] = lo;
+        let f2 = f(&xt);
+        xt[i] = x[i];
+        *evals += 2;
+        let c = if lo < x[i] {
+            (f1 - 2.0 * fx + f2) / (step * step)
+        } else {
+            (fx - 2.0 * f1 + f2) / (step * step)
+        };
+        diag.push(c);
+    }
+    diag
+}
+
+/// The free set (not at a bound with an outward gradient) and the
+/// quasi-Newton direction −H g restricted to it.
+fn projected_direction(h: &[f64], g: &[f64], x: &[f64], lower: &[f64]) -> (Vec<bool>, Vec<f64>) {
+    let d = x.len();
+    let free: Vec<bool> = (0..d).map(|i| !(x[i] <= lower[i] && g[i] > 0.0)).collect();
+    let mut dir = vec![0.0; d];
+    for i in 0..d {
+        if !free[i] {
+            continue;
+        }
+        let mut acc = 0.0;
+        for j in 0..d {
+            if free[j] {
+                acc -= h[i * d + j] * g[j];
+            }
+        }
+        dir[i] = acc;
+    }
+    (free, dir)
 }
 
 /// The inverse of the Hessian from forward differences of the gradient
