@@ -189,64 +189,58 @@ fn transform(base: &CrossProducts, out: &mut CrossProducts, lay: &Layout, phi: &
         .sum::<f64>()
 }
 
-/// Fit `problem` with the primary term's covariance and the residual
-/// variance specific to each group of `grouping`. `start` is the θ of the
-/// same model with shared parameters (its fit is the natural start: every
-/// group begins at the shared estimate).
-///
-/// # Errors
-/// [`Error::Spec`] when there is no random term, a level of the primary term
-/// has rows in two groups, or a group has no rows.
-pub fn fit_grouped(
-    problem: &MixedProblem,
-    grouping: &Grouping,
-    method: Method,
-    start: Option<&[f64]>,
-) -> Result<GroupedFit> {
-    let n_groups = grouping.names.len();
-    let spec = |message: String| Error::Spec {
-        parameter: "groups".into(),
-        message,
-    };
-    if grouping.of_row.len() != problem.n() || n_groups == 0 {
-        return Err(spec("one group per row is needed".into()));
-    }
-    let base = CrossProducts::with_row_groups(problem, &grouping.of_row, n_groups);
-    let Some(k1) = base.primary else {
-        return Err(spec("group-specific covariances need a random term".into()));
-    };
-    let term = &problem.terms[k1];
-    let mut level_group = vec![u32::MAX; base.n1];
-    let mut n_rows = vec![0usize; n_groups];
-    for (r, &g) in grouping.of_row.iter().enumerate() {
-        let l = term.level[r] as usize;
-        n_rows[g as usize] += 1;
-        if level_group[l] == u32::MAX {
-            level_group[l] = g;
-        } else if level_group[l] != g {
-            return Err(spec(format!(
-                "'{}' level '{}' has rows in groups '{}' and '{}'; each level must lie in one group",
-                term.factor, term.level_names[l], grouping.names[level_group[l] as usize], grouping.names[g as usize]
-            )));
+impl Layout {
+    /// The layout of the groups over the primary term's levels; each level
+    /// must lie in one group and each group must have rows.
+    fn new(base: &CrossProducts, k1: usize, term: &super::RandomTermData, grouping: &Grouping) -> Result<Layout> {
+        let n_groups = grouping.names.len();
+        let mut level_group = vec![u32::MAX; base.n1];
+        let mut n_rows = vec![0usize; n_groups];
+        for (r, &g) in grouping.of_row.iter().enumerate() {
+            let l = term.level[r] as usize;
+            n_rows[g as usize] += 1;
+            if level_group[l] == u32::MAX {
+                level_group[l] = g;
+            } else if level_group[l] != g {
+                return Err(spec_error(format!(
+                    "'{}' level '{}' has rows in groups '{}' and '{}'; each level must lie in one group",
+                    term.factor,
+                    term.level_names[l],
+                    grouping.names[level_group[l] as usize],
+                    grouping.names[g as usize]
+                )));
+            }
         }
+        if let Some(g) = n_rows.iter().position(|&c| c == 0) {
+            return Err(spec_error(format!("group '{}' has no rows", grouping.names[g])));
+        }
+        level_group.iter_mut().filter(|g| **g == u32::MAX).for_each(|g| *g = 0);
+        let q1 = base.q1;
+        let nt1 = q1 * (q1 + 1) / 2;
+        let lay = Layout {
+            k1,
+            nt1,
+            q1,
+            n_groups,
+            level_group,
+            n_rows,
+        };
+        Ok(lay)
     }
-    if let Some(g) = n_rows.iter().position(|&c| c == 0) {
-        return Err(spec(format!("group '{}' has no rows", grouping.names[g])));
-    }
-    level_group.iter_mut().filter(|g| **g == u32::MAX).for_each(|g| *g = 0);
-    let q1 = base.q1;
-    let nt1 = q1 * (q1 + 1) / 2;
-    let lay = Layout {
-        k1,
-        nt1,
-        q1,
-        n_groups,
-        level_group,
-        n_rows,
-    };
-    let n_phi = lay.n_phi(&base);
+}
 
-    // Start, bounds and search scales, term by term as the plain fit does.
+/// The start (the shared estimate, or `start`), lower bounds and search
+/// scales of φ, term by term as the plain fit does: the primary term's
+/// parameters once per group, the other terms', then a residual scale per
+/// group after the first.
+fn start_bounds_scales(
+    problem: &MixedProblem,
+    base: &CrossProducts,
+    lay: &Layout,
+    start: Option<&[f64]>,
+) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+    let (k1, nt1, n_groups) = (lay.k1, lay.nt1, lay.n_groups);
+    let n_phi = lay.n_phi(base);
     let shared = start.map(<[f64]>::to_vec).unwrap_or_else(|| base_start(problem));
     let plain_scale = row_scales(problem, &base_start(problem));
     let mut phi0 = Vec::with_capacity(n_phi);
@@ -271,6 +265,44 @@ pub fn fit_grouped(
         lower.push(0.0);
         scale.push(1.0);
     }
+    (phi0, lower, scale)
+}
+
+fn spec_error(message: String) -> Error {
+    Error::Spec {
+        parameter: "groups".into(),
+        message,
+    }
+}
+
+/// Fit `problem` with the primary term's covariance and the residual
+/// variance specific to each group of `grouping`. `start` is the θ of the
+/// same model with shared parameters (its fit is the natural start: every
+/// group begins at the shared estimate).
+///
+/// # Errors
+/// [`Error::Spec`] when there is no random term, a level of the primary term
+/// has rows in two groups, or a group has no rows.
+pub fn fit_grouped(
+    problem: &MixedProblem,
+    grouping: &Grouping,
+    method: Method,
+    start: Option<&[f64]>,
+) -> Result<GroupedFit> {
+    let n_groups = grouping.names.len();
+    if grouping.of_row.len() != problem.n() || n_groups == 0 {
+        return Err(spec_error("one group per row is needed".into()));
+    }
+    let base = CrossProducts::with_row_groups(problem, &grouping.of_row, n_groups);
+    let Some(k1) = base.primary else {
+        return Err(spec_error("group-specific covariances need a random term".into()));
+    };
+    let term = &problem.terms[k1];
+    let lay = Layout::new(&base, k1, term, grouping)?;
+    let q1 = lay.q1;
+    let n_phi = lay.n_phi(&base);
+
+    let (phi0, lower, scale) = start_bounds_scales(problem, &base, &lay, start);
     let work = RefCell::new(base.clone());
     let (n, p) = (problem.n(), problem.p());
     let deviance_at = |phi: &[f64]| -> f64 {

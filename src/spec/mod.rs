@@ -250,6 +250,128 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
     }
 }
 
+/// The data of one random term: its grouping codes and the columns of Z.
+fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64) -> Result<RandomTermData> {
+    let n = panel.n();
+    let age_name = &panel.roles.age;
+    let coded_numeric;
+    let by_role = |role: &Option<String>, codes: &'a Option<crate::data::Codes>| {
+        codes.as_ref().filter(|_| role.as_ref() == Some(&rs.factor))
+    };
+    let codes: &crate::data::Codes = if rs.factor == panel.roles.id {
+        &panel.id
+    } else if let Some(c) = by_role(&panel.roles.cluster, &panel.cluster)
+        .or_else(|| by_role(&panel.roles.cohort, &panel.cohort))
+        .or_else(|| by_role(&panel.roles.wave, &panel.wave))
+    {
+        c
+    } else if let Some(cv) = panel.covariates.iter().find(|c| c.name == rs.factor) {
+        match &cv.values {
+            CovariateValues::Categorical(c) => c,
+            CovariateValues::Numeric(v) => {
+                let labels: Vec<String> = v.iter().map(|x| x.to_string()).collect();
+                coded_numeric = crate::data::Codes::new(&labels, true);
+                &coded_numeric
+            }
+        }
+    } else {
+        return Err(spec_err(
+            "random.factor",
+            format!(
+                "grouping column '{}' is not one of the column roles (id, cluster, cohort, wave or a covariate)",
+                rs.factor
+            ),
+        ));
+    };
+    if codes.n_levels() < 2 {
+        return Err(spec_err(
+            "random.factor",
+            format!(
+                "grouping column '{}' has a single level; a random effect needs at least two",
+                rs.factor
+            ),
+        ));
+    }
+    let mut columns = Vec::new();
+    let mut z = Vec::new();
+    if rs.intercept {
+        columns.push("intercept".to_string());
+        z.push(vec![1.0; n]);
+    }
+    for s in &rs.slopes {
+        if s == age_name {
+            columns.push(age_name.clone());
+            z.push(panel.age.iter().map(|a| a - center).collect());
+        } else if let Some(cv) = panel.covariates.iter().find(|c| &c.name == s) {
+            match &cv.values {
+                CovariateValues::Numeric(v) => {
+                    columns.push(s.clone());
+                    z.push(v.clone());
+                }
+                CovariateValues::Categorical(_) => {
+                    return Err(spec_err(
+                        "random.slopes",
+                        format!("'{s}' is categorical; random slopes need a numeric column"),
+                    ));
+                }
+            }
+        } else {
+            return Err(spec_err(
+                "random.slopes",
+                format!("slope column '{s}' is neither the age column nor a numeric covariate"),
+            ));
+        }
+    }
+    if columns.is_empty() {
+        return Err(spec_err(
+            "random",
+            format!("the term for '{}' has neither an intercept nor slopes", rs.factor),
+        ));
+    }
+    Ok(RandomTermData {
+        factor: rs.factor.clone(),
+        level_names: codes.levels.clone(),
+        level: codes.codes.clone(),
+        columns,
+        z,
+    })
+}
+
+/// The model in words.
+fn describe(panel: &Panel, basis: &AgeBasis, terms: &[RandomTermData], method: crate::lmm::Method) -> Vec<String> {
+    let age_name = &panel.roles.age;
+    let mut description = vec![format!(
+        "mean of {}: {}",
+        panel.roles.outcome,
+        basis.describe(age_name)
+    )];
+    if !panel.covariates.is_empty() {
+        let names: Vec<&str> = panel.covariates.iter().map(|c| c.name.as_str()).collect();
+        description.push(format!("adjusted for {}", names.join(", ")));
+    }
+    for t in terms {
+        let what = t
+            .columns
+            .iter()
+            .map(|c| {
+                if c == "intercept" {
+                    "intercept".to_string()
+                } else {
+                    format!("slope on {c}")
+                }
+            })
+            .collect::<Vec<_>>()
+            .join(" and ");
+        description.push(format!(
+            "random {what} per {} ({} levels), unstructured covariance",
+            t.factor,
+            t.n_levels()
+        ));
+    }
+    description.push(format!("fitted by {}", method.label()));
+    description
+}
+
 /// Build the model frame: fixed design, random terms and reference row.
 ///
 /// # Errors
@@ -299,85 +421,7 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
     let mut terms = Vec::with_capacity(random.len());
     let center = basis.center();
     for rs in &random {
-        let coded_numeric;
-        let codes: &crate::data::Codes = if rs.factor == panel.roles.id {
-            &panel.id
-        } else if Some(&rs.factor) == panel.roles.cluster.as_ref() {
-            panel.cluster.as_ref().expect("cluster role present")
-        } else if Some(&rs.factor) == panel.roles.cohort.as_ref() {
-            panel.cohort.as_ref().expect("cohort role present")
-        } else if Some(&rs.factor) == panel.roles.wave.as_ref() {
-            panel.wave.as_ref().expect("wave role present")
-        } else if let Some(cv) = panel.covariates.iter().find(|c| c.name == rs.factor) {
-            match &cv.values {
-                CovariateValues::Categorical(c) => c,
-                CovariateValues::Numeric(v) => {
-                    let labels: Vec<String> = v.iter().map(|x| x.to_string()).collect();
-                    coded_numeric = crate::data::Codes::new(&labels, true);
-                    &coded_numeric
-                }
-            }
-        } else {
-            return Err(spec_err(
-                "random.factor",
-                format!(
-                    "grouping column '{}' is not one of the column roles (id, cluster, cohort, wave or a covariate)",
-                    rs.factor
-                ),
-            ));
-        };
-        if codes.n_levels() < 2 {
-            return Err(spec_err(
-                "random.factor",
-                format!(
-                    "grouping column '{}' has a single level; a random effect needs at least two",
-                    rs.factor
-                ),
-            ));
-        }
-        let mut columns = Vec::new();
-        let mut z = Vec::new();
-        if rs.intercept {
-            columns.push("intercept".to_string());
-            z.push(vec![1.0; n]);
-        }
-        for s in &rs.slopes {
-            if *s == age_name {
-                columns.push(age_name.clone());
-                z.push(panel.age.iter().map(|a| a - center).collect());
-            } else if let Some(cv) = panel.covariates.iter().find(|c| &c.name == s) {
-                match &cv.values {
-                    CovariateValues::Numeric(v) => {
-                        columns.push(s.clone());
-                        z.push(v.clone());
-                    }
-                    CovariateValues::Categorical(_) => {
-                        return Err(spec_err(
-                            "random.slopes",
-                            format!("'{s}' is categorical; random slopes need a numeric column"),
-                        ));
-                    }
-                }
-            } else {
-                return Err(spec_err(
-                    "random.slopes",
-                    format!("slope column '{s}' is neither the age column nor a numeric covariate"),
-                ));
-            }
-        }
-        if columns.is_empty() {
-            return Err(spec_err(
-                "random",
-                format!("the term for '{}' has neither an intercept nor slopes", rs.factor),
-            ));
-        }
-        terms.push(RandomTermData {
-            factor: rs.factor.clone(),
-            level_names: codes.levels.clone(),
-            level: codes.codes.clone(),
-            columns,
-            z,
-        });
+        terms.push(random_term(panel, rs, center)?);
     }
     let age_range = panel
         .age
@@ -385,35 +429,7 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
         .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &a| {
             (lo.min(a), hi.max(a))
         });
-    let mut description = vec![format!(
-        "mean of {}: {}",
-        panel.roles.outcome,
-        basis.describe(&age_name)
-    )];
-    if !panel.covariates.is_empty() {
-        let names: Vec<&str> = panel.covariates.iter().map(|c| c.name.as_str()).collect();
-        description.push(format!("adjusted for {}", names.join(", ")));
-    }
-    for t in &terms {
-        let what = t
-            .columns
-            .iter()
-            .map(|c| {
-                if c == "intercept" {
-                    "intercept".to_string()
-                } else {
-                    format!("slope on {c}")
-                }
-            })
-            .collect::<Vec<_>>()
-            .join(" and ");
-        description.push(format!(
-            "random {what} per {} ({} levels), unstructured covariance",
-            t.factor,
-            t.n_levels()
-        ));
-    }
-    description.push(format!("fitted by {}", spec.method.label()));
+    let description = describe(panel, &basis, &terms, spec.method);
     Ok(ModelFrame {
         problem: MixedProblem {
             y: panel.outcome.clone(),
