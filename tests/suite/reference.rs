@@ -167,6 +167,11 @@ fn reference_components(r: &Value) -> Vec<f64> {
     v
 }
 
+/// Cases where braid's optimum is known to be higher than the reference's by
+/// more than `LOGLIK_ABS`, so that comparing estimates would compare
+/// different optima. None at present: every case is compared in full.
+const HIGHER_LIKELIHOOD: &[(&str, &str)] = &[];
+
 #[test]
 fn matches_statsmodels_mixedlm_on_growth_and_cohort_sequential_data() {
     let refs = reference();
@@ -196,6 +201,13 @@ fn matches_statsmodels_mixedlm_on_growth_and_cohort_sequential_data() {
             );
             assert!(fit.info.converged, "{} {label}: {:?}", case.name, fit.info);
             if gap > LOGLIK_ABS {
+                // Only a case named here may skip the estimates; any other is a failure.
+                assert!(
+                    HIGHER_LIKELIHOOD.contains(&(case.name, label)),
+                    "{} {label}: braid's likelihood is higher than the reference's by {gap:.3e}; \
+                     regenerate the reference or name the case in HIGHER_LIKELIHOOD",
+                    case.name
+                );
                 println!("  braid found a higher likelihood than the reference; estimates not compared");
                 continue;
             }
