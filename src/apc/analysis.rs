@@ -87,6 +87,16 @@ pub struct DevianceRow {
     pub df: usize,
 }
 
+/// The kind of outcome an APC analysis models.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum OutcomeKind {
+    /// Event counts with exposure (a Poisson log-linear model).
+    Counts,
+    /// A continuous outcome (least squares, or a mixed model for panels).
+    Continuous,
+}
+
 /// The report, with stable JSON keys.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ApcReport {
@@ -94,8 +104,8 @@ pub struct ApcReport {
     pub data: crate::data::DataSummary,
     /// The settings that produced the report.
     pub options: super::ApcOptions,
-    /// "counts" or "continuous".
-    pub outcome: String,
+    /// Counts with exposure, or a continuous outcome.
+    pub outcome: OutcomeKind,
     /// Age groups, periods and cohorts.
     pub shape: Shape,
     /// Group labels.
@@ -322,8 +332,8 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         data: crate::data::DataSummary::default(),
         options: super::ApcOptions::default(),
         outcome: match data.family {
-            Family::Poisson => "counts".into(),
-            Family::Gaussian => "continuous".into(),
+            Family::Poisson => OutcomeKind::Counts,
+            Family::Gaussian => OutcomeKind::Continuous,
         },
         shape: s,
         labels: data.labels.clone(),

@@ -4,7 +4,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use super::Panel;
+use super::{CalendarSource, Panel};
 use crate::error::{Error, Result};
 
 /// How each row's cohort is found.
@@ -47,13 +47,81 @@ pub enum WaveRule {
     },
 }
 
+/// The rule that gave each row its cohort or wave, as applied to a file.
+#[derive(Debug, Clone, PartialEq)]
+pub enum AppliedRule {
+    /// Taken from a column of the file.
+    Column {
+        /// The column.
+        column: String,
+    },
+    /// Year of birth, in groups of `width` years.
+    BirthYear {
+        /// Group width in years.
+        width: f64,
+        /// Where the birth times came from.
+        source: CalendarSource,
+    },
+    /// Whole-year age at the first assessment, in groups of `width` years.
+    FirstAge {
+        /// Group width in years.
+        width: f64,
+    },
+    /// The order of each participant's assessments by age.
+    Order,
+    /// Calendar rounds of `length` years from each cohort's first assessment.
+    Calendar {
+        /// Round length in years.
+        length: f64,
+        /// Where the assessment times came from.
+        source: CalendarSource,
+    },
+}
+
+impl std::fmt::Display for AppliedRule {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            AppliedRule::Column { column } => write!(f, "from column '{column}'"),
+            AppliedRule::BirthYear { width, source } => {
+                write!(
+                    f,
+                    "derived: year of birth (from {}), in {}",
+                    source.describe(),
+                    years(*width)
+                )
+            }
+            AppliedRule::FirstAge { width } => {
+                write!(
+                    f,
+                    "derived: whole-year age at the first assessment, in {}",
+                    years(*width)
+                )
+            }
+            AppliedRule::Order => write!(f, "derived: the order of each participant's assessments by age"),
+            AppliedRule::Calendar { length, source } => write!(
+                f,
+                "derived: rounds of {length} year{} from each cohort's first assessment, to the nearest round (from {})",
+                if *length == 1.0 { "" } else { "s" },
+                source.describe()
+            ),
+        }
+    }
+}
+
+/// Serialised as its words, as the reports have always shown it.
+impl Serialize for AppliedRule {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> std::result::Result<S::Ok, S::Error> {
+        s.collect_str(self)
+    }
+}
+
 /// Labels for every row, and the rule that made them.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Derived {
     /// One label per row of the panel.
     pub labels: Vec<String>,
-    /// The rule in words.
-    pub rule: String,
+    /// The rule applied.
+    pub rule: AppliedRule,
     /// Problems the rule met, in words.
     pub warnings: Vec<String>,
 }
@@ -100,7 +168,9 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
         (CohortRule::Auto, Some(c), _) => {
             return Ok(Derived {
                 labels: (0..n).map(|r| c.label(r).to_string()).collect(),
-                rule: format!("from column '{}'", panel.roles.cohort.as_deref().unwrap_or("")),
+                rule: AppliedRule::Column {
+                    column: panel.roles.cohort.clone().unwrap_or_default(),
+                },
                 warnings: Vec::new(),
             });
         }
@@ -119,11 +189,10 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
             };
             Ok(Derived {
                 labels: cal.birth.iter().map(|&b| group_label(b, width)).collect(),
-                rule: format!(
-                    "derived: year of birth (from {}), in {}",
-                    cal.source.describe(),
-                    years(width)
-                ),
+                rule: AppliedRule::BirthYear {
+                    width,
+                    source: cal.source,
+                },
                 warnings: Vec::new(),
             })
         }
@@ -134,7 +203,7 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
                 labels: (0..n)
                     .map(|r| group_label(first[panel.id.codes[r] as usize], width))
                     .collect(),
-                rule: format!("derived: whole-year age at the first assessment, in {}", years(width)),
+                rule: AppliedRule::FirstAge { width },
                 warnings: Vec::new(),
             })
         }
@@ -177,7 +246,9 @@ pub fn waves(panel: &Panel, rule: WaveRule, cohort_of: &[String]) -> Result<Deri
         (WaveRule::Auto, Some(w), _) => {
             return Ok(Derived {
                 labels: (0..n).map(|r| w.label(r).to_string()).collect(),
-                rule: format!("from column '{}'", panel.roles.wave.as_deref().unwrap_or("")),
+                rule: AppliedRule::Column {
+                    column: panel.roles.wave.clone().unwrap_or_default(),
+                },
                 warnings: Vec::new(),
             });
         }
@@ -188,7 +259,7 @@ pub fn waves(panel: &Panel, rule: WaveRule, cohort_of: &[String]) -> Result<Deri
     match rule {
         WaveRule::Order => Ok(Derived {
             labels: assessment_order(panel).iter().map(|k| k.to_string()).collect(),
-            rule: "derived: the order of each participant's assessments by age".into(),
+            rule: AppliedRule::Order,
             warnings: Vec::new(),
         }),
         WaveRule::Calendar { length } => {
@@ -230,11 +301,10 @@ pub fn waves(panel: &Panel, rule: WaveRule, cohort_of: &[String]) -> Result<Deri
             }
             Ok(Derived {
                 labels,
-                rule: format!(
-                    "derived: rounds of {length} year{} from each cohort's first assessment, to the nearest round (from {})",
-                    if length == 1.0 { "" } else { "s" },
-                    cal.source.describe()
-                ),
+                rule: AppliedRule::Calendar {
+                    length,
+                    source: cal.source,
+                },
                 warnings,
             })
         }

@@ -20,7 +20,9 @@ pub mod summary;
 mod table;
 mod wide;
 
-pub use panel::{Calendar, CalendarSource, Codes, Covariate, CovariateValues, DropReport, Panel};
+pub use panel::{
+    Calendar, CalendarSource, Codes, Covariate, CovariateValues, DropReport, Panel, label_key, label_order,
+};
 pub use roles::Roles;
 pub use summary::DataSummary;
 pub use table::{NumericTable, numeric_table};

@@ -7,6 +7,18 @@ use serde::Serialize;
 
 use super::{FastMap, Roles};
 
+/// The sort key of a label: its value when it reads as a number (numbers
+/// first, by value), then the text. One order for every table and figure.
+pub fn label_key(s: &str) -> (f64, &str) {
+    (s.trim().parse::<f64>().unwrap_or(f64::INFINITY), s)
+}
+
+/// Numeric-aware order of two labels (see [`label_key`]).
+pub fn label_order(a: &str, b: &str) -> std::cmp::Ordering {
+    let (ka, kb) = (label_key(a), label_key(b));
+    ka.0.total_cmp(&kb.0).then(ka.1.cmp(kb.1))
+}
+
 /// Labels coded as integers.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Codes {
@@ -38,11 +50,7 @@ impl Codes {
         }
         if sort {
             let mut order: Vec<usize> = (0..levels.len()).collect();
-            let numeric: Option<Vec<f64>> = levels.iter().map(|l| l.trim().parse::<f64>().ok()).collect();
-            match numeric {
-                Some(nums) => order.sort_by(|&a, &b| nums[a].total_cmp(&nums[b])),
-                None => order.sort_by(|&a, &b| levels[a].cmp(&levels[b])),
-            }
+            order.sort_by(|&a, &b| label_order(&levels[a], &levels[b]));
             let mut remap = vec![0u32; levels.len()];
             for (new, &old) in order.iter().enumerate() {
                 remap[old] = new as u32;

@@ -5,8 +5,9 @@ use std::collections::{BTreeMap, BTreeSet};
 
 use serde::Serialize;
 
-use super::{OrderedAge, label_key};
+use super::OrderedAge;
 use crate::data::Panel;
+use crate::data::label_key;
 use crate::stats::mean_var;
 
 /// Counts of missingness patterns over each cohort's waves.

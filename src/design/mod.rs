@@ -87,9 +87,9 @@ pub struct DesignReport {
     /// The settings that produced the report.
     pub options: DesignOptions,
     /// How cohorts were defined.
-    pub cohort_rule: String,
+    pub cohort_rule: derive::AppliedRule,
     /// How waves were defined.
-    pub wave_rule: String,
+    pub wave_rule: derive::AppliedRule,
     /// Coverage per cohort.
     pub cohorts: Vec<CohortCoverage>,
     /// Overlap of each pair of neighbouring cohorts.
@@ -111,17 +111,12 @@ pub struct DesignReport {
     pub lexis: lexis::LexisData,
 }
 
-/// Numeric-aware ordering of labels.
-fn label_key(s: &str) -> (f64, String) {
-    (s.trim().parse::<f64>().unwrap_or(f64::INFINITY), s.to_string())
-}
-
 /// Rows grouped by their label, groups in numeric-aware label order.
 fn group_by_label(labels: &[String], rows: impl Iterator<Item = usize>) -> BTreeMap<(OrderedAge, String), Vec<usize>> {
     let mut groups: BTreeMap<(OrderedAge, String), Vec<usize>> = BTreeMap::new();
     for r in rows {
-        let (k, s) = label_key(&labels[r]);
-        groups.entry((OrderedAge(k), s)).or_default().push(r);
+        let (k, s) = crate::data::label_key(&labels[r]);
+        groups.entry((OrderedAge(k), s.to_string())).or_default().push(r);
     }
     groups
 }

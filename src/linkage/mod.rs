@@ -160,7 +160,7 @@ pub struct ConvergeReport {
     /// The settings that produced the report.
     pub options: ConvergeOptions,
     /// How cohorts were found.
-    pub cohort_rule: String,
+    pub cohort_rule: derive::AppliedRule,
     /// Cohorts in order of their youngest age (the first is the reference).
     pub cohorts: Vec<String>,
     /// Age at which level differences are measured.

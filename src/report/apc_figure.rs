@@ -82,7 +82,7 @@ fn effects_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimensi
         .x_labels(n.min(14))
         .x_label_formatter(&formatter)
         .x_desc(d.name())
-        .y_desc(if r.outcome == "counts" {
+        .y_desc(if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
             "log rate ratio"
         } else {
             "effect"

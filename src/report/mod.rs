@@ -142,25 +142,20 @@ impl FitReport {
     }
 }
 
-/// Observed means per cohort and wave. Without a cohort column, participants
-/// are grouped by their whole-year age at first assessment; without a wave
-/// column, rows are grouped by whole-year age.
+/// Observed means per cohort and wave. Cohorts follow the rule every
+/// analysis uses ([`crate::data::derive::cohorts`]: the cohort column, else
+/// birth year when calendar times are known, else whole-year age at the first
+/// assessment); without a wave column, rows are grouped by whole-year age.
 pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     let n = panel.n();
-    // Integer keys per row; labels are made once per group.
-    let cohort_key: Vec<i64> = match &panel.cohort {
-        Some(c) => c.codes.iter().map(|&k| i64::from(k)).collect(),
-        None => {
-            let first = panel.first_ages();
-            (0..n)
-                .map(|r| first[panel.id.codes[r] as usize].floor() as i64)
-                .collect()
-        }
-    };
-    let cohort_label = |k: i64| match &panel.cohort {
-        Some(c) => c.levels[k as usize].clone(),
-        None => format!("entry age {k}"),
-    };
+    // Cohorts by the same rule as every analysis (data::derive); the rule
+    // without options cannot fail, but the cells are then one group.
+    let cohort_of = crate::data::derive::cohorts(panel, crate::data::derive::CohortRule::Auto)
+        .map(|d| d.labels)
+        .unwrap_or_else(|_| vec![String::new(); n]);
+    let cohort_codes = crate::data::Codes::new(&cohort_of, true);
+    let cohort_key: Vec<i64> = cohort_codes.codes.iter().map(|&k| i64::from(k)).collect();
+    let cohort_label = |k: i64| cohort_codes.levels[k as usize].clone();
     let wave_key = |r: usize| match &panel.wave {
         Some(w) => i64::from(w.codes[r]),
         None => panel.age[r].floor() as i64,
@@ -202,17 +197,7 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
         })
         .collect();
     // Order cohorts and waves numerically where their labels are numbers.
-    let key = |s: &str| {
-        s.trim_start_matches(|c: char| !c.is_ascii_digit() && c != '-')
-            .parse::<f64>()
-            .unwrap_or(f64::INFINITY)
-    };
-    cells.sort_by(|a, b| {
-        key(&a.cohort)
-            .total_cmp(&key(&b.cohort))
-            .then(a.cohort.cmp(&b.cohort))
-            .then(a.age.total_cmp(&b.age))
-    });
+    cells.sort_by(|a, b| crate::data::label_order(&a.cohort, &b.cohort).then(a.age.total_cmp(&b.age)));
     cells
 }
 

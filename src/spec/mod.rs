@@ -340,11 +340,7 @@ fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64) -> Result<Ran
 /// The model in words.
 fn describe(panel: &Panel, basis: &AgeBasis, terms: &[RandomTermData], method: crate::lmm::Method) -> Vec<String> {
     let age_name = &panel.roles.age;
-    let mut description = vec![format!(
-        "mean of {}: {}",
-        panel.roles.outcome,
-        basis.describe(age_name)
-    )];
+    let mut description = vec![format!("mean of {}: {}", panel.roles.outcome, basis.describe(age_name))];
     if !panel.covariates.is_empty() {
         let names: Vec<&str> = panel.covariates.iter().map(|c| c.name.as_str()).collect();
         description.push(format!("adjusted for {}", names.join(", ")));

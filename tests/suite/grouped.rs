@@ -150,7 +150,11 @@ fn one_group_is_the_plain_model() {
         assert!(
             (grouped.loglik - plain.loglik).abs() < 100.0 * REFIT_LOGLIK_ABS,
             "start {}: {} vs {}",
-            if start.is_some() { "at the plain optimum" } else { "cold" },
+            if start.is_some() {
+                "at the plain optimum"
+            } else {
+                "cold"
+            },
             grouped.loglik,
             plain.loglik
         );

@@ -14,7 +14,7 @@ pub fn apc_summary(r: &ApcReport) -> String {
         s,
         "{:<11}{} ({} observations) · {} age groups × {} periods → {} cohorts",
         "Data",
-        if r.outcome == "counts" {
+        if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
             "a table of counts with exposure, Poisson log-linear"
         } else if r.panel.is_some() {
             "panel records, linear mixed model with a random intercept per participant (ML)"
@@ -39,7 +39,7 @@ pub fn apc_summary(r: &ApcReport) -> String {
         .collect();
     let _ = writeln!(s, "{:<11}{}", "", wrap(&line.join(" "), 75, 11));
     let _ = writeln!(s);
-    let kind = if r.outcome == "counts" {
+    let kind = if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
         "(Poisson deviance)"
     } else if r.panel.is_some() {
         "(−2 × ML log-likelihood)"
