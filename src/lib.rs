@@ -119,6 +119,7 @@ pub mod report;
 pub mod simulate;
 pub mod spec;
 pub mod stats;
+pub mod warning;
 
 pub use error::{Error, Result};
 

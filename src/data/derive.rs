@@ -122,8 +122,8 @@ pub struct Derived {
     pub labels: Vec<String>,
     /// The rule applied.
     pub rule: AppliedRule,
-    /// Problems the rule met, in words.
-    pub warnings: Vec<String>,
+    /// Problems the rule met.
+    pub warnings: Vec<crate::warning::Warning>,
 }
 
 /// Guards floor() against values a rounding error below a group boundary.
@@ -292,12 +292,12 @@ pub fn waves(panel: &Panel, rule: WaveRule, cohort_of: &[String]) -> Result<Deri
             }
             let mut warnings = Vec::new();
             if let Some(r) = example {
-                warnings.push(format!(
+                warnings.push(crate::warning::Warning::new(crate::warning::WarningCode::WaveClash, format!(
                     "{clashes} assessments share a derived wave with an earlier one of the same participant (first: '{}' in wave {}); \
                      give a shorter `wave_length` or a `wave` column",
                     panel.id.label(r),
                     labels[r]
-                ));
+                )));
             }
             Ok(Derived {
                 labels,

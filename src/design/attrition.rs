@@ -9,6 +9,7 @@ use super::OrderedAge;
 use crate::data::Panel;
 use crate::data::label_key;
 use crate::stats::mean_var;
+use crate::warning::{Warning, WarningCode};
 
 /// Counts of missingness patterns over each cohort's waves.
 #[derive(Debug, Clone, Copy, Serialize, PartialEq, Eq, Default)]
@@ -65,7 +66,7 @@ pub(super) fn attrition(
     panel: &Panel,
     cohort_of: &[String],
     wave_of: &[String],
-    warnings: &mut Vec<String>,
+    warnings: &mut Vec<Warning>,
 ) -> Attrition {
     let n_id = panel.id.n_levels();
     let key = |r: usize| (OrderedAge(label_key(&wave_of[r]).0), wave_of[r].as_str());
@@ -121,10 +122,10 @@ pub(super) fn attrition(
         let se = (vs / st.len() as f64 + vl / lv.len() as f64).sqrt();
         let standardized = difference / ((vs + vl) / 2.0).sqrt();
         if standardized.abs() > BASELINE_WARNING {
-            warnings.push(format!(
+            warnings.push(Warning::new(WarningCode::SelectiveDropout, format!(
                 "those who left differ from those who stayed at baseline on {name} (standardized difference {standardized:.2}): \
                  the data are not missing completely at random; a likelihood-based fit stays valid if dropout depends only on what was observed"
-            ));
+            )));
         }
         baseline.push(BaselineComparison {
             variable: name,

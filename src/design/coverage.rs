@@ -9,6 +9,7 @@ use serde::Serialize;
 use super::{DesignOptions, OrderedAge, group_by_label, sorted_ages_and_people};
 use crate::data::Panel;
 use crate::spec::basis::quantile_sorted;
+use crate::warning::{Warning, WarningCode};
 
 /// One wave of one cohort.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -124,7 +125,7 @@ pub(super) fn coverage(
     cohort_of: &[String],
     wave_of: &[String],
     options: &DesignOptions,
-    warnings: &mut Vec<String>,
+    warnings: &mut Vec<Warning>,
 ) -> Coverage {
     let by_cohort = group_by_label(cohort_of, 0..panel.n());
     let rows_of: Vec<&Vec<usize>> = by_cohort.values().collect();
@@ -205,7 +206,7 @@ fn overlaps(
     cohorts: &[CohortCoverage],
     rows_of: &[&Vec<usize>],
     options: &DesignOptions,
-    warnings: &mut Vec<String>,
+    warnings: &mut Vec<Warning>,
 ) -> Vec<Overlap> {
     let mut order: Vec<usize> = (0..cohorts.len()).collect();
     order.sort_by(|&a, &b| cohorts[a].age_min.total_cmp(&cohorts[b].age_min));
@@ -224,15 +225,15 @@ fn overlaps(
         let (n_a, n_b) = (inside(w[0]), inside(w[1]));
         let thin = linked && (n_a < options.thin_overlap || n_b < options.thin_overlap);
         if !linked {
-            warnings.push(format!(
+            warnings.push(Warning::new(WarningCode::CohortGap, format!(
                 "cohorts {} and {} share no ages (a gap from {:.2} to {:.2}): their segments cannot be linked, so cohort and age differences are confounded there",
                 a.cohort, b.cohort, a.age_max, b.age_min
-            ));
+            )));
         } else if thin {
-            warnings.push(format!(
+            warnings.push(Warning::new(WarningCode::ThinOverlap, format!(
                 "cohorts {} and {} overlap thinly ({} and {} observations between {:.2} and {:.2}, fewer than {}): the link between their segments is weak",
                 a.cohort, b.cohort, n_a, n_b, from, to, options.thin_overlap
-            ));
+            )));
         }
         overlap.push(Overlap {
             cohort_a: a.cohort.clone(),

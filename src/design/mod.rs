@@ -25,6 +25,7 @@ use serde::Serialize;
 use crate::data::derive::{self, CohortRule, WaveRule};
 use crate::data::{DataSummary, Panel};
 use crate::error::{Error, Result};
+use crate::warning::{Warning, WarningCode};
 
 /// Settings of the design report, validated by [`DesignOptions::new`].
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -105,7 +106,9 @@ pub struct DesignReport {
     /// Collinearity checks.
     pub collinear: Collinear,
     /// Warnings in plain words.
-    pub warnings: Vec<String>,
+    pub warnings: Vec<Warning>,
+    /// The code of each warning, in the same order.
+    pub warning_codes: Vec<WarningCode>,
     /// The Lexis diagram's sampled lifelines (for the figure; not in the JSON).
     #[serde(skip)]
     pub lexis: lexis::LexisData,
@@ -139,7 +142,7 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
     options.validate()?;
     let cohort = derive::cohorts(panel, options.cohort_rule)?;
     let wave = derive::waves(panel, options.wave_rule, &cohort.labels)?;
-    let mut warnings: Vec<String> = cohort.warnings.iter().chain(&wave.warnings).cloned().collect();
+    let mut warnings: Vec<Warning> = cohort.warnings.iter().chain(&wave.warnings).cloned().collect();
     let (cohort_of, wave_of) = (&cohort.labels, &wave.labels);
     let coverage = coverage::coverage(panel, cohort_of, wave_of, &options, &mut warnings);
     let attrition = attrition::attrition(panel, cohort_of, wave_of, &mut warnings);
@@ -156,6 +159,7 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
         span: coverage.span,
         attrition,
         collinear,
+        warning_codes: crate::warning::codes(&warnings),
         warnings,
         lexis: lexis::LexisData::default(),
     };

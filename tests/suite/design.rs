@@ -78,10 +78,16 @@ fn cohorts_that_share_no_ages_are_reported_as_not_linked() {
         report
             .warnings
             .iter()
-            .filter(|w| w.contains("cannot be linked"))
+            .filter(|w| w.message.contains("cannot be linked"))
             .count(),
         2
     );
+    // Found by code as well as by words.
+    let gaps = report
+        .warning_codes
+        .iter()
+        .filter(|c| **c == braid::warning::WarningCode::CohortGap);
+    assert_eq!(gaps.count(), 2);
 }
 
 #[test]
@@ -254,7 +260,8 @@ fn cohorts_and_waves_derived_from_dates_follow_the_stated_rule() {
     assert!(w.rule.to_string().contains("rounds of 1 year"), "{}", w.rule);
     assert_eq!(w.labels.join(" "), "1 2 3 1 3 1 1");
     assert_eq!(w.warnings.len(), 1, "{:?}", w.warnings);
-    assert!(w.warnings[0].contains("'C'"), "{}", w.warnings[0]);
+    assert!(w.warnings[0].message.contains("'C'"), "{}", w.warnings[0]);
+    assert_eq!(w.warnings[0].code, braid::warning::WarningCode::WaveClash);
     // Half-year rounds separate C's visits.
     let half = waves(&panel, WaveRule::Calendar { length: 0.5 }, &by_birth.labels).unwrap();
     assert_eq!(half.labels.join(" "), "1 3 5 1 5 1 2");
@@ -269,8 +276,10 @@ fn cohorts_and_waves_derived_from_dates_follow_the_stated_rule() {
     // And the design report uses the derived labels and states the rules.
     let report = inspect(&panel, DesignOptions::default()).unwrap();
     assert_eq!(report.cohorts.len(), 2);
-    assert!(report.cohort_rule.to_string().contains("year of birth") && report.wave_rule.to_string().contains("rounds"));
-    assert!(report.warnings.iter().any(|w| w.contains("'C'")));
+    assert!(
+        report.cohort_rule.to_string().contains("year of birth") && report.wave_rule.to_string().contains("rounds")
+    );
+    assert!(report.warnings.iter().any(|w| w.message.contains("'C'")));
 }
 
 // Without dates: a period column alone makes cohort = period − age exact by
