@@ -684,7 +684,10 @@ pub fn newton_polish_with(
                 hess = Some((free.clone(), h));
             }
         }
-        let h = &hess.as_ref().expect("set above").1;
+        // Set above: either fresh (computed now) or kept from a step with the same free set.
+        let Some((_, h)) = hess.as_ref() else {
+            break;
+        };
         let gf: Vec<f64> = free.iter().map(|&i| g[i]).collect();
         let Some(step) = newton_direction(h, &gf) else {
             decrement = None;

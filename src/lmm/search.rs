@@ -76,8 +76,6 @@ pub(super) fn descend(
     // positive curvature), the search resumes with a tighter tolerance.
     let mut evaluations = 0;
     let mut iterations = 0;
-    let mut x = start.to_vec();
-    let mut polished = None;
     // With an exact gradient a search iteration is cheap and converges
     // superlinearly, so the search goes on until the finish needs only its
     // certifying stencil (which Satterthwaite's derivatives then reuse).
@@ -86,11 +84,11 @@ pub(super) fn descend(
     } else {
         optim.value_tolerance
     };
-    for tolerance in [first, optim.value_tolerance * 1e-3, optim.value_tolerance * 1e-6] {
+    let mut round = |from: &[f64], tolerance: f64| {
         let result = optimize::minimize_with(
             dev,
             grad,
-            &x,
+            from,
             lower,
             OptimOptions {
                 value_tolerance: tolerance,
@@ -101,14 +99,16 @@ pub(super) fn descend(
         evaluations += result.evaluations;
         let p = optimize::newton_polish_with(dev, grad, hess_at, &result.x, result.value, lower);
         evaluations += p.evaluations;
-        x = p.x.clone();
-        let done = p.decrement.is_some_and(|d| d < NEWTON_DECREMENT_TOLERANCE);
-        polished = Some(p);
-        if done {
+        p
+    };
+    let done = |p: &optimize::Polished| p.decrement.is_some_and(|d| d < NEWTON_DECREMENT_TOLERANCE);
+    let mut polished = round(start, first);
+    for tolerance in [optim.value_tolerance * 1e-3, optim.value_tolerance * 1e-6] {
+        if done(&polished) {
             break;
         }
+        polished = round(&polished.x.clone(), tolerance);
     }
-    let mut polished = polished.expect("at least one round");
     let mut theta = polished.x.clone();
     // The criterion is even in each diagonal entry of T near zero, so a zero
     // variance is approached smoothly and the optimiser stops a hair inside
