@@ -65,7 +65,7 @@ fn main() {
     let json = serde_json::to_string_pretty(&report).unwrap();
     let t_json = t.elapsed();
     println!("report {t_report:?}, JSON {t_json:?} ({} bytes)", json.len());
-    println!("rows {}, participants {}", panel.n(), panel.id.n_levels());
+    println!("rows {}, participants {}", panel.n(), panel.id().n_levels());
     println!(
         "load {:?}, frame {:?}, cross-products {:?}, one evaluation {:?}",
         t_load, t_frame, t_cross, t_eval

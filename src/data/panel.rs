@@ -6,6 +6,7 @@ use std::path::PathBuf;
 use serde::Serialize;
 
 use super::{FastMap, Roles};
+use crate::error::{Error, Result};
 
 /// The sort key of a label: its value when it reads as a number (numbers
 /// first, by value), then the text. One order for every table and figure.
@@ -23,9 +24,9 @@ pub fn label_order(a: &str, b: &str) -> std::cmp::Ordering {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Codes {
     /// The distinct labels, in level order.
-    pub levels: Vec<String>,
+    pub(crate) levels: Vec<String>,
     /// The level of each row.
-    pub codes: Vec<u32>,
+    pub(crate) codes: Vec<u32>,
 }
 
 impl Codes {
@@ -61,7 +62,17 @@ impl Codes {
         Codes { levels, codes }
     }
 
-    /// Number of levels.
+    /// The distinct labels, in level order.
+    pub fn levels(&self) -> &[String] {
+        &self.levels
+    }
+
+    /// The level of each row (each below [`Codes::n_levels`]).
+    pub fn codes(&self) -> &[u32] {
+        &self.codes
+    }
+
+    /// The number of levels.
     pub fn n_levels(&self) -> usize {
         self.levels.len()
     }
@@ -116,35 +127,41 @@ impl DropReport {
 }
 
 /// A validated long-format panel: one row per participant per assessment.
+///
+/// Built only by [`crate::data::load`] (and the seeded simulator), and
+/// changed only through the validating transformations below, so that every
+/// analysis can rely on its invariants: finite ages and outcomes, every code
+/// inside its levels, at least two participants, one row per participant and
+/// wave. Its parts are read through the accessors.
 #[derive(Debug, Clone)]
 pub struct Panel {
     /// The file it came from.
-    pub source: PathBuf,
+    pub(crate) source: PathBuf,
     /// The column roles.
-    pub roles: Roles,
+    pub(crate) roles: Roles,
     /// Data rows in the file.
-    pub n_rows_read: usize,
+    pub(crate) n_rows_read: usize,
     /// Rows left out and why.
-    pub dropped: DropReport,
+    pub(crate) dropped: DropReport,
     /// For each kept row, its 1-based data-row number in the file.
-    pub row: Vec<usize>,
+    pub(crate) row: Vec<usize>,
     /// Participants (levels in order of first appearance).
-    pub id: Codes,
+    pub(crate) id: Codes,
     /// Exact age in years.
-    pub age: Vec<f64>,
+    pub(crate) age: Vec<f64>,
     /// Outcome.
-    pub outcome: Vec<f64>,
+    pub(crate) outcome: Vec<f64>,
     /// Cohort, if given.
-    pub cohort: Option<Codes>,
+    pub(crate) cohort: Option<Codes>,
     /// Wave, if given.
-    pub wave: Option<Codes>,
+    pub(crate) wave: Option<Codes>,
     /// Cluster, if given.
-    pub cluster: Option<Codes>,
+    pub(crate) cluster: Option<Codes>,
     /// Covariates, in the order given.
-    pub covariates: Vec<Covariate>,
+    pub(crate) covariates: Vec<Covariate>,
     /// With ages from dates: the assessment date and the birth date of each
     /// row as decimal calendar years (year + elapsed share of that year).
-    pub calendar: Option<Calendar>,
+    pub(crate) calendar: Option<Calendar>,
 }
 
 /// Calendar time of each row: from dates, or from period and birth-year columns.
@@ -188,5 +205,181 @@ impl Panel {
     /// Number of rows kept.
     pub fn n(&self) -> usize {
         self.age.len()
+    }
+}
+
+impl Panel {
+    /// The file it came from.
+    pub fn source(&self) -> &std::path::Path {
+        &self.source
+    }
+
+    /// The column roles.
+    pub fn roles(&self) -> &Roles {
+        &self.roles
+    }
+
+    /// Data rows in the file.
+    pub fn n_rows_read(&self) -> usize {
+        self.n_rows_read
+    }
+
+    /// Rows left out and why.
+    pub fn dropped(&self) -> DropReport {
+        self.dropped
+    }
+
+    /// For each kept row, its 1-based data-row number in the file.
+    pub fn rows(&self) -> &[usize] {
+        &self.row
+    }
+
+    /// Participants.
+    pub fn id(&self) -> &Codes {
+        &self.id
+    }
+
+    /// Exact age in years, per row.
+    pub fn age(&self) -> &[f64] {
+        &self.age
+    }
+
+    /// The outcome, per row.
+    pub fn outcome(&self) -> &[f64] {
+        &self.outcome
+    }
+
+    /// Cohort, if given.
+    pub fn cohort(&self) -> Option<&Codes> {
+        self.cohort.as_ref()
+    }
+
+    /// Wave, if given.
+    pub fn wave(&self) -> Option<&Codes> {
+        self.wave.as_ref()
+    }
+
+    /// Cluster, if given.
+    pub fn cluster(&self) -> Option<&Codes> {
+        self.cluster.as_ref()
+    }
+
+    /// Covariates, in the order given.
+    pub fn covariates(&self) -> &[Covariate] {
+        &self.covariates
+    }
+
+    /// Calendar times, when the file gives them.
+    pub fn calendar(&self) -> Option<&Calendar> {
+        self.calendar.as_ref()
+    }
+
+    /// The same panel with its rows in the order `order` (a permutation of
+    /// the rows), participants coded in their new order of first appearance.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] when `order` is not a permutation of the rows.
+    pub fn reordered(&self, order: &[usize]) -> Result<Panel> {
+        let n = self.n();
+        let mut seen = vec![false; n];
+        if order.len() != n || order.iter().any(|&r| r >= n || std::mem::replace(&mut seen[r], true)) {
+            return Err(Error::Spec {
+                parameter: "order".into(),
+                message: format!("not a permutation of the {n} rows"),
+            });
+        }
+        let pick = |c: &Codes, sort: bool| {
+            Codes::from_strs(order.iter().map(|&r| c.levels[c.codes[r] as usize].as_str()), sort)
+        };
+        let pick_f = |v: &[f64]| order.iter().map(|&r| v[r]).collect::<Vec<f64>>();
+        Ok(Panel {
+            row: order.iter().map(|&r| self.row[r]).collect(),
+            id: pick(&self.id, false),
+            age: pick_f(&self.age),
+            outcome: pick_f(&self.outcome),
+            cohort: self.cohort.as_ref().map(|c| pick(c, true)),
+            wave: self.wave.as_ref().map(|c| pick(c, true)),
+            cluster: self.cluster.as_ref().map(|c| pick(c, true)),
+            covariates: self
+                .covariates
+                .iter()
+                .map(|c| Covariate {
+                    name: c.name.clone(),
+                    values: match &c.values {
+                        CovariateValues::Numeric(v) => CovariateValues::Numeric(pick_f(v)),
+                        CovariateValues::Categorical(k) => CovariateValues::Categorical(pick(k, true)),
+                    },
+                })
+                .collect(),
+            calendar: self.calendar.as_ref().map(|c| Calendar {
+                period: pick_f(&c.period),
+                birth: pick_f(&c.birth),
+                source: c.source,
+            }),
+            ..self.clone()
+        })
+    }
+
+    /// The same panel with new ages, one per row (for example in months).
+    /// With calendar times, the period of each row is kept and the birth time
+    /// follows as period − age.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] when there is not one age per row, a new age is not
+    /// finite, or all are equal.
+    pub fn with_ages(&self, age: Vec<f64>) -> Result<Panel> {
+        if age.len() != self.n() {
+            return Err(Error::Spec {
+                parameter: "age".into(),
+                message: format!("{} ages for {} rows; give one per row", age.len(), self.n()),
+            });
+        }
+        if let Some(a) = age.iter().find(|a| !a.is_finite()) {
+            return Err(Error::Spec {
+                parameter: "age".into(),
+                message: format!("a new age {a} is not finite"),
+            });
+        }
+        if age.iter().all(|&a| a == age[0]) {
+            return Err(Error::Spec {
+                parameter: "age".into(),
+                message: "every new age is the same; a trajectory needs ages that differ".into(),
+            });
+        }
+        let calendar = self.calendar.as_ref().map(|c| Calendar {
+            birth: c.period.iter().zip(&age).map(|(p, a)| p - a).collect(),
+            period: c.period.clone(),
+            source: c.source,
+        });
+        Ok(Panel {
+            age,
+            calendar,
+            ..self.clone()
+        })
+    }
+
+    /// The same panel as if the file gave no calendar times.
+    pub fn without_calendar(&self) -> Panel {
+        Panel {
+            calendar: None,
+            ..self.clone()
+        }
+    }
+
+    /// The same panel with participant `k` renamed `labels[k]` (one new,
+    /// distinct label per participant), coded anew with sorted levels.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] when the labels are not one distinct label per participant.
+    pub fn with_id_labels(&self, labels: &[String]) -> Result<Panel> {
+        let distinct: std::collections::HashSet<&String> = labels.iter().collect();
+        if labels.len() != self.id.n_levels() || distinct.len() != labels.len() {
+            return Err(Error::Spec {
+                parameter: "id".into(),
+                message: format!("give {} distinct labels, one per participant", self.id.n_levels()),
+            });
+        }
+        let id = Codes::from_strs(self.id.codes.iter().map(|&k| labels[k as usize].as_str()), true);
+        Ok(Panel { id, ..self.clone() })
     }
 }

@@ -323,15 +323,15 @@ fn a_cohort_sequential_panel_shows_the_problem_and_the_linkage_test() {
         ..braid::simulate::Design::demo()
     });
     let panel = sim.panel(false);
-    let period = panel.calendar.as_ref().unwrap().period.clone();
+    let period = panel.calendar().unwrap().period.clone();
     let t = NumericTable {
         source: "simulated".into(),
-        columns: vec![panel.age.clone(), period, panel.outcome.clone()],
+        columns: vec![panel.age().to_vec(), period, panel.outcome().to_vec()],
         n_rows_read: panel.n(),
         dropped: 0,
         rows: (1..=panel.n()).collect(),
     };
-    let data = intake::from_panel(&t, &panel.id.codes, Some(1.0)).unwrap();
+    let data = intake::from_panel(&t, panel.id().codes(), Some(1.0)).unwrap();
     assert!(
         data.shape.kn < data.shape.a + data.shape.p - 1,
         "corner cohorts are trimmed"
@@ -341,7 +341,7 @@ fn a_cohort_sequential_panel_shows_the_problem_and_the_linkage_test() {
     assert!(report.null_vector_residual < NULL_VECTOR_ABS);
     assert!(report.fitted_max_difference < INVARIANT_ABS);
     let view = report.panel.unwrap();
-    assert_eq!(view.n_participants, panel.id.n_levels());
+    assert_eq!(view.n_participants, panel.id().n_levels());
     assert!(view.period_beyond_cohort.df >= 1.0);
     assert!(view.period_beyond_cohort.p > 0.001, "{:?}", view.period_beyond_cohort);
     assert!(view.text.iter().any(|t| t.contains("converge")));

@@ -208,10 +208,10 @@ fn parquet_twin_of_the_demo_panel_gives_the_same_fit() {
     let roles = braid::simulate::Simulated::roles(true);
     let csv = braid::data::load(&dir.join("panel.csv"), &roles, Default::default()).unwrap();
     let pq = braid::data::load(&dir.join("panel.parquet"), &roles, Default::default()).unwrap();
-    assert_eq!(csv.age, pq.age);
-    assert_eq!(csv.outcome, pq.outcome);
-    assert_eq!(csv.id, pq.id);
-    assert_eq!(csv.cohort, pq.cohort);
+    assert_eq!(csv.age(), pq.age());
+    assert_eq!(csv.outcome(), pq.outcome());
+    assert_eq!(csv.id(), pq.id());
+    assert_eq!(csv.cohort(), pq.cohort());
     let spec = braid::spec::ModelSpec::default();
     let a = crate::common::fit(&csv, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
     let b = crate::common::fit(&pq, &spec, &braid::infer::TrajectoryRequest::grid(5)).unwrap();
@@ -363,12 +363,12 @@ fn a_wide_file_and_its_long_twin_give_identical_fits() {
     let long = braid::data::load(&dir.join("long.csv"), &long_roles, Default::default()).unwrap();
     let wide = braid::data::load(&dir.join("wide.csv"), &wide_roles, Default::default()).unwrap();
     assert_eq!(
-        wide.dropped.missing_outcome,
-        4 * wide.id.n_levels() - long.n(),
+        wide.dropped().missing_outcome,
+        4 * wide.id().n_levels() - long.n(),
         "missed waves are counted as dropped rows"
     );
-    assert_eq!(long.age, wide.age);
-    assert_eq!(long.outcome, wide.outcome);
+    assert_eq!(long.age(), wide.age());
+    assert_eq!(long.outcome(), wide.outcome());
     let spec = braid::spec::ModelSpec::default();
     let grid = braid::infer::TrajectoryRequest::grid(5);
     let a = crate::common::fit(&long, &spec, &grid).unwrap();

@@ -157,14 +157,16 @@ fn fixed_schedule_makes_time_in_study_collinear_with_prior_assessments() {
     let mut design = Design::demo();
     design.per_cohort = 30;
     design.skip = 0.0;
-    let mut panel = simulate(&design).panel(true);
-    let waves = panel.wave.clone().unwrap();
-    let cohorts = panel.cohort.clone().unwrap();
-    for r in 0..panel.n() {
-        let entry: f64 = cohorts.label(r).parse().unwrap();
-        let w: f64 = waves.label(r).parse().unwrap();
-        panel.age[r] = entry + w - 1.0;
-    }
+    let simulated = simulate(&design).panel(true);
+    let (waves, cohorts) = (simulated.wave().unwrap(), simulated.cohort().unwrap());
+    let ages: Vec<f64> = (0..simulated.n())
+        .map(|r| {
+            let entry: f64 = cohorts.label(r).parse().unwrap();
+            let w: f64 = waves.label(r).parse().unwrap();
+            entry + w - 1.0
+        })
+        .collect();
+    let panel = simulated.with_ages(ages).unwrap();
     let report = inspect(&panel, DesignOptions::default()).unwrap();
     assert!(report.collinear.time_retest, "{:?}", report.collinear);
     // The demo's assessment dates vary by ±0.1 year: nearly, not exactly, collinear.
@@ -205,8 +207,7 @@ fn with_dates_age_period_and_cohort_are_reported_collinear() {
     let gap = report.collinear.age_period_cohort_gap.unwrap();
     assert!(gap < 0.01, "{gap}");
     // Without calendar times there is nothing to check it with.
-    let mut undated = simulate(&Design::demo()).panel(true);
-    undated.calendar = None;
+    let undated = simulate(&Design::demo()).panel(true).without_calendar();
     let plain = inspect(&undated, DesignOptions::default()).unwrap();
     assert_eq!(plain.collinear.age_period_cohort, None);
 }

@@ -29,26 +29,12 @@ fn spec(method: Method, center: Option<f64>) -> ModelSpec {
 
 /// A copy of the panel with rows in the order `order`.
 fn reorder(p: &Panel, order: &[usize]) -> Panel {
-    let pick_codes = |c: &braid::data::Codes| {
-        let labels: Vec<String> = order.iter().map(|&r| c.label(r).to_string()).collect();
-        braid::data::Codes::new(&labels, true)
-    };
-    let ids: Vec<String> = order.iter().map(|&r| p.id.label(r).to_string()).collect();
-    Panel {
-        row: order.iter().map(|&r| p.row[r]).collect(),
-        id: braid::data::Codes::new(&ids, false),
-        age: order.iter().map(|&r| p.age[r]).collect(),
-        outcome: order.iter().map(|&r| p.outcome[r]).collect(),
-        cohort: p.cohort.as_ref().map(pick_codes),
-        wave: p.wave.as_ref().map(pick_codes),
-        cluster: p.cluster.as_ref().map(pick_codes),
-        ..p.clone()
-    }
+    p.reordered(order).unwrap()
 }
 
 fn fitted_by_original_row(p: &Panel, fitted: &[f64]) -> Vec<f64> {
     let mut out = vec![0.0; fitted.len()];
-    for (k, &r) in p.row.iter().enumerate() {
+    for (k, &r) in p.rows().iter().enumerate() {
         out[r - 1] = fitted[k];
     }
     out
@@ -74,9 +60,10 @@ fn row_order_and_id_recoding_leave_the_fit_unchanged() {
     let stride = (1..).map(|k| 7919 * k + 1).find(|s| gcd(*s, n) == 1).unwrap();
     let order: Vec<usize> = (0..n).map(|i| (i * stride) % n).collect();
     let shuffled = reorder(&p, &order);
-    let mut recoded = p.clone();
-    let labels: Vec<String> = (0..n).map(|r| format!("child-{}", 100_000 - p.id.codes[r])).collect();
-    recoded.id = braid::data::Codes::new(&labels, true);
+    let labels: Vec<String> = (0..p.id().n_levels())
+        .map(|k| format!("child-{}", 100_000 - k))
+        .collect();
+    let recoded = p.with_id_labels(&labels).unwrap();
     for (what, q) in [("row order", shuffled), ("id recoding", recoded)] {
         let f = crate::common::fit(
             &q,
@@ -113,8 +100,7 @@ fn shifting_age_or_moving_the_centre_leaves_the_fit_unchanged() {
             &braid::infer::TrajectoryRequest::grid(11),
         )
         .unwrap();
-        let mut shifted = p.clone();
-        shifted.age.iter_mut().for_each(|a| *a += 100.0);
+        let shifted = p.with_ages(p.age().iter().map(|a| a + 100.0).collect()).unwrap();
         let f = crate::common::fit(
             &shifted,
             &spec(method, Some(116.0)),
@@ -143,8 +129,7 @@ fn shifting_age_or_moving_the_centre_leaves_the_fit_unchanged() {
 #[test]
 fn rescaling_age_moves_only_the_reml_constant() {
     let p = panel();
-    let mut months = p.clone();
-    months.age.iter_mut().for_each(|a| *a *= 12.0);
+    let months = p.with_ages(p.age().iter().map(|a| a * 12.0).collect()).unwrap();
     for method in [Method::Reml, Method::Ml] {
         let years = crate::common::fit(
             &p,
@@ -179,8 +164,7 @@ fn rescaling_age_moves_only_the_reml_constant() {
 #[test]
 fn spline_with_quantile_knots_is_invariant_to_the_unit_of_age() {
     let p = panel();
-    let mut months = p.clone();
-    months.age.iter_mut().for_each(|a| *a *= 12.0);
+    let months = p.with_ages(p.age().iter().map(|a| a * 12.0).collect()).unwrap();
     let spline = |center| ModelSpec {
         method: Method::Ml,
         age: AgeSpec::Spline {
