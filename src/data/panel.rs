@@ -383,3 +383,35 @@ impl Panel {
         Ok(Panel { id, ..self.clone() })
     }
 }
+
+#[cfg(test)]
+mod transform_tests {
+    use crate::simulate::{Design, simulate};
+
+    // The transformations refuse what would break a panel's invariants.
+    #[test]
+    fn transformations_refuse_what_breaks_a_panel() {
+        let mut design = Design::demo();
+        design.per_cohort = 4;
+        let p = simulate(&design).panel(true);
+        let n = p.n();
+        assert!(p.reordered(&vec![0; n]).is_err(), "a repeated row is not a permutation");
+        assert!(p.reordered(&[0, 1]).is_err());
+        let back: Vec<usize> = (0..n).rev().collect();
+        let r = p.reordered(&back).unwrap();
+        assert_eq!(r.age()[0], p.age()[n - 1]);
+        assert_eq!(r.id().n_levels(), p.id().n_levels());
+        let mut ages = p.age().to_vec();
+        ages[0] = f64::NAN;
+        assert!(p.with_ages(ages).is_err());
+        assert!(p.with_ages(vec![12.0; n]).is_err(), "ages that never differ");
+        assert!(p.with_ages(vec![12.0; n - 1]).is_err());
+        let months = p.with_ages(p.age().iter().map(|a| a * 12.0).collect()).unwrap();
+        let cal = months.calendar().unwrap();
+        assert!((cal.period[0] - cal.birth[0] - months.age()[0]).abs() < 1e-9);
+        assert!(p.with_id_labels(&["a".into()]).is_err());
+        let same = vec!["x".to_string(); p.id().n_levels()];
+        assert!(p.with_id_labels(&same).is_err(), "labels must be distinct");
+        assert!(p.without_calendar().calendar().is_none());
+    }
+}
