@@ -459,26 +459,34 @@ fn converge_writes_tests_shared_ages_verdict_and_figure() {
     expect_one_line_error(&one, "one cohort only", "converge with one cohort");
 }
 
+/// `braid apc` on Holford's table of counts, with further flags.
+fn holford_apc(extra: &[&str]) -> std::process::Output {
+    let table = data_dir().join("holford_prostate.csv");
+    let roles = [
+        "--age",
+        "age",
+        "--period",
+        "period",
+        "--events",
+        "deaths",
+        "--exposure",
+        "population",
+    ];
+    Command::new(braid_bin())
+        .arg("apc")
+        .arg(table)
+        .args(roles)
+        .args(extra)
+        .output()
+        .unwrap()
+}
+
 #[test]
 fn apc_writes_the_identification_report_with_stable_keys() {
     let dir = temp_dir("apc");
     let json = dir.join("apc.json");
-    let out = Command::new(braid_bin())
-        .args(["apc", data_dir().join("holford_prostate.csv").to_str().unwrap()])
-        .args([
-            "--age",
-            "age",
-            "--period",
-            "period",
-            "--events",
-            "deaths",
-            "--exposure",
-            "population",
-        ])
-        .args(["--assume", "period-slope>=0", "--json"])
-        .arg(&json)
-        .output()
-        .unwrap();
+    let json_arg = json.to_str().unwrap();
+    let out = holford_apc(&["--assume", "period-slope>=0", "--json", json_arg]);
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let stdout = String::from_utf8_lossy(&out.stdout);
     for word in ["Deviance", "Identified", "Solutions", "Bounds", "Assumes"] {
@@ -509,21 +517,7 @@ fn apc_writes_the_identification_report_with_stable_keys() {
         assert!(v["solutions"][0].get(key).is_some());
     }
     // A constraint that is not one is a one-line error with exit code 2.
-    let bad = Command::new(braid_bin())
-        .args(["apc", data_dir().join("holford_prostate.csv").to_str().unwrap()])
-        .args([
-            "--age",
-            "age",
-            "--period",
-            "period",
-            "--events",
-            "deaths",
-            "--exposure",
-            "population",
-        ])
-        .args(["--constraint", "equal:age:1"])
-        .output()
-        .unwrap();
+    let bad = holford_apc(&["--constraint", "equal:age:1"]);
     expect_one_line_error(&bad, "--constraint", "apc with a constraint that is not one");
 }
 

@@ -4,7 +4,7 @@ use std::fmt::Write;
 
 use crate::apc::analysis::ApcReport;
 
-use super::{p_is, thousands, title, wrap};
+use super::{labelled, p_is, thousands, title, wrap};
 
 /// The `braid apc` summary.
 pub fn apc_summary(r: &ApcReport) -> String {
@@ -65,14 +65,11 @@ pub fn apc_summary(r: &ApcReport) -> String {
         ""
     );
     for t in &r.curvature_tests {
-        let _ = writeln!(
-            s,
-            "{:<11}no curvature in {}: statistic {:.3} on {} df, {}",
+        let (d, p) = (t.dimension.name(), p_is(t.p));
+        labelled(
+            &mut s,
             "Curvature",
-            t.dimension.name(),
-            t.statistic,
-            t.df,
-            p_is(t.p)
+            format_args!("no curvature in {d}: statistic {:.3} on {} df, {p}", t.statistic, t.df),
         );
     }
     solutions_block(&mut s, r);

@@ -2,7 +2,7 @@
 
 use std::fmt::Write;
 
-use super::{data_line, p_is, pval, title, wrap};
+use super::{data_line, labelled, p_is, pval, rules, section, title, wrap};
 
 /// The `braid converge` summary.
 pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
@@ -16,13 +16,18 @@ pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
         r.cohorts.join(", "),
         r.cohorts.first().map_or("", String::as_str)
     );
-    let _ = writeln!(s, "{:<11}cohorts {}", "Rules", r.cohort_rule);
-    let _ = writeln!(s, "{:<11}level differences measured at age {:.2}", "", r.reference_age);
-    let _ = writeln!(s);
-    let _ = writeln!(
-        s,
-        "{:<12}{:<58}{:>12}{:>6}{:>10}{:>10}",
-        "Models", "", "loglik", "k", "AIC", "BIC"
+    rules(&mut s, &r.cohort_rule, None);
+    labelled(
+        &mut s,
+        "",
+        format_args!("level differences measured at age {:.2}", r.reference_age),
+    );
+    section(
+        &mut s,
+        format_args!(
+            "{:<12}{:<58}{:>12}{:>6}{:>10}{:>10}",
+            "Models", "", "loglik", "k", "AIC", "BIC"
+        ),
     );
     for m in &r.models {
         let _ = writeln!(
@@ -110,16 +115,14 @@ pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
             _ => String::new(),
         };
         let with = t.age_slope_with.map_or("not fitted".to_string(), |w| format!("{w:.3}"));
-        let _ = writeln!(
-            s,
-            "{:<11}{}: {} · R² on the age terms {:.4} · {}linear age term {:.3} without, {} with",
+        let (form, status, without) = (t.form.name(), &t.status, t.age_slope_without);
+        labelled(
+            &mut s,
             "Retest",
-            t.form.name(),
-            t.status,
-            t.r2,
-            est,
-            t.age_slope_without,
-            with
+            format_args!(
+                "{form}: {status} · R² on the age terms {:.4} · {est}linear age term {without:.3} without, {with} with",
+                t.r2
+            ),
         );
     }
     let _ = writeln!(s);

@@ -2,26 +2,26 @@
 
 use std::fmt::Write;
 
-use super::{data_line, title};
+use super::{data_line, rules, section, title};
 
 /// Render the design report of `braid inspect`.
 pub fn design_summary(r: &crate::design::DesignReport) -> String {
     let mut s = String::new();
     title(&mut s, "inspect", &r.data);
     let _ = writeln!(s, "{:<11}{}", "Data", data_line(&r.data));
-    let _ = writeln!(s, "{:<11}cohorts {}", "Rules", r.cohort_rule);
-    let _ = writeln!(s, "{:<11}waves {}", "", r.wave_rule);
+    rules(&mut s, &r.cohort_rule, Some(&r.wave_rule));
     let sp = &r.span;
     let _ = writeln!(
         s,
         "{:<11}ages {:.2} to {:.2} ({:.1} years of age) covered in {:.1} years of follow-up: {:.1} years of age per year",
         "Span", sp.age_from, sp.age_to, sp.age_years, sp.calendar_years, sp.acceleration
     );
-    let _ = writeln!(s);
-    let _ = writeln!(
-        s,
-        "{:<12}{:<8}{:>8}{:>10}{:>10}{:>10}",
-        "Coverage", "wave", "n", "youngest", "median", "oldest"
+    section(
+        &mut s,
+        format_args!(
+            "{:<12}{:<8}{:>8}{:>10}{:>10}{:>10}",
+            "Coverage", "wave", "n", "youngest", "median", "oldest"
+        ),
     );
     for c in &r.cohorts {
         let _ = writeln!(
@@ -37,11 +37,12 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
             );
         }
     }
-    let _ = writeln!(s);
-    let _ = writeln!(
-        s,
-        "{:<24}{:>20}{:>10}{:>10}   link",
-        "Overlap of neighbours", "shared ages", "n (a)", "n (b)"
+    section(
+        &mut s,
+        format_args!(
+            "{:<24}{:>20}{:>10}{:>10}   link",
+            "Overlap of neighbours", "shared ages", "n (a)", "n (b)"
+        ),
     );
     for o in &r.overlap {
         let ages = if o.linked {

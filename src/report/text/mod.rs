@@ -16,6 +16,28 @@ pub use fit::fit_summary;
 
 use crate::data::DataSummary;
 
+/// Width of the left margin that holds each block's heading word.
+const MARGIN: usize = 11;
+
+/// One line of a block: `label` in the left margin, then the text.
+fn labelled(s: &mut String, label: &str, text: std::fmt::Arguments<'_>) {
+    let _ = writeln!(s, "{label:<MARGIN$}{text}");
+}
+
+/// A table's header row after a blank line: the start of every table block.
+fn section(s: &mut String, header: std::fmt::Arguments<'_>) {
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{header}");
+}
+
+/// The rules that gave cohorts (and waves), under the data lines.
+fn rules(s: &mut String, cohort: &crate::data::derive::AppliedRule, wave: Option<&crate::data::derive::AppliedRule>) {
+    labelled(s, "Rules", format_args!("cohorts {cohort}"));
+    if let Some(w) = wave {
+        labelled(s, "", format_args!("waves {w}"));
+    }
+}
+
 /// Width of the rule under a screen's title.
 const RULE_WIDTH: usize = 86;
 
