@@ -49,8 +49,11 @@ pub fn lexis_data(panel: &Panel, report: &DesignReport, cohort_of: &[String]) ->
     let mut cohort_of_person: Vec<usize> = vec![usize::MAX; n_id];
     for (r, c) in cohort_of.iter().enumerate() {
         let k = panel.id.codes[r] as usize;
-        if cohort_of_person[k] == usize::MAX {
-            let j = order.iter().position(|o| o == c).unwrap_or(0);
+        // Every label is one of the report's cohorts; a label that were not
+        // would leave its participant out of the figure rather than misfile it.
+        if cohort_of_person[k] == usize::MAX
+            && let Some(j) = order.iter().position(|o| o == c)
+        {
             cohort_of_person[k] = j;
             members[j].push(k as u32);
         }
