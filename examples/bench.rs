@@ -383,10 +383,7 @@ fn converge(work: &Path) {
         let out: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
         let m3 = out["tests"]
             .as_array()
-            .and_then(|t| {
-                t.iter()
-                    .find(|t| t["name"].as_str().is_some_and(|n| n.starts_with("M3")))
-            })
+            .and_then(|t| t.iter().find(|t| t["kind"] == "cohort_covariance"))
             .map(|t| {
                 format!(
                     "M3 statistic {:.3} on {} df",

@@ -150,10 +150,17 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     let n = panel.n();
     // Cohorts by the same rule as every analysis (data::derive); the rule
     // without options cannot fail, but the cells are then one group.
-    let cohort_of = crate::data::derive::cohorts(panel, crate::data::derive::CohortRule::Auto)
-        .map(|d| d.labels)
-        .unwrap_or_else(|_| vec![String::new(); n]);
-    let cohort_codes = crate::data::Codes::new(&cohort_of, true);
+    // A cohort column is used as coded (what the rule gives, without a
+    // label per row).
+    let cohort_codes = match &panel.cohort {
+        Some(c) => c.clone(),
+        None => {
+            let cohort_of = crate::data::derive::cohorts(panel, crate::data::derive::CohortRule::Auto)
+                .map(|d| d.labels)
+                .unwrap_or_else(|_| vec![String::new(); n]);
+            crate::data::Codes::new(&cohort_of, true)
+        }
+    };
     let cohort_key: Vec<i64> = cohort_codes.codes.iter().map(|&k| i64::from(k)).collect();
     let cohort_label = |k: i64| cohort_codes.levels[k as usize].clone();
     let wave_key = |r: usize| match &panel.wave {
