@@ -5,6 +5,23 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand, ValueEnum};
 
+use crate::apc::analysis::{Assumption, Constraint};
+
+/// A value parsed by the library at the command line, so that a bad rule is
+/// refused with the library's message before any work.
+fn typed<T>(parse: fn(&str) -> crate::Result<T>) -> impl Fn(&str) -> Result<T, String> + Clone + Send + Sync {
+    move |s| {
+        parse(s).map_err(|e| match e {
+            // clap names the value already.
+            crate::Error::Spec { message, .. } => message
+                .strip_prefix(&format!("'{s}': "))
+                .unwrap_or(&message)
+                .to_string(),
+            other => other.to_string(),
+        })
+    }
+}
+
 /// braid: stitch, test and report age trajectories from cohort-sequential studies.
 #[derive(Debug, Parser)]
 #[command(name = "braid", version, about, long_about = None, propagate_version = true)]
@@ -245,11 +262,11 @@ pub struct ApcArgs {
     pub width: Option<f64>,
     /// A just-identifying constraint (repeatable): equal:DIM:L1,L2, zero-slope:DIM or min-norm
     /// [default: equal:age:1,2, equal:cohort:1,2, zero-slope:period and min-norm].
-    #[arg(long = "constraint", value_name = "RULE")]
-    pub constraints: Vec<String>,
+    #[arg(long = "constraint", value_name = "RULE", value_parser = typed(Constraint::parse))]
+    pub constraints: Vec<Constraint>,
     /// An assumption for the bounds (repeatable): DIM-slope>=V, DIM-slope<=V, DIM-slope=V, DIM:nondecreasing or DIM:nonincreasing.
-    #[arg(long = "assume", value_name = "RULE")]
-    pub assumptions: Vec<String>,
+    #[arg(long = "assume", value_name = "RULE", value_parser = typed(Assumption::parse))]
+    pub assumptions: Vec<Assumption>,
     /// Records: also fit the hierarchical model (age polynomial, crossed random period and cohort intercepts).
     #[arg(long, requires = "outcome")]
     pub hierarchical: bool,

@@ -7,7 +7,6 @@ use serde::{Deserialize, Serialize};
 
 use super::args::{ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, RetestArg};
 use crate::FitRequest;
-use crate::apc::analysis::{Assumption, Constraint};
 use crate::apc::{ApcColumns, ApcOptions};
 use crate::data::{ReadOptions, Roles};
 use crate::design::DesignOptions;
@@ -322,19 +321,10 @@ impl ApcArgs {
     /// The data file, the columns, the read options and the validated APC options.
     ///
     /// # Errors
-    /// [`Error::Spec`] for a missing role, a bad delimiter, constraint,
-    /// assumption or width; errors of [`Source::resolve_loose`].
+    /// [`Error::Spec`] for a missing role, a bad delimiter or width; errors of
+    /// [`Source::resolve_loose`]. (Constraints and assumptions are parsed by
+    /// the flags themselves.)
     pub fn options(&self) -> Result<(Source, ApcColumns, ApcOptions)> {
-        let constraints = self
-            .constraints
-            .iter()
-            .map(|c| Constraint::parse(c))
-            .collect::<Result<_>>()?;
-        let assumptions = self
-            .assumptions
-            .iter()
-            .map(|c| Assumption::parse(c))
-            .collect::<Result<_>>()?;
         let source = Source::resolve_loose(&self.input)?;
         let r = &source.roles;
         let nonempty = |s: &String| Some(s.clone()).filter(|s| !s.is_empty());
@@ -359,7 +349,12 @@ impl ApcArgs {
                 message: "name the `outcome` column (records), or `events` with `exposure` (a table of counts)".into(),
             });
         }
-        let options = ApcOptions::new(self.width, constraints, assumptions, self.hierarchical)?;
+        let options = ApcOptions::new(
+            self.width,
+            self.constraints.clone(),
+            self.assumptions.clone(),
+            self.hierarchical,
+        )?;
         Ok((source, columns, options))
     }
 }
