@@ -16,6 +16,8 @@ pub enum WarningCode {
     ThinOverlap,
     /// Those who left differ from those who stayed at baseline.
     SelectiveDropout,
+    /// Exact ages and calendar times were grouped for an APC analysis.
+    GroupedExactAges,
 }
 
 /// A warning: its code and its message.

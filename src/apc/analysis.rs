@@ -102,6 +102,10 @@ pub enum OutcomeKind {
 pub struct ApcReport {
     /// What was read and used.
     pub data: crate::data::DataSummary,
+    /// Warnings in plain words.
+    pub warnings: Vec<crate::warning::Warning>,
+    /// The code of each warning, in the same order.
+    pub warning_codes: Vec<crate::warning::WarningCode>,
     /// The settings that produced the report.
     pub options: super::ApcOptions,
     /// Counts with exposure, or a continuous outcome.
@@ -327,9 +331,11 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
     } else {
         Some(bounds::bounds(s, &b0, &v, assumptions))
     };
-    let notes = assumptions_of(data.family, bounds.is_some());
+    let notes = assumptions_of(data.family, data.ids.is_some(), bounds.is_some());
     Ok(ApcReport {
         data: crate::data::DataSummary::default(),
+        warnings: Vec::new(),
+        warning_codes: Vec::new(),
         options: super::ApcOptions::default(),
         outcome: match data.family {
             Family::Poisson => OutcomeKind::Counts,
@@ -364,7 +370,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
 }
 
 /// What every number of the report rests on, in words.
-fn assumptions_of(family: Family, with_bounds: bool) -> Vec<String> {
+fn assumptions_of(family: Family, panel: bool, with_bounds: bool) -> Vec<String> {
     let mut notes = vec![
         "Age, period and cohort are exactly collinear (cohort = period − age): the linear trends of the three are not \
          identified, and each constrained solution rests on its constraint, which the data cannot test (Holford 1983)."
@@ -379,7 +385,13 @@ fn assumptions_of(family: Family, with_bounds: bool) -> Vec<String> {
             .to_string(),
         "Associations are not causes: age, period and cohort effects describe these data, not mechanisms.".into(),
     ];
-    if family == Family::Gaussian {
+    if family == Family::Gaussian && panel {
+        notes.push(
+            "A continuous outcome is fitted by ML with a random intercept per participant and one residual \
+             variance: a participant's records are correlated, participants are independent."
+                .into(),
+        );
+    } else if family == Family::Gaussian {
         notes.push(
             "A continuous outcome is fitted by least squares with one residual variance; records are independent."
                 .into(),

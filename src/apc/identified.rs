@@ -31,6 +31,9 @@ pub struct CurvatureTest {
     pub statistic: f64,
     /// Numerator df: levels − 2.
     pub df: usize,
+    /// Denominator df of the F test (continuous outcomes); absent for χ².
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub df_denominator: Option<usize>,
     /// p-value.
     pub p: f64,
 }
@@ -200,6 +203,7 @@ fn curvature_test(
         dimension: d,
         statistic,
         df: m,
+        df_denominator: (family == Family::Gaussian).then_some(df_resid.max(1)),
         p,
     }
 }

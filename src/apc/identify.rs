@@ -11,6 +11,7 @@ use super::analysis::{self, ApcData, ApcReport, Assumption, Constraint};
 use super::{hierarchical, intake};
 use crate::data::{self, DataSummary, NumericTable, Panel, ReadOptions, Roles};
 use crate::error::{Error, Result};
+use crate::warning::{Warning, WarningCode};
 
 /// The columns an APC analysis reads, by role.
 #[derive(Debug, Clone, Default, PartialEq)]
@@ -260,9 +261,30 @@ pub fn identify(input: &ApcInput, options: &ApcOptions) -> Result<ApcReport> {
         };
         report.hierarchical = Some(hierarchical::fit(t, &data)?);
     }
+    if input.records().is_some() {
+        report.warnings.push(grouping_warning(&data));
+    }
+    report.warning_codes = crate::warning::codes(&report.warnings);
     report.data = input.summary();
     report.options = options.clone();
     Ok(report)
+}
+
+/// What grouping exact ages and calendar times does, and how the groups were formed.
+fn grouping_warning(data: &ApcData) -> Warning {
+    let (w, (a0, p0)) = (data.width, data.origin);
+    let (a, p) = (data.shape.a, data.shape.p);
+    let years = if w == 1.0 { "year" } else { "years" };
+    Warning::new(
+        WarningCode::GroupedExactAges,
+        format!(
+            "exact ages and calendar times were grouped: {a} age groups of {w} {years} from age {a0}, {p} periods of \
+             {w} {years} from {p0}, and cohort group = period group − age group. Inside a group, records of one cohort \
+             group sit at different exact ages, so a steep age curve leaks into the period and cohort second \
+             differences and their curvature tests, which can then reject without any period or cohort effect; \
+             read them with care"
+        ),
+    )
 }
 
 /// The age × period cells of the input.

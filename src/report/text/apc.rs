@@ -10,35 +10,60 @@ use super::{labelled, p_is, thousands, title, wrap};
 pub fn apc_summary(r: &ApcReport) -> String {
     let mut s = String::new();
     title(&mut s, "apc", &r.data);
-    let _ = writeln!(
-        s,
-        "{:<11}{} ({} observations) · {} age groups × {} periods → {} cohorts",
+    let model = if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
+        "a table of counts with exposure, Poisson log-linear"
+    } else if r.panel.is_some() {
+        "panel records, linear mixed model with a random intercept per participant, fitted by ML"
+    } else {
+        "records with a continuous outcome, least squares"
+    };
+    labelled(
+        &mut s,
         "Data",
-        if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
-            "a table of counts with exposure, Poisson log-linear"
-        } else if r.panel.is_some() {
-            "panel records, linear mixed model with a random intercept per participant (ML)"
-        } else {
-            "records with a continuous outcome, least squares"
-        },
-        thousands(r.n_obs),
-        r.shape.a,
-        r.shape.p,
-        r.shape.a + r.shape.p - 1
+        format_args!("{model} · {} observations", thousands(r.n_obs)),
     );
-    let _ = writeln!(
-        s,
-        "{:<11}rank deficiency {} (max |X·v| = {:.1e}); null vector in sum-to-zero coding (Kupper et al. 1985):",
-        "Design", r.rank_deficiency, r.null_vector_residual
+    let (a, p, kn) = (r.shape.a, r.shape.p, r.shape.kn);
+    let possible = a + p - 1;
+    let cohorts = if kn == possible {
+        format!("{kn} cohorts")
+    } else {
+        format!("{kn} observed of {possible} possible cohorts")
+    };
+    labelled(&mut s, "", format_args!("{a} age groups × {p} periods → {cohorts}"));
+    let residual = if r.null_vector_residual < 1e-12 {
+        "below 1e-12".to_string()
+    } else {
+        format!("{:.1e}", r.null_vector_residual)
+    };
+    labelled(
+        &mut s,
+        "Design",
+        format_args!(
+            "rank deficiency {} (max |X·v| {residual}); null vector in sum-to-zero coding (Kupper et al. 1985):",
+            r.rank_deficiency
+        ),
     );
     let line: Vec<String> = r
         .null_vector
         .iter()
         .skip(1)
-        .map(|t| format!("{:+.1}", t.value))
+        // No-break spaces keep each term with its value when the line wraps.
+        .map(|t| format!("{}\u{a0}{},", t.term.replace(' ', "\u{a0}"), signed(t.value)))
         .collect();
-    let _ = writeln!(s, "{:<11}{}", "", wrap(&line.join(" "), 75, 11));
+    let joined = line.join(" ");
+    let _ = writeln!(s, "{:<11}{}", "", wrap(joined.trim_end_matches(','), 75, 11));
     let _ = writeln!(s);
+    for (i, w) in r.warnings.iter().enumerate() {
+        let _ = writeln!(
+            s,
+            "{:<11}{}",
+            if i == 0 { "Warning" } else { "" },
+            wrap(&w.message, 75, 11)
+        );
+    }
+    if !r.warnings.is_empty() {
+        let _ = writeln!(s);
+    }
     let kind = if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
         "(Poisson deviance)"
     } else if r.panel.is_some() {
@@ -66,11 +91,11 @@ pub fn apc_summary(r: &ApcReport) -> String {
     );
     for t in &r.curvature_tests {
         let (d, p) = (t.dimension.name(), p_is(t.p));
-        labelled(
-            &mut s,
-            "Curvature",
-            format_args!("no curvature in {d}: statistic {:.3} on {} df, {p}", t.statistic, t.df),
-        );
+        let stat = match t.df_denominator {
+            Some(den) => format!("F = {:.3} on ({}, {}) df", t.statistic, t.df, thousands(den)),
+            None => format!("χ² = {:.3} on {} df", t.statistic, t.df),
+        };
+        labelled(&mut s, "Curvature", format_args!("no curvature in {d}: {stat}, {p}"));
     }
     solutions_block(&mut s, r);
     bounds_block(&mut s, r);
@@ -92,6 +117,7 @@ fn solutions_block(s: &mut String, r: &ApcReport) {
         "{:<11}every solution is b₀ + t·v; b₀ is the minimum-norm solution",
         "Solutions"
     );
+    let _ = writeln!(s, "  {:<58}{:>9}{:>27}", "", "", "slope per group step");
     let _ = writeln!(
         s,
         "  {:<58}{:>9}{:>9}{:>9}{:>9}",
@@ -101,17 +127,17 @@ fn solutions_block(s: &mut String, r: &ApcReport) {
         let slope = |d: &str| sol.slopes.iter().find(|x| x.term == d).map_or(f64::NAN, |x| x.value);
         let _ = writeln!(
             s,
-            "  {:<58}{:>9.4}{:>9.4}{:>9.4}{:>9.4}",
+            "  {:<58}{:>9}{:>9}{:>9}{:>9}",
             sol.constraint,
-            sol.t,
-            slope("age"),
-            slope("period"),
-            slope("cohort")
+            fixed4(sol.t),
+            fixed4(slope("age")),
+            fixed4(slope("period")),
+            fixed4(slope("cohort"))
         );
     }
     let _ = writeln!(
         s,
-        "{:<11}(slopes per group step; the level effects of each solution are in the JSON; fitted values agree to {:.1e})",
+        "{:<11}(the level effects of each solution are in the JSON; fitted values agree to {:.1e})",
         "", r.fitted_max_difference
     );
 }
@@ -194,4 +220,16 @@ fn records_block(s: &mut String, r: &ApcReport) {
         );
         let _ = writeln!(s, "{:<11}{}", "", wrap(&h.caution, 75, 11));
     }
+}
+
+/// A signed value with one decimal and no negative zero.
+fn signed(v: f64) -> String {
+    let v = if v.abs() < 0.05 { 0.0 } else { v };
+    format!("{v:+.1}")
+}
+
+/// Four decimals, with no negative zero.
+fn fixed4(v: f64) -> String {
+    let text = format!("{v:.4}");
+    if text == "-0.0000" { "0.0000".into() } else { text }
 }

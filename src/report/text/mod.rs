@@ -127,7 +127,8 @@ fn num(x: f64, width: usize, dec: usize) -> String {
 fn wrap(text: &str, width: usize, indent: usize) -> String {
     let mut out = String::new();
     let mut line = 0;
-    for word in text.split_whitespace() {
+    // Breaks at ordinary spaces only: a no-break space holds its words together.
+    for word in text.split([' ', '\n', '\t']).filter(|w| !w.is_empty()) {
         if line > 0 && line + 1 + word.chars().count() > width {
             out.push('\n');
             out.push_str(&" ".repeat(indent));
