@@ -60,6 +60,20 @@ pub fn r_squared(y: &[f64], x: &[&[f64]]) -> f64 {
     (explained / syy).clamp(0.0, 1.0)
 }
 
+/// A count with thousands separators (1,200), as every screen and model
+/// description writes counts.
+pub fn thousands(n: usize) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, ch) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i).is_multiple_of(3) {
+            out.push(',');
+        }
+        out.push(ch);
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -78,6 +92,8 @@ mod tests {
         assert!((r_squared(&y, &[&a]) - expected).abs() < 1e-12);
         assert!((r_squared(&y, &[&a, &a]) - expected).abs() < 1e-12);
         assert!((r_squared(&y, &[&a, &b]) - 1.0).abs() < 1e-12);
+        assert_eq!(thousands(1_234_567), "1,234,567");
+        assert_eq!(thousands(999), "999");
         let (m, v) = mean_var(&[1.0, 2.0, 3.0, 4.0]);
         assert_eq!((m, v), (2.5, 5.0 / 3.0));
     }

@@ -358,10 +358,15 @@ fn describe(panel: &Panel, basis: &AgeBasis, terms: &[RandomTermData], method: c
             })
             .collect::<Vec<_>>()
             .join(" and ");
+        let structure = if t.columns.len() == 1 {
+            "one variance"
+        } else {
+            "unstructured covariance"
+        };
         description.push(format!(
-            "random {what} per {} ({} levels), unstructured covariance",
+            "random {what} per {} ({} levels), {structure}",
             t.factor,
-            t.n_levels()
+            crate::stats::thousands(t.n_levels())
         ));
     }
     description.push(format!("fitted by {}", method.label()));

@@ -30,17 +30,27 @@ pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
         ),
     );
     for m in &r.models {
+        // Information criteria compare fits of one criterion only: the ML
+        // fits of the nested sequence.
+        let (aic, bic) = if m.method == "ML" {
+            (format!("{:.1}", m.aic), format!("{:.1}", m.bic))
+        } else {
+            ("—".to_string(), "—".to_string())
+        };
         let _ = writeln!(
             s,
-            "  {:<10}{:<58}{:>12.3}{:>6}{:>10.1}{:>10.1}",
+            "  {:<10}{:<58}{:>12.3}{:>6}{:>10}{:>10}",
             m.name,
             format!("{} ({})", m.description, m.method),
             m.loglik,
             m.n_params,
-            m.aic,
-            m.bic
+            aic,
+            bic
         );
     }
+    let note = "(AIC and BIC compare the ML fits only; a REML log-likelihood compares only models with the same \
+                fixed effects)";
+    labelled(&mut s, "", format_args!("{}", wrap(note, 75, 11)));
     if let Some(first) = r.cohort_variances.first() {
         let _ = writeln!(s);
         let _ = write!(s, "{:<12}{:<14}", "Under M3", "cohort");
@@ -57,13 +67,20 @@ pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
         }
     }
     let _ = writeln!(s);
-    let _ = writeln!(s, "{:<12}{:<50}{:>10}{:>12}{:>10}", "Tests", "", "statistic", "df", "p");
+    let _ = writeln!(
+        s,
+        "{:<12}{:<46}{:>18}{:>12}{:>8}",
+        "Tests", "", "against", "statistic", "p"
+    );
     for t in &r.tests {
-        let df = match t.df_denominator {
-            Some(d) => format!("{}, {:.1}", t.df, d),
-            None => format!("{}", t.df),
-        };
-        let _ = writeln!(s, "  {:<58}{:>10.3}{:>12}{:>10}", t.name, t.statistic, df, pval(t.p));
+        let _ = writeln!(
+            s,
+            "  {:<56}{:>18}{:>12.3}{:>8}",
+            t.name,
+            t.method.reference(),
+            t.statistic,
+            pval(t.p)
+        );
     }
     let _ = writeln!(s);
     let _ = writeln!(

@@ -19,8 +19,8 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
     section(
         &mut s,
         format_args!(
-            "{:<12}{:<8}{:>8}{:>10}{:>10}{:>10}",
-            "Coverage", "wave", "n", "youngest", "median", "oldest"
+            "Coverage\n  {:<10}{:<8}{:>8}{:>10}{:>10}{:>10}",
+            "cohort", "wave", "n", "youngest", "median", "oldest"
         ),
     );
     for c in &r.cohorts {
@@ -37,6 +37,7 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
             );
         }
     }
+    bands_block(&mut s, r);
     section(
         &mut s,
         format_args!(
@@ -67,7 +68,7 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
         );
     }
     let _ = writeln!(s);
-    let _ = writeln!(s, "{:<12}{:<8}{:>8}{:>10}", "Retention", "wave", "n", "share");
+    let _ = writeln!(s, "Retention\n  {:<10}{:<8}{:>8}{:>10}", "cohort", "wave", "n", "share");
     let mut last = "";
     for t in &r.retention {
         let head = if t.cohort != last { t.cohort.as_str() } else { "" };
@@ -97,7 +98,7 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
     }
     let _ = writeln!(
         s,
-        "{:<11}time in study on prior assessments: R² = {:.4}",
+        "{:<11}time in study against the number of prior assessments: R² = {:.4}",
         "Collinear", r.collinear.time_retest_r2
     );
     for n in &r.collinear.notes {
@@ -109,4 +110,53 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
     let _ = writeln!(s);
     let _ = writeln!(s, "{:<11}{}", "Caution", crate::report::CAUTIONS[2]);
     s
+}
+
+/// At most this many age bands are printed as columns; wider tables are in
+/// the JSON and the coverage chart.
+const MAX_BAND_COLUMNS: usize = 14;
+
+/// Observations per cohort and age band (the `band` width), cohorts down and
+/// bands across; a band a cohort never reached is left blank.
+fn bands_block(s: &mut String, r: &crate::design::DesignReport) {
+    let mut starts: Vec<f64> = r.bands.iter().map(|b| b.age_from).collect();
+    starts.sort_by(f64::total_cmp);
+    starts.dedup();
+    let width = r.options.band_width;
+    let _ = writeln!(s);
+    if starts.len() > MAX_BAND_COLUMNS {
+        let _ = writeln!(
+            s,
+            "{:<11}{} age bands of {width} years: too many to print; see design.json and the coverage chart",
+            "Age bands",
+            starts.len()
+        );
+        return;
+    }
+    let label = |a: f64| {
+        if (a - a.round()).abs() < 1e-9 {
+            format!("{a:.0}")
+        } else {
+            format!("{a:.1}")
+        }
+    };
+    let unit = if width == 1.0 { "year" } else { "years" };
+    let _ = writeln!(s, "Observations per age band of {width} {unit} (band start)");
+    let _ = write!(s, "  {:<10}", "cohort");
+    for &a in &starts {
+        let _ = write!(s, "{:>6}", label(a));
+    }
+    let _ = writeln!(s);
+    for c in &r.cohorts {
+        let mut row = format!("  {:<10}", c.cohort);
+        for &a in &starts {
+            let n = r
+                .bands
+                .iter()
+                .find(|b| b.cohort == c.cohort && b.age_from == a)
+                .map(|b| b.n);
+            let _ = write!(row, "{:>6}", n.map(|n| n.to_string()).unwrap_or_default());
+        }
+        let _ = writeln!(s, "{}", row.trim_end());
+    }
 }

@@ -67,18 +67,35 @@ fn fixed_block(s: &mut String, r: &FitReport, truth: Option<&[(String, f64)]>) {
         s,
         "  SE: generalized least squares at the estimates; df: Satterthwaite; p: two-sided t test"
     );
+    let center = r.basis.center();
+    let c = if (center - center.round()).abs() < 1e-9 {
+        format!("{center:.0}")
+    } else {
+        format!("{center:.2}")
+    };
+    let _ = writeln!(
+        s,
+        "  the {age} terms are in ({age} − {c}): the intercept is the mean at {age} {c}",
+        age = r.data.age
+    );
     let _ = writeln!(s);
 }
 
 /// The random effects and the residual, with the truth of a simulation beside them.
 fn random_block(s: &mut String, r: &FitReport, truth: Option<&[(String, f64)]>) {
+    let find = |key: &str| truth.and_then(|tv| tv.iter().find(|(k, _)| k == key)).map(|(_, v)| *v);
     let _ = writeln!(
         s,
-        "{:<28}{:>11}   correlations{}",
+        "{:<28}{:>11}{:>11}{}",
         "Random effects",
+        "variance",
         "SD",
-        if truth.is_some() { "            truth SD" } else { "" }
+        if truth.is_some() { "   truth SD" } else { "" }
     );
+    let row = |s: &mut String, head: &str, term: &str, sd: f64, t: Option<f64>| {
+        let t = t.map(|v| format!("{v:>11.4}")).unwrap_or_default();
+        let _ = writeln!(s, "  {head:<16}{term:<10}{}{}{t}", num(sd * sd, 11, 4), num(sd, 11, 4));
+    };
     for comp in &r.random {
         for (i, term) in comp.terms.iter().enumerate() {
             let head = if i == 0 {
@@ -86,37 +103,30 @@ fn random_block(s: &mut String, r: &FitReport, truth: Option<&[(String, f64)]>) 
             } else {
                 String::new()
             };
-            let cors: Vec<String> = (0..i).map(|j| num(comp.correlation[i][j], 6, 3)).collect();
-            let key = format!("sd:{}:{}", comp.factor, term);
-            let mut t = truth
-                .and_then(|tv| tv.iter().find(|(k, _)| *k == key))
-                .map(|(_, v)| format!("{v:>8.4}"))
-                .unwrap_or_default();
-            let cor_key = format!("cor:{}:{}", comp.factor, term);
-            if let Some((_, v)) = truth.and_then(|tv| tv.iter().find(|(k, _)| *k == cor_key)) {
-                t.push_str(&format!("  (correlation {v:.2})"));
-            }
-            let _ = writeln!(
+            row(
                 s,
-                "  {:<16}{:<10}{}   {:<22}{t}",
-                head,
+                &head,
                 term,
-                num(comp.sd[i], 11, 4),
-                cors.join(" ")
+                comp.sd[i],
+                find(&format!("sd:{}:{}", comp.factor, term)),
             );
         }
+        // Each correlation on its own labelled line.
+        for (i, ti) in comp.terms.iter().enumerate() {
+            for (j, tj) in comp.terms.iter().enumerate().take(i) {
+                let t = find(&format!("cor:{}:{}", comp.factor, ti))
+                    .map(|v| format!(" (truth {v:.2})"))
+                    .unwrap_or_default();
+                let _ = writeln!(
+                    s,
+                    "  {:<16}{tj}–{ti} correlation {}{t}",
+                    "",
+                    num(comp.correlation[i][j], 0, 3)
+                );
+            }
+        }
     }
-    let t = truth
-        .and_then(|tv| tv.iter().find(|(k, _)| k == "sd:residual"))
-        .map(|(_, v)| format!("{v:>8.4}"))
-        .unwrap_or_default();
-    let _ = writeln!(
-        s,
-        "  {:<26}{}   {:<22}{t}",
-        "residual",
-        num(r.residual_variance.sqrt(), 11, 4),
-        ""
-    );
+    row(s, "residual", "", r.residual_variance.sqrt(), find("sd:residual"));
     let _ = writeln!(s);
 }
 

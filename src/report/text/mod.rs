@@ -94,15 +94,7 @@ fn p_is(p: f64) -> String {
 }
 
 pub(crate) fn thousands(n: usize) -> String {
-    let s = n.to_string();
-    let mut out = String::new();
-    for (i, ch) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i).is_multiple_of(3) {
-            out.push(',');
-        }
-        out.push(ch);
-    }
-    out
+    crate::stats::thousands(n)
 }
 
 fn pval(p: f64) -> String {
