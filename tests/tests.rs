@@ -22,5 +22,7 @@ mod linkage; // convergence tests: reference likelihood ratios, size and power
 mod recovery; // seeded simulations recover the known truth
 #[path = "suite/reference.rs"]
 mod reference; // statsmodels MixedLM reference fits on published and simulated data
+#[path = "suite/snapshots.rs"]
+mod snapshots; // every text screen of the demo against its reviewed snapshot
 #[path = "suite/tolerance.rs"]
 mod tolerance; // every tolerance, named, in one place
