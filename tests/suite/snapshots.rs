@@ -17,8 +17,8 @@ fn split_numbers(line: &str) -> (String, Vec<(f64, i32)>) {
     let (mut skeleton, mut numbers) = (String::new(), Vec::new());
     let mut i = 0;
     while i < chars.len() {
-        let starts = chars[i].is_ascii_digit()
-            || (chars[i] == '-' && i + 1 < chars.len() && chars[i + 1].is_ascii_digit());
+        let starts =
+            chars[i].is_ascii_digit() || (chars[i] == '-' && i + 1 < chars.len() && chars[i + 1].is_ascii_digit());
         let after_word = i > 0 && (chars[i - 1].is_alphanumeric() || chars[i - 1] == '_');
         if !starts || after_word {
             skeleton.push(chars[i]);
@@ -55,10 +55,21 @@ fn split_numbers(line: &str) -> (String, Vec<(f64, i32)>) {
 
 fn assert_matches(name: &str, expected: &str, got: &str) {
     let (e, g): (Vec<&str>, Vec<&str>) = (expected.lines().collect(), got.lines().collect());
-    assert_eq!(e.len(), g.len(), "{name}: {} lines expected, {} printed:\n{got}", e.len(), g.len());
+    assert_eq!(
+        e.len(),
+        g.len(),
+        "{name}: {} lines expected, {} printed:\n{got}",
+        e.len(),
+        g.len()
+    );
     for (k, (le, lg)) in e.iter().zip(&g).enumerate() {
         let ((se, ne), (sg, ng)) = (split_numbers(le), split_numbers(lg));
-        assert_eq!(se, sg, "{name} line {}: layout differs\nexpected: {le}\nprinted:  {lg}", k + 1);
+        assert_eq!(
+            se,
+            sg,
+            "{name} line {}: layout differs\nexpected: {le}\nprinted:  {lg}",
+            k + 1
+        );
         for ((a, d), (b, _)) in ne.iter().zip(&ng) {
             let unit = 10f64.powi(-d);
             assert!(
@@ -72,7 +83,11 @@ fn assert_matches(name: &str, expected: &str, got: &str) {
 
 fn screen(args: &[&str], demo: &Path) -> String {
     let out = Command::new(braid_bin()).args(args).output().unwrap();
-    assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     // The demo folder is a temporary path: shown as <demo>.
     String::from_utf8_lossy(&out.stdout).replace(&demo.display().to_string(), "<demo>")
 }
@@ -92,7 +107,18 @@ fn every_text_screen_of_the_demo_matches_its_snapshot() {
         ("converge", vec!["converge", "--study", study]),
         (
             "apc",
-            vec!["apc", panel, "--age", "age", "--period", "year", "--outcome", "score", "--width", "1"],
+            vec![
+                "apc",
+                panel,
+                "--age",
+                "age",
+                "--period",
+                "year",
+                "--outcome",
+                "score",
+                "--width",
+                "1",
+            ],
         ),
     ];
     let folder = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests").join("snapshots");
