@@ -58,12 +58,22 @@ pub(crate) fn styled_mesh<'a, 'b, DB: DrawingBackend>(
     label: u32,
 ) -> MeshStyle<'a, 'b, RangedCoordf64, RangedCoordf64, DB> {
     let mut mesh = chart.configure_mesh();
-    mesh.axis_desc_style(("sans-serif", label + 2).into_font().color(&INK))
+    mesh.x_label_formatter(&tick)
+        .y_label_formatter(&tick)
+        .axis_desc_style(("sans-serif", label + 2).into_font().color(&INK))
         .label_style(("sans-serif", label).into_font().color(&INK))
         .bold_line_style(RGBColor(232, 228, 218))
         .light_line_style(GROUND)
         .axis_style(RGBColor(150, 145, 135));
     mesh
+}
+
+/// A tick label with no needless decimals: 12 rather than 12.0, 2031.5 as
+/// is, and never "-0".
+pub(crate) fn tick(v: &f64) -> String {
+    let text = format!("{:.6}", v);
+    let text = text.trim_end_matches('0').trim_end_matches('.');
+    if text == "-0" { "0".into() } else { text.to_string() }
 }
 
 /// braid's legend box at `position`, with text of `size` points.
@@ -161,6 +171,20 @@ fn draw<DB: DrawingBackend>(
             cohorts.push(&c.cohort);
         }
     }
+    if !lines.is_empty() {
+        let n = lines.len();
+        chart
+            .draw_series(std::iter::empty::<PathElement<(f64, f64)>>())
+            .map_err(e)?
+            .label(format!("grey lines: {n} participants' observed paths"))
+            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 22, y)], RGBColor(170, 170, 170)));
+    }
+    // One legend line says what the dots are; each cohort's line names it only.
+    chart
+        .draw_series(std::iter::empty::<Circle<(f64, f64), i32>>())
+        .map_err(e)?
+        .label("dots: a cohort's wave means ±1.96 SE")
+        .legend(|(x, y)| Circle::new((x + 11, y), 5, INK.filled()));
     for (k, name) in cohorts.iter().enumerate() {
         let color = PALETTE[k % PALETTE.len()];
         let cells: Vec<_> = report.cells.iter().filter(|c| c.cohort == *name).collect();
@@ -183,9 +207,9 @@ fn draw<DB: DrawingBackend>(
             ))
             .map_err(e)?;
         let label = if name.parse::<f64>().is_ok() {
-            format!("cohort {name}: wave means ±1.96 SE")
+            format!("cohort {name}")
         } else {
-            format!("{name}: wave means ±1.96 SE")
+            name.to_string()
         };
         chart
             .draw_series(cells.iter().map(|c| Circle::new((c.age, c.mean), 5, color.filled())))
@@ -232,4 +256,17 @@ pub fn trajectory_svg(path: &Path, report: &FitReport, lines: &[Line]) -> Result
         path: path.to_path_buf(),
         message: format!("cannot draw the figure ({m})"),
     })
+}
+
+#[cfg(test)]
+mod tick_tests {
+    // Integer ticks carry no decimals, others keep theirs, and no "-0".
+    #[test]
+    fn ticks_carry_no_needless_decimals() {
+        assert_eq!(super::tick(&12.0), "12");
+        assert_eq!(super::tick(&2031.5), "2031.5");
+        assert_eq!(super::tick(&-0.0), "0");
+        assert_eq!(super::tick(&-1e-9), "0");
+        assert_eq!(super::tick(&0.25), "0.25");
+    }
 }
