@@ -42,10 +42,27 @@ fn bounds(data: &LexisData) -> ((f64, f64), (f64, f64)) {
     (pad(t0, t1), pad(a0, a1))
 }
 
+/// Widen one axis's range so that a year of age and a year of time take the
+/// same length on the page: a lifeline then runs at 45°, as a reader of a
+/// Lexis diagram expects. The plotting area is the figure less its margins,
+/// caption and label areas, as `draw_lexis` lays them out.
+fn equal_scales(((t0, t1), (a0, a1)): ((f64, f64), (f64, f64)), (w, h): (u32, u32)) -> ((f64, f64), (f64, f64)) {
+    let pw = (f64::from(w) - 2.0 * 24.0 - 60.0).max(1.0);
+    let ph = (f64::from(h) - 2.0 * 24.0 - 52.0 - 40.0).max(1.0);
+    let (kx, ky) = ((t1 - t0) / pw, (a1 - a0) / ph);
+    if kx < ky {
+        let (mid, half) = ((t0 + t1) / 2.0, ky * pw / 2.0);
+        ((mid - half, mid + half), (a0, a1))
+    } else {
+        let (mid, half) = ((a0 + a1) / 2.0, kx * ph / 2.0);
+        ((t0, t1), (mid - half, mid + half))
+    }
+}
+
 fn draw_lexis<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, data: &LexisData) -> std::result::Result<(), String> {
     let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
     root.fill(&GROUND).map_err(e)?;
-    let ((t0, t1), (a0, a1)) = bounds(data);
+    let ((t0, t1), (a0, a1)) = equal_scales(bounds(data), root.dim_in_pixel());
     let mut chart = ChartBuilder::on(&root)
         .caption(
             "Lexis diagram: each cohort's assessments along its diagonal",
@@ -64,15 +81,25 @@ fn draw_lexis<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, data: &LexisData
     if data.calendar {
         // Constant birth year b: age = t − b, drawn every two years.
         let (b0, b1) = ((t0 - a1).floor() as i64, (t1 - a0).ceil() as i64);
+        let diagonal = RGBColor(205, 200, 190);
         for b in (b0..=b1).filter(|b| b % 2 == 0) {
             let b = b as f64;
-            chart
-                .draw_series(LineSeries::new(
-                    [(t0, t0 - b), (t1, t1 - b)],
-                    RGBColor(205, 200, 190).stroke_width(1),
-                ))
-                .map_err(e)?;
+            // The part of age = t − b inside the plot (plotters clamps, not clips).
+            let (from, to) = (t0.max(a0 + b), t1.min(a1 + b));
+            if from < to {
+                chart
+                    .draw_series(LineSeries::new(
+                        [(from, from - b), (to, to - b)],
+                        diagonal.stroke_width(1),
+                    ))
+                    .map_err(e)?;
+            }
         }
+        chart
+            .draw_series(std::iter::empty::<PathElement<(f64, f64)>>())
+            .map_err(e)?
+            .label("grey diagonals: one birth year (every second year)")
+            .legend(move |(x, y)| PathElement::new(vec![(x, y + 5), (x + 22, y - 5)], diagonal.stroke_width(2)));
     }
     for (k, c) in data.cohorts.iter().enumerate() {
         let color = PALETTE[k % PALETTE.len()];
