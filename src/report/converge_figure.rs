@@ -31,8 +31,19 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
         x0 = r.reference_age - 1.0;
         x1 = r.reference_age + 1.0;
     }
+    let mut pairs: Vec<(String, String)> = Vec::new();
+    for d in &r.shared_ages {
+        let key = (d.cohort_a.clone(), d.cohort_b.clone());
+        if !pairs.contains(&key) {
+            pairs.push(key);
+        }
+    }
     let px = 0.05 * (x1 - x0).max(1.0);
     let py = 0.08 * (y1 - y0).max(1e-9);
+    // Headroom above the bars for the legend (a row of about 18 pixels per
+    // entry in a plot about 470 pixels high), so that it hides no bar.
+    let share = ((pairs.len() + 3) as f64 * 18.0 + 24.0) / 470.0;
+    let y1 = y1 + py + (y1 - y0 + 2.0 * py) * share / (1.0 - share);
     let mut chart = ChartBuilder::on(&root)
         .caption(
             "Cohort differences at shared ages, against the equivalence margin",
@@ -56,16 +67,19 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
         .map_err(e)?
         .label(format!("equivalence margin ±{:.2}", r.margin))
         .legend(|(x, y)| Rectangle::new([(x, y - 6), (x + 22, y + 6)], CURVE.mix(0.14).filled()));
+    for (label, width) in [
+        ("thick bar: 95% interval at that age", 3),
+        ("thin bar: 95% simultaneous over all ages", 1),
+    ] {
+        chart
+            .draw_series(std::iter::empty::<PathElement<(f64, f64)>>())
+            .map_err(e)?
+            .label(label)
+            .legend(move |(x, y)| PathElement::new(vec![(x + 11, y - 7), (x + 11, y + 7)], INK.stroke_width(width)));
+    }
     chart
         .draw_series(LineSeries::new([(x0 - px, 0.0), (x1 + px, 0.0)], INK.stroke_width(1)))
         .map_err(e)?;
-    let mut pairs: Vec<(String, String)> = Vec::new();
-    for d in &r.shared_ages {
-        let key = (d.cohort_a.clone(), d.cohort_b.clone());
-        if !pairs.contains(&key) {
-            pairs.push(key);
-        }
-    }
     for (k, (a, b)) in pairs.iter().enumerate() {
         let color = PALETTE[k % PALETTE.len()];
         let pts: Vec<_> = r
