@@ -17,7 +17,6 @@ use std::path::Path;
 
 use plotters::coord::Shift;
 use plotters::prelude::*;
-use plotters::style::FontTransform;
 
 use super::figure::{GROUND, INK, PALETTE, register_font, styled_legend, styled_mesh};
 use crate::apc::Dimension;
@@ -66,6 +65,15 @@ fn effects_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimensi
         })
         .collect();
     let (lo, hi) = range(series.iter().flat_map(|v| v.iter().copied()));
+    // The age panel carries the legend: room above the curves for it (about
+    // 16 pixels an entry in a panel about 440 pixels high), so it covers no
+    // curve's end.
+    let hi = if d == Dimension::Age {
+        let share = (r.solutions.len() as f64 * 16.0 + 20.0) / 440.0;
+        hi + (hi - lo) * share / (1.0 - share)
+    } else {
+        hi
+    };
     let n = labels.len();
     let formatter = level_axis(labels);
     let mut chart = ChartBuilder::on(area)
@@ -195,6 +203,13 @@ fn line_figure<DB: DrawingBackend>(root: Panel<DB>, r: &ApcReport) -> std::resul
     };
     let dims = ["age", "period", "cohort"];
     let (lo, hi) = range(dims.iter().flat_map(|d| [slope_at(d, t0), slope_at(d, t1)]));
+    // Room below the lines for the legend (about 17 pixels an entry in a
+    // plot about 470 pixels high), so that it covers no line, and a strip
+    // above them for the constraints' letters.
+    let entries = dims.len() + r.solutions.len() + usize::from(r.bounds.is_some());
+    let share = (entries as f64 * 17.0 + 24.0) / 470.0;
+    let lo = lo - (hi - lo) * share / (1.0 - share);
+    let hi = hi + 0.06 * (hi - lo);
     let mut chart = ChartBuilder::on(&root)
         .caption(
             "Linear slopes along the line of solutions b₀ + t·v",
@@ -236,18 +251,23 @@ fn line_figure<DB: DrawingBackend>(root: Panel<DB>, r: &ApcReport) -> std::resul
             .label(format!("{d} slope"))
             .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], color.stroke_width(3)));
     }
-    for s in &r.solutions {
+    // Each constraint is a vertical line with a letter at its top; the
+    // legend spells the constraint out, so no label is cut off or crosses a line.
+    for (k, s) in r.solutions.iter().enumerate() {
+        let letter = char::from(b'A' + (k % 26) as u8);
         chart
             .draw_series(LineSeries::new([(s.t, lo), (s.t, hi)], INK.mix(0.35).stroke_width(1)))
-            .map_err(e)?;
+            .map_err(e)?
+            .label(format!("{} (t = {:.3})", s.constraint, s.t))
+            .legend(move |(x, y)| {
+                EmptyElement::at((x, y))
+                    + Text::new(letter.to_string(), (4, -7), ("sans-serif", 13).into_font().color(&INK))
+            });
         chart
             .draw_series(std::iter::once(Text::new(
-                s.constraint.chars().take(34).collect::<String>(),
+                letter.to_string(),
                 (s.t, hi),
-                ("sans-serif", 11)
-                    .into_font()
-                    .color(&INK)
-                    .transform(FontTransform::Rotate90),
+                ("sans-serif", 13).into_font().color(&INK),
             )))
             .map_err(e)?;
     }
