@@ -179,6 +179,21 @@ fn bad(path: &Path, column: &str, row: usize, value: f64, advice: &str) -> Error
     }
 }
 
+/// The default group width: whole years giving about eight age groups, made
+/// narrower (down to one year, then half and a quarter of a year) until
+/// there are at least three age groups and three periods, as an APC model
+/// needs; a short fieldwork span (a cohort-sequential panel's few years)
+/// otherwise leaves only two periods.
+fn default_width(a0: f64, a1: f64, p0: f64, p1: f64) -> f64 {
+    let groups = |w: f64, lo: f64, hi: f64| ((hi - lo) / w).floor() + 1.0;
+    let fits = |w: f64| groups(w, a0, a1) >= 3.0 && groups(w, p0, p1) >= 3.0;
+    let mut w = ((a1 - a0) / DEFAULT_AGE_GROUPS).ceil().max(1.0);
+    while w > 1.0 && !fits(w) {
+        w -= 1.0;
+    }
+    [w, 0.5, 0.25].into_iter().find(|&c| fits(c)).unwrap_or(w)
+}
+
 /// Individual records: columns age, period, outcome, grouped into bands of
 /// `width` years from the youngest age and the earliest period (default:
 /// the whole number of years giving about eight age groups).
@@ -198,7 +213,7 @@ pub fn from_records(t: &NumericTable, width: Option<f64>) -> Result<ApcData> {
                 message: format!("{w} is not a positive number of years"),
             });
         }
-        None => ((max(age) - a0) / DEFAULT_AGE_GROUPS).ceil().max(1.0),
+        None => default_width(a0, max(age), p0, max(period)),
     };
     let (a_span, p_span) = ((max(age) - a0) / width, (max(period) - p0) / width);
     if !(a_span < MAX_GROUPS as f64 && p_span < MAX_GROUPS as f64) {
@@ -273,4 +288,18 @@ pub fn from_panel(t: &NumericTable, ids: &[u32], width: Option<f64>) -> Result<A
         ids: Some(ids.to_vec()),
         ..grouped
     })
+}
+
+#[cfg(test)]
+mod width_tests {
+    // The default width keeps about eight age groups where the calendar span
+    // allows, and narrows until there are three periods where it does not.
+    #[test]
+    fn default_width_adapts_to_a_short_calendar_span() {
+        assert_eq!(super::default_width(20.0, 70.0, 2000.0, 2030.0), 7.0);
+        // A cohort-sequential panel: 12 years of age in under 4 of fieldwork.
+        assert_eq!(super::default_width(11.0, 23.55, 2031.0, 2034.8), 1.0);
+        // Two calendar years need half-year periods.
+        assert_eq!(super::default_width(11.0, 23.0, 2031.0, 2032.2), 0.5);
+    }
 }
