@@ -67,13 +67,17 @@ impl Dimension {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 pub struct Shape {
     /// Age groups.
+    #[serde(rename = "age_groups")]
     pub a: usize,
     /// Periods.
+    #[serde(rename = "periods")]
     pub p: usize,
     /// The first observed cohort, in the full indexing k = a − i + j (1-based).
+    #[serde(rename = "first_observed_cohort")]
     pub k0: usize,
     /// Observed cohorts (a + p − 1 for a full table; fewer when the corner
     /// cohorts of a sparse design have no observations).
+    #[serde(rename = "observed_cohorts")]
     pub kn: usize,
 }
 

@@ -85,8 +85,12 @@ pub struct FitInfo {
     /// (positive at a proper minimum); `None` when there are no free parameters.
     pub min_curvature: Option<f64>,
     /// Whether the optimiser stopped at a minimum (gradient small, curvature positive).
+    /// (Serialised once, at the top of the fit report, not again here.)
+    #[serde(skip_serializing)]
     pub converged: bool,
     /// Covariance parameters at the boundary, named as `factor:coefficient`.
+    /// (Serialised once, at the top of the fit report.)
+    #[serde(skip_serializing)]
     pub boundary: Vec<String>,
     /// Number of restarts made.
     pub restarts: usize,
