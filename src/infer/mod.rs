@@ -61,7 +61,7 @@ impl Contrast {
     /// The two-sided p-value of `cᵀβ = 0`.
     pub fn p_value(&self) -> f64 {
         let t = self.estimate / self.se;
-        2.0 * (1.0 - t_cdf(t.abs(), self.df))
+        2.0 * t_sf(t.abs(), self.df)
     }
 }
 
@@ -77,6 +77,13 @@ pub fn t_quantile(prob: f64, df: f64) -> f64 {
     } else {
         Normal::standard().inverse_cdf(prob)
     }
+}
+
+/// Upper tail of Student's t (the normal above `NORMAL_DF`), as the lower
+/// tail at −x: by symmetry exact, and a tiny p-value is kept rather than
+/// rounded from 1 − cdf to zero.
+pub fn t_sf(x: f64, df: f64) -> f64 {
+    t_cdf(-x, df)
 }
 
 /// Distribution function of t(df) (normal for very large or undefined df).
@@ -155,4 +162,19 @@ pub fn fixed_effects(fit: &Fit) -> Vec<FixedEffect> {
             }
         })
         .collect()
+}
+
+#[cfg(test)]
+mod tail_tests {
+    // The upper tail keeps tiny p-values: for t = 40 on 1,000 df the two-sided
+    // p is about 1e-206 (it underflowed to 0 as 1 − cdf), and the normal tail
+    // at 10 is 7.6e-24 (Abramowitz & Stegun 26.2.12, asymptotic series).
+    #[test]
+    fn upper_tails_keep_tiny_p_values() {
+        let p = super::t_sf(40.0, 1000.0);
+        assert!(p > 0.0 && p < 1e-150, "{p}");
+        let z = super::t_sf(10.0, f64::INFINITY);
+        assert!((z / 7.619853e-24 - 1.0).abs() < 1e-5, "{z}");
+        assert!((super::t_sf(1.0, 10.0) + super::t_cdf(1.0, 10.0) - 1.0).abs() < 1e-15);
+    }
 }

@@ -107,8 +107,8 @@ pub(super) fn differences(
             let (lower, upper) = k.interval();
             let t_lo = (k.estimate + margin) / k.se;
             let t_hi = (margin - k.estimate) / k.se;
-            let p_lo = 1.0 - infer::t_cdf(t_lo, k.df);
-            let p_hi = 1.0 - infer::t_cdf(t_hi, k.df);
+            let p_lo = infer::t_sf(t_lo, k.df);
+            let p_hi = infer::t_sf(t_hi, k.df);
             let p_equivalence = p_lo.max(p_hi);
             SharedAge {
                 cohort_a: a.clone(),
