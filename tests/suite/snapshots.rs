@@ -10,6 +10,7 @@ use std::path::Path;
 use std::process::Command;
 
 use crate::common::{braid_bin, temp_dir};
+use crate::tolerance::SNAPSHOT_LAST_DIGIT_UNITS;
 
 /// A number as printed: sign, digits with separators, decimals, exponent.
 fn split_numbers(line: &str) -> (String, Vec<(f64, i32)>) {
@@ -73,7 +74,7 @@ fn assert_matches(name: &str, expected: &str, got: &str) {
         for ((a, d), (b, _)) in ne.iter().zip(&ng) {
             let unit = 10f64.powi(-d);
             assert!(
-                (a - b).abs() <= 2.0 * unit + 1e-9 * a.abs(),
+                (a - b).abs() <= SNAPSHOT_LAST_DIGIT_UNITS * unit + 1e-9 * a.abs(),
                 "{name} line {}: {a} against {b}\nexpected: {le}\nprinted:  {lg}",
                 k + 1
             );

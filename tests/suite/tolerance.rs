@@ -50,3 +50,8 @@ pub const RECOVERY_CLUSTER_SD_REL: f64 = 0.4;
 pub fn rel(a: f64, b: f64, floor: f64) -> f64 {
     (a - b).abs() / b.abs().max(floor)
 }
+
+/// A number on a snapshot screen may differ by this many units of its last
+/// printed digit (last-bit differences of vectorised arithmetic between
+/// processors; common practice for printed-output checks).
+pub const SNAPSHOT_LAST_DIGIT_UNITS: f64 = 2.0;
