@@ -74,6 +74,18 @@ pub fn thousands(n: usize) -> String {
     out
 }
 
+/// A p-value in words for a sentence: "p = .0123", or "p < .0001" when
+/// tiny; the same form every screen uses (the JSON keeps the full double).
+pub fn p_words(p: f64) -> String {
+    if !p.is_finite() {
+        "p not computable".into()
+    } else if p < 0.0001 {
+        "p < .0001".into()
+    } else {
+        format!("p = {}", format!("{p:.4}").trim_start_matches('0'))
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -94,6 +106,9 @@ mod tests {
         assert!((r_squared(&y, &[&a, &b]) - 1.0).abs() < 1e-12);
         assert_eq!(thousands(1_234_567), "1,234,567");
         assert_eq!(thousands(999), "999");
+        assert_eq!(p_words(0.01234), "p = .0123");
+        assert_eq!(p_words(1e-30), "p < .0001");
+        assert_eq!(p_words(1.0), "p = 1.0000");
         let (m, v) = mean_var(&[1.0, 2.0, 3.0, 4.0]);
         assert_eq!((m, v), (2.5, 5.0 / 3.0));
     }

@@ -481,10 +481,10 @@ fn panel_view(ids: &[u32], table: &[DevianceRow]) -> PanelView {
             .to_string(),
         format!(
             "The A+C model is that assumption in factor form. Adding period factors (APC against A+C) changes the \
-             deviance by {:.3} on {} df, p = {:.4}: {}.",
+             deviance by {:.3} on {} df, {}: {}.",
             test.statistic,
             test.df,
-            test.p,
+            crate::stats::p_words(test.p),
             if test.p < 0.05 {
                 "there are period effects that age and cohort do not absorb, so the no-period assumption fails in \
                  its nonlinear part and the stitched curve should not be read as an age trajectory alone"

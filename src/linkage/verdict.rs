@@ -6,6 +6,7 @@ use super::retest::RetestReport;
 use super::{BetweenWithin, SharedAge};
 use crate::infer::LEVEL;
 use crate::infer::hypothesis::{TestKind, TestResult};
+use crate::stats::p_words;
 
 /// The verdict in plain words, and what it rests on. The tests are found by
 /// kind; a missing test reads as not computed.
@@ -31,8 +32,13 @@ pub(super) fn verdict(
     );
     let differs = level.p < alpha || trend.p < alpha;
     v.push_str(&format!(
-        "Cohort level differences at age {reference_age:.2}: χ² = {:.2} on {} df, p = {:.3}. Cohort differences in the age terms: χ² = {:.2} on {} df, p = {:.3}. ",
-        level.statistic, level.df, level.p, trend.statistic, trend.df, trend.p
+        "Cohort level differences at age {reference_age:.2}: χ² = {:.2} on {} df, {}. Cohort differences in the age terms: χ² = {:.2} on {} df, {}. ",
+        level.statistic,
+        level.df,
+        p_words(level.p),
+        trend.statistic,
+        trend.df,
+        p_words(trend.p)
     ));
     v.push_str(&format!(
         "At {} shared ages, {} differences are significant after Holm's adjustment, and {} lie within ±{:.3} by the two one-sided tests. ",
@@ -61,8 +67,11 @@ pub(super) fn verdict(
     }
     if let Some(b) = bw {
         v.push_str(&format!(
-            " The between-person age slope ({:.3}) and the within-person slope ({:.3}) differ by {:.3} (p = {:.3}).",
-            b.between, b.within, b.difference, b.p
+            " The between-person age slope ({:.3}) and the within-person slope ({:.3}) differ by {:.3} ({}).",
+            b.between,
+            b.within,
+            b.difference,
+            p_words(b.p)
         ));
     }
     let assumptions = vec![
@@ -87,10 +96,10 @@ pub(super) fn verdict(
 /// What M3 against M2 says, in one sentence.
 fn covariance_sentence(t: &TestResult) -> String {
     format!(
-        " Cohort-specific covariances and residual variances (M3 against M2): χ² = {:.2} on {} df, p = {:.3}{}.",
+        " Cohort-specific covariances and residual variances (M3 against M2): χ² = {:.2} on {} df, {}{}.",
         t.statistic,
         t.df,
-        t.p,
+        p_words(t.p),
         if t.p < 1.0 - LEVEL {
             ": the cohorts differ in how much people vary, so one covariance for all is not supported"
         } else {

@@ -87,10 +87,7 @@ fn data_line(d: &DataSummary) -> String {
 
 /// "p = .0123", or "p < .0001" for a tiny p-value (the JSON keeps the full double).
 fn p_is(p: f64) -> String {
-    match pval(p).as_str() {
-        "<.0001" => "p < .0001".into(),
-        v => format!("p = {v}"),
-    }
+    crate::stats::p_words(p)
 }
 
 pub(crate) fn thousands(n: usize) -> String {
