@@ -11,6 +11,7 @@
 //! likelihood-ratio tests reject at 5%. Seeds run from 70,000 (no shift) or
 //! 90,000 (shift), as in tests/suite/linkage.rs.
 
+use braid::infer::hypothesis::TestKind;
 use braid::linkage::{ConvergeOptions, converge};
 use braid::simulate::{Design, simulate};
 use braid::spec::ModelSpec;
@@ -33,10 +34,12 @@ fn main() {
         d.truth.cohort_shift = vec![0.0, 0.0, shift * sd, 0.0, 0.0];
         let panel = simulate(&d).panel(false);
         let r = converge(&panel, &ModelSpec::default(), &ConvergeOptions::default()).expect("converge");
-        level += usize::from(r.tests[0].p < 0.05);
-        trend += usize::from(r.tests[1].p < 0.05);
-        p_level += r.tests[0].p;
-        p_trend += r.tests[1].p;
+        let p_of = |kind| r.tests.iter().find(|t| t.kind == kind).map_or(f64::NAN, |t| t.p);
+        let (pl, pt) = (p_of(TestKind::CohortLevel), p_of(TestKind::CohortTrend));
+        level += usize::from(pl < 0.05);
+        trend += usize::from(pt < 0.05);
+        p_level += pl;
+        p_trend += pt;
     }
     let n = reps as f64;
     println!(

@@ -130,6 +130,20 @@ impl ApcInput {
         }
     }
 
+    /// A panel already loaded (or simulated): its records as age, period and
+    /// outcome, with a random intercept per participant.
+    ///
+    /// # Errors
+    /// [`Error::Data`] when the panel has no calendar times.
+    pub fn from_panel(panel: Panel) -> Result<ApcInput> {
+        let table = panel_records(&panel)?;
+        Ok(ApcInput::Panel {
+            panel: Box::new(panel),
+            table,
+            birth_years: None,
+        })
+    }
+
     fn records(&self) -> Option<&NumericTable> {
         match self {
             ApcInput::Counts { .. } => None,
