@@ -34,8 +34,11 @@ pub struct CurvatureTest {
     /// Denominator df of the F test (continuous outcomes); absent for χ².
     #[serde(skip_serializing_if = "Option::is_none")]
     pub df_denominator: Option<usize>,
-    /// p-value.
+    /// p-value (null when withheld).
     pub p: f64,
+    /// Why no p-value is given, when the test cannot hold its level here.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub withheld: Option<String>,
 }
 
 /// Level effects of each dimension (sum to zero within a dimension).
@@ -205,5 +208,6 @@ fn curvature_test(
         df: m,
         df_denominator: (family == Family::Gaussian).then_some(df_resid.max(1)),
         p,
+        withheld: None,
     }
 }

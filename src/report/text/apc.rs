@@ -95,7 +95,13 @@ pub fn apc_summary(r: &ApcReport) -> String {
             Some(den) => format!("F = {:.3} on ({}, {}) df", t.statistic, t.df, thousands(den)),
             None => format!("χ² = {:.3} on {} df", t.statistic, t.df),
         };
-        labelled(&mut s, "Curvature", format_args!("no curvature in {d}: {stat}, {p}"));
+        match &t.withheld {
+            None => labelled(&mut s, "Curvature", format_args!("no curvature in {d}: {stat}, {p}")),
+            Some(why) => {
+                let text = format!("no curvature in {d}: {stat}; no p-value: {why}");
+                labelled(&mut s, "Curvature", format_args!("{}", wrap(&text, 75, 11)));
+            }
+        }
     }
     solutions_block(&mut s, r);
     bounds_block(&mut s, r);
