@@ -353,3 +353,38 @@ fn a_cohort_sequential_panel_shows_the_problem_and_the_linkage_test() {
     let sd = h.sd_participant.unwrap();
     assert!((3.5..7.5).contains(&sd), "participant SD {sd}");
 }
+
+// On grouped exact ages the period and cohort curvature tests do not hold
+// their level (examples/apc_size.rs, notes/apc-size.md: the cohort test
+// rejected in 47–86% of panels without a cohort effect), so braid withholds
+// their p-values and says why; the age test and tables of counts keep theirs.
+#[test]
+fn grouped_records_withhold_the_period_and_cohort_p_values() {
+    use braid::apc::{ApcInput, ApcOptions, identify};
+    use braid::simulate::{Design, simulate};
+    let mut design = Design::demo();
+    design.per_cohort = 40;
+    let input = ApcInput::from_panel(simulate(&design).panel(false)).unwrap();
+    let options = ApcOptions::new(Some(1.0), Vec::new(), Vec::new(), false).unwrap();
+    let report = identify(&input, &options).unwrap();
+    for t in &report.curvature_tests {
+        if t.dimension == braid::apc::Dimension::Age {
+            assert!(t.p.is_finite() && t.withheld.is_none());
+        } else {
+            assert!(t.p.is_nan() && t.withheld.is_some(), "{t:?}");
+            assert!(t.statistic.is_finite());
+        }
+    }
+    assert_eq!(
+        report.warning_codes,
+        vec![braid::warning::WarningCode::GroupedExactAges]
+    );
+    // A table of counts keeps every p-value: its groups are the data's own.
+    let holford = analyse(&holford(), &[], &[]).unwrap();
+    assert!(
+        holford
+            .curvature_tests
+            .iter()
+            .all(|t| t.p.is_finite() && t.withheld.is_none())
+    );
+}
