@@ -236,7 +236,7 @@ pub struct ConvergeArgs {
     pub shared_ages: usize,
     /// Add a retest term and check whether this design identifies it: the number of prior assessments (count),
     /// first versus later (later), or its square root (sqrt).
-    #[arg(long, value_name = "FORM")]
+    #[arg(long, value_name = "FORM", value_enum)]
     pub retest: Option<RetestArg>,
     /// Where the results go: --out writes converge.json and the shared-age figure (PNG and SVG).
     #[command(flatten)]
@@ -309,13 +309,13 @@ pub enum WaveFromArg {
 #[derive(Debug, Clone, Default, Args)]
 pub struct DeriveArgs {
     /// Derive cohort this way [default: the --cohort column; else birth year when the file has calendar times; else first age].
-    #[arg(long, value_name = "RULE")]
+    #[arg(long, value_name = "RULE", value_enum)]
     pub cohort_from: Option<CohortFromArg>,
     /// Width of derived cohort groups, in years.
     #[arg(long, value_name = "YEARS", default_value_t = 1.0)]
     pub cohort_width: f64,
     /// Derive wave this way [default: the --wave column; else calendar rounds when the file has calendar times; else order].
-    #[arg(long, value_name = "RULE")]
+    #[arg(long, value_name = "RULE", value_enum)]
     pub wave_from: Option<WaveFromArg>,
     /// Length of a derived calendar round (wave), in years.
     #[arg(long, value_name = "YEARS", default_value_t = 1.0)]
