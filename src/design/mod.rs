@@ -167,6 +167,27 @@ pub fn inspect(panel: &Panel, options: DesignOptions) -> Result<DesignReport> {
     Ok(report)
 }
 
+/// Each cohort's coverage and the overlap of neighbouring cohorts, without
+/// the rest of the design report (attrition, collinearity, the Lexis
+/// lifelines): what the convergence analysis needs to order and link cohorts.
+///
+/// # Errors
+/// Errors of the cohort and wave rules.
+pub(crate) fn cohorts_and_overlaps(
+    panel: &Panel,
+    cohort_rule: CohortRule,
+) -> Result<(derive::Derived, Vec<CohortCoverage>, Vec<Overlap>)> {
+    let options = DesignOptions {
+        cohort_rule,
+        ..Default::default()
+    };
+    let cohort = derive::cohorts(panel, cohort_rule)?;
+    let wave = derive::waves(panel, options.wave_rule, &cohort.labels)?;
+    let mut warnings = Vec::new();
+    let c = coverage::coverage(panel, &cohort.labels, &wave.labels, &options, &mut warnings);
+    Ok((cohort, c.cohorts, c.overlap))
+}
+
 /// A totally ordered f64 for map keys.
 #[derive(Debug, Clone, Copy, PartialEq)]
 struct OrderedAge(f64);

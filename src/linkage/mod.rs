@@ -226,15 +226,8 @@ struct Linkage {
 
 impl Linkage {
     fn find(panel: &Panel, options: &ConvergeOptions) -> Result<Linkage> {
-        let cohort = derive::cohorts(panel, options.cohort_rule)?;
-        let design = crate::design::inspect(
-            panel,
-            crate::design::DesignOptions {
-                cohort_rule: options.cohort_rule,
-                ..Default::default()
-            },
-        )?;
-        let mut order: Vec<&crate::design::CohortCoverage> = design.cohorts.iter().collect();
+        let (cohort, coverage, overlap) = crate::design::cohorts_and_overlaps(panel, options.cohort_rule)?;
+        let mut order: Vec<&crate::design::CohortCoverage> = coverage.iter().collect();
         order.sort_by(|a, b| a.age_min.total_cmp(&b.age_min));
         let cohorts: Vec<String> = order.iter().map(|c| c.cohort.clone()).collect();
         if cohorts.len() < 2 {
@@ -246,7 +239,7 @@ impl Linkage {
                 ),
             });
         }
-        let linked: Vec<crate::design::Overlap> = design.overlap.into_iter().filter(|o| o.linked).collect();
+        let linked: Vec<crate::design::Overlap> = overlap.into_iter().filter(|o| o.linked).collect();
         if linked.is_empty() {
             return Err(Error::Data {
                 path: panel.source.clone(),

@@ -152,14 +152,14 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     // without options cannot fail, but the cells are then one group.
     // A cohort column is used as coded (what the rule gives, without a
     // label per row).
-    let cohort_codes = match &panel.cohort {
-        Some(c) => c.clone(),
-        None => {
+    let cohort_codes: std::borrow::Cow<crate::data::Codes> = match &panel.cohort {
+        Some(c) => std::borrow::Cow::Borrowed(c),
+        None => std::borrow::Cow::Owned({
             let cohort_of = crate::data::derive::cohorts(panel, crate::data::derive::CohortRule::Auto)
                 .map(|d| d.labels)
                 .unwrap_or_else(|_| vec![String::new(); n]);
             crate::data::Codes::new(&cohort_of, true)
-        }
+        }),
     };
     let cohort_key: Vec<i64> = cohort_codes.codes.iter().map(|&k| i64::from(k)).collect();
     let cohort_label = |k: i64| cohort_codes.levels[k as usize].clone();
