@@ -74,15 +74,24 @@ pub fn thousands(n: usize) -> String {
     out
 }
 
-/// A p-value in words for a sentence: "p = .0123", or "p < .0001" when
-/// tiny; the same form every screen uses (the JSON keeps the full double).
-pub fn p_words(p: f64) -> String {
+/// A p-value for a table cell: ".0123", "<.0001" when tiny, "—" when not
+/// computable; the one form of every screen (the JSON keeps the full double).
+pub fn p_cell(p: f64) -> String {
     if !p.is_finite() {
-        "p not computable".into()
+        "—".into()
     } else if p < 0.0001 {
-        "p < .0001".into()
+        "<.0001".into()
     } else {
-        format!("p = {}", format!("{p:.4}").trim_start_matches('0'))
+        format!("{p:.4}").trim_start_matches('0').to_string()
+    }
+}
+
+/// The same p-value in words for a sentence: "p = .0123", "p < .0001".
+pub fn p_words(p: f64) -> String {
+    match p_cell(p).as_str() {
+        "—" => "p not computable".into(),
+        "<.0001" => "p < .0001".into(),
+        v => format!("p = {v}"),
     }
 }
 

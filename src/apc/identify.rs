@@ -3,7 +3,7 @@
 //! alone.
 
 use std::collections::HashMap;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use serde::Serialize;
 
@@ -362,6 +362,5 @@ fn check_birth_years(path: &Path, b: &BirthYears, t: &NumericTable) -> Result<an
             kept.3.push(y);
         }
     }
-    let path: PathBuf = path.to_path_buf();
-    analysis::check_cohort(&path, &b.column, &kept.0, &kept.1, &kept.2, &kept.3)
+    analysis::check_cohort(path, &b.column, &kept.0, &kept.1, &kept.2, &kept.3)
 }

@@ -12,7 +12,7 @@ use std::path::{Path, PathBuf};
 use clap::Parser;
 
 use crate::data::{self, Panel};
-use crate::error::{Error, Result};
+use crate::error::Result;
 use crate::simulate::{self, Design};
 use crate::spec::{AgeSpec, ModelSpec, RandomSpec};
 use args::{Cli, Command, DemoArgs};
@@ -200,10 +200,7 @@ fn write_demo_study(design: &Design, dir: &Path) -> Result<PathBuf> {
         design.seed,
         study.to_toml()
     );
-    std::fs::write(&study_path, toml_text).map_err(|e| Error::Output {
-        path: study_path.clone(),
-        message: format!("cannot write ({e})"),
-    })?;
+    crate::report::write_text(&study_path, &toml_text)?;
     Ok(study_path)
 }
 

@@ -234,7 +234,15 @@ pub fn write_json<T: Serialize + ?Sized>(path: &Path, value: &T) -> Result<()> {
         path: path.to_path_buf(),
         message: e.to_string(),
     })?;
-    fs::write(path, text + "\n").map_err(|e| Error::Output {
+    write_text(path, &(text + "\n"))
+}
+
+/// Write a text file.
+///
+/// # Errors
+/// [`Error::Output`] when the file cannot be written.
+pub fn write_text(path: &Path, text: &str) -> Result<()> {
+    fs::write(path, text).map_err(|e| Error::Output {
         path: path.to_path_buf(),
         message: format!("cannot write ({e})"),
     })
@@ -252,8 +260,5 @@ pub fn write_trajectory_csv(path: &Path, t: &Trajectory) -> Result<()> {
             p.age, p.mean, p.lower, p.upper, p.rate, p.rate_lower, p.rate_upper
         ));
     }
-    fs::write(path, s).map_err(|e| Error::Output {
-        path: path.to_path_buf(),
-        message: format!("cannot write ({e})"),
-    })
+    write_text(path, &s)
 }

@@ -2,11 +2,11 @@
 //! layouts for `predictions.csv` and `random_effects.csv`.
 
 use std::fmt::Write as _;
-use std::fs;
 use std::path::Path;
 
+use super::write_text;
 use crate::data::Panel;
-use crate::error::{Error, Result};
+use crate::error::Result;
 use crate::lmm::Fit;
 use crate::spec::ModelFrame;
 
@@ -132,17 +132,6 @@ impl Predictions {
         write_text(&dir.join("random_effects.csv"), &s)?;
         Ok(vec!["predictions.csv".into(), "random_effects.csv".into()])
     }
-}
-
-/// Write a text file.
-///
-/// # Errors
-/// [`Error::Output`] when the file cannot be written.
-pub fn write_text(path: &Path, text: &str) -> Result<()> {
-    fs::write(path, text).map_err(|e| Error::Output {
-        path: path.to_path_buf(),
-        message: format!("cannot write ({e})"),
-    })
 }
 
 /// Quote a CSV field when it holds a delimiter, quote or line break.

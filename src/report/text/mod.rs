@@ -15,6 +15,7 @@ pub use design::design_summary;
 pub use fit::fit_summary;
 
 use crate::data::DataSummary;
+use crate::stats::{p_cell as pval, p_words as p_is, thousands};
 
 /// Width of the left margin that holds each block's heading word.
 const MARGIN: usize = 11;
@@ -83,25 +84,6 @@ fn data_line(d: &DataSummary) -> String {
         thousands(d.n_obs),
         thousands(d.n_rows_read)
     )
-}
-
-/// "p = .0123", or "p < .0001" for a tiny p-value (the JSON keeps the full double).
-fn p_is(p: f64) -> String {
-    crate::stats::p_words(p)
-}
-
-pub(crate) fn thousands(n: usize) -> String {
-    crate::stats::thousands(n)
-}
-
-fn pval(p: f64) -> String {
-    if !p.is_finite() {
-        "—".into()
-    } else if p < 0.0001 {
-        "<.0001".into()
-    } else {
-        format!("{p:.4}").trim_start_matches('0').to_string()
-    }
 }
 
 fn num(x: f64, width: usize, dec: usize) -> String {
