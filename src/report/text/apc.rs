@@ -4,18 +4,28 @@ use std::fmt::Write;
 
 use crate::apc::analysis::ApcReport;
 
-use super::{labelled, p_is, thousands, title, wrap};
+use super::{header, labelled, p_is, thousands, title, wrap};
 
 /// The `braid apc` summary.
 pub fn apc_summary(r: &ApcReport) -> String {
     let mut s = String::new();
     title(&mut s, "apc", &r.data);
-    let model = if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
-        "a table of counts with exposure, Poisson log-linear"
+    // The model, and the deviance that its comparisons use.
+    let (model, kind) = if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
+        (
+            "a table of counts with exposure, Poisson log-linear",
+            "(Poisson deviance)",
+        )
     } else if r.panel.is_some() {
-        "panel records, linear mixed model with a random intercept per participant, fitted by ML"
+        (
+            "panel records, linear mixed model with a random intercept per participant, fitted by ML",
+            "(−2 × ML log-likelihood)",
+        )
     } else {
-        "records with a continuous outcome, least squares"
+        (
+            "records with a continuous outcome, least squares",
+            "(residual sum of squares)",
+        )
     };
     labelled(
         &mut s,
@@ -64,22 +74,14 @@ pub fn apc_summary(r: &ApcReport) -> String {
     if !r.warnings.is_empty() {
         let _ = writeln!(s);
     }
-    let kind = if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
-        "(Poisson deviance)"
-    } else if r.panel.is_some() {
-        "(−2 × ML log-likelihood)"
-    } else {
-        "(residual sum of squares)"
-    };
     let _ = writeln!(s, "{:<16}{:>14}{:>8}  {kind}", "Deviance", "", "df");
     for d in &r.deviance_table {
         let _ = writeln!(s, "  {:<14}{:>14.4}{:>8}", d.model, d.deviance, d.df);
     }
-    let _ = writeln!(s);
-    let _ = writeln!(
-        s,
-        "{:<60}{:>12}{:>10}",
-        "Identified (no constraint needed)", "estimate", "SE"
+    header(
+        &mut s,
+        &["Identified (no constraint needed)", "estimate", "SE"],
+        &[-60, 12, 10],
     );
     for q in r.identified.iter().filter(|q| !q.quantity.contains("deviation")) {
         let _ = writeln!(s, "  {:<58}{:>12.4}{:>10.4}", q.quantity, q.estimate, q.se);

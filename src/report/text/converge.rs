@@ -2,7 +2,7 @@
 
 use std::fmt::Write;
 
-use super::{data_line, labelled, p_is, pval, rules, section, title, wrap};
+use super::{data_line, header, labelled, p_is, pval, rules, title, wrap};
 
 /// The `braid converge` summary.
 pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
@@ -22,12 +22,10 @@ pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
         "",
         format_args!("level differences measured at age {:.2}", r.reference_age),
     );
-    section(
+    header(
         &mut s,
-        format_args!(
-            "{:<12}{:<58}{:>12}{:>6}{:>10}{:>10}",
-            "Models", "", "loglik", "k", "AIC", "BIC"
-        ),
+        &["Models", "", "loglik", "k", "AIC", "BIC"],
+        &[-12, -58, 12, 6, 10, 10],
     );
     for m in &r.models {
         // Information criteria compare fits of one criterion only: the ML
@@ -66,11 +64,10 @@ pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
             let _ = writeln!(s, "{:>14.3}", c.residual_sd);
         }
     }
-    let _ = writeln!(s);
-    let _ = writeln!(
-        s,
-        "{:<12}{:<46}{:>18}{:>12}{:>8}",
-        "Tests", "", "against", "statistic", "p"
+    header(
+        &mut s,
+        &["Tests", "", "against", "statistic", "p"],
+        &[-12, -46, 18, 12, 8],
     );
     for t in &r.tests {
         let _ = writeln!(

@@ -2,7 +2,7 @@
 
 use std::fmt::Write;
 
-use super::{data_line, rules, section, title};
+use super::{columns, data_line, header, rules, title};
 
 /// Render the design report of `braid inspect`.
 pub fn design_summary(r: &crate::design::DesignReport) -> String {
@@ -16,12 +16,11 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
         "{:<11}ages {:.2} to {:.2} ({:.1} years of age) covered in {:.1} years of follow-up: {:.1} years of age per year",
         "Span", sp.age_from, sp.age_to, sp.age_years, sp.calendar_years, sp.acceleration
     );
-    section(
+    header(&mut s, &["Coverage"], &[0]);
+    columns(
         &mut s,
-        format_args!(
-            "Coverage\n  {:<10}{:<8}{:>8}{:>10}{:>10}{:>10}",
-            "cohort", "wave", "n", "youngest", "median", "oldest"
-        ),
+        &["", "cohort", "wave", "n", "youngest", "median", "oldest"],
+        &[-2, -10, -8, 8, 10, 10, 10],
     );
     for c in &r.cohorts {
         let _ = writeln!(
@@ -38,12 +37,10 @@ pub fn design_summary(r: &crate::design::DesignReport) -> String {
         }
     }
     bands_block(&mut s, r);
-    section(
+    header(
         &mut s,
-        format_args!(
-            "{:<24}{:>20}{:>10}{:>10}   link",
-            "Overlap of neighbours", "shared ages", "n (a)", "n (b)"
-        ),
+        &["Overlap of neighbours", "shared ages", "n (a)", "n (b)", "   link"],
+        &[-24, 20, 10, 10, 0],
     );
     for o in &r.overlap {
         let ages = if o.linked {

@@ -2,7 +2,7 @@
 
 use std::fmt::Write;
 
-use super::{data_line, num, pval, thousands, title};
+use super::{data_line, header, num, pval, thousands, title};
 use crate::report::FitReport;
 
 /// Render the fit summary.
@@ -23,7 +23,6 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
     for (i, m) in r.model.iter().enumerate() {
         let _ = writeln!(s, "{:<11}{m}", if i == 0 { "Model" } else { "" });
     }
-    let _ = writeln!(s);
     fixed_block(&mut s, r, truth);
     random_block(&mut s, r, truth);
     trajectory_block(&mut s, r);
@@ -33,18 +32,18 @@ pub fn fit_summary(r: &FitReport, truth: Option<&[(String, f64)]>) -> String {
 
 /// The fixed effects, with the truth of a simulation beside them.
 fn fixed_block(s: &mut String, r: &FitReport, truth: Option<&[(String, f64)]>) {
-    let _ = writeln!(
-        s,
-        "{:<24}{:>11}{:>10}{:>9}{:>9}{:>8}   {:<22}{}",
+    let truth_col = if truth.is_some() { "   truth" } else { "" };
+    let labels = [
         "Fixed effects",
         "estimate",
         "SE",
         "df",
         "t",
         "p",
-        "95% interval",
-        if truth.is_some() { "   truth" } else { "" }
-    );
+        "   95% interval",
+        truth_col,
+    ];
+    header(s, &labels, &[-24, 11, 10, 9, 9, 8, -25, 0]);
     for f in &r.fixed {
         let t = truth
             .and_then(|tv| tv.iter().find(|(k, _)| *k == f.term))
@@ -78,20 +77,13 @@ fn fixed_block(s: &mut String, r: &FitReport, truth: Option<&[(String, f64)]>) {
         "  the {age} terms are in ({age} − {c}): the intercept is the mean at {age} {c}",
         age = r.data.age
     );
-    let _ = writeln!(s);
 }
 
 /// The random effects and the residual, with the truth of a simulation beside them.
 fn random_block(s: &mut String, r: &FitReport, truth: Option<&[(String, f64)]>) {
     let find = |key: &str| truth.and_then(|tv| tv.iter().find(|(k, _)| k == key)).map(|(_, v)| *v);
-    let _ = writeln!(
-        s,
-        "{:<28}{:>11}{:>11}{}",
-        "Random effects",
-        "variance",
-        "SD",
-        if truth.is_some() { "   truth SD" } else { "" }
-    );
+    let truth_col = if truth.is_some() { "   truth SD" } else { "" };
+    header(s, &["Random effects", "variance", "SD", truth_col], &[-28, 11, 11, 0]);
     let row = |s: &mut String, head: &str, term: &str, sd: f64, t: Option<f64>| {
         let t = t.map(|v| format!("{v:>11.4}")).unwrap_or_default();
         let _ = writeln!(s, "  {head:<16}{term:<10}{}{}{t}", num(sd * sd, 11, 4), num(sd, 11, 4));
@@ -169,15 +161,11 @@ fn trajectory_block(s: &mut String, r: &FitReport) {
         );
     }
     if !r.trajectory.at_ages.is_empty() {
-        let _ = writeln!(s);
-        let _ = writeln!(
+        let first = format!("At {}", r.data.age);
+        header(
             s,
-            "{:<13}{:>11}   {:<24}{:>10}   {:<22}",
-            format!("At {}", r.data.age),
-            "mean",
-            "95% interval",
-            "rate/year",
-            "95% interval"
+            &[&first, "mean", "   95% interval", "rate/year", "   95% interval"],
+            &[-13, 11, -27, 10, -25],
         );
         for a in &r.trajectory.at_ages {
             let _ = writeln!(

@@ -25,10 +25,25 @@ fn labelled(s: &mut String, label: &str, text: std::fmt::Arguments<'_>) {
     let _ = writeln!(s, "{label:<MARGIN$}{text}");
 }
 
-/// A table's header row after a blank line: the start of every table block.
-fn section(s: &mut String, header: std::fmt::Arguments<'_>) {
+/// A table's header row after a blank line, the start of every table block.
+fn header(s: &mut String, labels: &[&str], widths: &[i32]) {
     let _ = writeln!(s);
-    let _ = writeln!(s, "{header}");
+    columns(s, labels, widths);
+}
+
+/// One row of column labels, each padded to its width: right-aligned, or
+/// left-aligned where the width is negative (as in printf's `%-12s`).
+fn columns(s: &mut String, labels: &[&str], widths: &[i32]) {
+    let mut line = String::new();
+    for (label, &w) in labels.iter().zip(widths) {
+        let n = w.unsigned_abs() as usize;
+        if w < 0 {
+            line.push_str(&format!("{label:<n$}"));
+        } else {
+            line.push_str(&format!("{label:>n$}"));
+        }
+    }
+    let _ = writeln!(s, "{line}");
 }
 
 /// The rules that gave cohorts (and waves), under the data lines.
