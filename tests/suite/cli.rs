@@ -3,9 +3,8 @@
 //! tests/data/bad/ (listed with its expected message in expected.tsv).
 
 use std::fs;
-use std::process::Command;
 
-use crate::common::{braid_bin, data_dir, expect_one_line_error, read_json, temp_dir};
+use crate::common::{braid, data_dir, expect_one_line_error, read_json, run_ok, temp_dir};
 
 const BASE: [&str; 6] = ["--id", "pupil", "--age", "age", "--outcome", "score"];
 
@@ -17,7 +16,7 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
     for line in manifest.lines().filter(|l| !l.starts_with('#') && !l.trim().is_empty()) {
         let cols: Vec<&str> = line.split('\t').collect();
         let (file, extra, expected) = (cols[0], cols[1], cols[2]);
-        let mut cmd = Command::new(braid_bin());
+        let mut cmd = braid();
         // "apc!..." runs `braid apc` with only the listed flags, "inspect|..."
         // runs `braid inspect` with the base roles and the listed flags;
         // otherwise `braid fit`.
@@ -51,14 +50,13 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
 #[test]
 fn fit_writes_json_with_stable_keys_csv_and_figures() {
     let dir = temp_dir("fit-out");
-    let out = Command::new(braid_bin())
-        .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
-        .args(BASE)
-        .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave", "--out"])
-        .arg(&dir)
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = run_ok(
+        braid()
+            .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
+            .args(BASE)
+            .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave", "--out"])
+            .arg(&dir),
+    );
     let stdout = String::from_utf8_lossy(&out.stdout);
     for word in [
         "Fixed effects",
@@ -106,7 +104,7 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
     assert!(svg.contains("<svg") && svg.contains("age (years)"));
     // A second run gives byte-identical JSON (stable output).
     let dir2 = temp_dir("fit-out-2");
-    let out2 = Command::new(braid_bin())
+    let out2 = braid()
         .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
         .args(BASE)
         .args([
@@ -133,12 +131,7 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
 #[test]
 fn demo_writes_its_panel_study_file_and_fit() {
     let dir = temp_dir("demo");
-    let out = Command::new(braid_bin())
-        .args(["demo", "--out"])
-        .arg(&dir)
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = run_ok(braid().args(["demo", "--out"]).arg(&dir));
     let stdout = String::from_utf8_lossy(&out.stdout);
     assert!(
         stdout.contains("truth"),
@@ -161,14 +154,13 @@ fn demo_writes_its_panel_study_file_and_fit() {
     }
     // Its study file drives `braid inspect --study` too, into a new folder.
     let figures = dir.join("design");
-    let inspect = Command::new(braid_bin())
-        .args(["inspect", "--quiet", "--study"])
-        .arg(dir.join("study.toml"))
-        .arg("--out")
-        .arg(&figures)
-        .output()
-        .unwrap();
-    assert!(inspect.status.success(), "{}", String::from_utf8_lossy(&inspect.stderr));
+    run_ok(
+        braid()
+            .args(["inspect", "--quiet", "--study"])
+            .arg(dir.join("study.toml"))
+            .arg("--out")
+            .arg(&figures),
+    );
     for f in ["design.json", "lexis.png", "lexis.svg", "coverage.png", "coverage.svg"] {
         assert!(
             figures.join(f).metadata().unwrap().len() > 1000,
@@ -179,7 +171,7 @@ fn demo_writes_its_panel_study_file_and_fit() {
     assert_eq!(v["collinear"]["calendar_source"], "birth_from_period");
     assert_eq!(v["collinear"]["age_period_cohort"], true);
     // A second run into the same folder is refused without --force.
-    let again = Command::new(braid_bin())
+    let again = braid()
         .args(["inspect", "--quiet", "--study"])
         .arg(dir.join("study.toml"))
         .arg("--out")
@@ -188,23 +180,13 @@ fn demo_writes_its_panel_study_file_and_fit() {
         .unwrap();
     expect_one_line_error(&again, "already exists and holds files", "inspect into a full folder");
     // The study file it wrote fits again through `braid fit --study`.
-    let refit = Command::new(braid_bin())
-        .args(["fit", "--quiet", "--study"])
-        .arg(dir.join("study.toml"))
-        .output()
-        .unwrap();
-    assert!(refit.status.success(), "{}", String::from_utf8_lossy(&refit.stderr));
+    run_ok(braid().args(["fit", "--quiet", "--study"]).arg(dir.join("study.toml")));
 }
 
 #[test]
 fn parquet_twin_of_the_demo_panel_gives_the_same_fit() {
     let dir = temp_dir("parquet");
-    let out = Command::new(braid_bin())
-        .args(["demo", "--quiet", "--out"])
-        .arg(&dir)
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    run_ok(braid().args(["demo", "--quiet", "--out"]).arg(&dir));
     let roles = braid::simulate::Simulated::roles(true);
     let csv = braid::data::load(&dir.join("panel.csv"), &roles, Default::default()).unwrap();
     let pq = braid::data::load(&dir.join("panel.parquet"), &roles, Default::default()).unwrap();
@@ -222,14 +204,13 @@ fn parquet_twin_of_the_demo_panel_gives_the_same_fit() {
 fn inspect_writes_the_design_report_with_stable_keys() {
     let dir = temp_dir("inspect");
     let json = dir.join("design.json");
-    let out = Command::new(braid_bin())
-        .args(["inspect", data_dir().join("sim_school.csv").to_str().unwrap()])
-        .args(BASE)
-        .args(["--cohort", "cohort", "--wave", "wave", "--json"])
-        .arg(&json)
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = run_ok(
+        braid()
+            .args(["inspect", data_dir().join("sim_school.csv").to_str().unwrap()])
+            .args(BASE)
+            .args(["--cohort", "cohort", "--wave", "wave", "--json"])
+            .arg(&json),
+    );
     let stdout = String::from_utf8_lossy(&out.stdout);
     for word in ["Coverage", "Overlap of neighbours", "Retention", "Span"] {
         assert!(stdout.contains(word), "inspect summary lacks '{word}'");
@@ -254,7 +235,7 @@ fn inspect_writes_the_design_report_with_stable_keys() {
 fn an_output_folder_with_files_is_refused_unless_forced() {
     let dir = temp_dir("force");
     let run = |extra: &[&str]| {
-        Command::new(braid_bin())
+        braid()
             .args(["fit", data_dir().join("dental.csv").to_str().unwrap()])
             .args([
                 "--id",
@@ -292,23 +273,22 @@ fn a_read_only_input_is_read_and_left_unchanged() {
     fs::copy(data_dir().join("dental.csv"), &input).unwrap();
     fs::set_permissions(&input, fs::Permissions::from_mode(0o444)).unwrap();
     let before = fs::read(&input).unwrap();
-    let out = Command::new(braid_bin())
-        .args([
-            "fit",
-            input.to_str().unwrap(),
-            "--id",
-            "Subject",
-            "--age",
-            "age",
-            "--outcome",
-            "distance",
-            "--quiet",
-        ])
-        .arg("--json")
-        .arg(dir.join("fit.json"))
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    run_ok(
+        braid()
+            .args([
+                "fit",
+                input.to_str().unwrap(),
+                "--id",
+                "Subject",
+                "--age",
+                "age",
+                "--outcome",
+                "distance",
+                "--quiet",
+            ])
+            .arg("--json")
+            .arg(dir.join("fit.json")),
+    );
     assert_eq!(fs::read(&input).unwrap(), before);
     assert_eq!(fs::metadata(&input).unwrap().permissions().mode() & 0o777, 0o444);
     // Only the named output was written next to the input.
@@ -382,42 +362,40 @@ fn a_wide_file_and_its_long_twin_give_identical_fits() {
         b.fit.loglik
     );
     // Through the command line too.
-    let out = Command::new(braid_bin())
-        .args([
-            "fit",
-            dir.join("wide.csv").to_str().unwrap(),
-            "--id",
-            "pupil",
-            "--cluster",
-            "school",
-            "--quiet",
-        ])
-        .args([
-            "--wide-outcome",
-            "score_1,score_2,score_3,score_4",
-            "--wide-age",
-            "age_1,age_2,age_3,age_4",
-            "--outcome",
-            "score",
-        ])
-        .arg("--json")
-        .arg(dir.join("wide.json"))
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    run_ok(
+        braid()
+            .args([
+                "fit",
+                dir.join("wide.csv").to_str().unwrap(),
+                "--id",
+                "pupil",
+                "--cluster",
+                "school",
+                "--quiet",
+            ])
+            .args([
+                "--wide-outcome",
+                "score_1,score_2,score_3,score_4",
+                "--wide-age",
+                "age_1,age_2,age_3,age_4",
+                "--outcome",
+                "score",
+            ])
+            .arg("--json")
+            .arg(dir.join("wide.json")),
+    );
 }
 
 #[test]
 fn converge_writes_tests_shared_ages_verdict_and_figure() {
     let dir = temp_dir("converge");
-    let out = Command::new(braid_bin())
-        .args(["converge", data_dir().join("sim_plain.csv").to_str().unwrap()])
-        .args(BASE)
-        .args(["--cohort", "cohort", "--margin", "1.5", "--out"])
-        .arg(&dir)
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = run_ok(
+        braid()
+            .args(["converge", data_dir().join("sim_plain.csv").to_str().unwrap()])
+            .args(BASE)
+            .args(["--cohort", "cohort", "--margin", "1.5", "--out"])
+            .arg(&dir),
+    );
     let stdout = String::from_utf8_lossy(&out.stdout);
     for word in ["Models", "Tests", "Shared ages", "Verdict", "Assumes"] {
         assert!(stdout.contains(word), "converge summary lacks '{word}'");
@@ -447,7 +425,7 @@ fn converge_writes_tests_shared_ages_verdict_and_figure() {
         );
     }
     // One cohort only is refused with a one-line error.
-    let one = Command::new(braid_bin())
+    let one = braid()
         .args([
             "converge",
             data_dir().join("bad").join("good_small.csv").to_str().unwrap(),
@@ -472,13 +450,7 @@ fn holford_apc(extra: &[&str]) -> std::process::Output {
         "--exposure",
         "population",
     ];
-    Command::new(braid_bin())
-        .arg("apc")
-        .arg(table)
-        .args(roles)
-        .args(extra)
-        .output()
-        .unwrap()
+    braid().arg("apc").arg(table).args(roles).args(extra).output().unwrap()
 }
 
 #[test]
@@ -535,7 +507,7 @@ fn apc_checks_a_given_birth_year_column_and_fits_the_hierarchical_model() {
     fs::write(&file, out).unwrap();
     let json = dir.join("apc.json");
     let run = |cohort: &str, json: &std::path::Path| {
-        Command::new(braid_bin())
+        braid()
             .arg("apc")
             .arg(&file)
             .args(["--age", "age", "--period", "year", "--outcome", "score", "--width", "5"])
@@ -570,14 +542,13 @@ fn apc_checks_a_given_birth_year_column_and_fits_the_hierarchical_model() {
 fn converge_with_a_school_term_fits_m3_and_reports_each_cohorts_variances() {
     let dir = temp_dir("converge_school");
     let json = dir.join("c.json");
-    let out = Command::new(braid_bin())
-        .args(["converge", data_dir().join("sim_school.csv").to_str().unwrap()])
-        .args(BASE)
-        .args(["--cohort", "cohort", "--cluster", "school", "--quiet", "--json"])
-        .arg(&json)
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    run_ok(
+        braid()
+            .args(["converge", data_dir().join("sim_school.csv").to_str().unwrap()])
+            .args(BASE)
+            .args(["--cohort", "cohort", "--cluster", "school", "--quiet", "--json"])
+            .arg(&json),
+    );
     let v: serde_json::Value = read_json(&json);
     let n_cohorts = v["cohorts"].as_array().unwrap().len();
     let m3 = v["tests"]

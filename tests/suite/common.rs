@@ -37,6 +37,19 @@ pub fn braid_bin() -> PathBuf {
     PathBuf::from(env!("CARGO_BIN_EXE_braid"))
 }
 
+/// A command that runs the braid binary built for these tests.
+pub fn braid() -> std::process::Command {
+    std::process::Command::new(braid_bin())
+}
+
+/// Runs a braid command and returns its output, failing the test with
+/// braid's own error text when it did not succeed.
+pub fn run_ok(cmd: &mut std::process::Command) -> std::process::Output {
+    let out = cmd.output().unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    out
+}
+
 /// A REML fit of a problem that is known to fit (test data only).
 pub fn reml(problem: &braid::lmm::MixedProblem) -> braid::lmm::Fit {
     braid::lmm::fit(

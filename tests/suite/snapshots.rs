@@ -7,9 +7,8 @@
 
 use std::fs;
 use std::path::Path;
-use std::process::Command;
 
-use crate::common::{braid_bin, temp_dir};
+use crate::common::{braid, temp_dir};
 use crate::tolerance::SNAPSHOT_LAST_DIGIT_UNITS;
 
 /// A number as printed: sign, digits with separators, decimals, exponent.
@@ -83,7 +82,7 @@ fn assert_matches(name: &str, expected: &str, got: &str) {
 }
 
 fn screen(args: &[&str], demo: &Path) -> String {
-    let out = Command::new(braid_bin()).args(args).output().unwrap();
+    let out = braid().args(args).output().unwrap();
     assert!(
         out.status.success(),
         "{args:?}: {}",
