@@ -4,7 +4,7 @@
 
 use std::fs;
 
-use crate::common::{braid, data_dir, expect_one_line_error, read_json, run_ok, temp_dir};
+use crate::common::{braid, data_dir, expect_keys, expect_one_line_error, expect_words, read_json, run_ok, temp_dir};
 
 const BASE: [&str; 6] = ["--id", "pupil", "--age", "age", "--outcome", "score"];
 
@@ -57,40 +57,43 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
             .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave", "--out"])
             .arg(&dir),
     );
-    let stdout = String::from_utf8_lossy(&out.stdout);
-    for word in [
-        "Fixed effects",
-        "Random effects",
-        "REML log-likelihood",
-        "Satterthwaite",
-        "Cautions",
-    ] {
-        assert!(stdout.contains(word), "summary lacks '{word}'");
-    }
+    expect_words(
+        &out,
+        &[
+            "Fixed effects",
+            "Random effects",
+            "REML log-likelihood",
+            "Satterthwaite",
+            "Cautions",
+        ],
+        "summary",
+    );
     let json: serde_json::Value = read_json(&dir.join("fit.json"));
-    for key in [
-        "method",
-        "n_obs",
-        "n_groups",
-        "loglik",
-        "aic",
-        "bic",
-        "fixed",
-        "random",
-        "residual_variance",
-        "converged",
-        "boundary",
-        "trajectory",
-    ] {
-        assert!(json.get(key).is_some(), "fit.json lacks '{key}'");
-    }
+    expect_keys(
+        &json,
+        &[
+            "method",
+            "n_obs",
+            "n_groups",
+            "loglik",
+            "aic",
+            "bic",
+            "fixed",
+            "random",
+            "residual_variance",
+            "converged",
+            "boundary",
+            "trajectory",
+        ],
+        "fit.json",
+    );
     assert_eq!(json["method"], "REML");
-    for key in ["term", "estimate", "se", "df", "t", "p"] {
-        assert!(json["fixed"][0].get(key).is_some(), "fixed lacks '{key}'");
-    }
-    for key in ["factor", "terms", "covariance", "sd", "correlation"] {
-        assert!(json["random"][0].get(key).is_some(), "random lacks '{key}'");
-    }
+    expect_keys(&json["fixed"][0], &["term", "estimate", "se", "df", "t", "p"], "fixed");
+    expect_keys(
+        &json["random"][0],
+        &["factor", "terms", "covariance", "sd", "correlation"],
+        "random",
+    );
     assert_eq!(json["n_groups"]["school"], 12);
     let csv = fs::read_to_string(dir.join("trajectory.csv")).unwrap();
     assert_eq!(
@@ -211,23 +214,24 @@ fn inspect_writes_the_design_report_with_stable_keys() {
             .args(["--cohort", "cohort", "--wave", "wave", "--json"])
             .arg(&json),
     );
-    let stdout = String::from_utf8_lossy(&out.stdout);
-    for word in ["Coverage", "Overlap of neighbours", "Retention", "Span"] {
-        assert!(stdout.contains(word), "inspect summary lacks '{word}'");
-    }
+    expect_words(
+        &out,
+        &["Coverage", "Overlap of neighbours", "Retention", "Span"],
+        "inspect summary",
+    );
     let v: serde_json::Value = read_json(&json);
-    for key in ["cohort", "n_participants", "waves", "age_min", "age_median", "age_max"] {
-        assert!(v["cohorts"][0].get(key).is_some(), "cohorts lacks '{key}'");
-    }
-    for key in ["cohort_a", "cohort_b", "age_from", "age_to", "n_a", "n_b", "linked"] {
-        assert!(v["overlap"][0].get(key).is_some(), "overlap lacks '{key}'");
-    }
-    for key in ["cohort", "wave", "n", "share"] {
-        assert!(v["retention"][0].get(key).is_some(), "retention lacks '{key}'");
-    }
-    for key in ["age_from", "age_to", "calendar_years"] {
-        assert!(v["span"].get(key).is_some(), "span lacks '{key}'");
-    }
+    expect_keys(
+        &v["cohorts"][0],
+        &["cohort", "n_participants", "waves", "age_min", "age_median", "age_max"],
+        "cohorts",
+    );
+    expect_keys(
+        &v["overlap"][0],
+        &["cohort_a", "cohort_b", "age_from", "age_to", "n_a", "n_b", "linked"],
+        "overlap",
+    );
+    expect_keys(&v["retention"][0], &["cohort", "wave", "n", "share"], "retention");
+    expect_keys(&v["span"], &["age_from", "age_to", "calendar_years"], "span");
     assert_eq!(v["cohorts"].as_array().unwrap().len(), 5);
 }
 
@@ -396,25 +400,26 @@ fn converge_writes_tests_shared_ages_verdict_and_figure() {
             .args(["--cohort", "cohort", "--margin", "1.5", "--out"])
             .arg(&dir),
     );
-    let stdout = String::from_utf8_lossy(&out.stdout);
-    for word in ["Models", "Tests", "Shared ages", "Verdict", "Assumes"] {
-        assert!(stdout.contains(word), "converge summary lacks '{word}'");
-    }
+    expect_words(
+        &out,
+        &["Models", "Tests", "Shared ages", "Verdict", "Assumes"],
+        "converge summary",
+    );
     let v: serde_json::Value = read_json(&dir.join("converge.json"));
-    for key in ["name", "statistic", "df", "p", "method"] {
-        assert!(v["tests"][0].get(key).is_some(), "tests lacks '{key}'");
-    }
-    for key in [
-        "cohort_a",
-        "cohort_b",
-        "age",
-        "difference",
-        "lower",
-        "upper",
-        "equivalent",
-    ] {
-        assert!(v["shared_ages"][0].get(key).is_some(), "shared_ages lacks '{key}'");
-    }
+    expect_keys(&v["tests"][0], &["name", "statistic", "df", "p", "method"], "tests");
+    expect_keys(
+        &v["shared_ages"][0],
+        &[
+            "cohort_a",
+            "cohort_b",
+            "age",
+            "difference",
+            "lower",
+            "upper",
+            "equivalent",
+        ],
+        "shared_ages",
+    );
     assert!(v["verdict"].as_str().unwrap().contains("converge"));
     assert!(v["assumptions"].as_array().unwrap().len() >= 3);
     assert_eq!(v["margin"], 1.5);
@@ -460,22 +465,25 @@ fn apc_writes_the_identification_report_with_stable_keys() {
     let json_arg = json.to_str().unwrap();
     let out = holford_apc(&["--assume", "period-slope>=0", "--json", json_arg]);
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    let stdout = String::from_utf8_lossy(&out.stdout);
-    for word in ["Deviance", "Identified", "Solutions", "Bounds", "Assumes"] {
-        assert!(stdout.contains(word), "apc summary lacks '{word}'");
-    }
+    expect_words(
+        &out,
+        &["Deviance", "Identified", "Solutions", "Bounds", "Assumes"],
+        "apc summary",
+    );
     let v: serde_json::Value = read_json(&json);
     assert_eq!(v["rank_deficiency"], 1);
-    for key in [
-        "null_vector",
-        "deviance_table",
-        "identified",
-        "solutions",
-        "bounds",
-        "assumptions",
-    ] {
-        assert!(v.get(key).is_some(), "apc JSON lacks '{key}'");
-    }
+    expect_keys(
+        &v,
+        &[
+            "null_vector",
+            "deviance_table",
+            "identified",
+            "solutions",
+            "bounds",
+            "assumptions",
+        ],
+        "apc JSON",
+    );
     for key in ["term", "value"] {
         assert!(v["null_vector"][0].get(key).is_some());
     }

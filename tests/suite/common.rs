@@ -50,6 +50,21 @@ pub fn run_ok(cmd: &mut std::process::Command) -> std::process::Output {
     out
 }
 
+/// Fails the test unless the command printed every one of these words.
+pub fn expect_words(out: &std::process::Output, words: &[&str], what: &str) {
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    for word in words {
+        assert!(stdout.contains(word), "{what} lacks '{word}'");
+    }
+}
+
+/// Fails the test unless the JSON object has every one of these keys.
+pub fn expect_keys(v: &serde_json::Value, keys: &[&str], what: &str) {
+    for key in keys {
+        assert!(v.get(key).is_some(), "{what} lacks '{key}'");
+    }
+}
+
 /// A REML fit of a problem that is known to fit (test data only).
 pub fn reml(problem: &braid::lmm::MixedProblem) -> braid::lmm::Fit {
     braid::lmm::fit(
