@@ -3,7 +3,7 @@
 
 use std::path::PathBuf;
 
-use clap::{Args, Parser, Subcommand, ValueEnum};
+use clap::{Args, Parser, Subcommand, ValueEnum, ValueHint};
 
 use crate::apc::analysis::{Assumption, Constraint};
 
@@ -44,6 +44,16 @@ pub enum Command {
     Converge(Box<ConvergeArgs>),
     /// Say what the data identify about age, period and cohort effects, and what each constraint adds.
     Apc(Box<ApcArgs>),
+    /// Print a completion script for a shell, to be sourced by its start-up file.
+    Completions(CompletionsArgs),
+}
+
+/// Arguments of `braid completions`.
+#[derive(Debug, Clone, Args)]
+pub struct CompletionsArgs {
+    /// The shell to complete braid's commands, flags and file names in.
+    #[arg(value_enum, value_name = "SHELL")]
+    pub shell: clap_complete::Shell,
 }
 
 /// Estimation criterion on the command line.
@@ -112,10 +122,10 @@ pub struct RoleArgs {
 #[derive(Debug, Clone, Default, Args)]
 pub struct InputArgs {
     /// The data file (CSV, or Parquet by its .parquet extension); optional with --study.
-    #[arg(value_name = "DATA")]
+    #[arg(value_name = "DATA", value_hint = ValueHint::FilePath)]
     pub data: Option<PathBuf>,
     /// A study file (TOML) stating the data, roles and model; flags given as well override it.
-    #[arg(long, value_name = "FILE")]
+    #[arg(long, value_name = "FILE", value_hint = ValueHint::FilePath)]
     pub study: Option<PathBuf>,
     /// Column roles.
     #[command(flatten)]
@@ -127,10 +137,10 @@ pub struct InputArgs {
 pub struct OutputArgs {
     /// Write the report's JSON document to this file (no other files are
     /// written unless --out is also given).
-    #[arg(long, value_name = "FILE")]
+    #[arg(long, value_name = "FILE", value_hint = ValueHint::FilePath)]
     pub json: Option<PathBuf>,
     /// Folder for the report's JSON document, figures and tables (created if missing).
-    #[arg(long, value_name = "DIR")]
+    #[arg(long, value_name = "DIR", value_hint = ValueHint::DirPath)]
     pub out: Option<PathBuf>,
     /// Print nothing but errors (the files are still written).
     #[arg(long)]
@@ -354,7 +364,7 @@ impl DeriveArgs {
 #[derive(Debug, Clone, Args)]
 pub struct DemoArgs {
     /// Folder for panel.csv, study.toml and the fit outputs.
-    #[arg(long, value_name = "DIR")]
+    #[arg(long, value_name = "DIR", value_hint = ValueHint::DirPath)]
     pub out: PathBuf,
     /// Seed of the simulation.
     #[arg(long, value_name = "N")]

@@ -74,7 +74,17 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Inspect(a) => inspect_command(&a),
         Command::Converge(a) => converge_command(&a),
         Command::Apc(a) => apc_command(&a),
+        Command::Completions(a) => {
+            completions_command(&a);
+            Ok(())
+        }
     }
+}
+
+/// `braid completions SHELL`: the shell's completion script, on standard output.
+fn completions_command(a: &args::CompletionsArgs) {
+    use clap::CommandFactory;
+    clap_complete::generate(a.shell, &mut Cli::command(), "braid", &mut std::io::stdout());
 }
 
 fn load(source: &Source) -> Result<Panel> {

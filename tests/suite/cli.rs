@@ -582,3 +582,17 @@ fn converge_with_a_school_term_fits_m3_and_reports_each_cohorts_variances() {
         "{notes:?}"
     );
 }
+
+#[test]
+fn completions_name_every_command_and_complete_files_for_data() {
+    // The zsh script (clap_complete's generator) lists each subcommand and
+    // completes the data argument and --out as paths.
+    let out = run_ok(braid().args(["completions", "zsh"]));
+    expect_words(
+        &out,
+        &["fit", "demo", "inspect", "converge", "apc", "_files -/", "_files"],
+        "zsh completion script",
+    );
+    let bad = braid().args(["completions", "teletype"]).output().unwrap();
+    assert_eq!(bad.status.code(), Some(2), "an unknown shell is a usage error");
+}
