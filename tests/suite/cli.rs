@@ -8,6 +8,13 @@ use crate::common::{braid, data_dir, expect_keys, expect_one_line_error, expect_
 
 const BASE: [&str; 6] = ["--id", "pupil", "--age", "age", "--outcome", "score"];
 
+/// `braid COMMAND tests/data/FILE` with the pupil, age and score roles.
+fn on_test_file(command: &str, file: &str) -> std::process::Command {
+    let mut cmd = braid();
+    cmd.arg(command).arg(data_dir().join(file)).args(BASE);
+    cmd
+}
+
 #[test]
 fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
     let bad = data_dir().join("bad");
@@ -51,9 +58,7 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
 fn fit_writes_json_with_stable_keys_csv_and_figures() {
     let dir = temp_dir("fit-out");
     let out = run_ok(
-        braid()
-            .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
-            .args(BASE)
+        on_test_file("fit", "sim_school.csv")
             .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave", "--out"])
             .arg(&dir),
     );
@@ -107,9 +112,7 @@ fn fit_writes_json_with_stable_keys_csv_and_figures() {
     assert!(svg.contains("<svg") && svg.contains("age (years)"));
     // A second run gives byte-identical JSON (stable output).
     let dir2 = temp_dir("fit-out-2");
-    let out2 = braid()
-        .args(["fit", data_dir().join("sim_school.csv").to_str().unwrap()])
-        .args(BASE)
+    let out2 = on_test_file("fit", "sim_school.csv")
         .args([
             "--cluster",
             "school",
@@ -208,9 +211,7 @@ fn inspect_writes_the_design_report_with_stable_keys() {
     let dir = temp_dir("inspect");
     let json = dir.join("design.json");
     let out = run_ok(
-        braid()
-            .args(["inspect", data_dir().join("sim_school.csv").to_str().unwrap()])
-            .args(BASE)
+        on_test_file("inspect", "sim_school.csv")
             .args(["--cohort", "cohort", "--wave", "wave", "--json"])
             .arg(&json),
     );
@@ -394,9 +395,7 @@ fn a_wide_file_and_its_long_twin_give_identical_fits() {
 fn converge_writes_tests_shared_ages_verdict_and_figure() {
     let dir = temp_dir("converge");
     let out = run_ok(
-        braid()
-            .args(["converge", data_dir().join("sim_plain.csv").to_str().unwrap()])
-            .args(BASE)
+        on_test_file("converge", "sim_plain.csv")
             .args(["--cohort", "cohort", "--margin", "1.5", "--out"])
             .arg(&dir),
     );
@@ -551,9 +550,7 @@ fn converge_with_a_school_term_fits_m3_and_reports_each_cohorts_variances() {
     let dir = temp_dir("converge_school");
     let json = dir.join("c.json");
     run_ok(
-        braid()
-            .args(["converge", data_dir().join("sim_school.csv").to_str().unwrap()])
-            .args(BASE)
+        on_test_file("converge", "sim_school.csv")
             .args(["--cohort", "cohort", "--cluster", "school", "--quiet", "--json"])
             .arg(&json),
     );
