@@ -18,11 +18,13 @@
 pub mod analysis;
 mod bounds;
 mod constraints;
+pub mod exact;
 pub mod glm;
 pub mod hierarchical;
 mod identified;
 pub mod identify;
 pub mod intake;
+mod split;
 
 pub use identify::{ApcColumns, ApcInput, ApcOptions, identify};
 
