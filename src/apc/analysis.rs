@@ -145,6 +145,10 @@ pub struct ApcReport {
     pub panel: Option<PanelView>,
     /// A given birth-year column, checked against period − age.
     pub cohort_check: Option<CohortCheck>,
+    /// Records: the exact-value model (splines in exact age, period and
+    /// birth time), whose tests hold their level.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub exact: Option<super::exact::ExactApc>,
 }
 
 /// A birth-year column checked against period − age.
@@ -366,6 +370,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         hierarchical: None,
         panel,
         cohort_check: None,
+        exact: None,
     })
 }
 

@@ -11,8 +11,10 @@
 //! deviations from linearity, the drift (period slope + cohort slope), the
 //! longitudinal age slope (age + period) and the cross-sectional one (age −
 //! cohort), and every fitted value. Records are fitted by least squares,
-//! panels by ML with a random intercept per participant; nested models are
-//! compared by F tests (records) or likelihood ratios (panels).
+//! panels by REML with a correlated random intercept and age slope per
+//! participant (and a cluster intercept when given). Each curve and the
+//! drift is tested by a Wald F in the fitted model: exact for least squares,
+//! with Fai–Cornelius/Satterthwaite denominator df for panels.
 
 use faer::linalg::solvers::{DenseSolveCore, Solve};
 use faer::{Mat, Side};
@@ -20,10 +22,9 @@ use serde::Serialize;
 
 use super::Dimension;
 use super::constraints::Constraint;
-use super::glm::Cell;
 use super::split::{EXACT_KNOTS, SplitSpline};
 use crate::error::{Error, Result};
-use crate::infer::hypothesis::{chi2_sf, f_sf};
+use crate::infer::hypothesis::f_sf;
 
 /// Points on each deviation curve.
 const CURVE_POINTS: usize = 41;
@@ -40,9 +41,9 @@ pub struct ExactApc {
     pub n_obs: usize,
     /// The spline of each time scale: knots and mean.
     pub splines: Vec<ScaleSpline>,
-    /// The nested models with their deviance and number of mean parameters.
-    pub models: Vec<ExactModel>,
-    /// Tests between nested models.
+    /// Residual SD (records) or REML log-likelihood (panels) of the fit.
+    pub criterion: Criterion,
+    /// Wald tests in the fitted model: the drift and each curve.
     pub tests: Vec<ExactTest>,
     /// What is identified without a constraint.
     pub identified: Vec<super::identified::Identified>,
@@ -54,6 +55,8 @@ pub struct ExactApc {
     pub solutions: Vec<ExactSolution>,
     /// Largest difference between the fitted values of any two solutions.
     pub fitted_max_difference: f64,
+    /// What every number rests on.
+    pub assumptions: Vec<String>,
 }
 
 /// One time scale's spline.
@@ -69,17 +72,22 @@ pub struct ScaleSpline {
     pub nonlinear_df: usize,
 }
 
-/// A fitted model of the nested sequence.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct ExactModel {
-    /// Short name.
-    pub model: String,
-    /// What it contains, in words.
-    pub terms: String,
-    /// Residual sum of squares (records) or −2 × ML log-likelihood (panels).
-    pub deviance: f64,
-    /// Mean parameters.
-    pub parameters: usize,
+/// How well the model fits.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Criterion {
+    /// Records: the residual sum of squares and its df.
+    ResidualSumOfSquares {
+        /// Residual sum of squares.
+        value: f64,
+        /// Residual degrees of freedom.
+        df: usize,
+    },
+    /// Panels: the REML log-likelihood.
+    RemlLoglik {
+        /// Its value.
+        value: f64,
+    },
 }
 
 /// What an exact-value test tests.
@@ -96,25 +104,22 @@ pub enum ExactTestKind {
     CohortNonlinear,
 }
 
-/// A comparison of two nested models.
+/// A Wald F test that some coefficients of the fitted model are zero.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ExactTest {
     /// What it tests.
     pub kind: ExactTestKind,
     /// In words.
     pub name: String,
-    /// The larger model against the smaller.
-    pub models: String,
-    /// F or likelihood-ratio χ².
+    /// F.
     pub statistic: f64,
     /// Numerator df.
     pub df: usize,
-    /// Denominator df (F tests of records).
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub df_denominator: Option<usize>,
+    /// Denominator df: residual df (records) or Fai–Cornelius/Satterthwaite (panels).
+    pub df_denominator: f64,
     /// p-value (null when the data cannot give one).
     pub p: Option<f64>,
-    /// The reference distribution, for example "F(4, 2990)" or "χ²(4)".
+    /// The reference distribution, for example "F(4, 2990)".
     pub reference: String,
     /// Why there is no p-value.
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -160,6 +165,8 @@ pub struct ExactInput<'a> {
     pub y: &'a [f64],
     /// Participant codes (panels).
     pub ids: Option<&'a [u32]>,
+    /// Cluster codes (panels with a cluster, for example the school).
+    pub clusters: Option<&'a [u32]>,
 }
 
 /// Column layout of the full design.
@@ -185,126 +192,98 @@ impl Layout {
     }
 }
 
-/// A fit of a column subset.
-struct SubFit {
+/// The full model's fit: coefficients and their covariance, and the
+/// mixed-model fit that the panels' tests need.
+struct FullFit {
     coef: Vec<f64>,
     cov: Vec<f64>,
-    deviance: f64,
     q: usize,
+    criterion: Criterion,
+    mixed: Option<crate::lmm::Fit>,
 }
 
-/// Sufficient statistics of least squares, for fitting any column subset.
-struct Moments {
-    xtx: Vec<f64>,
-    xty: Vec<f64>,
-    yty: f64,
-    q: usize,
-    n: usize,
-}
-
-fn moments(layout: &Layout, input: &ExactInput<'_>, y_mean: f64) -> Moments {
+/// Records: least squares from the sufficient statistics (one pass over the
+/// records; the outcome is centred first, so the residual sum of squares
+/// loses no digits).
+fn least_squares(layout: &Layout, input: &ExactInput<'_>) -> Result<FullFit> {
     let q = layout.q();
+    let n = input.y.len();
+    let y_mean = input.y.iter().sum::<f64>() / n.max(1) as f64;
     let mut xtx = vec![0.0; q * q];
     let mut xty = vec![0.0; q];
     let mut yty = 0.0;
     let mut row = Vec::with_capacity(q);
-    for k in 0..input.y.len() {
+    for k in 0..n {
         layout.row(input.age[k], input.period[k], &mut row);
         let y = input.y[k] - y_mean;
         yty += y * y;
         for i in 0..q {
-            xty[i] += row[i] * y;
             let ri = row[i];
+            xty[i] += ri * y;
             for j in i..q {
                 xtx[i * q + j] += ri * row[j];
             }
         }
     }
-    for i in 0..q {
-        for j in 0..i {
-            xtx[i * q + j] = xtx[j * q + i];
-        }
-    }
-    Moments {
-        xtx,
-        xty,
-        yty,
-        q,
-        n: input.y.len(),
-    }
-}
-
-fn ols(m: &Moments, cols: &[usize]) -> Result<SubFit> {
-    let q = cols.len();
-    let a = Mat::from_fn(q, q, |r, c| m.xtx[cols[r] * m.q + cols[c]]);
+    let a = Mat::from_fn(q, q, |r, c| xtx[r.min(c) * q + r.max(c)]);
     let llt = a.llt(Side::Lower).map_err(|_| Error::Numerical {
         step: "exact-value age–period–cohort fit".into(),
-        message: "the exact-value APC design is singular: a time scale has too few distinct values".into(),
+        message: "the design is singular: a time scale has too few distinct values".into(),
     })?;
-    let b = llt.solve(Mat::from_fn(q, 1, |r, _| m.xty[cols[r]]));
+    let b = llt.solve(Mat::from_fn(q, 1, |r, _| xty[r]));
     let coef: Vec<f64> = (0..q).map(|r| b[(r, 0)]).collect();
-    let fitted_ss: f64 = coef.iter().zip(cols).map(|(c, &k)| c * m.xty[k]).sum();
-    let deviance = (m.yty - fitted_ss).max(0.0);
-    let s2 = deviance / (m.n - q) as f64;
+    let rss = (yty - coef.iter().zip(&xty).map(|(c, v)| c * v).sum::<f64>()).max(0.0);
+    let df = n.saturating_sub(q);
+    let s2 = rss / df.max(1) as f64;
     let inv = llt.inverse();
-    Ok(SubFit {
+    let mut coef = coef;
+    coef[0] += y_mean;
+    Ok(FullFit {
         coef,
         cov: (0..q * q).map(|k| inv[(k / q, k % q)] * s2).collect(),
-        deviance,
         q,
+        criterion: Criterion::ResidualSumOfSquares { value: rss, df },
+        mixed: None,
     })
 }
 
-fn mixed(layout: &Layout, input: &ExactInput<'_>, ids: &[u32], cols: &[usize]) -> Result<SubFit> {
-    let mut full = Vec::with_capacity(layout.q());
-    let mut rows = Vec::with_capacity(input.y.len());
-    let cells: Vec<Cell> = (0..input.y.len())
-        .map(|k| {
-            layout.row(input.age[k], input.period[k], &mut full);
-            rows.push(cols.iter().map(|&c| full[c]).collect::<Vec<f64>>());
-            Cell {
-                i: 1,
-                j: 1,
-                y: input.y[k],
-                e: 1.0,
-                yy: input.y[k] * input.y[k],
-            }
-        })
-        .collect();
-    let f = super::glm::fit_mixed(&cells, &rows, ids)?;
-    Ok(SubFit {
-        coef: f.coef,
-        cov: f.cov,
-        deviance: f.deviance,
-        q: cols.len(),
+/// Panels: REML with a correlated random intercept and age slope per
+/// participant, and a random intercept per cluster when given.
+fn mixed(layout: &Layout, input: &ExactInput<'_>, ids: &[u32]) -> Result<FullFit> {
+    let q = layout.q();
+    let n = input.y.len();
+    let mut x = Vec::with_capacity(n * q);
+    let mut row = Vec::with_capacity(q);
+    for k in 0..n {
+        layout.row(input.age[k], input.period[k], &mut row);
+        x.extend_from_slice(&row);
+    }
+    let mut participant = super::glm::intercepts("participant", ids, n);
+    participant.columns.push("age".into());
+    participant
+        .z
+        .push(input.age.iter().map(|a| a - layout.splines[0].mean).collect());
+    let mut terms = vec![participant];
+    if let Some(c) = input.clusters {
+        terms.push(super::glm::intercepts("cluster", c, n));
+    }
+    let problem = crate::lmm::MixedProblem {
+        y: input.y.to_vec(),
+        x_names: (0..q).map(|k| format!("x{k}")).collect(),
+        x,
+        terms,
+    };
+    let f = crate::lmm::fit(&problem, crate::lmm::FitOptions::default())?;
+    Ok(FullFit {
+        coef: f.beta.clone(),
+        cov: f.cov_beta.clone(),
+        q,
+        criterion: Criterion::RemlLoglik { value: f.loglik },
+        mixed: Some(f),
     })
 }
 
-/// The nested models: name, words, and which parts they hold
-/// (period slope, age curve, period curve, cohort curve).
-const MODELS: [(&str, &str, [bool; 4]); 6] = [
-    ("A", "age (line and curve)", [false, true, false, false]),
-    ("A+d", "age, and a linear drift in time", [true, true, false, false]),
-    ("A+d+C", "age, drift, cohort curve", [true, true, false, true]),
-    ("A+d+P", "age, drift, period curve", [true, true, true, false]),
-    ("APC", "age, drift, and all three curves", [true, true, true, true]),
-    ("APC−a", "as APC without the age curve", [true, false, true, true]),
-];
-
-fn columns(layout: &Layout, parts: [bool; 4]) -> Vec<usize> {
-    let mut c = vec![0, 1];
-    if parts[0] {
-        c.push(2);
-    }
-    for d in 0..3 {
-        if parts[d + 1] {
-            c.extend(layout.block(d));
-        }
-    }
-    c
-}
-
-/// Fit the exact-value model and its nested models.
+/// Fit the exact-value model.
 ///
 /// # Errors
 /// [`Error::Numerical`] when the design is singular; errors of the engine.
@@ -318,42 +297,19 @@ pub fn fit(input: &ExactInput<'_>, constraints: &[Constraint]) -> Result<ExactAp
             SplitSpline::fit(&birth, EXACT_KNOTS),
         ],
     };
-    let y_mean = input.y.iter().sum::<f64>() / n.max(1) as f64;
-    let moments = if input.ids.is_none() {
-        Some(moments(&layout, input, y_mean))
-    } else {
-        None
+    let full = match input.ids {
+        Some(ids) => mixed(&layout, input, ids)?,
+        None => least_squares(&layout, input)?,
     };
-    let fit_cols = |cols: &[usize]| match (input.ids, &moments) {
-        (Some(ids), _) => mixed(&layout, input, ids, cols),
-        (None, Some(m)) => ols(m, cols),
-        (None, None) => unreachable!("moments exist for records"),
-    };
-    let mut fits = Vec::with_capacity(MODELS.len());
-    for (_, _, parts) in MODELS {
-        fits.push(fit_cols(&columns(&layout, parts))?);
-    }
-    let models = MODELS
-        .iter()
-        .zip(&fits)
-        .map(|((m, t, _), f)| ExactModel {
-            model: (*m).into(),
-            terms: (*t).into(),
-            deviance: f.deviance,
-            parameters: f.q,
-        })
-        .collect();
-    let tests = tests(&layout, &fits, n, input.ids.is_some());
-    let full = &fits[4];
-    let full_cols = columns(&layout, MODELS[4].2);
-    let identified = identified(full);
-    let curves = (0..3).filter_map(|d| curve(&layout, d, full, &full_cols)).collect();
-    let (solutions, fitted_max_difference) = solutions(constraints, full, input, &layout);
+    let tests = tests(&layout, &full, n);
+    let identified = identified(&full);
+    let curves = (0..3).filter_map(|d| curve(&layout, d, &full)).collect();
+    let (solutions, fitted_max_difference) = solutions(constraints, &full, input, &layout);
     Ok(ExactApc {
-        fit: if input.ids.is_some() {
-            "ML, random intercept per participant"
-        } else {
-            "least squares"
+        fit: match (input.ids, input.clusters) {
+            (Some(_), Some(_)) => "REML, random intercept and age slope per participant, random intercept per cluster",
+            (Some(_), None) => "REML, random intercept and age slope per participant",
+            _ => "least squares",
         },
         n_obs: n,
         splines: layout
@@ -367,60 +323,126 @@ pub fn fit(input: &ExactInput<'_>, constraints: &[Constraint]) -> Result<ExactAp
                 nonlinear_df: s.n_nonlinear(),
             })
             .collect(),
-        models,
+        criterion: full.criterion,
         tests,
         identified,
         curves,
         null_direction: [1.0, -1.0, 1.0],
         solutions,
         fitted_max_difference,
+        assumptions: assumptions(input.ids.is_some()),
     })
 }
 
-/// The four tests: drift (A+d against A), and each curve (APC against the
-/// model without it).
-fn tests(layout: &Layout, fits: &[SubFit], n: usize, likelihood: bool) -> Vec<ExactTest> {
+impl ExactApc {
+    /// The linkage assumption's testable part in this model, in words: the
+    /// period curve beyond age and cohort.
+    pub fn linkage_sentence(&self) -> Option<String> {
+        let t = self.tests.iter().find(|t| t.kind == ExactTestKind::PeriodNonlinear)?;
+        let p = t.p?;
+        Some(format!(
+            "In the exact-value model that assumption's testable part is the period curve: beyond age, birth time and a \
+             straight line in time it gives F = {:.3} on ({}, {:.1}) df, {}: {}.",
+            t.statistic,
+            t.df,
+            t.df_denominator,
+            crate::stats::p_words(p),
+            if p < 0.05 {
+                "there are period effects that age and cohort do not absorb, so the no-period assumption fails in \
+                 its nonlinear part and the stitched curve should not be read as an age trajectory alone"
+            } else {
+                "no evidence of period effects beyond age and cohort; this tests only their nonlinear part"
+            }
+        ))
+    }
+}
+
+/// The model's assumptions, for records or panels.
+fn assumptions(panel: bool) -> Vec<String> {
+    let mut a = vec![
+        "age, period and birth time act as smooth curves (natural cubic splines with the knots shown); birth time = \
+         calendar time − age exactly"
+            .to_string(),
+        "the curves, the drift and the two age slopes need no constraint; each solution's three slopes rest on its \
+         constraint, which the data cannot test"
+            .to_string(),
+    ];
+    a.push(if panel {
+        "participants differ in level and in age slope (correlated, normal), clusters in level; given them, records \
+         are independent with one residual variance"
+            .to_string()
+    } else {
+        "records are independent, with one residual variance".to_string()
+    });
+    a
+}
+
+/// Wald F of `coef[cols] = 0`: exact for least squares (residual df);
+/// Fai–Cornelius/Satterthwaite denominator df from the REML fit of panels.
+fn wald(full: &FullFit, cols: &[usize], n: usize) -> (f64, f64) {
+    if let Some(f) = &full.mixed {
+        let rows: Vec<Vec<f64>> = cols
+            .iter()
+            .map(|&c| (0..full.q).map(|k| f64::from(u8::from(k == c))).collect())
+            .collect();
+        let t = crate::infer::hypothesis::wald_f(f, "", &rows);
+        return (t.statistic, t.df_denominator.unwrap_or(f64::NAN));
+    }
+    let m = cols.len();
+    let v = Mat::from_fn(m, m, |i, j| full.cov[cols[i] * full.q + cols[j]]);
+    let b = Mat::from_fn(m, 1, |i, _| full.coef[cols[i]]);
+    let Ok(llt) = v.llt(Side::Lower) else {
+        return (f64::NAN, f64::NAN);
+    };
+    let z = llt.solve(&b);
+    let quad: f64 = (0..m).map(|i| b[(i, 0)] * z[(i, 0)]).sum();
+    (quad / m as f64, n.saturating_sub(full.q) as f64)
+}
+
+/// The four tests: the drift (the period column of the fitted model, whose
+/// coefficient is period slope + cohort slope) and each curve.
+fn tests(layout: &Layout, full: &FullFit, n: usize) -> Vec<ExactTest> {
     let plan = [
-        (ExactTestKind::Drift, "a linear drift in time", 1, 0, None),
-        (ExactTestKind::AgeNonlinear, "age beyond a straight line", 4, 5, Some(0)),
-        (ExactTestKind::PeriodNonlinear, "period beyond a straight line", 4, 2, Some(1)),
-        (ExactTestKind::CohortNonlinear, "cohort beyond a straight line", 4, 3, Some(2)),
+        (ExactTestKind::Drift, "a linear drift in time", None),
+        (ExactTestKind::AgeNonlinear, "age beyond a straight line", Some(0)),
+        (ExactTestKind::PeriodNonlinear, "period beyond a straight line", Some(1)),
+        (ExactTestKind::CohortNonlinear, "cohort beyond a straight line", Some(2)),
     ];
     plan.into_iter()
-        .map(|(kind, name, big, small, dim)| {
-            let (b, s) = (&fits[big], &fits[small]);
-            let df = b.q - s.q;
-            let models = format!("{} against {}", MODELS[big].0, MODELS[small].0);
+        .map(|(kind, name, dim)| {
+            let cols: Vec<usize> = match dim {
+                None => vec![2],
+                Some(d) => layout.block(d).collect(),
+            };
             let mut t = ExactTest {
                 kind,
                 name: name.into(),
-                models,
                 statistic: f64::NAN,
-                df,
-                df_denominator: None,
+                df: cols.len(),
+                df_denominator: f64::NAN,
                 p: None,
                 reference: "—".into(),
                 withheld: None,
             };
-            if df == 0 {
+            if cols.is_empty() {
                 let d = dim.map_or(Dimension::Period, |d| super::analysis::DIMENSIONS[d]);
+                let knots: Vec<String> = dim
+                    .map(|d| layout.splines[d].knots.iter().map(|k| format!("{k:.2}")).collect())
+                    .unwrap_or_default();
                 t.withheld = Some(format!(
-                    "the {} values are too few for a curve (knots {:?}): nothing beyond a straight line can be tested",
+                    "the {} values are too few for a curve (knots {}): nothing beyond a straight line can be tested",
                     d.name(),
-                    dim.map(|d| layout.splines[d].knots.clone()).unwrap_or_default()
+                    knots.join(", ")
                 ));
                 return t;
             }
-            if likelihood {
-                t.statistic = (s.deviance - b.deviance).max(0.0);
-                t.p = Some(chi2_sf(t.statistic, df as f64));
-                t.reference = format!("χ²({df})");
-            } else {
-                let den = n - b.q;
-                t.statistic = ((s.deviance - b.deviance).max(0.0) / df as f64) / (b.deviance / den as f64);
-                t.p = Some(f_sf(t.statistic, df as f64, den as f64));
-                t.df_denominator = Some(den);
-                t.reference = format!("F({df}, {den})");
+            let (f, den) = wald(full, &cols, n);
+            t.statistic = f;
+            t.df_denominator = den;
+            t.p = Some(f_sf(f, cols.len() as f64, den)).filter(|p| p.is_finite());
+            t.reference = format!("F({}, {den:.1})", cols.len());
+            if t.p.is_none() {
+                t.withheld = Some("the Wald statistic could not be computed".into());
             }
             t
         })
@@ -429,7 +451,7 @@ fn tests(layout: &Layout, fits: &[SubFit], n: usize, likelihood: bool) -> Vec<Ex
 
 /// The slope combinations that need no constraint, from the full model
 /// (columns 1 and 2 are age and period: α_a = β_a − β_c, α_p = β_p + β_c).
-fn identified(full: &SubFit) -> Vec<super::identified::Identified> {
+fn identified(full: &FullFit) -> Vec<super::identified::Identified> {
     let q = full.q;
     let v = |i: usize, j: usize| full.cov[i * q + j];
     let (aa, ap) = (full.coef[1], full.coef[2]);
@@ -450,13 +472,13 @@ fn identified(full: &SubFit) -> Vec<super::identified::Identified> {
 }
 
 /// A time scale's deviation from linearity on a grid, with its band.
-fn curve(layout: &Layout, d: usize, full: &SubFit, cols: &[usize]) -> Option<Curve> {
+fn curve(layout: &Layout, d: usize, full: &FullFit) -> Option<Curve> {
     let s = &layout.splines[d];
     if s.n_nonlinear() == 0 {
         return None;
     }
     let block = layout.block(d);
-    let pos: Vec<usize> = block.clone().map(|c| cols.iter().position(|&k| k == c).unwrap_or(0)).collect();
+    let pos: Vec<usize> = block.collect();
     let (lo, hi) = (s.knots[0], s.knots[s.knots.len() - 1]);
     let mut out = Curve {
         dimension: super::analysis::DIMENSIONS[d],
@@ -501,21 +523,26 @@ fn default_constraints() -> Vec<Constraint> {
 /// with L = α_a + α_p, a constraint fixes t as a combination w·(α_a, α_p).
 fn solutions(
     constraints: &[Constraint],
-    full: &SubFit,
+    full: &FullFit,
     input: &ExactInput<'_>,
     layout: &Layout,
 ) -> (Vec<ExactSolution>, f64) {
-    let chosen: Vec<Constraint> = if constraints.is_empty() {
-        default_constraints()
-    } else {
-        constraints
-            .iter()
-            .filter(|c| !matches!(c, Constraint::Equal { .. }))
-            .cloned()
-            .collect()
-    };
+    // Equal-level constraints need groups; without any other, the defaults.
+    let mut chosen: Vec<Constraint> = constraints
+        .iter()
+        .filter(|c| !matches!(c, Constraint::Equal { .. }))
+        .cloned()
+        .collect();
+    if chosen.is_empty() {
+        chosen = default_constraints();
+    }
     let q = full.q;
-    let cov2 = [full.cov[q + 1], full.cov[q + 2], full.cov[2 * q + 1], full.cov[2 * q + 2]];
+    let cov2 = [
+        full.cov[q + 1],
+        full.cov[q + 2],
+        full.cov[2 * q + 1],
+        full.cov[2 * q + 2],
+    ];
     let (aa, ap) = (full.coef[1], full.coef[2]);
     let mut out = Vec::new();
     let mut fitted_first: Option<Vec<f64>> = None;
@@ -599,6 +626,7 @@ mod tests {
             period: &period,
             y: &y,
             ids: None,
+            clusters: None,
         };
         let r = fit(&input, &[]).unwrap();
         let tol = 1e-8;

@@ -185,6 +185,21 @@ fn poisson_deviance(cells: &[Cell], eta: &[f64]) -> f64 {
         .sum::<f64>()
 }
 
+/// Dense 0-based levels of codes, in code order.
+pub(super) fn intercepts(factor: &str, codes: &[u32], n: usize) -> crate::lmm::RandomTermData {
+    let mut levels: Vec<u32> = codes.to_vec();
+    levels.sort_unstable();
+    levels.dedup();
+    let index: std::collections::HashMap<u32, u32> = levels.iter().enumerate().map(|(k, &l)| (l, k as u32)).collect();
+    crate::lmm::RandomTermData {
+        factor: factor.into(),
+        level_names: levels.iter().map(|l| l.to_string()).collect(),
+        level: codes.iter().map(|l| index[l]).collect(),
+        columns: vec!["intercept".into()],
+        z: vec![vec![1.0; n]],
+    }
+}
+
 /// Panels: a linear mixed model with design rows `x` (one per record, held
 /// as cells with `e` = 1) and a random intercept per participant, by ML.
 /// The deviance is −2 × the ML log-likelihood.
@@ -194,21 +209,12 @@ fn poisson_deviance(cells: &[Cell], eta: &[f64]) -> f64 {
 pub fn fit_mixed(cells: &[Cell], x: &[Vec<f64>], ids: &[u32]) -> Result<GlmFit> {
     let q = x.first().map_or(0, Vec::len);
     let n = cells.len();
-    let mut levels: Vec<u32> = ids.to_vec();
-    levels.sort_unstable();
-    levels.dedup();
-    let index: std::collections::HashMap<u32, u32> = levels.iter().enumerate().map(|(k, &l)| (l, k as u32)).collect();
+    let terms = vec![intercepts("participant", ids, n)];
     let problem = crate::lmm::MixedProblem {
         y: cells.iter().map(|c| c.y).collect(),
         x_names: (0..q).map(|k| format!("x{k}")).collect(),
         x: x.iter().flat_map(|r| r.iter().copied()).collect(),
-        terms: vec![crate::lmm::RandomTermData {
-            factor: "participant".into(),
-            level_names: levels.iter().map(|l| l.to_string()).collect(),
-            level: ids.iter().map(|l| index[l]).collect(),
-            columns: vec!["intercept".into()],
-            z: vec![vec![1.0; n]],
-        }],
+        terms,
     };
     let f = crate::lmm::fit(
         &problem,

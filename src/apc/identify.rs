@@ -28,6 +28,9 @@ pub struct ApcColumns {
     pub exposure: Option<String>,
     /// Panels: the participant id.
     pub id: Option<String>,
+    /// Panels: a cluster (for example the school), a random intercept each
+    /// in the exact-value model.
+    pub cluster: Option<String>,
     /// Records: a birth-year column, checked against period − age.
     pub birth_year: Option<String>,
 }
@@ -99,6 +102,7 @@ impl ApcInput {
                     age: age.into(),
                     outcome: y.clone(),
                     period: Some(period.into()),
+                    cluster: columns.cluster.clone(),
                     ..Default::default()
                 };
                 let panel = data::load(path, &roles, read)?;
@@ -275,9 +279,31 @@ pub fn identify(input: &ApcInput, options: &ApcOptions) -> Result<ApcReport> {
         };
         report.hierarchical = Some(hierarchical::fit(t, &data)?);
     }
-    if input.records().is_some() {
-        report.warnings.push(grouping_warning(&data));
+    if let Some(t) = input.records() {
+        report.warnings.push(grouping_warning(&data, options.width.is_some()));
         withhold_grouped_curvature(&mut report);
+        let (ids, clusters) = match input {
+            ApcInput::Panel { panel, .. } => (
+                Some(panel.id.codes.as_slice()),
+                panel.cluster.as_ref().map(|c| c.codes.as_slice()),
+            ),
+            _ => (None, None),
+        };
+        let records = super::exact::ExactInput {
+            age: &t.columns[0],
+            period: &t.columns[1],
+            y: &t.columns[2],
+            ids,
+            clusters,
+        };
+        let exact = super::exact::fit(&records, &options.constraints)?;
+        // Without groups asked for, the panel's linkage test is the exact one.
+        if let (Some(view), Some(sentence), None) = (&mut report.panel, exact.linkage_sentence(), options.width) {
+            if let Some(line) = view.text.get_mut(2) {
+                *line = sentence;
+            }
+        }
+        report.exact = Some(exact);
     }
     report.warning_codes = crate::warning::codes(&report.warnings);
     report.data = input.summary();
@@ -285,21 +311,31 @@ pub fn identify(input: &ApcInput, options: &ApcOptions) -> Result<ApcReport> {
     Ok(report)
 }
 
-/// What grouping exact ages and calendar times does, and how the groups were formed.
-fn grouping_warning(data: &ApcData) -> Warning {
+/// What grouping exact ages and calendar times does, how the groups were
+/// formed, and what to read instead.
+fn grouping_warning(data: &ApcData, asked: bool) -> Warning {
     let (w, (a0, p0)) = (data.width, data.origin);
     let (a, p) = (data.shape.a, data.shape.p);
     let years = if w == 1.0 { "year" } else { "years" };
-    Warning::new(
-        WarningCode::GroupedExactAges,
+    let groups = format!(
+        "{a} age groups of {w} {years} from age {a0}, {p} periods of {w} {years} from {p0}, and cohort group = period \
+         group − age group"
+    );
+    let leak = "Inside a group, records of one cohort group sit at different exact ages, so a steep age curve leaks \
+                into the period and cohort second differences and their curvature tests, which can then reject \
+                without any period or cohort effect; their p-values are withheld.";
+    let message = if asked {
         format!(
-            "exact ages and calendar times were grouped: {a} age groups of {w} {years} from age {a0}, {p} periods of \
-             {w} {years} from {p0}, and cohort group = period group − age group. Inside a group, records of one cohort \
-             group sit at different exact ages, so a steep age curve leaks into the period and cohort second \
-             differences and their curvature tests, which can then reject without any period or cohort effect; \
-             read them with care"
-        ),
-    )
+            "exact ages and calendar times were grouped: {groups}. {leak} The exact-value model, which groups \
+             nothing and whose tests hold their level, is printed below (`exact` in the JSON)."
+        )
+    } else {
+        format!(
+            "the JSON also holds a grouped factor model, for comparison only: {groups}. {leak} The exact-value model \
+             printed here groups nothing."
+        )
+    };
+    Warning::new(WarningCode::GroupedExactAges, message)
 }
 
 /// On grouped exact ages the period and cohort curvature tests do not hold

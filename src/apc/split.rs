@@ -114,7 +114,11 @@ impl SplitSpline {
         let vxx = sxx - sx * sx / n;
         (0..q)
             .map(|j| {
-                let b = if vxx > 0.0 { (sxy[j] - sx * sy[j] / n) / vxx } else { 0.0 };
+                let b = if vxx > 0.0 {
+                    (sxy[j] - sx * sy[j] / n) / vxx
+                } else {
+                    0.0
+                };
                 let a = sy[j] / n - b * sx / n;
                 // Residual sum of squares of the column about its line.
                 let rss = (syy[j] - sy[j] * sy[j] / n) - b * (sxy[j] - sx * sy[j] / n);
@@ -143,7 +147,9 @@ mod tests {
     use super::*;
 
     fn values() -> Vec<f64> {
-        (0..400).map(|i| 10.0 + (i as f64 * 0.618_034).fract() * 8.0 + (i % 7) as f64 * 0.1).collect()
+        (0..400)
+            .map(|i| 10.0 + (i as f64 * 0.618_034).fract() * 8.0 + (i % 7) as f64 * 0.1)
+            .collect()
     }
 
     // Closed form: least-squares residuals are orthogonal to the regressors,
@@ -166,7 +172,12 @@ mod tests {
             }
         }
         for j in 0..q {
-            assert!(sum[j].abs() < 1e-8 && cross[j].abs() < 1e-8, "column {j}: {} {}", sum[j], cross[j]);
+            assert!(
+                sum[j].abs() < 1e-8 && cross[j].abs() < 1e-8,
+                "column {j}: {} {}",
+                sum[j],
+                cross[j]
+            );
             assert!((sq[j] / x.len() as f64 - 1.0).abs() < 1e-10);
         }
     }
@@ -175,7 +186,9 @@ mod tests {
     // wave, two nonlinear columns (common practice: knots where data are).
     #[test]
     fn clustered_values_get_one_knot_per_cluster() {
-        let x: Vec<f64> = (0..400).map(|i| 2019.7 + (i % 4) as f64 + (i % 13) as f64 * 0.01).collect();
+        let x: Vec<f64> = (0..400)
+            .map(|i| 2019.7 + (i % 4) as f64 + (i % 13) as f64 * 0.01)
+            .collect();
         let s = SplitSpline::fit(&x, EXACT_KNOTS);
         assert_eq!(s.knots.len(), 4, "{:?}", s.knots);
         assert_eq!(s.n_nonlinear(), 2);

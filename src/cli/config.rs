@@ -341,6 +341,7 @@ impl ApcArgs {
             events: self.events.clone(),
             exposure: self.exposure.clone(),
             id: nonempty(&r.id),
+            cluster: r.cluster.clone(),
             birth_year: r.birth_year.clone(),
         };
         if columns.outcome.is_none() && columns.events.is_none() {

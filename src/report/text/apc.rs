@@ -3,13 +3,52 @@
 use std::fmt::Write;
 
 use crate::apc::analysis::ApcReport;
+use crate::apc::exact::{Criterion, ExactApc};
 
-use super::{header, labelled, p_is, thousands, title, wrap};
+use super::{header, labelled, p_is, pval, thousands, title, wrap};
 
 /// The `braid apc` summary.
 pub fn apc_summary(r: &ApcReport) -> String {
     let mut s = String::new();
     title(&mut s, "apc", &r.data);
+    let exact_only = r.options.width.is_none();
+    match (&r.exact, exact_only) {
+        (Some(e), true) => {
+            labelled(
+                &mut s,
+                "Data",
+                format_args!("{} records with exact ages and calendar times", thousands(e.n_obs)),
+            );
+            warnings_block(&mut s, r);
+            exact_block(&mut s, e);
+        }
+        _ => {
+            grouped_block(&mut s, r);
+            solutions_block(&mut s, r);
+            bounds_block(&mut s, r);
+            if let Some(e) = &r.exact {
+                let _ = writeln!(s);
+                exact_block(&mut s, e);
+            }
+        }
+    }
+    records_block(&mut s, r);
+    let _ = writeln!(s);
+    let assumptions = match (&r.exact, exact_only) {
+        (Some(e), true) => &e.assumptions,
+        _ => &r.assumptions,
+    };
+    for (i, a) in assumptions.iter().enumerate() {
+        let _ = writeln!(s, "{:<11}{}", if i == 0 { "Assumes" } else { "" }, wrap(a, 75, 11));
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:<11}{}", "Caution", crate::report::CAUTIONS[2]);
+    s
+}
+
+/// The grouped factor model: its shape, null vector, deviances, identified
+/// quantities and curvature tests.
+fn grouped_block(s: &mut String, r: &ApcReport) {
     // The model, and the deviance that its comparisons use.
     let (model, kind) = if r.outcome == crate::apc::analysis::OutcomeKind::Counts {
         (
@@ -27,11 +66,7 @@ pub fn apc_summary(r: &ApcReport) -> String {
             "(residual sum of squares)",
         )
     };
-    labelled(
-        &mut s,
-        "Data",
-        format_args!("{model} · {} observations", thousands(r.n_obs)),
-    );
+    labelled(s, "Data", format_args!("{model} · {} observations", thousands(r.n_obs)));
     let (a, p, kn) = (r.shape.a, r.shape.p, r.shape.kn);
     let possible = a + p - 1;
     let cohorts = if kn == possible {
@@ -39,14 +74,14 @@ pub fn apc_summary(r: &ApcReport) -> String {
     } else {
         format!("{kn} observed of {possible} possible cohorts")
     };
-    labelled(&mut s, "", format_args!("{a} age groups × {p} periods → {cohorts}"));
+    labelled(s, "", format_args!("{a} age groups × {p} periods → {cohorts}"));
     let residual = if r.null_vector_residual < 1e-12 {
         "below 1e-12".to_string()
     } else {
         format!("{:.1e}", r.null_vector_residual)
     };
     labelled(
-        &mut s,
+        s,
         "Design",
         format_args!(
             "rank deficiency {} (max |X·v| {residual}); null vector in sum-to-zero coding (Kupper et al. 1985):",
@@ -63,23 +98,13 @@ pub fn apc_summary(r: &ApcReport) -> String {
     let joined = line.join(" ");
     let _ = writeln!(s, "{:<11}{}", "", wrap(joined.trim_end_matches(','), 75, 11));
     let _ = writeln!(s);
-    for (i, w) in r.warnings.iter().enumerate() {
-        let _ = writeln!(
-            s,
-            "{:<11}{}",
-            if i == 0 { "Warning" } else { "" },
-            wrap(&w.message, 75, 11)
-        );
-    }
-    if !r.warnings.is_empty() {
-        let _ = writeln!(s);
-    }
+    warnings_block(s, r);
     let _ = writeln!(s, "{:<16}{:>14}{:>8}  {kind}", "Deviance", "", "df");
     for d in &r.deviance_table {
         let _ = writeln!(s, "  {:<14}{:>14.4}{:>8}", d.model, d.deviance, d.df);
     }
     header(
-        &mut s,
+        s,
         &["Identified (no constraint needed)", "estimate", "SE"],
         &[-60, 12, 10],
     );
@@ -98,23 +123,131 @@ pub fn apc_summary(r: &ApcReport) -> String {
             None => format!("χ² = {:.3} on {} df", t.statistic, t.df),
         };
         match &t.withheld {
-            None => labelled(&mut s, "Curvature", format_args!("no curvature in {d}: {stat}, {p}")),
+            None => labelled(s, "Curvature", format_args!("no curvature in {d}: {stat}, {p}")),
             Some(why) => {
                 let text = format!("no curvature in {d}: {stat}; no p-value: {why}");
-                labelled(&mut s, "Curvature", format_args!("{}", wrap(&text, 75, 11)));
+                labelled(s, "Curvature", format_args!("{}", wrap(&text, 75, 11)));
             }
         }
     }
-    solutions_block(&mut s, r);
-    bounds_block(&mut s, r);
-    records_block(&mut s, r);
-    let _ = writeln!(s);
-    for (i, a) in r.assumptions.iter().enumerate() {
-        let _ = writeln!(s, "{:<11}{}", if i == 0 { "Assumes" } else { "" }, wrap(a, 75, 11));
+}
+
+/// The warnings, each in the left margin's block.
+fn warnings_block(s: &mut String, r: &ApcReport) {
+    for (i, w) in r.warnings.iter().enumerate() {
+        let _ = writeln!(
+            s,
+            "{:<11}{}",
+            if i == 0 { "Warning" } else { "" },
+            wrap(&w.message, 75, 11)
+        );
     }
+    if !r.warnings.is_empty() {
+        let _ = writeln!(s);
+    }
+}
+
+/// The exact-value model: its splines, nested models, tests, identified
+/// quantities and the slopes under each constraint.
+fn exact_block(s: &mut String, e: &ExactApc) {
+    let knots = |d: usize| {
+        let k: Vec<String> = e.splines[d].knots.iter().map(|v| format!("{v:.1}")).collect();
+        format!("{} ({})", e.splines[d].dimension.name(), k.join(", "))
+    };
+    labelled(
+        s,
+        "Exact",
+        format_args!(
+            "{}",
+            wrap(
+                &format!(
+                    "natural cubic splines in exact age, calendar time and birth time (Carstensen 2007), knots: {}; {}; {}",
+                    knots(0),
+                    knots(1),
+                    knots(2).replace("cohort", "birth time")
+                ),
+                75,
+                11
+            )
+        ),
+    );
+    let criterion = match e.criterion {
+        Criterion::ResidualSumOfSquares { value, df } => {
+            format!("residual sum of squares {value:.3} on {} df", thousands(df))
+        }
+        Criterion::RemlLoglik { value } => format!("REML log-likelihood {value:.3}"),
+    };
+    labelled(
+        s,
+        "",
+        format_args!("{}", wrap(&format!("{} · {criterion}", e.fit), 75, 11)),
+    );
+    header(s, &["Tests", "", "against", "statistic", "p"], &[-12, -46, 18, 12, 8]);
+    for t in &e.tests {
+        match (&t.p, &t.withheld) {
+            (Some(p), _) => {
+                let _ = writeln!(
+                    s,
+                    "  {:<56}{:>18}{:>12.3}{:>8}",
+                    t.name,
+                    t.reference,
+                    t.statistic,
+                    pval(*p)
+                );
+            }
+            (None, why) => {
+                let text = format!("{}: no test, {}", t.name, why.as_deref().unwrap_or("not computable"));
+                let _ = writeln!(s, "  {}", wrap(&text, 86, 2));
+            }
+        }
+    }
+    labelled(
+        s,
+        "",
+        format_args!("(Wald F in the fitted model; the drift is tested beside the curves)"),
+    );
+    header(
+        s,
+        &["Identified (no constraint needed)", "estimate", "SE"],
+        &[-60, 12, 10],
+    );
+    for q in &e.identified {
+        let _ = writeln!(s, "  {:<58}{:>12.4}{:>10.4}", q.quantity, q.estimate, q.se);
+    }
+    labelled(
+        s,
+        "",
+        format_args!("(the deviation curves with 95% bands are in the JSON and apc_exact.png)"),
+    );
     let _ = writeln!(s);
-    let _ = writeln!(s, "{:<11}{}", "Caution", crate::report::CAUTIONS[2]);
-    s
+    labelled(
+        s,
+        "Solutions",
+        format_args!("the slopes move together along (age, period, cohort) + t·(1, −1, 1)"),
+    );
+    let _ = writeln!(
+        s,
+        "  {:<58}{:>9}{:>9}{:>9}",
+        "constraint (slopes per year)", "age", "period", "cohort"
+    );
+    for sol in &e.solutions {
+        let _ = writeln!(
+            s,
+            "  {:<58}{:>9}{:>9}{:>9}",
+            sol.description,
+            fixed4(sol.slopes[0]),
+            fixed4(sol.slopes[1]),
+            fixed4(sol.slopes[2])
+        );
+    }
+    labelled(
+        s,
+        "",
+        format_args!(
+            "(fitted values agree to {:.1e} under every constraint)",
+            e.fitted_max_difference
+        ),
+    );
 }
 
 /// The constrained solutions and their slopes.
