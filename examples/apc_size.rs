@@ -3,7 +3,7 @@
 //! records.
 //!
 //! ```text
-//! cargo run --release --example apc_size -- [REPS] [DESIGN] [PER_COHORT] [MODEL] [SHOCK]
+//! cargo run --release --example apc_size -- [REPS] [DESIGN] [PER_COHORT] [MODEL] [SHOCK] [SEED]
 //! ```
 //!
 //! DESIGN is `demo` (five cohorts entering at 12 to 20, two years apart, four
@@ -19,34 +19,36 @@
 //!
 //! SHOCK adds an effect that is there: `period` adds 0.5 residual SD to every
 //! record of the second calendar year of fieldwork, `cohort` adds it to
-//! every record of participants born in the birth year at the middle of the
-//! birth-time range, `none` (default) adds nothing. `linear-age` takes away
+//! every record of the middle entry cohort (born within one year: a
+//! birth-year group), `none` (default) adds nothing. `linear-age` takes away
 //! the age curve instead (a straight line in age), for the size of the age
-//! test. Seeds run from 120,000.
+//! test. Seeds run from SEED (default 120,000).
 
 use braid::apc::exact::{ExactInput, ExactTestKind, fit};
 use braid::apc::{ApcInput, ApcOptions, identify};
 use braid::infer::hypothesis::f_sf;
 use braid::simulate::{Design, simulate};
 
-/// Per cent of replicates that reject, per test, at 5%.
+/// Per cent of replicates that reject, per test, at 1%, 5% and 10%.
 struct Tally {
     names: Vec<String>,
-    rejected: Vec<usize>,
+    rejected: Vec<[usize; 3]>,
     reps: usize,
 }
 
 impl Tally {
-    fn add(&mut self, name: &str, reject: bool) {
+    fn add(&mut self, name: &str, p: f64) {
         let k = match self.names.iter().position(|n| n == name) {
             Some(k) => k,
             None => {
                 self.names.push(name.into());
-                self.rejected.push(0);
+                self.rejected.push([0; 3]);
                 self.names.len() - 1
             }
         };
-        self.rejected[k] += usize::from(reject);
+        for (j, alpha) in [0.01, 0.05, 0.10].into_iter().enumerate() {
+            self.rejected[k][j] += usize::from(p < alpha);
+        }
     }
 }
 
@@ -67,21 +69,17 @@ fn design(name: &str, per_cohort: usize, seed: u64) -> Design {
     d
 }
 
-fn shocked(y: &[f64], age: &[f64], period: &[f64], shock: &str, size: f64) -> Vec<f64> {
+fn shocked(panel: &braid::data::Panel, period: &[f64], shock: &str, size: f64) -> Vec<f64> {
     let first = period.iter().copied().fold(f64::INFINITY, f64::min).floor();
-    let birth: Vec<f64> = period.iter().zip(age).map(|(p, a)| p - a).collect();
-    let (lo, hi) = birth
-        .iter()
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &b| (l.min(b), h.max(b)));
-    let middle = ((lo + hi) / 2.0).floor();
-    (0..y.len())
+    let middle = panel.cohort().map(|c| (c.codes(), (c.n_levels() / 2) as u32));
+    (0..panel.n())
         .map(|k| {
-            let hit = match shock {
-                "period" => period[k].floor() == first + 1.0,
-                "cohort" => birth[k].floor() == middle,
+            let hit = match (shock, middle) {
+                ("period", _) => period[k].floor() == first + 1.0,
+                ("cohort", Some((codes, m))) => codes[k] == m,
                 _ => false,
             };
-            y[k] + if hit { size } else { 0.0 }
+            panel.outcome()[k] + if hit { size } else { 0.0 }
         })
         .collect()
 }
@@ -94,6 +92,7 @@ fn main() {
     let model = args.next().unwrap_or_else(|| "exact".into());
     let shock = args.next().unwrap_or_else(|| "none".into());
     let width: Option<f64> = model.parse().ok();
+    let first_seed: u64 = std::env::args().nth(6).and_then(|v| v.parse().ok()).unwrap_or(120_000);
     let mut tally = Tally {
         names: Vec::new(),
         rejected: Vec::new(),
@@ -102,7 +101,7 @@ fn main() {
     let mut failed = 0usize;
     let t0 = std::time::Instant::now();
     for i in 0..reps {
-        let mut d = design(&name, per_cohort, 120_000 + i as u64);
+        let mut d = design(&name, per_cohort, first_seed + i as u64);
         if shock == "linear-age" {
             d.truth.mean.truncate(2);
         }
@@ -127,11 +126,15 @@ fn main() {
         tally.reps,
         t0.elapsed().as_secs_f64()
     );
+    let pct = |r: usize| 100.0 * r as f64 / tally.reps as f64;
     for (n, r) in tally.names.iter().zip(&tally.rejected) {
         println!(
-            "  {n:<34} rejects at 5% in {:>5.1}% ({r} of {})",
-            100.0 * *r as f64 / tally.reps as f64,
-            tally.reps
+            "  {n:<34} rejects at 5% in {:>5.1}% ({} of {}); at 1% {:.1}%, at 10% {:.1}%",
+            pct(r[1]),
+            r[1],
+            tally.reps,
+            pct(r[0]),
+            pct(r[2])
         );
     }
 }
@@ -143,7 +146,7 @@ fn exact_tests(panel: &braid::data::Panel, shock: &str, size: f64, tally: &mut T
             message: "no calendar".into(),
         });
     };
-    let y = shocked(panel.outcome(), panel.age(), &cal.period, shock, size);
+    let y = shocked(panel, &cal.period, shock, size);
     let input = ExactInput {
         age: panel.age(),
         period: &cal.period,
@@ -160,7 +163,7 @@ fn exact_tests(panel: &braid::data::Panel, shock: &str, size: f64, tally: &mut T
             ExactTestKind::PeriodNonlinear => "period nonlinear",
             ExactTestKind::CohortNonlinear => "cohort nonlinear",
         };
-        tally.add(name, t.p.is_some_and(|p| p < 0.05));
+        tally.add(name, t.p.unwrap_or(f64::NAN));
     }
     Ok(())
 }
@@ -175,10 +178,10 @@ fn grouped_tests(panel: braid::data::Panel, width: f64, tally: &mut Tally) -> br
             Some(den) if t.p.is_nan() => f_sf(t.statistic, t.df as f64, den as f64),
             _ => t.p,
         };
-        tally.add(&format!("grouped {} curvature", t.dimension.name()), p < 0.05);
+        tally.add(&format!("grouped {} curvature", t.dimension.name()), p);
     }
     if let Some(view) = &report.panel {
-        tally.add("grouped APC against A+C", view.period_beyond_cohort.p < 0.05);
+        tally.add("grouped APC against A+C", view.period_beyond_cohort.p);
     }
     Ok(())
 }

@@ -440,7 +440,11 @@ fn tests(layout: &Layout, full: &FullFit, n: usize) -> Vec<ExactTest> {
             t.statistic = f;
             t.df_denominator = den;
             t.p = Some(f_sf(f, cols.len() as f64, den)).filter(|p| p.is_finite());
-            t.reference = format!("F({}, {den:.1})", cols.len());
+            t.reference = if den.fract() == 0.0 {
+                format!("F({}, {den})", cols.len())
+            } else {
+                format!("F({}, {den:.1})", cols.len())
+            };
             if t.p.is_none() {
                 t.withheld = Some("the Wald statistic could not be computed".into());
             }

@@ -12,6 +12,9 @@
 //!   age, period and cohort slopes as straight lines in t along the line of
 //!   solutions b₀ + t·v, a tick for each constraint's t, and the interval of
 //!   t that the assumptions allow as a shaded band.
+//! - `apc_exact` (records): three panels with each time scale's deviation
+//!   from linearity in the exact-value model over a zero line, with its 95%
+//!   pointwise band shaded and the knots marked as ticks on the zero line.
 
 use std::path::Path;
 
@@ -276,6 +279,75 @@ fn line_figure<DB: DrawingBackend>(root: Panel<DB>, r: &ApcReport) -> std::resul
     Ok(())
 }
 
+fn exact_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimension) -> std::result::Result<(), String> {
+    let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
+    let Some(exact) = &r.exact else {
+        return Ok(());
+    };
+    let (k, name) = match d {
+        Dimension::Age => (0, "age"),
+        Dimension::Period => (1, "calendar time"),
+        Dimension::Cohort => (2, "birth time"),
+    };
+    let color = PALETTE[k];
+    let spline = &exact.splines[k];
+    let curve = exact.curves.iter().find(|c| c.dimension == d);
+    let (x0, x1) = (spline.knots[0], spline.knots[spline.knots.len() - 1]);
+    let (x0, x1) = if x1 > x0 { (x0, x1) } else { (x0 - 0.5, x0 + 0.5) };
+    let (lo, hi) = range(curve.into_iter().flat_map(|c| c.lower.iter().chain(&c.upper).copied()).chain([0.0]));
+    let mut chart = ChartBuilder::on(area)
+        .caption(format!("{name}: deviation from a line"), ("sans-serif", 19).into_font().color(&INK))
+        .margin(14)
+        .x_label_area_size(44)
+        .y_label_area_size(56)
+        .build_cartesian_2d(x0..x1, lo..hi)
+        .map_err(e)?;
+    styled_mesh(&mut chart, 12)
+        .x_labels(8)
+        .x_desc(name)
+        .y_desc("deviation, outcome units")
+        .draw()
+        .map_err(e)?;
+    chart
+        .draw_series(LineSeries::new([(x0, 0.0), (x1, 0.0)], INK.stroke_width(1)))
+        .map_err(e)?;
+    let tick = 0.02 * (hi - lo);
+    chart
+        .draw_series(
+            spline
+                .knots
+                .iter()
+                .map(|&x| PathElement::new(vec![(x, -tick), (x, tick)], INK.stroke_width(2))),
+        )
+        .map_err(e)?;
+    if let Some(c) = curve {
+        let band: Vec<(f64, f64)> = c
+            .x
+            .iter()
+            .zip(&c.upper)
+            .map(|(x, y)| (*x, *y))
+            .chain(c.x.iter().zip(&c.lower).rev().map(|(x, y)| (*x, *y)))
+            .collect();
+        chart.draw_series(std::iter::once(Polygon::new(band, color.mix(0.18)))).map_err(e)?;
+        chart
+            .draw_series(LineSeries::new(
+                c.x.iter().zip(&c.deviation).map(|(x, y)| (*x, *y)),
+                color.stroke_width(3),
+            ))
+            .map_err(e)?;
+    } else {
+        // Too few distinct values for a curve: say so on the panel.
+        chart
+            .draw_series(std::iter::once(Text::new(
+                "too few distinct values for a curve",
+                (x0 + 0.05 * (x1 - x0), hi - 0.1 * (hi - lo)),
+                ("sans-serif", 14).into_font().color(&INK),
+            )))
+            .map_err(e)?;
+    }
+    Ok(())
+}
+
 fn three<DB: DrawingBackend>(
     root: Panel<DB>,
     r: &ApcReport,
@@ -300,7 +372,11 @@ pub fn write(dir: &Path, r: &ApcReport) -> Result<Vec<String>> {
         message: format!("cannot draw the figure ({m})"),
     };
     let mut names = Vec::new();
-    for (stem, size) in [("apc_effects", WIDE), ("apc_curvature", WIDE), ("apc_line", SQUARE)] {
+    let mut stems = vec![("apc_effects", WIDE), ("apc_curvature", WIDE), ("apc_line", SQUARE)];
+    if r.exact.is_some() {
+        stems.push(("apc_exact", WIDE));
+    }
+    for (stem, size) in stems {
         let png = dir.join(format!("{stem}.png"));
         let svg = dir.join(format!("{stem}.svg"));
         let (a, b) = match stem {
@@ -311,6 +387,10 @@ pub fn write(dir: &Path, r: &ApcReport) -> Result<Vec<String>> {
             "apc_curvature" => (
                 three(BitMapBackend::new(&png, size).into_drawing_area(), r, curvature_panel),
                 three(SVGBackend::new(&svg, size).into_drawing_area(), r, curvature_panel),
+            ),
+            "apc_exact" => (
+                three(BitMapBackend::new(&png, size).into_drawing_area(), r, exact_panel),
+                three(SVGBackend::new(&svg, size).into_drawing_area(), r, exact_panel),
             ),
             _ => (
                 line_figure(BitMapBackend::new(&png, size).into_drawing_area(), r),

@@ -388,3 +388,79 @@ fn grouped_records_withhold_the_period_and_cohort_p_values() {
             .all(|t| t.p.is_finite() && t.withheld.is_none())
     );
 }
+
+/// Replicates of the size check that runs in CI.
+const SIZE_REPLICATES: u64 = 100;
+
+/// The central band of Binomial(n, 0.05) with at most 1% of its mass in
+/// each tail, from the cdf of statrs 0.19.1: a test of nominal size 5%
+/// rejects in fewer or more of `n` replicates with probability under 2%.
+fn binomial_band(n: u64) -> (u64, u64) {
+    use statrs::distribution::{Binomial, DiscreteCDF};
+    let b = Binomial::new(0.05, n).unwrap();
+    let lo = (0..=n).find(|&k| b.cdf(k) > 0.01).unwrap();
+    let hi = (0..=n).find(|&k| b.cdf(k) >= 0.99).unwrap();
+    (lo, hi)
+}
+
+// Size of the exact-value model's tests by seeded simulation: 100 panels of
+// each design without period and cohort effects, with a quadratic age curve,
+// participant intercepts and slopes, school intercepts and dropout: four
+// cohorts three years apart (and the same with a straight-line age curve,
+// for the age test), and the demo's five cohorts two years apart. Each
+// test's rejections at 5% lie in the 98% band of Binomial(100, 0.05). The
+// seeds are the first 100 of the 2,000-replicate runs in notes/apc-size.md,
+// which also records a block of 100 (from seed 310,000) where the period
+// test rejected in none: a 0.6% event under the nominal size, and 5.0% over
+// 1,000 replicates from the same seed.
+#[test]
+fn exact_value_tests_hold_their_level_on_panels_without_the_effect() {
+    use braid::apc::exact::{ExactInput, ExactTestKind, fit};
+    use braid::simulate::{Design, simulate};
+    let (lo, hi) = binomial_band(SIZE_REPLICATES);
+    assert_eq!((lo, hi), (1, 11), "the band of Binomial(100, 0.05)");
+    for (design, linear_age) in [("four", false), ("four", true), ("demo", false)] {
+        let mut rejected = [0u64; 4];
+        for seed in 0..SIZE_REPLICATES {
+            let mut d = Design::demo();
+            d.seed = 120_000 + seed;
+            d.per_cohort = 100;
+            if design == "four" {
+                d.entry_ages = vec![10.0, 13.0, 16.0, 19.0];
+            }
+            if linear_age {
+                d.truth.mean.truncate(2);
+            }
+            let panel = simulate(&d).panel(true);
+            let cal = panel.calendar().unwrap();
+            let input = ExactInput {
+                age: panel.age(),
+                period: &cal.period,
+                y: panel.outcome(),
+                ids: Some(panel.id().codes()),
+                clusters: panel.cluster().map(braid::data::Codes::codes),
+            };
+            let r = fit(&input, &[]).unwrap();
+            for t in &r.tests {
+                let k = match t.kind {
+                    ExactTestKind::Drift => 0,
+                    ExactTestKind::AgeNonlinear => 1,
+                    ExactTestKind::PeriodNonlinear => 2,
+                    ExactTestKind::CohortNonlinear => 3,
+                };
+                rejected[k] += u64::from(t.p.unwrap() < 0.05);
+            }
+        }
+        for (k, name) in ["drift", "age curve", "period curve", "cohort curve"].iter().enumerate() {
+            if k == 1 && !linear_age {
+                assert_eq!(rejected[k], SIZE_REPLICATES, "the age curve is there: power");
+                continue;
+            }
+            assert!(
+                (lo..=hi).contains(&rejected[k]),
+                "{name} test rejected in {} of {SIZE_REPLICATES} {design} panels without the effect",
+                rejected[k]
+            );
+        }
+    }
+}

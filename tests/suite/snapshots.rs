@@ -120,6 +120,13 @@ fn every_text_screen_of_the_demo_matches_its_snapshot() {
                 "1",
             ],
         ),
+        (
+            "apc-exact",
+            vec![
+                "apc", panel, "--id", "pupil", "--age", "age", "--period", "year", "--outcome", "score", "--cluster",
+                "school",
+            ],
+        ),
     ];
     let folder = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests").join("snapshots");
     let update = std::env::var_os("BRAID_UPDATE_SNAPSHOTS").is_some();
