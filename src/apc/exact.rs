@@ -283,20 +283,43 @@ fn mixed(layout: &Layout, input: &ExactInput<'_>, ids: &[u32]) -> Result<FullFit
     })
 }
 
+/// The columns of the fitted model, named, one row per record: intercept,
+/// centred age and calendar time, then each time scale's nonlinear columns,
+/// for checking the fit elsewhere.
+pub fn basis(input: &ExactInput<'_>) -> (Vec<String>, Vec<Vec<f64>>) {
+    let layout = layout(input);
+    let mut names = vec!["intercept".to_string(), "age_linear".into(), "period_linear".into()];
+    for (d, dim) in super::analysis::DIMENSIONS.iter().enumerate() {
+        names.extend((1..=layout.splines[d].n_nonlinear()).map(|k| format!("{}_curve{k}", dim.name())));
+    }
+    let rows = (0..input.y.len())
+        .map(|k| {
+            let mut row = Vec::with_capacity(layout.q());
+            layout.row(input.age[k], input.period[k], &mut row);
+            row
+        })
+        .collect();
+    (names, rows)
+}
+
+fn layout(input: &ExactInput<'_>) -> Layout {
+    let birth: Vec<f64> = input.period.iter().zip(input.age).map(|(p, a)| p - a).collect();
+    Layout {
+        splines: [
+            SplitSpline::fit(input.age, EXACT_KNOTS),
+            SplitSpline::fit(input.period, EXACT_KNOTS),
+            SplitSpline::fit(&birth, EXACT_KNOTS),
+        ],
+    }
+}
+
 /// Fit the exact-value model.
 ///
 /// # Errors
 /// [`Error::Numerical`] when the design is singular; errors of the engine.
 pub fn fit(input: &ExactInput<'_>, constraints: &[Constraint]) -> Result<ExactApc> {
     let n = input.y.len();
-    let birth: Vec<f64> = input.period.iter().zip(input.age).map(|(p, a)| p - a).collect();
-    let layout = Layout {
-        splines: [
-            SplitSpline::fit(input.age, EXACT_KNOTS),
-            SplitSpline::fit(input.period, EXACT_KNOTS),
-            SplitSpline::fit(&birth, EXACT_KNOTS),
-        ],
-    };
+    let layout = layout(input);
     let full = match input.ids {
         Some(ids) => mixed(&layout, input, ids)?,
         None => least_squares(&layout, input)?,

@@ -294,9 +294,17 @@ fn exact_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimension
     let curve = exact.curves.iter().find(|c| c.dimension == d);
     let (x0, x1) = (spline.knots[0], spline.knots[spline.knots.len() - 1]);
     let (x0, x1) = if x1 > x0 { (x0, x1) } else { (x0 - 0.5, x0 + 0.5) };
-    let (lo, hi) = range(curve.into_iter().flat_map(|c| c.lower.iter().chain(&c.upper).copied()).chain([0.0]));
+    let (lo, hi) = range(
+        curve
+            .into_iter()
+            .flat_map(|c| c.lower.iter().chain(&c.upper).copied())
+            .chain([0.0]),
+    );
     let mut chart = ChartBuilder::on(area)
-        .caption(format!("{name}: deviation from a line"), ("sans-serif", 19).into_font().color(&INK))
+        .caption(
+            format!("{name}: deviation from a line"),
+            ("sans-serif", 19).into_font().color(&INK),
+        )
         .margin(14)
         .x_label_area_size(44)
         .y_label_area_size(56)
@@ -321,14 +329,15 @@ fn exact_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimension
         )
         .map_err(e)?;
     if let Some(c) = curve {
-        let band: Vec<(f64, f64)> = c
-            .x
-            .iter()
-            .zip(&c.upper)
-            .map(|(x, y)| (*x, *y))
-            .chain(c.x.iter().zip(&c.lower).rev().map(|(x, y)| (*x, *y)))
-            .collect();
-        chart.draw_series(std::iter::once(Polygon::new(band, color.mix(0.18)))).map_err(e)?;
+        let band: Vec<(f64, f64)> =
+            c.x.iter()
+                .zip(&c.upper)
+                .map(|(x, y)| (*x, *y))
+                .chain(c.x.iter().zip(&c.lower).rev().map(|(x, y)| (*x, *y)))
+                .collect();
+        chart
+            .draw_series(std::iter::once(Polygon::new(band, color.mix(0.18))))
+            .map_err(e)?;
         chart
             .draw_series(LineSeries::new(
                 c.x.iter().zip(&c.deviation).map(|(x, y)| (*x, *y)),

@@ -451,7 +451,10 @@ fn exact_value_tests_hold_their_level_on_panels_without_the_effect() {
                 rejected[k] += u64::from(t.p.unwrap() < 0.05);
             }
         }
-        for (k, name) in ["drift", "age curve", "period curve", "cohort curve"].iter().enumerate() {
+        for (k, name) in ["drift", "age curve", "period curve", "cohort curve"]
+            .iter()
+            .enumerate()
+        {
             if k == 1 && !linear_age {
                 assert_eq!(rejected[k], SIZE_REPLICATES, "the age curve is there: power");
                 continue;
@@ -463,4 +466,157 @@ fn exact_value_tests_hold_their_level_on_panels_without_the_effect() {
             );
         }
     }
+}
+
+/// braid's exact-value least-squares fit against statsmodels OLS on the
+/// same columns, relative (both solve one well-conditioned system).
+const EXACT_OLS_REL: f64 = 1e-8;
+
+fn close(a: f64, b: f64, rel: f64) -> bool {
+    (a - b).abs() <= rel * b.abs().max(1e-300)
+}
+
+// Outside check: the exact-value model of tests/data/hapc_cross_section.csv
+// refitted by statsmodels 0.15.0 OLS on braid's own model columns
+// (tests/reference/apc_exact_reference.py, apc_exact.json): the columns'
+// fingerprints, the residual sum of squares, the drift with its SE, and the
+// F test of each curve and of the drift.
+#[test]
+fn exact_value_fit_matches_the_reference_least_squares_on_its_columns() {
+    use braid::apc::exact::{Criterion, ExactInput, ExactTestKind, basis, fit};
+    let reference = crate::common::reference_json("apc_exact.json");
+    let t = braid::data::numeric_table(
+        &data_dir().join("hapc_cross_section.csv"),
+        &[("age", "age"), ("period", "year"), ("outcome", "score")],
+        Default::default(),
+    )
+    .unwrap();
+    let input = ExactInput {
+        age: &t.columns[0],
+        period: &t.columns[1],
+        y: &t.columns[2],
+        ids: None,
+        clusters: None,
+    };
+    let (names, rows) = basis(&input);
+    let want_names: Vec<&str> = reference["columns"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    assert_eq!(names, want_names);
+    let n = rows.len();
+    for (j, name) in names.iter().enumerate() {
+        let squares: f64 = rows.iter().map(|r| r[j] * r[j]).sum();
+        let ramp: f64 = rows
+            .iter()
+            .enumerate()
+            .map(|(k, r)| r[j] * k as f64 / (n - 1) as f64)
+            .sum();
+        let (ws, wr) = (
+            reference["column_squares"][j].as_f64().unwrap(),
+            reference["column_ramps"][j].as_f64().unwrap(),
+        );
+        assert!(
+            close(squares, ws, 1e-10),
+            "{name}: sum of squares {squares} against {ws}"
+        );
+        assert!(
+            (ramp - wr).abs() <= 1e-10 * ws.sqrt() * n as f64,
+            "{name}: ramp {ramp} against {wr}"
+        );
+    }
+    let r = fit(&input, &[]).unwrap();
+    let Criterion::ResidualSumOfSquares { value, df } = r.criterion else {
+        panic!("records are fitted by least squares");
+    };
+    assert!(
+        close(value, reference["rss"].as_f64().unwrap(), EXACT_OLS_REL),
+        "rss {value}"
+    );
+    assert_eq!(df as f64, reference["tests"]["age"]["df_denominator"].as_f64().unwrap());
+    let drift = &r.identified[0];
+    assert!(close(
+        drift.estimate,
+        reference["drift"].as_f64().unwrap(),
+        EXACT_OLS_REL
+    ));
+    assert!(close(drift.se, reference["drift_se"].as_f64().unwrap(), EXACT_OLS_REL));
+    for test in &r.tests {
+        let key = match test.kind {
+            ExactTestKind::Drift => "drift",
+            ExactTestKind::AgeNonlinear => "age",
+            ExactTestKind::PeriodNonlinear => "period",
+            ExactTestKind::CohortNonlinear => "cohort",
+        };
+        let want = &reference["tests"][key];
+        assert_eq!(test.df as u64, want["df"].as_u64().unwrap(), "{key}");
+        assert!(
+            close(test.statistic, want["f"].as_f64().unwrap(), EXACT_OLS_REL),
+            "{key}: F {}",
+            test.statistic
+        );
+        let (p, wp) = (test.p.unwrap(), want["p"].as_f64().unwrap());
+        assert!(
+            close(p, wp, 1e-6) || (p - wp).abs() < 1e-14,
+            "{key}: p {p} against {wp}"
+        );
+    }
+}
+
+// Identities of the exact-value model: the records' order does not matter,
+// and moving the calendar origin (every time and birth time a century later)
+// moves the knots and nothing else. Closed form: the model is a function of
+// the set of records, and every column is centred or detrended.
+#[test]
+fn exact_value_fit_ignores_row_order_and_the_calendar_origin() {
+    use braid::apc::exact::{ExactInput, fit};
+    let t = braid::data::numeric_table(
+        &data_dir().join("hapc_cross_section.csv"),
+        &[("age", "age"), ("period", "year"), ("outcome", "score")],
+        Default::default(),
+    )
+    .unwrap();
+    let n = t.columns[0].len();
+    let run = |order: &[usize], shift: f64| {
+        let pick = |c: usize| order.iter().map(|&k| t.columns[c][k]).collect::<Vec<f64>>();
+        let (age, period, y) = (
+            pick(0),
+            pick(1).iter().map(|p| p + shift).collect::<Vec<f64>>(),
+            pick(2),
+        );
+        let input = ExactInput {
+            age: &age,
+            period: &period,
+            y: &y,
+            ids: None,
+            clusters: None,
+        };
+        fit(&input, &[]).unwrap()
+    };
+    let base = run(&(0..n).collect::<Vec<_>>(), 0.0);
+    let reversed = run(&(0..n).rev().collect::<Vec<_>>(), 0.0);
+    let later = run(&(0..n).collect::<Vec<_>>(), 100.0);
+    for other in [&reversed, &later] {
+        for (a, b) in base.tests.iter().zip(&other.tests) {
+            assert!(
+                close(b.statistic, a.statistic, 1e-7),
+                "{}: {} {}",
+                a.name,
+                a.statistic,
+                b.statistic
+            );
+        }
+        for (a, b) in base.identified.iter().zip(&other.identified) {
+            assert!((a.estimate - b.estimate).abs() < INVARIANT_ABS * 1e3 && close(b.se, a.se, 1e-7));
+        }
+        for (a, b) in base.curves.iter().zip(&other.curves) {
+            for (x, y) in a.deviation.iter().zip(&b.deviation) {
+                assert!((x - y).abs() < 1e-6, "{:?}", a.dimension);
+            }
+        }
+    }
+    let moved = later.splines[1].knots[0] - base.splines[1].knots[0];
+    assert!((moved - 100.0).abs() < 1e-9);
 }

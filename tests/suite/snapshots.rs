@@ -123,7 +123,17 @@ fn every_text_screen_of_the_demo_matches_its_snapshot() {
         (
             "apc-exact",
             vec![
-                "apc", panel, "--id", "pupil", "--age", "age", "--period", "year", "--outcome", "score", "--cluster",
+                "apc",
+                panel,
+                "--id",
+                "pupil",
+                "--age",
+                "age",
+                "--period",
+                "year",
+                "--outcome",
+                "score",
+                "--cluster",
                 "school",
             ],
         ),
