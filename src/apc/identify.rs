@@ -298,10 +298,10 @@ pub fn identify(input: &ApcInput, options: &ApcOptions) -> Result<ApcReport> {
         };
         let exact = super::exact::fit(&records, &options.constraints)?;
         // Without groups asked for, the panel's linkage test is the exact one.
-        if let (Some(view), Some(sentence), None) = (&mut report.panel, exact.linkage_sentence(), options.width) {
-            if let Some(line) = view.text.get_mut(2) {
-                *line = sentence;
-            }
+        if let (Some(view), Some(sentence), None) = (&mut report.panel, exact.linkage_sentence(), options.width)
+            && let Some(line) = view.text.get_mut(2)
+        {
+            *line = sentence;
         }
         report.exact = Some(exact);
     }

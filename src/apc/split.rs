@@ -12,8 +12,6 @@
 
 use serde::Serialize;
 
-use crate::spec::AgeBasis;
-
 /// Knots per time scale when the data allow (4 nonlinear columns).
 pub const EXACT_KNOTS: usize = 6;
 
@@ -81,13 +79,19 @@ impl SplitSpline {
         self.knots.len().saturating_sub(2)
     }
 
-    /// The raw cubic columns at `x` (before detrending).
+    /// The raw cubic columns at `x` (before detrending): the truncated-power
+    /// columns of [`crate::spec::AgeBasis::Spline`] without its linear column, appended
+    /// to `out` without allocating (they are evaluated for every record).
     fn raw(&self, x: f64, out: &mut Vec<f64>) {
-        let basis = AgeBasis::Spline {
-            knots: self.knots.clone(),
-            center: self.knots[0],
-        };
-        out.extend(basis.eval(x).into_iter().skip(1));
+        let k = &self.knots;
+        let kk = k.len();
+        let last = k[kk - 1];
+        let scale = (last - k[0]) * (last - k[0]);
+        let cube = |v: f64| if v > 0.0 { v * v * v } else { 0.0 };
+        let tail = cube(x - last);
+        let d = |j: usize| (cube(x - k[j]) - tail) / (last - k[j]);
+        let dlast = d(kk - 2);
+        out.extend((0..kk - 2).map(|j| (d(j) - dlast) / scale));
     }
 
     fn fit_detrend(&self, x: &[f64]) -> Vec<(f64, f64, f64)> {
@@ -145,6 +149,7 @@ impl SplitSpline {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::spec::AgeBasis;
 
     fn values() -> Vec<f64> {
         (0..400)
@@ -179,6 +184,25 @@ mod tests {
                 cross[j]
             );
             assert!((sq[j] / x.len() as f64 - 1.0).abs() < 1e-10);
+        }
+    }
+
+    // The columns are those of braid's age spline (its linear column
+    // dropped; a constant shift does not matter after detrending).
+    #[test]
+    fn raw_columns_are_the_age_splines_cubic_columns() {
+        let s = SplitSpline::fit(&values(), EXACT_KNOTS);
+        let basis = AgeBasis::Spline {
+            knots: s.knots.clone(),
+            center: s.knots[0],
+        };
+        for x in [10.0, 11.3, 14.9, 17.99, 19.5] {
+            let mut raw = Vec::new();
+            s.raw(x, &mut raw);
+            let want: Vec<f64> = basis.eval(x).into_iter().skip(1).collect();
+            for (a, b) in raw.iter().zip(&want) {
+                assert!((a - b).abs() < 1e-12, "{x}: {a} {b}");
+            }
         }
     }
 
