@@ -18,6 +18,8 @@ pub enum WarningCode {
     SelectiveDropout,
     /// Exact ages and calendar times were grouped for an APC analysis.
     GroupedExactAges,
+    /// Records could not be grouped by default; only the exact-value APC model is reported.
+    NoGroupedModel,
 }
 
 /// A warning: its code and its message.

@@ -15,7 +15,7 @@ use crate::error::{Error, Result};
 pub(super) const DIMENSIONS: [Dimension; 3] = [Dimension::Age, Dimension::Period, Dimension::Cohort];
 
 /// Group labels of each dimension.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
 pub struct Labels {
     /// Age groups.
     pub age: Vec<String>,
@@ -473,10 +473,37 @@ fn panel_view(ids: &[u32], table: &[DevianceRow]) -> PanelView {
         .of_kind(crate::infer::hypothesis::TestKind::PeriodBeyondCohort),
         _ => crate::infer::hypothesis::likelihood_ratio("period effects beyond age and cohort", 0.0, 0.0, 0, false),
     };
+    let sentence = format!(
+        "The A+C model is that assumption in factor form. Adding period factors (APC against A+C) changes the \
+         deviance by {:.3} on {} df, {}: {}.",
+        test.statistic,
+        test.df,
+        crate::stats::p_words(test.p),
+        if test.p < 0.05 {
+            "there are period effects that age and cohort do not absorb, so the no-period assumption fails in \
+             its nonlinear part and the stitched curve should not be read as an age trajectory alone"
+        } else {
+            "no evidence of period effects beyond age and cohort; this tests only their nonlinear part"
+        }
+    );
+    PanelView {
+        n_participants: count_levels(ids),
+        period_beyond_cohort: test,
+        text: panel_text(sentence),
+    }
+}
+
+/// Distinct codes.
+fn count_levels(ids: &[u32]) -> usize {
     let mut n: Vec<u32> = ids.to_vec();
     n.sort_unstable();
     n.dedup();
-    let text = vec![
+    n.len()
+}
+
+/// The panel view's words around the sentence of its linkage test.
+fn panel_text(test_sentence: String) -> Vec<String> {
+    vec![
         "In a cohort-sequential panel each participant's age rises one for one with the period, and cohort = period − \
          age, so the linear trends of age, period and cohort cannot be separated here either."
             .to_string(),
@@ -484,26 +511,71 @@ fn panel_view(ids: &[u32], table: &[DevianceRow]) -> PanelView {
          assumption. Under it, cohort differences are identified through the ages that neighbouring cohorts share; \
          braid converge tests them (M1, M2) at those ages."
             .to_string(),
-        format!(
-            "The A+C model is that assumption in factor form. Adding period factors (APC against A+C) changes the \
-             deviance by {:.3} on {} df, {}: {}.",
-            test.statistic,
-            test.df,
-            crate::stats::p_words(test.p),
-            if test.p < 0.05 {
-                "there are period effects that age and cohort do not absorb, so the no-period assumption fails in \
-                 its nonlinear part and the stitched curve should not be read as an age trajectory alone"
-            } else {
-                "no evidence of period effects beyond age and cohort; this tests only their nonlinear part"
-            }
-        ),
+        test_sentence,
         "A linear period trend is invisible to every test: it is exactly a combination of linear age and cohort \
          trends, so the linkage assumption about it stays an assumption."
             .to_string(),
-    ];
-    PanelView {
-        n_participants: n.len(),
-        period_beyond_cohort: test,
-        text,
+    ]
+}
+
+impl PanelView {
+    /// The panel view of the exact-value model, whose period-curve test is
+    /// the linkage test.
+    pub fn exact(ids: &[u32], exact: &super::exact::ExactApc) -> Option<PanelView> {
+        let t = exact
+            .tests
+            .iter()
+            .find(|t| t.kind == super::exact::ExactTestKind::PeriodNonlinear)?;
+        let test = crate::infer::hypothesis::TestResult {
+            kind: crate::infer::hypothesis::TestKind::PeriodBeyondCohort,
+            name: "period effects beyond age and cohort (the period curve of the exact-value model)".into(),
+            statistic: t.statistic,
+            df: t.df as f64,
+            df_denominator: Some(t.df_denominator),
+            p: t.p.unwrap_or(f64::NAN),
+            method: crate::infer::hypothesis::TestMethod::WaldF {
+                df: t.df as f64,
+                df_denominator: t.df_denominator,
+                fit: "REML",
+            },
+        };
+        Some(PanelView {
+            n_participants: count_levels(ids),
+            period_beyond_cohort: test,
+            text: panel_text(exact.linkage_sentence()?),
+        })
+    }
+}
+
+impl ApcReport {
+    /// A report of the exact-value model alone, for records that could not
+    /// be grouped and where no grouping was asked for: the grouped parts are
+    /// empty.
+    pub fn exact_only(exact: super::exact::ExactApc, panel: Option<PanelView>) -> ApcReport {
+        ApcReport {
+            data: crate::data::DataSummary::default(),
+            warnings: Vec::new(),
+            warning_codes: Vec::new(),
+            options: super::ApcOptions::default(),
+            outcome: OutcomeKind::Continuous,
+            shape: Shape::default(),
+            labels: Labels::default(),
+            n_obs: exact.n_obs,
+            rank_deficiency: 1,
+            null_vector: Vec::new(),
+            null_vector_residual: f64::NAN,
+            deviance_table: Vec::new(),
+            identified: Vec::new(),
+            curvature_tests: Vec::new(),
+            line_origin: Vec::new(),
+            solutions: Vec::new(),
+            fitted_max_difference: exact.fitted_max_difference,
+            bounds: None,
+            assumptions: exact.assumptions.clone(),
+            hierarchical: None,
+            panel,
+            cohort_check: None,
+            exact: Some(exact),
+        }
     }
 }

@@ -265,50 +265,85 @@ impl ApcOptions {
 /// the birth-year check.
 pub fn identify(input: &ApcInput, options: &ApcOptions) -> Result<ApcReport> {
     options.validate()?;
-    let data = group(input, options)?;
-    let mut report = analysis::analyse(&data, &options.constraints, &options.assumptions)?;
+    let exact = exact_model(input, options)?;
+    let grouped = group(input, options).and_then(|data| {
+        Ok((
+            analysis::analyse(&data, &options.constraints, &options.assumptions)?,
+            data,
+        ))
+    });
+    let mut report = match (grouped, exact) {
+        (Ok((mut report, data)), exact) => {
+            if options.hierarchical {
+                let Some(t) = input.records() else {
+                    return Err(Error::Spec {
+                        parameter: "hierarchical".into(),
+                        message: "the hierarchical fit needs records, not a table of counts".into(),
+                    });
+                };
+                report.hierarchical = Some(hierarchical::fit(t, &data)?);
+            }
+            if let Some(exact) = exact {
+                report.warnings.push(grouping_warning(&data, options.width.is_some()));
+                withhold_grouped_curvature(&mut report);
+                // Without groups asked for, the panel's linkage test is the exact one.
+                if let (Some(view), Some(sentence), None) = (&mut report.panel, exact.linkage_sentence(), options.width)
+                    && let Some(line) = view.text.get_mut(2)
+                {
+                    *line = sentence;
+                }
+                report.exact = Some(exact);
+            }
+            report
+        }
+        // Records that cannot be grouped, with no grouping asked for: the
+        // exact-value model alone, and why there is no grouped model.
+        (Err(why), Some(exact)) if options.width.is_none() && !options.hierarchical => {
+            let view = match input {
+                ApcInput::Panel { panel, .. } => analysis::PanelView::exact(&panel.id.codes, &exact),
+                _ => None,
+            };
+            let mut report = ApcReport::exact_only(exact, view);
+            report.warnings.push(Warning::new(
+                WarningCode::NoGroupedModel,
+                format!(
+                    "no grouped factor model beside the exact-value one: the default groups do not form one ({})",
+                    why
+                ),
+            ));
+            report
+        }
+        (Err(why), _) => return Err(why),
+    };
     if let (Some(b), Some(t)) = (input.birth_years(), input.records()) {
         report.cohort_check = Some(check_birth_years(input.source(), b, t)?);
-    }
-    if options.hierarchical {
-        let Some(t) = input.records() else {
-            return Err(Error::Spec {
-                parameter: "hierarchical".into(),
-                message: "the hierarchical fit needs records, not a table of counts".into(),
-            });
-        };
-        report.hierarchical = Some(hierarchical::fit(t, &data)?);
-    }
-    if let Some(t) = input.records() {
-        report.warnings.push(grouping_warning(&data, options.width.is_some()));
-        withhold_grouped_curvature(&mut report);
-        let (ids, clusters) = match input {
-            ApcInput::Panel { panel, .. } => (
-                Some(panel.id.codes.as_slice()),
-                panel.cluster.as_ref().map(|c| c.codes.as_slice()),
-            ),
-            _ => (None, None),
-        };
-        let records = super::exact::ExactInput {
-            age: &t.columns[0],
-            period: &t.columns[1],
-            y: &t.columns[2],
-            ids,
-            clusters,
-        };
-        let exact = super::exact::fit(&records, &options.constraints)?;
-        // Without groups asked for, the panel's linkage test is the exact one.
-        if let (Some(view), Some(sentence), None) = (&mut report.panel, exact.linkage_sentence(), options.width)
-            && let Some(line) = view.text.get_mut(2)
-        {
-            *line = sentence;
-        }
-        report.exact = Some(exact);
     }
     report.warning_codes = crate::warning::codes(&report.warnings);
     report.data = input.summary();
     report.options = options.clone();
     Ok(report)
+}
+
+/// Records: the exact-value model (tables of counts have none).
+fn exact_model(input: &ApcInput, options: &ApcOptions) -> Result<Option<super::exact::ExactApc>> {
+    let Some(t) = input.records() else {
+        return Ok(None);
+    };
+    let (ids, clusters) = match input {
+        ApcInput::Panel { panel, .. } => (
+            Some(panel.id.codes.as_slice()),
+            panel.cluster.as_ref().map(|c| c.codes.as_slice()),
+        ),
+        _ => (None, None),
+    };
+    let records = super::exact::ExactInput {
+        age: &t.columns[0],
+        period: &t.columns[1],
+        y: &t.columns[2],
+        ids,
+        clusters,
+    };
+    Ok(Some(super::exact::fit(&records, &options.constraints)?))
 }
 
 /// What grouping exact ages and calendar times does, how the groups were

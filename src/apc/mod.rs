@@ -66,7 +66,7 @@ impl Dimension {
 
 /// The shape of an age × period table and its parameter layout:
 /// [intercept, age 1..a−1, period 1..p−1, cohort 1..K−1].
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
 pub struct Shape {
     /// Age groups.
     #[serde(rename = "age_groups")]

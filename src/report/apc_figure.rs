@@ -381,7 +381,12 @@ pub fn write(dir: &Path, r: &ApcReport) -> Result<Vec<String>> {
         message: format!("cannot draw the figure ({m})"),
     };
     let mut names = Vec::new();
-    let mut stems = vec![("apc_effects", WIDE), ("apc_curvature", WIDE), ("apc_line", SQUARE)];
+    // The grouped model's figures, when there is a grouped model.
+    let mut stems = if r.shape.a > 0 {
+        vec![("apc_effects", WIDE), ("apc_curvature", WIDE), ("apc_line", SQUARE)]
+    } else {
+        Vec::new()
+    };
     if r.exact.is_some() {
         stems.push(("apc_exact", WIDE));
     }

@@ -620,3 +620,34 @@ fn exact_value_fit_ignores_row_order_and_the_calendar_origin() {
     let moved = later.splines[1].knots[0] - base.splines[1].knots[0];
     assert!((moved - 100.0).abs() < 1e-9);
 }
+
+// Four cohorts three years apart cannot be grouped by one-year bands (empty
+// cohort groups between the entry cohorts) and wider bands leave too few
+// periods; without a width asked for, braid reports the exact-value model
+// alone, says why there is no grouped model, and writes its files.
+#[test]
+fn records_that_cannot_be_grouped_get_the_exact_value_model_alone() {
+    use braid::apc::{ApcInput, ApcOptions, identify};
+    use braid::report::Render;
+    use braid::simulate::{Design, simulate};
+    let mut d = Design::demo();
+    d.per_cohort = 60;
+    d.entry_ages = vec![10.0, 13.0, 16.0, 19.0];
+    let input = ApcInput::from_panel(simulate(&d).panel(true)).unwrap();
+    let report = identify(&input, &ApcOptions::default()).unwrap();
+    assert_eq!(report.warning_codes, vec![braid::warning::WarningCode::NoGroupedModel]);
+    let exact = report.exact.as_ref().unwrap();
+    assert_eq!(exact.tests.len(), 4);
+    assert!(exact.tests.iter().all(|t| t.p.is_some()));
+    assert!(report.deviance_table.is_empty() && report.solutions.is_empty());
+    let view = report.panel.as_ref().unwrap();
+    assert!(view.period_beyond_cohort.p.is_finite());
+    let text = report.text();
+    assert!(text.contains("period beyond a straight line") && text.contains("no grouped factor model"));
+    let dir = crate::common::temp_dir("apc_exact_only");
+    let files = report.write_files(&dir).unwrap();
+    assert_eq!(files, vec!["apc_exact.png", "apc_exact.svg"]);
+    // Asking for groups that cannot be formed is still an error.
+    let grouped = ApcOptions::new(Some(1.0), Vec::new(), Vec::new(), false).unwrap();
+    assert!(identify(&input, &grouped).is_err());
+}
