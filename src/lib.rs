@@ -86,6 +86,9 @@
 //! **State what is identified:** [`apc::identify`] reads a table of counts,
 //! records or a panel ([`apc::ApcInput`]) and reports the line of
 //! solutions, what is identified, each constraint's solution and bounds.
+//! Records with exact ages also get the exact-value model
+//! ([`apc::exact`]: splines in exact age, calendar time and birth time),
+//! whose tests hold their level where grouped ones do not.
 //!
 //! ```
 //! use braid::apc::{identify, ApcColumns, ApcInput, ApcOptions};
