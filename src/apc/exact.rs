@@ -4,7 +4,7 @@
 //!
 //! Each time scale enters as a natural cubic spline split into a linear part
 //! and a nonlinear part with no level and no slope over the records
-//! (a spline split into a line and a curve, `split.rs`). The three linear parts are exactly collinear (age =
+//! (`split.rs`). The three linear parts are exactly collinear (age =
 //! period − birth time), so the design is [1, age, period, N_age, N_period,
 //! N_cohort] with one null direction of the three slopes, (1, −1, 1) in
 //! (age, period, cohort). Identified without any constraint: the three
