@@ -110,6 +110,7 @@
 //! **Publish:** [`report`] renders every report as text, JSON, CSV and
 //! figures with one shared look.
 
+pub mod anova;
 pub mod apc;
 pub mod cli;
 pub mod data;

@@ -20,6 +20,8 @@ pub enum WarningCode {
     GroupedExactAges,
     /// Records could not be grouped by default; only the exact-value APC model is reported.
     NoGroupedModel,
+    /// Cohorts were assessed at different sets of waves; the ANOVA uses the common ones.
+    UncommonWaves,
 }
 
 /// A warning: its code and its message.

@@ -1,5 +1,7 @@
 //! braid's integration tests: one binary, one module per concern.
 
+#[path = "suite/anova.rs"]
+mod anova; // the cohort × wave mixed ANOVA against pingouin, closed forms, invariances
 #[path = "suite/apc.rs"]
 mod apc; // age–period–cohort: Holford's table, Kupper's null vector, bounds
 #[path = "suite/cli.rs"]

@@ -55,3 +55,8 @@ pub fn rel(a: f64, b: f64, floor: f64) -> f64 {
 /// printed digit (last-bit differences of vectorised arithmetic between
 /// processors; common practice for printed-output checks).
 pub const SNAPSHOT_LAST_DIGIT_UNITS: f64 = 2.0;
+
+/// The mixed ANOVA against pingouin: sums of squares, F, p, epsilons,
+/// Mauchly's W and Box's M are closed forms in both (the issue asks for 1e-6
+/// relative).
+pub const ANOVA_REL: f64 = 1e-6;
