@@ -132,6 +132,10 @@ pub struct AnovaReport {
     pub dropped: Option<Dropped>,
     /// Cohort × wave means, one row per cohort.
     pub means: Vec<Vec<f64>>,
+    /// Their standard errors (the cell's SD over the root of its size).
+    pub mean_se: Vec<Vec<f64>>,
+    /// Mean exact age of each cohort × wave cell.
+    pub mean_ages: Vec<Vec<f64>>,
     /// The table: cohort, wave, cohort × wave.
     pub effects: Vec<Effect>,
     /// The two error terms.
@@ -167,7 +171,10 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
     let (effects, errors) = table::table(c, &sums, gg, hf);
     let sphericity = sphericity::mauchly(&m, df, c.k);
     let recommendation = recommend(sphericity.as_ref(), gg, options.sphericity_alpha);
-    let means = c.cell_means().chunks(c.k).map(<[f64]>::to_vec).collect();
+    let rows = |v: Vec<f64>| v.chunks(c.k).map(<[f64]>::to_vec).collect::<Vec<_>>();
+    let means = rows(c.cell_means());
+    let mean_ages = rows(c.cell_means_of(&c.age));
+    let mean_se = rows(cell_se(c));
     Ok(AnovaReport {
         data: panel.summary(),
         options: *options,
@@ -180,6 +187,8 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
         n_dropped: design.n_dropped,
         dropped: design.dropped,
         means,
+        mean_se,
+        mean_ages,
         effects,
         errors,
         box_m: sphericity::box_m(c),
@@ -189,6 +198,23 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
         cohorts: design.cohorts,
         waves: design.waves,
     })
+}
+
+/// The standard error of each cell mean.
+fn cell_se(c: &Complete) -> Vec<f64> {
+    let (k, sizes, means) = (c.k, c.sizes(), c.cell_means());
+    let mut ss = vec![0.0; c.groups * k];
+    for (i, &g) in c.cohort.iter().enumerate() {
+        for j in 0..k {
+            ss[g * k + j] += (c.y[i * k + j] - means[g * k + j]).powi(2);
+        }
+    }
+    (0..c.groups * k)
+        .map(|cell| {
+            let n = sizes[cell / k] as f64;
+            (ss[cell] / (n - 1.0) / n).sqrt()
+        })
+        .collect()
 }
 
 /// Which correction to read (common practice, a rule of thumb: Girden 1992).
@@ -253,6 +279,9 @@ fn simple_effects(c: &Complete, cohorts: &[String]) -> Vec<SimpleEffect> {
     out
 }
 
+/// Each participant's cohort, and outcome and data row at each wave.
+type Seen<'a> = HashMap<u32, (usize, HashMap<&'a str, (f64, usize)>)>;
+
 /// The complete cases and what was left out.
 struct Design {
     complete: Complete,
@@ -290,7 +319,7 @@ fn assemble(panel: &Panel, cohort_of: &[String], wave_of: &[String], warnings: &
         });
     }
     // Per participant: cohort and the outcome at each wave.
-    let mut seen: HashMap<u32, (usize, HashMap<&str, (f64, usize)>)> = HashMap::new();
+    let mut seen: Seen = HashMap::new();
     let cohort_index: HashMap<&str, usize> = cohorts.iter().enumerate().map(|(i, c)| (c.as_str(), i)).collect();
     for r in 0..panel.n() {
         let g = cohort_index[cohort_of[r].as_str()];
@@ -359,12 +388,7 @@ fn assemble(panel: &Panel, cohort_of: &[String], wave_of: &[String], warnings: &
 
 /// Participants with every analysed wave, in participant order, and the
 /// baseline comparison of those left out.
-fn complete_cases(
-    panel: &Panel,
-    seen: HashMap<u32, (usize, HashMap<&str, (f64, usize)>)>,
-    cohorts: Vec<String>,
-    waves: Vec<String>,
-) -> Result<Design> {
+fn complete_cases(panel: &Panel, seen: Seen<'_>, cohorts: Vec<String>, waves: Vec<String>) -> Result<Design> {
     let k = waves.len();
     let mut order: Vec<u32> = seen.keys().copied().collect();
     order.sort_unstable_by(|a, b| {
@@ -373,16 +397,17 @@ fn complete_cases(
             &panel.id().levels()[*b as usize],
         )
     });
-    let (mut y, mut cohort) = (Vec::new(), Vec::new());
+    let (mut y, mut age, mut cohort) = (Vec::new(), Vec::new(), Vec::new());
     let (mut kept_base, mut dropped_base) = (Vec::new(), Vec::new());
     for id in order {
         let (g, w) = &seen[&id];
         // The first observed outcome, by data row.
         let baseline = w.values().min_by_key(|(_, r)| *r).map(|(v, _)| *v);
-        let row: Option<Vec<f64>> = waves.iter().map(|wv| w.get(wv.as_str()).map(|(v, _)| *v)).collect();
+        let row: Option<Vec<(f64, usize)>> = waves.iter().map(|wv| w.get(wv.as_str()).copied()).collect();
         match row {
             Some(r) => {
-                y.extend(r);
+                y.extend(r.iter().map(|(v, _)| *v));
+                age.extend(r.iter().map(|(_, row)| panel.age()[*row]));
                 cohort.push(*g);
                 kept_base.extend(baseline);
             }
@@ -391,6 +416,7 @@ fn complete_cases(
     }
     let complete = Complete {
         y,
+        age,
         k,
         cohort,
         groups: cohorts.len(),

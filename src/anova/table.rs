@@ -11,6 +11,8 @@ use crate::infer::hypothesis::f_sf;
 pub struct Complete {
     /// Outcomes, row-major: participant × wave.
     pub y: Vec<f64>,
+    /// Exact ages at those assessments, in the same layout.
+    pub age: Vec<f64>,
     /// Waves (columns).
     pub k: usize,
     /// Each participant's cohort, 0-based.
@@ -34,11 +36,16 @@ impl Complete {
     }
     /// Cohort × wave cell means, row-major.
     pub fn cell_means(&self) -> Vec<f64> {
+        self.cell_means_of(&self.y)
+    }
+
+    /// Cohort × wave cell means of `values` (laid out as `y`), row-major.
+    pub fn cell_means_of(&self, values: &[f64]) -> Vec<f64> {
         let (k, sizes) = (self.k, self.sizes());
         let mut m = vec![0.0; self.groups * k];
         for (i, &g) in self.cohort.iter().enumerate() {
             for j in 0..k {
-                m[g * k + j] += self.y[i * k + j];
+                m[g * k + j] += values[i * k + j];
             }
         }
         for g in 0..self.groups {
@@ -160,13 +167,13 @@ pub fn table(c: &Complete, s: &Sums, epsilon_gg: f64, epsilon_hf: f64) -> (Vec<E
     let df_within = (k - 1.0) * (n - g);
     let errors = vec![
         ErrorTerm {
-            term: "participants within cohorts".into(),
+            term: "participants (error)".into(),
             ss: s.error_between,
             df: df_between,
             ms: s.error_between / df_between,
         },
         ErrorTerm {
-            term: "wave × participants within cohorts".into(),
+            term: "wave × participants (error)".into(),
             ss: s.error_within,
             df: df_within,
             ms: s.error_within / df_within,

@@ -44,6 +44,8 @@ pub enum Command {
     Converge(Box<ConvergeArgs>),
     /// Say what the data identify about age, period and cohort effects, and what each constraint adds.
     Apc(Box<ApcArgs>),
+    /// Run the classical cohort × wave mixed ANOVA on complete cases, and show what the mixed model adds.
+    Anova(Box<AnovaArgs>),
     /// Print a completion script for a shell, to be sourced by its start-up file.
     Completions(CompletionsArgs),
 }
@@ -216,6 +218,23 @@ pub struct InspectArgs {
     #[arg(long, value_name = "N", default_value_t = 30)]
     pub thin: usize,
     /// Where the results go: --out writes design.json and the Lexis diagram and coverage chart (PNG and SVG).
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Flags of `braid anova`.
+#[derive(Debug, Clone, Default, Args)]
+pub struct AnovaArgs {
+    /// The data and column roles (cohort is between participants, wave within).
+    #[command(flatten)]
+    pub input: InputArgs,
+    /// Derived cohorts and waves, when the file has no such columns.
+    #[command(flatten)]
+    pub derive: DeriveArgs,
+    /// Mauchly's test rejecting at this level counts as sphericity failing.
+    #[arg(long, value_name = "LEVEL", default_value_t = 0.05)]
+    pub sphericity_level: f64,
+    /// Where the results go: --out writes anova.json, the cohort × wave means (CSV) and their figure.
     #[command(flatten)]
     pub output: OutputArgs,
 }

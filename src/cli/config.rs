@@ -5,8 +5,9 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use super::args::{ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, RetestArg};
+use super::args::{AnovaArgs, ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, RetestArg};
 use crate::FitRequest;
+use crate::anova::AnovaOptions;
 use crate::apc::{ApcColumns, ApcOptions};
 use crate::data::{ReadOptions, Roles};
 use crate::design::DesignOptions;
@@ -289,6 +290,18 @@ impl InspectArgs {
     pub fn options(&self) -> Result<(Source, DesignOptions)> {
         let d = &self.derive;
         let options = DesignOptions::new(self.band, self.thin, d.cohort_rule(), d.wave_rule())?;
+        Ok((Source::resolve(&self.input)?, options))
+    }
+}
+
+impl AnovaArgs {
+    /// The data source and the validated ANOVA options.
+    ///
+    /// # Errors
+    /// Those of [`Source::resolve`] and [`AnovaOptions::new`].
+    pub fn options(&self) -> Result<(Source, AnovaOptions)> {
+        let d = &self.derive;
+        let options = AnovaOptions::new(self.sphericity_level, d.cohort_rule(), d.wave_rule())?;
         Ok((Source::resolve(&self.input)?, options))
     }
 }

@@ -74,6 +74,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Inspect(a) => inspect_command(&a),
         Command::Converge(a) => converge_command(&a),
         Command::Apc(a) => apc_command(&a),
+        Command::Anova(a) => anova_command(&a),
         Command::Completions(a) => {
             completions_command(&a);
             Ok(())
@@ -113,6 +114,14 @@ fn converge_command(a: &args::ConvergeArgs) -> Result<()> {
     let emitter = Emitter::new(&a.output)?;
     let panel = load(&source)?;
     emitter.emit(&crate::linkage::converge(&panel, &model, &options)?)
+}
+
+/// `braid anova`: load, then the cohort × wave mixed ANOVA on complete cases.
+fn anova_command(a: &args::AnovaArgs) -> Result<()> {
+    let (source, options) = a.options()?;
+    let emitter = Emitter::new(&a.output)?;
+    let panel = load(&source)?;
+    emitter.emit(&crate::anova::mixed_anova(&panel, &options)?)
 }
 
 /// `braid apc`: read a table of counts or records, fit, and report what is identified.

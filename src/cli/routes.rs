@@ -17,6 +17,7 @@ fn flag_and_table(key: &str) -> Option<(String, Option<&'static str>)> {
         "events" | "exposure" | "width" | "constraint" | "assume" | "hierarchical" | "band" | "margin"
         | "margin_sd" | "reference_age" | "shared_ages" | "grid" | "at" | "cohort_width" | "cohort_from"
         | "wave_length" | "wave_from" => (flag(&key.replace('_', "-")), None),
+        "sphericity_alpha" => (flag("sphericity-level"), None),
         _ => return None,
     })
 }
@@ -53,6 +54,7 @@ mod tests {
             "knots",
             "band",
             "width",
+            "sphericity_alpha",
         ] {
             assert!(route(key).is_some(), "{key}");
         }

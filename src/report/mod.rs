@@ -1,6 +1,7 @@
 //! Reporting: the serializable fit report, text tables, JSON/CSV files and
 //! figures. Nothing here computes an estimate; it arranges results.
 
+pub mod anova_figure;
 pub mod apc_figure;
 pub mod converge_figure;
 pub mod design_figure;

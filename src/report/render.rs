@@ -6,6 +6,7 @@ use std::path::Path;
 use serde::Serialize;
 
 use super::{apc_figure, converge_figure, design_figure, figure, text, write_json, write_trajectory_csv};
+use crate::anova::AnovaReport;
 use crate::apc::analysis::ApcReport;
 use crate::design::DesignReport;
 use crate::error::Result;
@@ -87,6 +88,22 @@ impl Render for ConvergeReport {
     fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
         converge_figure::shared_ages(&dir.join("shared_ages.png"), &dir.join("shared_ages.svg"), self)?;
         Ok(vec!["shared_ages.png".into(), "shared_ages.svg".into()])
+    }
+}
+
+impl Render for AnovaReport {
+    const JSON_FILE: &'static str = "anova.json";
+
+    fn text(&self) -> String {
+        text::anova_summary(self)
+    }
+
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        super::anova_figure::means_csv(&dir.join("anova_means.csv"), self)?;
+        super::anova_figure::means(&dir.join("anova_means.png"), &dir.join("anova_means.svg"), self)?;
+        Ok(["anova_means.csv", "anova_means.png", "anova_means.svg"]
+            .map(String::from)
+            .to_vec())
     }
 }
 

@@ -2,6 +2,7 @@
 //! left margin, numbers right-aligned in fixed columns. One file per report;
 //! the formatters every screen shares are here.
 
+mod anova;
 mod apc;
 mod converge;
 mod design;
@@ -9,6 +10,7 @@ mod fit;
 
 use std::fmt::Write;
 
+pub use anova::anova_summary;
 pub use apc::apc_summary;
 pub use converge::converge_summary;
 pub use design::design_summary;
