@@ -346,6 +346,20 @@ fn assemble(panel: &Panel, cohort_of: &[String], wave_of: &[String], warnings: &
             ));
         }
     }
+    // A wave seen once cannot carry a within-participant contrast.
+    let mut wave_count: HashMap<&str, (usize, usize)> = HashMap::new();
+    for (_, w) in seen.values() {
+        for (label, (_, r)) in w {
+            let e = wave_count.entry(label).or_insert((0, *r));
+            e.0 += 1;
+        }
+    }
+    if let Some((label, (_, r))) = wave_count.iter().find(|(_, (n, _))| *n < 2) {
+        return Err(bad(
+            *r,
+            format!("wave '{label}' has a single participant; each wave needs several (check the `wave` column)"),
+        ));
+    }
     // The waves every cohort has.
     let mut per_cohort: Vec<BTreeSet<&str>> = vec![BTreeSet::new(); cohorts.len()];
     for (g, w) in seen.values() {

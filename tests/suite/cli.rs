@@ -25,9 +25,9 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
         let (file, extra, expected) = (cols[0], cols[1], cols[2]);
         let mut cmd = braid();
         // "apc!..." runs `braid apc` with only the listed flags, "inspect|..."
-        // runs `braid inspect` with the base roles and the listed flags;
-        // otherwise `braid fit`.
-        let (command, extra) = ["apc", "inspect", "converge"]
+        // (or converge, anova) runs that command with the base roles and the
+        // listed flags; otherwise `braid fit`.
+        let (command, extra) = ["apc", "inspect", "converge", "anova"]
             .iter()
             .find_map(|c| extra.strip_prefix(c).map(|rest| (*c, rest.trim_start_matches('|'))))
             .unwrap_or(("fit", extra));
