@@ -7,6 +7,7 @@
 //! pooled within-cohort covariance, Box's M, partial and generalized η², and
 //! the simple effects of wave within each cohort with Holm's adjustment.
 
+pub mod mixed;
 pub mod sphericity;
 pub mod table;
 
@@ -20,6 +21,7 @@ use crate::error::{Error, Result};
 use crate::infer::hypothesis::{f_sf, holm};
 use crate::warning::{Warning, WarningCode};
 
+pub use mixed::{MixedComparison, MixedTest};
 pub use sphericity::{BoxM, Sphericity};
 pub use table::{Complete, Effect, ErrorTerm};
 
@@ -148,6 +150,8 @@ pub struct AnovaReport {
     pub simple_effects: Vec<SimpleEffect>,
     /// Which within-effect p to read, and why.
     pub recommendation: String,
+    /// The same complete cases as a compound-symmetry mixed model.
+    pub mixed_model_comparison: MixedComparison,
 }
 
 /// Run the cohort × wave mixed ANOVA on the complete cases of `panel`.
@@ -172,6 +176,7 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
     let sphericity = sphericity::mauchly(&m, df, c.k);
     let recommendation = recommend(sphericity.as_ref(), gg, options.sphericity_alpha);
     let rows = |v: Vec<f64>| v.chunks(c.k).map(<[f64]>::to_vec).collect::<Vec<_>>();
+    let mixed_model_comparison = mixed::compare(c, &effects)?;
     let means = rows(c.cell_means());
     let mean_ages = rows(c.cell_means_of(&c.age));
     let mean_se = rows(cell_se(c));
@@ -195,6 +200,7 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
         simple_effects: simple_effects(c, &design.cohorts),
         sphericity,
         recommendation,
+        mixed_model_comparison,
         cohorts: design.cohorts,
         waves: design.waves,
     })

@@ -110,3 +110,50 @@ fn mixed_anova_matches_the_reference_on_published_and_invented_files() {
         check(&r, &want[name], name);
     }
 }
+
+// Closed form: with equal cohort sizes, the compound-symmetry REML fit of
+// the same complete cases gives exactly the ANOVA's within-effect F (REML
+// equals the ANOVA estimators of the variances in a balanced design), on
+// (k − 1)(N − G) denominator df.
+#[test]
+fn compound_symmetry_reml_reproduces_the_within_effect_f_when_balanced() {
+    use crate::tolerance::{CLOSED_FORM_REL, SATTERTHWAITE_REL};
+    let r = run(&data_dir().join("anova_spherical.csv"), "pupil", "cohort", "wave", "age", "score");
+    assert_eq!(r.cohort_sizes, vec![12; 4]);
+    for t in &r.mixed_model_comparison.tests {
+        assert!((t.f - t.anova_f).abs() <= CLOSED_FORM_REL * t.anova_f, "{}: {} {}", t.effect, t.f, t.anova_f);
+        assert!((t.df2 - 88.0).abs() <= SATTERTHWAITE_REL * 88.0, "{}: df {}", t.effect, t.df2);
+    }
+}
+
+// Invariance: reversing the rows and relabelling cohorts and waves (in the
+// same order) leaves every number unchanged.
+#[test]
+fn row_order_and_labels_do_not_change_the_table() {
+    let path = data_dir().join("anova_unequal.csv");
+    let base = run(&path, "pupil", "cohort", "wave", "age", "score");
+    let text = std::fs::read_to_string(&path).unwrap();
+    let mut lines: Vec<&str> = text.lines().collect();
+    let head = lines.remove(0);
+    lines.reverse();
+    let relabelled: Vec<String> = lines
+        .iter()
+        .map(|l| {
+            let f: Vec<&str> = l.split(',').collect();
+            let cohort = format!("born-{}", 2000 + f[1][1..].parse::<u32>().unwrap());
+            let wave = format!("w{}", f[2]);
+            format!("{},{cohort},{wave},{},{}", f[0], f[3], f[4])
+        })
+        .collect();
+    let other = temp_dir("anova_relabel").join("relabelled.csv");
+    std::fs::write(&other, format!("{head}\n{}\n", relabelled.join("\n"))).unwrap();
+    let r = run(&other, "pupil", "cohort", "wave", "age", "score");
+    for (a, b) in base.effects.iter().zip(&r.effects) {
+        assert!(close(b.f, a.f) && close(b.ss, a.ss) && close(b.p, a.p), "{}", a.effect);
+        assert!(close(b.epsilon_gg.unwrap_or(1.0), a.epsilon_gg.unwrap_or(1.0)));
+    }
+    let (sa, sb) = (base.sphericity.unwrap(), r.sphericity.unwrap());
+    assert!(close(sb.w, sa.w) && close(sb.p, sa.p));
+    assert!(close(r.box_m.unwrap().chi2, base.box_m.unwrap().chi2));
+    assert_eq!(r.cohorts, vec!["born-2001", "born-2002", "born-2003"]);
+}
