@@ -167,19 +167,8 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
     let mut warnings: Vec<Warning> = cohort.warnings.iter().chain(&wave.warnings).cloned().collect();
     let design = assemble(panel, &cohort.labels, &wave.labels, &mut warnings)?;
     let c = &design.complete;
-    let sums = table::sums(c);
-    let (pooled, df) = sphericity::within_covariance(c, None);
-    let m = sphericity::contrast_covariance(&pooled, c.k);
-    let gg = sphericity::epsilon_gg(&m);
-    let hf = sphericity::epsilon_hf(gg, c.n(), c.groups, c.k - 1);
-    let (effects, errors) = table::table(c, &sums, gg, hf);
-    let sphericity = sphericity::mauchly(&m, df, c.k);
-    let recommendation = recommend(sphericity.as_ref(), gg, options.sphericity_alpha);
+    let a = analyse(c, &design.cohorts, options.sphericity_alpha)?;
     let rows = |v: Vec<f64>| v.chunks(c.k).map(<[f64]>::to_vec).collect::<Vec<_>>();
-    let mixed_model_comparison = mixed::compare(c, &effects)?;
-    let means = rows(c.cell_means());
-    let mean_ages = rows(c.cell_means_of(&c.age));
-    let mean_se = rows(cell_se(c));
     Ok(AnovaReport {
         data: panel.summary(),
         options: *options,
@@ -191,18 +180,62 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
         n_complete: c.n(),
         n_dropped: design.n_dropped,
         dropped: design.dropped,
-        means,
-        mean_se,
-        mean_ages,
-        effects,
-        errors,
-        box_m: sphericity::box_m(c),
-        simple_effects: simple_effects(c, &design.cohorts),
-        sphericity,
-        recommendation,
-        mixed_model_comparison,
+        means: rows(c.cell_means()),
+        mean_se: rows(cell_se(c)),
+        mean_ages: rows(c.cell_means_of(&c.age)),
+        effects: a.effects,
+        errors: a.errors,
+        box_m: a.box_m,
+        simple_effects: a.simple_effects,
+        sphericity: a.sphericity,
+        recommendation: a.recommendation,
+        mixed_model_comparison: a.mixed,
         cohorts: design.cohorts,
         waves: design.waves,
+    })
+}
+
+/// Every test of the complete cases.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Analysis {
+    /// The table's effects.
+    pub effects: Vec<Effect>,
+    /// Its error terms.
+    pub errors: Vec<ErrorTerm>,
+    /// Mauchly's test.
+    pub sphericity: Option<Sphericity>,
+    /// Box's M.
+    pub box_m: Option<BoxM>,
+    /// Wave within each cohort.
+    pub simple_effects: Vec<SimpleEffect>,
+    /// Which p to read.
+    pub recommendation: String,
+    /// The compound-symmetry mixed model.
+    pub mixed: MixedComparison,
+}
+
+/// The table, the sphericity and covariance tests, the simple effects and
+/// the mixed model of complete cases (for simulations that build
+/// [`Complete`] directly).
+///
+/// # Errors
+/// Errors of the mixed-model engine.
+pub fn analyse(c: &Complete, cohorts: &[String], sphericity_alpha: f64) -> Result<Analysis> {
+    let sums = table::sums(c);
+    let (pooled, df) = sphericity::within_covariance(c, None);
+    let m = sphericity::contrast_covariance(&pooled, c.k);
+    let gg = sphericity::epsilon_gg(&m);
+    let hf = sphericity::epsilon_hf(gg, c.n(), c.groups, c.k - 1);
+    let (effects, errors) = table::table(c, &sums, gg, hf);
+    let sphericity = sphericity::mauchly(&m, df, c.k);
+    Ok(Analysis {
+        recommendation: recommend(sphericity.as_ref(), gg, sphericity_alpha),
+        mixed: mixed::compare(c, &effects)?,
+        box_m: sphericity::box_m(c),
+        simple_effects: simple_effects(c, cohorts),
+        effects,
+        errors,
+        sphericity,
     })
 }
 

@@ -118,11 +118,29 @@ fn mixed_anova_matches_the_reference_on_published_and_invented_files() {
 #[test]
 fn compound_symmetry_reml_reproduces_the_within_effect_f_when_balanced() {
     use crate::tolerance::{CLOSED_FORM_REL, SATTERTHWAITE_REL};
-    let r = run(&data_dir().join("anova_spherical.csv"), "pupil", "cohort", "wave", "age", "score");
+    let r = run(
+        &data_dir().join("anova_spherical.csv"),
+        "pupil",
+        "cohort",
+        "wave",
+        "age",
+        "score",
+    );
     assert_eq!(r.cohort_sizes, vec![12; 4]);
     for t in &r.mixed_model_comparison.tests {
-        assert!((t.f - t.anova_f).abs() <= CLOSED_FORM_REL * t.anova_f, "{}: {} {}", t.effect, t.f, t.anova_f);
-        assert!((t.df2 - 88.0).abs() <= SATTERTHWAITE_REL * 88.0, "{}: df {}", t.effect, t.df2);
+        assert!(
+            (t.f - t.anova_f).abs() <= CLOSED_FORM_REL * t.anova_f,
+            "{}: {} {}",
+            t.effect,
+            t.f,
+            t.anova_f
+        );
+        assert!(
+            (t.df2 - 88.0).abs() <= SATTERTHWAITE_REL * 88.0,
+            "{}: df {}",
+            t.effect,
+            t.df2
+        );
     }
 }
 
@@ -156,4 +174,86 @@ fn row_order_and_labels_do_not_change_the_table() {
     assert!(close(sb.w, sa.w) && close(sb.p, sa.p));
     assert!(close(r.box_m.unwrap().chi2, base.box_m.unwrap().chi2));
     assert_eq!(r.cohorts, vec!["born-2001", "born-2002", "born-2003"]);
+}
+
+// Size of every test the ANOVA prints, by seeded simulation
+// (examples/anova_size.rs): 400 complete data sets of three cohorts (12, 18
+// and 30 participants) × four waves with compound-symmetric errors and no
+// effect. Each test's rejections at 5% lie in the 98% band of
+// Binomial(400, 0.05) (statrs 0.19.1); the simple effects count each
+// cohort's test. notes/anova.md has 10,000-replicate figures, and the
+// non-spherical case.
+#[test]
+fn every_anova_test_holds_its_level_without_effects() {
+    use braid::anova::{Complete, analyse};
+    use braid::simulate::Rng;
+    const REPS: u64 = 400;
+    let (lo, hi) = crate::common::binomial_band(REPS);
+    let sizes = [12usize, 18, 30];
+    let k = 4;
+    let cohorts: Vec<String> = (0..3).map(|g| g.to_string()).collect();
+    let mut rejected = [0u64; 12];
+    for r in 0..REPS {
+        let mut rng = Rng::new(50_000 + r);
+        let (mut y, mut cohort) = (Vec::new(), Vec::new());
+        for (g, &n) in sizes.iter().enumerate() {
+            for _ in 0..n {
+                // Compound symmetry: variance 4, correlation 0.5.
+                let shared = rng.normal() * 2f64.sqrt();
+                for _ in 0..k {
+                    y.push(50.0 + shared + rng.normal() * 2f64.sqrt());
+                }
+                cohort.push(g);
+            }
+        }
+        let c = Complete {
+            age: vec![0.0; y.len()],
+            y,
+            k,
+            cohort,
+            groups: 3,
+        };
+        let a = analyse(&c, &cohorts, 0.05).unwrap();
+        let e = &a.effects;
+        let ps = [
+            e[0].p,
+            e[1].p,
+            e[1].p_gg.unwrap(),
+            e[1].p_hf.unwrap(),
+            e[2].p,
+            e[2].p_gg.unwrap(),
+            e[2].p_hf.unwrap(),
+            a.sphericity.unwrap().p,
+            a.box_m.unwrap().p,
+            a.mixed.tests[0].p,
+            a.mixed.tests[1].p,
+        ];
+        for (i, p) in ps.iter().enumerate() {
+            rejected[i] += u64::from(*p < 0.05);
+        }
+        rejected[11] += a.simple_effects.iter().map(|s| u64::from(s.p_gg < 0.05)).sum::<u64>();
+    }
+    let names = [
+        "cohort",
+        "wave",
+        "wave GG",
+        "wave HF",
+        "interaction",
+        "interaction GG",
+        "interaction HF",
+        "Mauchly",
+        "Box's M",
+        "mixed wave",
+        "mixed interaction",
+    ];
+    for (i, name) in names.iter().enumerate() {
+        assert!((lo..=hi).contains(&rejected[i]), "{name}: {} of {REPS}", rejected[i]);
+    }
+    let (slo, shi) = crate::common::binomial_band(3 * REPS);
+    assert!(
+        (slo..=shi).contains(&rejected[11]),
+        "simple effects: {} of {}",
+        rejected[11],
+        3 * REPS
+    );
 }

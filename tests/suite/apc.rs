@@ -392,17 +392,6 @@ fn grouped_records_withhold_the_period_and_cohort_p_values() {
 /// Replicates of the size check that runs in CI.
 const SIZE_REPLICATES: u64 = 100;
 
-/// The central band of Binomial(n, 0.05) with at most 1% of its mass in
-/// each tail, from the cdf of statrs 0.19.1: a test of nominal size 5%
-/// rejects in fewer or more of `n` replicates with probability under 2%.
-fn binomial_band(n: u64) -> (u64, u64) {
-    use statrs::distribution::{Binomial, DiscreteCDF};
-    let b = Binomial::new(0.05, n).unwrap();
-    let lo = (0..=n).find(|&k| b.cdf(k) > 0.01).unwrap();
-    let hi = (0..=n).find(|&k| b.cdf(k) >= 0.99).unwrap();
-    (lo, hi)
-}
-
 // Size of the exact-value model's tests by seeded simulation: 100 panels of
 // each design without period and cohort effects, with a quadratic age curve,
 // participant intercepts and slopes, school intercepts and dropout: four
@@ -417,7 +406,7 @@ fn binomial_band(n: u64) -> (u64, u64) {
 fn exact_value_tests_hold_their_level_on_panels_without_the_effect() {
     use braid::apc::exact::{ExactInput, ExactTestKind, fit};
     use braid::simulate::{Design, simulate};
-    let (lo, hi) = binomial_band(SIZE_REPLICATES);
+    let (lo, hi) = crate::common::binomial_band(SIZE_REPLICATES);
     assert_eq!((lo, hi), (1, 11), "the band of Binomial(100, 0.05)");
     for (design, linear_age) in [("four", false), ("four", true), ("demo", false)] {
         let mut rejected = [0u64; 4];

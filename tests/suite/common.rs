@@ -119,3 +119,14 @@ pub fn expect_one_line_error(out: &std::process::Output, expected: &str, what: &
     assert!(stderr.contains(expected), "{what}: expected '{expected}' in: {stderr}");
     stderr
 }
+
+/// The central band of Binomial(n, 0.05) with at most 1% of its mass in
+/// each tail, from the cdf of statrs 0.19.1: a test of nominal size 5%
+/// rejects in fewer or more of `n` replicates with probability under 2%.
+pub fn binomial_band(n: u64) -> (u64, u64) {
+    use statrs::distribution::{Binomial, DiscreteCDF};
+    let b = Binomial::new(0.05, n).unwrap();
+    let lo = (0..=n).find(|&k| b.cdf(k) > 0.01).unwrap();
+    let hi = (0..=n).find(|&k| b.cdf(k) >= 0.99).unwrap();
+    (lo, hi)
+}
