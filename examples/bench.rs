@@ -2,7 +2,7 @@
 //!
 //! ```text
 //! cargo build --release
-//! cargo run --release --example bench -- [small|large|inspect|converge|apc|all] [WORK_DIR]
+//! cargo run --release --example bench -- [small|large|inspect|converge|apc|anova|all] [WORK_DIR]
 //! ```
 //!
 //! - `small`: a 3,000-participant three-wave file; REML, quadratic age,
@@ -24,6 +24,9 @@
 //!   records (the exact-value model; and with `--width 5` the factor model
 //!   beside it, both by least squares), and `--hierarchical`
 //!   (crossed random period and cohort intercepts) on 30,000 records.
+//!
+//! - `anova`: `braid anova` with JSON output on 100,000 participants × 4
+//!   waves (complete; the demo's five cohorts).
 //!
 //! Peak memory (large) is read with GNU time (`time -f %M`, found on PATH);
 //! the small runs spawn braid directly, so their wall time is braid's alone. Figures
@@ -349,6 +352,32 @@ fn apc(work: &Path) {
     );
 }
 
+/// `braid anova` on 100,000 participants × 4 waves (the demo's five cohorts,
+/// no dropout and no missed wave), three runs.
+fn anova(work: &Path) {
+    let file = work.join("anova_100k.csv");
+    let mut d = Design::demo();
+    d.per_cohort = 20_000;
+    d.seed = 100_000;
+    d.dropout = 0.0;
+    d.skip = 0.0;
+    let rows = write(&d, &file);
+    println!("anova: 100,000 participants × 4 waves, {rows} rows");
+    let walls: Vec<f64> = (0..3)
+        .map(|_| {
+            let mut cmd = Command::new(braid_bin());
+            cmd.arg("anova").arg(&file);
+            cmd.args(["--id", "pupil", "--age", "age", "--outcome", "score", "--cohort", "cohort", "--wave", "wave"]);
+            cmd.args(["--quiet", "--force", "--json"]).arg(work.join("anova.json"));
+            let t0 = Instant::now();
+            let o = cmd.output().expect("run braid anova");
+            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+            t0.elapsed().as_secs_f64()
+        })
+        .collect();
+    println!("anova: runs {walls:.2?} s, median {:.2} s", median(walls.clone()));
+}
+
 /// `braid converge` on 30,000 participants, three runs each without and
 /// with the school term.
 fn converge(work: &Path) {
@@ -432,6 +461,9 @@ fn main() {
     }
     if which == "converge" || which == "all" {
         converge(&work);
+    }
+    if which == "anova" || which == "all" {
+        anova(&work);
     }
     if which == "apc" || which == "all" {
         apc(&work);

@@ -105,6 +105,7 @@ fn every_text_screen_of_the_demo_matches_its_snapshot() {
         ("fit", vec!["fit", "--study", study]),
         ("inspect", vec!["inspect", "--study", study]),
         ("converge", vec!["converge", "--study", study]),
+        ("anova", vec!["anova", "--study", study]),
         (
             "apc",
             vec![
