@@ -367,7 +367,18 @@ fn anova(work: &Path) {
         .map(|_| {
             let mut cmd = Command::new(braid_bin());
             cmd.arg("anova").arg(&file);
-            cmd.args(["--id", "pupil", "--age", "age", "--outcome", "score", "--cohort", "cohort", "--wave", "wave"]);
+            cmd.args([
+                "--id",
+                "pupil",
+                "--age",
+                "age",
+                "--outcome",
+                "score",
+                "--cohort",
+                "cohort",
+                "--wave",
+                "wave",
+            ]);
             cmd.args(["--quiet", "--force", "--json"]).arg(work.join("anova.json"));
             let t0 = Instant::now();
             let o = cmd.output().expect("run braid anova");

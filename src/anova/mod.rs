@@ -152,6 +152,22 @@ pub struct AnovaReport {
     pub recommendation: String,
     /// The same complete cases as a compound-symmetry mixed model.
     pub mixed_model_comparison: MixedComparison,
+    /// What the stitched model of `braid fit` would use of the same file.
+    pub stitched_uses: StitchedUse,
+}
+
+/// Rows and participants: the ANOVA's complete cases against every
+/// observed assessment, which the stitched mixed model keeps.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct StitchedUse {
+    /// Rows in the ANOVA (complete cases × analysed waves).
+    pub anova_rows: usize,
+    /// Participants in the ANOVA.
+    pub anova_participants: usize,
+    /// Rows the stitched model uses (every row with an outcome and an age).
+    pub stitched_rows: usize,
+    /// Participants it uses.
+    pub stitched_participants: usize,
 }
 
 /// Run the cohort × wave mixed ANOVA on the complete cases of `panel`.
@@ -190,6 +206,12 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
         sphericity: a.sphericity,
         recommendation: a.recommendation,
         mixed_model_comparison: a.mixed,
+        stitched_uses: StitchedUse {
+            anova_rows: c.n() * c.k,
+            anova_participants: c.n(),
+            stitched_rows: panel.n(),
+            stitched_participants: panel.id().n_levels(),
+        },
         cohorts: design.cohorts,
         waves: design.waves,
     })

@@ -3,8 +3,8 @@ statsmodels OLS on the model columns that braid writes for
 tests/data/hapc_cross_section.csv (an invented repeated cross-section).
 
 Run from the repository root:
-  cargo run --release --example apc_exact_basis -- tests/data/hapc_cross_section.csv age year score /tmp/exact_basis.csv
-  python3 tests/reference/apc_exact_reference.py /tmp/exact_basis.csv
+  cargo run --release --example apc_exact_basis -- tests/data/hapc_cross_section.csv age year score target/exact_basis.csv
+  python3 tests/reference/apc_exact_reference.py target/exact_basis.csv
 It writes tests/reference/apc_exact.json: the residual sum of squares, the
 coefficient and SE of the period column (the drift), the F test of each time
 scale's curve columns and of the drift, and a fingerprint of each model

@@ -46,7 +46,7 @@ pub fn anova_summary(r: &AnovaReport) -> String {
     sphericity_block(&mut s, r);
     simple_block(&mut s, r);
     mixed_block(&mut s, r);
-    reading_block(&mut s);
+    reading_block(&mut s, r);
     let _ = writeln!(s);
     labelled(
         &mut s,
@@ -241,7 +241,15 @@ fn mixed_block(s: &mut String, r: &AnovaReport) {
 
 /// What the ANOVA's factors mean in a cohort-sequential design, and what
 /// the mixed model adds.
-fn reading_block(s: &mut String) {
+fn reading_block(s: &mut String, r: &AnovaReport) {
+    let u = &r.stitched_uses;
+    let uses = format!(
+        "On this file the table uses {} rows of {} participants; braid fit would use {} rows of {}.",
+        thousands(u.anova_rows),
+        thousands(u.anova_participants),
+        thousands(u.stitched_rows),
+        thousands(u.stitched_participants)
+    );
     let lines = [
         (
             "Reading",
@@ -260,4 +268,5 @@ fn reading_block(s: &mut String) {
         let _ = writeln!(s);
         labelled(s, label, format_args!("{}", wrap(text, 75, 11)));
     }
+    labelled(s, "", format_args!("{}", wrap(&uses, 75, 11)));
 }
