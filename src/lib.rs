@@ -107,6 +107,25 @@
 //! assert!(braid::report::Render::text(&report).contains("rank deficiency 1"));
 //! ```
 //!
+//! **The classical analysis beside it:** [`anova::mixed_anova`] runs the
+//! cohort × wave mixed ANOVA on complete cases, with sphericity corrections,
+//! and fits the same cases as a compound-symmetry mixed model.
+//!
+//! ```
+//! use braid::anova::{mixed_anova, AnovaOptions};
+//! use braid::data::{load, Roles};
+//! use braid::simulate::{simulate, Design};
+//! // The invented demo study: five cohorts, four annual waves.
+//! let mut design = Design::demo();
+//! design.per_cohort = 30;
+//! let panel = simulate(&design).panel(false);
+//! let report = mixed_anova(&panel, &AnovaOptions::default()).unwrap();
+//! assert_eq!(report.effects.len(), 3);
+//! assert!(report.n_complete <= 150);
+//! // A sphericity level outside (0, 1) is refused by the options.
+//! assert!(AnovaOptions::new(1.5, Default::default(), Default::default()).is_err());
+//! ```
+//!
 //! **Publish:** [`report`] renders every report as text, JSON, CSV and
 //! figures with one shared look.
 
