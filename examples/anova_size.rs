@@ -109,8 +109,8 @@ fn main() {
             simple_tests += 1;
         }
         rejected[10] += usize::from(a.simple_effects.iter().any(|s| s.p_holm < 0.05));
-        rejected[11] += usize::from(a.mixed.tests[0].p < 0.05);
-        rejected[12] += usize::from(a.mixed.tests[1].p < 0.05);
+        rejected[11] += usize::from(a.mixed_model_comparison.tests[0].p < 0.05);
+        rejected[12] += usize::from(a.mixed_model_comparison.tests[1].p < 0.05);
     }
     println!(
         "anova tests, errors {errors}, cohorts {sizes:?}, {k} waves: {reps} replicates from seed {seed}, {:.0} s",

@@ -113,14 +113,13 @@
 //!
 //! ```
 //! use braid::anova::{mixed_anova, AnovaOptions};
-//! use braid::data::{load, Roles};
 //! use braid::simulate::{simulate, Design};
 //! // The invented demo study: five cohorts, four annual waves.
 //! let mut design = Design::demo();
 //! design.per_cohort = 30;
 //! let panel = simulate(&design).panel(false);
 //! let report = mixed_anova(&panel, &AnovaOptions::default()).unwrap();
-//! assert_eq!(report.effects.len(), 3);
+//! assert_eq!(report.analysis.effects.len(), 3);
 //! assert!(report.n_complete <= 150);
 //! // A sphericity level outside (0, 1) is refused by the options.
 //! assert!(AnovaOptions::new(1.5, Default::default(), Default::default()).is_err());

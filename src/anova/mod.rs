@@ -138,20 +138,9 @@ pub struct AnovaReport {
     pub mean_se: Vec<Vec<f64>>,
     /// Mean exact age of each cohort × wave cell.
     pub mean_ages: Vec<Vec<f64>>,
-    /// The table: cohort, wave, cohort × wave.
-    pub effects: Vec<Effect>,
-    /// The two error terms.
-    pub errors: Vec<ErrorTerm>,
-    /// Mauchly's test (absent with two waves: sphericity holds trivially).
-    pub sphericity: Option<Sphericity>,
-    /// Box's M (absent when a cohort has no more participants than waves).
-    pub box_m: Option<BoxM>,
-    /// Wave within each cohort.
-    pub simple_effects: Vec<SimpleEffect>,
-    /// Which within-effect p to read, and why.
-    pub recommendation: String,
-    /// The same complete cases as a compound-symmetry mixed model.
-    pub mixed_model_comparison: MixedComparison,
+    /// The tests of the complete cases (their keys sit at the top level).
+    #[serde(flatten)]
+    pub analysis: Analysis,
     /// What the stitched model of `braid fit` would use of the same file.
     pub stitched_uses: StitchedUse,
 }
@@ -199,13 +188,7 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
         means: rows(c.cell_means()),
         mean_se: rows(cell_se(c)),
         mean_ages: rows(c.cell_means_of(&c.age)),
-        effects: a.effects,
-        errors: a.errors,
-        box_m: a.box_m,
-        simple_effects: a.simple_effects,
-        sphericity: a.sphericity,
-        recommendation: a.recommendation,
-        mixed_model_comparison: a.mixed,
+        analysis: a,
         stitched_uses: StitchedUse {
             anova_rows: c.n() * c.k,
             anova_participants: c.n(),
@@ -218,22 +201,22 @@ pub fn mixed_anova(panel: &Panel, options: &AnovaOptions) -> Result<AnovaReport>
 }
 
 /// Every test of the complete cases.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Analysis {
-    /// The table's effects.
+    /// The table: cohort, wave, cohort × wave.
     pub effects: Vec<Effect>,
-    /// Its error terms.
+    /// The two error terms.
     pub errors: Vec<ErrorTerm>,
-    /// Mauchly's test.
+    /// Mauchly's test (absent with two waves: sphericity holds trivially).
     pub sphericity: Option<Sphericity>,
-    /// Box's M.
+    /// Box's M (absent when a cohort has no more participants than waves).
     pub box_m: Option<BoxM>,
     /// Wave within each cohort.
     pub simple_effects: Vec<SimpleEffect>,
-    /// Which p to read.
+    /// Which within-effect p to read, and why.
     pub recommendation: String,
-    /// The compound-symmetry mixed model.
-    pub mixed: MixedComparison,
+    /// The same complete cases as a compound-symmetry mixed model.
+    pub mixed_model_comparison: MixedComparison,
 }
 
 /// The table, the sphericity and covariance tests, the simple effects and
@@ -252,7 +235,7 @@ pub fn analyse(c: &Complete, cohorts: &[String], sphericity_alpha: f64) -> Resul
     let sphericity = sphericity::mauchly(&m, df, c.k);
     Ok(Analysis {
         recommendation: recommend(sphericity.as_ref(), gg, sphericity_alpha),
-        mixed: mixed::compare(c, &effects)?,
+        mixed_model_comparison: mixed::compare(c, &effects)?,
         box_m: sphericity::box_m(c),
         simple_effects: simple_effects(c, cohorts),
         effects,

@@ -9,9 +9,9 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{GROUND, INK, PALETTE, SIZE, register_font, styled_legend, styled_mesh};
+use super::figure::{GROUND, INK, PALETTE, SIZE, render, styled_legend, styled_mesh};
 use crate::anova::AnovaReport;
-use crate::error::{Error, Result};
+use crate::error::Result;
 
 fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &AnovaReport) -> std::result::Result<(), String> {
     let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
@@ -75,13 +75,8 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &AnovaReport) -> st
 /// # Errors
 /// [`Error::Output`] when a file cannot be drawn or written.
 pub fn means(png: &Path, svg: &Path, r: &AnovaReport) -> Result<()> {
-    register_font();
-    let out = |path: &Path, m: String| Error::Output {
-        path: path.to_path_buf(),
-        message: format!("cannot draw the figure ({m})"),
-    };
-    draw(BitMapBackend::new(png, SIZE).into_drawing_area(), r).map_err(|m| out(png, m))?;
-    draw(SVGBackend::new(svg, SIZE).into_drawing_area(), r).map_err(|m| out(svg, m))
+    render!(png, BitMapBackend, SIZE, |root| draw(root, r))?;
+    render!(svg, SVGBackend, SIZE, |root| draw(root, r))
 }
 
 /// The cohort × wave means as CSV: cohort, wave, n, mean, se, mean_age.

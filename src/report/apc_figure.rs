@@ -21,10 +21,10 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{GROUND, INK, PALETTE, register_font, styled_legend, styled_mesh};
+use super::figure::{GROUND, INK, PALETTE, render, styled_legend, styled_mesh};
 use crate::apc::Dimension;
 use crate::apc::analysis::ApcReport;
-use crate::error::{Error, Result};
+use crate::error::Result;
 
 const WIDE: (u32, u32) = (1500, 560);
 const SQUARE: (u32, u32) = (1000, 640);
@@ -375,44 +375,32 @@ fn three<DB: DrawingBackend>(
 /// # Errors
 /// [`Error::Output`] when a figure cannot be drawn or written.
 pub fn write(dir: &Path, r: &ApcReport) -> Result<Vec<String>> {
-    register_font();
-    let out = |path: &Path, m: String| Error::Output {
-        path: path.to_path_buf(),
-        message: format!("cannot draw the figure ({m})"),
-    };
     let mut names = Vec::new();
     // The grouped model's figures, when there is a grouped model.
     let mut stems = if r.shape.a > 0 {
-        vec![("apc_effects", WIDE), ("apc_curvature", WIDE), ("apc_line", SQUARE)]
+        vec!["apc_effects", "apc_curvature", "apc_line"]
     } else {
         Vec::new()
     };
     if r.exact.is_some() {
-        stems.push(("apc_exact", WIDE));
+        stems.push("apc_exact");
     }
-    for (stem, size) in stems {
+    for stem in stems {
         let png = dir.join(format!("{stem}.png"));
         let svg = dir.join(format!("{stem}.svg"));
-        let (a, b) = match stem {
-            "apc_effects" => (
-                three(BitMapBackend::new(&png, size).into_drawing_area(), r, effects_panel),
-                three(SVGBackend::new(&svg, size).into_drawing_area(), r, effects_panel),
-            ),
-            "apc_curvature" => (
-                three(BitMapBackend::new(&png, size).into_drawing_area(), r, curvature_panel),
-                three(SVGBackend::new(&svg, size).into_drawing_area(), r, curvature_panel),
-            ),
-            "apc_exact" => (
-                three(BitMapBackend::new(&png, size).into_drawing_area(), r, exact_panel),
-                three(SVGBackend::new(&svg, size).into_drawing_area(), r, exact_panel),
-            ),
-            _ => (
-                line_figure(BitMapBackend::new(&png, size).into_drawing_area(), r),
-                line_figure(SVGBackend::new(&svg, size).into_drawing_area(), r),
-            ),
-        };
-        a.map_err(|m| out(&png, m))?;
-        b.map_err(|m| out(&svg, m))?;
+        // The same drawing into both files.
+        macro_rules! both {
+            ($size:expr, $draw:expr) => {{
+                render!(&png, BitMapBackend, $size, $draw)?;
+                render!(&svg, SVGBackend, $size, $draw)?;
+            }};
+        }
+        match stem {
+            "apc_effects" => both!(WIDE, |root| three(root, r, effects_panel)),
+            "apc_curvature" => both!(WIDE, |root| three(root, r, curvature_panel)),
+            "apc_exact" => both!(WIDE, |root| three(root, r, exact_panel)),
+            _ => both!(SQUARE, |root| line_figure(root, r)),
+        }
         names.push(format!("{stem}.png"));
         names.push(format!("{stem}.svg"));
     }

@@ -12,8 +12,8 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, register_font, styled_legend, styled_mesh};
-use crate::error::{Error, Result};
+use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, render, styled_legend, styled_mesh};
+use crate::error::Result;
 use crate::linkage::ConvergeReport;
 
 fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) -> std::result::Result<(), String> {
@@ -124,11 +124,6 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
 /// # Errors
 /// [`Error::Output`] when a file cannot be drawn or written.
 pub fn shared_ages(png: &Path, svg: &Path, r: &ConvergeReport) -> Result<()> {
-    register_font();
-    let out = |path: &Path, m: String| Error::Output {
-        path: path.to_path_buf(),
-        message: format!("cannot draw the figure ({m})"),
-    };
-    draw(BitMapBackend::new(png, SIZE).into_drawing_area(), r).map_err(|m| out(png, m))?;
-    draw(SVGBackend::new(svg, SIZE).into_drawing_area(), r).map_err(|m| out(svg, m))
+    render!(png, BitMapBackend, SIZE, |root| draw(root, r))?;
+    render!(svg, SVGBackend, SIZE, |root| draw(root, r))
 }

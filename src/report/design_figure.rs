@@ -18,10 +18,10 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, register_font, styled_legend, styled_mesh};
+use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, render, styled_legend, styled_mesh};
 use crate::design::DesignReport;
 use crate::design::lexis::LexisData;
-use crate::error::{Error, Result};
+use crate::error::Result;
 
 fn bounds(data: &LexisData) -> ((f64, f64), (f64, f64)) {
     let (mut t0, mut t1, mut a0, mut a1) = (f64::INFINITY, f64::NEG_INFINITY, f64::INFINITY, f64::NEG_INFINITY);
@@ -213,24 +213,13 @@ fn draw_coverage<DB: DrawingBackend>(
     Ok(())
 }
 
-macro_rules! render {
-    ($path:expr, $backend:ident, $draw:expr) => {{
-        register_font();
-        let root = $backend::new($path, SIZE).into_drawing_area();
-        $draw(root).map_err(|m: String| Error::Output {
-            path: $path.to_path_buf(),
-            message: format!("cannot draw the figure ({m})"),
-        })
-    }};
-}
-
 /// Draw the Lexis diagram as PNG and SVG.
 ///
 /// # Errors
 /// [`Error::Output`] when a file cannot be drawn or written.
 pub fn lexis(png: &Path, svg: &Path, data: &LexisData) -> Result<()> {
-    render!(png, BitMapBackend, |root| draw_lexis(root, data))?;
-    render!(svg, SVGBackend, |root| draw_lexis(root, data))
+    render!(png, BitMapBackend, SIZE, |root| draw_lexis(root, data))?;
+    render!(svg, SVGBackend, SIZE, |root| draw_lexis(root, data))
 }
 
 /// Draw the coverage chart as PNG and SVG.
@@ -238,6 +227,6 @@ pub fn lexis(png: &Path, svg: &Path, data: &LexisData) -> Result<()> {
 /// # Errors
 /// [`Error::Output`] when a file cannot be drawn or written.
 pub fn coverage(png: &Path, svg: &Path, report: &DesignReport) -> Result<()> {
-    render!(png, BitMapBackend, |root| draw_coverage(root, report))?;
-    render!(svg, SVGBackend, |root| draw_coverage(root, report))
+    render!(png, BitMapBackend, SIZE, |root| draw_coverage(root, report))?;
+    render!(svg, SVGBackend, SIZE, |root| draw_coverage(root, report))
 }

@@ -19,13 +19,28 @@ use plotters::prelude::*;
 use plotters::style::FontStyle;
 
 use super::FitReport;
-use crate::error::{Error, Result};
+use crate::error::Result;
 
 /// One participant's observed path: (age, outcome) pairs in age order.
 pub type Line = Vec<(f64, f64)>;
 
 static FONT: Once = Once::new();
 static FONT_BYTES: &[u8] = include_bytes!("font/DejaVuSans.ttf");
+
+/// Draw one figure into `path` with a plotters backend at `size` pixels, or
+/// say why it could not be drawn: `render!(path, BitMapBackend, SIZE, |root|
+/// draw(root, report))`.
+macro_rules! render {
+    ($path:expr, $backend:ident, $size:expr, $draw:expr) => {{
+        $crate::report::figure::register_font();
+        let root = $backend::new($path, $size).into_drawing_area();
+        $draw(root).map_err(|m: String| $crate::error::Error::Output {
+            path: $path.to_path_buf(),
+            message: format!("cannot draw the figure ({m})"),
+        })
+    }};
+}
+pub(crate) use render;
 
 pub(crate) fn register_font() {
     FONT.call_once(|| {
@@ -237,12 +252,7 @@ fn cohort_count(report: &FitReport) -> usize {
 /// # Errors
 /// [`Error::Output`] when the file cannot be drawn or written.
 pub fn trajectory_png(path: &Path, report: &FitReport, lines: &[Line]) -> Result<()> {
-    register_font();
-    let root = BitMapBackend::new(path, SIZE).into_drawing_area();
-    draw(root, report, lines).map_err(|m| Error::Output {
-        path: path.to_path_buf(),
-        message: format!("cannot draw the figure ({m})"),
-    })
+    render!(path, BitMapBackend, SIZE, |root| draw(root, report, lines))
 }
 
 /// Draw the trajectory figure as SVG.
@@ -250,12 +260,7 @@ pub fn trajectory_png(path: &Path, report: &FitReport, lines: &[Line]) -> Result
 /// # Errors
 /// [`Error::Output`] when the file cannot be drawn or written.
 pub fn trajectory_svg(path: &Path, report: &FitReport, lines: &[Line]) -> Result<()> {
-    register_font();
-    let root = SVGBackend::new(path, SIZE).into_drawing_area();
-    draw(root, report, lines).map_err(|m| Error::Output {
-        path: path.to_path_buf(),
-        message: format!("cannot draw the figure ({m})"),
-    })
+    render!(path, SVGBackend, SIZE, |root| draw(root, report, lines))
 }
 
 #[cfg(test)]

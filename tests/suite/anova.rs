@@ -41,7 +41,7 @@ fn dental() -> std::path::PathBuf {
 }
 
 fn check(r: &AnovaReport, want: &serde_json::Value, what: &str) {
-    for e in &r.effects {
+    for e in &r.analysis.effects {
         let w = &want["effects"][&e.effect];
         for (key, got) in [
             ("ss", e.ss),
@@ -72,7 +72,7 @@ fn check(r: &AnovaReport, want: &serde_json::Value, what: &str) {
             );
         }
     }
-    let s = r.sphericity.as_ref().unwrap();
+    let s = r.analysis.sphericity.as_ref().unwrap();
     assert!(
         close(s.w, want["sphericity"]["w"].as_f64().unwrap()),
         "{what} W {}",
@@ -83,7 +83,7 @@ fn check(r: &AnovaReport, want: &serde_json::Value, what: &str) {
         "{what} Mauchly p {}",
         s.p
     );
-    let b = r.box_m.as_ref().unwrap();
+    let b = r.analysis.box_m.as_ref().unwrap();
     assert!(
         close(b.chi2, want["box_m"]["chi2"].as_f64().unwrap()),
         "{what} Box χ² {}",
@@ -127,7 +127,7 @@ fn compound_symmetry_reml_reproduces_the_within_effect_f_when_balanced() {
         "score",
     );
     assert_eq!(r.cohort_sizes, vec![12; 4]);
-    for t in &r.mixed_model_comparison.tests {
+    for t in &r.analysis.mixed_model_comparison.tests {
         assert!(
             (t.f - t.anova_f).abs() <= CLOSED_FORM_REL * t.anova_f,
             "{}: {} {}",
@@ -166,13 +166,13 @@ fn row_order_and_labels_do_not_change_the_table() {
     let other = temp_dir("anova_relabel").join("relabelled.csv");
     std::fs::write(&other, format!("{head}\n{}\n", relabelled.join("\n"))).unwrap();
     let r = run(&other, "pupil", "cohort", "wave", "age", "score");
-    for (a, b) in base.effects.iter().zip(&r.effects) {
+    for (a, b) in base.analysis.effects.iter().zip(&r.analysis.effects) {
         assert!(close(b.f, a.f) && close(b.ss, a.ss) && close(b.p, a.p), "{}", a.effect);
         assert!(close(b.epsilon_gg.unwrap_or(1.0), a.epsilon_gg.unwrap_or(1.0)));
     }
-    let (sa, sb) = (base.sphericity.unwrap(), r.sphericity.unwrap());
+    let (sa, sb) = (base.analysis.sphericity.unwrap(), r.analysis.sphericity.unwrap());
     assert!(close(sb.w, sa.w) && close(sb.p, sa.p));
-    assert!(close(r.box_m.unwrap().chi2, base.box_m.unwrap().chi2));
+    assert!(close(r.analysis.box_m.unwrap().chi2, base.analysis.box_m.unwrap().chi2));
     assert_eq!(r.cohorts, vec!["born-2001", "born-2002", "born-2003"]);
 }
 
@@ -225,8 +225,8 @@ fn every_anova_test_holds_its_level_without_effects() {
             e[2].p_hf.unwrap(),
             a.sphericity.unwrap().p,
             a.box_m.unwrap().p,
-            a.mixed.tests[0].p,
-            a.mixed.tests[1].p,
+            a.mixed_model_comparison.tests[0].p,
+            a.mixed_model_comparison.tests[1].p,
         ];
         for (i, p) in ps.iter().enumerate() {
             rejected[i] += u64::from(*p < 0.05);

@@ -83,9 +83,9 @@ fn table_block(s: &mut String, r: &AnovaReport) {
         &["Table", "SS", "df", "MS", "F", "p", "partial η²"],
         &[-29, 12, 8, 12, 9, 8, 12],
     );
-    let err = |i: usize| &r.errors[i];
+    let err = |i: usize| &r.analysis.errors[i];
     let effect_row = |s: &mut String, i: usize| {
-        let e = &r.effects[i];
+        let e = &r.analysis.effects[i];
         let _ = writeln!(
             s,
             "  {:<27}{:>12.3}{:>8}{:>12.3}{:>9.3}{:>8}{:>12.3}",
@@ -119,7 +119,7 @@ fn table_block(s: &mut String, r: &AnovaReport) {
         ],
         &[-29, 9, 9, 9, 9, 16],
     );
-    for e in &r.effects {
+    for e in &r.analysis.effects {
         let fmt_p = |p: Option<f64>| p.map_or("—".into(), pval);
         let fmt_e = |x: Option<f64>| x.map_or("—".into(), |v| format!("{v:.3}"));
         let _ = writeln!(
@@ -150,7 +150,7 @@ fn table_block(s: &mut String, r: &AnovaReport) {
 /// Mauchly's test, the recommendation, and Box's M.
 fn sphericity_block(s: &mut String, r: &AnovaReport) {
     let _ = writeln!(s);
-    match &r.sphericity {
+    match &r.analysis.sphericity {
         Some(m) => labelled(
             s,
             "Sphericity",
@@ -171,8 +171,8 @@ fn sphericity_block(s: &mut String, r: &AnovaReport) {
         ),
         None => labelled(s, "Sphericity", format_args!("two waves: nothing to test")),
     }
-    labelled(s, "", format_args!("{}", wrap(&r.recommendation, 75, 11)));
-    match &r.box_m {
+    labelled(s, "", format_args!("{}", wrap(&r.analysis.recommendation, 75, 11)));
+    match &r.analysis.box_m {
         Some(b) => {
             let text = format!(
                 "M = {:.3}, χ² = {:.3} on {} df, {}: equal covariance matrices across cohorts {} at 5% (the test is \
@@ -200,7 +200,7 @@ fn simple_block(s: &mut String, r: &AnovaReport) {
         &["Simple effects of wave", "F", "df", "p", "ε GG", "p GG", "Holm"],
         &[-29, 10, 14, 8, 9, 8, 8],
     );
-    for e in &r.simple_effects {
+    for e in &r.analysis.simple_effects {
         let _ = writeln!(
             s,
             "  {:<27}{:>10.3}{:>14}{:>8}{:>9.3}{:>8}{:>8}",
@@ -217,7 +217,7 @@ fn simple_block(s: &mut String, r: &AnovaReport) {
 
 /// The compound-symmetry mixed model on the same complete cases.
 fn mixed_block(s: &mut String, r: &AnovaReport) {
-    let m = &r.mixed_model_comparison;
+    let m = &r.analysis.mixed_model_comparison;
     header(s, &["Mixed model", "F", "df", "p", "ANOVA F"], &[-29, 10, 18, 8, 12]);
     for t in &m.tests {
         let _ = writeln!(
