@@ -9,7 +9,7 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{GROUND, INK, PALETTE, SIZE, render, styled_legend, styled_mesh};
+use super::figure::{GROUND, PALETTE, SIZE, framed, render, styled_legend};
 use crate::anova::AnovaReport;
 use crate::error::Result;
 
@@ -31,21 +31,13 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &AnovaReport) -> st
     // Headroom for the legend (about 18 pixels an entry in 470).
     let share = ((r.cohorts.len() + 1) as f64 * 18.0 + 24.0) / 470.0;
     let y1 = y1 + py + (y1 - y0 + 2.0 * py) * share / (1.0 - share);
-    let mut chart = ChartBuilder::on(&root)
-        .caption(
-            "Cohort × wave means (complete cases) at each cell's mean age",
-            ("sans-serif", 22).into_font().color(&INK),
-        )
-        .margin(24)
-        .x_label_area_size(52)
-        .y_label_area_size(68)
-        .build_cartesian_2d((x0 - px)..(x1 + px), (y0 - py)..(y1 + py))
-        .map_err(e)?;
-    styled_mesh(&mut chart, 14)
-        .x_desc("age (years)")
-        .y_desc("mean outcome, ±1.96 SE")
-        .draw()
-        .map_err(e)?;
+    let mut chart = framed(
+        &root,
+        "Cohort × wave means (complete cases) at each cell's mean age",
+        (x0 - px)..(x1 + px),
+        (y0 - py)..(y1 + py),
+        ("age (years)", "mean outcome, ±1.96 SE"),
+    )?;
     for (g, cohort) in r.cohorts.iter().enumerate() {
         let color = PALETTE[g % PALETTE.len()];
         let pts: Vec<(f64, f64, f64)> = (0..r.waves.len())

@@ -12,7 +12,7 @@ use std::path::Path;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, render, styled_legend, styled_mesh};
+use super::figure::{CURVE, GROUND, INK, PALETTE, SIZE, framed, render, styled_legend};
 use crate::error::Result;
 use crate::linkage::ConvergeReport;
 
@@ -44,21 +44,13 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
     // entry in a plot about 470 pixels high), so that it hides no bar.
     let share = ((pairs.len() + 3) as f64 * 18.0 + 24.0) / 470.0;
     let y1 = y1 + py + (y1 - y0 + 2.0 * py) * share / (1.0 - share);
-    let mut chart = ChartBuilder::on(&root)
-        .caption(
-            "Cohort differences at shared ages, against the equivalence margin",
-            ("sans-serif", 22).into_font().color(&INK),
-        )
-        .margin(24)
-        .x_label_area_size(52)
-        .y_label_area_size(68)
-        .build_cartesian_2d((x0 - px)..(x1 + px), (y0 - py)..(y1 + py))
-        .map_err(e)?;
-    styled_mesh(&mut chart, 14)
-        .x_desc("age (years)")
-        .y_desc("later minus earlier cohort (outcome units)")
-        .draw()
-        .map_err(e)?;
+    let mut chart = framed(
+        &root,
+        "Cohort differences at shared ages, against the equivalence margin",
+        (x0 - px)..(x1 + px),
+        (y0 - py)..(y1 + py),
+        ("age (years)", "later minus earlier cohort (outcome units)"),
+    )?;
     chart
         .draw_series(std::iter::once(Rectangle::new(
             [(x0 - px, -r.margin), (x1 + px, r.margin)],

@@ -91,6 +91,31 @@ pub(crate) fn tick(v: &f64) -> String {
     if text == "-0" { "0".into() } else { text.to_string() }
 }
 
+/// A one-panel chart in braid's frame: the caption, margins and label areas
+/// of the full-size figures, and the mesh with its two axis titles drawn.
+pub(crate) fn framed<'a, DB: DrawingBackend>(
+    root: &'a DrawingArea<DB, Shift>,
+    caption: &str,
+    x: std::ops::Range<f64>,
+    y: std::ops::Range<f64>,
+    (x_desc, y_desc): (&str, &str),
+) -> std::result::Result<ChartContext<'a, DB, Plane>, String> {
+    let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
+    let mut chart = ChartBuilder::on(root)
+        .caption(caption, ("sans-serif", 22).into_font().color(&INK))
+        .margin(24)
+        .x_label_area_size(52)
+        .y_label_area_size(68)
+        .build_cartesian_2d(x, y)
+        .map_err(e)?;
+    styled_mesh(&mut chart, 14)
+        .x_desc(x_desc)
+        .y_desc(y_desc)
+        .draw()
+        .map_err(e)?;
+    Ok(chart)
+}
+
 /// braid's legend box at `position`, with text of `size` points.
 pub(crate) fn styled_legend<'a, DB, CT>(
     chart: &mut ChartContext<'a, DB, CT>,
