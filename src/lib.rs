@@ -138,6 +138,7 @@ pub mod infer;
 pub mod linkage;
 pub mod lmm;
 pub mod report;
+pub mod score;
 pub mod simulate;
 pub mod spec;
 pub mod stats;

@@ -22,6 +22,8 @@ pub enum WarningCode {
     NoGroupedModel,
     /// Cohorts were assessed at different sets of waves; the ANOVA uses the common ones.
     UncommonWaves,
+    /// An item has no variance at a wave.
+    ConstantItem,
 }
 
 /// A warning: its code and its message.

@@ -24,6 +24,8 @@ mod linkage; // convergence tests: reference likelihood ratios, size and power
 mod recovery; // seeded simulations recover the known truth
 #[path = "suite/reference.rs"]
 mod reference; // statsmodels MixedLM reference fits on published and simulated data
+#[path = "suite/score.rs"]
+mod score; // scoring and reliability against pingouin and Feldt, closed forms
 #[path = "suite/snapshots.rs"]
 mod snapshots; // every text screen of the demo against its reviewed snapshot
 #[path = "suite/tolerance.rs"]

@@ -46,6 +46,8 @@ pub enum Command {
     Apc(Box<ApcArgs>),
     /// Run the classical cohort × wave mixed ANOVA on complete cases, and show what the mixed model adds.
     Anova(Box<AnovaArgs>),
+    /// Score multi-item scales per wave, with reliability per wave, cohort and cohort × wave.
+    Score(Box<ScoreArgs>),
     /// Print a completion script for a shell, to be sourced by its start-up file.
     Completions(CompletionsArgs),
 }
@@ -218,6 +220,47 @@ pub struct InspectArgs {
     #[arg(long, value_name = "N", default_value_t = 30)]
     pub thin: usize,
     /// Where the results go: --out writes design.json and the Lexis diagram and coverage chart (PNG and SVG).
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// How a score is formed from the answered items.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum RuleArg {
+    /// The mean of the answered items.
+    Mean,
+    /// The prorated sum: the mean of the answered items × the number of items.
+    Sum,
+}
+
+/// Flags of `braid score`.
+#[derive(Debug, Clone, Args)]
+pub struct ScoreArgs {
+    /// The data (one row per participant and wave) and the id, wave and optional cohort columns.
+    #[command(flatten)]
+    pub input: InputArgs,
+    /// The items: comma-separated names, or ranges such as q1..q12.
+    #[arg(long, value_name = "LIST")]
+    pub items: String,
+    /// Reverse-keyed items (x becomes min + max − x): names or ranges.
+    #[arg(long, value_name = "LIST")]
+    pub reverse: Option<String>,
+    /// The lowest legal response.
+    #[arg(long, value_name = "X")]
+    pub scale_min: f64,
+    /// The highest legal response.
+    #[arg(long, value_name = "X")]
+    pub scale_max: f64,
+    /// The score: the mean of the answered items, or their prorated sum.
+    #[arg(long, value_enum, default_value_t = RuleArg::Mean)]
+    pub rule: RuleArg,
+    /// A score needs at least this many answered items [default: all but one].
+    #[arg(long, value_name = "K")]
+    pub min_answered: Option<usize>,
+    /// Columns copied to scores.csv (repeatable), for example age.
+    #[arg(long = "pass", value_name = "COLUMN")]
+    pub pass: Vec<String>,
+    /// Where the results go: --out writes score.json and scores.csv.
     #[command(flatten)]
     pub output: OutputArgs,
 }

@@ -5,7 +5,10 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use super::args::{AnovaArgs, ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, RetestArg};
+use super::args::{
+    AnovaArgs, ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, RetestArg, RuleArg,
+    ScoreArgs,
+};
 use crate::FitRequest;
 use crate::anova::AnovaOptions;
 use crate::apc::{ApcColumns, ApcOptions};
@@ -16,6 +19,7 @@ use crate::infer::TrajectoryRequest;
 use crate::linkage::retest::RetestForm;
 use crate::linkage::{ConvergeOptions, DEFAULT_MARGIN_SD, Margin};
 use crate::lmm::Method;
+use crate::score::{ItemColumns, ScoreOptions, ScoreRule, expand_items};
 use crate::spec::{AgeSpec, ModelSpec, RandomSpec};
 
 /// The `[data]` table of a study file.
@@ -303,6 +307,43 @@ impl AnovaArgs {
         let d = &self.derive;
         let options = AnovaOptions::new(self.sphericity_level, d.cohort_rule(), d.wave_rule())?;
         Ok((Source::resolve(&self.input)?, options))
+    }
+}
+
+impl ScoreArgs {
+    /// The data source, the columns and the validated scoring options.
+    ///
+    /// # Errors
+    /// Those of [`Source::resolve_loose`], [`expand_items`] and
+    /// [`ScoreOptions::new`]; a missing id or wave column.
+    pub fn options(&self) -> Result<(Source, ItemColumns, ScoreOptions)> {
+        let source = Source::resolve_loose(&self.input)?;
+        let r = &source.roles;
+        let required = |v: Option<String>, key: &str| {
+            v.filter(|s| !s.is_empty()).ok_or_else(|| Error::Spec {
+                parameter: key.into(),
+                message: "is required: name the column".into(),
+            })
+        };
+        let items = expand_items(&self.items)?;
+        let columns = ItemColumns {
+            id: required(Some(r.id.clone()), "id")?,
+            wave: required(r.wave.clone(), "wave")?,
+            cohort: r.cohort.clone(),
+            pass: self.pass.clone(),
+            items: items.clone(),
+        };
+        let reverse = match &self.reverse {
+            Some(list) => expand_items(list)?,
+            None => Vec::new(),
+        };
+        let rule = match self.rule {
+            RuleArg::Mean => ScoreRule::Mean,
+            RuleArg::Sum => ScoreRule::Sum,
+        };
+        let min_answered = self.min_answered.unwrap_or(items.len().saturating_sub(1).max(1));
+        let options = ScoreOptions::new(reverse, self.scale_min, self.scale_max, rule, min_answered)?;
+        Ok((source, columns, options))
     }
 }
 

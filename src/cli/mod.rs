@@ -75,6 +75,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Converge(a) => converge_command(&a),
         Command::Apc(a) => apc_command(&a),
         Command::Anova(a) => anova_command(&a),
+        Command::Score(a) => score_command(&a),
         Command::Completions(a) => {
             completions_command(&a);
             Ok(())
@@ -122,6 +123,14 @@ fn anova_command(a: &args::AnovaArgs) -> Result<()> {
     let emitter = Emitter::new(&a.output)?;
     let panel = load(&source)?;
     emitter.emit(&crate::anova::mixed_anova(&panel, &options)?)
+}
+
+/// `braid score`: read the items, score them, measure their reliability.
+fn score_command(a: &args::ScoreArgs) -> Result<()> {
+    let (source, columns, options) = a.options()?;
+    let emitter = Emitter::new(&a.output)?;
+    let input = crate::score::ItemInput::read(&source.data, &columns, source.read)?;
+    emitter.emit(&crate::score::score(&input, &options)?)
 }
 
 /// `braid apc`: read a table of counts or records, fit, and report what is identified.

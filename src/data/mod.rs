@@ -25,7 +25,7 @@ pub use panel::{
 };
 pub use roles::Roles;
 pub use summary::DataSummary;
-pub use table::{NumericTable, numeric_table};
+pub use table::{LabelledTable, NumericTable, labelled_table, numeric_table};
 
 use std::collections::HashMap;
 

@@ -12,6 +12,7 @@ use crate::design::DesignReport;
 use crate::error::Result;
 use crate::linkage::ConvergeReport;
 use crate::report::FitReport;
+use crate::score::ScoreReport;
 
 /// A self-describing report: everything needed to render it is inside.
 pub trait Render: Serialize {
@@ -104,6 +105,29 @@ impl Render for AnovaReport {
         Ok(["anova_means.csv", "anova_means.png", "anova_means.svg"]
             .map(String::from)
             .to_vec())
+    }
+}
+
+impl Render for ScoreReport {
+    const JSON_FILE: &'static str = "score.json";
+
+    fn text(&self) -> String {
+        text::score_summary(self)
+    }
+
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        let mut s = self.score_header.join(",");
+        s.push('\n');
+        for row in &self.scores {
+            s.push_str(&row.labels.join(","));
+            if row.score.is_finite() {
+                s.push_str(&format!(",{},{}\n", row.score, row.n_answered));
+            } else {
+                s.push_str(&format!(",,{}\n", row.n_answered));
+            }
+        }
+        super::write_text(&dir.join("scores.csv"), &s)?;
+        Ok(vec!["scores.csv".into()])
     }
 }
 

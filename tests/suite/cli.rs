@@ -27,7 +27,7 @@ fn every_malformed_input_gets_a_one_line_error_and_exit_code_2() {
         // "apc!..." runs `braid apc` with only the listed flags, "inspect|..."
         // (or converge, anova) runs that command with the base roles and the
         // listed flags; otherwise `braid fit`.
-        let (command, extra) = ["apc", "inspect", "converge", "anova"]
+        let (command, extra) = ["apc", "inspect", "converge", "anova", "score"]
             .iter()
             .find_map(|c| extra.strip_prefix(c).map(|rest| (*c, rest.trim_start_matches('|'))))
             .unwrap_or(("fit", extra));

@@ -7,6 +7,7 @@ mod apc;
 mod converge;
 mod design;
 mod fit;
+mod score;
 
 use std::fmt::Write;
 
@@ -15,6 +16,7 @@ pub use apc::apc_summary;
 pub use converge::converge_summary;
 pub use design::design_summary;
 pub use fit::fit_summary;
+pub use score::score_summary;
 
 use crate::data::DataSummary;
 use crate::stats::{p_cell as pval, p_words as p_is, thousands};

@@ -1,0 +1,114 @@
+//! The screen of `braid score`.
+
+use std::fmt::Write;
+
+use super::{header, labelled, thousands, title, wrap};
+use crate::score::{ALPHA_FLAG, Reliability, ScoreReport, ScoreRule};
+
+/// Render the scoring report of `braid score`.
+pub fn score_summary(r: &ScoreReport) -> String {
+    let mut s = String::new();
+    title(&mut s, "score", &r.data);
+    let o = &r.options;
+    labelled(
+        &mut s,
+        "Data",
+        format_args!(
+            "{} rows · {} participants",
+            thousands(r.data.n_rows_read),
+            thousands(r.data.n_participants.unwrap_or(0))
+        ),
+    );
+    let reversed = if o.reverse.is_empty() {
+        "none reversed".to_string()
+    } else {
+        format!("reversed: {}", o.reverse.join(", "))
+    };
+    let items = format!(
+        "{} items ({}), {reversed}; responses from {} to {}",
+        r.items.len(),
+        r.items.join(", "),
+        o.scale_min,
+        o.scale_max
+    );
+    labelled(&mut s, "Items", format_args!("{}", wrap(&items, 75, 11)));
+    let rule = match o.rule {
+        ScoreRule::Mean => "the mean of the answered items".to_string(),
+        ScoreRule::Sum => format!("the prorated sum (the mean of the answered items × {})", r.items.len()),
+    };
+    let scores = format!(
+        "{rule}, when at least {} items are answered: {} rows scored, {} left without a score",
+        o.min_answered,
+        thousands(r.n_scored),
+        thousands(r.n_unscored)
+    );
+    labelled(&mut s, "Score", format_args!("{}", wrap(&scores, 75, 11)));
+    for (i, w) in r.warnings.iter().enumerate() {
+        labelled(
+            &mut s,
+            if i == 0 { "Warning" } else { "" },
+            format_args!("{}", wrap(&w.message, 75, 11)),
+        );
+    }
+    table(&mut s, "By wave", &r.per_wave);
+    if !r.per_cohort.is_empty() {
+        table(&mut s, "By cohort", &r.per_cohort);
+        table(&mut s, "By cohort × wave", &r.per_cohort_wave);
+    }
+    items_block(&mut s, &r.overall);
+    let _ = writeln!(s);
+    let note = format!(
+        "α uses the respondents who answered every item (listwise); its interval is Feldt's (1965). \
+         \"low\" marks α below {ALPHA_FLAG:.2}, a common rule of thumb, not a law."
+    );
+    labelled(&mut s, "", format_args!("{}", wrap(&note, 75, 11)));
+    labelled(&mut s, "Caution", format_args!("{}", crate::report::CAUTIONS[2]));
+    s
+}
+
+/// One reliability table: a row per group.
+fn table(s: &mut String, head: &str, rows: &[Reliability]) {
+    header(
+        s,
+        &[head, "n", "α", "95% interval", "std α", ""],
+        &[-24, 9, 9, 20, 9, 6],
+    );
+    for r in rows {
+        let label = match (&r.cohort, &r.wave) {
+            (Some(c), Some(w)) => format!("cohort {c}, wave {w}"),
+            (Some(c), None) => format!("cohort {c}"),
+            (None, Some(w)) => format!("wave {w}"),
+            (None, None) => "all".into(),
+        };
+        let _ = writeln!(
+            s,
+            "  {label:<22}{:>9}{:>9.3}{:>20}{:>9.3}{}",
+            thousands(r.n),
+            r.alpha,
+            format!("[{:.3}, {:.3}]", r.alpha_lower, r.alpha_upper),
+            r.alpha_standardized,
+            if r.alpha < ALPHA_FLAG { "   low" } else { "" }
+        );
+    }
+}
+
+/// The items over every row.
+fn items_block(s: &mut String, r: &Reliability) {
+    header(
+        s,
+        &["Items (all rows)", "mean", "SD", "missing", "item-rest", "α if deleted"],
+        &[-24, 9, 9, 10, 11, 14],
+    );
+    for i in &r.items {
+        let _ = writeln!(
+            s,
+            "  {:<22}{:>9.3}{:>9.3}{:>9.1}%{:>11.3}{:>14.3}",
+            i.item,
+            i.mean,
+            i.sd,
+            100.0 * i.missing,
+            i.item_rest,
+            i.alpha_if_deleted
+        );
+    }
+}

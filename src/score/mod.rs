@@ -1,0 +1,418 @@
+//! From item responses to scale scores: reverse keying, a mean or prorated
+//! sum over the answered items, and the scale's reliability per wave, per
+//! cohort and per cohort × wave.
+//!
+//! [`ItemInput::read`] reads the id, wave, optional cohort, pass-through
+//! columns and the items; [`score`] takes it with validated
+//! [`ScoreOptions`] and returns a [`ScoreReport`].
+
+pub mod reliability;
+
+use std::path::Path;
+
+use serde::Serialize;
+
+use crate::data::{DataSummary, LabelledTable, ReadOptions, label_order, labelled_table};
+use crate::error::{Error, Result};
+use crate::warning::{Warning, WarningCode};
+
+pub use reliability::{ItemStats, Reliability};
+
+/// α below this is flagged (common practice, not a law).
+pub const ALPHA_FLAG: f64 = 0.70;
+
+/// The score of a respondent.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ScoreRule {
+    /// The mean of the answered items.
+    Mean,
+    /// The prorated sum: the mean of the answered items × the number of items.
+    Sum,
+}
+
+/// The columns a scoring reads, by role.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct ItemColumns {
+    /// The participant id.
+    pub id: String,
+    /// The wave.
+    pub wave: String,
+    /// The cohort, when given.
+    pub cohort: Option<String>,
+    /// Columns copied to the scores (for example age).
+    pub pass: Vec<String>,
+    /// The items, in order.
+    pub items: Vec<String>,
+}
+
+/// Expand an item list: comma-separated names, each of which may be a range
+/// `q1..q12` (a common prefix and whole numbers).
+///
+/// # Errors
+/// [`Error::Spec`] for a range whose ends do not share a prefix or run down.
+pub fn expand_items(list: &str) -> Result<Vec<String>> {
+    let bad = |m: String| Error::Spec {
+        parameter: "items".into(),
+        message: m,
+    };
+    let mut out = Vec::new();
+    for part in list.split(',').map(str::trim).filter(|p| !p.is_empty()) {
+        let Some((a, b)) = part.split_once("..") else {
+            out.push(part.to_string());
+            continue;
+        };
+        let split = |s: &str| {
+            let digits = s.len() - s.trim_end_matches(|c: char| c.is_ascii_digit()).len();
+            let (p, n) = s.split_at(s.len() - digits);
+            (p.to_string(), n.parse::<usize>().ok())
+        };
+        match (split(a), split(b)) {
+            ((pa, Some(x)), (pb, Some(y))) if pa == pb && x <= y => out.extend((x..=y).map(|i| format!("{pa}{i}"))),
+            _ => return Err(bad(format!("'{part}' is not a range like q1..q12"))),
+        }
+    }
+    Ok(out)
+}
+
+/// Settings of a scoring, validated by [`ScoreOptions::new`].
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ScoreOptions {
+    /// Reverse-keyed items (x → min + max − x).
+    pub reverse: Vec<String>,
+    /// The lowest legal response.
+    pub scale_min: f64,
+    /// The highest legal response.
+    pub scale_max: f64,
+    /// Mean or prorated sum.
+    pub rule: ScoreRule,
+    /// A score needs at least this many answered items.
+    pub min_answered: usize,
+}
+
+impl ScoreOptions {
+    /// Validated settings.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] for a scale whose minimum is not below its maximum,
+    /// or `min_answered` of zero.
+    pub fn new(
+        reverse: Vec<String>,
+        scale_min: f64,
+        scale_max: f64,
+        rule: ScoreRule,
+        min_answered: usize,
+    ) -> Result<ScoreOptions> {
+        let o = ScoreOptions {
+            reverse,
+            scale_min,
+            scale_max,
+            rule,
+            min_answered,
+        };
+        o.validate(None)?;
+        Ok(o)
+    }
+
+    fn validate(&self, items: Option<&[String]>) -> Result<()> {
+        let spec = |parameter: &str, message: String| Error::Spec {
+            parameter: parameter.into(),
+            message,
+        };
+        if !(self.scale_min.is_finite() && self.scale_max.is_finite() && self.scale_min < self.scale_max) {
+            return Err(spec(
+                "scale_min",
+                format!(
+                    "the scale runs from {} to {}; the minimum must be below the maximum",
+                    self.scale_min, self.scale_max
+                ),
+            ));
+        }
+        if self.min_answered == 0 {
+            return Err(spec("min_answered", "a score needs at least one answered item".into()));
+        }
+        if let Some(items) = items {
+            if items.len() < 3 {
+                return Err(spec(
+                    "items",
+                    format!("{} item(s): a scale with reliability needs at least 3", items.len()),
+                ));
+            }
+            if let Some(r) = self.reverse.iter().find(|r| !items.contains(r)) {
+                return Err(spec(
+                    "reverse",
+                    format!("'{r}' is not one of the items ({})", items.join(", ")),
+                ));
+            }
+            if self.min_answered > items.len() {
+                return Err(spec(
+                    "min_answered",
+                    format!(
+                        "{} answered items asked for, but the scale has {}",
+                        self.min_answered,
+                        items.len()
+                    ),
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    /// Integer responses are required when both ends of the scale are whole.
+    fn integers(&self) -> bool {
+        self.scale_min.fract() == 0.0 && self.scale_max.fract() == 0.0
+    }
+}
+
+/// Item responses with their id, wave, cohort and pass-through columns.
+#[derive(Debug, Clone)]
+pub struct ItemInput {
+    /// The columns read.
+    pub columns: ItemColumns,
+    /// The table: labels id, wave, [cohort], pass...; numbers: the items.
+    pub table: LabelledTable,
+}
+
+impl ItemInput {
+    /// Read the columns of `columns` from a file, keeping blank items.
+    ///
+    /// # Errors
+    /// Errors of reading the file; [`Error::Data`] for a row without an id
+    /// or a wave.
+    pub fn read(path: &Path, columns: &ItemColumns, read: ReadOptions) -> Result<ItemInput> {
+        let mut labels: Vec<(&str, &str)> = vec![("id", &columns.id), ("wave", &columns.wave)];
+        if let Some(c) = &columns.cohort {
+            labels.push(("cohort", c));
+        }
+        labels.extend(columns.pass.iter().map(|p| ("pass-through", p.as_str())));
+        let items: Vec<(&str, &str)> = columns.items.iter().map(|i| ("items", i.as_str())).collect();
+        let table = labelled_table(path, &labels, &items, read)?;
+        for (k, name) in [(0, "id"), (1, "wave")] {
+            if let Some(r) = table.labels[k].iter().position(Option::is_none) {
+                return Err(Error::Data {
+                    path: path.to_path_buf(),
+                    message: format!("data row {}: the {name} is blank; every row needs one", r + 1),
+                });
+            }
+        }
+        Ok(ItemInput {
+            columns: columns.clone(),
+            table,
+        })
+    }
+
+    fn label(&self, column: usize, r: usize) -> &str {
+        self.table.labels[column][r].as_deref().unwrap_or("")
+    }
+}
+
+/// One row of `scores.csv`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ScoreRow {
+    /// Id, wave, [cohort], pass-through values, as read.
+    pub labels: Vec<String>,
+    /// The score (NaN: too few items answered).
+    pub score: f64,
+    /// Items answered.
+    pub n_answered: usize,
+}
+
+/// The scoring report, with stable JSON keys.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ScoreReport {
+    /// What was read.
+    pub data: DataSummary,
+    /// The settings.
+    pub options: ScoreOptions,
+    /// The items, in order.
+    pub items: Vec<String>,
+    /// Warnings.
+    pub warnings: Vec<Warning>,
+    /// Their codes.
+    pub warning_codes: Vec<WarningCode>,
+    /// Rows scored.
+    pub n_scored: usize,
+    /// Rows left without a score: fewer than `min_answered` items answered.
+    pub n_unscored: usize,
+    /// Every row (listwise on the items for α).
+    pub overall: Reliability,
+    /// Per wave.
+    pub per_wave: Vec<Reliability>,
+    /// Per cohort (when a cohort column is given).
+    pub per_cohort: Vec<Reliability>,
+    /// Per cohort × wave.
+    pub per_cohort_wave: Vec<Reliability>,
+    /// The scores, for `scores.csv`.
+    #[serde(skip)]
+    pub scores: Vec<ScoreRow>,
+    /// The header of `scores.csv`.
+    #[serde(skip)]
+    pub score_header: Vec<String>,
+}
+
+/// Check and key every response; the keyed responses, row-major.
+fn keyed(input: &ItemInput, options: &ScoreOptions) -> Result<Vec<f64>> {
+    let k = input.columns.items.len();
+    let (lo, hi) = (options.scale_min, options.scale_max);
+    let mut out = Vec::with_capacity(input.table.n_rows * k);
+    for r in 0..input.table.n_rows {
+        for (j, item) in input.columns.items.iter().enumerate() {
+            let x = input.table.numbers[j][r];
+            if x.is_finite() && (x < lo || x > hi || (options.integers() && x.fract() != 0.0)) {
+                return Err(Error::BadValue {
+                    path: input.table.source.clone(),
+                    column: item.clone(),
+                    row: r + 1,
+                    value: x.to_string(),
+                    advice: format!(
+                        "is not a legal response: the scale takes {} from {lo} to {hi}; correct the value or the scale \
+                         (`scale_min`, `scale_max`)",
+                        if options.integers() { "whole numbers" } else { "values" }
+                    ),
+                });
+            }
+            out.push(if options.reverse.contains(item) { lo + hi - x } else { x });
+        }
+    }
+    Ok(out)
+}
+
+/// Score every row and measure the scale's reliability.
+///
+/// # Errors
+/// [`Error::Spec`] for options that do not fit the items (fewer than 3, an
+/// unknown reversed item); [`Error::BadValue`] for a response outside the
+/// scale.
+pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
+    let items = &input.columns.items;
+    options.validate(Some(items))?;
+    let k = items.len();
+    let y = keyed(input, options)?;
+    let n = input.table.n_rows;
+    let n_labels = input.table.labels.len();
+    let mut scores = Vec::with_capacity(n);
+    let mut unscored = 0;
+    for r in 0..n {
+        let row = &y[r * k..(r + 1) * k];
+        let answered: Vec<f64> = row.iter().copied().filter(|v| v.is_finite()).collect();
+        let score = if answered.len() >= options.min_answered {
+            let mean = answered.iter().sum::<f64>() / answered.len() as f64;
+            match options.rule {
+                ScoreRule::Mean => mean,
+                ScoreRule::Sum => mean * k as f64,
+            }
+        } else {
+            unscored += 1;
+            f64::NAN
+        };
+        scores.push(ScoreRow {
+            labels: (0..n_labels).map(|c| input.label(c, r).to_string()).collect(),
+            score,
+            n_answered: answered.len(),
+        });
+    }
+    let cohort_col = input.columns.cohort.as_ref().map(|_| 2);
+    // Rows by label, in label order.
+    let group = |key: &dyn Fn(usize) -> String| -> Vec<(String, Vec<&[f64]>)> {
+        let mut index: std::collections::HashMap<String, usize> = std::collections::HashMap::new();
+        let mut members: Vec<Vec<usize>> = Vec::new();
+        for r in 0..n {
+            let i = *index.entry(key(r)).or_insert_with(|| {
+                members.push(Vec::new());
+                members.len() - 1
+            });
+            members[i].push(r);
+        }
+        let mut labels: Vec<(String, usize)> = index.into_iter().collect();
+        labels.sort_by(|a, b| label_order(&a.0, &b.0));
+        labels
+            .into_iter()
+            .map(|(l, i)| (l, members[i].iter().map(|&r| &y[r * k..(r + 1) * k]).collect()))
+            .collect()
+    };
+    let wave_of = |r: usize| input.label(1, r).to_string();
+    let per_wave: Vec<Reliability> = group(&wave_of)
+        .into_iter()
+        .map(|(w, rows)| reliability::reliability(items, &rows, Some(w), None))
+        .collect();
+    let (per_cohort, per_cohort_wave) = match cohort_col {
+        Some(c) => {
+            let cohort_of = |r: usize| input.label(c, r).to_string();
+            let pair_of = |r: usize| format!("{}\u{1f}{}", input.label(c, r), input.label(1, r));
+            (
+                group(&cohort_of)
+                    .into_iter()
+                    .map(|(g, rows)| reliability::reliability(items, &rows, None, Some(g)))
+                    .collect(),
+                group(&pair_of)
+                    .into_iter()
+                    .map(|(key, rows)| {
+                        let (g, w) = key.split_once('\u{1f}').unwrap_or((&key, ""));
+                        reliability::reliability(items, &rows, Some(w.to_string()), Some(g.to_string()))
+                    })
+                    .collect(),
+            )
+        }
+        None => (Vec::new(), Vec::new()),
+    };
+    let all: Vec<&[f64]> = (0..n).map(|r| &y[r * k..(r + 1) * k]).collect();
+    let overall = reliability::reliability(items, &all, None, None);
+    let mut warnings = Vec::new();
+    for rel in &per_wave {
+        if !rel.constant_items.is_empty() {
+            warnings.push(Warning::new(
+                WarningCode::ConstantItem,
+                format!(
+                    "at wave {}, item(s) {} have no variance among the respondents used; they add nothing to α and \
+                     their item-rest correlations are not defined",
+                    rel.wave.as_deref().unwrap_or(""),
+                    rel.constant_items.join(", ")
+                ),
+            ));
+        }
+    }
+    let mut score_header = vec![input.columns.id.clone(), input.columns.wave.clone()];
+    score_header.extend(input.columns.cohort.iter().cloned());
+    score_header.extend(input.columns.pass.iter().cloned());
+    score_header.extend(["score".to_string(), "n_answered".to_string()]);
+    Ok(ScoreReport {
+        data: summary(input),
+        options: options.clone(),
+        items: items.clone(),
+        warning_codes: crate::warning::codes(&warnings),
+        warnings,
+        n_scored: n - unscored,
+        n_unscored: unscored,
+        overall,
+        per_wave,
+        per_cohort,
+        per_cohort_wave,
+        scores,
+        score_header,
+    })
+}
+
+fn summary(input: &ItemInput) -> DataSummary {
+    let mut ids: Vec<&str> = input.table.labels[0].iter().flatten().map(String::as_str).collect();
+    ids.sort_unstable();
+    ids.dedup();
+    let c = &input.columns;
+    let mut roles = std::collections::BTreeMap::new();
+    roles.insert("id".to_string(), c.id.clone());
+    roles.insert("wave".to_string(), c.wave.clone());
+    if let Some(g) = &c.cohort {
+        roles.insert("cohort".to_string(), g.clone());
+    }
+    roles.insert("items".to_string(), c.items.join(","));
+    DataSummary {
+        file: input.table.source.display().to_string(),
+        n_rows_read: input.table.n_rows,
+        n_obs: input.table.n_rows,
+        n_participants: Some(ids.len()),
+        age_min: f64::NAN,
+        age_max: f64::NAN,
+        outcome: "score".into(),
+        roles,
+        ..Default::default()
+    }
+}

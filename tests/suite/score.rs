@@ -1,0 +1,165 @@
+//! Scoring and reliability against pingouin 0.7.0's cronbach_alpha and
+//! Feldt's interval with scipy (tests/reference/score_reference.py,
+//! score.json), on the SAPA Agreeableness items (Revelle, Wilt & Rosenthal
+//! 2010) and invented congeneric items; closed forms.
+
+use braid::score::{ItemColumns, ItemInput, Reliability, ScoreOptions, ScoreReport, ScoreRule, expand_items, score};
+
+use crate::common::{data_dir, reference_json, temp_dir};
+use crate::tolerance::ALPHA_ABS;
+
+fn run(file: &str, columns: ItemColumns, options: &ScoreOptions) -> ScoreReport {
+    let input = ItemInput::read(&data_dir().join(file), &columns, Default::default()).unwrap();
+    score(&input, options).unwrap()
+}
+
+fn bfi() -> ScoreReport {
+    let columns = ItemColumns {
+        id: "id".into(),
+        wave: "wave".into(),
+        cohort: Some("gender".into()),
+        pass: vec!["age".into()],
+        items: expand_items("A1..A5").unwrap(),
+    };
+    let options = ScoreOptions::new(vec!["A1".into()], 1.0, 6.0, ScoreRule::Mean, 4).unwrap();
+    run("bfi_agreeableness.csv", columns, &options)
+}
+
+fn check(r: &Reliability, want: &serde_json::Value, feldt_key: &str, ci_tolerance: f64, what: &str) {
+    assert_eq!(r.n as u64, want["n"].as_u64().unwrap(), "{what}: respondents used");
+    let alpha = want["alpha"].as_f64().unwrap();
+    assert!(
+        (r.alpha - alpha).abs() < ALPHA_ABS,
+        "{what}: α {} against {alpha}",
+        r.alpha
+    );
+    let ci = &want[feldt_key];
+    for (got, w) in [(r.alpha_lower, &ci[0]), (r.alpha_upper, &ci[1])] {
+        let w = w.as_f64().unwrap();
+        assert!(
+            (got - w).abs() <= ci_tolerance,
+            "{what}: interval end {got} against {w}"
+        );
+    }
+}
+
+// Outside check: α to 1e-9 against pingouin on the published items (with
+// blanks, listwise) and on complete congeneric items. Feldt's interval: on
+// the items with blanks against Feldt's formula with scipy's F quantiles on
+// the respondents used (pingouin's own interval there takes n before
+// listwise deletion); on complete items against pingouin's interval, which
+// it rounds to 3 decimals.
+#[test]
+fn alpha_and_feldt_interval_match_the_reference() {
+    let want = reference_json("score.json");
+    let r = bfi();
+    check(&r.per_wave[0], &want["bfi"]["all"], "feldt", ALPHA_ABS, "bfi");
+    for c in &r.per_cohort {
+        let key = format!("gender {}", c.cohort.as_deref().unwrap());
+        check(c, &want["bfi"][&key], "feldt", ALPHA_ABS, &key);
+    }
+    let columns = ItemColumns {
+        id: "pupil".into(),
+        wave: "wave".into(),
+        cohort: Some("cohort".into()),
+        pass: vec!["age".into()],
+        items: expand_items("q1..q6").unwrap(),
+    };
+    let options = ScoreOptions::new(Vec::new(), 0.0, 4.0, ScoreRule::Sum, 6).unwrap();
+    let r = run("congeneric_items.csv", columns, &options);
+    for w in &r.per_wave {
+        let key = format!("wave {}", w.wave.as_deref().unwrap());
+        check(w, &want["congeneric"][&key], "ci_pingouin", 5e-4 + 1e-12, &key);
+        check(w, &want["congeneric"][&key], "feldt", ALPHA_ABS, &key);
+    }
+    assert_eq!(r.per_cohort_wave.len(), 6);
+}
+
+// Closed forms: standardized α is k·r̄/(1 + (k − 1)·r̄) with r̄ the mean
+// inter-item correlation (Cronbach 1951), computed here from the keyed
+// responses directly; reversing twice is the identity; a prorated sum with
+// no blank item is the plain sum.
+#[test]
+fn closed_forms_of_scoring() {
+    let r = bfi();
+    let text = std::fs::read_to_string(data_dir().join("bfi_agreeableness.csv")).unwrap();
+    let rows: Vec<Vec<f64>> = text
+        .lines()
+        .skip(1)
+        .map(|l| {
+            l.split(',')
+                .skip(4)
+                .map(|v| v.parse::<f64>().unwrap_or(f64::NAN))
+                .collect::<Vec<f64>>()
+        })
+        .filter(|r| r.iter().all(|v| v.is_finite()))
+        .map(|mut r| {
+            r[0] = 7.0 - r[0];
+            r
+        })
+        .collect();
+    let k = 5;
+    let n = rows.len() as f64;
+    let mean: Vec<f64> = (0..k).map(|j| rows.iter().map(|r| r[j]).sum::<f64>() / n).collect();
+    let cov = |a: usize, b: usize| rows.iter().map(|r| (r[a] - mean[a]) * (r[b] - mean[b])).sum::<f64>();
+    let mut r_sum = 0.0;
+    for a in 0..k {
+        for b in a + 1..k {
+            r_sum += cov(a, b) / (cov(a, a) * cov(b, b)).sqrt();
+        }
+    }
+    let r_bar = r_sum / 10.0;
+    let standardized = 5.0 * r_bar / (1.0 + 4.0 * r_bar);
+    assert!((r.per_wave[0].alpha_standardized - standardized).abs() < ALPHA_ABS);
+
+    // Reverse keying twice: a file whose A1 is already reversed, reversed again.
+    let flipped: String = text
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 0 {
+                return format!("{l}\n");
+            }
+            let mut f: Vec<String> = l.split(',').map(str::to_string).collect();
+            if let Ok(v) = f[4].parse::<f64>() {
+                f[4] = format!("{}", 7.0 - v);
+            }
+            format!("{}\n", f.join(","))
+        })
+        .collect();
+    let path = temp_dir("score_flip").join("flipped.csv");
+    std::fs::write(&path, flipped).unwrap();
+    let columns = ItemColumns {
+        id: "id".into(),
+        wave: "wave".into(),
+        items: expand_items("A1..A5").unwrap(),
+        ..Default::default()
+    };
+    let plain = ScoreOptions::new(Vec::new(), 1.0, 6.0, ScoreRule::Mean, 4).unwrap();
+    let twice = score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &plain).unwrap();
+    for (a, b) in r.scores.iter().zip(&twice.scores) {
+        assert!(a.score == b.score || (a.score.is_nan() && b.score.is_nan()));
+    }
+
+    // Prorating with every item answered is the plain sum.
+    let columns = ItemColumns {
+        id: "pupil".into(),
+        wave: "wave".into(),
+        items: expand_items("q1..q6").unwrap(),
+        ..Default::default()
+    };
+    let sum = ScoreOptions::new(Vec::new(), 0.0, 4.0, ScoreRule::Sum, 6).unwrap();
+    let r = run("congeneric_items.csv", columns, &sum);
+    let text = std::fs::read_to_string(data_dir().join("congeneric_items.csv")).unwrap();
+    for (line, row) in text.lines().skip(1).zip(&r.scores) {
+        let plain: f64 = line.split(',').skip(4).map(|v| v.parse::<f64>().unwrap()).sum();
+        assert!((row.score - plain).abs() < 1e-12 && row.n_answered == 6);
+    }
+}
+
+#[test]
+fn item_lists_expand_ranges_and_refuse_bad_ones() {
+    assert_eq!(expand_items("q1..q3, x").unwrap(), vec!["q1", "q2", "q3", "x"]);
+    assert!(expand_items("q3..q1").is_err());
+    assert!(expand_items("a1..b3").is_err());
+}
