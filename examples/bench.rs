@@ -2,7 +2,7 @@
 //!
 //! ```text
 //! cargo build --release
-//! cargo run --release --example bench -- [small|large|inspect|converge|apc|anova|all] [WORK_DIR]
+//! cargo run --release --example bench -- [small|large|inspect|converge|apc|anova|score|all] [WORK_DIR]
 //! ```
 //!
 //! - `small`: a 3,000-participant three-wave file; REML, quadratic age,
@@ -25,6 +25,8 @@
 //!   beside it, both by least squares), and `--hierarchical`
 //!   (crossed random period and cohort intercepts) on 30,000 records.
 //!
+//! - `score`: `braid score` writing scores.csv and the reliability per wave,
+//!   cohort and cohort × wave, on 1,000,000 rows × 20 items.
 //! - `anova`: `braid anova` with JSON output on 100,000 participants × 4
 //!   waves (complete; the demo's five cohorts).
 //!
@@ -389,6 +391,65 @@ fn anova(work: &Path) {
     println!("anova: runs {walls:.2?} s, median {:.2} s", median(walls.clone()));
 }
 
+/// `braid score` on 1,000,000 rows × 20 items (250,000 participants, four
+/// waves, two cohorts, about 1% blank responses), three runs.
+fn score(work: &Path) {
+    let file = work.join("score_1m.csv");
+    if !file.exists() {
+        let mut rng = braid::simulate::Rng::new(2027);
+        let mut s = String::from("pupil,cohort,wave");
+        for i in 1..=20 {
+            s.push_str(&format!(",q{i}"));
+        }
+        s.push('\n');
+        for p in 0..250_000 {
+            let trait_ = rng.normal();
+            for w in 1..=4 {
+                s.push_str(&format!("P{p},C{},{w}", p % 2));
+                for _ in 0..20 {
+                    if rng.uniform() < 0.01 {
+                        s.push(',');
+                    } else {
+                        let x = (2.0 + 0.8 * trait_ + 0.7 * rng.normal()).round().clamp(0.0, 4.0);
+                        s.push_str(&format!(",{x}"));
+                    }
+                }
+                s.push('\n');
+            }
+        }
+        std::fs::write(&file, s).expect("write the item file");
+    }
+    let walls: Vec<f64> = (0..3)
+        .map(|_| {
+            let mut cmd = Command::new(braid_bin());
+            cmd.arg("score").arg(&file);
+            cmd.args([
+                "--id", "pupil", "--wave", "wave", "--cohort", "cohort", "--items", "q1..q20",
+            ]);
+            cmd.args([
+                "--reverse",
+                "q3,q7",
+                "--scale-min",
+                "0",
+                "--scale-max",
+                "4",
+                "--quiet",
+                "--force",
+                "--out",
+            ]);
+            cmd.arg(work.join("score_out"));
+            let t0 = Instant::now();
+            let o = cmd.output().expect("run braid score");
+            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+            t0.elapsed().as_secs_f64()
+        })
+        .collect();
+    println!(
+        "score: 1,000,000 rows × 20 items, runs {walls:.2?} s, median {:.2} s",
+        median(walls.clone())
+    );
+}
+
 /// `braid converge` on 30,000 participants, three runs each without and
 /// with the school term.
 fn converge(work: &Path) {
@@ -472,6 +533,9 @@ fn main() {
     }
     if which == "converge" || which == "all" {
         converge(&work);
+    }
+    if which == "score" || which == "all" {
+        score(&work);
     }
     if which == "anova" || which == "all" {
         anova(&work);

@@ -119,7 +119,7 @@ impl Render for ScoreReport {
         let mut s = self.score_header.join(",");
         s.push('\n');
         for row in &self.scores {
-            s.push_str(&row.labels.join(","));
+            s.push_str(&row.labels);
             if row.score.is_finite() {
                 s.push_str(&format!(",{},{}\n", row.score, row.n_answered));
             } else {

@@ -209,8 +209,8 @@ impl ItemInput {
 /// One row of `scores.csv`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ScoreRow {
-    /// Id, wave, [cohort], pass-through values, as read.
-    pub labels: Vec<String>,
+    /// Id, wave, [cohort], pass-through values, as read, comma-separated.
+    pub labels: String,
     /// The score (NaN: too few items answered).
     pub score: f64,
     /// Items answered.
@@ -255,10 +255,17 @@ fn keyed(input: &ItemInput, options: &ScoreOptions) -> Result<Vec<f64>> {
     let k = input.columns.items.len();
     let (lo, hi) = (options.scale_min, options.scale_max);
     let mut out = Vec::with_capacity(input.table.n_rows * k);
+    let reversed: Vec<bool> = input
+        .columns
+        .items
+        .iter()
+        .map(|i| options.reverse.contains(i))
+        .collect();
+    let integers = options.integers();
     for r in 0..input.table.n_rows {
         for (j, item) in input.columns.items.iter().enumerate() {
             let x = input.table.numbers[j][r];
-            if x.is_finite() && (x < lo || x > hi || (options.integers() && x.fract() != 0.0)) {
+            if x.is_finite() && (x < lo || x > hi || (integers && x.fract() != 0.0)) {
                 return Err(Error::BadValue {
                     path: input.table.source.clone(),
                     column: item.clone(),
@@ -271,7 +278,7 @@ fn keyed(input: &ItemInput, options: &ScoreOptions) -> Result<Vec<f64>> {
                     ),
                 });
             }
-            out.push(if options.reverse.contains(item) { lo + hi - x } else { x });
+            out.push(if reversed[j] { lo + hi - x } else { x });
         }
     }
     Ok(out)
@@ -306,49 +313,76 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
             f64::NAN
         };
         scores.push(ScoreRow {
-            labels: (0..n_labels).map(|c| input.label(c, r).to_string()).collect(),
+            labels: {
+                let mut l = String::new();
+                for c in 0..n_labels {
+                    if c > 0 {
+                        l.push(',');
+                    }
+                    l.push_str(input.label(c, r));
+                }
+                l
+            },
             score,
             n_answered: answered.len(),
         });
     }
     let cohort_col = input.columns.cohort.as_ref().map(|_| 2);
-    // Rows by label, in label order.
-    let group = |key: &dyn Fn(usize) -> String| -> Vec<(String, Vec<&[f64]>)> {
-        let mut index: std::collections::HashMap<String, usize> = std::collections::HashMap::new();
-        let mut members: Vec<Vec<usize>> = Vec::new();
-        for r in 0..n {
-            let i = *index.entry(key(r)).or_insert_with(|| {
-                members.push(Vec::new());
-                members.len() - 1
-            });
-            members[i].push(r);
+    // Each row's wave and cohort as an index into its labels, in label order.
+    let codes = |column: usize| -> (Vec<String>, Vec<usize>) {
+        let mut index: std::collections::HashMap<&str, usize> = std::collections::HashMap::new();
+        let raw: Vec<usize> = (0..n)
+            .map(|r| {
+                let len = index.len();
+                *index.entry(input.label(column, r)).or_insert(len)
+            })
+            .collect();
+        let mut labels: Vec<(&str, usize)> = index.into_iter().collect();
+        labels.sort_by(|a, b| label_order(a.0, b.0));
+        let mut rank = vec![0; labels.len()];
+        for (new, (_, old)) in labels.iter().enumerate() {
+            rank[*old] = new;
         }
-        let mut labels: Vec<(String, usize)> = index.into_iter().collect();
-        labels.sort_by(|a, b| label_order(&a.0, &b.0));
-        labels
-            .into_iter()
-            .map(|(l, i)| (l, members[i].iter().map(|&r| &y[r * k..(r + 1) * k]).collect()))
-            .collect()
+        (
+            labels.into_iter().map(|(l, _)| l.to_string()).collect(),
+            raw.into_iter().map(|c| rank[c]).collect(),
+        )
     };
-    let wave_of = |r: usize| input.label(1, r).to_string();
-    let per_wave: Vec<Reliability> = group(&wave_of)
+    // Rows per group code.
+    let members = |code: &dyn Fn(usize) -> usize, groups: usize| -> Vec<Vec<&[f64]>> {
+        let mut m: Vec<Vec<&[f64]>> = vec![Vec::new(); groups];
+        for r in 0..n {
+            m[code(r)].push(&y[r * k..(r + 1) * k]);
+        }
+        m
+    };
+    let (waves, wave_code) = codes(1);
+    let per_wave: Vec<Reliability> = members(&|r| wave_code[r], waves.len())
         .into_iter()
-        .map(|(w, rows)| reliability::reliability(items, &rows, Some(w), None))
+        .zip(&waves)
+        .map(|(rows, w)| reliability::reliability(items, &rows, Some(w.clone()), None))
         .collect();
     let (per_cohort, per_cohort_wave) = match cohort_col {
         Some(c) => {
-            let cohort_of = |r: usize| input.label(c, r).to_string();
-            let pair_of = |r: usize| format!("{}\u{1f}{}", input.label(c, r), input.label(1, r));
+            let (cohorts, cohort_code) = codes(c);
+            let by_cohort = members(&|r| cohort_code[r], cohorts.len());
+            let by_pair = members(
+                &|r| cohort_code[r] * waves.len() + wave_code[r],
+                cohorts.len() * waves.len(),
+            );
             (
-                group(&cohort_of)
+                by_cohort
                     .into_iter()
-                    .map(|(g, rows)| reliability::reliability(items, &rows, None, Some(g)))
+                    .zip(&cohorts)
+                    .map(|(rows, g)| reliability::reliability(items, &rows, None, Some(g.clone())))
                     .collect(),
-                group(&pair_of)
+                by_pair
                     .into_iter()
-                    .map(|(key, rows)| {
-                        let (g, w) = key.split_once('\u{1f}').unwrap_or((&key, ""));
-                        reliability::reliability(items, &rows, Some(w.to_string()), Some(g.to_string()))
+                    .enumerate()
+                    .filter(|(_, rows)| !rows.is_empty())
+                    .map(|(i, rows)| {
+                        let (g, w) = (&cohorts[i / waves.len()], &waves[i % waves.len()]);
+                        reliability::reliability(items, &rows, Some(w.clone()), Some(g.clone()))
                     })
                     .collect(),
             )

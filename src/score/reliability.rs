@@ -49,7 +49,7 @@ pub struct Reliability {
 }
 
 /// Sample covariance matrix (divisor n − 1) of complete rows.
-fn covariance(rows: &[Vec<f64>], k: usize) -> (Vec<f64>, Vec<f64>) {
+fn covariance(rows: &[&[f64]], k: usize) -> (Vec<f64>, Vec<f64>) {
     let n = rows.len() as f64;
     let mean: Vec<f64> = (0..k).map(|j| rows.iter().map(|r| r[j]).sum::<f64>() / n).collect();
     let mut c = vec![0.0; k * k];
@@ -99,11 +99,20 @@ pub fn feldt(alpha: f64, n: usize, k: usize) -> (f64, f64) {
 /// for a blank item) of the items `names`.
 pub fn reliability(names: &[String], rows: &[&[f64]], wave: Option<String>, cohort: Option<String>) -> Reliability {
     let k = names.len();
-    let complete: Vec<Vec<f64>> = rows
-        .iter()
-        .filter(|r| r.iter().all(|v| v.is_finite()))
-        .map(|r| r.to_vec())
-        .collect();
+    let mut blanks = vec![0usize; k];
+    let mut complete: Vec<&[f64]> = Vec::with_capacity(rows.len());
+    for r in rows {
+        let mut whole = true;
+        for (j, v) in r.iter().enumerate() {
+            if !v.is_finite() {
+                blanks[j] += 1;
+                whole = false;
+            }
+        }
+        if whole {
+            complete.push(r);
+        }
+    }
     let n = complete.len();
     let all: Vec<usize> = (0..k).collect();
     let (mean, c) = if n >= 2 {
@@ -138,7 +147,7 @@ pub fn reliability(names: &[String], rows: &[&[f64]], wave: Option<String>, coho
                 item: names[j].clone(),
                 mean: mean[j],
                 sd: c[j * k + j].sqrt(),
-                missing: rows.iter().filter(|r| !r[j].is_finite()).count() as f64 / rows.len().max(1) as f64,
+                missing: blanks[j] as f64 / rows.len().max(1) as f64,
                 item_rest: cov_rest / (c[j * k + j] * rest_var).sqrt(),
                 alpha_if_deleted: if k > 2 { alpha_of(&c, k, &rest) } else { f64::NAN },
             }
