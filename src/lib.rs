@@ -125,6 +125,29 @@
 //! assert!(AnovaOptions::new(1.5, Default::default(), Default::default()).is_err());
 //! ```
 //!
+//! **Score:** [`score::score`] keys and scores item responses and reports
+//! Cronbach's α with Feldt's interval per wave, cohort and cohort × wave.
+//!
+//! ```
+//! use braid::score::{expand_items, score, ItemColumns, ItemInput, ScoreOptions, ScoreRule};
+//! // Invented congeneric items, kept in tests/data.
+//! let file = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data/congeneric_items.csv");
+//! let columns = ItemColumns {
+//!     id: "pupil".into(),
+//!     wave: "wave".into(),
+//!     cohort: Some("cohort".into()),
+//!     items: expand_items("q1..q6").unwrap(),
+//!     ..Default::default()
+//! };
+//! let options = ScoreOptions::new(vec!["q2".into()], 0.0, 4.0, ScoreRule::Mean, 5).unwrap();
+//! let report = score(&ItemInput::read(&file, &columns, Default::default()).unwrap(), &options).unwrap();
+//! assert_eq!(report.per_wave.len(), 3);
+//! // A reversed item that is not an item is refused, naming the option.
+//! let bad = ScoreOptions::new(vec!["q9".into()], 0.0, 4.0, ScoreRule::Mean, 5).unwrap();
+//! let input = ItemInput::read(&file, &columns, Default::default()).unwrap();
+//! assert!(score(&input, &bad).unwrap_err().to_string().starts_with("reverse:"));
+//! ```
+//!
 //! **Publish:** [`report`] renders every report as text, JSON, CSV and
 //! figures with one shared look.
 

@@ -82,7 +82,12 @@ fn assert_matches(name: &str, expected: &str, got: &str) {
 }
 
 fn screen(args: &[&str], demo: &Path) -> String {
-    let out = braid().args(args).output().unwrap();
+    // Run from the repository root, so that test files are named relatively.
+    let out = braid()
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .args(args)
+        .output()
+        .unwrap();
     assert!(
         out.status.success(),
         "{args:?}: {}",
@@ -119,6 +124,25 @@ fn every_text_screen_of_the_demo_matches_its_snapshot() {
                 "score",
                 "--width",
                 "1",
+            ],
+        ),
+        (
+            "score",
+            vec![
+                "score",
+                "tests/data/congeneric_items.csv",
+                "--id",
+                "pupil",
+                "--wave",
+                "wave",
+                "--cohort",
+                "cohort",
+                "--items",
+                "q1..q6",
+                "--scale-min",
+                "0",
+                "--scale-max",
+                "4",
             ],
         ),
         (
