@@ -6,6 +6,7 @@
 //! columns and the items; [`score`] takes it with validated
 //! [`ScoreOptions`] and returns a [`ScoreReport`].
 
+pub mod factor;
 pub mod reliability;
 
 use std::path::Path;
@@ -16,6 +17,7 @@ use crate::data::{DataSummary, LabelledTable, ReadOptions, label_order, labelled
 use crate::error::{Error, Result};
 use crate::warning::{Warning, WarningCode};
 
+pub use factor::OneFactor;
 pub use reliability::{ItemStats, Reliability};
 
 /// α below this is flagged (common practice, not a law).

@@ -46,6 +46,10 @@ pub struct Reliability {
     pub items: Vec<ItemStats>,
     /// Items with no variance among the respondents used.
     pub constant_items: Vec<String>,
+    /// McDonald's ω_total from the one-factor model (without constant items).
+    pub omega: Option<f64>,
+    /// The one-factor ML model behind ω: loadings and fit.
+    pub one_factor: Option<super::factor::OneFactor>,
 }
 
 /// Sample covariance matrix (divisor n − 1) of complete rows.
@@ -153,7 +157,21 @@ pub fn reliability(names: &[String], rows: &[&[f64]], wave: Option<String>, coho
             }
         })
         .collect();
+    let constant_items: Vec<String> = (0..k)
+        .filter(|&j| n >= 2 && c[j * k + j] == 0.0)
+        .map(|j| names[j].clone())
+        .collect();
+    // ω from the items that vary.
+    let varying: Vec<usize> = (0..k).filter(|&j| c[j * k + j] > 0.0).collect();
+    let sub: Vec<f64> = varying
+        .iter()
+        .flat_map(|&a| varying.iter().map(move |&b| (a, b)))
+        .map(|(a, b)| c[a * k + b])
+        .collect();
+    let one_factor = super::factor::one_factor(&sub, varying.len(), n);
     Reliability {
+        omega: one_factor.as_ref().map(|f| f.omega),
+        one_factor,
         wave,
         cohort,
         n,
@@ -163,9 +181,6 @@ pub fn reliability(names: &[String], rows: &[&[f64]], wave: Option<String>, coho
         alpha_upper,
         alpha_standardized: k as f64 * r_bar / (1.0 + (k as f64 - 1.0) * r_bar),
         items,
-        constant_items: (0..k)
-            .filter(|&j| n >= 2 && c[j * k + j] == 0.0)
-            .map(|j| names[j].clone())
-            .collect(),
+        constant_items,
     }
 }

