@@ -53,7 +53,7 @@ fn log_det(m: &Mat<f64>) -> f64 {
 
 /// Fit one factor to the k × k covariance `s` of `n` respondents.
 pub fn one_factor(s: &[f64], k: usize, n: usize) -> Option<OneFactor> {
-    if k < 3 || n <= k || (0..k).any(|j| !(s[j * k + j] > 0.0)) {
+    if k < 3 || n <= k || (0..k).any(|j| s[j * k + j].is_nan() || s[j * k + j] <= 0.0) {
         return None;
     }
     let sm = Mat::from_fn(k, k, |i, j| s[i * k + j]);
