@@ -23,6 +23,12 @@ pub use reliability::{ItemStats, Reliability};
 /// α below this is flagged (common practice, not a law).
 pub const ALPHA_FLAG: f64 = 0.70;
 
+/// An item whose standardized one-factor loading moves by more than this
+/// between two waves is flagged: a screen for a change in what the item
+/// measures, chosen as a moderate change on the loading scale (common
+/// practice; not an invariance test).
+pub const LOADING_SHIFT_FLAG: f64 = 0.20;
+
 /// The score of a respondent.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "lowercase")]
@@ -208,6 +214,39 @@ impl ItemInput {
     }
 }
 
+/// An item whose loading moves across waves.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LoadingShift {
+    /// The item.
+    pub item: String,
+    /// Its standardized loading at each wave, in wave order.
+    pub loadings: Vec<f64>,
+    /// Largest minus smallest.
+    pub range: f64,
+}
+
+/// Items whose loading range over the waves exceeds the flag.
+fn loading_shifts(items: &[String], per_wave: &[Reliability]) -> Vec<LoadingShift> {
+    let fits: Vec<&OneFactor> = per_wave.iter().filter_map(|r| r.one_factor.as_ref()).collect();
+    if fits.len() < 2 || fits.iter().any(|f| f.loadings.len() != items.len()) {
+        return Vec::new();
+    }
+    items
+        .iter()
+        .enumerate()
+        .filter_map(|(j, item)| {
+            let l: Vec<f64> = fits.iter().map(|f| f.loadings[j]).collect();
+            let range =
+                l.iter().copied().fold(f64::NEG_INFINITY, f64::max) - l.iter().copied().fold(f64::INFINITY, f64::min);
+            (range > LOADING_SHIFT_FLAG).then(|| LoadingShift {
+                item: item.clone(),
+                loadings: l,
+                range,
+            })
+        })
+        .collect()
+}
+
 /// One row of `scores.csv`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ScoreRow {
@@ -244,6 +283,9 @@ pub struct ScoreReport {
     pub per_cohort: Vec<Reliability>,
     /// Per cohort × wave.
     pub per_cohort_wave: Vec<Reliability>,
+    /// Items whose standardized loading moves across waves by more than
+    /// [`LOADING_SHIFT_FLAG`] (largest minus smallest over the waves).
+    pub loading_shifts: Vec<LoadingShift>,
     /// The scores, for `scores.csv`.
     #[serde(skip)]
     pub scores: Vec<ScoreRow>,
@@ -391,6 +433,7 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
         }
         None => (Vec::new(), Vec::new()),
     };
+    let loading_shifts = loading_shifts(items, &per_wave);
     let all: Vec<&[f64]> = (0..n).map(|r| &y[r * k..(r + 1) * k]).collect();
     let overall = reliability::reliability(items, &all, None, None);
     let mut warnings = Vec::new();
@@ -423,6 +466,7 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
         per_wave,
         per_cohort,
         per_cohort_wave,
+        loading_shifts,
         scores,
         score_header,
     })

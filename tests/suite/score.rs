@@ -191,3 +191,35 @@ fn alpha_equals_omega_for_tau_equivalent_items() {
     let omega = r.omega.unwrap();
     assert!((r.alpha - omega).abs() < TAU_EQUIVALENT_ABS, "α {} ω {omega}", r.alpha);
 }
+
+// Recovery: an item whose loading drops from 0.9 to 0.1 between two waves
+// (invented, seeded) is flagged as moving; items with steady loadings are not.
+#[test]
+fn an_item_whose_loading_moves_between_waves_is_flagged() {
+    let mut rng = braid::simulate::Rng::new(77);
+    let mut text = String::from("pupil,wave,q1,q2,q3,q4\n");
+    for p in 0..2000 {
+        for wave in [1, 2] {
+            let t = rng.normal();
+            let moving = if wave == 1 { 0.9 } else { 0.1 };
+            let loads = [0.8, 0.8, 0.8, moving];
+            let row: Vec<String> = loads
+                .iter()
+                .map(|l| format!("{:.4}", 2.0 + l * t + 0.5 * rng.normal()))
+                .collect();
+            text.push_str(&format!("P{p},{wave},{}\n", row.join(",")));
+        }
+    }
+    let path = temp_dir("score_shift").join("shift.csv");
+    std::fs::write(&path, text).unwrap();
+    let columns = ItemColumns {
+        id: "pupil".into(),
+        wave: "wave".into(),
+        items: expand_items("q1..q4").unwrap(),
+        ..Default::default()
+    };
+    let options = ScoreOptions::new(Vec::new(), -10.5, 14.5, ScoreRule::Mean, 4).unwrap();
+    let r = score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &options).unwrap();
+    let moved: Vec<&str> = r.loading_shifts.iter().map(|m| m.item.as_str()).collect();
+    assert_eq!(moved, vec!["q4"]);
+}

@@ -3,7 +3,7 @@
 use std::fmt::Write;
 
 use super::{header, labelled, thousands, title, wrap};
-use crate::score::{ALPHA_FLAG, Reliability, ScoreReport, ScoreRule};
+use crate::score::{ALPHA_FLAG, LOADING_SHIFT_FLAG, Reliability, ScoreReport, ScoreRule};
 
 /// Render the scoring report of `braid score`.
 pub fn score_summary(r: &ScoreReport) -> String {
@@ -55,6 +55,7 @@ pub fn score_summary(r: &ScoreReport) -> String {
         table(&mut s, "By cohort", &r.per_cohort);
         table(&mut s, "By cohort × wave", &r.per_cohort_wave);
     }
+    loadings_block(&mut s, r);
     items_block(&mut s, &r.overall);
     let _ = writeln!(s);
     let note = format!(
@@ -94,6 +95,41 @@ fn table(s: &mut String, head: &str, rows: &[Reliability]) {
             if r.alpha < ALPHA_FLAG { "   low" } else { "" }
         );
     }
+}
+
+/// The one-factor loadings per wave side by side, and the items that move.
+fn loadings_block(s: &mut String, r: &ScoreReport) {
+    let waves: Vec<&Reliability> = r.per_wave.iter().filter(|w| w.one_factor.is_some()).collect();
+    if waves.len() < 2 {
+        return;
+    }
+    let mut labels = vec!["Loadings by wave".to_string()];
+    let mut widths = vec![-24];
+    for w in &waves {
+        labels.push(format!("wave {}", w.wave.as_deref().unwrap_or("")));
+        widths.push(9);
+    }
+    let refs: Vec<&str> = labels.iter().map(String::as_str).collect();
+    header(s, &refs, &widths);
+    for (j, item) in r.items.iter().enumerate() {
+        let _ = write!(s, "  {item:<22}");
+        for w in &waves {
+            let l = w
+                .one_factor
+                .as_ref()
+                .and_then(|f| f.loadings.get(j))
+                .copied()
+                .unwrap_or(f64::NAN);
+            let _ = write!(s, "{l:>9.3}");
+        }
+        let moved = r.loading_shifts.iter().any(|m| &m.item == item);
+        let _ = writeln!(s, "{}", if moved { "   moves" } else { "" });
+    }
+    let note = format!(
+        "standardized loadings of one-factor ML models fitted at each wave; \"moves\" marks a range over the \
+         waves above {LOADING_SHIFT_FLAG:.2}. A screen, not a test of measurement invariance."
+    );
+    labelled(s, "", format_args!("{}", wrap(&note, 75, 11)));
 }
 
 /// The items over every row.
