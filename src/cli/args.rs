@@ -260,6 +260,12 @@ pub struct ScoreArgs {
     /// Columns copied to scores.csv (repeatable), for example age.
     #[arg(long = "pass", value_name = "COLUMN")]
     pub pass: Vec<String>,
+    /// Column naming the alternate form each respondent took; forms are put on the first form's scale.
+    #[arg(long, value_name = "COLUMN")]
+    pub form: Option<String>,
+    /// Seed of the bootstrap SEs of the equating constants.
+    #[arg(long, value_name = "N")]
+    pub seed: Option<u64>,
     /// Where the results go: --out writes score.json and scores.csv.
     #[command(flatten)]
     pub output: OutputArgs,

@@ -330,6 +330,7 @@ impl ScoreArgs {
             id: required(Some(r.id.clone()), "id")?,
             wave: required(r.wave.clone(), "wave")?,
             cohort: r.cohort.clone(),
+            form: self.form.clone(),
             pass: self.pass.clone(),
             items: items.clone(),
         };
@@ -342,7 +343,8 @@ impl ScoreArgs {
             RuleArg::Sum => ScoreRule::Sum,
         };
         let min_answered = self.min_answered.unwrap_or(items.len().saturating_sub(1).max(1));
-        let options = ScoreOptions::new(reverse, self.scale_min, self.scale_max, rule, min_answered)?;
+        let mut options = ScoreOptions::new(reverse, self.scale_min, self.scale_max, rule, min_answered)?;
+        options.seed = self.seed.unwrap_or(options.seed);
         Ok((source, columns, options))
     }
 }

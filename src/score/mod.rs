@@ -6,6 +6,7 @@
 //! columns and the items; [`score`] takes it with validated
 //! [`ScoreOptions`] and returns a [`ScoreReport`].
 
+pub mod equate;
 pub mod factor;
 pub mod reliability;
 
@@ -17,8 +18,12 @@ use crate::data::{DataSummary, LabelledTable, ReadOptions, label_order, labelled
 use crate::error::{Error, Result};
 use crate::warning::{Warning, WarningCode};
 
+pub use equate::Equating;
 pub use factor::OneFactor;
 pub use reliability::{ItemStats, Reliability};
+
+/// The bootstrap's seed unless one is given.
+pub const DEFAULT_SEED: u64 = 20_140_101;
 
 /// α below this is flagged (common practice, not a law).
 pub const ALPHA_FLAG: f64 = 0.70;
@@ -48,6 +53,8 @@ pub struct ItemColumns {
     pub wave: String,
     /// The cohort, when given.
     pub cohort: Option<String>,
+    /// The alternate form each respondent took, when forms were used.
+    pub form: Option<String>,
     /// Columns copied to the scores (for example age).
     pub pass: Vec<String>,
     /// The items, in order.
@@ -96,6 +103,8 @@ pub struct ScoreOptions {
     pub rule: ScoreRule,
     /// A score needs at least this many answered items.
     pub min_answered: usize,
+    /// Seed of the bootstrap of the equating constants.
+    pub seed: u64,
 }
 
 impl ScoreOptions {
@@ -117,6 +126,7 @@ impl ScoreOptions {
             scale_max,
             rule,
             min_answered,
+            seed: DEFAULT_SEED,
         };
         o.validate(None)?;
         Ok(o)
@@ -192,6 +202,9 @@ impl ItemInput {
         if let Some(c) = &columns.cohort {
             labels.push(("cohort", c));
         }
+        if let Some(f) = &columns.form {
+            labels.push(("form", f));
+        }
         labels.extend(columns.pass.iter().map(|p| ("pass-through", p.as_str())));
         let items: Vec<(&str, &str)> = columns.items.iter().map(|i| ("items", i.as_str())).collect();
         let table = labelled_table(path, &labels, &items, read)?;
@@ -247,6 +260,61 @@ fn loading_shifts(items: &[String], per_wave: &[Reliability]) -> Vec<LoadingShif
         .collect()
 }
 
+/// Put every form on the first form's scale (in label order), from the
+/// random groups of the wave where the two forms have the most respondents
+/// together, and equate the scores in place.
+fn equate_forms(input: &ItemInput, f: usize, scores: &mut [ScoreRow], seed: u64) -> Result<Vec<Equating>> {
+    let n = scores.len();
+    let mut forms: Vec<String> = (0..n).map(|r| input.label(f, r).to_string()).collect();
+    forms.sort_by(|a, b| label_order(a, b));
+    forms.dedup();
+    let reference = forms[0].clone();
+    let mut waves: Vec<String> = (0..n).map(|r| input.label(1, r).to_string()).collect();
+    waves.sort_by(|a, b| label_order(a, b));
+    waves.dedup();
+    let at = |form: &str, wave: &str| -> Vec<f64> {
+        (0..n)
+            .filter(|&r| input.label(f, r) == form && input.label(1, r) == wave && scores[r].score.is_finite())
+            .map(|r| scores[r].score)
+            .collect()
+    };
+    let mut out = Vec::new();
+    for (i, form) in forms.iter().enumerate().skip(1) {
+        let best = waves
+            .iter()
+            .map(|w| (w, at(form, w), at(&reference, w)))
+            .filter(|(_, a, b)| a.len() >= 2 && b.len() >= 2)
+            .max_by_key(|(_, a, b)| a.len().min(b.len()));
+        let Some((wave, x, y)) = best else {
+            return Err(Error::Data {
+                path: input.table.source.clone(),
+                message: format!(
+                    "form '{form}' and the reference form '{reference}' were never both given at one wave, so they \
+                     cannot be equated by random groups; give both forms at one wave"
+                ),
+            });
+        };
+        let (slope, intercept, slope_se, intercept_se) = equate::equate(&x, &y, seed + i as u64);
+        out.push(Equating {
+            form: form.clone(),
+            reference: reference.clone(),
+            wave: wave.clone(),
+            n_form: x.len(),
+            n_reference: y.len(),
+            slope,
+            intercept,
+            slope_se,
+            intercept_se,
+        });
+    }
+    for (r, row) in scores.iter_mut().enumerate() {
+        if let Some(e) = out.iter().find(|e| e.form == input.label(f, r)) {
+            row.score = e.intercept + e.slope * row.score;
+        }
+    }
+    Ok(out)
+}
+
 /// One row of `scores.csv`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ScoreRow {
@@ -283,6 +351,9 @@ pub struct ScoreReport {
     pub per_cohort: Vec<Reliability>,
     /// Per cohort × wave.
     pub per_cohort_wave: Vec<Reliability>,
+    /// Each non-reference form placed on the reference form's scale (the
+    /// scores in scores.csv are equated).
+    pub equating: Vec<Equating>,
     /// Items whose standardized loading moves across waves by more than
     /// [`LOADING_SHIFT_FLAG`] (largest minus smallest over the waves).
     pub loading_shifts: Vec<LoadingShift>,
@@ -341,7 +412,7 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
     let y = keyed(input, options)?;
     let n = input.table.n_rows;
     let n_labels = input.table.labels.len();
-    let mut scores = Vec::with_capacity(n);
+    let mut scores: Vec<ScoreRow> = Vec::with_capacity(n);
     let mut unscored = 0;
     for r in 0..n {
         let row = &y[r * k..(r + 1) * k];
@@ -434,6 +505,15 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
         None => (Vec::new(), Vec::new()),
     };
     let loading_shifts = loading_shifts(items, &per_wave);
+    let equating = match input
+        .columns
+        .form
+        .as_ref()
+        .map(|_| 2 + usize::from(cohort_col.is_some()))
+    {
+        Some(f) => equate_forms(input, f, &mut scores, options.seed)?,
+        None => Vec::new(),
+    };
     let all: Vec<&[f64]> = (0..n).map(|r| &y[r * k..(r + 1) * k]).collect();
     let overall = reliability::reliability(items, &all, None, None);
     let mut warnings = Vec::new();
@@ -452,6 +532,7 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
     }
     let mut score_header = vec![input.columns.id.clone(), input.columns.wave.clone()];
     score_header.extend(input.columns.cohort.iter().cloned());
+    score_header.extend(input.columns.form.iter().cloned());
     score_header.extend(input.columns.pass.iter().cloned());
     score_header.extend(["score".to_string(), "n_answered".to_string()]);
     Ok(ScoreReport {
@@ -467,6 +548,7 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
         per_cohort,
         per_cohort_wave,
         loading_shifts,
+        equating,
         scores,
         score_header,
     })

@@ -55,6 +55,7 @@ pub fn score_summary(r: &ScoreReport) -> String {
         table(&mut s, "By cohort", &r.per_cohort);
         table(&mut s, "By cohort × wave", &r.per_cohort_wave);
     }
+    equating_block(&mut s, r);
     loadings_block(&mut s, r);
     items_block(&mut s, &r.overall);
     let _ = writeln!(s);
@@ -95,6 +96,38 @@ fn table(s: &mut String, head: &str, rows: &[Reliability]) {
             if r.alpha < ALPHA_FLAG { "   low" } else { "" }
         );
     }
+}
+
+/// Each form on the reference form's scale.
+fn equating_block(s: &mut String, r: &ScoreReport) {
+    if r.equating.is_empty() {
+        return;
+    }
+    header(
+        s,
+        &["Forms", "wave", "n", "slope", "SE", "intercept", "SE"],
+        &[-24, 8, 14, 9, 8, 11, 8],
+    );
+    for e in &r.equating {
+        let _ = writeln!(
+            s,
+            "  {:<22}{:>8}{:>14}{:>9.4}{:>8.4}{:>11.4}{:>8.4}",
+            format!("{} onto {}", e.form, e.reference),
+            e.wave,
+            format!("{} / {}", e.n_form, e.n_reference),
+            e.slope,
+            e.slope_se,
+            e.intercept,
+            e.intercept_se
+        );
+    }
+    let note = format!(
+        "linear (mean–sigma) equating under random groups (Kolen & Brennan 2014): equated = intercept + slope × score, \
+         applied in scores.csv; SEs from {} seeded bootstrap replicates (seed {}).",
+        crate::score::equate::BOOTSTRAP_REPLICATES,
+        r.options.seed
+    );
+    labelled(s, "", format_args!("{}", wrap(&note, 75, 11)));
 }
 
 /// The one-factor loadings per wave side by side, and the items that move.
