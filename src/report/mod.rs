@@ -8,6 +8,7 @@ pub mod design_figure;
 pub mod figure;
 pub mod predictions;
 pub mod render;
+pub mod score_figure;
 pub mod text;
 
 pub use render::Render;

@@ -127,7 +127,10 @@ impl Render for ScoreReport {
             }
         }
         super::write_text(&dir.join("scores.csv"), &s)?;
-        Ok(vec!["scores.csv".into()])
+        super::score_figure::reliability(&dir.join("reliability.png"), &dir.join("reliability.svg"), self)?;
+        Ok(["scores.csv", "reliability.png", "reliability.svg"]
+            .map(String::from)
+            .to_vec())
     }
 }
 
