@@ -12,6 +12,9 @@ use super::figure::{GROUND, INK, PALETTE, SIZE, render, styled_legend, styled_me
 use crate::error::Result;
 use crate::score::{ALPHA_FLAG, Reliability, ScoreReport};
 
+/// One group's points: its name, colour, and (x, entry) at each wave.
+type Series<'a> = (String, RGBColor, Vec<(f64, &'a Reliability)>);
+
 fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ScoreReport) -> std::result::Result<(), String> {
     let e = |x: DrawingAreaErrorKind<DB::ErrorType>| x.to_string();
     root.fill(&GROUND).map_err(e)?;
@@ -72,7 +75,7 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ScoreReport) -> st
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 22, y)], INK.mix(0.6).stroke_width(1)));
     let groups = cohorts.len() + 1;
     let offset = |g: usize| (g as f64 - (groups as f64 - 1.0) / 2.0) * 0.6 / groups as f64;
-    let mut series: Vec<(String, RGBColor, Vec<(f64, &Reliability)>)> = vec![(
+    let mut series: Vec<Series<'_>> = vec![(
         "all respondents".into(),
         INK,
         r.per_wave
