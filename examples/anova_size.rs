@@ -13,8 +13,8 @@
 //! (default 12,18,30), WAVES the number of waves (default 4), SEED the first
 //! seed (default 50,000). Errors are normal with variance 4 at each wave.
 
-use braid::anova::{Complete, analyse};
-use braid::simulate::Rng;
+use braid::anova::analyse;
+use braid::simulate::complete_waves;
 
 fn main() {
     let mut args = std::env::args().skip(1);
@@ -28,7 +28,7 @@ fn main() {
         .collect();
     let k: usize = args.next().and_then(|v| v.parse().ok()).unwrap_or(4);
     let seed: u64 = args.next().and_then(|v| v.parse().ok()).unwrap_or(50_000);
-    // Cholesky factor of the error covariance.
+    // The error covariance.
     let cov: Vec<f64> = (0..k * k)
         .map(|ij| {
             let (i, j) = (ij / k, ij % k);
@@ -39,17 +39,6 @@ fn main() {
             }
         })
         .collect();
-    let mut l = vec![0.0; k * k];
-    for i in 0..k {
-        for j in 0..=i {
-            let s: f64 = (0..j).map(|m| l[i * k + m] * l[j * k + m]).sum();
-            l[i * k + j] = if i == j {
-                (cov[i * k + i] - s).sqrt()
-            } else {
-                (cov[i * k + j] - s) / l[j * k + j]
-            };
-        }
-    }
     let names = [
         "cohort",
         "wave",
@@ -70,24 +59,7 @@ fn main() {
     let cohorts: Vec<String> = (0..sizes.len()).map(|g| g.to_string()).collect();
     let t0 = std::time::Instant::now();
     for r in 0..reps {
-        let mut rng = Rng::new(seed + r as u64);
-        let (mut y, mut cohort) = (Vec::new(), Vec::new());
-        for (g, &n) in sizes.iter().enumerate() {
-            for _ in 0..n {
-                let z: Vec<f64> = (0..k).map(|_| rng.normal()).collect();
-                for i in 0..k {
-                    y.push(50.0 + (0..=i).map(|j| l[i * k + j] * z[j]).sum::<f64>());
-                }
-                cohort.push(g);
-            }
-        }
-        let c = Complete {
-            age: vec![0.0; y.len()],
-            y,
-            k,
-            cohort,
-            groups: sizes.len(),
-        };
+        let c = complete_waves(&sizes, k, &cov, seed + r as u64);
         let a = analyse(&c, &cohorts, 0.05).expect("analysis");
         let e = &a.effects;
         let ps = [

@@ -317,3 +317,47 @@ impl Simulated {
         (header, rows)
     }
 }
+
+/// Complete cohort × wave data with no cohort, wave or interaction effect:
+/// cohorts of `sizes` participants, `k` waves, normal errors with the k × k
+/// covariance `cov` (row-major) around a mean of 50. For measuring the size
+/// of the mixed ANOVA's tests.
+///
+/// # Panics
+/// When `cov` is not positive definite (a programming error of the caller).
+pub fn complete_waves(sizes: &[usize], k: usize, cov: &[f64], seed: u64) -> crate::anova::Complete {
+    // Cholesky factor of the covariance.
+    let mut l = vec![0.0; k * k];
+    for i in 0..k {
+        for j in 0..=i {
+            let s: f64 = (0..j).map(|m| l[i * k + m] * l[j * k + m]).sum();
+            l[i * k + j] = if i == j {
+                (cov[i * k + i] - s).sqrt()
+            } else {
+                (cov[i * k + j] - s) / l[j * k + j]
+            };
+        }
+    }
+    assert!(
+        l.iter().all(|v| v.is_finite()),
+        "the covariance is not positive definite"
+    );
+    let mut rng = Rng::new(seed);
+    let (mut y, mut cohort) = (Vec::new(), Vec::new());
+    for (g, &n) in sizes.iter().enumerate() {
+        for _ in 0..n {
+            let z: Vec<f64> = (0..k).map(|_| rng.normal()).collect();
+            for i in 0..k {
+                y.push(50.0 + (0..=i).map(|j| l[i * k + j] * z[j]).sum::<f64>());
+            }
+            cohort.push(g);
+        }
+    }
+    crate::anova::Complete {
+        age: vec![0.0; y.len()],
+        y,
+        k,
+        cohort,
+        groups: sizes.len(),
+    }
+}

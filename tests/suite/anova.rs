@@ -185,34 +185,18 @@ fn row_order_and_labels_do_not_change_the_table() {
 // non-spherical case.
 #[test]
 fn every_anova_test_holds_its_level_without_effects() {
-    use braid::anova::{Complete, analyse};
-    use braid::simulate::Rng;
+    use braid::anova::analyse;
+    use braid::simulate::complete_waves;
     const REPS: u64 = 400;
     let (lo, hi) = crate::common::binomial_band(REPS);
     let sizes = [12usize, 18, 30];
     let k = 4;
     let cohorts: Vec<String> = (0..3).map(|g| g.to_string()).collect();
+    // Compound symmetry: variance 4, correlation 0.5.
+    let cov: Vec<f64> = (0..k * k).map(|ij| if ij / k == ij % k { 4.0 } else { 2.0 }).collect();
     let mut rejected = [0u64; 12];
     for r in 0..REPS {
-        let mut rng = Rng::new(50_000 + r);
-        let (mut y, mut cohort) = (Vec::new(), Vec::new());
-        for (g, &n) in sizes.iter().enumerate() {
-            for _ in 0..n {
-                // Compound symmetry: variance 4, correlation 0.5.
-                let shared = rng.normal() * 2f64.sqrt();
-                for _ in 0..k {
-                    y.push(50.0 + shared + rng.normal() * 2f64.sqrt());
-                }
-                cohort.push(g);
-            }
-        }
-        let c = Complete {
-            age: vec![0.0; y.len()],
-            y,
-            k,
-            cohort,
-            groups: 3,
-        };
+        let c = complete_waves(&sizes, k, &cov, 50_000 + r);
         let a = analyse(&c, &cohorts, 0.05).unwrap();
         let e = &a.effects;
         let ps = [
