@@ -44,6 +44,55 @@ pub struct Study {
     /// The model.
     #[serde(default)]
     pub model: ModelSpec,
+    /// A multi-item scale scored on the fly as the outcome.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub score: Option<ScaleSection>,
+}
+
+/// The `[score]` table of a study file: the outcome is this scale's score,
+/// computed from its items when the study is loaded.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScaleSection {
+    /// The items: names or ranges, comma-separated ("q1..q12").
+    pub items: String,
+    /// Reverse-keyed items.
+    #[serde(default)]
+    pub reverse: String,
+    /// The lowest legal response.
+    pub scale_min: f64,
+    /// The highest legal response.
+    pub scale_max: f64,
+    /// "mean" (default) or "sum" (prorated).
+    #[serde(default)]
+    pub rule: Option<String>,
+    /// A score needs this many answered items [default: all but one].
+    #[serde(default)]
+    pub min_answered: Option<usize>,
+}
+
+impl ScaleSection {
+    /// The items and the validated scoring options.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] for a bad item list, rule or scale.
+    pub fn options(&self) -> Result<(Vec<String>, ScoreOptions)> {
+        let items = expand_items(&self.items)?;
+        let reverse = expand_items(&self.reverse)?;
+        let rule = match self.rule.as_deref().unwrap_or("mean") {
+            "mean" => ScoreRule::Mean,
+            "sum" => ScoreRule::Sum,
+            other => {
+                return Err(Error::Spec {
+                    parameter: "rule".into(),
+                    message: format!("'{other}' is not a scoring rule; use mean or sum"),
+                });
+            }
+        };
+        let min_answered = self.min_answered.unwrap_or(items.len().saturating_sub(1).max(1));
+        let options = ScoreOptions::new(reverse, self.scale_min, self.scale_max, rule, min_answered)?;
+        Ok((items, options))
+    }
 }
 
 impl Study {
@@ -56,10 +105,15 @@ impl Study {
             path: path.to_path_buf(),
             message: e.to_string(),
         })?;
-        toml::from_str(&text).map_err(|e| Error::Parse {
+        let mut study: Study = toml::from_str(&text).map_err(|e| Error::Parse {
             path: path.to_path_buf(),
             message: format!("not a valid study file: {}", e.to_string().replace('\n', " ").trim()),
-        })
+        })?;
+        // A scored scale is the outcome unless the roles name another.
+        if study.score.is_some() && study.roles.outcome.is_empty() {
+            study.roles.outcome = "score".into();
+        }
+        Ok(study)
     }
 
     /// The study as TOML text.

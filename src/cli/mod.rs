@@ -89,8 +89,17 @@ fn completions_command(a: &args::CompletionsArgs) {
     clap_complete::generate(a.shell, &mut Cli::command(), "braid", &mut std::io::stdout());
 }
 
+/// Load the data; when the study file names a scale, its score is the
+/// outcome, computed from the items.
 fn load(source: &Source) -> Result<Panel> {
-    data::load(&source.data, &source.roles, source.read)
+    match source.study.as_ref().and_then(|s| s.score.as_ref()) {
+        Some(scale) => {
+            let (items, options) = scale.options()?;
+            let values = crate::score::score_column(&source.data, &items, &options, source.read)?;
+            data::load_with_outcome(&source.data, &source.roles, source.read, &values)
+        }
+        None => data::load(&source.data, &source.roles, source.read),
+    }
 }
 
 /// `braid fit`: load, specify, fit, infer, report.
@@ -218,6 +227,7 @@ fn write_demo_study(design: &Design, dir: &Path) -> Result<PathBuf> {
         },
         roles: simulate::Simulated::roles(true),
         model: demo_model(design),
+        score: None,
     };
     let study_path = dir.join("study.toml");
     // The comment names the study file relative to its own folder, so the

@@ -64,6 +64,27 @@ pub(crate) fn is_missing(s: &str) -> bool {
 /// fewer than two participants, no variation in age, duplicate
 /// participant–wave rows, and a constant covariate.
 pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
+    load_with(path, roles, options, None)
+}
+
+/// [`load`], with the outcome given as one value per data row instead of
+/// read from a column (a scale scored on the fly from its items); the
+/// `outcome` role then names the scored variable, not a column.
+///
+/// # Errors
+/// As [`load`]; [`Error::Data`] for a wide file, or for a column of values
+/// whose length is not the file's number of rows.
+pub fn load_with_outcome(path: &Path, roles: &Roles, options: ReadOptions, outcome: &[Option<f64>]) -> Result<Panel> {
+    if roles.is_wide() {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: "a scale scored on the fly needs a long file (one row per participant and wave)".into(),
+        });
+    }
+    load_with(path, roles, options, Some(outcome))
+}
+
+fn load_with(path: &Path, roles: &Roles, options: ReadOptions, outcome: Option<&[Option<f64>]>) -> Result<Panel> {
     if !path.exists() {
         return Err(Error::Io {
             path: path.to_path_buf(),
@@ -78,8 +99,9 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
     }
     roles::validate_roles(roles)?;
     let header = read::header(path, options.delimiter)?;
+    let given = |role: &str| outcome.is_some() && role == "outcome";
     for (role, column) in roles.all() {
-        if !header.iter().any(|h| h == &column) {
+        if !given(&role) && !header.iter().any(|h| h == &column) {
             let mut available = header.clone();
             if header.len() == 1 {
                 for d in [';', '\t', '|'] {
@@ -105,7 +127,12 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
             });
         }
     }
-    let mut wanted: Vec<String> = roles.all().into_iter().map(|(_, c)| c).collect();
+    let mut wanted: Vec<String> = roles
+        .all()
+        .into_iter()
+        .filter(|(role, _)| !given(role))
+        .map(|(_, c)| c)
+        .collect();
     wanted.dedup();
     let mut seen = std::collections::HashSet::new();
     wanted.retain(|c| seen.insert(c.clone()));
@@ -115,7 +142,19 @@ pub fn load(path: &Path, roles: &Roles, options: ReadOptions) -> Result<Panel> {
     }
     numeric.extend(roles.period.iter().chain(&roles.birth_year).cloned());
     numeric.extend(roles.wide_outcome.iter().chain(&roles.wide_age).cloned());
-    let table = read::read_columns(path, &wanted, &numeric, options.delimiter)?;
+    numeric.retain(|c| outcome.is_none() || c != &roles.outcome);
+    let mut table = read::read_columns(path, &wanted, &numeric, options.delimiter)?;
+    if let Some(values) = outcome {
+        if values.len() != table.n_rows {
+            return Err(Error::Data {
+                path: path.to_path_buf(),
+                message: format!("{} scored values for {} rows", values.len(), table.n_rows),
+            });
+        }
+        table
+            .columns
+            .insert(roles.outcome.clone(), read::RawColumn::Number(values.to_vec()));
+    }
     if table.n_rows == 0 {
         return Err(Error::Data {
             path: path.to_path_buf(),

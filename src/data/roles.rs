@@ -15,6 +15,7 @@ pub struct Roles {
     #[serde(default)]
     pub age: String,
     /// The outcome measure.
+    #[serde(default)]
     pub outcome: String,
     /// Birth date (ISO YYYY-MM-DD); with `date`, age is computed from the two
     /// and `age` names the computed column.

@@ -366,23 +366,18 @@ pub struct ScoreReport {
 }
 
 /// Check and key every response; the keyed responses, row-major.
-fn keyed(input: &ItemInput, options: &ScoreOptions) -> Result<Vec<f64>> {
-    let k = input.columns.items.len();
+fn keyed(table: &LabelledTable, items: &[String], options: &ScoreOptions) -> Result<Vec<f64>> {
+    let k = items.len();
     let (lo, hi) = (options.scale_min, options.scale_max);
-    let mut out = Vec::with_capacity(input.table.n_rows * k);
-    let reversed: Vec<bool> = input
-        .columns
-        .items
-        .iter()
-        .map(|i| options.reverse.contains(i))
-        .collect();
+    let mut out = Vec::with_capacity(table.n_rows * k);
+    let reversed: Vec<bool> = items.iter().map(|i| options.reverse.contains(i)).collect();
     let integers = options.integers();
-    for r in 0..input.table.n_rows {
-        for (j, item) in input.columns.items.iter().enumerate() {
-            let x = input.table.numbers[j][r];
+    for r in 0..table.n_rows {
+        for (j, item) in items.iter().enumerate() {
+            let x = table.numbers[j][r];
             if x.is_finite() && (x < lo || x > hi || (integers && x.fract() != 0.0)) {
                 return Err(Error::BadValue {
-                    path: input.table.source.clone(),
+                    path: table.source.clone(),
                     column: item.clone(),
                     row: r + 1,
                     value: x.to_string(),
@@ -399,6 +394,44 @@ fn keyed(input: &ItemInput, options: &ScoreOptions) -> Result<Vec<f64>> {
     Ok(out)
 }
 
+/// The score of one row of keyed responses, and the items answered (NaN
+/// when fewer than `min_answered` are).
+fn row_score(row: &[f64], options: &ScoreOptions) -> (f64, usize) {
+    let (sum, answered) = row
+        .iter()
+        .filter(|v| v.is_finite())
+        .fold((0.0, 0usize), |(s, n), v| (s + v, n + 1));
+    if answered < options.min_answered {
+        return (f64::NAN, answered);
+    }
+    let mean = sum / answered as f64;
+    match options.rule {
+        ScoreRule::Mean => (mean, answered),
+        ScoreRule::Sum => (mean * row.len() as f64, answered),
+    }
+}
+
+/// The score of every data row of a file, for a study file that names its
+/// scale: the outcome is scored on the fly (`None`: too few items answered).
+///
+/// # Errors
+/// As [`score`], and errors of reading the items.
+pub fn score_column(
+    path: &Path,
+    items: &[String],
+    options: &ScoreOptions,
+    read: ReadOptions,
+) -> Result<Vec<Option<f64>>> {
+    options.validate(Some(items))?;
+    let cols: Vec<(&str, &str)> = items.iter().map(|i| ("items", i.as_str())).collect();
+    let table = labelled_table(path, &[], &cols, read)?;
+    let y = keyed(&table, items, options)?;
+    let k = items.len();
+    Ok((0..table.n_rows)
+        .map(|r| Some(row_score(&y[r * k..(r + 1) * k], options).0).filter(|s| s.is_finite()))
+        .collect())
+}
+
 /// Score every row and measure the scale's reliability.
 ///
 /// # Errors
@@ -409,24 +442,14 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
     let items = &input.columns.items;
     options.validate(Some(items))?;
     let k = items.len();
-    let y = keyed(input, options)?;
+    let y = keyed(&input.table, items, options)?;
     let n = input.table.n_rows;
     let n_labels = input.table.labels.len();
     let mut scores: Vec<ScoreRow> = Vec::with_capacity(n);
     let mut unscored = 0;
     for r in 0..n {
-        let row = &y[r * k..(r + 1) * k];
-        let answered: Vec<f64> = row.iter().copied().filter(|v| v.is_finite()).collect();
-        let score = if answered.len() >= options.min_answered {
-            let mean = answered.iter().sum::<f64>() / answered.len() as f64;
-            match options.rule {
-                ScoreRule::Mean => mean,
-                ScoreRule::Sum => mean * k as f64,
-            }
-        } else {
-            unscored += 1;
-            f64::NAN
-        };
+        let (score, answered) = row_score(&y[r * k..(r + 1) * k], options);
+        unscored += usize::from(score.is_nan());
         scores.push(ScoreRow {
             labels: {
                 let mut l = String::new();
@@ -439,7 +462,7 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
                 l
             },
             score,
-            n_answered: answered.len(),
+            n_answered: answered,
         });
     }
     let cohort_col = input.columns.cohort.as_ref().map(|_| 2);

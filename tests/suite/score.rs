@@ -302,3 +302,64 @@ fn mean_by_form(r: &ScoreReport, wave: &str) -> (f64, f64) {
     }
     (sums[0].0 / sums[0].1 as f64, sums[1].0 / sums[1].1 as f64)
 }
+
+// A study file that names its scale scores it on the fly: fitting that study
+// gives the same fit as fitting the scores.csv that `braid score` writes
+// with the same settings (an identity of the two routes).
+#[test]
+fn a_study_file_scale_is_scored_on_the_fly_like_score_csv() {
+    use crate::common::{braid, read_json, run_ok};
+    let dir = temp_dir("score_study");
+    let data = data_dir().join("congeneric_items.csv");
+    run_ok(
+        braid()
+            .arg("score")
+            .arg(&data)
+            .args(["--id", "pupil", "--wave", "wave", "--cohort", "cohort", "--pass", "age"])
+            .args([
+                "--items",
+                "q1..q6",
+                "--scale-min",
+                "0",
+                "--scale-max",
+                "4",
+                "--rule",
+                "sum",
+                "--quiet",
+                "--out",
+            ])
+            .arg(dir.join("scored")),
+    );
+    run_ok(
+        braid()
+            .arg("fit")
+            .arg(dir.join("scored").join("scores.csv"))
+            .args([
+                "--id",
+                "pupil",
+                "--age",
+                "age",
+                "--outcome",
+                "score",
+                "--cohort",
+                "cohort",
+                "--quiet",
+                "--json",
+            ])
+            .arg(dir.join("from_csv.json")),
+    );
+    run_ok(
+        braid()
+            .args(["fit", "--quiet", "--study"])
+            .arg(data_dir().join("scored_study.toml"))
+            .arg("--json")
+            .arg(dir.join("from_study.json")),
+    );
+    let (a, b) = (
+        read_json(&dir.join("from_csv.json")),
+        read_json(&dir.join("from_study.json")),
+    );
+    assert!(a["loglik"].is_number() && a["fixed"].as_array().is_some_and(|f| f.len() == 3));
+    assert_eq!(a["loglik"], b["loglik"]);
+    assert_eq!(a["fixed"], b["fixed"]);
+}
