@@ -239,21 +239,21 @@ pub struct ScoreArgs {
     /// The data (one row per participant and wave) and the id, wave and optional cohort columns.
     #[command(flatten)]
     pub input: InputArgs,
-    /// The items: comma-separated names, or ranges such as q1..q12.
+    /// The items: comma-separated names, or ranges such as q1..q12 [default: the study file's [score]].
     #[arg(long, value_name = "LIST")]
-    pub items: String,
+    pub items: Option<String>,
     /// Reverse-keyed items (x becomes min + max − x): names or ranges.
     #[arg(long, value_name = "LIST")]
     pub reverse: Option<String>,
-    /// The lowest legal response.
+    /// The lowest legal response [default: the study file's [score]].
     #[arg(long, value_name = "X")]
-    pub scale_min: f64,
-    /// The highest legal response.
+    pub scale_min: Option<f64>,
+    /// The highest legal response [default: the study file's [score]].
     #[arg(long, value_name = "X")]
-    pub scale_max: f64,
-    /// The score: the mean of the answered items, or their prorated sum.
-    #[arg(long, value_enum, default_value_t = RuleArg::Mean)]
-    pub rule: RuleArg,
+    pub scale_max: Option<f64>,
+    /// The score: the mean of the answered items, or their prorated sum [default: mean].
+    #[arg(long, value_enum)]
+    pub rule: Option<RuleArg>,
     /// A score needs at least this many answered items [default: all but one].
     #[arg(long, value_name = "K")]
     pub min_answered: Option<usize>,

@@ -379,7 +379,18 @@ impl ScoreArgs {
                 message: "is required: name the column".into(),
             })
         };
-        let items = expand_items(&self.items)?;
+        let missing = |key: &str| Error::Spec {
+            parameter: key.into(),
+            message: "is required: give it, or a [score] table in the study file".into(),
+        };
+        // Flags win over the study file's [score] table.
+        let scale = source.study.as_ref().and_then(|s| s.score.as_ref());
+        let from_study = scale.map(ScaleSection::options).transpose()?;
+        let items = match (&self.items, &from_study) {
+            (Some(list), _) => expand_items(list)?,
+            (None, Some((items, _))) => items.clone(),
+            (None, None) => return Err(missing("items")),
+        };
         let columns = ItemColumns {
             id: required(Some(r.id.clone()), "id")?,
             wave: required(r.wave.clone(), "wave")?,
@@ -388,16 +399,30 @@ impl ScoreArgs {
             pass: self.pass.clone(),
             items: items.clone(),
         };
-        let reverse = match &self.reverse {
-            Some(list) => expand_items(list)?,
-            None => Vec::new(),
+        let study = from_study.map(|(_, o)| o);
+        let reverse = match (&self.reverse, &study) {
+            (Some(list), _) => expand_items(list)?,
+            (None, Some(o)) => o.reverse.clone(),
+            (None, None) => Vec::new(),
         };
-        let rule = match self.rule {
-            RuleArg::Mean => ScoreRule::Mean,
-            RuleArg::Sum => ScoreRule::Sum,
+        let end = |flag: Option<f64>, of: fn(&ScoreOptions) -> f64, key: &str| {
+            flag.or(study.as_ref().map(of)).ok_or_else(|| missing(key))
         };
-        let min_answered = self.min_answered.unwrap_or(items.len().saturating_sub(1).max(1));
-        let mut options = ScoreOptions::new(reverse, self.scale_min, self.scale_max, rule, min_answered)?;
+        let (scale_min, scale_max) = (
+            end(self.scale_min, |o| o.scale_min, "scale_min")?,
+            end(self.scale_max, |o| o.scale_max, "scale_max")?,
+        );
+        let rule = match (self.rule, &study) {
+            (Some(RuleArg::Mean), _) => ScoreRule::Mean,
+            (Some(RuleArg::Sum), _) => ScoreRule::Sum,
+            (None, Some(o)) => o.rule,
+            (None, None) => ScoreRule::Mean,
+        };
+        let min_answered = self
+            .min_answered
+            .or(study.as_ref().map(|o| o.min_answered))
+            .unwrap_or(items.len().saturating_sub(1).max(1));
+        let mut options = ScoreOptions::new(reverse, scale_min, scale_max, rule, min_answered)?;
         options.seed = self.seed.unwrap_or(options.seed);
         Ok((source, columns, options))
     }
