@@ -263,6 +263,9 @@ pub struct ScoreArgs {
     /// Column naming the alternate form each respondent took; forms are put on the first form's scale.
     #[arg(long, value_name = "COLUMN")]
     pub form: Option<String>,
+    /// Anchor items shared by every form: forms are then equated through them (common items), at any waves.
+    #[arg(long, value_name = "LIST")]
+    pub anchor: Option<String>,
     /// Seed of the bootstrap SEs of the equating constants.
     #[arg(long, value_name = "N")]
     pub seed: Option<u64>,

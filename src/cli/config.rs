@@ -424,6 +424,9 @@ impl ScoreArgs {
             .unwrap_or(items.len().saturating_sub(1).max(1));
         let mut options = ScoreOptions::new(reverse, scale_min, scale_max, rule, min_answered)?;
         options.seed = self.seed.unwrap_or(options.seed);
+        if let Some(list) = &self.anchor {
+            options.anchor = expand_items(list)?;
+        }
         Ok((source, columns, options))
     }
 }

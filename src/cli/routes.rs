@@ -18,7 +18,9 @@ fn flag_and_table(key: &str) -> Option<(String, Option<&'static str>)> {
         | "margin_sd" | "reference_age" | "shared_ages" | "grid" | "at" | "cohort_width" | "cohort_from"
         | "wave_length" | "wave_from" => (flag(&key.replace('_', "-")), None),
         "sphericity_alpha" => (flag("sphericity-level"), None),
-        "items" | "reverse" | "scale_min" | "scale_max" | "min_answered" => (flag(&key.replace('_', "-")), None),
+        "items" | "reverse" | "anchor" | "scale_min" | "scale_max" | "min_answered" => {
+            (flag(&key.replace('_', "-")), None)
+        }
         _ => return None,
     })
 }

@@ -4,8 +4,12 @@
 //! form were each taken by a random group of respondents, a score x on the
 //! other form is placed on the reference form's scale by
 //! l(x) = μ_ref + (σ_ref/σ_form)·(x − μ_form), that is intercept + slope·x.
-//! Standard errors of the two constants come from a seeded bootstrap that
-//! resamples respondents within each form's group.
+//! When the forms share anchor items and were given to groups that need not
+//! be equivalent (for example at different waves), chained linear equating
+//! (Kolen & Brennan 2014, §4.3) links the form to the anchor score in the
+//! form's group and the anchor to the reference form in the reference
+//! group. Standard errors of the two constants come from a seeded bootstrap
+//! that resamples respondents within each form's group.
 
 use serde::Serialize;
 
@@ -21,7 +25,9 @@ pub struct Equating {
     pub form: String,
     /// The reference form.
     pub reference: String,
-    /// The wave whose random groups were used.
+    /// "random groups" or "common items".
+    pub design: &'static str,
+    /// The wave whose random groups were used (random groups), or "all".
     pub wave: String,
     /// Respondents of the form and of the reference at that wave.
     pub n_form: usize,
@@ -50,25 +56,54 @@ pub fn constants(form: &[f64], reference: &[f64]) -> (f64, f64) {
     (slope, mr - slope * mf)
 }
 
-/// The constants with bootstrap SEs (seeded: the same seed gives the same SEs).
-pub fn equate(form: &[f64], reference: &[f64], seed: u64) -> (f64, f64, f64, f64) {
-    let (slope, intercept) = constants(form, reference);
+/// Chained linear constants: form → anchor in the form's group (scores
+/// `form`, anchor scores `form_anchor`), anchor → reference in the reference
+/// group.
+pub fn chained(form: &[(f64, f64)], reference: &[(f64, f64)]) -> (f64, f64) {
+    let split = |v: &[(f64, f64)]| -> (Vec<f64>, Vec<f64>) { v.iter().copied().unzip() };
+    let ((x, v1), (y, v2)) = (split(form), split(reference));
+    // x → v: v = b1·x + a1; v → y: y = b2·v + a2.
+    let (b1, a1) = constants(&x, &v1);
+    let (b2, a2) = constants(&v2, &y);
+    (b2 * b1, b2 * a1 + a2)
+}
+
+/// Resample respondents with replacement.
+fn draw<T: Copy>(rng: &mut Rng, v: &[T]) -> Vec<T> {
+    (0..v.len())
+        .map(|_| v[((rng.uniform() * v.len() as f64) as usize).min(v.len() - 1)])
+        .collect()
+}
+
+/// Bootstrap SEs of constants computed by `f` from the two groups.
+fn bootstrap<T: Copy>(form: &[T], reference: &[T], seed: u64, f: impl Fn(&[T], &[T]) -> (f64, f64)) -> (f64, f64) {
     let mut rng = Rng::new(seed);
-    let draw = |rng: &mut Rng, v: &[f64]| -> Vec<f64> {
-        (0..v.len())
-            .map(|_| v[((rng.uniform() * v.len() as f64) as usize).min(v.len() - 1)])
-            .collect()
-    };
     let (mut slopes, mut intercepts) = (
         Vec::with_capacity(BOOTSTRAP_REPLICATES),
         Vec::with_capacity(BOOTSTRAP_REPLICATES),
     );
     for _ in 0..BOOTSTRAP_REPLICATES {
-        let (b, a) = constants(&draw(&mut rng, form), &draw(&mut rng, reference));
+        let (b, a) = f(&draw(&mut rng, form), &draw(&mut rng, reference));
         slopes.push(b);
         intercepts.push(a);
     }
-    (slope, intercept, mean_sd(&slopes).1, mean_sd(&intercepts).1)
+    (mean_sd(&slopes).1, mean_sd(&intercepts).1)
+}
+
+/// The random-groups constants with bootstrap SEs (seeded: the same seed
+/// gives the same SEs).
+pub fn equate(form: &[f64], reference: &[f64], seed: u64) -> (f64, f64, f64, f64) {
+    let (slope, intercept) = constants(form, reference);
+    let (slope_se, intercept_se) = bootstrap(form, reference, seed, constants);
+    (slope, intercept, slope_se, intercept_se)
+}
+
+/// The common-items (chained linear) constants with bootstrap SEs; each
+/// respondent is a (score, anchor score) pair.
+pub fn equate_chained(form: &[(f64, f64)], reference: &[(f64, f64)], seed: u64) -> (f64, f64, f64, f64) {
+    let (slope, intercept) = chained(form, reference);
+    let (slope_se, intercept_se) = bootstrap(form, reference, seed, chained);
+    (slope, intercept, slope_se, intercept_se)
 }
 
 #[cfg(test)]

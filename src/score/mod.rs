@@ -105,6 +105,9 @@ pub struct ScoreOptions {
     pub min_answered: usize,
     /// Seed of the bootstrap of the equating constants.
     pub seed: u64,
+    /// Anchor items shared by the forms: with them, forms are equated by
+    /// chained linear equating through the anchor score (common items).
+    pub anchor: Vec<String>,
 }
 
 impl ScoreOptions {
@@ -127,6 +130,7 @@ impl ScoreOptions {
             rule,
             min_answered,
             seed: DEFAULT_SEED,
+            anchor: Vec::new(),
         };
         o.validate(None)?;
         Ok(o)
@@ -154,6 +158,12 @@ impl ScoreOptions {
                 return Err(spec(
                     "items",
                     format!("{} item(s): a scale with reliability needs at least 3", items.len()),
+                ));
+            }
+            if let Some(a) = self.anchor.iter().find(|a| !items.contains(a)) {
+                return Err(spec(
+                    "anchor",
+                    format!("'{a}' is not one of the items ({})", items.join(", ")),
                 ));
             }
             if let Some(r) = self.reverse.iter().find(|r| !items.contains(r)) {
@@ -263,7 +273,14 @@ fn loading_shifts(items: &[String], per_wave: &[Reliability]) -> Vec<LoadingShif
 /// Put every form on the first form's scale (in label order), from the
 /// random groups of the wave where the two forms have the most respondents
 /// together, and equate the scores in place.
-fn equate_forms(input: &ItemInput, f: usize, scores: &mut [ScoreRow], seed: u64) -> Result<Vec<Equating>> {
+fn equate_forms(
+    input: &ItemInput,
+    f: usize,
+    scores: &mut [ScoreRow],
+    keyed: &[f64],
+    options: &ScoreOptions,
+) -> Result<Vec<Equating>> {
+    let seed = options.seed;
     let n = scores.len();
     let mut forms: Vec<String> = (0..n).map(|r| input.label(f, r).to_string()).collect();
     forms.sort_by(|a, b| label_order(a, b));
@@ -279,7 +296,53 @@ fn equate_forms(input: &ItemInput, f: usize, scores: &mut [ScoreRow], seed: u64)
             .collect()
     };
     let mut out = Vec::new();
-    for (i, form) in forms.iter().enumerate().skip(1) {
+    // Common items: each form's (score, anchor mean) pairs over every wave.
+    if !options.anchor.is_empty() {
+        let k = input.columns.items.len();
+        let anchor: Vec<usize> = options
+            .anchor
+            .iter()
+            .filter_map(|a| input.columns.items.iter().position(|i| i == a))
+            .collect();
+        let pairs = |form: &str| -> Vec<(f64, f64)> {
+            (0..n)
+                .filter(|&r| input.label(f, r) == form && scores[r].score.is_finite())
+                .filter_map(|r| {
+                    let v: Vec<f64> = anchor.iter().map(|&j| keyed[r * k + j]).collect();
+                    v.iter()
+                        .all(|x| x.is_finite())
+                        .then(|| (scores[r].score, v.iter().sum::<f64>() / v.len() as f64))
+                })
+                .collect()
+        };
+        let reference_pairs = pairs(&reference);
+        for (i, form) in forms.iter().enumerate().skip(1) {
+            let own = pairs(form);
+            if own.len() < 2 || reference_pairs.len() < 2 {
+                return Err(Error::Data {
+                    path: input.table.source.clone(),
+                    message: format!(
+                        "form '{form}' or '{reference}' has fewer than two respondents with every anchor item"
+                    ),
+                });
+            }
+            let (slope, intercept, slope_se, intercept_se) =
+                equate::equate_chained(&own, &reference_pairs, seed + i as u64);
+            out.push(Equating {
+                form: form.clone(),
+                reference: reference.clone(),
+                design: "common items",
+                wave: "all".into(),
+                n_form: own.len(),
+                n_reference: reference_pairs.len(),
+                slope,
+                intercept,
+                slope_se,
+                intercept_se,
+            });
+        }
+    }
+    for (i, form) in forms.iter().enumerate().skip(1).filter(|_| options.anchor.is_empty()) {
         let best = waves
             .iter()
             .map(|w| (w, at(form, w), at(&reference, w)))
@@ -298,6 +361,7 @@ fn equate_forms(input: &ItemInput, f: usize, scores: &mut [ScoreRow], seed: u64)
         out.push(Equating {
             form: form.clone(),
             reference: reference.clone(),
+            design: "random groups",
             wave: wave.clone(),
             n_form: x.len(),
             n_reference: y.len(),
@@ -534,7 +598,7 @@ pub fn score(input: &ItemInput, options: &ScoreOptions) -> Result<ScoreReport> {
         .as_ref()
         .map(|_| 2 + usize::from(cohort_col.is_some()))
     {
-        Some(f) => equate_forms(input, f, &mut scores, options.seed)?,
+        Some(f) => equate_forms(input, f, &mut scores, &y, options)?,
         None => Vec::new(),
     };
     let all: Vec<&[f64]> = (0..n).map(|r| &y[r * k..(r + 1) * k]).collect();

@@ -7,7 +7,7 @@
 use braid::score::{ItemColumns, ItemInput, Reliability, ScoreOptions, ScoreReport, ScoreRule, expand_items, score};
 
 use crate::common::{data_dir, reference_json, temp_dir};
-use crate::tolerance::{ALPHA_ABS, LOADING_ABS, TAU_EQUIVALENT_ABS};
+use crate::tolerance::{ALPHA_ABS, EQUATING_ABS, LOADING_ABS, TAU_EQUIVALENT_ABS};
 
 fn run(file: &str, columns: ItemColumns, options: &ScoreOptions) -> ScoreReport {
     let input = ItemInput::read(&data_dir().join(file), &columns, Default::default()).unwrap();
@@ -362,4 +362,72 @@ fn a_study_file_scale_is_scored_on_the_fly_like_score_csv() {
     assert!(a["loglik"].is_number() && a["fixed"].as_array().is_some_and(|f| f.len() == 3));
     assert_eq!(a["loglik"], b["loglik"]);
     assert_eq!(a["fixed"], b["fixed"]);
+}
+
+// Common items: form A at wave 1 and form B at wave 2 to groups that are not
+// equivalent (wave 2 is 0.8 SD abler); q1 and q2 are anchors on both forms,
+// and B's other items are a + b × the A responses the same respondents would
+// have given. Chained linear equating through the anchors puts B's scores on
+// A's scale: the wave-2 group's equated scores have the mean and SD of the A
+// scores it would have had (simulated alongside).
+#[test]
+fn common_item_equating_recovers_the_counterfactual_scale() {
+    let (a, b) = (1.5, 1.3);
+    let mut rng = braid::simulate::Rng::new(4242);
+    let mut text = String::from("pupil,wave,form,q1,q2,q3,q4,q5,q6\n");
+    let mut counterfactual = Vec::new();
+    for p in 0..6000 {
+        let wave = if p < 3000 { 1 } else { 2 };
+        let t = rng.normal() + if wave == 2 { 0.8 } else { 0.0 };
+        let x: Vec<f64> = (0..6).map(|_| 5.0 + t + 0.6 * rng.normal()).collect();
+        let row: Vec<f64> = if wave == 2 {
+            counterfactual.push(x.iter().sum::<f64>() / 6.0);
+            x.iter()
+                .enumerate()
+                .map(|(j, v)| if j < 2 { *v } else { a + b * v })
+                .collect()
+        } else {
+            x.clone()
+        };
+        let cells: Vec<String> = row.iter().map(|v| format!("{v:.6}")).collect();
+        text.push_str(&format!(
+            "P{p},{wave},{},{}\n",
+            if wave == 2 { "B" } else { "A" },
+            cells.join(",")
+        ));
+    }
+    let path = temp_dir("score_anchor").join("anchor.csv");
+    std::fs::write(&path, text).unwrap();
+    let columns = ItemColumns {
+        id: "pupil".into(),
+        wave: "wave".into(),
+        form: Some("form".into()),
+        items: expand_items("q1..q6").unwrap(),
+        ..Default::default()
+    };
+    let mut options = ScoreOptions::new(Vec::new(), -100.5, 100.5, ScoreRule::Mean, 6).unwrap();
+    options.anchor = vec!["q1".into(), "q2".into()];
+    let r = score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &options).unwrap();
+    let e = &r.equating[0];
+    assert_eq!(e.design, "common items");
+    let equated: Vec<f64> = r
+        .scores
+        .iter()
+        .filter(|s| s.labels.ends_with(",B"))
+        .map(|s| s.score)
+        .collect();
+    let (m1, v1) = braid::stats::mean_var(&equated);
+    let (m0, v0) = braid::stats::mean_var(&counterfactual);
+    assert!(
+        (m1 - m0).abs() < EQUATING_ABS,
+        "equated mean {m1} against {m0} (slope {} ± {})",
+        e.slope,
+        e.slope_se
+    );
+    assert!(
+        (v1.sqrt() - v0.sqrt()).abs() < EQUATING_ABS,
+        "equated SD {} against {}",
+        v1.sqrt(),
+        v0.sqrt()
+    );
 }

@@ -122,8 +122,9 @@ fn equating_block(s: &mut String, r: &ScoreReport) {
         );
     }
     let note = format!(
-        "linear (mean–sigma) equating under random groups (Kolen & Brennan 2014): equated = intercept + slope × score, \
-         applied in scores.csv; SEs from {} seeded bootstrap replicates (seed {}).",
+        "linear equating (Kolen & Brennan 2014): mean–sigma under random groups at one wave, or chained linear through \
+         the anchor items (common items, wave \"all\"); equated = intercept + slope × score, applied in scores.csv; SEs \
+         from {} seeded bootstrap replicates (seed {}).",
         crate::score::equate::BOOTSTRAP_REPLICATES,
         r.options.seed
     );
