@@ -24,7 +24,8 @@ const HEYWOOD_FLOOR: f64 = 0.005;
 /// The one-factor model of a group of respondents.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct OneFactor {
-    /// Standardized loadings, one per item.
+    /// Standardized loadings, one per item (in a reliability entry: NaN for
+    /// an item left out because it does not vary).
     pub loadings: Vec<f64>,
     /// McDonald's ω_total of the unit-weighted sum of the keyed items.
     pub omega: f64,

@@ -258,7 +258,10 @@ fn loading_shifts(items: &[String], per_wave: &[Reliability]) -> Vec<LoadingShif
         .iter()
         .enumerate()
         .filter_map(|(j, item)| {
-            let l: Vec<f64> = fits.iter().map(|f| f.loadings[j]).collect();
+            let l: Vec<f64> = fits.iter().map(|f| f.loadings[j]).filter(|v| v.is_finite()).collect();
+            if l.len() < 2 {
+                return None;
+            }
             let range =
                 l.iter().copied().fold(f64::NEG_INFINITY, f64::max) - l.iter().copied().fold(f64::INFINITY, f64::min);
             (range > LOADING_SHIFT_FLAG).then(|| LoadingShift {

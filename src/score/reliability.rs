@@ -168,7 +168,15 @@ pub fn reliability(names: &[String], rows: &[&[f64]], wave: Option<String>, coho
         .flat_map(|&a| varying.iter().map(move |&b| (a, b)))
         .map(|(a, b)| c[a * k + b])
         .collect();
-    let one_factor = super::factor::one_factor(&sub, varying.len(), n);
+    // Loadings back in item order; an item left out has none (NaN).
+    let one_factor = super::factor::one_factor(&sub, varying.len(), n).map(|mut f| {
+        let mut full = vec![f64::NAN; k];
+        for (i, &j) in varying.iter().enumerate() {
+            full[j] = f.loadings[i];
+        }
+        f.loadings = full;
+        f
+    });
     Reliability {
         omega: one_factor.as_ref().map(|f| f.omega),
         one_factor,

@@ -431,3 +431,41 @@ fn common_item_equating_recovers_the_counterfactual_scale() {
         v0.sqrt()
     );
 }
+
+// An item that is constant at a wave is reported with a warning and left out
+// of ω there; α and the other items are still reported.
+#[test]
+fn a_constant_item_at_a_wave_is_reported_and_left_out_of_omega() {
+    let mut rng = braid::simulate::Rng::new(5);
+    let mut text = String::from("pupil,wave,q1,q2,q3,q4\n");
+    for p in 0..300 {
+        for wave in [1, 2] {
+            let t = rng.normal();
+            let cells: Vec<String> = (0..4)
+                .map(|j| {
+                    let v = (2.0 + t + 0.7 * rng.normal()).round().clamp(0.0, 4.0);
+                    // q3 is always 2 at wave 2.
+                    format!("{}", if wave == 2 && j == 2 { 2.0 } else { v })
+                })
+                .collect();
+            text.push_str(&format!("P{p},{wave},{}\n", cells.join(",")));
+        }
+    }
+    let path = temp_dir("score_constant").join("constant.csv");
+    std::fs::write(&path, text).unwrap();
+    let columns = ItemColumns {
+        id: "pupil".into(),
+        wave: "wave".into(),
+        items: expand_items("q1..q4").unwrap(),
+        ..Default::default()
+    };
+    let options = ScoreOptions::new(Vec::new(), 0.0, 4.0, ScoreRule::Mean, 3).unwrap();
+    let r = score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &options).unwrap();
+    assert_eq!(r.warning_codes, vec![braid::warning::WarningCode::ConstantItem]);
+    let w2 = &r.per_wave[1];
+    assert_eq!(w2.constant_items, vec!["q3"]);
+    let f = w2.one_factor.as_ref().expect("ω from the other three items");
+    assert_eq!(f.loadings.len(), 4);
+    assert!(f.loadings[2].is_nan() && f.loadings.iter().filter(|l| l.is_finite()).count() == 3);
+    assert!(w2.alpha.is_finite() && r.per_wave[0].constant_items.is_empty());
+}

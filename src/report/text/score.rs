@@ -154,7 +154,7 @@ fn loadings_block(s: &mut String, r: &ScoreReport) {
                 .and_then(|f| f.loadings.get(j))
                 .copied()
                 .unwrap_or(f64::NAN);
-            let _ = write!(s, "{l:>9.3}");
+            let _ = write!(s, "{:>9}", if l.is_finite() { format!("{l:.3}") } else { "—".into() });
         }
         let moved = r.loading_shifts.iter().any(|m| &m.item == item);
         let _ = writeln!(s, "{}", if moved { "   moves" } else { "" });
