@@ -14,6 +14,13 @@ fn run(file: &str, columns: ItemColumns, options: &ScoreOptions) -> ScoreReport 
     score(&input, options).unwrap()
 }
 
+/// Score an invented item file, written from `text` into a fresh folder.
+fn score_text(folder: &str, text: &str, columns: &ItemColumns, options: &ScoreOptions) -> ScoreReport {
+    let path = temp_dir(folder).join("items.csv");
+    std::fs::write(&path, text).unwrap();
+    score(&ItemInput::read(&path, columns, Default::default()).unwrap(), options).unwrap()
+}
+
 fn bfi() -> ScoreReport {
     let columns = ItemColumns {
         id: "id".into(),
@@ -212,8 +219,6 @@ fn an_item_whose_loading_moves_between_waves_is_flagged() {
             text.push_str(&format!("P{p},{wave},{}\n", row.join(",")));
         }
     }
-    let path = temp_dir("score_shift").join("shift.csv");
-    std::fs::write(&path, text).unwrap();
     let columns = ItemColumns {
         id: "pupil".into(),
         wave: "wave".into(),
@@ -221,7 +226,7 @@ fn an_item_whose_loading_moves_between_waves_is_flagged() {
         ..Default::default()
     };
     let options = ScoreOptions::new(Vec::new(), -10.5, 14.5, ScoreRule::Mean, 4).unwrap();
-    let r = score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &options).unwrap();
+    let r = score_text("score_shift", &text, &columns, &options);
     let moved: Vec<&str> = r.loading_shifts.iter().map(|m| m.item.as_str()).collect();
     assert_eq!(moved, vec!["q4"]);
 }
@@ -249,8 +254,6 @@ fn two_forms(a: f64, b: f64, seed: u64) -> ScoreReport {
             ));
         }
     }
-    let path = temp_dir(&format!("score_forms_{seed}")).join("forms.csv");
-    std::fs::write(&path, text).unwrap();
     let columns = ItemColumns {
         id: "pupil".into(),
         wave: "wave".into(),
@@ -259,7 +262,7 @@ fn two_forms(a: f64, b: f64, seed: u64) -> ScoreReport {
         ..Default::default()
     };
     let options = ScoreOptions::new(Vec::new(), -100.5, 100.5, ScoreRule::Mean, 4).unwrap();
-    score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &options).unwrap()
+    score_text(&format!("score_forms_{seed}"), &text, &columns, &options)
 }
 
 // Recovery: form B = a + b·form A on randomly equivalent groups; the mean–
@@ -396,8 +399,6 @@ fn common_item_equating_recovers_the_counterfactual_scale() {
             cells.join(",")
         ));
     }
-    let path = temp_dir("score_anchor").join("anchor.csv");
-    std::fs::write(&path, text).unwrap();
     let columns = ItemColumns {
         id: "pupil".into(),
         wave: "wave".into(),
@@ -407,7 +408,7 @@ fn common_item_equating_recovers_the_counterfactual_scale() {
     };
     let mut options = ScoreOptions::new(Vec::new(), -100.5, 100.5, ScoreRule::Mean, 6).unwrap();
     options.anchor = vec!["q1".into(), "q2".into()];
-    let r = score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &options).unwrap();
+    let r = score_text("score_anchor", &text, &columns, &options);
     let e = &r.equating[0];
     assert_eq!(e.design, "common items");
     let equated: Vec<f64> = r
@@ -451,8 +452,6 @@ fn a_constant_item_at_a_wave_is_reported_and_left_out_of_omega() {
             text.push_str(&format!("P{p},{wave},{}\n", cells.join(",")));
         }
     }
-    let path = temp_dir("score_constant").join("constant.csv");
-    std::fs::write(&path, text).unwrap();
     let columns = ItemColumns {
         id: "pupil".into(),
         wave: "wave".into(),
@@ -460,7 +459,7 @@ fn a_constant_item_at_a_wave_is_reported_and_left_out_of_omega() {
         ..Default::default()
     };
     let options = ScoreOptions::new(Vec::new(), 0.0, 4.0, ScoreRule::Mean, 3).unwrap();
-    let r = score(&ItemInput::read(&path, &columns, Default::default()).unwrap(), &options).unwrap();
+    let r = score_text("score_constant", &text, &columns, &options);
     assert_eq!(r.warning_codes, vec![braid::warning::WarningCode::ConstantItem]);
     let w2 = &r.per_wave[1];
     assert_eq!(w2.constant_items, vec!["q3"]);
