@@ -129,6 +129,33 @@ fn time_braid(file: &Path, out: &Path, school: bool, json_only: bool, memory: bo
     (wall, rss_kb / 1024.0, json["loglik"].as_f64().unwrap())
 }
 
+/// Wall times of three runs of the braid command that `setup` builds.
+fn three_runs(what: &str, setup: impl Fn(&mut Command)) -> Vec<f64> {
+    (0..3)
+        .map(|_| {
+            let mut cmd = Command::new(braid_bin());
+            setup(&mut cmd);
+            let t0 = Instant::now();
+            let o = cmd.output().expect(what);
+            let wall = t0.elapsed().as_secs_f64();
+            assert!(o.status.success(), "{what}: {}", String::from_utf8_lossy(&o.stderr));
+            wall
+        })
+        .collect()
+}
+
+/// The roles of the simulated panels.
+const PANEL_ROLES: [&str; 8] = [
+    "--id",
+    "pupil",
+    "--age",
+    "age",
+    "--outcome",
+    "score",
+    "--cohort",
+    "cohort",
+];
+
 fn median(mut v: Vec<f64>) -> f64 {
     v.sort_by(f64::total_cmp);
     v[v.len() / 2]
@@ -261,18 +288,8 @@ fn inspect(work: &Path) {
         let o = Command::new(braid_bin())
             .arg("inspect")
             .arg(&file)
-            .args([
-                "--id",
-                "pupil",
-                "--age",
-                "age",
-                "--outcome",
-                "score",
-                "--cohort",
-                "cohort",
-                "--wave",
-                "wave",
-            ])
+            .args(PANEL_ROLES)
+            .args(["--wave", "wave"])
             .args(["--quiet", "--force", "--json"])
             .arg(work.join("design.json"))
             .output()
@@ -365,29 +382,10 @@ fn anova(work: &Path) {
     d.skip = 0.0;
     let rows = write(&d, &file);
     println!("anova: 100,000 participants × 4 waves, {rows} rows");
-    let walls: Vec<f64> = (0..3)
-        .map(|_| {
-            let mut cmd = Command::new(braid_bin());
-            cmd.arg("anova").arg(&file);
-            cmd.args([
-                "--id",
-                "pupil",
-                "--age",
-                "age",
-                "--outcome",
-                "score",
-                "--cohort",
-                "cohort",
-                "--wave",
-                "wave",
-            ]);
-            cmd.args(["--quiet", "--force", "--json"]).arg(work.join("anova.json"));
-            let t0 = Instant::now();
-            let o = cmd.output().expect("run braid anova");
-            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-            t0.elapsed().as_secs_f64()
-        })
-        .collect();
+    let walls = three_runs("run braid anova", |cmd| {
+        cmd.arg("anova").arg(&file).args(PANEL_ROLES).args(["--wave", "wave"]);
+        cmd.args(["--quiet", "--force", "--json"]).arg(work.join("anova.json"));
+    });
     println!("anova: runs {walls:.2?} s, median {:.2} s", median(walls.clone()));
 }
 
@@ -419,31 +417,24 @@ fn score(work: &Path) {
         }
         std::fs::write(&file, s).expect("write the item file");
     }
-    let walls: Vec<f64> = (0..3)
-        .map(|_| {
-            let mut cmd = Command::new(braid_bin());
-            cmd.arg("score").arg(&file);
-            cmd.args([
-                "--id", "pupil", "--wave", "wave", "--cohort", "cohort", "--items", "q1..q20",
-            ]);
-            cmd.args([
-                "--reverse",
-                "q3,q7",
-                "--scale-min",
-                "0",
-                "--scale-max",
-                "4",
-                "--quiet",
-                "--force",
-                "--out",
-            ]);
-            cmd.arg(work.join("score_out"));
-            let t0 = Instant::now();
-            let o = cmd.output().expect("run braid score");
-            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-            t0.elapsed().as_secs_f64()
-        })
-        .collect();
+    let walls = three_runs("run braid score", |cmd| {
+        cmd.arg("score").arg(&file);
+        cmd.args([
+            "--id", "pupil", "--wave", "wave", "--cohort", "cohort", "--items", "q1..q20",
+        ]);
+        cmd.args([
+            "--reverse",
+            "q3,q7",
+            "--scale-min",
+            "0",
+            "--scale-max",
+            "4",
+            "--quiet",
+            "--force",
+            "--out",
+        ]);
+        cmd.arg(work.join("score_out"));
+    });
     println!(
         "score: 1,000,000 rows × 20 items, runs {walls:.2?} s, median {:.2} s",
         median(walls.clone())
@@ -465,31 +456,13 @@ fn converge(work: &Path) {
         } else {
             "converge.json"
         });
-        let walls: Vec<f64> = (0..3)
-            .map(|_| {
-                let mut cmd = Command::new(braid_bin());
-                cmd.arg("converge").arg(&file);
-                cmd.args([
-                    "--id",
-                    "pupil",
-                    "--age",
-                    "age",
-                    "--outcome",
-                    "score",
-                    "--cohort",
-                    "cohort",
-                ]);
-                cmd.args(["--wave", "wave", "--quiet", "--force", "--json"]).arg(&json);
-                if school {
-                    cmd.args(["--cluster", "school"]);
-                }
-                let t0 = Instant::now();
-                let o = cmd.output().expect("run braid converge");
-                let wall = t0.elapsed().as_secs_f64();
-                assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-                wall
-            })
-            .collect();
+        let walls = three_runs("run braid converge", |cmd| {
+            cmd.arg("converge").arg(&file).args(PANEL_ROLES);
+            cmd.args(["--wave", "wave", "--quiet", "--force", "--json"]).arg(&json);
+            if school {
+                cmd.args(["--cluster", "school"]);
+            }
+        });
         let out: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
         let m3 = out["tests"]
             .as_array()
