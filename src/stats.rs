@@ -1,5 +1,6 @@
 //! Descriptive helpers that several analyses share: the mean and sample
-//! variance, and the R² of a least-squares regression. One home each, so the
+//! variance, the R² of a least-squares regression, and the log determinant
+//! of a covariance matrix. One home each, so the
 //! design report, the retest check and the convergence tests agree.
 
 use faer::{Mat, Side};
@@ -93,6 +94,14 @@ pub fn p_words(p: f64) -> String {
         "<.0001" => "p < .0001".into(),
         v => format!("p = {v}"),
     }
+}
+
+/// log det of a symmetric positive definite matrix, from its Cholesky
+/// factor (None when the matrix is not positive definite).
+pub fn log_det(m: &Mat<f64>) -> Option<f64> {
+    let llt = m.llt(Side::Lower).ok()?;
+    let l = llt.L();
+    Some((0..m.nrows()).map(|i| 2.0 * l[(i, i)].ln()).sum())
 }
 
 #[cfg(test)]

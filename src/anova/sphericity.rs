@@ -3,11 +3,12 @@
 //! Huynh–Feldt epsilons, Mauchly's test, and Box's M test of equal
 //! covariance matrices across cohorts.
 
-use faer::{Mat, Side};
+use faer::Mat;
 use serde::Serialize;
 
 use super::table::Complete;
 use crate::infer::hypothesis::chi2_sf;
+use crate::stats::log_det;
 
 /// Mauchly's test of sphericity.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -108,13 +109,6 @@ pub fn epsilon_hf(gg: f64, n: usize, groups: usize, d: usize) -> f64 {
     let num = (n - g + 1.0) * d * gg - 2.0;
     let den = d * (n - g - d * gg);
     if den <= 0.0 { 1.0 } else { (num / den).min(1.0) }
-}
-
-/// log det of a symmetric positive definite matrix (None if it is not).
-fn log_det(m: &Mat<f64>) -> Option<f64> {
-    let llt = m.llt(Side::Lower).ok()?;
-    let l = llt.L();
-    Some((0..m.nrows()).map(|i| 2.0 * l[(i, i)].ln()).sum())
 }
 
 /// Mauchly's test on the contrast covariance `m` with `df` residual degrees

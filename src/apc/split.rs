@@ -33,14 +33,6 @@ pub struct SplitSpline {
     detrend: Vec<(f64, f64, f64)>,
 }
 
-/// The value at probability `q` of sorted values (linear interpolation).
-fn quantile(sorted: &[f64], q: f64) -> f64 {
-    let h = q * (sorted.len() - 1) as f64;
-    let lo = h.floor() as usize;
-    let hi = (lo + 1).min(sorted.len() - 1);
-    sorted[lo] + (h - lo as f64) * (sorted[hi] - sorted[lo])
-}
-
 impl SplitSpline {
     /// The spline for these values, with at most `max_knots` knots.
     pub fn fit(x: &[f64], max_knots: usize) -> SplitSpline {
@@ -53,7 +45,7 @@ impl SplitSpline {
             let range = sorted[sorted.len() - 1] - sorted[0];
             let gap = KNOT_GAP * range / (max_knots - 1) as f64;
             for k in 0..max_knots {
-                let v = quantile(&sorted, k as f64 / (max_knots - 1) as f64);
+                let v = crate::spec::basis::quantile_sorted(&sorted, k as f64 / (max_knots - 1) as f64);
                 match knots.last() {
                     Some(&last) if v - last < gap => {
                         // Keep the outer knot at the end of the data.

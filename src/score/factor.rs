@@ -42,16 +42,6 @@ pub struct OneFactor {
     pub converged: bool,
 }
 
-fn log_det(m: &Mat<f64>) -> f64 {
-    match m.llt(Side::Lower) {
-        Ok(l) => {
-            let l = l.L();
-            (0..m.nrows()).map(|i| 2.0 * l[(i, i)].ln()).sum()
-        }
-        Err(_) => f64::NAN,
-    }
-}
-
 /// Fit one factor to the k × k covariance `s` of `n` respondents.
 pub fn one_factor(s: &[f64], k: usize, n: usize) -> Option<OneFactor> {
     if k < 3 || n <= k || (0..k).any(|j| s[j * k + j].is_nan() || s[j * k + j] <= 0.0) {
@@ -98,7 +88,8 @@ pub fn one_factor(s: &[f64], k: usize, n: usize) -> Option<OneFactor> {
     let trace: f64 = (0..k)
         .map(|i| (0..k).map(|j| sm[(i, j)] * inv[(j, i)]).sum::<f64>())
         .sum();
-    let f = log_det(&sigma) + trace - log_det(&sm) - k as f64;
+    let ld = |m: &Mat<f64>| crate::stats::log_det(m).unwrap_or(f64::NAN);
+    let f = ld(&sigma) + trace - ld(&sm) - k as f64;
     let kf = k as f64;
     let chi2 = ((n as f64 - 1.0 - (2.0 * kf + 5.0) / 6.0) * f).max(0.0);
     let df = kf * (kf - 3.0) / 2.0;
