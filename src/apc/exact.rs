@@ -572,8 +572,6 @@ fn solutions(
     ];
     let (aa, ap) = (full.coef[1], full.coef[2]);
     let mut out = Vec::new();
-    let mut fitted_first: Option<Vec<f64>> = None;
-    let mut max_diff: f64 = 0.0;
     for c in chosen {
         // t = w[0] α_a + w[1] α_p.
         let (w, description) = match c {
@@ -597,30 +595,25 @@ fn solutions(
                 .max(0.0)
                 .sqrt()
         });
-        // The linear part of every record's fitted value under this solution.
-        let fitted: Vec<f64> = (0..input.y.len())
-            .map(|k| {
-                let (a, p) = (input.age[k], input.period[k]);
-                let c = p - a;
-                slopes[0] * (a - layout.splines[0].mean)
-                    + slopes[1] * (p - layout.splines[1].mean)
-                    + slopes[2] * (c - (layout.splines[1].mean - layout.splines[0].mean))
-            })
-            .collect();
-        match &fitted_first {
-            None => fitted_first = Some(fitted),
-            Some(f0) => {
-                for (x, y) in f0.iter().zip(&fitted) {
-                    max_diff = max_diff.max((x - y).abs());
-                }
-            }
-        }
         out.push(ExactSolution {
             constraint: c,
             description: description.into(),
             slopes,
             se,
         });
+    }
+    // The linear part of each record's fitted value under every solution,
+    // against the first solution's, in one pass.
+    let (ma, mp) = (layout.splines[0].mean, layout.splines[1].mean);
+    let mut max_diff: f64 = 0.0;
+    for k in 0..input.y.len() {
+        let (a, p) = (input.age[k], input.period[k]);
+        let x = [a - ma, p - mp, (p - a) - (mp - ma)];
+        let linear = |s: &ExactSolution| s.slopes.iter().zip(&x).map(|(b, v)| b * v).sum::<f64>();
+        let first = out.first().map_or(0.0, linear);
+        for sol in out.iter().skip(1) {
+            max_diff = max_diff.max((linear(sol) - first).abs());
+        }
     }
     (out, max_diff)
 }
