@@ -22,13 +22,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         &[("age", age), ("period", period), ("outcome", outcome)],
         ReadOptions::default(),
     )?;
-    let input = ExactInput {
-        age: &t.columns[0],
-        period: &t.columns[1],
-        y: &t.columns[2],
-        ids: None,
-        clusters: None,
-    };
+    let input = ExactInput::records(&t.columns[0], &t.columns[1], &t.columns[2]);
     let (names, rows) = basis(&input);
     let mut s = format!("age,period,outcome,{}\n", names.join(","));
     for (k, row) in rows.iter().enumerate() {

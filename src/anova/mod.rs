@@ -219,6 +219,42 @@ pub struct Analysis {
     pub mixed_model_comparison: MixedComparison,
 }
 
+impl Analysis {
+    /// Every p-value printed, named, in screen order: the table (uncorrected,
+    /// GG and HF), Mauchly, Box's M, the mixed model, then each cohort's
+    /// GG-corrected simple effect under one name (Holm's adjusted values are
+    /// left out: they control a family, not one test).
+    pub fn p_values(&self) -> Vec<(&'static str, f64)> {
+        let e = &self.effects;
+        let mut v = vec![("cohort", e[0].p)];
+        for (name, i) in [("wave", 1), ("cohort × wave", 2)] {
+            v.push((name, e[i].p));
+            v.push((
+                if i == 1 { "wave GG" } else { "cohort × wave GG" },
+                e[i].p_gg.unwrap_or(f64::NAN),
+            ));
+            v.push((
+                if i == 1 { "wave HF" } else { "cohort × wave HF" },
+                e[i].p_hf.unwrap_or(f64::NAN),
+            ));
+        }
+        v.push(("Mauchly", self.sphericity.as_ref().map_or(f64::NAN, |s| s.p)));
+        v.push(("Box's M", self.box_m.as_ref().map_or(f64::NAN, |b| b.p)));
+        for (name, t) in ["mixed model wave", "mixed model cohort × wave"]
+            .iter()
+            .zip(&self.mixed_model_comparison.tests)
+        {
+            v.push((name, t.p));
+        }
+        v.extend(
+            self.simple_effects
+                .iter()
+                .map(|s| ("simple effect of wave (GG)", s.p_gg)),
+        );
+        v
+    }
+}
+
 /// The table, the sphericity and covariance tests, the simple effects and
 /// the mixed model of complete cases (for simulations that build
 /// [`Complete`] directly).

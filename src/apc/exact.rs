@@ -169,6 +169,19 @@ pub struct ExactInput<'a> {
     pub clusters: Option<&'a [u32]>,
 }
 
+impl<'a> ExactInput<'a> {
+    /// Records without participants (repeated cross-sections).
+    pub fn records(age: &'a [f64], period: &'a [f64], y: &'a [f64]) -> ExactInput<'a> {
+        ExactInput {
+            age,
+            period,
+            y,
+            ids: None,
+            clusters: None,
+        }
+    }
+}
+
 /// Column layout of the full design.
 struct Layout {
     splines: [SplitSpline; 3],
@@ -641,13 +654,7 @@ mod tests {
         let y: Vec<f64> = (0..n)
             .map(|k| 5.0 + ba * age[k] + bp * period[k] + bc * (period[k] - age[k]))
             .collect();
-        let input = ExactInput {
-            age: &age,
-            period: &period,
-            y: &y,
-            ids: None,
-            clusters: None,
-        };
+        let input = ExactInput::records(&age, &period, &y);
         let r = fit(&input, &[]).unwrap();
         let tol = 1e-8;
         assert!((r.identified[0].estimate - (bp + bc)).abs() < tol, "{:?}", r.identified);

@@ -480,13 +480,7 @@ fn exact_value_fit_matches_the_reference_least_squares_on_its_columns() {
         Default::default(),
     )
     .unwrap();
-    let input = ExactInput {
-        age: &t.columns[0],
-        period: &t.columns[1],
-        y: &t.columns[2],
-        ids: None,
-        clusters: None,
-    };
+    let input = ExactInput::records(&t.columns[0], &t.columns[1], &t.columns[2]);
     let (names, rows) = basis(&input);
     let want_names: Vec<&str> = reference["columns"]
         .as_array()
@@ -575,13 +569,7 @@ fn exact_value_fit_ignores_row_order_and_the_calendar_origin() {
             pick(1).iter().map(|p| p + shift).collect::<Vec<f64>>(),
             pick(2),
         );
-        let input = ExactInput {
-            age: &age,
-            period: &period,
-            y: &y,
-            ids: None,
-            clusters: None,
-        };
+        let input = ExactInput::records(&age, &period, &y);
         fit(&input, &[]).unwrap()
     };
     let base = run(&(0..n).collect::<Vec<_>>(), 0.0);
