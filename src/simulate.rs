@@ -94,6 +94,37 @@ pub struct Truth {
     /// order (empty: cohorts converge, no shift).
     #[serde(default)]
     pub cohort_shift: Vec<f64>,
+    /// Added to every assessment after a participant's first (a retest
+    /// effect; 0 for none).
+    #[serde(default)]
+    pub retest: f64,
+    /// A shift of every assessment from a calendar time on (none when absent).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub period_shock: Option<PeriodShock>,
+}
+
+/// A period shock: every assessment at or after `from_year` years since the
+/// first wave is shifted by `size`.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PeriodShock {
+    /// Years since the first wave at which the shock starts.
+    pub from_year: f64,
+    /// The shift, in outcome units.
+    pub size: f64,
+}
+
+/// How a simulation draws its random numbers.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Streams {
+    /// One sequence for the whole study (the demo's).
+    #[default]
+    Single,
+    /// One sequence per cohort and one for the clusters, so that the first n
+    /// participants of a cohort are the same for every n: common random
+    /// numbers across sample sizes, for planning.
+    PerCohort,
 }
 
 impl Truth {
@@ -127,6 +158,28 @@ pub struct Design {
     pub skip: f64,
     /// The truth.
     pub truth: Truth,
+    /// Wave times in years since the first wave (empty: `waves` waves
+    /// `wave_gap` apart).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub wave_times: Vec<f64>,
+    /// Width of the uniform spread of entry ages around each cohort's entry
+    /// age, years.
+    #[serde(default = "default_age_spread")]
+    pub age_spread: f64,
+    /// Width of the uniform jitter of each assessment around its wave time, years.
+    #[serde(default = "default_jitter")]
+    pub jitter: f64,
+    /// How random numbers are drawn.
+    #[serde(default)]
+    pub streams: Streams,
+}
+
+fn default_age_spread() -> f64 {
+    1.0
+}
+
+fn default_jitter() -> f64 {
+    0.2
 }
 
 impl Design {
@@ -152,7 +205,22 @@ impl Design {
                 sd_school: 2.0,
                 sd_residual: 3.0,
                 cohort_shift: Vec::new(),
+                retest: 0.0,
+                period_shock: None,
             },
+            wave_times: Vec::new(),
+            age_spread: default_age_spread(),
+            jitter: default_jitter(),
+            streams: Streams::Single,
+        }
+    }
+
+    /// The wave times in years since the first wave.
+    pub fn offsets(&self) -> Vec<f64> {
+        if self.wave_times.is_empty() {
+            (0..self.waves).map(|w| w as f64 * self.wave_gap).collect()
+        } else {
+            self.wave_times.clone()
         }
     }
 }
@@ -191,55 +259,100 @@ pub struct Simulated {
 /// Simulate a study from a design.
 pub fn simulate(design: &Design) -> Simulated {
     let mut rng = Rng::new(design.seed);
+    let schools = design.schools.max(1);
     let t = &design.truth;
-    let mut school_effect = Vec::with_capacity(design.schools.max(1));
-    for _ in 0..design.schools.max(1) {
+    let mut school_effect = Vec::with_capacity(schools);
+    for _ in 0..schools {
         school_effect.push(t.sd_school * rng.normal());
     }
-    let rho = t.correlation.clamp(-1.0, 1.0);
+    let offsets = design.offsets();
     let mut rows = Vec::new();
-    let mut serial = 0usize;
     for (c, &entry) in design.entry_ages.iter().enumerate() {
-        let shift = t.cohort_shift.get(c).copied().unwrap_or(0.0);
-        for _ in 0..design.per_cohort {
-            serial += 1;
-            let id = format!("P{serial:06}");
-            let school = (rng.uniform() * design.schools.max(1) as f64) as usize % design.schools.max(1);
-            let (z1, z2) = (rng.normal(), rng.normal());
-            let b0 = t.sd_intercept * z1;
-            let b1 = t.sd_slope * (rho * z1 + (1.0 - rho * rho).sqrt() * z2);
-            let age0 = entry + rng.uniform() - 0.5;
-            let mut present = true;
-            for w in 0..design.waves {
-                if w > 0 && rng.uniform() < design.dropout {
-                    present = false;
-                }
-                if !present {
-                    break;
-                }
-                let missed = w > 0 && rng.uniform() < design.skip;
-                let offset = w as f64 * design.wave_gap + 0.2 * (rng.uniform() - 0.5);
-                let age = age0 + offset;
-                let e = t.sd_residual * rng.normal();
-                if missed {
-                    continue;
-                }
-                let score = t.mean_at(age) + shift + b0 + b1 * (age - t.center) + school_effect[school] + e;
-                rows.push(SimRow {
-                    id: id.clone(),
-                    school: format!("S{:02}", school + 1),
-                    cohort: format!("{}", entry),
-                    wave: w + 1,
-                    year: f64::from(design.first_year) + FIELDWORK_START + offset,
-                    age,
-                    score,
-                });
+        let mut own;
+        let rng = match design.streams {
+            Streams::Single => &mut rng,
+            Streams::PerCohort => {
+                own = Rng::new(stream_seed(design.seed, c as u64 + 1));
+                &mut own
             }
+        };
+        let shift = t.cohort_shift.get(c).copied().unwrap_or(0.0);
+        for k in 0..design.per_cohort {
+            let serial = match design.streams {
+                Streams::Single => c * design.per_cohort + k + 1,
+                Streams::PerCohort => (c + 1) * 1_000_000 + k + 1,
+            };
+            let who = Participant {
+                id: format!("P{serial:06}"),
+                entry,
+                shift,
+            };
+            who.assessments(design, &offsets, &school_effect, rng, &mut rows);
         }
     }
     Simulated {
         design: design.clone(),
         rows,
+    }
+}
+
+/// The seed of stream `k` of a simulation seeded with `seed` (SplitMix64 of
+/// the pair, so streams do not overlap in practice).
+pub fn stream_seed(seed: u64, k: u64) -> u64 {
+    let mut rng = Rng::new(seed ^ k.wrapping_mul(0xD1B5_4A32_D192_ED03));
+    rng.next_u64()
+}
+
+/// One simulated participant before their assessments are drawn.
+struct Participant {
+    id: String,
+    entry: f64,
+    shift: f64,
+}
+
+impl Participant {
+    /// Draw this participant's school, random effects, dropout and
+    /// assessments, in the order the demo has always used.
+    fn assessments(&self, design: &Design, offsets: &[f64], school_effect: &[f64], rng: &mut Rng, rows: &mut Vec<SimRow>) {
+        let t = &design.truth;
+        let schools = school_effect.len();
+        let rho = t.correlation.clamp(-1.0, 1.0);
+        let school = (rng.uniform() * schools as f64) as usize % schools;
+        let (z1, z2) = (rng.normal(), rng.normal());
+        let b0 = t.sd_intercept * z1;
+        let b1 = t.sd_slope * (rho * z1 + (1.0 - rho * rho).sqrt() * z2);
+        // Written so that a spread of 1 gives the demo's ages bit for bit.
+        let age0 = self.entry + design.age_spread * rng.uniform() - design.age_spread / 2.0;
+        let mut present = true;
+        let mut seen = 0usize;
+        for (w, &time) in offsets.iter().enumerate() {
+            if w > 0 && rng.uniform() < design.dropout {
+                present = false;
+            }
+            if !present {
+                break;
+            }
+            let missed = w > 0 && rng.uniform() < design.skip;
+            let offset = time + design.jitter * (rng.uniform() - 0.5);
+            let age = age0 + offset;
+            let e = t.sd_residual * rng.normal();
+            if missed {
+                continue;
+            }
+            let retest = if seen > 0 { t.retest } else { 0.0 };
+            let shock = t.period_shock.filter(|p| offset >= p.from_year).map_or(0.0, |p| p.size);
+            seen += 1;
+            let score = t.mean_at(age) + self.shift + b0 + b1 * (age - t.center) + school_effect[school] + e + retest + shock;
+            rows.push(SimRow {
+                id: self.id.clone(),
+                school: format!("S{:02}", school + 1),
+                cohort: format!("{}", self.entry),
+                wave: w + 1,
+                year: f64::from(design.first_year) + FIELDWORK_START + offset,
+                age,
+                score,
+            });
+        }
     }
 }
 
