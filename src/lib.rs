@@ -160,6 +160,7 @@ pub mod error;
 pub mod infer;
 pub mod linkage;
 pub mod lmm;
+pub mod plan;
 pub mod report;
 pub mod score;
 pub mod simulate;

@@ -3,6 +3,7 @@
 //! of a covariance matrix. One home each, so the
 //! design report, the retest check and the convergence tests agree.
 
+use faer::linalg::solvers::DenseSolveCore;
 use faer::{Mat, Side};
 
 /// The arithmetic mean (NaN for an empty slice).
@@ -102,6 +103,12 @@ pub fn log_det(m: &Mat<f64>) -> Option<f64> {
     let llt = m.llt(Side::Lower).ok()?;
     let l = llt.L();
     Some((0..m.nrows()).map(|i| 2.0 * l[(i, i)].ln()).sum())
+}
+
+/// The inverse of a symmetric positive definite matrix, from its Cholesky
+/// factor (None when the matrix is not positive definite).
+pub fn spd_inverse(m: &Mat<f64>) -> Option<Mat<f64>> {
+    Some(m.llt(Side::Lower).ok()?.inverse())
 }
 
 #[cfg(test)]

@@ -24,6 +24,11 @@ pub enum WarningCode {
     UncommonWaves,
     /// An item has no variance at a wave.
     ConstantItem,
+    /// A plan's population has an effect that the analysis does not model,
+    /// or its figures rest on expected information alone.
+    UnmodelledEffect,
+    /// Some of a plan's simulated replicates could not be fitted.
+    FailedReplicates,
 }
 
 /// A warning: its code and its message.

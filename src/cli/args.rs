@@ -48,8 +48,75 @@ pub enum Command {
     Anova(Box<AnovaArgs>),
     /// Score multi-item scales per wave, with reliability per wave, cohort and cohort × wave.
     Score(Box<ScoreArgs>),
+    /// Plan a study before collecting it: power, precision and cost of candidate designs.
+    Plan(Box<PlanArgs>),
     /// Print a completion script for a shell, to be sourced by its start-up file.
     Completions(CompletionsArgs),
+}
+
+/// How `braid plan` answers.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum RouteArg {
+    /// Expected information only: fast, no simulation.
+    Information,
+    /// Simulation only.
+    Simulation,
+    /// Both, side by side; the simulation decides.
+    Both,
+}
+
+/// Flags of `braid plan`.
+#[derive(Debug, Clone, Args)]
+#[command(args_conflicts_with_subcommands = true, subcommand_negates_reqs = true)]
+pub struct PlanArgs {
+    /// Merge the shards of a sharded run.
+    #[command(subcommand)]
+    pub merge: Option<PlanCommand>,
+    /// The plan file (TOML): [[design]] tables, [population], [costs], [targets], [simulation] and [search].
+    #[arg(value_name = "PLAN.toml", value_hint = ValueHint::FilePath, required = true)]
+    pub plan: Option<PathBuf>,
+    /// Take the assumed population from a pilot study's fit.json (in place of the plan's [population]).
+    #[arg(long, value_name = "FIT.json", value_hint = ValueHint::FilePath)]
+    pub from: Option<PathBuf>,
+    /// Answer by expected information, by simulation, or both [default: the plan's, else both].
+    #[arg(long, value_enum)]
+    pub route: Option<RouteArg>,
+    /// The most replicates per design and n [default: the plan's, else 1000].
+    #[arg(long, value_name = "N")]
+    pub replicates: Option<usize>,
+    /// Stop once every power's Monte Carlo SE is at most this; 0 runs every replicate [default: the plan's, else 0.01].
+    #[arg(long, value_name = "SE")]
+    pub precision: Option<f64>,
+    /// Seed of every random step [default: the plan's].
+    #[arg(long, value_name = "N")]
+    pub seed: Option<u64>,
+    /// Evaluate every design at this many participants per cohort instead of searching.
+    #[arg(long, value_name = "N")]
+    pub per_cohort: Option<usize>,
+    /// Run replicate block K of N only (a cluster's job array); join the shards with `braid plan merge`.
+    #[arg(long, value_name = "K/N")]
+    pub shard: Option<String>,
+    /// Where the results go: --out writes plan.json and the figures (a shard writes plan-shard.json).
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// The subcommand of `braid plan`.
+#[derive(Debug, Clone, Subcommand)]
+pub enum PlanCommand {
+    /// Join the plan-shard.json files of every shard of one run into the plan's report.
+    Merge(PlanMergeArgs),
+}
+
+/// Flags of `braid plan merge`.
+#[derive(Debug, Clone, Args)]
+pub struct PlanMergeArgs {
+    /// Every shard's plan-shard.json.
+    #[arg(value_name = "SHARD.json", required = true, value_hint = ValueHint::FilePath)]
+    pub shards: Vec<PathBuf>,
+    /// Where the results go: --out writes plan.json and the figures.
+    #[command(flatten)]
+    pub output: OutputArgs,
 }
 
 /// Arguments of `braid completions`.

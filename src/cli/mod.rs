@@ -5,6 +5,7 @@
 pub mod args;
 pub mod config;
 pub mod emit;
+pub mod progress;
 pub mod routes;
 
 use std::path::{Path, PathBuf};
@@ -76,6 +77,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Apc(a) => apc_command(&a),
         Command::Anova(a) => anova_command(&a),
         Command::Score(a) => score_command(&a),
+        Command::Plan(a) => plan_command(&a),
         Command::Completions(a) => {
             completions_command(&a);
             Ok(())
@@ -140,6 +142,29 @@ fn score_command(a: &args::ScoreArgs) -> Result<()> {
     let emitter = Emitter::new(&a.output)?;
     let input = crate::score::ItemInput::read(&source.data, &columns, source.read)?;
     emitter.emit(&crate::score::score(&input, &options)?)
+}
+
+/// `braid plan`: read the plan, answer it (or one shard of it), report;
+/// `braid plan merge`: join the shards.
+fn plan_command(a: &args::PlanArgs) -> Result<()> {
+    if let Some(args::PlanCommand::Merge(m)) = &a.merge {
+        let emitter = Emitter::new(&m.output)?;
+        let shards: Vec<_> = m.shards.iter().map(|p| crate::plan::shard::read(p)).collect::<Result<_>>()?;
+        return emitter.emit(&crate::plan::shard::merge(&shards)?);
+    }
+    let (plan, population_source, shard) = a.options()?;
+    let emitter = Emitter::new(&a.output)?;
+    let bar = progress::bar(a.output.quiet, "replicates");
+    let context = crate::plan::RunContext {
+        population_source,
+        progress: &|k| bar.inc(k as u64),
+    };
+    let result = match shard {
+        Some(s) => emitter.emit(&crate::plan::shard::run_shard(&plan, s, &context)?),
+        None => emitter.emit(&crate::plan::run(&plan, &context)?),
+    };
+    bar.finish_and_clear();
+    result
 }
 
 /// `braid apc`: read a table of counts or records, fit, and report what is identified.

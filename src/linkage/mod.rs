@@ -267,40 +267,102 @@ impl Linkage {
     }
 }
 
+/// The first step of the sequence, shared by [`converge`] and
+/// [`level_test`]: the linked cohorts, M0's frame and the ML fits of M0 and M1.
+struct LevelPair {
+    linkage: Linkage,
+    k_of: Vec<usize>,
+    spec0: ModelSpec,
+    frame: spec::ModelFrame,
+    columns: columns::CohortColumns,
+    m0: Fit,
+    m1: Fit,
+}
+
+impl LevelPair {
+    fn fit(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> Result<LevelPair> {
+        options.validate()?;
+        let linkage = Linkage::find(panel, options)?;
+        let k_of: Vec<usize> = linkage
+            .cohort
+            .labels
+            .iter()
+            .map(|l| linkage.cohorts.iter().position(|c| c == l))
+            .collect::<Option<_>>()
+            .ok_or_else(|| Error::Data {
+                path: panel.source.clone(),
+                message: "a row's cohort is not among the cohorts of the design".into(),
+            })?;
+        let spec0 = ModelSpec {
+            center: Some(linkage.reference_age),
+            ..model.clone()
+        };
+        let frame = spec::build_frame(panel, &spec0)?;
+        let columns = columns::CohortColumns::new(&frame, &linkage.cohorts, &k_of);
+        let p1 = with_columns(&frame.problem, &columns.level_names, &columns.level_cols);
+        let m0 = fit_with(&frame.problem, Method::Ml)?;
+        let m1 = fit_with(&p1, Method::Ml)?;
+        Ok(LevelPair {
+            linkage,
+            k_of,
+            spec0,
+            frame,
+            columns,
+            m0,
+            m1,
+        })
+    }
+
+    /// The likelihood-ratio test of M1 against M0.
+    fn test(&self) -> TestResult {
+        let kc = self.linkage.cohorts.len() - 1;
+        likelihood_ratio(
+            "M1 vs M0: cohorts differ in level",
+            self.m0.loglik,
+            self.m1.loglik,
+            kc,
+            false,
+        )
+        .of_kind(TestKind::CohortLevel)
+    }
+}
+
+/// The test of cohort level differences alone (M1 against M0, by likelihood
+/// ratio): the same fits and test as in [`converge`], without the rest of
+/// the sequence. For planning, which repeats it on thousands of replicates.
+///
+/// # Errors
+/// As [`converge`].
+pub fn level_test(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> Result<TestResult> {
+    Ok(LevelPair::fit(panel, model, options)?.test())
+}
+
 /// Run the convergence analysis.
 ///
 /// # Errors
 /// [`Error::Data`] with fewer than two cohorts, or no overlap between any
 /// neighbours; errors of the model frame and the fits.
 pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> Result<ConvergeReport> {
-    options.validate()?;
-    let Linkage {
-        cohort,
-        cohorts,
-        linked,
-        reference_age,
-    } = Linkage::find(panel, options)?;
-    let k_of: Vec<usize> = cohort
-        .labels
-        .iter()
-        .map(|l| cohorts.iter().position(|c| c == l))
-        .collect::<Option<_>>()
-        .ok_or_else(|| Error::Data {
-            path: panel.source.clone(),
-            message: "a row's cohort is not among the cohorts of the design".into(),
-        })?;
-    let spec0 = ModelSpec {
-        center: Some(reference_age),
-        ..model.clone()
-    };
-    let frame = spec::build_frame(panel, &spec0)?;
+    let pair = LevelPair::fit(panel, model, options)?;
+    let level = pair.test();
+    let LevelPair {
+        linkage:
+            Linkage {
+                cohort,
+                cohorts,
+                linked,
+                reference_age,
+            },
+        k_of,
+        spec0,
+        frame,
+        columns,
+        m0,
+        m1,
+    } = pair;
     let nb = frame.basis.n_columns();
-    let columns = columns::CohortColumns::new(&frame, &cohorts, &k_of);
     let p0 = frame.problem.p();
-    let p1 = with_columns(&frame.problem, &columns.level_names, &columns.level_cols);
     let p2 = columns.full_problem(&frame.problem);
-    let m0 = fit_with(&frame.problem, Method::Ml)?;
-    let m1 = fit_with(&p1, Method::Ml)?;
     let m2 = fit_with(&p2, Method::Ml)?;
     let m2r = fit_with(&p2, Method::Reml)?;
     let kc = cohorts.len() - 1;
@@ -325,8 +387,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
             .collect()
     };
     let mut tests = vec![
-        likelihood_ratio("M1 vs M0: cohorts differ in level", m0.loglik, m1.loglik, kc, false)
-            .of_kind(TestKind::CohortLevel),
+        level,
         likelihood_ratio(
             "M2 vs M1: cohorts differ in age trend",
             m1.loglik,

@@ -145,3 +145,35 @@ impl Render for ApcReport {
         apc_figure::write(dir, self)
     }
 }
+
+impl Render for crate::plan::PlanReport {
+    const JSON_FILE: &'static str = crate::plan::JSON_FILE;
+
+    fn text(&self) -> String {
+        text::plan_summary(self)
+    }
+
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        super::plan_figure::figures(dir, self)
+    }
+}
+
+impl Render for crate::plan::shard::ShardOutput {
+    const JSON_FILE: &'static str = crate::plan::shard::JSON_FILE;
+
+    fn text(&self) -> String {
+        let replicates: usize = self.evaluations.iter().map(|e| e.outcomes.len()).sum();
+        format!(
+            "braid plan · shard {} of {}: {} replicates over {} evaluations (design × n); merge every shard's {} to read the plan\n",
+            self.shard.k,
+            self.shard.n,
+            replicates,
+            self.evaluations.len(),
+            Self::JSON_FILE
+        )
+    }
+
+    fn write_files(&self, _dir: &Path) -> Result<Vec<String>> {
+        Ok(Vec::new())
+    }
+}

@@ -7,6 +7,7 @@ mod apc;
 mod converge;
 mod design;
 mod fit;
+mod plan;
 mod score;
 
 use std::fmt::Write;
@@ -16,6 +17,7 @@ pub use apc::apc_summary;
 pub use converge::converge_summary;
 pub use design::design_summary;
 pub use fit::fit_summary;
+pub use plan::plan_summary;
 pub use score::score_summary;
 
 use crate::data::DataSummary;
