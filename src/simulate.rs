@@ -313,7 +313,14 @@ struct Participant {
 impl Participant {
     /// Draw this participant's school, random effects, dropout and
     /// assessments, in the order the demo has always used.
-    fn assessments(&self, design: &Design, offsets: &[f64], school_effect: &[f64], rng: &mut Rng, rows: &mut Vec<SimRow>) {
+    fn assessments(
+        &self,
+        design: &Design,
+        offsets: &[f64],
+        school_effect: &[f64],
+        rng: &mut Rng,
+        rows: &mut Vec<SimRow>,
+    ) {
         let t = &design.truth;
         let schools = school_effect.len();
         let rho = t.correlation.clamp(-1.0, 1.0);
@@ -342,7 +349,8 @@ impl Participant {
             let retest = if seen > 0 { t.retest } else { 0.0 };
             let shock = t.period_shock.filter(|p| offset >= p.from_year).map_or(0.0, |p| p.size);
             seen += 1;
-            let score = t.mean_at(age) + self.shift + b0 + b1 * (age - t.center) + school_effect[school] + e + retest + shock;
+            let score =
+                t.mean_at(age) + self.shift + b0 + b1 * (age - t.center) + school_effect[school] + e + retest + shock;
             rows.push(SimRow {
                 id: self.id.clone(),
                 school: format!("S{:02}", school + 1),

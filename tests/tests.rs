@@ -20,6 +20,8 @@ mod grouped; // group-specific covariances: the separable identity and recovery
 mod invariance; // row order, id recoding, shifting and scaling age
 #[path = "suite/linkage.rs"]
 mod linkage; // convergence tests: reference likelihood ratios, size and power
+#[path = "suite/plan.rs"]
+mod plan; // planning: the closed-form SE, simulated power and size, shards, bad plans
 #[path = "suite/recovery.rs"]
 mod recovery; // seeded simulations recover the known truth
 #[path = "suite/reference.rs"]

@@ -149,7 +149,11 @@ fn score_command(a: &args::ScoreArgs) -> Result<()> {
 fn plan_command(a: &args::PlanArgs) -> Result<()> {
     if let Some(args::PlanCommand::Merge(m)) = &a.merge {
         let emitter = Emitter::new(&m.output)?;
-        let shards: Vec<_> = m.shards.iter().map(|p| crate::plan::shard::read(p)).collect::<Result<_>>()?;
+        let shards: Vec<_> = m
+            .shards
+            .iter()
+            .map(|p| crate::plan::shard::read(p))
+            .collect::<Result<_>>()?;
         return emitter.emit(&crate::plan::shard::merge(&shards)?);
     }
     let (plan, population_source, shard) = a.options()?;

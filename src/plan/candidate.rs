@@ -133,7 +133,10 @@ impl CandidateSpec {
         };
         let ascending = |v: &[f64]| v.iter().all(|a| a.is_finite()) && v.windows(2).all(|w| w[0] < w[1]);
         if !ascending(&entry_ages) {
-            return Err(spec_error(&key("entry_ages"), "entry ages must be finite and strictly increasing".into()));
+            return Err(spec_error(
+                &key("entry_ages"),
+                "entry ages must be finite and strictly increasing".into(),
+            ));
         }
         if !ascending(&wave_times) || wave_times[0] != 0.0 || wave_times.len() > 12 {
             return Err(spec_error(
@@ -166,7 +169,10 @@ impl CandidateSpec {
             }
         };
         if self.per_cohort.is_some_and(|n| n < 2) {
-            return Err(spec_error(&key("per_cohort"), "give at least 2 participants per cohort".into()));
+            return Err(spec_error(
+                &key("per_cohort"),
+                "give at least 2 participants per cohort".into(),
+            ));
         }
         Ok(Candidate {
             name: self.name.clone(),

@@ -145,7 +145,10 @@ impl Population {
         if !(self.correlation.is_finite() && self.correlation.abs() < 1.0) {
             return Err(spec_error(
                 "population.correlation",
-                format!("{} is not a usable correlation; give a value strictly between -1 and 1", self.correlation),
+                format!(
+                    "{} is not a usable correlation; give a value strictly between -1 and 1",
+                    self.correlation
+                ),
             ));
         }
         if self.mean.is_empty() || self.mean.len() > 5 || self.mean.iter().any(|v| !v.is_finite()) {
@@ -178,8 +181,8 @@ impl Population {
             path: path.to_path_buf(),
             message,
         };
-        let v: serde_json::Value =
-            serde_json::from_str(text).map_err(|e| bad(format!("not a JSON file: {e}; give a fit.json written by braid")))?;
+        let v: serde_json::Value = serde_json::from_str(text)
+            .map_err(|e| bad(format!("not a JSON file: {e}; give a fit.json written by braid")))?;
         let basis = &v["basis"];
         if basis["kind"].as_str() != Some("polynomial") {
             return Err(bad(
@@ -526,19 +529,28 @@ impl Plan {
         let population = self.population()?;
         population.validate()?;
         if self.designs.is_empty() {
-            return Err(spec_error("design", "the plan has no [[design]] tables; add at least one".into()));
+            return Err(spec_error(
+                "design",
+                "the plan has no [[design]] tables; add at least one".into(),
+            ));
         }
         let designs: Vec<Candidate> = self.designs.iter().map(CandidateSpec::resolve).collect::<Result<_>>()?;
         let mut names = std::collections::BTreeSet::new();
         for d in &designs {
             if !names.insert(d.name.as_str()) {
-                return Err(spec_error("design.name", format!("two designs are named \"{}\"; name each once", d.name)));
+                return Err(spec_error(
+                    "design.name",
+                    format!("two designs are named \"{}\"; name each once", d.name),
+                ));
             }
         }
         self.validate_settings()?;
         self.targets.validate(population, &designs, &self.costs)?;
         if !population.cohort_offsets.is_empty() {
-            if let Some(d) = designs.iter().find(|d| d.entry_ages.len() != population.cohort_offsets.len()) {
+            if let Some(d) = designs
+                .iter()
+                .find(|d| d.entry_ages.len() != population.cohort_offsets.len())
+            {
                 return Err(spec_error(
                     "population.cohort_offsets",
                     format!(
@@ -564,7 +576,10 @@ impl Plan {
         if !(s.precision.is_finite() && (0.0..0.5).contains(&s.precision)) {
             return Err(spec_error(
                 "simulation.precision",
-                format!("{} is not a usable Monte Carlo SE; give a number in [0, 0.5)", s.precision),
+                format!(
+                    "{} is not a usable Monte Carlo SE; give a number in [0, 0.5)",
+                    s.precision
+                ),
             ));
         }
         let r = &self.search;
@@ -581,7 +596,10 @@ impl Plan {
             ));
         }
         if r.grid.iter().any(|&n| n < 2) {
-            return Err(spec_error("search.grid", "every n in the grid must be at least 2".into()));
+            return Err(spec_error(
+                "search.grid",
+                "every n in the grid must be at least 2".into(),
+            ));
         }
         Ok(())
     }
@@ -610,7 +628,10 @@ impl Targets {
             if !(c.offset.is_finite() && c.offset != 0.0) {
                 return Err(spec_error(
                     "targets.convergence.offset",
-                    format!("{} is unreachable: no n detects an offset of 0; give the offset to detect", c.offset),
+                    format!(
+                        "{} is unreachable: no n detects an offset of 0; give the offset to detect",
+                        c.offset
+                    ),
                 ));
             }
             for d in designs {
@@ -637,7 +658,8 @@ impl Targets {
         if self.age_term.is_some() && population.linear() == 0.0 {
             return Err(spec_error(
                 "targets.age_term",
-                "unreachable: the assumed mean curve has a linear term of 0, so no n gives power above the level".into(),
+                "unreachable: the assumed mean curve has a linear term of 0, so no n gives power above the level"
+                    .into(),
             ));
         }
         if let Some(r) = self.rate_difference {
@@ -653,7 +675,8 @@ impl Targets {
             }
         }
         if let Some(h) = &self.half_width {
-            if !(h.at_most.is_finite() && h.at_most > 0.0) || h.ages.is_empty() || h.ages.iter().any(|a| !a.is_finite()) {
+            if !(h.at_most.is_finite() && h.at_most > 0.0) || h.ages.is_empty() || h.ages.iter().any(|a| !a.is_finite())
+            {
                 return Err(spec_error(
                     "targets.half_width",
                     format!(
@@ -665,7 +688,10 @@ impl Targets {
             }
         }
         if let Some(y) = self.max_years.filter(|y| !(y.is_finite() && *y >= 0.0)) {
-            return Err(spec_error("targets.max_years", format!("{y} is not a duration; give years ≥ 0")));
+            return Err(spec_error(
+                "targets.max_years",
+                format!("{y} is not a duration; give years ≥ 0"),
+            ));
         }
         if let Some(b) = self.max_budget {
             let one = costs.per_participant + costs.per_assessment;

@@ -90,8 +90,10 @@ impl Assessor<'_> {
                 .zip(self.expected.rate_row(r.ages[0]))
                 .map(|(a, b)| a - b)
                 .collect();
-            out.power
-                .insert(RATE_DIFFERENCE.into(), (effect, wald_power(effect, cov.se(&c), t.alpha)));
+            out.power.insert(
+                RATE_DIFFERENCE.into(),
+                (effect, wald_power(effect, cov.se(&c), t.alpha)),
+            );
         }
         out.half_widths = t
             .precision_ages()
@@ -217,13 +219,11 @@ pub fn answer(
     }
     // Meeting designs first, by cost; then the rest in plan order.
     results.sort_by(|a, b| {
-        b.meets_targets
-            .cmp(&a.meets_targets)
-            .then(if a.meets_targets {
-                a.cost.total_cmp(&b.cost)
-            } else {
-                std::cmp::Ordering::Equal
-            })
+        b.meets_targets.cmp(&a.meets_targets).then(if a.meets_targets {
+            a.cost.total_cmp(&b.cost)
+        } else {
+            std::cmp::Ordering::Equal
+        })
     });
     let recommended = results.iter().find(|r| r.meets_targets).map(|r| r.name.clone());
     let verdict = verdict(&results, recommended.as_deref());
@@ -268,7 +268,11 @@ fn choose_n(a: &Assessor<'_>, d: usize, source: &mut dyn Source) -> Result<(usiz
     }
     let (lo, hi) = (plan.search.n_min, plan.search.n_max);
     if !has_targets {
-        return Ok((lo, "no power or precision target: the smallest n searched".into(), probed));
+        return Ok((
+            lo,
+            "no power or precision target: the smallest n searched".into(),
+            probed,
+        ));
     }
     let by_info = smallest(lo, hi, (lo * hi).isqrt(), 0.0, |n| Ok(a.info_meets(n)))?;
     if !simulates {
@@ -344,7 +348,11 @@ fn assess(a: &Assessor<'_>, d: usize, source: &mut dyn Source) -> Result<DesignR
             }
         })
         .collect();
-    let meets_n = if simulates { a.simulated_meets(&outcomes) } else { a.info_meets(n) };
+    let meets_n = if simulates {
+        a.simulated_meets(&outcomes)
+    } else {
+        a.info_meets(n)
+    };
     let cost = a.design.cost(&plan.costs, n);
     let limits = limits(a, n, meets_n, cost, &power);
     probed.sort_unstable();
@@ -434,7 +442,11 @@ fn probes(a: &Assessor<'_>, probed: &[usize], n: usize, source: &mut dyn Source,
     let mut out = Vec::with_capacity(ns.len());
     for m in ns {
         let info = a.info(m);
-        let outcomes = if probed.contains(&m) { Some(source.outcomes(d, m)?) } else { None };
+        let outcomes = if probed.contains(&m) {
+            Some(source.outcomes(d, m)?)
+        } else {
+            None
+        };
         let power = plan
             .targets
             .powers()

@@ -31,9 +31,17 @@ impl Shard {
     /// # Errors
     /// [`Error::Spec`] for text that is not K/N with 1 ≤ K ≤ N.
     pub fn parse(text: &str) -> Result<Shard> {
-        let bad = || spec_error("shard", format!("\"{text}\" is not a shard; write K/N with 1 ≤ K ≤ N, as 2/4"));
+        let bad = || {
+            spec_error(
+                "shard",
+                format!("\"{text}\" is not a shard; write K/N with 1 ≤ K ≤ N, as 2/4"),
+            )
+        };
         let (k, n) = text.split_once('/').ok_or_else(bad)?;
-        let (k, n) = (k.trim().parse().map_err(|_| bad())?, n.trim().parse().map_err(|_| bad())?);
+        let (k, n) = (
+            k.trim().parse().map_err(|_| bad())?,
+            n.trim().parse().map_err(|_| bad())?,
+        );
         if k == 0 || k > n {
             return Err(bad());
         }
@@ -168,7 +176,10 @@ pub fn merge(shards: &[ShardOutput]) -> Result<PlanReport> {
         }
     }
     if let Some(k) = seen.iter().position(|s| !s) {
-        return Err(spec_error("shards", format!("shard {}/{n} is missing; merge every shard", k + 1)));
+        return Err(spec_error(
+            "shards",
+            format!("shard {}/{n} is missing; merge every shard", k + 1),
+        ));
     }
     let mut pieces: BTreeMap<(usize, usize), Vec<(usize, &[Outcome])>> = BTreeMap::new();
     for s in shards {

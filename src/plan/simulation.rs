@@ -173,7 +173,10 @@ pub fn p_of(outcome: &Outcome, key: &str) -> Option<f64> {
 
 /// Simulated power of target `key`: rejections at α over all replicates.
 pub fn power(outcomes: &[Outcome], key: &str, alpha: f64) -> (f64, f64) {
-    let hits = outcomes.iter().filter(|o| p_of(o, key).is_some_and(|p| p < alpha)).count();
+    let hits = outcomes
+        .iter()
+        .filter(|o| p_of(o, key).is_some_and(|p| p < alpha))
+        .count();
     proportion(hits, outcomes.len())
 }
 
@@ -286,7 +289,10 @@ impl Source for Stored {
     fn outcomes(&mut self, d: usize, n: usize) -> Result<Vec<Outcome>> {
         let all = self.outcomes.get(&(d, n)).ok_or_else(|| Error::Spec {
             parameter: "shards".into(),
-            message: format!("the shards hold no replicates of design {} at n = {n}; merge the shards of one plan", d + 1),
+            message: format!(
+                "the shards hold no replicates of design {} at n = {n}; merge the shards of one plan",
+                d + 1
+            ),
         })?;
         Ok(all[..kept(all, &self.plan)].to_vec())
     }

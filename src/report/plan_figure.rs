@@ -29,7 +29,13 @@ fn draw_power<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &PlanReport) 
     let x_hi = (2.5 * chosen).min(probed_max).max(chosen * 1.1);
     for (panel, (key, required)) in panels.iter().zip(&keys) {
         let caption = format!("Power: {}", key.replace('_', " "));
-        let mut chart = framed(panel, &caption, 0.0..x_hi, 0.0..1.05, ("participants per cohort", "power"))?;
+        let mut chart = framed(
+            panel,
+            &caption,
+            0.0..x_hi,
+            0.0..1.05,
+            ("participants per cohort", "power"),
+        )?;
         chart
             .draw_series(DashedLineSeries::new(
                 [(0.0, *required), (x_hi, *required)],
@@ -79,7 +85,14 @@ fn draw_design<DB: DrawingBackend>(
         })
         .collect();
     chart.draw_series(points.iter().map(|&(x, y, se)| {
-        ErrorBar::new_vertical(x, (y - 2.0 * se).max(0.0), y, (y + 2.0 * se).min(1.0), color.stroke_width(2), 8)
+        ErrorBar::new_vertical(
+            x,
+            (y - 2.0 * se).max(0.0),
+            y,
+            (y + 2.0 * se).min(1.0),
+            color.stroke_width(2),
+            8,
+        )
     }))?;
     chart.draw_series(points.iter().map(|&(x, y, _)| Circle::new((x, y), 5, color.filled())))?;
     Ok(())
@@ -95,19 +108,23 @@ fn draw_precision<DB: DrawingBackend>(
     let curve = &d.half_width_curve;
     let (x_lo, x_hi) = (curve[0][0], curve[curve.len() - 1][0]);
     let target = r.plan.targets.half_width.as_ref().map(|h| h.at_most);
-    let y_hi = curve
-        .iter()
-        .map(|p| p[1])
-        .chain(target)
-        .fold(0.0_f64, f64::max)
-        * 1.15;
+    let y_hi = curve.iter().map(|p| p[1]).chain(target).fold(0.0_f64, f64::max) * 1.15;
     let caption = format!(
         "Expected 95% half-width of the mean: \"{}\", {} per cohort",
         d.name, d.n_per_cohort
     );
-    let mut chart = framed(&root, &caption, x_lo..x_hi, 0.0..y_hi, ("age (years)", "half-width (outcome units)"))?;
+    let mut chart = framed(
+        &root,
+        &caption,
+        x_lo..x_hi,
+        0.0..y_hi,
+        ("age (years)", "half-width (outcome units)"),
+    )?;
     chart
-        .draw_series(LineSeries::new(curve.iter().map(|p| (p[0], p[1])), CURVE.stroke_width(3)))
+        .draw_series(LineSeries::new(
+            curve.iter().map(|p| (p[0], p[1])),
+            CURVE.stroke_width(3),
+        ))
         .map_err(e)?
         .label("expected half-width")
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 22, y)], CURVE.stroke_width(3)));

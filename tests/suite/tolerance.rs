@@ -77,3 +77,12 @@ pub const TAU_EQUIVALENT_ABS: f64 = 0.01;
 /// score units (the scores have SD about 1.1; 3,000 respondents per form
 /// give sampling SEs near 0.02 for the mean and SD).
 pub const EQUATING_ABS: f64 = 0.06;
+
+/// The expected-information SE against the closed form of Raudenbush & Liu
+/// (2001): relative, as the issue states it.
+pub const PLAN_CLOSED_FORM_REL: f64 = 1e-6;
+
+/// The simulated SD of an estimate against its expected SE, relative (3%,
+/// as the issue states it; over 2,000 replicates the SD's own relative SE
+/// is about 1.6%).
+pub const PLAN_SD_REL: f64 = 0.03;

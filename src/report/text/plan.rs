@@ -29,7 +29,12 @@ fn curve(p: &Population) -> String {
 /// Render the plan's report.
 pub fn plan_summary(r: &PlanReport) -> String {
     let mut s = String::new();
-    let _ = writeln!(s, "braid plan · {} candidate design{}", r.designs.len(), if r.designs.len() == 1 { "" } else { "s" });
+    let _ = writeln!(
+        s,
+        "braid plan · {} candidate design{}",
+        r.designs.len(),
+        if r.designs.len() == 1 { "" } else { "s" }
+    );
     let _ = writeln!(s, "{}", "─".repeat(RULE_WIDTH));
     if let Some(p) = &r.plan.population {
         let sds = format!(
@@ -40,7 +45,11 @@ pub fn plan_summary(r: &PlanReport) -> String {
             num(p.correlation),
             num(p.sd_cluster),
             num(p.sd_residual),
-            if p.retest != 0.0 { format!("; retest {}", num(p.retest)) } else { String::new() }
+            if p.retest != 0.0 {
+                format!("; retest {}", num(p.retest))
+            } else {
+                String::new()
+            }
         );
         labelled(&mut s, "Population", format_args!("{}", wrap(&sds, 75, 11)));
         labelled(&mut s, "", format_args!("{}", r.population_source));
@@ -68,14 +77,26 @@ pub fn plan_summary(r: &PlanReport) -> String {
         if !d.limits.is_empty() {
             let _ = write!(line, "; falls short: {}", d.limits.join("; "));
         }
-        labelled(&mut s, if i == 0 { "Designs" } else { "" }, format_args!("{}", wrap(&line, 75, 11)));
+        labelled(
+            &mut s,
+            if i == 0 { "Designs" } else { "" },
+            format_args!("{}", wrap(&line, 75, 11)),
+        );
     }
     for (i, w) in r.warnings.iter().enumerate() {
-        labelled(&mut s, if i == 0 { "Warning" } else { "" }, format_args!("{}", wrap(&w.message, 75, 11)));
+        labelled(
+            &mut s,
+            if i == 0 { "Warning" } else { "" },
+            format_args!("{}", wrap(&w.message, 75, 11)),
+        );
     }
     let _ = writeln!(s);
     for (i, a) in r.assumptions.iter().enumerate() {
-        labelled(&mut s, if i == 0 { "Assumes" } else { "" }, format_args!("{}", wrap(a, 75, 11)));
+        labelled(
+            &mut s,
+            if i == 0 { "Assumes" } else { "" },
+            format_args!("{}", wrap(a, 75, 11)),
+        );
     }
     s
 }
@@ -103,7 +124,11 @@ fn targets(r: &PlanReport) -> String {
     }
     if let Some(h) = &t.half_width {
         let ages: Vec<String> = h.ages.iter().map(|a| num(*a)).collect();
-        v.push(format!("95% half-width ≤ {} at ages {}", num(h.at_most), ages.join(", ")));
+        v.push(format!(
+            "95% half-width ≤ {} at ages {}",
+            num(h.at_most),
+            ages.join(", ")
+        ));
     }
     if let Some(y) = t.max_years {
         v.push(format!("fieldwork ≤ {} years", num(y)));
@@ -120,7 +145,9 @@ fn targets(r: &PlanReport) -> String {
 fn designs_table(s: &mut String, r: &PlanReport) {
     header(
         s,
-        &["Designs", "cohorts", "waves", "years", "ages", "overlap", "n/cohort", "cost", "meets"],
+        &[
+            "Designs", "cohorts", "waves", "years", "ages", "overlap", "n/cohort", "cost", "meets",
+        ],
         &[-26, 8, 6, 6, 12, 8, 9, 11, 6],
     );
     for d in &r.designs {
@@ -133,13 +160,20 @@ fn designs_table(s: &mut String, r: &PlanReport) {
             d.wave_times.len(),
             num(d.duration_years),
             format!("{}–{}", num(d.age_span[0]), num(d.age_span[1])),
-            if overlap.is_finite() { format!("{overlap:.1}") } else { "—".into() },
+            if overlap.is_finite() {
+                format!("{overlap:.1}")
+            } else {
+                "—".into()
+            },
             d.n_per_cohort,
             thousands(d.cost.round() as usize),
             if d.meets_targets { "yes" } else { "no" }
         );
     }
-    let _ = writeln!(s, "  overlap: the fewest years of age shared by neighbouring cohorts (negative: a gap)");
+    let _ = writeln!(
+        s,
+        "  overlap: the fewest years of age shared by neighbouring cohorts (negative: a gap)"
+    );
 }
 
 fn short(name: &str, width: usize) -> String {
@@ -178,13 +212,7 @@ fn power_table(s: &mut String, r: &PlanReport) {
                 let _ = writeln!(
                     s,
                     "  {:<24}{:<16}{:>9}{:>8}{:>9}{:>10.3}{:>8.3}",
-                    "",
-                    "  without offset",
-                    "0",
-                    "",
-                    "",
-                    size,
-                    se
+                    "", "  without offset", "0", "", "", size, se
                 );
             }
         }
@@ -211,7 +239,11 @@ fn replicate_line(s: &mut String, d: &DesignResult) {
             "",
             thousands(d.replicates),
             d.n_per_cohort,
-            if d.failed > 0 { format!(" ({} failed)", d.failed) } else { String::new() }
+            if d.failed > 0 {
+                format!(" ({} failed)", d.failed)
+            } else {
+                String::new()
+            }
         );
     }
 }
