@@ -2,7 +2,7 @@
 //!
 //! ```text
 //! cargo build --release
-//! cargo run --release --example bench -- [small|large|inspect|converge|apc|anova|score|all] [WORK_DIR]
+//! cargo run --release --example bench -- [small|large|inspect|converge|apc|anova|score|plan|all] [WORK_DIR]
 //! ```
 //!
 //! - `small`: a 3,000-participant three-wave file; REML, quadratic age,
@@ -29,6 +29,10 @@
 //!   cohort and cohort × wave, on 1,000,000 rows × 20 items.
 //! - `anova`: `braid anova` with JSON output on 100,000 participants × 4
 //!   waves (complete; the demo's five cohorts).
+//! - `plan`: `braid plan` simulating 1,000 replicates of the demo's design
+//!   (1,200 participants in 24 schools, the real fit and the convergence
+//!   test with and without the offset in each), and the expected-information
+//!   route searching n for 100 candidate designs.
 //!
 //! Peak memory (large) is read with GNU time (`time -f %M`, found on PATH);
 //! the small runs spawn braid directly, so their wall time is braid's alone. Figures
@@ -516,4 +520,70 @@ fn main() {
     if which == "apc" || which == "all" {
         apc(&work);
     }
+    if which == "plan" || which == "all" {
+        plan(&work);
+    }
+}
+
+/// The demo's population in a plan file.
+const DEMO_POPULATION: &str = "
+[population]
+center = 16
+mean = [50, 1.6, -0.12]
+sd_intercept = 5
+sd_slope = 0.6
+correlation = 0.3
+sd_cluster = 2
+sd_residual = 3
+";
+
+fn plan(work: &Path) {
+    let offset = 0.3 * 34f64.sqrt();
+    let demo = format!(
+        "[[design]]\nname = \"demo\"\nentry_ages = [12, 14, 16, 18, 20]\nwaves = 4\ninterval = 1\nper_cohort = 240\n\
+         dropout = 0.08\nmissed = 0.05\nclusters = 24\n{DEMO_POPULATION}\n[targets]\nconvergence = {{ offset = {offset}, power = 0.8 }}\n\
+         age_term = {{ power = 0.9 }}\nhalf_width = {{ ages = [13, 19], at_most = 1 }}\n\
+         [simulation]\nreplicates = 1000\nprecision = 0\nseed = 1\n"
+    );
+    let file = work.join("plan-demo.toml");
+    std::fs::write(&file, demo).expect("plan file");
+    let json = work.join("plan-demo.json");
+    let t0 = Instant::now();
+    let o = Command::new(braid_bin())
+        .arg("plan")
+        .arg(&file)
+        .args(["--quiet", "--force", "--json"])
+        .arg(&json)
+        .output()
+        .expect("braid plan");
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    println!(
+        "plan: 1,000 replicates of the demo design (1,200 participants, 24 schools; fit + 2 convergence tests each): {:.1} s",
+        t0.elapsed().as_secs_f64()
+    );
+    let mut many = String::new();
+    for k in 0..100 {
+        let cohorts = 3 + k % 4;
+        let waves = 3 + (k / 4) % 4;
+        let spacing = 1.0 + ((k / 16) % 3) as f64 * 0.5;
+        many.push_str(&format!(
+            "[[design]]\nname = \"d{k}\"\ncohorts = {cohorts}\nfirst_age = 12\nspacing = {spacing}\nwaves = {waves}\n\
+             interval = 1\ndropout = 0.1\nmissed = 0.05\nclusters = 24\n\n"
+        ));
+    }
+    many.push_str(DEMO_POPULATION);
+    many.push_str(
+        "\n[costs]\nper_participant = 60\nper_assessment = 30\nper_year = 10000\n\
+         [targets]\nconvergence = { offset = 1.5, power = 0.8 }\nage_term = { power = 0.9 }\n\
+         half_width = { ages = [13, 16], at_most = 1 }\n[simulation]\nroute = \"information\"\n",
+    );
+    let file = work.join("plan-100.toml");
+    std::fs::write(&file, many).expect("plan file");
+    let walls = three_runs("braid plan (information)", |cmd| {
+        cmd.arg("plan").arg(&file).arg("--quiet");
+    });
+    println!(
+        "plan: expected information for 100 candidate designs, n searched by bisection: {:.3} s (three runs: {walls:.3?})",
+        walls.iter().copied().fold(f64::INFINITY, f64::min)
+    );
 }

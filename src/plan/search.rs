@@ -246,11 +246,6 @@ fn choose_n(a: &Assessor<'_>, d: usize, source: &mut dyn Source) -> Result<(usiz
     let mut probed = Vec::new();
     let has_targets = !plan.targets.powers().is_empty() || plan.targets.half_width.is_some();
     if let Some(points) = fixed_points(plan, a.design) {
-        let rule = if a.design.per_cohort.is_some() {
-            "given by the plan".to_string()
-        } else {
-            "the smallest n of the plan's grid that meets every target".to_string()
-        };
         let mut chosen = None;
         for &n in &points {
             let meets = if simulates {
@@ -263,8 +258,13 @@ fn choose_n(a: &Assessor<'_>, d: usize, source: &mut dyn Source) -> Result<(usiz
                 chosen = Some(n);
             }
         }
+        let rule = match (a.design.per_cohort, chosen) {
+            (Some(_), _) => "given by the plan",
+            (None, Some(_)) => "the smallest n of the plan's grid that meets every target",
+            (None, None) => "the largest n of the plan's grid (none meets every target)",
+        };
         let n = chosen.unwrap_or(points[points.len() - 1]);
-        return Ok((n, rule, probed));
+        return Ok((n, rule.to_string(), probed));
     }
     let (lo, hi) = (plan.search.n_min, plan.search.n_max);
     if !has_targets {
@@ -276,7 +276,10 @@ fn choose_n(a: &Assessor<'_>, d: usize, source: &mut dyn Source) -> Result<(usiz
     }
     let by_info = smallest(lo, hi, (lo * hi).isqrt(), 0.0, |n| Ok(a.info_meets(n)))?;
     if !simulates {
-        let rule = "the smallest n meeting every target by expected information".to_string();
+        let rule = match by_info {
+            Some(_) => "the smallest n meeting every target by expected information".to_string(),
+            None => format!("the largest n searched ({hi}); none meets every target by expected information"),
+        };
         return Ok((by_info.unwrap_or(hi), rule, probed));
     }
     let start = by_info.unwrap_or(hi);
@@ -284,10 +287,13 @@ fn choose_n(a: &Assessor<'_>, d: usize, source: &mut dyn Source) -> Result<(usiz
         probed.push(n);
         Ok(a.simulated_meets(&source.outcomes(d, n)?))
     })?;
-    let rule = format!(
-        "the smallest n meeting every target by simulated power (bisection with common random numbers, to within {:.0}%)",
-        plan.search.resolution * 100.0
-    );
+    let rule = match by_sim {
+        Some(_) => format!(
+            "the smallest n meeting every target by simulated power (bisection with common random numbers, to within {:.0}%)",
+            plan.search.resolution * 100.0
+        ),
+        None => format!("the largest n searched ({hi}); none meets every target by simulated power"),
+    };
     Ok((by_sim.unwrap_or(hi), rule, probed))
 }
 

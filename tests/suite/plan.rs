@@ -114,37 +114,12 @@ fn simulated_slope_sd_and_power_match_the_closed_form() {
     assert!((power.information - normal).abs() < 1e-6);
 }
 
-/// The demo's five cohorts (entering at 12 to 20, four annual waves, no
-/// schools), `n` per cohort, the middle cohort offset by 0.3 outcome SD.
-fn demo_plan(n: usize, replicates: usize) -> Plan {
-    let offset = 0.3 * (5.0_f64.powi(2) + 3.0_f64.powi(2)).sqrt();
-    let mut p = plan(&format!(
-        r#"
-[[design]]
-name = "demo"
-entry_ages = [12, 14, 16, 18, 20]
-waves = 4
-interval = 1
-per_cohort = {n}
-dropout = 0.08
-missed = 0.05
-
-[population]
-center = 16
-mean = [50, 1.6, -0.12]
-sd_intercept = 5
-sd_slope = 0.6
-correlation = 0.3
-sd_residual = 3
-
-[targets]
-convergence = {{ offset = {offset}, power = 0.8 }}
-"#
-    ));
-    p.simulation.replicates = replicates;
-    p.simulation.precision = 0.0;
-    p.simulation.seed = 5;
-    p
+/// The demo's design without schools, the middle cohort offset by 0.3
+/// outcome SD (examples/plans/demo-convergence.toml, which notes/plan.md runs
+/// with 2,000 replicates).
+fn demo_plan() -> Plan {
+    let file = Path::new(env!("CARGO_MANIFEST_DIR")).join("examples/plans/demo-convergence.toml");
+    Plan::read(&file).unwrap()
 }
 
 // Size: with no cohort offsets the simulated M1-vs-M0 test rejects within
@@ -155,8 +130,10 @@ convergence = {{ offset = {offset}, power = 0.8 }}
 // expected-information power.
 #[test]
 fn simulated_convergence_test_holds_its_level_and_agrees_with_the_calibration() {
-    let reps = 300;
-    let report = answer(&demo_plan(100, reps));
+    let plan = demo_plan();
+    let reps = plan.simulation.replicates;
+    assert_eq!(plan.designs[0].per_cohort, Some(100));
+    let report = answer(&plan);
     let c = &report.designs[0].power["convergence"];
     let rejected = (c.size.unwrap() * reps as f64).round() as u64;
     let (lo, hi) = binomial_band(reps as u64);
