@@ -5,9 +5,9 @@ use std::fmt::Write;
 use super::{RULE_WIDTH, header, labelled, thousands, wrap};
 use crate::plan::{DesignResult, PlanReport, Population, Route};
 
-/// A number without needless decimals.
+/// A number to at most three decimals, without needless ones.
 fn num(v: f64) -> String {
-    crate::report::figure::tick(&v)
+    crate::report::figure::tick(&((v * 1000.0).round() / 1000.0))
 }
 
 /// The mean polynomial in words: 50 + 1.6·(age − 16) − 0.12·(age − 16)².
