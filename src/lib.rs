@@ -148,6 +148,42 @@
 //! assert!(score(&input, &bad).unwrap_err().to_string().starts_with("reverse:"));
 //! ```
 //!
+//! **Plan:** [`plan::run`] answers a plan (candidate designs, an assumed
+//! population, costs and targets) by expected information and by simulated
+//! replicates through the real fit and convergence test, and names the
+//! cheapest design that meets every target.
+//!
+//! ```
+//! use braid::plan::{run, Plan, Route, RunContext};
+//! let text = r#"
+//! [[design]]
+//! name = "three cohorts"
+//! entry_ages = [8, 10, 12]
+//! waves = 3
+//! interval = 1
+//! dropout = 0.1
+//!
+//! [population]
+//! center = 10
+//! mean = [30, 2]
+//! sd_intercept = 3
+//! sd_slope = 0.4
+//! sd_residual = 2
+//!
+//! [targets]
+//! age_term = { power = 0.9 }
+//! "#;
+//! let mut plan = Plan::from_toml(std::path::Path::new("plan.toml"), text).unwrap();
+//! plan.simulation.route = Route::Information;
+//! let context = RunContext { population_source: "invented".into(), progress: &|_| {} };
+//! let report = run(&plan, &context).unwrap();
+//! assert_eq!(report.recommended.as_deref(), Some("three cohorts"));
+//! assert!(report.designs[0].power["age_term"].information >= 0.9);
+//! // A dropout above 1 is refused, naming the key.
+//! plan.designs[0].dropout = 1.2;
+//! assert!(run(&plan, &context).unwrap_err().to_string().contains("design.dropout"));
+//! ```
+//!
 //! **Publish:** [`report`] renders every report as text, JSON, CSV and
 //! figures with one shared look.
 

@@ -500,6 +500,49 @@ impl ApcArgs {
     }
 }
 
+impl PlanArgs {
+    /// The plan with the flags applied, where its population came from,
+    /// and the shard to run, if any.
+    ///
+    /// # Errors
+    /// Those of [`Plan::read`], [`Population::from_fit_json`] and
+    /// [`Shard::parse`]; [`Plan::validate`] checks the rest.
+    pub fn options(&self) -> Result<(Plan, String, Option<Shard>)> {
+        let path = self.plan.as_deref().ok_or_else(|| Error::Spec {
+            parameter: "plan".into(),
+            message: "is required: give a plan file".into(),
+        })?;
+        let mut plan = Plan::read(path)?;
+        let mut source = format!("from the plan file {}", path.display());
+        if let Some(fit) = &self.from {
+            let text = std::fs::read_to_string(fit).map_err(|e| Error::Io {
+                path: fit.clone(),
+                message: e.to_string(),
+            })?;
+            plan.population = Some(Population::from_fit_json(fit, &text)?);
+            source = format!("from the pilot fit {}", fit.display());
+        }
+        let s = &mut plan.simulation;
+        if let Some(r) = self.route {
+            s.route = match r {
+                RouteArg::Information => Route::Information,
+                RouteArg::Simulation => Route::Simulation,
+                RouteArg::Both => Route::Both,
+            };
+        }
+        s.replicates = self.replicates.unwrap_or(s.replicates);
+        s.precision = self.precision.unwrap_or(s.precision);
+        s.seed = self.seed.unwrap_or(s.seed);
+        if let Some(n) = self.per_cohort {
+            for d in &mut plan.designs {
+                d.per_cohort = Some(n);
+            }
+        }
+        let shard = self.shard.as_deref().map(Shard::parse).transpose()?;
+        Ok((plan, source, shard))
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -553,48 +596,5 @@ mod tests {
         assert_eq!(from_study.0.roles, from_flags.0.roles);
         assert_eq!(from_study.0.read, from_flags.0.read);
         fs::remove_dir_all(&dir).unwrap();
-    }
-}
-
-impl PlanArgs {
-    /// The plan with the flags applied, where its population came from,
-    /// and the shard to run, if any.
-    ///
-    /// # Errors
-    /// Those of [`Plan::read`], [`Population::from_fit_json`] and
-    /// [`Shard::parse`]; [`Plan::validate`] checks the rest.
-    pub fn options(&self) -> Result<(Plan, String, Option<Shard>)> {
-        let path = self.plan.as_deref().ok_or_else(|| Error::Spec {
-            parameter: "plan".into(),
-            message: "is required: give a plan file".into(),
-        })?;
-        let mut plan = Plan::read(path)?;
-        let mut source = format!("from the plan file {}", path.display());
-        if let Some(fit) = &self.from {
-            let text = std::fs::read_to_string(fit).map_err(|e| Error::Io {
-                path: fit.clone(),
-                message: e.to_string(),
-            })?;
-            plan.population = Some(Population::from_fit_json(fit, &text)?);
-            source = format!("from the pilot fit {}", fit.display());
-        }
-        let s = &mut plan.simulation;
-        if let Some(r) = self.route {
-            s.route = match r {
-                RouteArg::Information => Route::Information,
-                RouteArg::Simulation => Route::Simulation,
-                RouteArg::Both => Route::Both,
-            };
-        }
-        s.replicates = self.replicates.unwrap_or(s.replicates);
-        s.precision = self.precision.unwrap_or(s.precision);
-        s.seed = self.seed.unwrap_or(s.seed);
-        if let Some(n) = self.per_cohort {
-            for d in &mut plan.designs {
-                d.per_cohort = Some(n);
-            }
-        }
-        let shard = self.shard.as_deref().map(Shard::parse).transpose()?;
-        Ok((plan, source, shard))
     }
 }

@@ -16,7 +16,7 @@ fn flag_and_table(key: &str) -> Option<(String, Option<&'static str>)> {
         "knots" => ("--knots or --knot-ages".to_string(), Some("[model.age]")),
         "events" | "exposure" | "width" | "constraint" | "assume" | "hierarchical" | "band" | "margin"
         | "margin_sd" | "reference_age" | "shared_ages" | "grid" | "at" | "cohort_width" | "cohort_from"
-        | "wave_length" | "wave_from" => (flag(&key.replace('_', "-")), None),
+        | "wave_length" | "wave_from" | "shard" => (flag(&key.replace('_', "-")), None),
         "sphericity_alpha" => (flag("sphericity-level"), None),
         "items" | "reverse" | "anchor" | "scale_min" | "scale_max" | "min_answered" => {
             (flag(&key.replace('_', "-")), None)
@@ -27,6 +27,13 @@ fn flag_and_table(key: &str) -> Option<(String, Option<&'static str>)> {
 
 /// The full route of a setting named at the head of a message.
 pub fn route(key: &str) -> Option<String> {
+    if let Some(field) = key.strip_prefix("simulation.") {
+        let flag = match field {
+            "replicates" | "precision" | "seed" | "route" => format!("--{field}"),
+            _ => return None,
+        };
+        return Some(format!("{flag} (or `{field}` under [simulation] in the plan file)"));
+    }
     let (flag, table) = flag_and_table(key)?;
     Some(match table {
         Some(t) => format!("{flag} (or `{key}` under {t} in the study file)"),

@@ -188,8 +188,8 @@ impl Expected {
                 info[(k, k)] += nf * pp.s;
                 w_bar[k] += share * pp.s;
             }
-            for i in 0..p {
-                w_bar[i] += share * pp.u[i];
+            for (w, u) in w_bar.iter_mut().zip(&pp.u) {
+                *w += share * u;
             }
             s_bar += share * pp.s;
         }

@@ -546,21 +546,20 @@ impl Plan {
         }
         self.validate_settings()?;
         self.targets.validate(population, &designs, &self.costs)?;
-        if !population.cohort_offsets.is_empty() {
-            if let Some(d) = designs
+        if !population.cohort_offsets.is_empty()
+            && let Some(d) = designs
                 .iter()
                 .find(|d| d.entry_ages.len() != population.cohort_offsets.len())
-            {
-                return Err(spec_error(
-                    "population.cohort_offsets",
-                    format!(
-                        "{} offsets for design \"{}\" with {} cohorts; give one offset per cohort",
-                        population.cohort_offsets.len(),
-                        d.name,
-                        d.entry_ages.len()
-                    ),
-                ));
-            }
+        {
+            return Err(spec_error(
+                "population.cohort_offsets",
+                format!(
+                    "{} offsets for design \"{}\" with {} cohorts; give one offset per cohort",
+                    population.cohort_offsets.len(),
+                    d.name,
+                    d.entry_ages.len()
+                ),
+            ));
         }
         Ok(designs)
     }
@@ -674,18 +673,19 @@ impl Targets {
                 ));
             }
         }
-        if let Some(h) = &self.half_width {
-            if !(h.at_most.is_finite() && h.at_most > 0.0) || h.ages.is_empty() || h.ages.iter().any(|a| !a.is_finite())
-            {
-                return Err(spec_error(
-                    "targets.half_width",
-                    format!(
-                        "a half-width of {} at {} ages is unreachable; give ages and a positive half-width",
-                        h.at_most,
-                        h.ages.len()
-                    ),
-                ));
-            }
+        if let Some(h) = &self.half_width
+            && (!(h.at_most.is_finite() && h.at_most > 0.0)
+                || h.ages.is_empty()
+                || h.ages.iter().any(|a| !a.is_finite()))
+        {
+            return Err(spec_error(
+                "targets.half_width",
+                format!(
+                    "a half-width of {} at {} ages is unreachable; give ages and a positive half-width",
+                    h.at_most,
+                    h.ages.len()
+                ),
+            ));
         }
         if let Some(y) = self.max_years.filter(|y| !(y.is_finite() && *y >= 0.0)) {
             return Err(spec_error(

@@ -412,7 +412,10 @@ fn limits(a: &Assessor<'_>, n: usize, meets_n: bool, cost: f64, power: &BTreeMap
             }
         }
         if out.is_empty() || (t.half_width.is_some() && !a.info_meets(n)) {
-            out.push(format!("at n = {n} per cohort the mean is not as precise as required{}", cluster_floor(a)));
+            out.push(format!(
+                "at n = {n} per cohort the mean is not as precise as required{}",
+                cluster_floor(a)
+            ));
         }
     }
     if let Some(max) = t.max_budget.filter(|m| cost > *m) {
@@ -434,9 +437,7 @@ fn cluster_floor(a: &Assessor<'_>) -> String {
     };
     let floor = Z_95 * a.population.sd_cluster / (k as f64).sqrt();
     if floor > 0.8 * h.at_most {
-        format!(
-            " (the {k} clusters alone set a floor of about {floor:.2} on the half-width, whatever n: add clusters)"
-        )
+        format!(" (the {k} clusters alone set a floor of about {floor:.2} on the half-width, whatever n: add clusters)")
     } else {
         String::new()
     }

@@ -181,7 +181,9 @@ pub fn merge(shards: &[ShardOutput]) -> Result<PlanReport> {
             format!("shard {}/{n} is missing; merge every shard", k + 1),
         ));
     }
-    let mut pieces: BTreeMap<(usize, usize), Vec<(usize, &[Outcome])>> = BTreeMap::new();
+    // Per (design, n): each shard's first replicate and its replicates.
+    type Pieces<'a> = BTreeMap<(usize, usize), Vec<(usize, &'a [Outcome])>>;
+    let mut pieces: Pieces<'_> = BTreeMap::new();
     for s in shards {
         for e in &s.evaluations {
             pieces

@@ -298,3 +298,34 @@ fn bad_plans_get_one_line_errors() {
         expect_one_line_error(&out, expected, what);
     }
 }
+
+// A pilot's fit seeds the population: the plan takes the fit's polynomial
+// fixed effects, SDs and correlation as they are in fit.json.
+#[test]
+fn a_pilot_fit_seeds_the_population() {
+    let dir = temp_dir("plan-from");
+    let demo = dir.join("demo");
+    run_ok(braid().args(["demo", "--quiet", "--out"]).arg(&demo));
+    let fit: serde_json::Value = crate::common::read_json(&demo.join("fit.json"));
+    let file = dir.join("plan.toml");
+    let design = SMALL_PLAN.split("[population]").next().unwrap();
+    std::fs::write(&file, format!("{design}\n[targets]\nage_term = {{ power = 0.9 }}\n")).unwrap();
+    let json = dir.join("plan.json");
+    run_ok(
+        braid()
+            .arg("plan")
+            .arg(&file)
+            .arg("--from")
+            .arg(demo.join("fit.json"))
+            .args(["--route", "information", "--quiet", "--json"])
+            .arg(&json),
+    );
+    let report = crate::common::read_json(&json);
+    let population = &report["plan"]["population"];
+    for k in 0..3 {
+        assert_eq!(population["mean"][k], fit["fixed"][k]["estimate"]);
+    }
+    assert_eq!(population["sd_intercept"], fit["random"][0]["sd"][0]);
+    assert_eq!(population["sd_cluster"], fit["random"][1]["sd"][0]);
+    assert!(report["population_source"].as_str().unwrap().contains("pilot fit"));
+}

@@ -1,4 +1,4 @@
-//! Every text screen of the demo against a reviewed expected file in
+//! Every text screen of the demo (and the invented plan example) against a reviewed expected file in
 //! tests/snapshots/, so that a change of layout is a reviewed diff. The
 //! layout (every word, space and line) must match exactly; a printed number
 //! may differ by two units in its last printed digit, which absorbs the
@@ -161,6 +161,10 @@ fn every_text_screen_of_the_demo_matches_its_snapshot() {
                 "--cluster",
                 "school",
             ],
+        ),
+        (
+            "plan",
+            vec!["plan", "examples/plans/reading.toml", "--route", "information"],
         ),
     ];
     let folder = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests").join("snapshots");

@@ -79,9 +79,12 @@ pub fn plan_summary(r: &PlanReport) -> String {
         }
         labelled(
             &mut s,
-            if i == 0 { "Designs" } else { "" },
+            if i == 0 { "n chosen" } else { "" },
             format_args!("{}", wrap(&line, 75, 11)),
         );
+    }
+    if !r.warnings.is_empty() {
+        let _ = writeln!(s);
     }
     for (i, w) in r.warnings.iter().enumerate() {
         labelled(
@@ -176,6 +179,11 @@ fn designs_table(s: &mut String, r: &PlanReport) {
     );
 }
 
+/// A note under a table, indented two spaces and wrapped.
+fn note(s: &mut String, text: &str) {
+    let _ = writeln!(s, "  {}", wrap(text, 82, 2));
+}
+
 fn short(name: &str, width: usize) -> String {
     if name.chars().count() <= width {
         name.to_string()
@@ -218,9 +226,9 @@ fn power_table(s: &mut String, r: &PlanReport) {
         }
         replicate_line(s, d);
     }
-    let _ = writeln!(
+    note(
         s,
-        "  expected: Wald power from the expected information; simulated: share of replicates rejecting, with its Monte Carlo SE"
+        "expected: Wald power from the expected information; simulated: the share of replicates rejecting, with its Monte Carlo SE",
     );
 }
 
@@ -272,5 +280,5 @@ fn precision_table(s: &mut String, r: &PlanReport) {
             );
         }
     }
-    let _ = writeln!(s, "  half-width of the mean's 95% interval, in outcome units");
+    note(s, "half-width of the mean's 95% interval, in outcome units");
 }
