@@ -202,6 +202,7 @@ pub mod score;
 pub mod simulate;
 pub mod spec;
 pub mod stats;
+pub mod study;
 pub mod warning;
 
 pub use error::{Error, Result};

@@ -48,10 +48,25 @@ pub enum Command {
     Anova(Box<AnovaArgs>),
     /// Score multi-item scales per wave, with reliability per wave, cohort and cohort × wave.
     Score(Box<ScoreArgs>),
+    /// Run every analysis the data allow and write one self-contained HTML page of the whole study.
+    Report(Box<ReportArgs>),
     /// Plan a study before collecting it: power, precision and cost of candidate designs.
     Plan(Box<PlanArgs>),
+    /// Print braid's manual page (roff), for `man -l -` or a man folder.
+    Manual,
     /// Print a completion script for a shell, to be sourced by its start-up file.
     Completions(CompletionsArgs),
+}
+
+/// Flags of `braid report`: those of `braid fit`, and the classical ANOVA.
+#[derive(Debug, Clone, Default, Args)]
+pub struct ReportArgs {
+    /// The data, roles, model and outputs, as for `braid fit`; --out is required.
+    #[command(flatten)]
+    pub fit: FitArgs,
+    /// Also run the cohort × wave mixed ANOVA (or set `anova = true` under [report] in the study file).
+    #[arg(long)]
+    pub anova: bool,
 }
 
 /// How `braid plan` answers.

@@ -6,8 +6,8 @@ use std::path::{Path, PathBuf};
 use serde::{Deserialize, Serialize};
 
 use super::args::{
-    AnovaArgs, ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, PlanArgs, RetestArg,
-    RouteArg, RuleArg, ScoreArgs,
+    AnovaArgs, ApcArgs, ConvergeArgs, FitArgs, InputArgs, InspectArgs, MethodArg, ModelArgs, PlanArgs, ReportArgs,
+    RetestArg, RouteArg, RuleArg, ScoreArgs,
 };
 use crate::FitRequest;
 use crate::anova::AnovaOptions;
@@ -23,6 +23,7 @@ use crate::plan::shard::Shard;
 use crate::plan::{Plan, Population, Route};
 use crate::score::{ItemColumns, ScoreOptions, ScoreRule, expand_items};
 use crate::spec::{AgeSpec, ModelSpec, RandomSpec};
+use crate::study::StudyOptions;
 
 /// The `[data]` table of a study file.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -49,6 +50,18 @@ pub struct Study {
     /// A multi-item scale scored on the fly as the outcome.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub score: Option<ScaleSection>,
+    /// What `braid report` adds to the analyses it always runs.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub report: Option<ReportSection>,
+}
+
+/// The `[report]` table of a study file.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ReportSection {
+    /// Run the cohort × wave mixed ANOVA beside the mixed model.
+    #[serde(default)]
+    pub anova: bool,
 }
 
 /// The `[score]` table of a study file: the outcome is this scale's score,
@@ -339,6 +352,31 @@ impl FitArgs {
             .with_predictions(self.predictions)
             .with_paths(self.lines);
         Ok((source, request))
+    }
+}
+
+impl ReportArgs {
+    /// The data source and the options of every analysis of the study.
+    ///
+    /// # Errors
+    /// Those of [`FitArgs::request`]; [`Error::Spec`] without --out.
+    pub fn options(&self) -> Result<(Source, StudyOptions)> {
+        if self.fit.output.out.is_none() {
+            return Err(Error::Spec {
+                parameter: "--out".into(),
+                message: "is required: the report is a folder of files around report.html".into(),
+            });
+        }
+        let (source, fit) = self.fit.request()?;
+        let asks = source.study.as_ref().and_then(|s| s.report.as_ref()).is_some_and(|r| r.anova);
+        let options = StudyOptions {
+            fit,
+            design: DesignOptions::default(),
+            converge: ConvergeOptions::default(),
+            apc: ApcOptions::default(),
+            anova: (self.anova || asks).then(AnovaOptions::default),
+        };
+        Ok((source, options))
     }
 }
 

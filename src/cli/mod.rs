@@ -78,6 +78,8 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Anova(a) => anova_command(&a),
         Command::Score(a) => score_command(&a),
         Command::Plan(a) => plan_command(&a),
+        Command::Report(a) => report_command(&a),
+        Command::Manual => manual_command(),
         Command::Completions(a) => {
             completions_command(&a);
             Ok(())
@@ -89,6 +91,105 @@ pub fn run(cli: Cli) -> Result<()> {
 fn completions_command(a: &args::CompletionsArgs) {
     use clap::CommandFactory;
     clap_complete::generate(a.shell, &mut Cli::command(), "braid", &mut std::io::stdout());
+}
+
+/// `braid manual`: the manual page, from the same clap definitions as `--help`.
+fn manual_command() -> Result<()> {
+    use clap::CommandFactory;
+    let mut out = std::io::stdout();
+    clap_mangen::Man::new(Cli::command())
+        .render(&mut out)
+        .map_err(|e| crate::Error::Output {
+            path: "standard output".into(),
+            message: format!("cannot write the manual page ({e})"),
+        })
+}
+
+/// `braid report`: every analysis the data allow, and the page that gathers them.
+fn report_command(a: &args::ReportArgs) -> Result<()> {
+    let (source, options) = a.options()?;
+    let emitter = Emitter::new(&a.fit.output)?;
+    let bar = progress::steps(a.fit.output.quiet);
+    let report = study_report(&source, &options, a.fit.input.study.as_deref(), Vec::new(), &bar);
+    bar.finish_and_clear();
+    emitter.emit(&report?)
+}
+
+/// Load, analyse and score a study, with what it takes to run it again.
+fn study_report(
+    source: &Source,
+    options: &crate::study::StudyOptions,
+    study_file: Option<&Path>,
+    mut seeds: Vec<(String, u64)>,
+    bar: &indicatif::ProgressBar,
+) -> Result<crate::study::StudyReport> {
+    bar.set_message("reading");
+    let panel = load(source)?;
+    seeds.push((
+        "simultaneous bands of the shared-age differences".into(),
+        crate::linkage::SIMULTANEOUS_SEED,
+    ));
+    let scale = scale_report(source)?;
+    if let Some(s) = &scale {
+        seeds.push(("bootstrap SEs of the form equating".into(), s.options.seed));
+    }
+    let study_text = match study_file {
+        Some(p) => Some(std::fs::read_to_string(p).map_err(|e| crate::Error::Io {
+            path: p.to_path_buf(),
+            message: e.to_string(),
+        })?),
+        None => None,
+    };
+    let provenance = crate::study::Provenance {
+        braid_version: env!("CARGO_PKG_VERSION").into(),
+        command: command_line(),
+        study_file: study_text,
+        data_file: source.data.display().to_string(),
+        data_sha256: crate::study::sha256_file(&source.data)?,
+        seeds,
+    };
+    let mut report = crate::study::analyse(&panel, options, provenance, &|step: &str| {
+        bar.set_message(step.to_string());
+    })?;
+    report.score = scale;
+    Ok(report)
+}
+
+/// The command as typed, with arguments that hold spaces quoted.
+fn command_line() -> String {
+    let mut words: Vec<String> = std::env::args()
+        .map(|w| {
+            if w.is_empty() || w.contains([' ', '"', '\'', '$']) {
+                format!("'{}'", w.replace('\'', r"'\''"))
+            } else {
+                w
+            }
+        })
+        .collect();
+    if let Some(first) = words.first_mut() {
+        *first = "braid".into();
+    }
+    words.join(" ")
+}
+
+/// The scale's scoring and reliability, when the study file names one.
+fn scale_report(source: &Source) -> Result<Option<crate::score::ScoreReport>> {
+    let Some(scale) = source.study.as_ref().and_then(|s| s.score.as_ref()) else {
+        return Ok(None);
+    };
+    let Some(wave) = source.roles.wave.clone() else {
+        return Ok(None);
+    };
+    let (items, options) = scale.options()?;
+    let columns = crate::score::ItemColumns {
+        id: source.roles.id.clone(),
+        wave,
+        cohort: source.roles.cohort.clone(),
+        items,
+        ..Default::default()
+    };
+    let input = crate::score::ItemInput::read(&source.data, &columns, source.read)?;
+    crate::score::score(&input, &options).map(Some)
 }
 
 /// Load the data; when the study file names a scale, its score is the
@@ -180,8 +281,8 @@ fn apc_command(a: &args::ApcArgs) -> Result<()> {
 }
 
 /// `braid demo`: simulate the invented study, write it with its study file,
-/// then fit it through the same route a user's study file takes, and write
-/// the design report beside it.
+/// then run every analysis through the same route a user's study file takes
+/// (`braid report`), and write the page that gathers them.
 fn demo_command(a: &DemoArgs) -> Result<()> {
     let mut design = Design::demo();
     design.seed = a.seed.unwrap_or(design.seed);
@@ -192,19 +293,31 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
         ..Default::default()
     };
     let emitter = Emitter::new(&output)?;
-    let (source, request) = demo_fit_args(write_demo_study(&design, &a.out)?).request()?;
-    let panel = load(&source)?;
-    let mut fit = crate::fit_panel(&panel, &request)?.report;
-    fit.truth = Some(demo_truth(&design));
+    let study = write_demo_study(&design, &a.out)?;
+    let report_args = args::ReportArgs {
+        fit: args::FitArgs {
+            output: output.clone(),
+            ..demo_fit_args(study.clone())
+        },
+        anova: true,
+    };
+    let (source, options) = report_args.options()?;
+    let bar = progress::steps(a.quiet);
+    let seeds = vec![("simulation of the invented study".to_string(), design.seed)];
+    let report = study_report(&source, &options, Some(&study), seeds, &bar);
+    bar.finish_and_clear();
+    let mut report = report?;
+    report.fit.truth = Some(demo_truth(&design));
     if !a.quiet {
         println!("braid demo · the Quillmere Reasoning Panel (invented): five cohorts entering at ages 12 to 20,");
         println!("four annual waves, 24 schools, with dropout. Simulated truth is printed beside each estimate.\n");
+        print!("{}", crate::report::Render::text(&report.fit));
     }
-    emitter.emit(&fit)?;
-    emitter.write(&crate::design::inspect(
-        &panel,
-        crate::design::DesignOptions::default(),
-    )?)
+    emitter.write(&report)?;
+    if !a.quiet {
+        println!("Open {} in a browser: the whole study on one page.", a.out.join("report.html").display());
+    }
+    Ok(())
 }
 
 /// The fit flags the demo's study file is run with.
@@ -257,6 +370,7 @@ fn write_demo_study(design: &Design, dir: &Path) -> Result<PathBuf> {
         roles: simulate::Simulated::roles(true),
         model: demo_model(design),
         score: None,
+        report: Some(config::ReportSection { anova: true }),
     };
     let study_path = dir.join("study.toml");
     // The comment names the study file relative to its own folder, so the

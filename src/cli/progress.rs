@@ -19,3 +19,17 @@ pub fn bar(quiet: bool, unit: &str) -> ProgressBar {
     bar.enable_steady_tick(std::time::Duration::from_millis(200));
     bar
 }
+
+/// A spinner naming the step under way, with the elapsed time; hidden when
+/// `quiet` or when standard error is not a terminal.
+pub fn steps(quiet: bool) -> ProgressBar {
+    if quiet || !std::io::stderr().is_terminal() {
+        return ProgressBar::with_draw_target(None, ProgressDrawTarget::hidden());
+    }
+    let bar = ProgressBar::new_spinner();
+    if let Ok(style) = ProgressStyle::with_template("{spinner} {msg} · {elapsed}") {
+        bar.set_style(style);
+    }
+    bar.enable_steady_tick(std::time::Duration::from_millis(200));
+    bar
+}

@@ -21,7 +21,7 @@ mod slopes;
 pub mod variance;
 mod verdict;
 
-pub use shared::SharedAge;
+pub use shared::{SIMULTANEOUS_SEED, SharedAge};
 pub use slopes::BetweenWithin;
 
 use serde::Serialize;

@@ -15,7 +15,7 @@ use crate::spec::ModelFrame;
 const SIMULTANEOUS_DRAWS: usize = 20_000;
 
 /// Seed of those draws, fixed so that reports are reproducible.
-const SIMULTANEOUS_SEED: u64 = 1953;
+pub const SIMULTANEOUS_SEED: u64 = 1953;
 
 /// The difference between two neighbouring cohorts' predicted means at one
 /// shared age (later cohort minus earlier), from the REML fit of M2.

@@ -52,15 +52,18 @@ pub(crate) fn register_font() {
 pub(crate) const GROUND: RGBColor = RGBColor(252, 250, 245);
 pub(crate) const INK: RGBColor = RGBColor(40, 40, 48);
 pub(crate) const CURVE: RGBColor = RGBColor(0, 95, 105);
+/// Group colours: the palette of Okabe & Ito (2008, *Color Universal
+/// Design*), told apart by readers with the common colour-vision
+/// deficiencies; yellow comes last, as it is faint on the light ground.
 pub(crate) const PALETTE: [RGBColor; 8] = [
-    RGBColor(204, 102, 0),
-    RGBColor(120, 60, 160),
-    RGBColor(200, 40, 80),
-    RGBColor(60, 130, 40),
-    RGBColor(30, 90, 190),
-    RGBColor(150, 110, 20),
-    RGBColor(90, 90, 90),
-    RGBColor(0, 150, 150),
+    RGBColor(0, 114, 178),
+    RGBColor(230, 159, 0),
+    RGBColor(0, 158, 115),
+    RGBColor(213, 94, 0),
+    RGBColor(204, 121, 167),
+    RGBColor(86, 180, 233),
+    RGBColor(0, 0, 0),
+    RGBColor(240, 228, 66),
 ];
 
 /// Size of the figures in pixels.

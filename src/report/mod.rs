@@ -6,6 +6,7 @@ pub mod apc_figure;
 pub mod converge_figure;
 pub mod design_figure;
 pub mod figure;
+pub mod html;
 pub mod plan_figure;
 pub mod predictions;
 pub mod render;

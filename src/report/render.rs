@@ -177,3 +177,35 @@ impl Render for crate::plan::shard::ShardOutput {
         Ok(Vec::new())
     }
 }
+
+impl Render for crate::study::StudyReport {
+    const JSON_FILE: &'static str = "report.json";
+
+    fn text(&self) -> String {
+        text::study_summary(self)
+    }
+
+    /// Every analysis's JSON and figures, then the page that gathers them.
+    fn write_files(&self, dir: &Path) -> Result<Vec<String>> {
+        let mut names = self.design.write_folder(dir)?;
+        if let Some(c) = &self.converge {
+            names.extend(c.write_folder(dir)?);
+        }
+        names.extend(self.fit.write_folder(dir)?);
+        let mut apc_figures = Vec::new();
+        if let Some(a) = &self.apc {
+            let written = a.write_folder(dir)?;
+            apc_figures = written.iter().filter(|n| n.ends_with(".svg")).cloned().collect();
+            names.extend(written);
+        }
+        if let Some(a) = &self.anova {
+            names.extend(a.write_folder(dir)?);
+        }
+        if let Some(s) = &self.score {
+            names.extend(s.write_folder(dir)?);
+        }
+        super::html::write_page(dir, self, &apc_figures)?;
+        names.push(super::html::PAGE.to_string());
+        Ok(names)
+    }
+}

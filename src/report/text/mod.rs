@@ -9,6 +9,7 @@ mod design;
 mod fit;
 mod plan;
 mod score;
+mod study;
 
 use std::fmt::Write;
 
@@ -19,6 +20,7 @@ pub use design::design_summary;
 pub use fit::fit_summary;
 pub use plan::plan_summary;
 pub use score::score_summary;
+pub use study::study_summary;
 
 use crate::data::DataSummary;
 use crate::stats::{p_cell as pval, p_words as p_is, thousands};
