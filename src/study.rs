@@ -123,7 +123,10 @@ pub fn analyse(
             .map_err(|e| skipped.push(("apc".to_string(), e.to_string())))
             .ok()
     } else {
-        skipped.push(("apc".into(), "the data have no calendar time (period or birth year)".into()));
+        skipped.push((
+            "apc".into(),
+            "the data have no calendar time (period or birth year)".into(),
+        ));
         None
     };
     let anova = match &options.anova {

@@ -20,6 +20,8 @@ mod grouped; // group-specific covariances: the separable identity and recovery
 mod invariance; // row order, id recoding, shifting and scaling age
 #[path = "suite/linkage.rs"]
 mod linkage; // convergence tests: reference likelihood ratios, size and power
+#[path = "suite/page.rs"]
+mod page; // the study's HTML page: numbers equal their JSON, and a real browser renders it
 #[path = "suite/plan.rs"]
 mod plan; // planning: the closed-form SE, simulated power and size, shards, bad plans
 #[path = "suite/recovery.rs"]

@@ -368,7 +368,11 @@ impl ReportArgs {
             });
         }
         let (source, fit) = self.fit.request()?;
-        let asks = source.study.as_ref().and_then(|s| s.report.as_ref()).is_some_and(|r| r.anova);
+        let asks = source
+            .study
+            .as_ref()
+            .and_then(|s| s.report.as_ref())
+            .is_some_and(|r| r.anova);
         let options = StudyOptions {
             fit,
             design: DesignOptions::default(),

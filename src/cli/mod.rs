@@ -315,7 +315,10 @@ fn demo_command(a: &DemoArgs) -> Result<()> {
     }
     emitter.write(&report)?;
     if !a.quiet {
-        println!("Open {} in a browser: the whole study on one page.", a.out.join("report.html").display());
+        println!(
+            "Open {} in a browser: the whole study on one page.",
+            a.out.join("report.html").display()
+        );
     }
     Ok(())
 }

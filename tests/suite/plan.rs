@@ -366,6 +366,11 @@ half_width = { ages = [9, 13], at_most = 1 }
         // The SE of the mean bias: the estimate's SE (half-width / 1.96) over √R.
         let mc = w / 1.96 / (d.replicates as f64).sqrt();
         assert!(bias.abs() < 3.0 * mc, "age {}: bias {bias} (MC SE {mc})", q.age);
-        assert!((w / q.information - 1.0).abs() < 0.05, "age {}: {w} vs {}", q.age, q.information);
+        assert!(
+            (w / q.information - 1.0).abs() < 0.05,
+            "age {}: {w} vs {}",
+            q.age,
+            q.information
+        );
     }
 }

@@ -34,7 +34,7 @@ h2 { font-size: 1.45rem; margin: 2.2rem 0 0.6rem; border-bottom: 1px solid var(-
 h3 { font-size: 1.1rem; margin: 1.4rem 0 0.4rem; }
 p.lede { color: var(--muted); margin-top: 0; }
 nav ol { columns: 2; padding-left: 1.2rem; margin: 0.6rem 0 1rem; }
-nav a { color: var(--accent); }
+a { color: var(--accent); }
 table { border-collapse: collapse; margin: 0.6rem 0 1rem; font-variant-numeric: tabular-nums; font-size: 0.92rem; }
 caption { text-align: left; color: var(--muted); font-size: 0.88rem; padding-bottom: 4px; }
 th, td { padding: 3px 10px; border-bottom: 1px solid var(--rule); }
@@ -43,6 +43,8 @@ td.n, th.n { text-align: right; }
 figure { margin: 1rem 0 1.4rem; break-inside: avoid; page-break-inside: avoid; }
 figure svg { width: 100%; height: auto; display: block; border: 1px solid var(--rule); }
 figcaption { color: var(--muted); font-size: 0.9rem; margin-top: 4px; }
+header .verdict { margin: 0 0 16px; }
+.verdict p { margin: 0; }
 .verdict { border-left: 4px solid var(--accent); padding: 6px 12px; background: #eef4f3; }
 .warning { border-left: 4px solid var(--warn); padding: 6px 12px; background: #fbf1e6; }
 .skipped { color: var(--muted); font-style: italic; }

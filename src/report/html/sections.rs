@@ -36,7 +36,12 @@ const IDS: [&str; 9] = [
 ];
 
 fn open(page: &mut Page<'_>, k: usize) {
-    let _ = write!(page.html, "<section id=\"{}\">\n<h2>{}</h2>\n", IDS[k], esc(HEADINGS[k]));
+    let _ = write!(
+        page.html,
+        "<section id=\"{}\">\n<h2>{}</h2>\n",
+        IDS[k],
+        esc(HEADINGS[k])
+    );
 }
 
 fn close(page: &mut Page<'_>) {
@@ -67,7 +72,12 @@ pub(super) fn header(page: &mut Page<'_>, r: &StudyReport) {
         esc(&d.outcome),
         esc(&d.file),
         num("design.json", "/data/n_obs", d.n_obs as f64, 0),
-        num("design.json", "/data/n_participants", d.n_participants.unwrap_or(0) as f64, 0),
+        num(
+            "design.json",
+            "/data/n_participants",
+            d.n_participants.unwrap_or(0) as f64,
+            0
+        ),
         num("design.json", "/data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
         num("design.json", "/data/age_min", d.age_min, 1),
         num("design.json", "/data/age_max", d.age_max, 1),
@@ -77,7 +87,67 @@ pub(super) fn header(page: &mut Page<'_>, r: &StudyReport) {
             let _ = write!(page.html, "<li><a href=\"#{}\">{}</a></li>", IDS[k], esc(HEADINGS[k]));
         }
     }
-    page.push("</ol></nav></header>\n");
+    page.push("</ol></nav>\n");
+    glance(page, r);
+    page.push("</header>\n");
+}
+
+/// The answers in three lines, each pointing to its section.
+fn glance(page: &mut Page<'_>, r: &StudyReport) {
+    let mut lines = Vec::new();
+    if let Some(c) = &r.converge {
+        let p_of = |k: usize| {
+            c.tests
+                .get(k)
+                .map_or(String::new(), |t| pval("converge.json", &format!("/tests/{k}/p"), t.p))
+        };
+        lines.push(format!(
+            "<a href=\"#converge\">Convergence</a>: cohorts differ in level, p = {}; in age trend, p = {}.",
+            p_of(0),
+            p_of(1)
+        ));
+    }
+    let t = &r.fit.trajectory;
+    if let Some((k, e)) = t.extrema.iter().enumerate().next() {
+        let p = |field: &str| format!("/trajectory/extrema/{k}/{field}");
+        lines.push(format!(
+            "<a href=\"#trajectory\">The stitched curve</a> has a {} at age {} (95% interval {} to {}).",
+            esc(e.kind),
+            num("fit.json", &p("age"), e.age, 2),
+            num("fit.json", &p("lower"), e.lower, 2),
+            num("fit.json", &p("upper"), e.upper, 2)
+        ));
+    } else if let Some(e) = r.fit.fixed.get(1) {
+        lines.push(format!(
+            "<a href=\"#trajectory\">The stitched curve</a> changes by {} per year at the centre age.",
+            num("fit.json", "/fixed/1/estimate", e.estimate, 3)
+        ));
+    }
+    if let Some(q) = r
+        .apc
+        .as_ref()
+        .and_then(|a| a.exact.as_ref())
+        .and_then(|e| e.identified.first())
+    {
+        let (name, detail) = q.quantity.split_once(": ").unwrap_or((q.quantity.as_str(), ""));
+        let named = if detail.is_empty() {
+            esc(name)
+        } else {
+            format!("{} ({})", esc(name), esc(detail))
+        };
+        lines.push(format!(
+            "<a href=\"#apc\">Age, period and cohort</a>: the identified {named} is {} (SE {}); any further split of it rests on an untestable assumption.",
+            num("apc.json", "/exact/identified/0/estimate", q.estimate, 4),
+            num("apc.json", "/exact/identified/0/se", q.se, 4)
+        ));
+    }
+    if !lines.is_empty() {
+        let _ = write!(
+            page.html,
+            "<div class=\"verdict\"><p>{}</p></div>\n",
+            lines.join("<br>")
+        );
+    }
 }
 
 /// The study: data, coverage and Lexis diagram, retention, dropout.
@@ -100,11 +170,21 @@ pub(super) fn study(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
             "participants".into(),
             num(f, "/data/n_participants", d.n_participants.unwrap_or(0) as f64, 0),
         ],
-        vec!["cohorts".into(), num(f, "/data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0)],
-        vec!["clusters".into(), num(f, "/data/n_clusters", d.n_clusters.unwrap_or(0) as f64, 0)],
+        vec![
+            "cohorts".into(),
+            num(f, "/data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
+        ],
+        vec![
+            "clusters".into(),
+            num(f, "/data/n_clusters", d.n_clusters.unwrap_or(0) as f64, 0),
+        ],
         vec![
             "ages (years)".into(),
-            format!("{} to {}", num(f, "/data/age_min", d.age_min, 2), num(f, "/data/age_max", d.age_max, 2)),
+            format!(
+                "{} to {}",
+                num(f, "/data/age_min", d.age_min, 2),
+                num(f, "/data/age_max", d.age_max, 2)
+            ),
         ],
     ];
     page.table("What was read and used", &["", "#value"], &rows);
@@ -215,7 +295,11 @@ pub(super) fn converge(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
         return Ok(());
     };
     let f = "converge.json";
-    let _ = writeln!(page.html, "<p class=\"verdict\">{}</p>", text(f, "/verdict", &c.verdict));
+    let _ = writeln!(
+        page.html,
+        "<p class=\"verdict\">{}</p>",
+        text(f, "/verdict", &c.verdict)
+    );
     let rows: Vec<Vec<String>> = c
         .tests
         .iter()
@@ -271,7 +355,11 @@ pub(super) fn trajectory(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
                 num(f, &p("se"), e.se, 4),
                 num(f, &p("df"), e.df, 1),
                 pval(f, &p("p"), e.p),
-                format!("{} to {}", num(f, &p("lower"), e.lower, 4), num(f, &p("upper"), e.upper, 4)),
+                format!(
+                    "{} to {}",
+                    num(f, &p("lower"), e.lower, 4),
+                    num(f, &p("upper"), e.upper, 4)
+                ),
             ]
         })
         .collect();
@@ -320,9 +408,17 @@ fn rates(page: &mut Page<'_>, r: &StudyReport) {
             vec![
                 num(f, &p("age"), a.age, 1),
                 num(f, &p("mean"), a.mean, 2),
-                format!("{} to {}", num(f, &p("lower"), a.lower, 2), num(f, &p("upper"), a.upper, 2)),
+                format!(
+                    "{} to {}",
+                    num(f, &p("lower"), a.lower, 2),
+                    num(f, &p("upper"), a.upper, 2)
+                ),
                 num(f, &p("rate"), a.rate, 3),
-                format!("{} to {}", num(f, &p("rate_lower"), a.rate_lower, 3), num(f, &p("rate_upper"), a.rate_upper, 3)),
+                format!(
+                    "{} to {}",
+                    num(f, &p("rate_lower"), a.rate_lower, 3),
+                    num(f, &p("rate_upper"), a.rate_upper, 3)
+                ),
             ]
         })
         .collect();
@@ -342,7 +438,11 @@ fn rates(page: &mut Page<'_>, r: &StudyReport) {
             vec![
                 esc(e.kind),
                 num(f, &p("age"), e.age, 2),
-                format!("{} to {}", num(f, &p("lower"), e.lower, 2), num(f, &p("upper"), e.upper, 2)),
+                format!(
+                    "{} to {}",
+                    num(f, &p("lower"), e.lower, 2),
+                    num(f, &p("upper"), e.upper, 2)
+                ),
                 num(f, &p("mean"), e.mean, 2),
             ]
         })
@@ -383,7 +483,11 @@ pub(super) fn apc(page: &mut Page<'_>, r: &StudyReport, figures: &[String]) -> R
                 ]
             })
             .collect();
-        page.table("Identified in the exact-value model", &["quantity", "#estimate", "#SE"], &rows);
+        page.table(
+            "Identified in the exact-value model",
+            &["quantity", "#estimate", "#SE"],
+            &rows,
+        );
         let rows: Vec<Vec<String>> = e
             .tests
             .iter()
@@ -404,7 +508,11 @@ pub(super) fn apc(page: &mut Page<'_>, r: &StudyReport, figures: &[String]) -> R
                 ]
             })
             .collect();
-        page.table("Tests of the curves (F, Satterthwaite df)", &["test", "#F", "#df", "#p"], &rows);
+        page.table(
+            "Tests of the curves (F, Satterthwaite df)",
+            &["test", "#F", "#df", "#p"],
+            &rows,
+        );
     }
     // On records the exact-value model is the one to read; its figure alone
     // is shown, and the grouped model's figures stay in the folder.
@@ -464,7 +572,11 @@ pub(super) fn anova(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
         &["effect", "#F", "#df", "#p", "#p (Greenhouse–Geisser)", "#partial η²"],
         &rows,
     );
-    let _ = writeln!(page.html, "<p class=\"verdict\">{}</p>", text(f, "/recommendation", &a.analysis.recommendation));
+    let _ = writeln!(
+        page.html,
+        "<p class=\"verdict\">{}</p>",
+        text(f, "/recommendation", &a.analysis.recommendation)
+    );
     page.figure(
         "anova_means.svg",
         "Cohort × wave means of the complete cases on an age axis, one line per cohort.",
@@ -488,7 +600,11 @@ pub(super) fn reliability(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
                 esc(w.wave.as_deref().unwrap_or("all")),
                 num(f, &p("n"), w.n as f64, 0),
                 num(f, &p("alpha"), w.alpha, 3),
-                format!("{} to {}", num(f, &p("alpha_lower"), w.alpha_lower, 3), num(f, &p("alpha_upper"), w.alpha_upper, 3)),
+                format!(
+                    "{} to {}",
+                    num(f, &p("alpha_lower"), w.alpha_lower, 3),
+                    num(f, &p("alpha_upper"), w.alpha_upper, 3)
+                ),
                 w.omega.map_or("—".into(), |o| num(f, &p("omega"), o, 3)),
             ]
         })
@@ -516,7 +632,11 @@ pub(super) fn cautions(page: &mut Page<'_>, r: &StudyReport) {
     page.push("<li>Constraints that split age, period and cohort effects apart are untestable assumptions: report the identified quantities, and the constraint behind any split.</li>\n");
     if let Some(c) = &r.converge {
         for (k, a) in c.assumptions.iter().enumerate() {
-            let _ = writeln!(page.html, "<li>{}</li>", text("converge.json", &format!("/assumptions/{k}"), a));
+            let _ = writeln!(
+                page.html,
+                "<li>{}</li>",
+                text("converge.json", &format!("/assumptions/{k}"), a)
+            );
         }
     }
     page.push("</ul>\n");
@@ -558,7 +678,10 @@ pub(super) fn reproducibility(page: &mut Page<'_>, r: &StudyReport) {
         vec!["braid version".into(), esc(&v.braid_version)],
         vec!["command".into(), format!("<code>{}</code>", esc(&v.command))],
         vec!["data file".into(), esc(&v.data_file)],
-        vec!["SHA-256 of the data file".into(), format!("<code>{}</code>", esc(&v.data_sha256))],
+        vec![
+            "SHA-256 of the data file".into(),
+            format!("<code>{}</code>", esc(&v.data_sha256)),
+        ],
     ];
     for (k, (name, seed)) in v.seeds.iter().enumerate() {
         rows.push(vec![

@@ -35,7 +35,11 @@ pub fn study_summary(r: &StudyReport) -> String {
     }
     labelled(&mut s, "Ran", format_args!("{}", ran.join(", ")));
     for (name, why) in &r.skipped {
-        labelled(&mut s, "Skipped", format_args!("{}", wrap(&format!("{name}: {why}"), 75, 11)));
+        labelled(
+            &mut s,
+            "Skipped",
+            format_args!("{}", wrap(&format!("{name}: {why}"), 75, 11)),
+        );
     }
     if let Some(c) = &r.converge {
         labelled(&mut s, "Converge", format_args!("{}", wrap(&c.verdict, 75, 11)));
@@ -47,7 +51,11 @@ pub fn study_summary(r: &StudyReport) -> String {
         format_args!(
             "{} ({}), {}",
             fit.method,
-            if fit.converged { "converged" } else { "not certified: read with care" },
+            if fit.converged {
+                "converged"
+            } else {
+                "not certified: read with care"
+            },
             fit.model.join("; ")
         ),
     );
