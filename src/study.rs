@@ -109,7 +109,7 @@ pub fn analyse(
 ) -> Result<StudyReport> {
     let mut skipped = Vec::new();
     step("design");
-    let design = crate::design::inspect(panel, options.design.clone())?;
+    let design = crate::design::inspect(panel, options.design)?;
     step("convergence");
     let converge = crate::linkage::converge(panel, &options.fit.model, &options.converge)
         .map_err(|e| skipped.push(("converge".to_string(), e.to_string())))

@@ -209,8 +209,14 @@ fn load(source: &Source) -> Result<Panel> {
 fn fit_command(a: &args::FitArgs) -> Result<()> {
     let (source, request) = a.request()?;
     let emitter = Emitter::new(&a.output)?;
-    let panel = load(&source)?;
-    emitter.emit(&crate::fit_panel(&panel, &request)?.report)
+    let bar = progress::steps(a.output.quiet);
+    bar.set_message("reading");
+    let report = load(&source).and_then(|panel| {
+        bar.set_message("fitting");
+        crate::fit_panel(&panel, &request)
+    });
+    bar.finish_and_clear();
+    emitter.emit(&report?.report)
 }
 
 /// `braid inspect`: load, then describe the design.
@@ -225,8 +231,14 @@ fn inspect_command(a: &args::InspectArgs) -> Result<()> {
 fn converge_command(a: &args::ConvergeArgs) -> Result<()> {
     let (source, model, options) = a.options()?;
     let emitter = Emitter::new(&a.output)?;
-    let panel = load(&source)?;
-    emitter.emit(&crate::linkage::converge(&panel, &model, &options)?)
+    let bar = progress::steps(a.output.quiet);
+    bar.set_message("reading");
+    let report = load(&source).and_then(|panel| {
+        bar.set_message("fitting the cohort models");
+        crate::linkage::converge(&panel, &model, &options)
+    });
+    bar.finish_and_clear();
+    emitter.emit(&report?)
 }
 
 /// `braid anova`: load, then the cohort × wave mixed ANOVA on complete cases.

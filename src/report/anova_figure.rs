@@ -31,12 +31,16 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &AnovaReport) -> st
     // Headroom for the legend (about 18 pixels an entry in 470).
     let share = ((r.cohorts.len() + 1) as f64 * 18.0 + 24.0) / 470.0;
     let y1 = y1 + py + (y1 - y0 + 2.0 * py) * share / (1.0 - share);
+    let (x_desc, y_desc) = (
+        format!("{} (years)", r.data.age),
+        format!("mean {}, ±1.96 SE", r.data.outcome),
+    );
     let mut chart = framed(
         &root,
         "Cohort × wave means (complete cases) at each cell's mean age",
         (x0 - px)..(x1 + px),
         (y0 - py)..(y1 + py),
-        ("age (years)", "mean outcome, ±1.96 SE"),
+        (&x_desc, &y_desc),
     )?;
     for (g, cohort) in r.cohorts.iter().enumerate() {
         let color = PALETTE[g % PALETTE.len()];

@@ -312,8 +312,8 @@ fn exact_panel<DB: DrawingBackend>(area: &Panel<DB>, r: &ApcReport, d: Dimension
         .map_err(e)?;
     styled_mesh(&mut chart, 12)
         .x_labels(8)
-        .x_desc(name)
-        .y_desc("deviation, outcome units")
+        .x_desc(format!("{name} (years)"))
+        .y_desc(format!("{}: deviation", r.data.outcome))
         .draw()
         .map_err(e)?;
     chart

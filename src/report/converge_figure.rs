@@ -44,12 +44,16 @@ fn draw<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, r: &ConvergeReport) ->
     // entry in a plot about 470 pixels high), so that it hides no bar.
     let share = ((pairs.len() + 3) as f64 * 18.0 + 24.0) / 470.0;
     let y1 = y1 + py + (y1 - y0 + 2.0 * py) * share / (1.0 - share);
+    let (x_desc, y_desc) = (
+        format!("{} (years)", r.data.age),
+        format!("{}: later minus earlier cohort", r.data.outcome),
+    );
     let mut chart = framed(
         &root,
         "Cohort differences at shared ages, against the equivalence margin",
         (x0 - px)..(x1 + px),
         (y0 - py)..(y1 + py),
-        ("age (years)", "later minus earlier cohort (outcome units)"),
+        (&x_desc, &y_desc),
     )?;
     chart
         .draw_series(std::iter::once(Rectangle::new(

@@ -155,7 +155,7 @@ fn draw_coverage<DB: DrawingBackend>(
         .map_err(e)?;
     styled_mesh(&mut chart, 14)
         .disable_y_mesh()
-        .x_desc("age (years)")
+        .x_desc(format!("{} (years)", report.data.age))
         .y_desc("cohort")
         .y_labels(k.max(1))
         .y_label_formatter(&|y: &f64| {

@@ -247,3 +247,55 @@ fn the_demo_page_renders_in_a_real_browser() {
         "the report (or the measure) is wrong: {requests:?}"
     );
 }
+
+// `braid report --study` on the demo's study file runs the same analyses as
+// the demo (its [report] table asks for the ANOVA): the same JSON documents,
+// and a page that says the same numbers. Without --out it says what to do.
+#[test]
+fn the_report_command_reproduces_the_demo_from_its_study_file() {
+    let dir = demo("page-report");
+    let out = dir.parent().unwrap().join("again");
+    run_ok(
+        braid()
+            .args(["report", "--quiet", "--study"])
+            .arg(dir.join("study.toml"))
+            .arg("--out")
+            .arg(&out),
+    );
+    for file in ["design.json", "converge.json", "apc.json", "anova.json"] {
+        assert_eq!(
+            std::fs::read(dir.join(file)).unwrap(),
+            std::fs::read(out.join(file)).unwrap(),
+            "{file} differs"
+        );
+    }
+    // The demo's fit also asks for the mean at three ages; the rest agrees.
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert!(tagged(&html).len() > 150);
+    assert!(
+        html.contains("<code>braid report --quiet --study"),
+        "the command is recorded"
+    );
+    assert!(html.contains(&braid::study::sha256_file(&dir.join("panel.csv")).unwrap()));
+    let missing = braid()
+        .args(["report", "--quiet", "--study"])
+        .arg(dir.join("study.toml"))
+        .output()
+        .unwrap();
+    crate::common::expect_one_line_error(&missing, "--out: is required", "report without --out");
+}
+
+// The manual page comes from the same clap definitions as --help.
+#[test]
+fn the_manual_page_is_roff_of_every_command() {
+    let out = run_ok(braid().arg("manual"));
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        text.starts_with(".ie") || text.contains(".TH braid"),
+        "{}",
+        &text[..200.min(text.len())]
+    );
+    for command in ["fit", "converge", "report", "plan"] {
+        assert!(text.contains(command), "{command} missing from the manual");
+    }
+}

@@ -167,10 +167,9 @@ impl<'a> Page<'a> {
         let open_end = body.find('>').unwrap_or(0);
         let open = body[..open_end].replace(r#" xmlns="http://www.w3.org/2000/svg""#, "");
         let rest = &body[open_end + 1..];
-        let _ = write!(
+        let _ = writeln!(
             self.html,
-            r#"<figure>{open} role="img" aria-labelledby="{id}-title"><title id="{id}-title">{}</title>{rest}<figcaption>{}</figcaption></figure>
-"#,
+            r#"<figure>{open} role="img" aria-labelledby="{id}-title"><title id="{id}-title">{}</title>{rest}<figcaption>{}</figcaption></figure>"#,
             esc(alt),
             esc(alt)
         );

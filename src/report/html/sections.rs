@@ -142,11 +142,7 @@ fn glance(page: &mut Page<'_>, r: &StudyReport) {
         ));
     }
     if !lines.is_empty() {
-        let _ = write!(
-            page.html,
-            "<div class=\"verdict\"><p>{}</p></div>\n",
-            lines.join("<br>")
-        );
+        let _ = writeln!(page.html, "<div class=\"verdict\"><p>{}</p></div>", lines.join("<br>"));
     }
 }
 
