@@ -39,16 +39,20 @@ pub struct GradientEval {
     pub sxx_inv: Vec<f64>,
 }
 
-/// Whether [`gradient_eval`] applies: one random term (the primary one),
-/// with 1 to 4 coefficients per level.
+/// Whether [`gradient_eval`] applies: a primary term with 1 to 4
+/// coefficients per level, alone or with secondary intercept terms.
 pub fn has_gradient(cp: &CrossProducts) -> bool {
+    primary_only(cp) || super::secondary::applies(cp)
+}
+
+fn primary_only(cp: &CrossProducts) -> bool {
     cp.secondary.is_empty() && cp.q2_total == 0 && cp.primary.is_some() && (1..=4).contains(&cp.q1)
 }
 
-/// See [`deviance_gradient`]; `None` under the same conditions.
+/// See [`deviance_gradient`]; `None` when [`has_gradient`] does not hold.
 pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
-    if !has_gradient(cp) {
-        return None;
+    if !primary_only(cp) {
+        return super::secondary::gradient_eval(cp, theta, method);
     }
     let k1 = cp.primary?;
     let q = cp.q1;

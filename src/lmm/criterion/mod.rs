@@ -16,6 +16,7 @@
 
 mod gradient;
 mod primary;
+mod secondary;
 
 pub use gradient::{GradientEval, deviance_gradient, gradient_eval, has_gradient};
 use primary::{CHUNKS, PARALLEL_LEVELS, level_block, primary_fixed, primary_general};
@@ -154,15 +155,12 @@ pub fn factors(cp: &CrossProducts, theta: &[f64]) -> Vec<Vec<f64>> {
         .collect()
 }
 
-/// Evaluate the pieces of the criterion; `keep` retains the block factors
-/// needed for BLUPs.
-pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor, EvalFailure> {
+/// The dense part before the primary levels are eliminated:
+/// `Λ̃ᵀ D Λ̃ + I₂`, with `Λ̃ = blockdiag(T_s per secondary level, I_{p+1})`
+/// (m×m row-major, full symmetric).
+fn scaled_dense(cp: &CrossProducts, t: &[Vec<f64>]) -> Vec<f64> {
     let m = cp.m;
-    let p = cp.p;
     let q2 = cp.q2_total;
-    let t = factors(cp, theta);
-
-    // S = Λ̃ᵀ D Λ̃ + I₂, Λ̃ = blockdiag(T_s per secondary level, I_{p+1}).
     let mut e = cp.dense.clone();
     // Right-multiply column blocks by T_s.
     for (s, &kt) in cp.secondary.iter().enumerate() {
@@ -206,6 +204,19 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
     for k in 0..q2 {
         e[k * m + k] += 1.0;
     }
+
+    e
+}
+
+/// Evaluate the pieces of the criterion; `keep` retains the block factors
+/// needed for BLUPs.
+pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor, EvalFailure> {
+    let m = cp.m;
+    let p = cp.p;
+    let q2 = cp.q2_total;
+    let t = factors(cp, theta);
+
+    let mut e = scaled_dense(cp, &t);
 
     let mut logdet_z = 0.0;
     let mut blocks_l = Vec::new();

@@ -1,0 +1,389 @@
+//! The analytic gradient when the primary term is joined by secondary
+//! intercept terms (a school intercept; crossed period and cohort
+//! intercepts), each with `Λ_s = θ_s I` (notes/criterion.md, "Secondary
+//! intercept terms").
+//!
+//! The primary part follows [`super::gradient`] with the dense columns
+//! `[Z₂Λ₂ X y]` in place of `[X y]`: per level only the linked secondary
+//! columns and `X y` are non-zero, so each level updates a few entries of
+//! the m×m sums. With `S` the dense Schur complement and `S₁` its leading
+//! block without `y`:
+//! - primary entry: `∂S = −(M + Mᵀ)`, `∂ log|A₁| = Σᵢ ∂log|Aᵢ| + tr(S₁⁻¹ ∂S₁)`
+//!   (REML), or with `S_Z₂Z₂` in place of `S₁` (ML), and `∂r² = ξᵀ ∂S ξ`;
+//! - secondary term s: `∂A = (P_s(A − D) + (A − D)P_s)/θ_s`, so
+//!   `∂ log|A₁| = (2/θ_s)(n_s − tr_s(S₁⁻¹))` and, as `Aξ = [0; r²]`,
+//!   `∂r² = −(2/θ_s) Σ_{i∈s} ξᵢ²`; both are 0 at θ_s = 0.
+
+// Index loops mirror the matrix notation of the derivation.
+#![allow(clippy::needless_range_loop)]
+
+use faer::linalg::solvers::DenseSolveCore;
+use faer::{Mat, Side};
+
+use super::super::crossprod::CrossProducts;
+use super::super::{Method, unpack_factor};
+use super::gradient::GradientEval;
+use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
+use super::{LogDet, Pieces, factors, scaled_dense};
+
+/// Whether [`gradient_eval`] applies: a primary term of 1 to 4 coefficients
+/// per level and at least one secondary term, every one an intercept.
+pub fn applies(cp: &CrossProducts) -> bool {
+    cp.primary.is_some()
+        && (1..=4).contains(&cp.q1)
+        && !cp.secondary.is_empty()
+        && cp.secondary.iter().all(|&k| cp.term_q[k] == 1)
+}
+
+/// One range of primary levels' sums, over the m dense columns.
+struct Part {
+    logdet: f64,
+    dlog: Vec<f64>,
+    /// Σ Bᵢᵀ Hᵢ, m×m (both triangles).
+    bh: Vec<f64>,
+    /// Per primary θ entry, Σ uᵢₐ hᵢᵦᵀ, m×m each.
+    acc: Vec<f64>,
+}
+
+impl Part {
+    fn add(&mut self, o: &Part) {
+        self.logdet += o.logdet;
+        self.dlog.iter_mut().zip(&o.dlog).for_each(|(a, b)| *a += b);
+        self.bh.iter_mut().zip(&o.bh).for_each(|(a, b)| *a += b);
+        self.acc.iter_mut().zip(&o.acc).for_each(|(a, b)| *a += b);
+    }
+}
+
+/// The per-level sums over `range`; `theta_s[s]` scales secondary term s.
+fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range: std::ops::Range<usize>) -> Part {
+    let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
+    let c1 = p + 1;
+    let nt = Q * (Q + 1) / 2;
+    let mut tq = [[0.0f64; Q]; Q];
+    for r in 0..Q {
+        for c in 0..Q {
+            tq[r][c] = t[r * Q + c];
+        }
+    }
+    let mut pairs = [(0usize, 0usize); 10];
+    let mut k = 0;
+    for j in 0..Q {
+        for i in j..Q {
+            pairs[k] = (i, j);
+            k += 1;
+        }
+    }
+    let mut logdet = LogDet::new();
+    let mut part = Part {
+        logdet: 0.0,
+        dlog: vec![0.0; nt],
+        bh: vec![0.0; m * m],
+        acc: vec![0.0; nt * m * m],
+    };
+    let mut cols: Vec<usize> = Vec::new();
+    let mut c: Vec<[f64; Q]> = Vec::new();
+    let mut b: Vec<[f64; Q]> = Vec::new();
+    let mut h: Vec<[f64; Q]> = Vec::new();
+    let mut u: Vec<[f64; Q]> = Vec::new();
+    for i in range {
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let zi = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
+        cols.clear();
+        c.clear();
+        let (lo, hi) = cp.link_ranges[i];
+        for link in &cp.links[lo..hi] {
+            let v = &cp.link_values[link.start..link.start + Q];
+            let th = theta_s[link.secondary];
+            let mut col = [0.0; Q];
+            for r in 0..Q {
+                col[r] = v[r] * th;
+            }
+            cols.push(link.offset);
+            c.push(col);
+        }
+        for j in 0..c1 {
+            let mut col = [0.0; Q];
+            for r in 0..Q {
+                col[r] = zi[r * c1 + j];
+            }
+            cols.push(q2 + j);
+            c.push(col);
+        }
+        let (gt, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
+        let solve = |w: &mut [f64; Q]| {
+            for r in 0..Q {
+                let mut s = w[r];
+                for x in 0..r {
+                    s -= l[r][x] * w[x];
+                }
+                w[r] = s * inv[r];
+            }
+            for r in (0..Q).rev() {
+                let mut s = w[r];
+                for x in r + 1..Q {
+                    s -= l[x][r] * w[x];
+                }
+                w[r] = s * inv[r];
+            }
+        };
+        let nc = cols.len();
+        b.resize(nc, [0.0; Q]);
+        h.resize(nc, [0.0; Q]);
+        u.resize(nc, [0.0; Q]);
+        for j in 0..nc {
+            let mut bc = [0.0f64; Q];
+            for r in 0..Q {
+                let mut s = 0.0;
+                for x in r..Q {
+                    s += tq[x][r] * c[j][x];
+                }
+                bc[r] = s;
+            }
+            let mut hc = bc;
+            solve(&mut hc);
+            let mut uc = [0.0f64; Q];
+            for r in 0..Q {
+                let mut s = c[j][r];
+                for x in 0..Q {
+                    s -= gt[r][x] * hc[x];
+                }
+                uc[r] = s;
+            }
+            b[j] = bc;
+            h[j] = hc;
+            u[j] = uc;
+        }
+        for col in 0..Q {
+            let mut w = gt[col];
+            solve(&mut w);
+            for (k, &(ia, ib)) in pairs[..nt].iter().enumerate() {
+                if ia == col {
+                    part.dlog[k] += 2.0 * w[ib];
+                }
+            }
+        }
+        for x in 0..nc {
+            let row = cols[x] * m;
+            for y in 0..nc {
+                let mut s = 0.0;
+                for r in 0..Q {
+                    s += b[x][r] * h[y][r];
+                }
+                part.bh[row + cols[y]] += s;
+            }
+        }
+        for (k, &(ia, ib)) in pairs[..nt].iter().enumerate() {
+            let blk = &mut part.acc[k * m * m..(k + 1) * m * m];
+            for x in 0..nc {
+                let ux = u[x][ia];
+                let row = cols[x] * m;
+                for y in 0..nc {
+                    blk[row + cols[y]] += ux * h[y][ib];
+                }
+            }
+        }
+    }
+    part.logdet = logdet.total();
+    part
+}
+
+/// The deviance, its gradient and its pieces (see the module note); `None`
+/// when [`applies`] does not hold or a factorisation fails.
+pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+    if !applies(cp) {
+        return None;
+    }
+    let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
+    let k1 = cp.primary?;
+    let q = cp.q1;
+    let nt = q * (q + 1) / 2;
+    let off = cp.theta_offset[k1];
+    let t = unpack_factor(&theta[off..off + nt], q);
+    let all = factors(cp, theta);
+    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
+    let per_range = |range: std::ops::Range<usize>| -> Part {
+        match q {
+            1 => levels::<1>(cp, &t, &theta_s, range),
+            2 => levels::<2>(cp, &t, &theta_s, range),
+            3 => levels::<3>(cp, &t, &theta_s, range),
+            _ => levels::<4>(cp, &t, &theta_s, range),
+        }
+    };
+    let part = if cp.n1 < PARALLEL_LEVELS {
+        per_range(0..cp.n1)
+    } else {
+        use rayon::prelude::*;
+        let parts: Vec<Part> = (0..CHUNKS)
+            .into_par_iter()
+            .map(|c| per_range(c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS))
+            .collect();
+        let mut it = parts.into_iter();
+        let mut total = it.next()?;
+        for pt in it {
+            total.add(&pt);
+        }
+        total
+    };
+    let mut s = scaled_dense(cp, &all);
+    for (v, d) in s.iter_mut().zip(&part.bh) {
+        *v -= d;
+    }
+    let sm = Mat::from_fn(m, m, |r, c| if r >= c { s[r * m + c] } else { s[c * m + r] });
+    let llt = sm.llt(Side::Lower).ok()?;
+    let l = llt.L();
+    let logdet_dense_z: f64 = (0..q2).map(|k| 2.0 * l[(k, k)].ln()).sum();
+    let logdet_x: f64 = (q2..q2 + p).map(|k| 2.0 * l[(k, k)].ln()).sum();
+    let r2 = l[(m - 1, m - 1)] * l[(m - 1, m - 1)];
+    let pieces = Pieces {
+        logdet_z: part.logdet + logdet_dense_z,
+        logdet_x,
+        pwrss: r2,
+    };
+    // S₁⁻¹ and ξ; for ML the inverse of the secondary block alone.
+    let m1 = m - 1;
+    let s1 = Mat::from_fn(m1, m1, |r, c| sm[(r, c)]);
+    let inv1 = s1.llt(Side::Lower).ok()?.inverse();
+    let mut xi = vec![0.0; m];
+    for r in 0..m1 {
+        xi[r] = -(0..m1).map(|c| inv1[(r, c)] * sm[(c, m1)]).sum::<f64>();
+    }
+    xi[m1] = 1.0;
+    let reml = method == Method::Reml;
+    let (inv_t, nt_dim) = if reml {
+        (inv1.clone(), m1)
+    } else {
+        let s2 = Mat::from_fn(q2, q2, |r, c| sm[(r, c)]);
+        (s2.llt(Side::Lower).ok()?.inverse(), q2)
+    };
+    let nu = if reml { (cp.n - p) as f64 } else { cp.n as f64 };
+    let mut grad = vec![0.0; theta.len()];
+    let mut a_grad = vec![0.0; theta.len()];
+    let mut r2_grad = vec![0.0; theta.len()];
+    for k in 0..nt {
+        let blk = &part.acc[k * m * m..(k + 1) * m * m];
+        let ds = |r: usize, c: usize| -(blk[r * m + c] + blk[c * m + r]);
+        let mut dr2 = 0.0;
+        for r in 0..m {
+            if xi[r] == 0.0 {
+                continue;
+            }
+            for c in 0..m {
+                dr2 += xi[r] * ds(r, c) * xi[c];
+            }
+        }
+        let mut dtr = 0.0;
+        for r in 0..nt_dim {
+            for c in 0..nt_dim {
+                dtr += inv_t[(r, c)] * ds(c, r);
+            }
+        }
+        a_grad[off + k] = part.dlog[k] + dtr;
+        r2_grad[off + k] = dr2;
+    }
+    for (s_idx, &kt) in cp.secondary.iter().enumerate() {
+        let th = theta_s[s_idx];
+        let from = cp.secondary_offset[s_idx];
+        let to = cp.secondary_offset.get(s_idx + 1).copied().unwrap_or(q2);
+        let at = cp.theta_offset[kt];
+        if th == 0.0 {
+            continue;
+        }
+        let n_s = (to - from) as f64;
+        let trace: f64 = (from..to).map(|i| inv_t[(i, i)]).sum();
+        a_grad[at] = 2.0 / th * (n_s - trace);
+        r2_grad[at] = -2.0 / th * (from..to).map(|i| xi[i] * xi[i]).sum::<f64>();
+    }
+    for k in 0..theta.len() {
+        grad[k] = a_grad[k] + nu * r2_grad[k] / r2;
+    }
+    Some(GradientEval {
+        deviance: pieces.profiled_deviance(method, cp.n, p),
+        grad,
+        a_grad,
+        r2_grad,
+        sxx_inv: (0..p * p).map(|k| inv1[(q2 + k / p, q2 + k % p)]).collect(),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::super::deviance;
+    use super::*;
+    use crate::lmm::{MixedProblem, RandomTermData};
+
+    // The analytic gradient with two secondary intercept terms (schools, and
+    // raters crossed with them) against central differences of the
+    // deviance (closed-form identity: they agree to the differences'
+    // truncation), by REML and ML, inside the parameter space and with a
+    // secondary θ at 0.
+    #[test]
+    fn secondary_gradient_matches_central_differences() {
+        let mut rng = crate::simulate::Rng::new(7);
+        let (n_id, per, schools, raters) = (60, 4, 6, 3);
+        let n = n_id * per;
+        let school_effect: Vec<f64> = (0..schools).map(|_| rng.normal()).collect();
+        let (mut x, mut y, mut z1, mut id, mut sc, mut ra) = (vec![], vec![], vec![], vec![], vec![], vec![]);
+        for i in 0..n_id {
+            let (b0, b1) = (2.0 * rng.normal(), 0.5 * rng.normal());
+            let s = i % schools;
+            for w in 0..per {
+                let a = w as f64 + rng.uniform() - 2.0;
+                let r = (i + w) % raters;
+                x.extend([1.0, a, a * a]);
+                y.push(10.0 + a + b0 + b1 * a + school_effect[s] + 0.3 * r as f64 + rng.normal());
+                z1.push(a);
+                id.push(i as u32);
+                sc.push(s as u32);
+                ra.push(r as u32);
+            }
+        }
+        let term = |factor: &str, k: usize, level: Vec<u32>, z: Vec<Vec<f64>>, columns: Vec<String>| RandomTermData {
+            factor: factor.into(),
+            level_names: (0..k).map(|i| i.to_string()).collect(),
+            level,
+            columns,
+            z,
+        };
+        let problem = MixedProblem {
+            y,
+            x_names: vec!["1".into(), "a".into(), "a2".into()],
+            x,
+            terms: vec![
+                term(
+                    "id",
+                    n_id,
+                    id,
+                    vec![vec![1.0; n], z1],
+                    vec!["intercept".into(), "a".into()],
+                ),
+                term("school", schools, sc, vec![vec![1.0; n]], vec!["intercept".into()]),
+                term("rater", raters, ra, vec![vec![1.0; n]], vec!["intercept".into()]),
+            ],
+        };
+        let cp = CrossProducts::new(&problem);
+        assert!(applies(&cp));
+        for theta in [[1.3, 0.2, 0.4, 0.7, 0.3], [1.1, -0.1, 0.3, 0.0, 0.5]] {
+            for method in [Method::Reml, Method::Ml] {
+                let g = gradient_eval(&cp, &theta, method).unwrap();
+                let d = deviance(&cp, &theta, method);
+                assert!((g.deviance - d).abs() < 1e-9 * d.abs(), "{} vs {d}", g.deviance);
+                for k in 0..theta.len() {
+                    if theta[k] == 0.0 {
+                        assert_eq!(g.grad[k], 0.0);
+                        continue;
+                    }
+                    let h = 1e-5;
+                    let (mut tp, mut tm) = (theta, theta);
+                    tp[k] += h;
+                    tm[k] -= h;
+                    let fd = (deviance(&cp, &tp, method) - deviance(&cp, &tm, method)) / (2.0 * h);
+                    assert!(
+                        (g.grad[k] - fd).abs() < 1e-5 * (1.0 + fd.abs()),
+                        "{method:?} θ{k}: {} vs {fd}",
+                        g.grad[k]
+                    );
+                }
+            }
+        }
+    }
+}
