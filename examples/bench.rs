@@ -2,7 +2,7 @@
 //!
 //! ```text
 //! cargo build --release
-//! cargo run --release --example bench -- [small|large|inspect|converge|apc|anova|score|plan|all] [WORK_DIR]
+//! cargo run --release --example bench -- [small|large|inspect|converge|apc|anova|score|plan|report|all] [WORK_DIR]
 //! ```
 //!
 //! - `small`: a 3,000-participant three-wave file; REML, quadratic age,
@@ -29,6 +29,9 @@
 //!   cohort and cohort × wave, on 1,000,000 rows × 20 items.
 //! - `anova`: `braid anova` with JSON output on 100,000 participants × 4
 //!   waves (complete; the demo's five cohorts).
+//! - `report`: `braid report` on the demo's study file (three runs) and on
+//!   the 1,000,000-row file with its period column (one run; written by
+//!   `large` or `inspect` when absent), with every analysis it runs.
 //! - `plan`: `braid plan` simulating 1,000 replicates of the demo's design
 //!   (1,200 participants in 24 schools, the real fit and the convergence
 //!   test with and without the offset in each), and the expected-information
@@ -523,6 +526,54 @@ fn main() {
     if which == "plan" || which == "all" {
         plan(&work);
     }
+    if which == "report" || which == "all" {
+        report(&work);
+    }
+}
+
+fn report(work: &Path) {
+    let demo = work.join("report-demo");
+    let o = Command::new(braid_bin())
+        .args(["demo", "--quiet", "--force", "--out"])
+        .arg(&demo)
+        .output()
+        .expect("braid demo");
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let walls = three_runs("braid report (demo)", |cmd| {
+        cmd.args(["report", "--quiet", "--force", "--study"])
+            .arg(demo.join("study.toml"))
+            .arg("--out")
+            .arg(work.join("report-demo-out"));
+    });
+    println!("report: the demo's study, every analysis and the page: runs {walls:.2?} s");
+    let file = work.join("bench_1m.csv");
+    if !file.exists() {
+        write(&design(66_667, 50, 1_000_000), &file);
+    }
+    let t0 = Instant::now();
+    let o = Command::new(braid_bin())
+        .arg("report")
+        .arg(&file)
+        .args(PANEL_ROLES)
+        .args([
+            "--wave",
+            "wave",
+            "--cluster",
+            "school",
+            "--period",
+            "year",
+            "--quiet",
+            "--force",
+            "--out",
+        ])
+        .arg(work.join("report-1m-out"))
+        .output()
+        .expect("braid report");
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    println!(
+        "report: 1,000,005 rows with schools and period: {:.1} s",
+        t0.elapsed().as_secs_f64()
+    );
 }
 
 /// The demo's population in a plan file.

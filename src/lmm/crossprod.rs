@@ -71,6 +71,24 @@ pub struct CrossProducts {
     pub dense_groups: Vec<Vec<f64>>,
 }
 
+/// The order of the dense part (secondary columns, fixed effects and y)
+/// that [`CrossProducts::new`] would build for `problem`, and the
+/// secondary terms' names with their columns.
+pub fn dense_order(problem: &super::MixedProblem) -> (usize, Vec<(String, usize)>) {
+    let layout = Layout::of(&problem.terms);
+    let terms = layout
+        .secondary
+        .iter()
+        .map(|&k| {
+            (
+                problem.terms[k].factor.clone(),
+                problem.terms[k].n_levels() * problem.terms[k].q(),
+            )
+        })
+        .collect();
+    (layout.q2_total + problem.p() + 1, terms)
+}
+
 impl CrossProducts {
     /// Gather the cross-products in one pass over the rows.
     pub fn new(problem: &MixedProblem) -> Self {

@@ -193,6 +193,34 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     rayon::scope(|_| fit_on_worker(problem, options))
 }
 
+/// The largest dense part braid builds: 4,000 × 4,000 doubles are 128 MB a
+/// copy, and an evaluation holds a few copies.
+pub const DENSE_LIMIT: usize = 4_000;
+
+/// Refuse, before any memory is taken, a model whose terms beside the
+/// primary one would make the dense part larger than [`DENSE_LIMIT`] (two
+/// large crossed factors).
+fn check_dense_order(problem: &MixedProblem) -> Result<()> {
+    let (m, terms) = super::crossprod::dense_order(problem);
+    if m <= DENSE_LIMIT {
+        return Ok(());
+    }
+    let named: Vec<String> = terms
+        .iter()
+        .map(|(f, k)| format!("'{f}' ({} columns)", crate::stats::thousands(*k)))
+        .collect();
+    Err(Error::Spec {
+        parameter: "random".into(),
+        message: format!(
+            "the random terms beside the largest one, {}, would make a dense block of order {} (about {:.1} GB a copy), above braid's limit of {}; two large crossed factors need a sparse route braid does not have yet: group the smaller factor's levels, or fit it as a fixed effect",
+            named.join(", "),
+            crate::stats::thousands(m),
+            (m * m * 8) as f64 / 1e9,
+            crate::stats::thousands(DENSE_LIMIT)
+        ),
+    })
+}
+
 /// The fixed design must have full rank: checked at θ = 0 (ordinary least squares).
 fn check_fixed_rank(problem: &MixedProblem, cp: &CrossProducts) -> Result<()> {
     let p = problem.p();
@@ -288,6 +316,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
             message: format!("{n} usable rows for {p} fixed effects; simplify the model or supply more data"),
         });
     }
+    check_dense_order(problem)?;
     let method = options.method;
     let cp = CrossProducts::new(problem);
     let lower = problem.theta_lower();
@@ -399,4 +428,35 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
         },
         sensitivity: sensitivity.0,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::lmm::RandomTermData;
+
+    // Two large crossed factors (pupils crossed with 4,500 raters) are
+    // refused before any memory is taken, naming the factor and the limit.
+    #[test]
+    fn two_large_crossed_factors_are_refused_with_a_clear_error() {
+        let n = 9_000;
+        let term = |factor: &str, k: usize| RandomTermData {
+            factor: factor.into(),
+            level_names: (0..k).map(|i| i.to_string()).collect(),
+            level: (0..n).map(|r| (r % k) as u32).collect(),
+            columns: vec!["intercept".into()],
+            z: vec![vec![1.0; n]],
+        };
+        let problem = MixedProblem {
+            y: (0..n).map(|r| (r % 7) as f64).collect(),
+            x_names: vec!["intercept".into()],
+            x: vec![1.0; n],
+            terms: vec![term("pupil", 6_000), term("rater", 4_500)],
+        };
+        let e = fit(&problem, FitOptions::default()).unwrap_err().to_string();
+        assert!(
+            e.contains("'rater' (4,500 columns)") && e.contains("limit of 4,000"),
+            "{e}"
+        );
+    }
 }
