@@ -101,13 +101,17 @@ fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range:
             cols.push(link.offset);
             c.push(col);
         }
+        // A level's all-zero columns (another cohort's terms, say) add
+        // nothing to any sum: skip them, as the value kernel does.
         for j in 0..c1 {
             let mut col = [0.0; Q];
             for r in 0..Q {
                 col[r] = zi[r * c1 + j];
             }
-            cols.push(q2 + j);
-            c.push(col);
+            if col.iter().any(|v| *v != 0.0) {
+                cols.push(q2 + j);
+                c.push(col);
+            }
         }
         let (gt, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
         let solve = |w: &mut [f64; Q]| {
@@ -329,7 +333,9 @@ mod tests {
             for w in 0..per {
                 let a = w as f64 + rng.uniform() - 2.0;
                 let r = (i + w) % raters;
-                x.extend([1.0, a, a * a]);
+                // The last column is zero for every odd participant (like
+                // another cohort's age term), so the kernel skips it there.
+                x.extend([1.0, a, a * a, if i % 2 == 0 { a } else { 0.0 }]);
                 y.push(10.0 + a + b0 + b1 * a + school_effect[s] + 0.3 * r as f64 + rng.normal());
                 z1.push(a);
                 id.push(i as u32);
