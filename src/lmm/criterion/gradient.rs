@@ -173,6 +173,106 @@ impl GradPart {
     }
 }
 
+/// One primary level's share of the gradient, the same in both kernels: the
+/// factor T as an array, the order of its entries, and the solves with the
+/// level's block `Aᵢ = TᵀGᵢT + I`.
+pub(super) struct LevelSolver<const Q: usize> {
+    /// T, row-major.
+    pub tq: [[f64; Q]; Q],
+    /// The (row, column) of each θ entry, column by column.
+    pub pairs: [(usize, usize); 10],
+    /// Number of θ entries.
+    pub nt: usize,
+}
+
+impl<const Q: usize> LevelSolver<Q> {
+    /// The solver for the factor `t` (Q×Q row-major).
+    pub fn new(t: &[f64]) -> Self {
+        let mut tq = [[0.0f64; Q]; Q];
+        for r in 0..Q {
+            for c in 0..Q {
+                tq[r][c] = t[r * Q + c];
+            }
+        }
+        let mut pairs = [(0usize, 0usize); 10];
+        let mut k = 0;
+        for j in 0..Q {
+            for i in j..Q {
+                pairs[k] = (i, j);
+                k += 1;
+            }
+        }
+        LevelSolver {
+            tq,
+            pairs,
+            nt: Q * (Q + 1) / 2,
+        }
+    }
+
+    /// Solve `Aᵢ w = v` in place from its Cholesky factor `l` and inverse pivots `inv`.
+    #[inline(always)]
+    fn solve(l: &[[f64; Q]; Q], inv: &[f64; Q], w: &mut [f64; Q]) {
+        for r in 0..Q {
+            let mut s = w[r];
+            for x in 0..r {
+                s -= l[r][x] * w[x];
+            }
+            w[r] = s * inv[r];
+        }
+        for r in (0..Q).rev() {
+            let mut s = w[r];
+            for x in r + 1..Q {
+                s -= l[x][r] * w[x];
+            }
+            w[r] = s * inv[r];
+        }
+    }
+
+    /// For one column `c` of `Cᵢ`: `b = Tᵀc`, `h = Aᵢ⁻¹b` and `u = c − GᵢT h`.
+    #[inline(always)]
+    pub fn column(
+        &self,
+        gt: &[[f64; Q]; Q],
+        l: &[[f64; Q]; Q],
+        inv: &[f64; Q],
+        c: &[f64; Q],
+    ) -> ([f64; Q], [f64; Q], [f64; Q]) {
+        let mut b = [0.0f64; Q];
+        for r in 0..Q {
+            let mut s = 0.0;
+            for x in r..Q {
+                s += self.tq[x][r] * c[x];
+            }
+            b[r] = s;
+        }
+        let mut h = b;
+        Self::solve(l, inv, &mut h);
+        let mut u = [0.0f64; Q];
+        for r in 0..Q {
+            let mut s = c[r];
+            for x in 0..Q {
+                s -= gt[r][x] * h[x];
+            }
+            u[r] = s;
+        }
+        (b, h, u)
+    }
+
+    /// Add `∂ log|Aᵢ| / ∂T_ab = 2 (Aᵢ⁻¹ (GᵢT)ᵀ)_ba` to `dlog`.
+    #[inline(always)]
+    pub fn add_dlog(&self, gt: &[[f64; Q]; Q], l: &[[f64; Q]; Q], inv: &[f64; Q], dlog: &mut [f64]) {
+        for col in 0..Q {
+            let mut w = gt[col];
+            Self::solve(l, inv, &mut w);
+            for (k, &(ia, ib)) in self.pairs[..self.nt].iter().enumerate() {
+                if ia == col {
+                    dlog[k] += 2.0 * w[ib];
+                }
+            }
+        }
+    }
+}
+
 /// The per-level sums of [`deviance_gradient`] over `range`, with Q×Q
 /// blocks in fixed-size arrays.
 pub(super) fn grad_levels<const Q: usize>(
@@ -181,21 +281,8 @@ pub(super) fn grad_levels<const Q: usize>(
     range: std::ops::Range<usize>,
 ) -> Option<GradPart> {
     let c1 = cp.p + 1;
-    let nt = Q * (Q + 1) / 2;
-    let mut tq = [[0.0f64; Q]; Q];
-    for r in 0..Q {
-        for c in 0..Q {
-            tq[r][c] = t[r * Q + c];
-        }
-    }
-    let mut pairs = [(0usize, 0usize); 10];
-    let mut k = 0;
-    for j in 0..Q {
-        for i in j..Q {
-            pairs[k] = (i, j);
-            k += 1;
-        }
-    }
+    let solver = LevelSolver::<Q>::new(t);
+    let nt = solver.nt;
     let mut logdet = LogDet::new();
     let mut dlog = vec![0.0; nt];
     let mut bh = vec![0.0; c1 * c1];
@@ -206,58 +293,15 @@ pub(super) fn grad_levels<const Q: usize>(
     for i in range {
         let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
         let ci = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
-        let (gt, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
-        // Solve A v = w in place (forward then backward with L).
-        let solve = |w: &mut [f64; Q]| {
-            for r in 0..Q {
-                let mut s = w[r];
-                for x in 0..r {
-                    s -= l[r][x] * w[x];
-                }
-                w[r] = s * inv[r];
-            }
-            for r in (0..Q).rev() {
-                let mut s = w[r];
-                for x in r + 1..Q {
-                    s -= l[x][r] * w[x];
-                }
-                w[r] = s * inv[r];
-            }
-        };
-        // Columns: b = Tᵀ c, h = A⁻¹ b, u = c − G T h.
+        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
         for col in 0..c1 {
-            let mut bc = [0.0f64; Q];
+            let mut c = [0.0f64; Q];
             for r in 0..Q {
-                let mut s = 0.0;
-                for x in r..Q {
-                    s += tq[x][r] * ci[x * c1 + col];
-                }
-                bc[r] = s;
+                c[r] = ci[r * c1 + col];
             }
-            let mut hc = bc;
-            solve(&mut hc);
-            let mut uc = [0.0f64; Q];
-            for r in 0..Q {
-                let mut s = ci[r * c1 + col];
-                for x in 0..Q {
-                    s -= gt[r][x] * hc[x];
-                }
-                uc[r] = s;
-            }
-            b[col] = bc;
-            h[col] = hc;
-            u[col] = uc;
+            (b[col], h[col], u[col]) = solver.column(&gt, &l, &inv, &c);
         }
-        // Mi = A⁻¹ (G T)ᵀ, column by column; ∂log|A| / ∂T_ab = 2 Mi[b][a].
-        for col in 0..Q {
-            let mut w = gt[col];
-            solve(&mut w);
-            for (k, &(ia, ib)) in pairs[..nt].iter().enumerate() {
-                if ia == col {
-                    dlog[k] += 2.0 * w[ib];
-                }
-            }
-        }
+        solver.add_dlog(&gt, &l, &inv, &mut dlog);
         for r in 0..c1 {
             for c in 0..=r {
                 let mut s = 0.0;
@@ -267,7 +311,7 @@ pub(super) fn grad_levels<const Q: usize>(
                 bh[r * c1 + c] += s;
             }
         }
-        for (k, &(ia, ib)) in pairs[..nt].iter().enumerate() {
+        for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
             let blk = &mut acc[k * c1 * c1..(k + 1) * c1 * c1];
             for r in 0..c1 {
                 let ur = u[r][ia];

@@ -22,7 +22,7 @@ use faer::{Mat, Side};
 
 use super::super::crossprod::CrossProducts;
 use super::super::{Method, unpack_factor};
-use super::gradient::GradientEval;
+use super::gradient::{GradientEval, LevelSolver};
 use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
 use super::{LogDet, Pieces, factors, scaled_dense};
 
@@ -58,21 +58,8 @@ impl Part {
 fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range: std::ops::Range<usize>) -> Part {
     let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
     let c1 = p + 1;
-    let nt = Q * (Q + 1) / 2;
-    let mut tq = [[0.0f64; Q]; Q];
-    for r in 0..Q {
-        for c in 0..Q {
-            tq[r][c] = t[r * Q + c];
-        }
-    }
-    let mut pairs = [(0usize, 0usize); 10];
-    let mut k = 0;
-    for j in 0..Q {
-        for i in j..Q {
-            pairs[k] = (i, j);
-            k += 1;
-        }
-    }
+    let solver = LevelSolver::<Q>::new(t);
+    let nt = solver.nt;
     let mut logdet = LogDet::new();
     let mut part = Part {
         logdet: 0.0,
@@ -113,59 +100,15 @@ fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range:
                 c.push(col);
             }
         }
-        let (gt, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
-        let solve = |w: &mut [f64; Q]| {
-            for r in 0..Q {
-                let mut s = w[r];
-                for x in 0..r {
-                    s -= l[r][x] * w[x];
-                }
-                w[r] = s * inv[r];
-            }
-            for r in (0..Q).rev() {
-                let mut s = w[r];
-                for x in r + 1..Q {
-                    s -= l[x][r] * w[x];
-                }
-                w[r] = s * inv[r];
-            }
-        };
+        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
         let nc = cols.len();
         b.resize(nc, [0.0; Q]);
         h.resize(nc, [0.0; Q]);
         u.resize(nc, [0.0; Q]);
         for j in 0..nc {
-            let mut bc = [0.0f64; Q];
-            for r in 0..Q {
-                let mut s = 0.0;
-                for x in r..Q {
-                    s += tq[x][r] * c[j][x];
-                }
-                bc[r] = s;
-            }
-            let mut hc = bc;
-            solve(&mut hc);
-            let mut uc = [0.0f64; Q];
-            for r in 0..Q {
-                let mut s = c[j][r];
-                for x in 0..Q {
-                    s -= gt[r][x] * hc[x];
-                }
-                uc[r] = s;
-            }
-            b[j] = bc;
-            h[j] = hc;
-            u[j] = uc;
+            (b[j], h[j], u[j]) = solver.column(&gt, &l, &inv, &c[j]);
         }
-        for col in 0..Q {
-            let mut w = gt[col];
-            solve(&mut w);
-            for (k, &(ia, ib)) in pairs[..nt].iter().enumerate() {
-                if ia == col {
-                    part.dlog[k] += 2.0 * w[ib];
-                }
-            }
-        }
+        solver.add_dlog(&gt, &l, &inv, &mut part.dlog);
         for x in 0..nc {
             let row = cols[x] * m;
             for y in 0..nc {
@@ -176,7 +119,7 @@ fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range:
                 part.bh[row + cols[y]] += s;
             }
         }
-        for (k, &(ia, ib)) in pairs[..nt].iter().enumerate() {
+        for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
             let blk = &mut part.acc[k * m * m..(k + 1) * m * m];
             for x in 0..nc {
                 let ux = u[x][ia];

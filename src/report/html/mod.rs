@@ -77,17 +77,18 @@ pub(crate) fn esc(text: &str) -> String {
         .replace('"', "&quot;")
 }
 
-/// A number from `file` at JSON pointer `ptr`, shown with `dp` decimals.
+/// A number from `file` at JSON pointer `/ptr` (written without its
+/// leading slash), shown with `dp` decimals.
 pub(crate) fn num(file: &str, ptr: &str, v: f64, dp: usize) -> String {
     let shown = if v.is_finite() {
         format!("{v:.dp$}")
     } else {
         "—".to_string()
     };
-    format!(r#"<span data-json="{file}" data-ptr="{ptr}" data-dp="{dp}">{shown}</span>"#)
+    format!(r#"<span data-json="{file}" data-ptr="/{ptr}" data-dp="{dp}">{shown}</span>"#)
 }
 
-/// A p-value from `file` at `ptr`: three decimals, or "< 0.001".
+/// A p-value from `file` at `/ptr`: three decimals, or "< 0.001".
 pub(crate) fn pval(file: &str, ptr: &str, p: f64) -> String {
     let shown = if !p.is_finite() {
         "—".to_string()
@@ -96,12 +97,12 @@ pub(crate) fn pval(file: &str, ptr: &str, p: f64) -> String {
     } else {
         format!("{p:.3}")
     };
-    format!(r#"<span data-json="{file}" data-ptr="{ptr}" data-p="1">{shown}</span>"#)
+    format!(r#"<span data-json="{file}" data-ptr="/{ptr}" data-p="1">{shown}</span>"#)
 }
 
-/// Text from `file` at `ptr` (a verdict, a caution), shown whole.
+/// Text from `file` at `/ptr` (a verdict, a caution), shown whole.
 pub(crate) fn text(file: &str, ptr: &str, t: &str) -> String {
-    format!(r#"<span data-json="{file}" data-ptr="{ptr}">{}</span>"#, esc(t))
+    format!(r#"<span data-json="{file}" data-ptr="/{ptr}">{}</span>"#, esc(t))
 }
 
 impl<'a> Page<'a> {

@@ -35,6 +35,16 @@ const IDS: [&str; 9] = [
     "reproducibility",
 ];
 
+/// One table row per item of the JSON array at `list`: `row` gets the item
+/// and a maker of its fields' pointers (`p("se")` is `list/k/se`).
+fn rows_of<T>(items: &[T], list: &str, row: impl Fn(&T, &dyn Fn(&str) -> String) -> Vec<String>) -> Vec<Vec<String>> {
+    items
+        .iter()
+        .enumerate()
+        .map(|(k, x)| row(x, &|field: &str| format!("{list}/{k}/{field}")))
+        .collect()
+}
+
 fn open(page: &mut Page<'_>, k: usize) {
     let _ = write!(
         page.html,
@@ -71,16 +81,16 @@ pub(super) fn header(page: &mut Page<'_>, r: &StudyReport) {
         "<header><h1>{} by age: a cohort-sequential study</h1>\n<p class=\"lede\">{} · {} observations of {} participants in {} cohorts, ages {} to {}</p>\n<nav aria-label=\"Contents\"><ol>",
         esc(&d.outcome),
         esc(&d.file),
-        num("design.json", "/data/n_obs", d.n_obs as f64, 0),
+        num("design.json", "data/n_obs", d.n_obs as f64, 0),
         num(
             "design.json",
-            "/data/n_participants",
+            "data/n_participants",
             d.n_participants.unwrap_or(0) as f64,
             0
         ),
-        num("design.json", "/data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
-        num("design.json", "/data/age_min", d.age_min, 1),
-        num("design.json", "/data/age_max", d.age_max, 1),
+        num("design.json", "data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
+        num("design.json", "data/age_min", d.age_min, 1),
+        num("design.json", "data/age_max", d.age_max, 1),
     );
     for (k, shown) in present(r).iter().enumerate() {
         if *shown {
@@ -99,7 +109,7 @@ fn glance(page: &mut Page<'_>, r: &StudyReport) {
         let p_of = |k: usize| {
             c.tests
                 .get(k)
-                .map_or(String::new(), |t| pval("converge.json", &format!("/tests/{k}/p"), t.p))
+                .map_or(String::new(), |t| pval("converge.json", &format!("tests/{k}/p"), t.p))
         };
         lines.push(format!(
             "<a href=\"#converge\">Convergence</a>: cohorts differ in level, p = {}; in age trend, p = {}.",
@@ -109,7 +119,7 @@ fn glance(page: &mut Page<'_>, r: &StudyReport) {
     }
     let t = &r.fit.trajectory;
     if let Some((k, e)) = t.extrema.iter().enumerate().next() {
-        let p = |field: &str| format!("/trajectory/extrema/{k}/{field}");
+        let p = |field: &str| format!("trajectory/extrema/{k}/{field}");
         lines.push(format!(
             "<a href=\"#trajectory\">The stitched curve</a> has a {} at age {} (95% interval {} to {}).",
             esc(e.kind),
@@ -120,7 +130,7 @@ fn glance(page: &mut Page<'_>, r: &StudyReport) {
     } else if let Some(e) = r.fit.fixed.get(1) {
         lines.push(format!(
             "<a href=\"#trajectory\">The stitched curve</a> changes by {} per year at the centre age.",
-            num("fit.json", "/fixed/1/estimate", e.estimate, 3)
+            num("fit.json", "fixed/1/estimate", e.estimate, 3)
         ));
     }
     if let Some(q) = r
@@ -137,8 +147,8 @@ fn glance(page: &mut Page<'_>, r: &StudyReport) {
         };
         lines.push(format!(
             "<a href=\"#apc\">Age, period and cohort</a>: the identified {named} is {} (SE {}); any further split of it rests on an untestable assumption.",
-            num("apc.json", "/exact/identified/0/estimate", q.estimate, 4),
-            num("apc.json", "/exact/identified/0/se", q.se, 4)
+            num("apc.json", "exact/identified/0/estimate", q.estimate, 4),
+            num("apc.json", "exact/identified/0/se", q.se, 4)
         ));
     }
     if !lines.is_empty() {
@@ -152,34 +162,34 @@ pub(super) fn study(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
     let (d, f) = (&r.design.data, "design.json");
     let rows = vec![
         vec!["data file".into(), esc(&d.file)],
-        vec!["rows read".into(), num(f, "/data/n_rows_read", d.n_rows_read as f64, 0)],
-        vec!["rows used".into(), num(f, "/data/n_obs", d.n_obs as f64, 0)],
+        vec!["rows read".into(), num(f, "data/n_rows_read", d.n_rows_read as f64, 0)],
+        vec!["rows used".into(), num(f, "data/n_obs", d.n_obs as f64, 0)],
         vec![
             "rows without an outcome".into(),
-            num(f, "/data/dropped/missing_outcome", d.dropped.missing_outcome as f64, 0),
+            num(f, "data/dropped/missing_outcome", d.dropped.missing_outcome as f64, 0),
         ],
         vec![
             "rows without an age".into(),
-            num(f, "/data/dropped/missing_age", d.dropped.missing_age as f64, 0),
+            num(f, "data/dropped/missing_age", d.dropped.missing_age as f64, 0),
         ],
         vec![
             "participants".into(),
-            num(f, "/data/n_participants", d.n_participants.unwrap_or(0) as f64, 0),
+            num(f, "data/n_participants", d.n_participants.unwrap_or(0) as f64, 0),
         ],
         vec![
             "cohorts".into(),
-            num(f, "/data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
+            num(f, "data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
         ],
         vec![
             "clusters".into(),
-            num(f, "/data/n_clusters", d.n_clusters.unwrap_or(0) as f64, 0),
+            num(f, "data/n_clusters", d.n_clusters.unwrap_or(0) as f64, 0),
         ],
         vec![
             "ages (years)".into(),
             format!(
                 "{} to {}",
-                num(f, "/data/age_min", d.age_min, 2),
-                num(f, "/data/age_max", d.age_max, 2)
+                num(f, "data/age_min", d.age_min, 2),
+                num(f, "data/age_max", d.age_max, 2)
             ),
         ],
     ];
@@ -198,7 +208,7 @@ pub(super) fn study(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
         let _ = writeln!(
             page.html,
             "<p class=\"warning\">{}</p>",
-            text(f, &format!("/warnings/{k}"), &w.message)
+            text(f, &format!("warnings/{k}"), &w.message)
         );
     }
     close(page);
@@ -228,8 +238,8 @@ fn retention(page: &mut Page<'_>, r: &StudyReport) {
                     let x = &r.design.retention[k];
                     format!(
                         "{} ({})",
-                        num("design.json", &format!("/retention/{k}/n"), x.n as f64, 0),
-                        num("design.json", &format!("/retention/{k}/share"), x.share, 2)
+                        num("design.json", &format!("retention/{k}/n"), x.n as f64, 0),
+                        num("design.json", &format!("retention/{k}/share"), x.share, 2)
                     )
                 });
             row.push(cell);
@@ -249,23 +259,18 @@ fn dropout(page: &mut Page<'_>, r: &StudyReport) {
         return;
     }
     let f = "design.json";
-    let rows: Vec<Vec<String>> = b
-        .iter()
-        .enumerate()
-        .map(|(k, x)| {
-            let p = |field: &str| format!("/attrition/baseline/{k}/{field}");
-            vec![
-                esc(&x.variable),
-                num(f, &p("n_stayers"), x.n_stayers as f64, 0),
-                num(f, &p("n_leavers"), x.n_leavers as f64, 0),
-                num(f, &p("stayers_mean"), x.stayers_mean, 2),
-                num(f, &p("leavers_mean"), x.leavers_mean, 2),
-                num(f, &p("difference"), x.difference, 2),
-                num(f, &p("se"), x.se, 2),
-                num(f, &p("standardized"), x.standardized, 2),
-            ]
-        })
-        .collect();
+    let rows = rows_of(b, "attrition/baseline", |x, p| {
+        vec![
+            esc(&x.variable),
+            num(f, &p("n_stayers"), x.n_stayers as f64, 0),
+            num(f, &p("n_leavers"), x.n_leavers as f64, 0),
+            num(f, &p("stayers_mean"), x.stayers_mean, 2),
+            num(f, &p("leavers_mean"), x.leavers_mean, 2),
+            num(f, &p("difference"), x.difference, 2),
+            num(f, &p("se"), x.se, 2),
+            num(f, &p("standardized"), x.standardized, 2),
+        ]
+    });
     page.table(
         "Dropout: those who stayed against those who left, at their first assessment",
         &[
@@ -291,24 +296,15 @@ pub(super) fn converge(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
         return Ok(());
     };
     let f = "converge.json";
-    let _ = writeln!(
-        page.html,
-        "<p class=\"verdict\">{}</p>",
-        text(f, "/verdict", &c.verdict)
-    );
-    let rows: Vec<Vec<String>> = c
-        .tests
-        .iter()
-        .enumerate()
-        .map(|(k, t)| {
-            vec![
-                esc(&t.name),
-                num(f, &format!("/tests/{k}/statistic"), t.statistic, 2),
-                num(f, &format!("/tests/{k}/df"), t.df, 1),
-                pval(f, &format!("/tests/{k}/p"), t.p),
-            ]
-        })
-        .collect();
+    let _ = writeln!(page.html, "<p class=\"verdict\">{}</p>", text(f, "verdict", &c.verdict));
+    let rows = rows_of(&c.tests, "tests", |t, p| {
+        vec![
+            esc(&t.name),
+            num(f, &p("statistic"), t.statistic, 2),
+            num(f, &p("df"), t.df, 1),
+            pval(f, &p("p"), t.p),
+        ]
+    });
     page.table(
         "Tests of the linkage assumption (likelihood ratio and Wald)",
         &["test", "#statistic", "#df", "#p"],
@@ -339,26 +335,20 @@ pub(super) fn trajectory(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
             fit.data.outcome
         ),
     )?;
-    let rows: Vec<Vec<String>> = fit
-        .fixed
-        .iter()
-        .enumerate()
-        .map(|(k, e)| {
-            let p = |field: &str| format!("/fixed/{k}/{field}");
-            vec![
-                esc(&e.term),
-                num(f, &p("estimate"), e.estimate, 4),
-                num(f, &p("se"), e.se, 4),
-                num(f, &p("df"), e.df, 1),
-                pval(f, &p("p"), e.p),
-                format!(
-                    "{} to {}",
-                    num(f, &p("lower"), e.lower, 4),
-                    num(f, &p("upper"), e.upper, 4)
-                ),
-            ]
-        })
-        .collect();
+    let rows = rows_of(&fit.fixed, "fixed", |e, p| {
+        vec![
+            esc(&e.term),
+            num(f, &p("estimate"), e.estimate, 4),
+            num(f, &p("se"), e.se, 4),
+            num(f, &p("df"), e.df, 1),
+            pval(f, &p("p"), e.p),
+            format!(
+                "{} to {}",
+                num(f, &p("lower"), e.lower, 4),
+                num(f, &p("upper"), e.upper, 4)
+            ),
+        ]
+    });
     page.table(
         "Fixed effects (REML; t tests with Satterthwaite df)",
         &["term", "#estimate", "#SE", "#df", "#p", "#95% interval"],
@@ -369,9 +359,14 @@ pub(super) fn trajectory(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
         for (j, name) in term.terms.iter().enumerate() {
             rows.push(vec![
                 format!("{} · {}", esc(&term.factor), esc(name)),
-                num(f, &format!("/random/{k}/sd/{j}"), term.sd[j], 3),
+                num(f, &format!("random/{k}/sd/{j}"), term.sd[j], 3),
                 if j > 0 {
-                    num(f, &format!("/random/{k}/correlation/0/{j}"), term.correlation[0][j], 2)
+                    num(
+                        f,
+                        &format!("random/{k}/correlation/{}/{j}", 0),
+                        term.correlation[0][j],
+                        2,
+                    )
                 } else {
                     String::new()
                 },
@@ -380,7 +375,7 @@ pub(super) fn trajectory(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
     }
     rows.push(vec![
         "residual variance".into(),
-        num(f, "/residual_variance", fit.residual_variance, 3),
+        num(f, "residual_variance", fit.residual_variance, 3),
         String::new(),
     ]);
     page.table(
@@ -395,29 +390,23 @@ pub(super) fn trajectory(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
 
 fn rates(page: &mut Page<'_>, r: &StudyReport) {
     let (t, f) = (&r.fit.trajectory, "fit.json");
-    let rows: Vec<Vec<String>> = t
-        .at_ages
-        .iter()
-        .enumerate()
-        .map(|(k, a)| {
-            let p = |field: &str| format!("/trajectory/at_ages/{k}/{field}");
-            vec![
-                num(f, &p("age"), a.age, 1),
-                num(f, &p("mean"), a.mean, 2),
-                format!(
-                    "{} to {}",
-                    num(f, &p("lower"), a.lower, 2),
-                    num(f, &p("upper"), a.upper, 2)
-                ),
-                num(f, &p("rate"), a.rate, 3),
-                format!(
-                    "{} to {}",
-                    num(f, &p("rate_lower"), a.rate_lower, 3),
-                    num(f, &p("rate_upper"), a.rate_upper, 3)
-                ),
-            ]
-        })
-        .collect();
+    let rows = rows_of(&t.at_ages, "trajectory/at_ages", |a, p| {
+        vec![
+            num(f, &p("age"), a.age, 1),
+            num(f, &p("mean"), a.mean, 2),
+            format!(
+                "{} to {}",
+                num(f, &p("lower"), a.lower, 2),
+                num(f, &p("upper"), a.upper, 2)
+            ),
+            num(f, &p("rate"), a.rate, 3),
+            format!(
+                "{} to {}",
+                num(f, &p("rate_lower"), a.rate_lower, 3),
+                num(f, &p("rate_upper"), a.rate_upper, 3)
+            ),
+        ]
+    });
     if !rows.is_empty() {
         page.table(
             "The mean and its rate of change (per year) at chosen ages",
@@ -425,24 +414,18 @@ fn rates(page: &mut Page<'_>, r: &StudyReport) {
             &rows,
         );
     }
-    let rows: Vec<Vec<String>> = t
-        .extrema
-        .iter()
-        .enumerate()
-        .map(|(k, e)| {
-            let p = |field: &str| format!("/trajectory/extrema/{k}/{field}");
-            vec![
-                esc(e.kind),
-                num(f, &p("age"), e.age, 2),
-                format!(
-                    "{} to {}",
-                    num(f, &p("lower"), e.lower, 2),
-                    num(f, &p("upper"), e.upper, 2)
-                ),
-                num(f, &p("mean"), e.mean, 2),
-            ]
-        })
-        .collect();
+    let rows = rows_of(&t.extrema, "trajectory/extrema", |e, p| {
+        vec![
+            esc(e.kind),
+            num(f, &p("age"), e.age, 2),
+            format!(
+                "{} to {}",
+                num(f, &p("lower"), e.lower, 2),
+                num(f, &p("upper"), e.upper, 2)
+            ),
+            num(f, &p("mean"), e.mean, 2),
+        ]
+    });
     if rows.is_empty() {
         page.push("<p>The curve has no turning point inside the observed ages.</p>\n");
     } else {
@@ -467,43 +450,33 @@ pub(super) fn apc(page: &mut Page<'_>, r: &StudyReport, figures: &[String]) -> R
         "<p>Age = period − birth time exactly, so only some combinations of the three are identified. Every constrained split shown rests on an untestable assumption.</p>\n",
     );
     if let Some(e) = &a.exact {
-        let rows: Vec<Vec<String>> = e
-            .identified
-            .iter()
-            .enumerate()
-            .map(|(k, q)| {
-                vec![
-                    esc(&q.quantity),
-                    num(f, &format!("/exact/identified/{k}/estimate"), q.estimate, 4),
-                    num(f, &format!("/exact/identified/{k}/se"), q.se, 4),
-                ]
-            })
-            .collect();
+        let rows = rows_of(&e.identified, "exact/identified", |q, p| {
+            vec![
+                esc(&q.quantity),
+                num(f, &p("estimate"), q.estimate, 4),
+                num(f, &p("se"), q.se, 4),
+            ]
+        });
         page.table(
             "Identified in the exact-value model",
             &["quantity", "#estimate", "#SE"],
             &rows,
         );
-        let rows: Vec<Vec<String>> = e
-            .tests
-            .iter()
-            .enumerate()
-            .map(|(k, t)| {
-                vec![
-                    esc(&t.name),
-                    num(f, &format!("/exact/tests/{k}/statistic"), t.statistic, 3),
-                    format!(
-                        "{}, {}",
-                        num(f, &format!("/exact/tests/{k}/df"), t.df as f64, 0),
-                        num(f, &format!("/exact/tests/{k}/df_denominator"), t.df_denominator, 1)
-                    ),
-                    t.p.map_or_else(
-                        || t.withheld.as_deref().map_or("—".into(), esc),
-                        |p| pval(f, &format!("/exact/tests/{k}/p"), p),
-                    ),
-                ]
-            })
-            .collect();
+        let rows = rows_of(&e.tests, "exact/tests", |t, p| {
+            vec![
+                esc(&t.name),
+                num(f, &p("statistic"), t.statistic, 3),
+                format!(
+                    "{}, {}",
+                    num(f, &p("df"), t.df as f64, 0),
+                    num(f, &p("df_denominator"), t.df_denominator, 1)
+                ),
+                t.p.map_or_else(
+                    || t.withheld.as_deref().map_or("—".into(), esc),
+                    |v| pval(f, &p("p"), v),
+                ),
+            ]
+        });
         page.table(
             "Tests of the curves (F, Satterthwaite df)",
             &["test", "#F", "#df", "#p"],
@@ -517,7 +490,7 @@ pub(super) fn apc(page: &mut Page<'_>, r: &StudyReport, figures: &[String]) -> R
         page.figure(name, apc_alt(name))?;
     }
     for (k, w) in a.assumptions.iter().enumerate() {
-        let _ = writeln!(page.html, "<p>{}</p>", text(f, &format!("/assumptions/{k}"), w));
+        let _ = writeln!(page.html, "<p>{}</p>", text(f, &format!("assumptions/{k}"), w));
     }
     close(page);
     Ok(())
@@ -543,27 +516,20 @@ pub(super) fn anova(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
     let Some(a) = &r.anova else { return Ok(()) };
     open(page, 4);
     let f = "anova.json";
-    let rows: Vec<Vec<String>> = a
-        .analysis
-        .effects
-        .iter()
-        .enumerate()
-        .map(|(k, e)| {
-            let p = |field: &str| format!("/effects/{k}/{field}");
-            vec![
-                esc(&e.effect),
-                num(f, &p("f"), e.f, 3),
-                format!("{}, {}", num(f, &p("df1"), e.df1, 0), num(f, &p("df2"), e.df2, 0)),
-                pval(f, &p("p"), e.p),
-                e.p_gg.map_or("—".into(), |v| pval(f, &p("p_gg"), v)),
-                num(f, &p("partial_eta2"), e.partial_eta2, 3),
-            ]
-        })
-        .collect();
+    let rows = rows_of(&a.analysis.effects, "effects", |e, p| {
+        vec![
+            esc(&e.effect),
+            num(f, &p("f"), e.f, 3),
+            format!("{}, {}", num(f, &p("df1"), e.df1, 0), num(f, &p("df2"), e.df2, 0)),
+            pval(f, &p("p"), e.p),
+            e.p_gg.map_or("—".into(), |v| pval(f, &p("p_gg"), v)),
+            num(f, &p("partial_eta2"), e.partial_eta2, 3),
+        ]
+    });
     page.table(
         &format!(
             "Split-plot ANOVA on {} complete cases",
-            num(f, "/n_complete", a.n_complete as f64, 0)
+            num(f, "n_complete", a.n_complete as f64, 0)
         ),
         &["effect", "#F", "#df", "#p", "#p (Greenhouse–Geisser)", "#partial η²"],
         &rows,
@@ -571,7 +537,7 @@ pub(super) fn anova(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
     let _ = writeln!(
         page.html,
         "<p class=\"verdict\">{}</p>",
-        text(f, "/recommendation", &a.analysis.recommendation)
+        text(f, "recommendation", &a.analysis.recommendation)
     );
     page.figure(
         "anova_means.svg",
@@ -586,25 +552,19 @@ pub(super) fn reliability(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
     let Some(s) = &r.score else { return Ok(()) };
     open(page, 5);
     let f = "score.json";
-    let rows: Vec<Vec<String>> = s
-        .per_wave
-        .iter()
-        .enumerate()
-        .map(|(k, w)| {
-            let p = |field: &str| format!("/per_wave/{k}/{field}");
-            vec![
-                esc(w.wave.as_deref().unwrap_or("all")),
-                num(f, &p("n"), w.n as f64, 0),
-                num(f, &p("alpha"), w.alpha, 3),
-                format!(
-                    "{} to {}",
-                    num(f, &p("alpha_lower"), w.alpha_lower, 3),
-                    num(f, &p("alpha_upper"), w.alpha_upper, 3)
-                ),
-                w.omega.map_or("—".into(), |o| num(f, &p("omega"), o, 3)),
-            ]
-        })
-        .collect();
+    let rows = rows_of(&s.per_wave, "per_wave", |w, p| {
+        vec![
+            esc(w.wave.as_deref().unwrap_or("all")),
+            num(f, &p("n"), w.n as f64, 0),
+            num(f, &p("alpha"), w.alpha, 3),
+            format!(
+                "{} to {}",
+                num(f, &p("alpha_lower"), w.alpha_lower, 3),
+                num(f, &p("alpha_upper"), w.alpha_upper, 3)
+            ),
+            w.omega.map_or("—".into(), |o| num(f, &p("omega"), o, 3)),
+        ]
+    });
     page.table(
         "Cronbach's α per wave with Feldt's 95% interval, and ω",
         &["wave", "#n", "#α", "#95% interval", "#ω"],
@@ -623,7 +583,7 @@ pub(super) fn cautions(page: &mut Page<'_>, r: &StudyReport) {
     open(page, 6);
     page.push("<ul>\n");
     for (k, c) in r.fit.cautions.iter().enumerate() {
-        let _ = writeln!(page.html, "<li>{}</li>", text("fit.json", &format!("/cautions/{k}"), c));
+        let _ = writeln!(page.html, "<li>{}</li>", text("fit.json", &format!("cautions/{k}"), c));
     }
     page.push("<li>Constraints that split age, period and cohort effects apart are untestable assumptions: report the identified quantities, and the constraint behind any split.</li>\n");
     if let Some(c) = &r.converge {
@@ -631,7 +591,7 @@ pub(super) fn cautions(page: &mut Page<'_>, r: &StudyReport) {
             let _ = writeln!(
                 page.html,
                 "<li>{}</li>",
-                text("converge.json", &format!("/assumptions/{k}"), a)
+                text("converge.json", &format!("assumptions/{k}"), a)
             );
         }
     }
@@ -682,7 +642,7 @@ pub(super) fn reproducibility(page: &mut Page<'_>, r: &StudyReport) {
     for (k, (name, seed)) in v.seeds.iter().enumerate() {
         rows.push(vec![
             format!("seed: {}", esc(name)),
-            num("report.json", &format!("/provenance/seeds/{k}/1"), *seed as f64, 0),
+            num("report.json", &format!("provenance/seeds/{k}/1"), *seed as f64, 0),
         ]);
     }
     page.table("What it takes to make this page again", &["", "value"], &rows);
