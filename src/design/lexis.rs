@@ -24,6 +24,8 @@ pub struct LexisCohort {
 pub struct LexisData {
     /// Horizontal axis title.
     pub time_label: String,
+    /// Vertical axis title: the age column and its unit.
+    pub age_label: String,
     /// Whether times are calendar years (then birth-year diagonals are drawn).
     pub calendar: bool,
     /// Cohorts in order of their youngest age.
@@ -87,6 +89,7 @@ pub fn lexis_data(panel: &Panel, report: &DesignReport, cohort_of: &[String]) ->
             Some(c) => format!("calendar year of assessment (from {})", c.source.describe()),
             None => "years since the participant's first assessment (no calendar times in the file)".into(),
         },
+        age_label: format!("{} (years)", panel.roles.age),
         calendar: panel.calendar.is_some(),
         cohorts,
     }

@@ -75,7 +75,7 @@ fn draw_lexis<DB: DrawingBackend>(root: DrawingArea<DB, Shift>, data: &LexisData
         .map_err(e)?;
     styled_mesh(&mut chart, 14)
         .x_desc(data.time_label.clone())
-        .y_desc("age (years)")
+        .y_desc(data.age_label.clone())
         .draw()
         .map_err(e)?;
     if data.calendar {
