@@ -36,7 +36,7 @@ pub struct Cli {
 pub enum Command {
     /// Fit one age trajectory to a long-format file (one row per participant per wave).
     Fit(Box<FitArgs>),
-    /// Simulate an invented cohort-sequential study, write it with a study file, and fit it.
+    /// Simulate an invented cohort-sequential study, write it with a study file, and run every analysis into report.html.
     Demo(DemoArgs),
     /// Report what a design covers: cohorts, waves, ages, overlap of neighbouring cohorts, retention.
     Inspect(Box<InspectArgs>),
@@ -516,7 +516,7 @@ impl DeriveArgs {
 /// Flags of `braid demo`.
 #[derive(Debug, Clone, Args)]
 pub struct DemoArgs {
-    /// Folder for panel.csv, study.toml and the fit outputs.
+    /// Folder for panel.csv, study.toml, every analysis's JSON and figures, and report.html.
     #[arg(long, value_name = "DIR", value_hint = ValueHint::DirPath)]
     pub out: PathBuf,
     /// Seed of the simulation.
