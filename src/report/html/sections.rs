@@ -73,12 +73,22 @@ fn present(r: &StudyReport) -> [bool; 9] {
     ]
 }
 
+/// The number of cohorts in words: the file's cohort column, or as many as
+/// the design report's cohort rule derived ("5 cohorts", "1 cohort (derived)").
+fn cohorts_in_words(r: &StudyReport) -> String {
+    let (shown, k, derived) = match r.data.n_cohorts {
+        Some(k) => (num("design.json", "data/n_cohorts", k as f64, 0), k, ""),
+        None => (r.design.cohorts.len().to_string(), r.design.cohorts.len(), " (derived)"),
+    };
+    format!("{shown} cohort{}{derived}", if k == 1 { "" } else { "s" })
+}
+
 /// The title, the one-line answer and the contents.
 pub(super) fn header(page: &mut Page<'_>, r: &StudyReport) {
     let d = &r.data;
     let _ = write!(
         page.html,
-        "<header><h1>{} by age: a cohort-sequential study</h1>\n<p class=\"lede\">{} · {} observations of {} participants in {} cohorts, ages {} to {}</p>\n<nav aria-label=\"Contents\"><ol>",
+        "<header><h1>{} by age: a cohort-sequential study</h1>\n<p class=\"lede\">{} · {} observations of {} participants in {}, ages {} to {}</p>\n<nav aria-label=\"Contents\"><ol>",
         esc(&d.outcome),
         esc(&d.file),
         num("design.json", "data/n_obs", d.n_obs as f64, 0),
@@ -88,7 +98,7 @@ pub(super) fn header(page: &mut Page<'_>, r: &StudyReport) {
             d.n_participants.unwrap_or(0) as f64,
             0
         ),
-        num("design.json", "data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
+        cohorts_in_words(r),
         num("design.json", "data/age_min", d.age_min, 1),
         num("design.json", "data/age_max", d.age_max, 1),
     );
@@ -176,13 +186,11 @@ pub(super) fn study(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
             "participants".into(),
             num(f, "data/n_participants", d.n_participants.unwrap_or(0) as f64, 0),
         ],
-        vec![
-            "cohorts".into(),
-            num(f, "data/n_cohorts", d.n_cohorts.unwrap_or(0) as f64, 0),
-        ],
+        vec!["cohorts".into(), cohorts_in_words(r)],
         vec![
             "clusters".into(),
-            num(f, "data/n_clusters", d.n_clusters.unwrap_or(0) as f64, 0),
+            d.n_clusters
+                .map_or("none named".to_string(), |k| num(f, "data/n_clusters", k as f64, 0)),
         ],
         vec![
             "ages (years)".into(),
