@@ -299,3 +299,25 @@ fn the_manual_page_is_roff_of_every_command() {
         assert!(text.contains(command), "{command} missing from the manual");
     }
 }
+
+// A study the convergence and APC analyses cannot run on (one derived
+// cohort, no calendar time; the dental data of Potthoff & Roy 1964) still
+// gets its page: those sections say why they were not run, and the counts
+// say what was derived.
+#[test]
+fn a_study_without_cohorts_or_calendar_gets_a_page_with_reasons() {
+    let out = temp_dir("page-dental").join("report");
+    run_ok(
+        braid()
+            .arg("report")
+            .arg(crate::common::data_dir().join("dental.csv"))
+            .args(["--id", "Subject", "--age", "age", "--outcome", "distance", "--quiet", "--out"])
+            .arg(&out),
+    );
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert_eq!(html.matches("class=\"skipped\">Not run:").count(), 2, "two sections skipped with a reason");
+    assert!(html.contains("1 cohort (derived)"));
+    assert!(html.contains("none named"));
+    assert!(!out.join("converge.json").exists() && !out.join("apc.json").exists());
+    assert!(tagged(&html).len() > 40);
+}
