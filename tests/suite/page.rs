@@ -311,11 +311,24 @@ fn a_study_without_cohorts_or_calendar_gets_a_page_with_reasons() {
         braid()
             .arg("report")
             .arg(crate::common::data_dir().join("dental.csv"))
-            .args(["--id", "Subject", "--age", "age", "--outcome", "distance", "--quiet", "--out"])
+            .args([
+                "--id",
+                "Subject",
+                "--age",
+                "age",
+                "--outcome",
+                "distance",
+                "--quiet",
+                "--out",
+            ])
             .arg(&out),
     );
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
-    assert_eq!(html.matches("class=\"skipped\">Not run:").count(), 2, "two sections skipped with a reason");
+    assert_eq!(
+        html.matches("class=\"skipped\">Not run:").count(),
+        2,
+        "two sections skipped with a reason"
+    );
     assert!(html.contains("1 cohort (derived)"));
     assert!(html.contains("none named"));
     assert!(!out.join("converge.json").exists() && !out.join("apc.json").exists());
