@@ -242,18 +242,8 @@ fn an_output_folder_with_files_is_refused_unless_forced() {
     let run = |extra: &[&str]| {
         braid()
             .args(["fit", data_dir().join("dental.csv").to_str().unwrap()])
-            .args([
-                "--id",
-                "Subject",
-                "--age",
-                "age",
-                "--outcome",
-                "distance",
-                "--degree",
-                "1",
-                "--quiet",
-                "--out",
-            ])
+            .args(crate::common::DENTAL_ROLES)
+            .args(["--degree", "1", "--quiet", "--out"])
             .arg(&dir)
             .args(extra)
             .output()
@@ -280,17 +270,8 @@ fn a_read_only_input_is_read_and_left_unchanged() {
     let before = fs::read(&input).unwrap();
     run_ok(
         braid()
-            .args([
-                "fit",
-                input.to_str().unwrap(),
-                "--id",
-                "Subject",
-                "--age",
-                "age",
-                "--outcome",
-                "distance",
-                "--quiet",
-            ])
+            .args(["fit", input.to_str().unwrap(), "--quiet"])
+            .args(crate::common::DENTAL_ROLES)
             .arg("--json")
             .arg(dir.join("fit.json")),
     );

@@ -120,6 +120,9 @@ pub fn expect_one_line_error(out: &std::process::Output, expected: &str, what: &
     stderr
 }
 
+/// The roles of the dental data (Potthoff & Roy 1964) as flags.
+pub const DENTAL_ROLES: [&str; 6] = ["--id", "Subject", "--age", "age", "--outcome", "distance"];
+
 /// The central band of Binomial(n, 0.05) with at most 1% of its mass in
 /// each tail, from the cdf of statrs 0.19.1: a test of nominal size 5%
 /// rejects in fewer or more of `n` replicates with probability under 2%.

@@ -311,16 +311,8 @@ fn a_study_without_cohorts_or_calendar_gets_a_page_with_reasons() {
         braid()
             .arg("report")
             .arg(crate::common::data_dir().join("dental.csv"))
-            .args([
-                "--id",
-                "Subject",
-                "--age",
-                "age",
-                "--outcome",
-                "distance",
-                "--quiet",
-                "--out",
-            ])
+            .args(crate::common::DENTAL_ROLES)
+            .args(["--quiet", "--out"])
             .arg(&out),
     );
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
