@@ -93,18 +93,8 @@ fn time_braid(file: &Path, out: &Path, school: bool, json_only: bool, memory: bo
         Command::new(braid_bin())
     };
     cmd.arg("fit").arg(file);
-    cmd.args([
-        "--id",
-        "pupil",
-        "--age",
-        "age",
-        "--outcome",
-        "score",
-        "--center",
-        "16",
-        "--quiet",
-        "--force",
-    ]);
+    cmd.args(&PANEL_ROLES[..6])
+        .args(["--center", "16", "--quiet", "--force"]);
     if json_only {
         cmd.arg("--json").arg(out.join("fit.json"));
     } else {

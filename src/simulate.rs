@@ -447,22 +447,7 @@ impl Simulated {
 /// # Panics
 /// When `cov` is not positive definite (a programming error of the caller).
 pub fn complete_waves(sizes: &[usize], k: usize, cov: &[f64], seed: u64) -> crate::anova::Complete {
-    // Cholesky factor of the covariance.
-    let mut l = vec![0.0; k * k];
-    for i in 0..k {
-        for j in 0..=i {
-            let s: f64 = (0..j).map(|m| l[i * k + m] * l[j * k + m]).sum();
-            l[i * k + j] = if i == j {
-                (cov[i * k + i] - s).sqrt()
-            } else {
-                (cov[i * k + j] - s) / l[j * k + j]
-            };
-        }
-    }
-    assert!(
-        l.iter().all(|v| v.is_finite()),
-        "the covariance is not positive definite"
-    );
+    let l = crate::stats::small_cholesky(cov, k).expect("the covariance is not positive definite");
     let mut rng = Rng::new(seed);
     let (mut y, mut cohort) = (Vec::new(), Vec::new());
     for (g, &n) in sizes.iter().enumerate() {

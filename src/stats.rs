@@ -105,6 +105,36 @@ pub fn log_det(m: &Mat<f64>) -> Option<f64> {
     Some((0..m.nrows()).map(|i| 2.0 * l[(i, i)].ln()).sum())
 }
 
+/// Lower Cholesky factor of a small k × k row-major matrix (None when it is
+/// not positive definite): for the few-by-few blocks of planning and
+/// simulation, where a dense library factorisation costs more than it saves.
+pub fn small_cholesky(v: &[f64], k: usize) -> Option<Vec<f64>> {
+    let mut l = vec![0.0; k * k];
+    for i in 0..k {
+        for j in 0..=i {
+            let s: f64 = (0..j).map(|m| l[i * k + m] * l[j * k + m]).sum();
+            if i == j {
+                let d = v[i * k + i] - s;
+                if d <= 0.0 || !d.is_finite() {
+                    return None;
+                }
+                l[i * k + i] = d.sqrt();
+            } else {
+                l[i * k + j] = (v[i * k + j] - s) / l[j * k + j];
+            }
+        }
+    }
+    Some(l)
+}
+
+/// A number with no needless decimals: 12 rather than 12.0, 2031.5 as is,
+/// and never "-0" (six decimals at most).
+pub fn plain_number(v: f64) -> String {
+    let text = format!("{v:.6}");
+    let text = text.trim_end_matches('0').trim_end_matches('.');
+    if text == "-0" { "0".into() } else { text.to_string() }
+}
+
 /// The inverse of a symmetric positive definite matrix, from its Cholesky
 /// factor (None when the matrix is not positive definite).
 pub fn spd_inverse(m: &Mat<f64>) -> Option<Mat<f64>> {

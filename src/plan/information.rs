@@ -313,7 +313,9 @@ fn add_pattern(
             v[i * k + j] = g[0] + g[1] * (ai + aj) + g[2] * ai * aj + if i == j { sigma2 } else { 0.0 };
         }
     }
-    let Some(l) = cholesky(&v, k) else { return };
+    let Some(l) = crate::stats::small_cholesky(&v, k) else {
+        return;
+    };
     // Columns of X and the ones vector, each solved against V.
     let mut x = vec![0.0; k * p];
     for (i, &(age, later)) in rows.iter().enumerate() {
@@ -344,26 +346,6 @@ fn add_pattern(
     acc.s += weight * vinv_1.iter().sum::<f64>();
 }
 
-/// Lower Cholesky factor of a small k × k matrix (None when not positive definite).
-fn cholesky(v: &[f64], k: usize) -> Option<Vec<f64>> {
-    let mut l = vec![0.0; k * k];
-    for i in 0..k {
-        for j in 0..=i {
-            let s: f64 = (0..j).map(|m| l[i * k + m] * l[j * k + m]).sum();
-            if i == j {
-                let d = v[i * k + i] - s;
-                if d <= 0.0 {
-                    return None;
-                }
-                l[i * k + i] = d.sqrt();
-            } else {
-                l[i * k + j] = (v[i * k + j] - s) / l[j * k + j];
-            }
-        }
-    }
-    Some(l)
-}
-
 /// Solve (L Lᵀ) x = b.
 fn solve(l: &[f64], k: usize, b: &[f64]) -> Vec<f64> {
     let mut y = vec![0.0; k];
@@ -377,20 +359,14 @@ fn solve(l: &[f64], k: usize, b: &[f64]) -> Vec<f64> {
     x
 }
 
-/// The upper α point of the standard normal.
-fn z_upper(alpha: f64) -> f64 {
-    use statrs::distribution::{ContinuousCDF, Normal};
-    Normal::standard().inverse_cdf(1.0 - alpha)
-}
-
 /// Power of a two-sided Wald z test of an effect with standard error `se`:
 /// Φ(|δ|/se − z) + Φ(−|δ|/se − z), z the upper α/2 point.
 pub fn wald_power(effect: f64, se: f64, alpha: f64) -> f64 {
-    use statrs::distribution::{ContinuousCDF, Normal};
-    let n = Normal::standard();
-    let z = z_upper(alpha / 2.0);
+    use crate::infer::{t_cdf, t_quantile};
+    // Infinite df: the standard normal.
+    let z = t_quantile(1.0 - alpha / 2.0, f64::INFINITY);
     let r = effect.abs() / se;
-    n.cdf(r - z) + n.cdf(-r - z)
+    t_cdf(r - z, f64::INFINITY) + t_cdf(-r - z, f64::INFINITY)
 }
 
 /// Power of a χ²(df) test at level α when the statistic is noncentral χ²

@@ -12,7 +12,7 @@ use super::{
     RATE_DIFFERENCE,
 };
 use crate::error::Result;
-use crate::stats::thousands;
+use crate::stats::{plain_number, thousands};
 use crate::warning::{Warning, WarningCode};
 
 /// The normal quantile of a 95% interval.
@@ -396,8 +396,8 @@ fn limits(a: &Assessor<'_>, n: usize, meets_n: bool, cost: f64, power: &BTreeMap
     if let Some(max) = t.max_years.filter(|m| a.design.duration() > *m) {
         out.push(format!(
             "its fieldwork lasts {} years, longer than the {} allowed",
-            trim(a.design.duration()),
-            trim(max)
+            plain_number(a.design.duration()),
+            plain_number(max)
         ));
     }
     if !meets_n {
@@ -440,15 +440,6 @@ fn cluster_floor(a: &Assessor<'_>) -> String {
         format!(" (the {k} clusters alone set a floor of about {floor:.2} on the half-width, whatever n: add clusters)")
     } else {
         String::new()
-    }
-}
-
-/// A number without needless decimals.
-fn trim(v: f64) -> String {
-    if v.fract() == 0.0 {
-        format!("{v:.0}")
-    } else {
-        format!("{v}")
     }
 }
 

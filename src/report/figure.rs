@@ -89,9 +89,7 @@ pub(crate) fn styled_mesh<'a, 'b, DB: DrawingBackend>(
 /// A tick label with no needless decimals: 12 rather than 12.0, 2031.5 as
 /// is, and never "-0".
 pub(crate) fn tick(v: &f64) -> String {
-    let text = format!("{:.6}", v);
-    let text = text.trim_end_matches('0').trim_end_matches('.');
-    if text == "-0" { "0".into() } else { text.to_string() }
+    crate::stats::plain_number(*v)
 }
 
 /// A one-panel chart in braid's frame: the caption, margins and label areas

@@ -7,7 +7,7 @@ use crate::plan::{DesignResult, PlanReport, Population, Route};
 
 /// A number to at most three decimals, without needless ones.
 fn num(v: f64) -> String {
-    crate::report::figure::tick(&((v * 1000.0).round() / 1000.0))
+    crate::stats::plain_number((v * 1000.0).round() / 1000.0)
 }
 
 /// The mean polynomial in words: 50 + 1.6·(age − 16) − 0.12·(age − 16)².
