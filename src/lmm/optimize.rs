@@ -18,6 +18,11 @@ pub struct OptimOptions {
     pub value_tolerance: f64,
     /// Upper limit on iterations.
     pub max_iterations: usize,
+    /// With a scaled inverse-Hessian approximation H, stop when the Newton
+    /// decrement `gᵀHg` falls below this (twice the decrease still
+    /// predicted): the value test alone cannot see below the rounding of a
+    /// large deviance.
+    pub decrement_tolerance: Option<f64>,
 }
 
 impl Default for OptimOptions {
@@ -26,6 +31,7 @@ impl Default for OptimOptions {
             gradient_tolerance: 1e-6,
             value_tolerance: 1e-5,
             max_iterations: 500,
+            decrement_tolerance: None,
         }
     }
 }
@@ -207,6 +213,12 @@ pub fn minimize_with(
                 dir[i] = if free[i] { -g[i] } else { 0.0 };
             }
             slope = dir.iter().zip(&g).map(|(a, b)| a * b).sum();
+        }
+        if let Some(tol) = opts.decrement_tolerance.filter(|_| h_scaled)
+            && -slope < tol
+        {
+            converged = true;
+            break;
         }
         if !h_scaled {
             // First step: move at most 0.1 in the largest coordinate.

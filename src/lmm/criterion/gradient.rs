@@ -211,7 +211,7 @@ impl<const Q: usize> LevelSolver<Q> {
 
     /// Solve `Aᵢ w = v` in place from its Cholesky factor `l` and inverse pivots `inv`.
     #[inline(always)]
-    fn solve(l: &[[f64; Q]; Q], inv: &[f64; Q], w: &mut [f64; Q]) {
+    pub(super) fn solve(l: &[[f64; Q]; Q], inv: &[f64; Q], w: &mut [f64; Q]) {
         for r in 0..Q {
             let mut s = w[r];
             for x in 0..r {

@@ -15,6 +15,7 @@
 #![allow(clippy::needless_range_loop)]
 
 mod gradient;
+pub mod grouped;
 mod primary;
 mod secondary;
 
@@ -159,9 +160,19 @@ pub fn factors(cp: &CrossProducts, theta: &[f64]) -> Vec<Vec<f64>> {
 /// `Λ̃ᵀ D Λ̃ + I₂`, with `Λ̃ = blockdiag(T_s per secondary level, I_{p+1})`
 /// (m×m row-major, full symmetric).
 fn scaled_dense(cp: &CrossProducts, t: &[Vec<f64>]) -> Vec<f64> {
+    let mut e = scaled(cp, &cp.dense, t);
+    for k in 0..cp.q2_total {
+        e[k * cp.m + k] += 1.0;
+    }
+    e
+}
+
+/// `Λ̃ᵀ D Λ̃` for any m×m dense part `dense` laid out as `cp`'s (a row
+/// group's share of it, say), without the identity.
+fn scaled(cp: &CrossProducts, dense: &[f64], t: &[Vec<f64>]) -> Vec<f64> {
     let m = cp.m;
     let q2 = cp.q2_total;
-    let mut e = cp.dense.clone();
+    let mut e = dense.to_vec();
     // Right-multiply column blocks by T_s.
     for (s, &kt) in cp.secondary.iter().enumerate() {
         let qs = cp.term_q[kt];
@@ -201,10 +212,6 @@ fn scaled_dense(cp: &CrossProducts, t: &[Vec<f64>]) -> Vec<f64> {
             }
         }
     }
-    for k in 0..q2 {
-        e[k * m + k] += 1.0;
-    }
-
     e
 }
 

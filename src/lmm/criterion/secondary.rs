@@ -35,52 +35,98 @@ pub fn applies(cp: &CrossProducts) -> bool {
         && cp.secondary.iter().all(|&k| cp.term_q[k] == 1)
 }
 
-/// One range of primary levels' sums, over the m dense columns.
-struct Part {
-    logdet: f64,
-    dlog: Vec<f64>,
+/// One range of primary levels' sums, over the m dense columns, per group
+/// of levels (one group when the levels share one factor).
+pub(super) struct Part {
+    pub logdet: f64,
+    /// Per group, per primary θ entry, Σ ∂log|Aᵢ|.
+    pub dlog: Vec<f64>,
     /// Σ Bᵢᵀ Hᵢ, m×m (both triangles).
-    bh: Vec<f64>,
-    /// Per primary θ entry, Σ uᵢₐ hᵢᵦᵀ, m×m each.
-    acc: Vec<f64>,
+    pub bh: Vec<f64>,
+    /// Per group, per primary θ entry, Σ uᵢₐ hᵢᵦᵀ, m×m each.
+    pub acc: Vec<f64>,
+    /// Grouped levels only: per group, Σ (BᵢᵀHᵢ + HᵢᵀHᵢ), m×m each.
+    pub eh: Vec<f64>,
+    /// Grouped levels only: per group, Σ (q − tr Aᵢ⁻¹).
+    pub tau: Vec<f64>,
 }
 
 impl Part {
     fn add(&mut self, o: &Part) {
         self.logdet += o.logdet;
-        self.dlog.iter_mut().zip(&o.dlog).for_each(|(a, b)| *a += b);
-        self.bh.iter_mut().zip(&o.bh).for_each(|(a, b)| *a += b);
-        self.acc.iter_mut().zip(&o.acc).for_each(|(a, b)| *a += b);
+        for (a, b) in [
+            (&mut self.dlog, &o.dlog),
+            (&mut self.bh, &o.bh),
+            (&mut self.acc, &o.acc),
+            (&mut self.eh, &o.eh),
+            (&mut self.tau, &o.tau),
+        ] {
+            a.iter_mut().zip(b).for_each(|(x, y)| *x += y);
+        }
     }
 }
 
+/// How the primary levels' factors are shared: one factor for all, or a
+/// factor and a weight per group of levels (the grouped fit, whose level
+/// in group g has its cross-products multiplied by `weight[g]`).
+pub(super) struct Levels<'a, const Q: usize> {
+    /// Per group, the solver of its factor.
+    pub solvers: Vec<LevelSolver<Q>>,
+    /// Per primary level, its group (`None`: one group).
+    pub group: Option<&'a [u32]>,
+    /// Per group, the weight of its levels' cross-products.
+    pub weight: Vec<f64>,
+}
+
 /// The per-level sums over `range`; `theta_s[s]` scales secondary term s.
-fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range: std::ops::Range<usize>) -> Part {
+pub(super) fn levels<const Q: usize>(
+    cp: &CrossProducts,
+    shared: &Levels<Q>,
+    theta_s: &[f64],
+    range: std::ops::Range<usize>,
+) -> Part {
     let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
     let c1 = p + 1;
-    let solver = LevelSolver::<Q>::new(t);
-    let nt = solver.nt;
+    let n_groups = shared.solvers.len();
+    let nt = shared.solvers[0].nt;
+    let grouped = shared.group.is_some();
     let mut logdet = LogDet::new();
     let mut part = Part {
         logdet: 0.0,
-        dlog: vec![0.0; nt],
+        dlog: vec![0.0; n_groups * nt],
         bh: vec![0.0; m * m],
-        acc: vec![0.0; nt * m * m],
+        acc: vec![0.0; n_groups * nt * m * m],
+        eh: if grouped {
+            vec![0.0; n_groups * m * m]
+        } else {
+            Vec::new()
+        },
+        tau: if grouped { vec![0.0; n_groups] } else { Vec::new() },
     };
     let mut cols: Vec<usize> = Vec::new();
     let mut c: Vec<[f64; Q]> = Vec::new();
     let mut b: Vec<[f64; Q]> = Vec::new();
     let mut h: Vec<[f64; Q]> = Vec::new();
     let mut u: Vec<[f64; Q]> = Vec::new();
+    let mut gw = vec![0.0; Q * Q];
     for i in range {
+        let g = shared.group.map_or(0, |lg| lg[i] as usize);
+        let solver = &shared.solvers[g];
+        let w = shared.weight[g];
         let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let gi = if grouped {
+            gw.iter_mut().zip(gi).for_each(|(a, v)| *a = w * v);
+            &gw[..]
+        } else {
+            gi
+        };
         let zi = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
         cols.clear();
         c.clear();
         let (lo, hi) = cp.link_ranges[i];
         for link in &cp.links[lo..hi] {
             let v = &cp.link_values[link.start..link.start + Q];
-            let th = theta_s[link.secondary];
+            let th = theta_s[link.secondary] * w;
             let mut col = [0.0; Q];
             for r in 0..Q {
                 col[r] = v[r] * th;
@@ -93,7 +139,7 @@ fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range:
         for j in 0..c1 {
             let mut col = [0.0; Q];
             for r in 0..Q {
-                col[r] = zi[r * c1 + j];
+                col[r] = w * zi[r * c1 + j];
             }
             if col.iter().any(|v| *v != 0.0) {
                 cols.push(q2 + j);
@@ -108,19 +154,44 @@ fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range:
         for j in 0..nc {
             (b[j], h[j], u[j]) = solver.column(&gt, &l, &inv, &c[j]);
         }
-        solver.add_dlog(&gt, &l, &inv, &mut part.dlog);
-        for x in 0..nc {
-            let row = cols[x] * m;
-            for y in 0..nc {
-                let mut s = 0.0;
-                for r in 0..Q {
-                    s += b[x][r] * h[y][r];
+        solver.add_dlog(&gt, &l, &inv, &mut part.dlog[g * nt..(g + 1) * nt]);
+        if grouped {
+            let eh = &mut part.eh[g * m * m..(g + 1) * m * m];
+            for x in 0..nc {
+                let row = cols[x] * m;
+                for y in 0..nc {
+                    let mut bh = 0.0;
+                    let mut hh = 0.0;
+                    for r in 0..Q {
+                        bh += b[x][r] * h[y][r];
+                        hh += h[x][r] * h[y][r];
+                    }
+                    part.bh[row + cols[y]] += bh;
+                    eh[row + cols[y]] += bh + hh;
                 }
-                part.bh[row + cols[y]] += s;
+            }
+            let mut trace = 0.0;
+            for r in 0..Q {
+                let mut e = [0.0f64; Q];
+                e[r] = 1.0;
+                LevelSolver::<Q>::solve(&l, &inv, &mut e);
+                trace += e[r];
+            }
+            part.tau[g] += Q as f64 - trace;
+        } else {
+            for x in 0..nc {
+                let row = cols[x] * m;
+                for y in 0..nc {
+                    let mut s = 0.0;
+                    for r in 0..Q {
+                        s += b[x][r] * h[y][r];
+                    }
+                    part.bh[row + cols[y]] += s;
+                }
             }
         }
         for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
-            let blk = &mut part.acc[k * m * m..(k + 1) * m * m];
+            let blk = &mut part.acc[(g * nt + k) * m * m..(g * nt + k + 1) * m * m];
             for x in 0..nc {
                 let ux = u[x][ia];
                 let row = cols[x] * m;
@@ -132,6 +203,35 @@ fn levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64], range:
     }
     part.logdet = logdet.total();
     part
+}
+
+/// The sums of [`levels`] over all primary levels, in fixed chunks summed
+/// in chunk order (in parallel above [`PARALLEL_LEVELS`]).
+pub(super) fn all_levels(cp: &CrossProducts, per_range: &(dyn Fn(std::ops::Range<usize>) -> Part + Sync)) -> Part {
+    if cp.n1 < PARALLEL_LEVELS {
+        return per_range(0..cp.n1);
+    }
+    use rayon::prelude::*;
+    let parts: Vec<Part> = (0..CHUNKS)
+        .into_par_iter()
+        .map(|c| per_range(c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS))
+        .collect();
+    let mut it = parts.into_iter();
+    let mut total = it.next().expect("CHUNKS > 0");
+    for pt in it {
+        total.add(&pt);
+    }
+    total
+}
+
+/// [`all_levels`] with one factor `t` shared by every level.
+fn plain_levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64]) -> Part {
+    let shared = Levels::<Q> {
+        solvers: vec![LevelSolver::new(t)],
+        group: None,
+        weight: vec![1.0],
+    };
+    all_levels(cp, &|range| levels(cp, &shared, theta_s, range))
 }
 
 /// The deviance, its gradient and its pieces (see the module note); `None`
@@ -148,101 +248,36 @@ pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Optio
     let t = unpack_factor(&theta[off..off + nt], q);
     let all = factors(cp, theta);
     let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
-    let per_range = |range: std::ops::Range<usize>| -> Part {
-        match q {
-            1 => levels::<1>(cp, &t, &theta_s, range),
-            2 => levels::<2>(cp, &t, &theta_s, range),
-            3 => levels::<3>(cp, &t, &theta_s, range),
-            _ => levels::<4>(cp, &t, &theta_s, range),
-        }
-    };
-    let part = if cp.n1 < PARALLEL_LEVELS {
-        per_range(0..cp.n1)
-    } else {
-        use rayon::prelude::*;
-        let parts: Vec<Part> = (0..CHUNKS)
-            .into_par_iter()
-            .map(|c| per_range(c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS))
-            .collect();
-        let mut it = parts.into_iter();
-        let mut total = it.next()?;
-        for pt in it {
-            total.add(&pt);
-        }
-        total
+    let part = match q {
+        1 => plain_levels::<1>(cp, &t, &theta_s),
+        2 => plain_levels::<2>(cp, &t, &theta_s),
+        3 => plain_levels::<3>(cp, &t, &theta_s),
+        _ => plain_levels::<4>(cp, &t, &theta_s),
     };
     let mut s = scaled_dense(cp, &all);
     for (v, d) in s.iter_mut().zip(&part.bh) {
         *v -= d;
     }
-    let sm = Mat::from_fn(m, m, |r, c| if r >= c { s[r * m + c] } else { s[c * m + r] });
-    let llt = sm.llt(Side::Lower).ok()?;
-    let l = llt.L();
-    let logdet_dense_z: f64 = (0..q2).map(|k| 2.0 * l[(k, k)].ln()).sum();
-    let logdet_x: f64 = (q2..q2 + p).map(|k| 2.0 * l[(k, k)].ln()).sum();
-    let r2 = l[(m - 1, m - 1)] * l[(m - 1, m - 1)];
+    let dense = DenseSolve::new(cp, &s, method)?;
     let pieces = Pieces {
-        logdet_z: part.logdet + logdet_dense_z,
-        logdet_x,
-        pwrss: r2,
+        logdet_z: part.logdet + dense.logdet_dense_z,
+        logdet_x: dense.logdet_x,
+        pwrss: dense.r2,
     };
-    // S₁⁻¹ and ξ; for ML the inverse of the secondary block alone.
-    let m1 = m - 1;
-    let s1 = Mat::from_fn(m1, m1, |r, c| sm[(r, c)]);
-    let inv1 = s1.llt(Side::Lower).ok()?.inverse();
-    let mut xi = vec![0.0; m];
-    for r in 0..m1 {
-        xi[r] = -(0..m1).map(|c| inv1[(r, c)] * sm[(c, m1)]).sum::<f64>();
-    }
-    xi[m1] = 1.0;
-    let reml = method == Method::Reml;
-    let (inv_t, nt_dim) = if reml {
-        (inv1.clone(), m1)
-    } else {
-        let s2 = Mat::from_fn(q2, q2, |r, c| sm[(r, c)]);
-        (s2.llt(Side::Lower).ok()?.inverse(), q2)
-    };
-    let nu = if reml { (cp.n - p) as f64 } else { cp.n as f64 };
     let mut grad = vec![0.0; theta.len()];
     let mut a_grad = vec![0.0; theta.len()];
     let mut r2_grad = vec![0.0; theta.len()];
     for k in 0..nt {
         let blk = &part.acc[k * m * m..(k + 1) * m * m];
-        let ds = |r: usize, c: usize| -(blk[r * m + c] + blk[c * m + r]);
-        let mut dr2 = 0.0;
-        for r in 0..m {
-            if xi[r] == 0.0 {
-                continue;
-            }
-            for c in 0..m {
-                dr2 += xi[r] * ds(r, c) * xi[c];
-            }
-        }
-        let mut dtr = 0.0;
-        for r in 0..nt_dim {
-            for c in 0..nt_dim {
-                dtr += inv_t[(r, c)] * ds(c, r);
-            }
-        }
+        let (dr2, dtr) = dense.quad_trace(|r, c| -(blk[r * m + c] + blk[c * m + r]));
         a_grad[off + k] = part.dlog[k] + dtr;
         r2_grad[off + k] = dr2;
     }
-    for (s_idx, &kt) in cp.secondary.iter().enumerate() {
-        let th = theta_s[s_idx];
-        let from = cp.secondary_offset[s_idx];
-        let to = cp.secondary_offset.get(s_idx + 1).copied().unwrap_or(q2);
-        let at = cp.theta_offset[kt];
-        if th == 0.0 {
-            continue;
-        }
-        let n_s = (to - from) as f64;
-        let trace: f64 = (from..to).map(|i| inv_t[(i, i)]).sum();
-        a_grad[at] = 2.0 / th * (n_s - trace);
-        r2_grad[at] = -2.0 / th * (from..to).map(|i| xi[i] * xi[i]).sum::<f64>();
-    }
+    dense.secondary_derivatives(cp, &theta_s, &mut a_grad, &mut r2_grad);
     for k in 0..theta.len() {
-        grad[k] = a_grad[k] + nu * r2_grad[k] / r2;
+        grad[k] = a_grad[k] + dense.nu * r2_grad[k] / dense.r2;
     }
+    let inv1 = &dense.inv1;
     Some(GradientEval {
         deviance: pieces.profiled_deviance(method, cp.n, p),
         grad,
@@ -250,6 +285,108 @@ pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Optio
         r2_grad,
         sxx_inv: (0..p * p).map(|k| inv1[(q2 + k / p, q2 + k % p)]).collect(),
     })
+}
+
+/// The dense Schur complement `S` factored, with what every gradient
+/// entry needs of it: `S₁⁻¹` (the leading block without y), `ξ`, the
+/// inverse whose trace enters `∂ log|A₁|` (`S₁⁻¹` for REML, the secondary
+/// block's inverse for ML) and the degrees of freedom of r².
+pub(super) struct DenseSolve {
+    /// log-determinant of the secondary block of the factor.
+    pub logdet_dense_z: f64,
+    /// log|R_X|².
+    pub logdet_x: f64,
+    /// r².
+    pub r2: f64,
+    /// S₁⁻¹.
+    pub inv1: Mat<f64>,
+    /// ξ = [−S₁⁻¹ s₁y; 1].
+    pub xi: Vec<f64>,
+    /// The inverse whose trace enters the log-determinants.
+    pub inv_t: Mat<f64>,
+    /// Its order.
+    pub nt_dim: usize,
+    /// n − p (REML) or n (ML).
+    pub nu: f64,
+}
+
+impl DenseSolve {
+    /// Factor `s` (m×m row-major, lower triangle read).
+    pub fn new(cp: &CrossProducts, s: &[f64], method: Method) -> Option<DenseSolve> {
+        let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
+        let sm = Mat::from_fn(m, m, |r, c| if r >= c { s[r * m + c] } else { s[c * m + r] });
+        let llt = sm.llt(Side::Lower).ok()?;
+        let l = llt.L();
+        let logdet_dense_z: f64 = (0..q2).map(|k| 2.0 * l[(k, k)].ln()).sum();
+        let logdet_x: f64 = (q2..q2 + p).map(|k| 2.0 * l[(k, k)].ln()).sum();
+        let r2 = l[(m - 1, m - 1)] * l[(m - 1, m - 1)];
+        let m1 = m - 1;
+        let s1 = Mat::from_fn(m1, m1, |r, c| sm[(r, c)]);
+        let inv1 = s1.llt(Side::Lower).ok()?.inverse();
+        let mut xi = vec![0.0; m];
+        for r in 0..m1 {
+            xi[r] = -(0..m1).map(|c| inv1[(r, c)] * sm[(c, m1)]).sum::<f64>();
+        }
+        xi[m1] = 1.0;
+        let reml = method == Method::Reml;
+        let (inv_t, nt_dim) = if reml {
+            (inv1.clone(), m1)
+        } else {
+            let s2 = Mat::from_fn(q2, q2, |r, c| sm[(r, c)]);
+            (s2.llt(Side::Lower).ok()?.inverse(), q2)
+        };
+        let nu = if reml { (cp.n - p) as f64 } else { cp.n as f64 };
+        Some(DenseSolve {
+            logdet_dense_z,
+            logdet_x,
+            r2,
+            inv1,
+            xi,
+            inv_t,
+            nt_dim,
+            nu,
+        })
+    }
+
+    /// `(ξᵀEξ, tr(inv_t E))` for a perturbation `E` of `S` given entry by entry.
+    pub fn quad_trace(&self, e: impl Fn(usize, usize) -> f64) -> (f64, f64) {
+        let m = self.xi.len();
+        let mut quad = 0.0;
+        for r in 0..m {
+            if self.xi[r] == 0.0 {
+                continue;
+            }
+            for c in 0..m {
+                quad += self.xi[r] * e(r, c) * self.xi[c];
+            }
+        }
+        let mut tr = 0.0;
+        for r in 0..self.nt_dim {
+            for c in 0..self.nt_dim {
+                tr += self.inv_t[(r, c)] * e(c, r);
+            }
+        }
+        (quad, tr)
+    }
+
+    /// The secondary intercept terms' entries of the gradients of A(θ) and
+    /// r²(θ) (see the module note); `theta_s[s]` scales secondary term s.
+    pub fn secondary_derivatives(&self, cp: &CrossProducts, theta_s: &[f64], a_grad: &mut [f64], r2_grad: &mut [f64]) {
+        let q2 = cp.q2_total;
+        for (s_idx, &kt) in cp.secondary.iter().enumerate() {
+            let th = theta_s[s_idx];
+            let from = cp.secondary_offset[s_idx];
+            let to = cp.secondary_offset.get(s_idx + 1).copied().unwrap_or(q2);
+            let at = cp.theta_offset[kt];
+            if th == 0.0 {
+                continue;
+            }
+            let n_s = (to - from) as f64;
+            let trace: f64 = (from..to).map(|i| self.inv_t[(i, i)]).sum();
+            a_grad[at] = 2.0 / th * (n_s - trace);
+            r2_grad[at] = -2.0 / th * (from..to).map(|i| self.xi[i] * self.xi[i]).sum::<f64>();
+        }
+    }
 }
 
 #[cfg(test)]

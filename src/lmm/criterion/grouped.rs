@@ -1,0 +1,153 @@
+//! The profiled deviance of the grouped fit ([`crate::lmm::grouped`]) with
+//! its analytic gradient, without transforming the cross-products.
+//!
+//! Group g has its own primary factor T_g and a row scale s_g (s₀ = 1).
+//! Scaling the group's rows by s_g multiplies each of its levels' blocks
+//! `Gᵢ` and `Z₁ᵢᵀ[Z₂ X y]` by `w_g = s_g²` with the factor `T_g` kept, and
+//! the group's dense part `D_g` by `w_g`; −2ℓ gains `−2 Σ_g n_g log s_g`.
+//! The kernel of [`super::secondary`] runs with a factor and a weight per
+//! level's group, and the gradient follows (notes/criterion.md, "Grouped
+//! levels"):
+//! - T_g's entries: the primary-entry formulas of the secondary kernel, with
+//!   the sums taken over the group's levels only;
+//! - secondary intercepts: unchanged;
+//! - s_g: `∂S/∂s_g = (2/s_g) E_g`, `E_g = Λ̃ᵀ(w_g D_g)Λ̃ − Σ_{i∈g}(BᵢᵀHᵢ + HᵢᵀHᵢ)`,
+//!   and `∂ log|A₁| = (2/s_g)(Σ_{i∈g}(q − tr Aᵢ⁻¹) + tr(S₁⁻¹ E_g))`
+//!   (REML; the secondary block for ML), `∂r² = (2/s_g) ξᵀE_gξ`, and the
+//!   Jacobian adds `−2n_g/s_g`.
+
+// Index loops mirror the matrix notation of the derivation.
+#![allow(clippy::needless_range_loop)]
+
+use super::super::crossprod::CrossProducts;
+use super::super::{Method, unpack_factor};
+use super::gradient::LevelSolver;
+use super::secondary::{DenseSolve, Levels, Part, all_levels, levels};
+use super::{Pieces, factors, scaled};
+
+/// The grouped parameters in the engine's terms.
+pub struct GroupedTheta<'a> {
+    /// Per primary level, its group.
+    pub level_group: &'a [u32],
+    /// Per group, its primary factor's θ entries (column by column).
+    pub factor_theta: Vec<&'a [f64]>,
+    /// Per group, its row scale (the first is 1).
+    pub scale: Vec<f64>,
+    /// Per group, its rows.
+    pub n_rows: &'a [usize],
+    /// The engine's θ for the other terms (the primary term's entries are
+    /// not read).
+    pub theta: Vec<f64>,
+}
+
+/// The deviance with its gradient.
+#[derive(Debug, Clone)]
+pub struct GroupedEval {
+    /// The profiled deviance, with the Jacobian of the row scaling.
+    pub deviance: f64,
+    /// Per group, the gradient in its factor's θ entries.
+    pub d_factor: Vec<Vec<f64>>,
+    /// The gradient in the engine's θ (the secondary terms' entries).
+    pub d_theta: Vec<f64>,
+    /// Per group, the gradient in its row scale (the first is 0: fixed).
+    pub d_scale: Vec<f64>,
+}
+
+/// Whether [`grouped_gradient`] applies: a primary term of 1 to 4
+/// coefficients, the dense part kept per row group, and every secondary
+/// term an intercept.
+pub fn applies(cp: &CrossProducts) -> bool {
+    cp.primary.is_some()
+        && (1..=4).contains(&cp.q1)
+        && !cp.dense_groups.is_empty()
+        && cp.secondary.iter().all(|&k| cp.term_q[k] == 1)
+}
+
+/// The deviance and gradient at `at`; `None` when [`applies`] does not
+/// hold, a scale is not positive, or a factorisation fails.
+pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -> Option<GroupedEval> {
+    if !applies(cp) || at.scale.iter().any(|&s| s <= 0.0 || !s.is_finite()) {
+        return None;
+    }
+    let (m, q) = (cp.m, cp.q1);
+    let n_groups = at.scale.len();
+    let nt = q * (q + 1) / 2;
+    let all = factors(cp, &at.theta);
+    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
+    let weight: Vec<f64> = at.scale.iter().map(|s| s * s).collect();
+    let part = match q {
+        1 => grouped_levels::<1>(cp, at, &weight, &theta_s),
+        2 => grouped_levels::<2>(cp, at, &weight, &theta_s),
+        3 => grouped_levels::<3>(cp, at, &weight, &theta_s),
+        _ => grouped_levels::<4>(cp, at, &weight, &theta_s),
+    };
+    // The dense part of the scaled rows, Σ_g w_g D_g.
+    let mut d = vec![0.0; m * m];
+    for (dg, w) in cp.dense_groups.iter().zip(&weight) {
+        d.iter_mut().zip(dg).for_each(|(a, b)| *a += w * b);
+    }
+    let mut s = scaled(cp, &d, &all);
+    for k in 0..cp.q2_total {
+        s[k * m + k] += 1.0;
+    }
+    for (v, b) in s.iter_mut().zip(&part.bh) {
+        *v -= b;
+    }
+    let dense = DenseSolve::new(cp, &s, method)?;
+    let pieces = Pieces {
+        logdet_z: part.logdet + dense.logdet_dense_z,
+        logdet_x: dense.logdet_x,
+        pwrss: dense.r2,
+    };
+    let jacobian: f64 = -2.0
+        * at.n_rows
+            .iter()
+            .zip(&at.scale)
+            .map(|(&n, s)| n as f64 * s.ln())
+            .sum::<f64>();
+    let ratio = dense.nu / dense.r2;
+    let d_factor = (0..n_groups)
+        .map(|g| {
+            (0..nt)
+                .map(|k| {
+                    let blk = &part.acc[(g * nt + k) * m * m..(g * nt + k + 1) * m * m];
+                    let (dr2, dtr) = dense.quad_trace(|r, c| -(blk[r * m + c] + blk[c * m + r]));
+                    part.dlog[g * nt + k] + dtr + ratio * dr2
+                })
+                .collect()
+        })
+        .collect();
+    let mut a_grad = vec![0.0; at.theta.len()];
+    let mut r2_grad = vec![0.0; at.theta.len()];
+    dense.secondary_derivatives(cp, &theta_s, &mut a_grad, &mut r2_grad);
+    let d_theta = a_grad.iter().zip(&r2_grad).map(|(a, r)| a + ratio * r).collect();
+    let mut d_scale = vec![0.0; n_groups];
+    for g in 1..n_groups {
+        let gamma = scaled(cp, &cp.dense_groups[g], &all);
+        let eh = &part.eh[g * m * m..(g + 1) * m * m];
+        let w = weight[g];
+        let (dr2, dtr) = dense.quad_trace(|r, c| w * gamma[r * m + c] - 0.5 * (eh[r * m + c] + eh[c * m + r]));
+        let sg = at.scale[g];
+        d_scale[g] = 2.0 / sg * (part.tau[g] + dtr + ratio * dr2) - 2.0 * at.n_rows[g] as f64 / sg;
+    }
+    Some(GroupedEval {
+        deviance: pieces.profiled_deviance(method, cp.n, cp.p) + jacobian,
+        d_factor,
+        d_theta,
+        d_scale,
+    })
+}
+
+/// [`all_levels`] with each group's factor and weight.
+fn grouped_levels<const Q: usize>(cp: &CrossProducts, at: &GroupedTheta, weight: &[f64], theta_s: &[f64]) -> Part {
+    let shared = Levels::<Q> {
+        solvers: at
+            .factor_theta
+            .iter()
+            .map(|th| LevelSolver::new(&unpack_factor(th, Q)))
+            .collect(),
+        group: Some(at.level_group),
+        weight: weight.to_vec(),
+    };
+    all_levels(cp, &|range| levels(cp, &shared, theta_s, range))
+}
