@@ -220,6 +220,7 @@ pub fn fit_mixed(cells: &[Cell], x: &[Vec<f64>], ids: &[u32]) -> Result<GlmFit> 
         &problem,
         crate::lmm::FitOptions {
             method: crate::lmm::Method::Ml,
+            detail: crate::lmm::Detail::Likelihood,
             ..Default::default()
         },
     )?;

@@ -215,6 +215,21 @@ fn fit_with(problem: &MixedProblem, method: Method) -> Result<Fit> {
     )
 }
 
+/// A fit of the sequence started from a nearby model's θ (each model
+/// nests in the next, so the previous optimum is a close start); `detail`
+/// says whether it only feeds a likelihood-ratio test.
+fn fit_next(problem: &MixedProblem, method: Method, detail: lmm::Detail, start: &[f64]) -> Result<Fit> {
+    lmm::fit_from(
+        problem,
+        FitOptions {
+            method,
+            detail,
+            ..Default::default()
+        },
+        start,
+    )
+}
+
 /// The cohorts in order of their youngest age, the overlaps that link
 /// neighbours, and the reference age.
 struct Linkage {
@@ -300,8 +315,15 @@ impl LevelPair {
         let frame = spec::build_frame(panel, &spec0)?;
         let columns = columns::CohortColumns::new(&frame, &linkage.cohorts, &k_of);
         let p1 = with_columns(&frame.problem, &columns.level_names, &columns.level_cols);
-        let m0 = fit_with(&frame.problem, Method::Ml)?;
-        let m1 = fit_with(&p1, Method::Ml)?;
+        let m0 = lmm::fit(
+            &frame.problem,
+            FitOptions {
+                method: Method::Ml,
+                detail: lmm::Detail::Likelihood,
+                ..Default::default()
+            },
+        )?;
+        let m1 = fit_next(&p1, Method::Ml, lmm::Detail::Likelihood, &m0.theta)?;
         Ok(LevelPair {
             linkage,
             k_of,
@@ -363,7 +385,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
     let nb = frame.basis.n_columns();
     let p0 = frame.problem.p();
     let p2 = columns.full_problem(&frame.problem);
-    let m2 = fit_with(&p2, Method::Ml)?;
+    let m2 = fit_next(&p2, Method::Ml, lmm::Detail::Likelihood, &m1.theta)?;
     let m2r = fit_with(&p2, Method::Reml)?;
     let kc = cohorts.len() - 1;
     let mut models = vec![

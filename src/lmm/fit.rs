@@ -14,7 +14,7 @@ use super::crossprod::CrossProducts;
 use super::optimize::{self, OptimOptions};
 use super::search::search;
 use super::sensitivity::{Stencil, sensitivity, stencil_steps};
-use super::solution::{components, conditional, fixed_cov, solve_pls};
+use super::solution::{components, conditional, fixed_cov, marginal, solve_pls};
 use super::start::{base_start, moment_start, row_scales};
 use super::{Method, MixedProblem};
 use crate::error::{Error, Result};
@@ -49,6 +49,23 @@ pub struct FitOptions {
     pub method: Method,
     /// Optimiser settings.
     pub optim: OptimOptions,
+    /// What the fit computes beyond the estimates.
+    pub detail: Detail,
+}
+
+/// What a fit computes beyond θ̂, β̂, cov(β̂), σ̂² and the likelihood.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub enum Detail {
+    /// Everything: BLUPs, conditional fitted values and residuals, and the
+    /// sensitivity of cov(β̂) for Satterthwaite df.
+    #[default]
+    Full,
+    /// What a likelihood-ratio test needs: the estimates, the likelihood
+    /// and the marginal fitted values Xβ̂. No BLUPs, conditional fitted
+    /// values or residuals (empty), and no sensitivity (NaN); the
+    /// curvature behind the convergence verdict comes from the Newton
+    /// finish's last stencil when there is one.
+    Likelihood,
 }
 
 /// One grouping factor's estimated covariance.
@@ -190,7 +207,17 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
     // evaluation splits its levels with the other worker directly instead of
     // being handed over from the main thread (measured: about 4% of a
     // 3,000-participant run).
-    rayon::scope(|_| fit_on_worker(problem, options))
+    rayon::scope(|_| fit_on_worker(problem, options, None))
+}
+
+/// [`fit`] with `start` (a θ of this problem, from the fit of a nearby
+/// model, say) among the start candidates; ignored when its length is not
+/// the problem's number of covariance parameters or it is not finite.
+///
+/// # Errors
+/// As [`fit`].
+pub fn fit_from(problem: &MixedProblem, options: FitOptions, start: &[f64]) -> Result<Fit> {
+    rayon::scope(|_| fit_on_worker(problem, options, Some(start)))
 }
 
 /// The largest dense part braid builds: 4,000 × 4,000 doubles are 128 MB a
@@ -253,15 +280,24 @@ fn best_start(
     problem: &MixedProblem,
     cp: &CrossProducts,
     base: &[f64],
+    given: Option<&[f64]>,
     dev: &dyn Fn(&[f64]) -> f64,
 ) -> Result<Vec<f64>> {
     let mut start = base.to_vec();
     let mut best = f64::INFINITY;
-    let mut candidates: Vec<Vec<f64>> = [0.2, 1.0, 3.0]
-        .iter()
-        .map(|s| base.iter().map(|v| v * s).collect())
-        .collect();
-    if let Some(m) = moment_start(problem, cp, base) {
+    let given = given.filter(|g| g.len() == base.len() && g.iter().all(|v| v.is_finite()));
+    // A given start (a nearby model's optimum) is tried first; the generic
+    // candidates are evaluated only without one.
+    let mut candidates: Vec<Vec<f64>> = match given {
+        Some(g) => vec![g.to_vec()],
+        None => [0.2, 1.0, 3.0]
+            .iter()
+            .map(|s| base.iter().map(|v| v * s).collect())
+            .collect(),
+    };
+    if given.is_none()
+        && let Some(m) = moment_start(problem, cp, base)
+    {
         candidates.push(m);
     }
     for cand in candidates {
@@ -307,7 +343,7 @@ fn verdict(
     (converged, messages)
 }
 
-fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
+fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f64]>) -> Result<Fit> {
     let n = problem.n();
     let p = problem.p();
     if n <= p {
@@ -325,7 +361,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
 
     check_fixed_rank(problem, &cp)?;
     let base = base_start(problem);
-    let start = best_start(problem, &cp, &base, &dev)?;
+    let start = best_start(problem, &cp, &base, given, &dev)?;
     // The search runs on θ divided by a scale per entry (a diagonal entry's
     // start value, shared by the off-diagonal entries of its row), so that all
     // coordinates are of order one whatever the units of the slope variables.
@@ -387,13 +423,28 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
 
     let (beta, u) = solve_pls(&cp, &factor);
     let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
-    let (blups, fitted, fitted_marginal) = conditional(problem, &cp, &theta, &beta, &u);
+    let full = options.detail == Detail::Full;
+    let (blups, fitted, fitted_marginal) = if full {
+        conditional(problem, &cp, &theta, &beta, &u)
+    } else {
+        (Vec::new(), Vec::new(), marginal(problem, &beta))
+    };
     let residuals: Vec<f64> = problem.y.iter().zip(&fitted).map(|(y, f)| y - f).collect();
     let random = components(problem, &cp, &theta, sigma2);
 
-    let kept = last_stencil.take().filter(|st| st.serves(&theta, &free));
-    let (sensitivity, curvature) = sensitivity(&cp, &theta, &theta_scale, &free, method, sigma2, kept);
+    // The likelihood alone takes its curvature from the finish's last
+    // stencil, taken next to the optimum, rather than a new one.
+    let kept = last_stencil.take().filter(|st| !full || st.serves(&theta, &free));
+    let (mut sensitivity, curvature) = sensitivity(&cp, &theta, &theta_scale, &free, method, sigma2, kept);
     evaluations += sensitivity.1;
+    if !full {
+        sensitivity.0.acov.iter_mut().for_each(|v| *v = f64::NAN);
+        sensitivity
+            .0
+            .dcov
+            .iter_mut()
+            .for_each(|d| d.iter_mut().for_each(|v| *v = f64::NAN));
+    }
     let min_curvature = curvature;
     let (converged, messages) = verdict(polished.decrement, polished.gradient_norm, min_curvature, &boundary);
     let n_params = p + theta.len() + 1;

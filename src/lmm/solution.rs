@@ -105,6 +105,19 @@ pub(super) fn lower_inverse(l: &Mat<f64>) -> Mat<f64> {
 
 type Conditional = (Vec<Vec<Vec<f64>>>, Vec<f64>, Vec<f64>);
 
+/// The marginal fitted values Xβ̂, per row.
+pub(super) fn marginal(problem: &MixedProblem, beta: &[f64]) -> Vec<f64> {
+    let p = problem.p();
+    if p == 0 {
+        return vec![0.0; problem.n()];
+    }
+    problem
+        .x
+        .chunks_exact(p)
+        .map(|xr| xr.iter().zip(beta).map(|(a, b)| a * b).sum())
+        .collect()
+}
+
 /// BLUPs b = Λu per term and level, conditional and marginal fitted values.
 pub(super) fn conditional(
     problem: &MixedProblem,
