@@ -281,6 +281,13 @@ pub fn minimize_with(
     }
 }
 
+/// The relative rounding of a deviance summed over many rows and levels:
+/// 64 ulps (a margin of common practice). In the search traces on the
+/// 1,000,005-row file the last "improvements" of a deviance of 5.8·10⁶ were
+/// 1e-9 to 1e-8 (1 to 8 ulps), after which the line search halved its step
+/// up to 40 times on noise.
+const VALUE_ROUNDING: f64 = 64.0 * f64::EPSILON;
+
 /// A point along `dir` from `x`, projected on the bounds, meeting the
 /// Armijo condition: the full step first, then halved steps (backtracking).
 /// The full step usually succeeds, so its gradient is taken with its value;
@@ -298,8 +305,16 @@ fn line_search(
 ) -> Option<(Vec<f64>, f64, Option<Vec<f64>>)> {
     let d = x.len();
     let mut alpha = 1.0;
+    // The full step is always tried; a shorter one whose decrease would
+    // lie below the rounding of f itself cannot be seen, so the halving
+    // stops there instead of spending evaluations on noise.
+    let noise = VALUE_ROUNDING * fx.abs();
     for _ in 0..40 {
         let xn: Vec<f64> = (0..d).map(|i| (x[i] + alpha * dir[i]).max(lower[i])).collect();
+        let predicted: f64 = (0..d).map(|i| g[i] * (xn[i] - x[i])).sum();
+        if alpha < 1.0 && -predicted < noise {
+            return None;
+        }
         let joint = if alpha == 1.0 {
             grad.and_then(|gf| gf(&xn))
         } else {
@@ -310,8 +325,7 @@ fn line_search(
             None => (f(&xn), None),
         };
         *evals += 1;
-        let decrease: f64 = (0..d).map(|i| g[i] * (xn[i] - x[i])).sum();
-        if fnew.is_finite() && fnew <= fx + 1e-4 * decrease.min(0.0) {
+        if fnew.is_finite() && fnew <= fx + 1e-4 * predicted.min(0.0) {
             return Some((xn, fnew, gnew));
         }
         alpha *= 0.5;
