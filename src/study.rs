@@ -107,27 +107,46 @@ pub fn analyse(
     provenance: Provenance,
     step: &(dyn Fn(&str) + Sync),
 ) -> Result<StudyReport> {
+    // Two independent branches run side by side: each fit already splits
+    // its levels over the threads, but cross-products, post-fit quantities
+    // and the smaller models leave a core idle (measured in
+    // notes/benchmarks.md). The results do not depend on the schedule.
+    let calendar = panel.calendar().is_some();
+    let ((design, converge), (fit, apc)) = rayon::join(
+        || {
+            step("design");
+            let design = crate::design::inspect(panel, options.design);
+            step("convergence");
+            let converge = crate::linkage::converge(panel, &options.fit.model, &options.converge);
+            (design, converge)
+        },
+        || {
+            step("fit");
+            let fit = crate::fit_panel(panel, &options.fit);
+            let apc = calendar.then(|| {
+                step("age, period and cohort");
+                ApcInput::from_panel(panel.clone()).and_then(|input| crate::apc::identify(&input, &options.apc))
+            });
+            (fit, apc)
+        },
+    );
+    let design = design?;
+    let fit = fit?.report;
     let mut skipped = Vec::new();
-    step("design");
-    let design = crate::design::inspect(panel, options.design)?;
-    step("convergence");
-    let converge = crate::linkage::converge(panel, &options.fit.model, &options.converge)
+    let converge = converge
         .map_err(|e| skipped.push(("converge".to_string(), e.to_string())))
         .ok();
-    step("fit");
-    let fit = crate::fit_panel(panel, &options.fit)?.report;
-    let apc = if panel.calendar().is_some() {
-        step("age, period and cohort");
-        ApcInput::from_panel(panel.clone())
-            .and_then(|input| crate::apc::identify(&input, &options.apc))
+    let apc = match apc {
+        Some(result) => result
             .map_err(|e| skipped.push(("apc".to_string(), e.to_string())))
-            .ok()
-    } else {
-        skipped.push((
-            "apc".into(),
-            "the data have no calendar time (period or birth year)".into(),
-        ));
-        None
+            .ok(),
+        None => {
+            skipped.push((
+                "apc".into(),
+                "the data have no calendar time (period or birth year)".into(),
+            ));
+            None
+        }
     };
     let anova = match &options.anova {
         Some(o) => {
