@@ -85,7 +85,7 @@ impl std::fmt::Display for AppliedRule {
             AppliedRule::BirthYear { width, source } => {
                 write!(
                     f,
-                    "derived: year of birth (from {}), in {}",
+                    "derived: year of birth (from {}, averaged over each participant's rows), in {}",
                     source.describe(),
                     years(*width)
                 )
@@ -187,8 +187,23 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
                     message: "birth-year cohorts need birth dates, a `birth_year` column or a `period` column".into(),
                 });
             };
+            // A cohort belongs to the participant: birth times derived row by
+            // row (period − age) differ by rounding, and one that crosses a
+            // year boundary would put a participant in two cohorts. Each
+            // participant is grouped by the mean of their rows' birth times.
+            let k = panel.id.n_levels();
+            let mut sum = vec![0.0; k];
+            let mut count = vec![0usize; k];
+            for (r, &b) in cal.birth.iter().enumerate() {
+                let i = panel.id.codes[r] as usize;
+                sum[i] += b;
+                count[i] += 1;
+            }
+            let label: Vec<String> = (0..k)
+                .map(|i| group_label(sum[i] / count[i].max(1) as f64, width))
+                .collect();
             Ok(Derived {
-                labels: cal.birth.iter().map(|&b| group_label(b, width)).collect(),
+                labels: (0..n).map(|r| label[panel.id.codes[r] as usize].clone()).collect(),
                 rule: AppliedRule::BirthYear {
                     width,
                     source: cal.source,

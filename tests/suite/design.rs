@@ -283,6 +283,36 @@ fn cohorts_and_waves_derived_from_dates_follow_the_stated_rule() {
     assert!(report.warnings.iter().any(|w| w.message.contains("'C'")));
 }
 
+// A cohort belongs to a participant. With birth time derived row by row as
+// period − age, rounding puts P's two birth times (2010.0001 and 2009.9999)
+// on both sides of a year boundary; P still gets one cohort, from the mean
+// of its rows (2010.0000), and Q, clearly born in 2011, its own.
+#[test]
+fn birth_year_cohorts_from_period_minus_age_keep_a_participant_in_one_cohort() {
+    use braid::data::derive::{CohortRule, cohorts};
+    let dir = crate::common::temp_dir("derive-boundary");
+    let path = dir.join("boundary.csv");
+    std::fs::write(
+        &path,
+        "id,age,year,y\n\
+         P,10.0000,2020.0001,1.0\n\
+         P,11.0002,2021.0001,2.0\n\
+         Q,9.5000,2020.6000,1.5\n\
+         Q,10.5000,2021.6000,2.5\n",
+    )
+    .unwrap();
+    let mut roles = crate::common::roles("id", "age", "y");
+    roles.period = Some("year".into());
+    let panel = braid::data::load(&path, &roles, Default::default()).unwrap();
+    let derived = cohorts(&panel, CohortRule::Auto).unwrap();
+    assert_eq!(derived.labels.join(" "), "2010 2010 2011 2011");
+    assert!(
+        derived.rule.to_string().contains("averaged over each participant"),
+        "{}",
+        derived.rule
+    );
+}
+
 // Without dates: a period column alone makes cohort = period − age exact by
 // construction; whole-number period and birth-year columns leave age within a
 // year of period − cohort, which braid calls near-collinear.
