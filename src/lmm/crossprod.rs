@@ -192,9 +192,12 @@ impl CrossProducts {
                     }
                 }
             }
+            // Zero entries (another cohort's columns, say) add nothing.
             let xr = &problem.x[r * p..(r + 1) * p];
             for (j, &xv) in xr.iter().enumerate() {
-                w.push((q2_total + j, xv));
+                if xv != 0.0 {
+                    w.push((q2_total + j, xv));
+                }
             }
             w.push((m - 1, problem.y[r] - y_shift));
             let target = match groups {
