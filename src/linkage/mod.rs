@@ -442,7 +442,16 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         }
         Err(why) => notes.push(format!("M3 not fitted: {why}")),
     }
-    let m0r = fit_with(&frame.problem, Method::Reml)?;
+    // M0 by REML feeds the random-slope test (its likelihood) and the
+    // retest check (its age slope): no BLUPs or sensitivity needed.
+    let m0r = lmm::fit(
+        &frame.problem,
+        FitOptions {
+            method: Method::Reml,
+            detail: lmm::Detail::Likelihood,
+            ..Default::default()
+        },
+    )?;
     if let Some(t) = variance::random_slope_test(&frame.problem, &m0r)? {
         tests.push(t);
     }
