@@ -10,7 +10,7 @@
 //! runs `linkage::converge` on each and prints how often each of its tests
 //! rejects at 5%: M1 vs M0, M2 vs M1, the two Wald tests under M2, M3 vs M2
 //! and the between- against within-person slope difference. With SCHOOLS
-//! > 0 (default 0: no school term) the pupils sit in that many schools
+//! above 0 (default 0: no school term) the pupils sit in that many schools
 //! with the demo's school SD and the model has a school intercept, so M3
 //! is the grouped fit. Seeds run from 70,000 (no shift) or 90,000 (shift),
 //! as in tests/suite/linkage.rs.
