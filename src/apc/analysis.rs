@@ -538,6 +538,7 @@ impl PanelView {
                 df_denominator: t.df_denominator,
                 fit: "REML",
             },
+            withheld: None,
         };
         Some(PanelView {
             n_participants: count_levels(ids),

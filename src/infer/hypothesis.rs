@@ -125,9 +125,21 @@ pub struct TestResult {
     pub p: f64,
     /// How it was computed (serialised in words).
     pub method: TestMethod,
+    /// Why the p-value is withheld (then `p` is NaN): its reference
+    /// distribution was measured off its nominal level in this setting.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub withheld: Option<String>,
 }
 
 impl TestResult {
+    /// The same test with its p-value withheld, and why.
+    #[must_use]
+    pub fn withhold(mut self, why: &str) -> TestResult {
+        self.p = f64::NAN;
+        self.withheld = Some(why.to_string());
+        self
+    }
+
     /// The same test, marked as being of `kind`.
     #[must_use]
     pub fn of_kind(mut self, kind: TestKind) -> TestResult {
@@ -199,6 +211,7 @@ pub fn likelihood_ratio(name: &str, loglik_small: f64, loglik_large: f64, df: us
         df_denominator: None,
         p,
         method,
+        withheld: None,
     }
 }
 
@@ -231,6 +244,7 @@ pub fn wald_f(fit: &Fit, name: &str, l: &[Vec<f64>]) -> TestResult {
         df_denominator: None,
         p: f64::NAN,
         method: TestMethod::NotEstimable,
+        withheld: None,
     };
     let Ok(eig) = lcl.self_adjoint_eigen(faer::Side::Lower) else {
         return nan;
@@ -273,6 +287,7 @@ pub fn wald_f(fit: &Fit, name: &str, l: &[Vec<f64>]) -> TestResult {
             df_denominator: den,
             fit: fit.method.label(),
         },
+        withheld: None,
     }
 }
 

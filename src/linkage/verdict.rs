@@ -95,6 +95,12 @@ pub(super) fn verdict(
 
 /// What M3 against M2 says, in one sentence.
 fn covariance_sentence(t: &TestResult) -> String {
+    if let Some(why) = &t.withheld {
+        return format!(
+            " Cohort-specific covariances and residual variances (M3 against M2): χ² = {:.2} on {} df; {why}.",
+            t.statistic, t.df
+        );
+    }
     format!(
         " Cohort-specific covariances and residual variances (M3 against M2): χ² = {:.2} on {} df, {}{}.",
         t.statistic,

@@ -545,7 +545,11 @@ fn converge_with_a_school_term_fits_m3_and_reports_each_cohorts_variances() {
         .expect("an M3 test");
     // df = (cohorts − 1) × (3 covariance parameters + 1 residual variance).
     assert_eq!(m3["df"].as_f64().unwrap(), ((n_cohorts - 1) * 4) as f64);
-    assert!(m3["p"].as_f64().unwrap() >= 0.0);
+    // The test file's cohorts are small, so the p-value is withheld (its χ²
+    // reference is conservative there) with the reason, and the statistic kept.
+    assert!(m3["p"].is_null(), "{m3}");
+    assert!(m3["withheld"].as_str().unwrap().contains("conservative"), "{m3}");
+    assert!(m3["statistic"].as_f64().unwrap() >= 0.0);
     let rows = v["cohort_variances"].as_array().unwrap();
     assert_eq!(rows.len(), n_cohorts);
     for r in rows {

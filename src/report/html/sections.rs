@@ -310,7 +310,11 @@ pub(super) fn converge(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
             esc(&t.name),
             num(f, &p("statistic"), t.statistic, 2),
             num(f, &p("df"), t.df, 1),
-            pval(f, &p("p"), t.p),
+            if t.withheld.is_some() {
+                "withheld".to_string()
+            } else {
+                pval(f, &p("p"), t.p)
+            },
         ]
     });
     page.table(

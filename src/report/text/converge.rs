@@ -76,7 +76,11 @@ pub fn converge_summary(r: &crate::linkage::ConvergeReport) -> String {
             t.name,
             t.method.reference(),
             t.statistic,
-            pval(t.p)
+            if t.withheld.is_some() {
+                " withheld".to_string()
+            } else {
+                pval(t.p)
+            }
         );
     }
     let _ = writeln!(s);
