@@ -455,7 +455,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
                 m3.test.withhold(&format!(
                     "the χ² reference of M3 against M2 is conservative with small cohorts (the smallest here has \
                      {smallest} participants; with 100 per cohort the test rejected 3.1% of seeded studies without \
-                     differences at the 5% level, with 240 3.9%), so its p-value is not shown"
+                     differences at the 5% level, and with 240, 3.9%), so its p-value is not shown"
                 ))
             } else {
                 m3.test
