@@ -41,10 +41,18 @@ pub(super) fn verdict(
         p_words(trend.p)
     ));
     v.push_str(&format!(
-        "At {} shared ages, {} differences are significant after Holm's adjustment, and {} lie within ±{:.3} by the two one-sided tests. ",
+        "At {} shared ages, {} significant after Holm's adjustment, and {} within ±{:.3} by the two one-sided tests. ",
         shared.len(),
-        n_diff,
-        n_eq,
+        if n_diff == 1 {
+            "1 difference is".to_string()
+        } else {
+            format!("{n_diff} differences are")
+        },
+        if n_eq == 1 {
+            "1 lies".to_string()
+        } else {
+            format!("{n_eq} lie")
+        },
         margin
     ));
     if differs || n_diff > 0 {
