@@ -207,11 +207,11 @@ fn summary(name: &str, description: &str, fit: &Fit) -> ModelSummary {
 
 /// The number of participants in the smallest cohort (`code` the
 /// participant of each row, `k_of` its cohort).
-fn smallest_cohort(code: &[u32], k_of: &[usize], n_cohorts: usize) -> usize {
-    let mut seen = std::collections::HashSet::new();
+fn smallest_cohort(code: &[u32], n_participants: usize, k_of: &[usize], n_cohorts: usize) -> usize {
+    let mut seen = vec![false; n_participants];
     let mut count = vec![0usize; n_cohorts];
     for (&c, &k) in code.iter().zip(k_of) {
-        if seen.insert(c) {
+        if !std::mem::replace(&mut seen[c as usize], true) {
             count[k] += 1;
         }
     }
@@ -228,19 +228,19 @@ fn fit_with(problem: &MixedProblem, method: Method) -> Result<Fit> {
     )
 }
 
-/// A fit of the sequence started from a nearby model's θ (each model
-/// nests in the next, so the previous optimum is a close start); `detail`
-/// says whether it only feeds a likelihood-ratio test.
-fn fit_next(problem: &MixedProblem, method: Method, detail: lmm::Detail, start: &[f64]) -> Result<Fit> {
-    lmm::fit_from(
-        problem,
-        FitOptions {
-            method,
-            detail,
-            ..Default::default()
-        },
-        start,
-    )
+/// A fit that only feeds a likelihood-ratio test ([`lmm::Detail::Likelihood`]),
+/// started from a nearby model's θ when one is given (each ML model of the
+/// sequence nests in the next, so the previous optimum is a close start).
+fn fit_lean(problem: &MixedProblem, method: Method, start: Option<&[f64]>) -> Result<Fit> {
+    let options = FitOptions {
+        method,
+        detail: lmm::Detail::Likelihood,
+        ..Default::default()
+    };
+    match start {
+        Some(s) => lmm::fit_from(problem, options, s),
+        None => lmm::fit(problem, options),
+    }
 }
 
 /// The cohorts in order of their youngest age, the overlaps that link
@@ -328,15 +328,8 @@ impl LevelPair {
         let frame = spec::build_frame(panel, &spec0)?;
         let columns = columns::CohortColumns::new(&frame, &linkage.cohorts, &k_of);
         let p1 = with_columns(&frame.problem, &columns.level_names, &columns.level_cols);
-        let m0 = lmm::fit(
-            &frame.problem,
-            FitOptions {
-                method: Method::Ml,
-                detail: lmm::Detail::Likelihood,
-                ..Default::default()
-            },
-        )?;
-        let m1 = fit_next(&p1, Method::Ml, lmm::Detail::Likelihood, &m0.theta)?;
+        let m0 = fit_lean(&frame.problem, Method::Ml, None)?;
+        let m1 = fit_lean(&p1, Method::Ml, Some(&m0.theta))?;
         Ok(LevelPair {
             linkage,
             k_of,
@@ -398,7 +391,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
     let nb = frame.basis.n_columns();
     let p0 = frame.problem.p();
     let p2 = columns.full_problem(&frame.problem);
-    let m2 = fit_next(&p2, Method::Ml, lmm::Detail::Likelihood, &m1.theta)?;
+    let m2 = fit_lean(&p2, Method::Ml, Some(&m1.theta))?;
     let m2r = fit_with(&p2, Method::Reml)?;
     let kc = cohorts.len() - 1;
     let mut models = vec![
@@ -450,7 +443,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         Ok(m3) => {
             models.push(m3.summary(panel.n()));
             notes.push(format!("M3 fitted as {}.", m3.route));
-            let smallest = smallest_cohort(&panel.id.codes, &k_of, cohorts.len());
+            let smallest = smallest_cohort(&panel.id.codes, panel.id.n_levels(), &k_of, cohorts.len());
             tests.push(if smallest < variance::M3_CALIBRATED_PER_COHORT {
                 m3.test.withhold(&format!(
                     "the χ² reference of M3 against M2 is conservative with small cohorts (the smallest here has \
@@ -466,14 +459,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
     }
     // M0 by REML feeds the random-slope test (its likelihood) and the
     // retest check (its age slope): no BLUPs or sensitivity needed.
-    let m0r = lmm::fit(
-        &frame.problem,
-        FitOptions {
-            method: Method::Reml,
-            detail: lmm::Detail::Likelihood,
-            ..Default::default()
-        },
-    )?;
+    let m0r = fit_lean(&frame.problem, Method::Reml, None)?;
     if let Some(t) = variance::random_slope_test(&frame.problem, &m0r)? {
         tests.push(t);
     }

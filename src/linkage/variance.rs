@@ -214,14 +214,7 @@ pub fn random_slope_test(m0_problem: &MixedProblem, m0_reml: &Fit) -> Result<Opt
     let mut reduced = m0_problem.clone();
     reduced.terms[0].columns.truncate(1);
     reduced.terms[0].z.truncate(1);
-    let f = crate::lmm::fit(
-        &reduced,
-        crate::lmm::FitOptions {
-            method: Method::Reml,
-            detail: crate::lmm::Detail::Likelihood,
-            ..Default::default()
-        },
-    )?;
+    let f = super::fit_lean(&reduced, Method::Reml, None)?;
     let mut test = likelihood_ratio(
         &format!("participants differ in their {} slope (REML)", t.columns[1]),
         f.loglik,

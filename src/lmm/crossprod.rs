@@ -192,14 +192,7 @@ impl CrossProducts {
                     }
                 }
             }
-            // Zero entries (another cohort's columns, say) add nothing.
-            let xr = &problem.x[r * p..(r + 1) * p];
-            for (j, &xv) in xr.iter().enumerate() {
-                if xv != 0.0 {
-                    w.push((q2_total + j, xv));
-                }
-            }
-            w.push((m - 1, problem.y[r] - y_shift));
+            push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
             let target = match groups {
                 Some((g, _)) => &mut dense_groups[g[r] as usize],
                 None => &mut dense,
@@ -311,6 +304,19 @@ fn add_primary_row(gi: &mut [f64], zi: &mut [f64], z1: &[f64], xr: &[f64], y: f6
         }
         row[p] += z1[a] * y;
     }
+}
+
+/// Append a row's fixed-effect entries and its response to the sparse row
+/// `w` (dense columns from `q2_total`, y last); zero entries (another
+/// cohort's columns, say) add nothing and are left out.
+#[inline]
+fn push_fixed(w: &mut Vec<(usize, f64)>, q2_total: usize, xr: &[f64], y: f64) {
+    for (j, &xv) in xr.iter().enumerate() {
+        if xv != 0.0 {
+            w.push((q2_total + j, xv));
+        }
+    }
+    w.push((q2_total + xr.len(), y));
 }
 
 /// Where the coupling block of the current primary level and the secondary

@@ -23,7 +23,7 @@ use super::super::crossprod::CrossProducts;
 use super::super::{Method, unpack_factor};
 use super::gradient::LevelSolver;
 use super::secondary::{DenseSolve, Levels, Part, all_levels, levels};
-use super::{Pieces, factors, scaled};
+use super::{factors, scaled, scaled_dense_of};
 
 /// The grouped parameters in the engine's terms.
 pub struct GroupedTheta<'a> {
@@ -86,19 +86,7 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
     for (dg, w) in cp.dense_groups.iter().zip(&weight) {
         d.iter_mut().zip(dg).for_each(|(a, b)| *a += w * b);
     }
-    let mut s = scaled(cp, &d, &all);
-    for k in 0..cp.q2_total {
-        s[k * m + k] += 1.0;
-    }
-    for (v, b) in s.iter_mut().zip(&part.bh) {
-        *v -= b;
-    }
-    let dense = DenseSolve::new(cp, &s, method)?;
-    let pieces = Pieces {
-        logdet_z: part.logdet + dense.logdet_dense_z,
-        logdet_x: dense.logdet_x,
-        pwrss: dense.r2,
-    };
+    let (dense, pieces) = DenseSolve::after_levels(cp, scaled_dense_of(cp, &d, &all), &part, method)?;
     let jacobian: f64 = -2.0
         * at.n_rows
             .iter()

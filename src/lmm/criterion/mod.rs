@@ -160,7 +160,13 @@ pub fn factors(cp: &CrossProducts, theta: &[f64]) -> Vec<Vec<f64>> {
 /// `Λ̃ᵀ D Λ̃ + I₂`, with `Λ̃ = blockdiag(T_s per secondary level, I_{p+1})`
 /// (m×m row-major, full symmetric).
 fn scaled_dense(cp: &CrossProducts, t: &[Vec<f64>]) -> Vec<f64> {
-    let mut e = scaled(cp, &cp.dense, t);
+    scaled_dense_of(cp, &cp.dense, t)
+}
+
+/// [`scaled_dense`] for any dense part `dense` laid out as `cp`'s (the
+/// weighted sum of the row groups' parts, say).
+fn scaled_dense_of(cp: &CrossProducts, dense: &[f64], t: &[Vec<f64>]) -> Vec<f64> {
+    let mut e = scaled(cp, dense, t);
     for k in 0..cp.q2_total {
         e[k * cp.m + k] += 1.0;
     }

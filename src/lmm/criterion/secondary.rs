@@ -254,16 +254,7 @@ pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Optio
         3 => plain_levels::<3>(cp, &t, &theta_s),
         _ => plain_levels::<4>(cp, &t, &theta_s),
     };
-    let mut s = scaled_dense(cp, &all);
-    for (v, d) in s.iter_mut().zip(&part.bh) {
-        *v -= d;
-    }
-    let dense = DenseSolve::new(cp, &s, method)?;
-    let pieces = Pieces {
-        logdet_z: part.logdet + dense.logdet_dense_z,
-        logdet_x: dense.logdet_x,
-        pwrss: dense.r2,
-    };
+    let (dense, pieces) = DenseSolve::after_levels(cp, scaled_dense(cp, &all), &part, method)?;
     let mut grad = vec![0.0; theta.len()];
     let mut a_grad = vec![0.0; theta.len()];
     let mut r2_grad = vec![0.0; theta.len()];
@@ -346,6 +337,26 @@ impl DenseSolve {
             nt_dim,
             nu,
         })
+    }
+
+    /// Subtract the levels' `Σ BᵢᵀHᵢ` from the scaled dense part `s`,
+    /// factor the result, and add the levels' log-determinant to the pieces.
+    pub fn after_levels(
+        cp: &CrossProducts,
+        mut s: Vec<f64>,
+        part: &Part,
+        method: Method,
+    ) -> Option<(DenseSolve, Pieces)> {
+        for (v, d) in s.iter_mut().zip(&part.bh) {
+            *v -= d;
+        }
+        let dense = DenseSolve::new(cp, &s, method)?;
+        let pieces = Pieces {
+            logdet_z: part.logdet + dense.logdet_dense_z,
+            logdet_x: dense.logdet_x,
+            pwrss: dense.r2,
+        };
+        Some((dense, pieces))
     }
 
     /// `(ξᵀEξ, tr(inv_t E))` for a perturbation `E` of `S` given entry by entry.
