@@ -55,7 +55,12 @@ fn main() {
         let r = converge(&panel, &ModelSpec::default(), &ConvergeOptions::default()).expect("converge");
         for (k, (_, kind)) in kinds.iter().enumerate() {
             let p = match kind {
-                Some(kind) => r.tests.iter().find(|t| t.kind == *kind).map(|t| t.p),
+                // A withheld p-value (M3 with small cohorts) is computed
+                // here from its χ² reference, so that its size is still measured.
+                Some(kind) => r.tests.iter().find(|t| t.kind == *kind).map(|t| match t.withheld {
+                    Some(_) => chi_square_p(t.statistic, t.df),
+                    None => t.p,
+                }),
                 None => r.between_within.as_ref().map(|b| b.p),
             };
             if let Some(p) = p.filter(|p| p.is_finite()) {
@@ -80,4 +85,10 @@ fn main() {
             counted[k]
         );
     }
+}
+
+/// The upper tail of χ² with `df` degrees of freedom at `x`.
+fn chi_square_p(x: f64, df: f64) -> f64 {
+    use statrs::distribution::{ChiSquared, ContinuousCDF};
+    ChiSquared::new(df).map_or(f64::NAN, |c| c.sf(x))
 }

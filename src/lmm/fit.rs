@@ -62,9 +62,10 @@ pub enum Detail {
     Full,
     /// What a likelihood-ratio test needs: the estimates, the likelihood
     /// and the marginal fitted values Xβ̂. No BLUPs, conditional fitted
-    /// values or residuals (empty), and no sensitivity (NaN); the
-    /// curvature behind the convergence verdict comes from the Newton
-    /// finish's last stencil when there is one.
+    /// values or residuals (empty), and no sensitivity (NaN). With an
+    /// analytic gradient the search stops on its quasi-Newton decrement
+    /// without a Newton finish, so `min_curvature` is `None`; without one
+    /// the curvature comes from the finish's last stencil.
     Likelihood,
 }
 
@@ -398,12 +399,25 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
         *last_stencil.borrow_mut() = Some(st);
         Some(out)
     };
-    let hess_at: optimize::HessianAt = if criterion::has_gradient(&cp) {
+    let full = options.detail == Detail::Full;
+    // A likelihood-only fit with an analytic gradient stops its quasi-Newton
+    // search on the decrement and skips the Newton finish (notes/criterion.md,
+    // "Likelihood-only fits").
+    let lean = !full && criterion::has_gradient(&cp);
+    let hess_at: optimize::HessianAt = if criterion::has_gradient(&cp) && !lean {
         Some(&shess)
     } else {
         None
     };
-    let (current, searched) = search(&sdev, grad, hess_at, &start_x, &lower, &unit, options.optim);
+    let optim = if lean {
+        OptimOptions {
+            decrement_tolerance: Some(NEWTON_DECREMENT_TOLERANCE),
+            ..options.optim
+        }
+    } else {
+        options.optim
+    };
+    let (current, searched) = search(&sdev, grad, hess_at, &start_x, &lower, &unit, optim);
     iterations += searched.0;
     evaluations += searched.1;
     let restarts = searched.2;
@@ -423,7 +437,6 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
 
     let (beta, u) = solve_pls(&cp, &factor);
     let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
-    let full = options.detail == Detail::Full;
     let (blups, fitted, fitted_marginal) = if full {
         conditional(problem, &cp, &theta, &beta, &u)
     } else {
@@ -435,7 +448,16 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     // The likelihood alone takes its curvature from the finish's last
     // stencil, taken next to the optimum, rather than a new one.
     let kept = last_stencil.take().filter(|st| !full || st.serves(&theta, &free));
-    let (mut sensitivity, curvature) = sensitivity(&cp, &theta, &theta_scale, &free, method, sigma2, kept);
+    let (mut sensitivity, curvature) = if lean {
+        let k = free.len() + 1;
+        let nan = VarianceSensitivity {
+            acov: vec![f64::NAN; k * k],
+            dcov: vec![vec![f64::NAN; p * p]; k],
+        };
+        ((nan, 0), None)
+    } else {
+        sensitivity(&cp, &theta, &theta_scale, &free, method, sigma2, kept)
+    };
     evaluations += sensitivity.1;
     if !full {
         sensitivity.0.acov.iter_mut().for_each(|v| *v = f64::NAN);

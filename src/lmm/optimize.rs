@@ -51,6 +51,10 @@ pub struct OptimResult {
     pub gradient_norm: f64,
     /// Whether a stopping rule other than the iteration limit was met.
     pub converged: bool,
+    /// The Newton decrement `gᵀHg` at the end over the free coordinates,
+    /// with H the quasi-Newton inverse Hessian (`None` when H is not yet
+    /// scaled to the problem, so that it predicts nothing).
+    pub decrement: Option<f64>,
 }
 
 /// Central-difference step for coordinate `x`.
@@ -165,6 +169,7 @@ pub fn minimize_with(
             evaluations: evals,
             gradient_norm: 0.0,
             converged: true,
+            decrement: Some(0.0),
         };
     }
     let mut g = match start.take() {
@@ -271,6 +276,10 @@ pub fn minimize_with(
         }
     }
     let gradient_norm = projected_norm(&x, &g, lower);
+    let decrement = h_scaled.then(|| {
+        let (_, dir) = projected_direction(&h, &g, &x, lower);
+        -dir.iter().zip(&g).map(|(a, b)| a * b).sum::<f64>()
+    });
     OptimResult {
         x,
         value: fx,
@@ -278,6 +287,7 @@ pub fn minimize_with(
         evaluations: evals,
         gradient_norm,
         converged,
+        decrement,
     }
 }
 

@@ -97,6 +97,17 @@ pub(super) fn descend(
         );
         iterations += result.iterations;
         evaluations += result.evaluations;
+        if hess_at.is_none() && optim.decrement_tolerance.is_some() {
+            // A likelihood-only fit: the quasi-Newton search itself stops
+            // on its decrement, and there is no finish to certify it.
+            return optimize::Polished {
+                x: result.x,
+                value: result.value,
+                decrement: result.decrement,
+                gradient_norm: result.gradient_norm,
+                evaluations: 0,
+            };
+        }
         let p = optimize::newton_polish_with(dev, grad, hess_at, &result.x, result.value, lower);
         evaluations += p.evaluations;
         p
@@ -126,7 +137,10 @@ pub(super) fn descend(
             }
         }
     }
-    if theta != polished.x {
+    if theta != polished.x && hess_at.is_none() && optim.decrement_tolerance.is_some() {
+        polished.x = theta.clone();
+        polished.value = value;
+    } else if theta != polished.x {
         // Certify the snapped point over the coordinates still free.
         polished = optimize::newton_polish_with(dev, grad, hess_at, &theta, value, lower);
         evaluations += polished.evaluations;
