@@ -13,6 +13,11 @@
 //! - secondary term s: `∂A = (P_s(A − D) + (A − D)P_s)/θ_s`, so
 //!   `∂ log|A₁| = (2/θ_s)(n_s − tr_s(S₁⁻¹))` and, as `Aξ = [0; r²]`,
 //!   `∂r² = −(2/θ_s) Σ_{i∈s} ξᵢ²`; both are 0 at θ_s = 0.
+//!
+//! Models whose levels share one factor evaluate these in two passes
+//! ([`super::twopass`]); this module keeps the one-pass level kernel of the
+//! grouped fit ([`levels`], which sums one m×m matrix per θ entry) and the
+//! dense solve that both use.
 
 // Index loops mirror the matrix notation of the derivation.
 #![allow(clippy::needless_range_loop)]
@@ -20,20 +25,11 @@
 use faer::linalg::solvers::DenseSolveCore;
 use faer::{Mat, Side};
 
+use super::super::Method;
 use super::super::crossprod::CrossProducts;
-use super::super::{Method, unpack_factor};
-use super::gradient::{GradientEval, LevelSolver};
+use super::gradient::LevelSolver;
 use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
-use super::{LogDet, Pieces, factors, scaled_dense};
-
-/// Whether [`gradient_eval`] applies: a primary term of 1 to 4 coefficients
-/// per level and at least one secondary term, every one an intercept.
-pub fn applies(cp: &CrossProducts) -> bool {
-    cp.primary.is_some()
-        && (1..=4).contains(&cp.q1)
-        && !cp.secondary.is_empty()
-        && cp.secondary.iter().all(|&k| cp.term_q[k] == 1)
-}
+use super::{LogDet, Pieces};
 
 /// One range of primary levels' sums, over the m dense columns, per group
 /// of levels (one group when the levels share one factor).
@@ -224,60 +220,6 @@ pub(super) fn all_levels(cp: &CrossProducts, per_range: &(dyn Fn(std::ops::Range
     total
 }
 
-/// [`all_levels`] with one factor `t` shared by every level.
-fn plain_levels<const Q: usize>(cp: &CrossProducts, t: &[f64], theta_s: &[f64]) -> Part {
-    let shared = Levels::<Q> {
-        solvers: vec![LevelSolver::new(t)],
-        group: None,
-        weight: vec![1.0],
-    };
-    all_levels(cp, &|range| levels(cp, &shared, theta_s, range))
-}
-
-/// The deviance, its gradient and its pieces (see the module note); `None`
-/// when [`applies`] does not hold or a factorisation fails.
-pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
-    if !applies(cp) {
-        return None;
-    }
-    let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
-    let k1 = cp.primary?;
-    let q = cp.q1;
-    let nt = q * (q + 1) / 2;
-    let off = cp.theta_offset[k1];
-    let t = unpack_factor(&theta[off..off + nt], q);
-    let all = factors(cp, theta);
-    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
-    let part = match q {
-        1 => plain_levels::<1>(cp, &t, &theta_s),
-        2 => plain_levels::<2>(cp, &t, &theta_s),
-        3 => plain_levels::<3>(cp, &t, &theta_s),
-        _ => plain_levels::<4>(cp, &t, &theta_s),
-    };
-    let (dense, pieces) = DenseSolve::after_levels(cp, scaled_dense(cp, &all), &part, method)?;
-    let mut grad = vec![0.0; theta.len()];
-    let mut a_grad = vec![0.0; theta.len()];
-    let mut r2_grad = vec![0.0; theta.len()];
-    for k in 0..nt {
-        let blk = &part.acc[k * m * m..(k + 1) * m * m];
-        let (dr2, dtr) = dense.quad_trace(|r, c| -(blk[r * m + c] + blk[c * m + r]));
-        a_grad[off + k] = part.dlog[k] + dtr;
-        r2_grad[off + k] = dr2;
-    }
-    dense.secondary_derivatives(cp, &theta_s, &mut a_grad, &mut r2_grad);
-    for k in 0..theta.len() {
-        grad[k] = a_grad[k] + dense.nu * r2_grad[k] / dense.r2;
-    }
-    let inv1 = &dense.inv1;
-    Some(GradientEval {
-        deviance: pieces.profiled_deviance(method, cp.n, p),
-        grad,
-        a_grad,
-        r2_grad,
-        sxx_inv: (0..p * p).map(|k| inv1[(q2 + k / p, q2 + k % p)]).collect(),
-    })
-}
-
 /// The dense Schur complement `S` factored, with what every gradient
 /// entry needs of it: `S₁⁻¹` (the leading block without y), `ξ`, the
 /// inverse whose trace enters `∂ log|A₁|` (`S₁⁻¹` for REML, the secondary
@@ -323,8 +265,12 @@ impl DenseSolve {
         let (inv_t, nt_dim) = if reml {
             (inv1.clone(), m1)
         } else {
-            let s2 = Mat::from_fn(q2, q2, |r, c| sm[(r, c)]);
-            (s2.llt(Side::Lower).ok()?.inverse(), q2)
+            if q2 == 0 {
+                (Mat::zeros(0, 0), 0)
+            } else {
+                let s2 = Mat::from_fn(q2, q2, |r, c| sm[(r, c)]);
+                (s2.llt(Side::Lower).ok()?.inverse(), q2)
+            }
         };
         let nu = if reml { (cp.n - p) as f64 } else { cp.n as f64 };
         Some(DenseSolve {
@@ -458,10 +404,10 @@ mod tests {
             ],
         };
         let cp = CrossProducts::new(&problem);
-        assert!(applies(&cp));
+        assert!(super::super::has_gradient(&cp));
         for theta in [[1.3, 0.2, 0.4, 0.7, 0.3], [1.1, -0.1, 0.3, 0.0, 0.5]] {
             for method in [Method::Reml, Method::Ml] {
-                let g = gradient_eval(&cp, &theta, method).unwrap();
+                let g = super::super::gradient_eval(&cp, &theta, method).unwrap();
                 let d = deviance(&cp, &theta, method);
                 assert!((g.deviance - d).abs() < 1e-9 * d.abs(), "{} vs {d}", g.deviance);
                 for k in 0..theta.len() {

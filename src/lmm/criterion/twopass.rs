@@ -1,0 +1,269 @@
+//! The analytic gradient in two passes over the primary levels
+//! (notes/criterion.md, "The gradient in two passes").
+//!
+//! The first pass is the value's: per level the solves with `Aᵢ`, `Σ BᵢᵀHᵢ`
+//! (lower triangle) and `∂ log|Aᵢ|`. The dense part is then factored, which
+//! gives ξ and the inverse whose trace enters `∂ log|A₁|`. The second pass
+//! contracts each level's `uᵢₐ hᵢᵦᵀ` with them at once, instead of summing
+//! one m×m matrix per θ entry: `ξᵀ(uₐhᵦᵀ)ξ = (uₐ·ξ)(hᵦ·ξ)` costs O(columns)
+//! per level, and `tr(N uₐhᵦᵀ) = hᵦ·(N uₐ)` O(columns²) once per coefficient
+//! a instead of once per θ entry.
+
+// Index loops mirror the matrix notation of the derivation.
+#![allow(clippy::needless_range_loop)]
+
+use super::super::crossprod::CrossProducts;
+use super::super::{Method, unpack_factor};
+use super::gradient::{GradientEval, LevelSolver};
+use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
+use super::secondary::DenseSolve;
+use super::{LogDet, factors, scaled_dense};
+
+/// Whether the two-pass gradient applies: a primary term of 1 to 4
+/// coefficients, alone or beside intercept terms.
+pub fn applies(cp: &CrossProducts) -> bool {
+    cp.primary.is_some() && (1..=4).contains(&cp.q1) && cp.secondary.iter().all(|&k| cp.term_q[k] == 1)
+}
+
+/// A level's non-zero columns of `Cᵢ = Z₁ᵢᵀ[Z₂Λ₂ X y]`, in increasing dense
+/// index: its secondary blocks (scaled by their θ), then X and y.
+fn gather<const Q: usize>(cp: &CrossProducts, i: usize, theta_s: &[f64], cols: &mut Vec<usize>, c: &mut Vec<[f64; Q]>) {
+    let c1 = cp.p + 1;
+    cols.clear();
+    c.clear();
+    let (lo, hi) = cp.link_ranges[i];
+    for link in &cp.links[lo..hi] {
+        let v = &cp.link_values[link.start..link.start + Q];
+        let th = theta_s[link.secondary];
+        let mut col = [0.0; Q];
+        for r in 0..Q {
+            col[r] = v[r] * th;
+        }
+        cols.push(link.offset);
+        c.push(col);
+    }
+    let zi = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
+    for j in 0..c1 {
+        let mut col = [0.0; Q];
+        for r in 0..Q {
+            col[r] = zi[r * c1 + j];
+        }
+        if col.iter().any(|v| *v != 0.0) {
+            cols.push(cp.q2_total + j);
+            c.push(col);
+        }
+    }
+}
+
+/// The first pass's sums over a range of levels.
+struct First {
+    logdet: f64,
+    /// Per θ entry of the primary term, Σ ∂log|Aᵢ|.
+    dlog: Vec<f64>,
+    /// Σ BᵢᵀHᵢ, m×m, lower triangle.
+    bh: Vec<f64>,
+}
+
+/// The second pass's sums over a range of levels, per θ entry of the
+/// primary term: Σ (uₐ·ξ)(hᵦ·ξ) and Σ hᵦ·(N uₐ).
+struct Second {
+    quad: Vec<f64>,
+    trace: Vec<f64>,
+}
+
+/// Sum per-range results in chunk order (in parallel above
+/// [`PARALLEL_LEVELS`]), so that the sums do not depend on the threads.
+fn over_levels<T: Send>(
+    cp: &CrossProducts,
+    per_range: &(dyn Fn(std::ops::Range<usize>) -> T + Sync),
+    add: impl Fn(&mut T, T),
+) -> T {
+    if cp.n1 < PARALLEL_LEVELS {
+        return per_range(0..cp.n1);
+    }
+    use rayon::prelude::*;
+    let parts: Vec<T> = (0..CHUNKS)
+        .into_par_iter()
+        .map(|c| per_range(c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS))
+        .collect();
+    let mut it = parts.into_iter();
+    let mut total = it.next().expect("CHUNKS > 0");
+    for pt in it {
+        add(&mut total, pt);
+    }
+    total
+}
+
+fn first<const Q: usize>(
+    cp: &CrossProducts,
+    solver: &LevelSolver<Q>,
+    theta_s: &[f64],
+    range: std::ops::Range<usize>,
+) -> First {
+    let m = cp.m;
+    let nt = solver.nt;
+    let mut logdet = LogDet::new();
+    let mut out = First {
+        logdet: 0.0,
+        dlog: vec![0.0; nt],
+        bh: vec![0.0; m * m],
+    };
+    let (mut cols, mut c) = (Vec::new(), Vec::new());
+    let (mut b, mut h): (Vec<[f64; Q]>, Vec<[f64; Q]>) = (Vec::new(), Vec::new());
+    for i in range {
+        gather::<Q>(cp, i, theta_s, &mut cols, &mut c);
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
+        let nc = cols.len();
+        b.resize(nc, [0.0; Q]);
+        h.resize(nc, [0.0; Q]);
+        for j in 0..nc {
+            (b[j], h[j], _) = solver.column(&gt, &l, &inv, &c[j]);
+        }
+        solver.add_dlog(&gt, &l, &inv, &mut out.dlog);
+        for x in 0..nc {
+            let row = &mut out.bh[cols[x] * m..(cols[x] + 1) * m];
+            for y in 0..=x {
+                let mut s = 0.0;
+                for r in 0..Q {
+                    s += b[x][r] * h[y][r];
+                }
+                row[cols[y]] += s;
+            }
+        }
+    }
+    out.logdet = logdet.total();
+    out
+}
+
+/// `n` is the inverse whose trace enters `∂ log|A₁|`, of order `nd`, row-major.
+fn second<const Q: usize>(
+    cp: &CrossProducts,
+    solver: &LevelSolver<Q>,
+    theta_s: &[f64],
+    xi: &[f64],
+    n: &[f64],
+    nd: usize,
+    range: std::ops::Range<usize>,
+) -> Second {
+    let nt = solver.nt;
+    let mut out = Second {
+        quad: vec![0.0; nt],
+        trace: vec![0.0; nt],
+    };
+    let mut discard = LogDet::new();
+    let (mut cols, mut c) = (Vec::new(), Vec::new());
+    let (mut h, mut u): (Vec<[f64; Q]>, Vec<[f64; Q]>) = (Vec::new(), Vec::new());
+    let mut nu: Vec<[f64; Q]> = Vec::new();
+    for i in range {
+        gather::<Q>(cp, i, theta_s, &mut cols, &mut c);
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut discard);
+        let nc = cols.len();
+        h.resize(nc, [0.0; Q]);
+        u.resize(nc, [0.0; Q]);
+        let (mut ux, mut hx) = ([0.0f64; Q], [0.0f64; Q]);
+        for j in 0..nc {
+            (_, h[j], u[j]) = solver.column(&gt, &l, &inv, &c[j]);
+            let v = xi[cols[j]];
+            for r in 0..Q {
+                ux[r] += u[j][r] * v;
+                hx[r] += h[j][r] * v;
+            }
+        }
+        // The columns inside the trace's block come first (increasing index).
+        let nct = cols.iter().take_while(|&&cj| cj < nd).count();
+        nu.clear();
+        nu.resize(nct, [0.0; Q]);
+        for y in 0..nct {
+            let row = &n[cols[y] * nd..(cols[y] + 1) * nd];
+            let mut acc = [0.0f64; Q];
+            for x in 0..nct {
+                let w = row[cols[x]];
+                for a in 0..Q {
+                    acc[a] += w * u[x][a];
+                }
+            }
+            nu[y] = acc;
+        }
+        for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
+            out.quad[k] += ux[ia] * hx[ib];
+            let mut t = 0.0;
+            for y in 0..nct {
+                t += h[y][ib] * nu[y][ia];
+            }
+            out.trace[k] += t;
+        }
+    }
+    out
+}
+
+fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+    let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
+    let k1 = cp.primary?;
+    let nt = Q * (Q + 1) / 2;
+    let off = cp.theta_offset[k1];
+    let t = unpack_factor(&theta[off..off + nt], Q);
+    let all = factors(cp, theta);
+    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
+    let solver = LevelSolver::<Q>::new(&t);
+    let part = over_levels(cp, &|range| first::<Q>(cp, &solver, &theta_s, range), |a, b| {
+        a.logdet += b.logdet;
+        a.dlog.iter_mut().zip(&b.dlog).for_each(|(x, y)| *x += y);
+        a.bh.iter_mut().zip(&b.bh).for_each(|(x, y)| *x += y);
+    });
+    let mut s = scaled_dense(cp, &all);
+    for (v, d) in s.iter_mut().zip(&part.bh) {
+        *v -= d;
+    }
+    let dense = DenseSolve::new(cp, &s, method)?;
+    let pieces = super::Pieces {
+        logdet_z: part.logdet + dense.logdet_dense_z,
+        logdet_x: dense.logdet_x,
+        pwrss: dense.r2,
+    };
+    let nd = dense.nt_dim;
+    let n: Vec<f64> = (0..nd * nd).map(|k| dense.inv_t[(k / nd, k % nd)]).collect();
+    let sums = over_levels(
+        cp,
+        &|range| second::<Q>(cp, &solver, &theta_s, &dense.xi, &n, nd, range),
+        |a, b| {
+            a.quad.iter_mut().zip(&b.quad).for_each(|(x, y)| *x += y);
+            a.trace.iter_mut().zip(&b.trace).for_each(|(x, y)| *x += y);
+        },
+    );
+    let mut a_grad = vec![0.0; theta.len()];
+    let mut r2_grad = vec![0.0; theta.len()];
+    for k in 0..nt {
+        // ∂S = −(M + Mᵀ) with M = Σ uₐhᵦᵀ.
+        a_grad[off + k] = part.dlog[k] - 2.0 * sums.trace[k];
+        r2_grad[off + k] = -2.0 * sums.quad[k];
+    }
+    dense.secondary_derivatives(cp, &theta_s, &mut a_grad, &mut r2_grad);
+    let grad = (0..theta.len())
+        .map(|k| a_grad[k] + dense.nu * r2_grad[k] / dense.r2)
+        .collect();
+    let inv1 = &dense.inv1;
+    debug_assert_eq!(inv1.nrows(), m - 1);
+    Some(GradientEval {
+        deviance: pieces.profiled_deviance(method, cp.n, p),
+        grad,
+        a_grad,
+        r2_grad,
+        sxx_inv: (0..p * p).map(|k| inv1[(q2 + k / p, q2 + k % p)]).collect(),
+    })
+}
+
+/// The deviance, its gradient and its pieces in two passes; `None` when
+/// [`applies`] does not hold or a factorisation fails.
+pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+    if !applies(cp) {
+        return None;
+    }
+    match cp.q1 {
+        1 => two_pass::<1>(cp, theta, method),
+        2 => two_pass::<2>(cp, theta, method),
+        3 => two_pass::<3>(cp, theta, method),
+        _ => two_pass::<4>(cp, theta, method),
+    }
+}
