@@ -355,9 +355,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     }
     check_dense_order(problem)?;
     let method = options.method;
-    let t0 = std::time::Instant::now();
     let cp = CrossProducts::new(problem);
-    let t_cp = t0.elapsed().as_secs_f64();
     let lower = problem.theta_lower();
     let names = theta_names(problem);
     let dev = |th: &[f64]| criterion::deviance(&cp, th, method);
@@ -423,7 +421,6 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     iterations += searched.0;
     evaluations += searched.1;
     let restarts = searched.2;
-    let t_search = t0.elapsed().as_secs_f64();
     let theta: Vec<f64> = current.theta.iter().zip(&theta_scale).map(|(x, s)| x * s).collect();
     let polished = current.polished;
     let factor = criterion::evaluate(&cp, &theta, true).map_err(|_| Error::Numerical {
@@ -471,29 +468,6 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
             .for_each(|d| d.iter_mut().for_each(|v| *v = f64::NAN));
     }
     let min_curvature = curvature;
-    if std::env::var_os("BRAID_TRACE").is_some() {
-        use std::sync::atomic::Ordering::Relaxed;
-        eprintln!(
-            "TRACE counts dev={} {:.3}s grad={} {:.3}s",
-            criterion::TRACE_DEV.swap(0, Relaxed),
-            criterion::TRACE_DEV_NS.swap(0, Relaxed) as f64 * 1e-9,
-            criterion::TRACE_GRAD.swap(0, Relaxed),
-            criterion::TRACE_GRAD_NS.swap(0, Relaxed) as f64 * 1e-9
-        );
-        eprintln!(
-            "TRACE fit {:?} {:?} p={} k={} terms={} evals={} iters={} cp={:.3} search={:.3} total={:.3}",
-            method,
-            options.detail,
-            p,
-            theta.len(),
-            problem.terms.len(),
-            evaluations,
-            iterations,
-            t_cp,
-            t_search - t_cp,
-            t0.elapsed().as_secs_f64()
-        );
-    }
     let (converged, messages) = verdict(polished.decrement, polished.gradient_norm, min_curvature, &boundary);
     let n_params = p + theta.len() + 1;
     let loglik = -deviance / 2.0;

@@ -299,18 +299,7 @@ fn first_bad_pivot(s: &Mat<f64>) -> usize {
 }
 
 /// The profiled deviance at θ, or +∞ where the evaluation fails.
-pub static TRACE_DEV: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
-pub static TRACE_GRAD: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
-pub static TRACE_DEV_NS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
-pub static TRACE_GRAD_NS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
 pub fn deviance(cp: &CrossProducts, theta: &[f64], method: Method) -> f64 {
-    let _t = std::time::Instant::now();
-    TRACE_DEV.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
-    let r = deviance_inner(cp, theta, method);
-    TRACE_DEV_NS.fetch_add(_t.elapsed().as_nanos() as usize, std::sync::atomic::Ordering::Relaxed);
-    r
-}
-fn deviance_inner(cp: &CrossProducts, theta: &[f64], method: Method) -> f64 {
     match evaluate(cp, theta, false) {
         Ok(f) => f.pieces.profiled_deviance(method, cp.n, cp.p),
         Err(_) => f64::INFINITY,
