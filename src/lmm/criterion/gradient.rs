@@ -3,8 +3,12 @@
 // Index loops mirror the matrix notation of the derivation.
 #![allow(clippy::needless_range_loop)]
 
-use super::super::Method;
+use faer::{Mat, Side};
+
 use super::super::crossprod::CrossProducts;
+use super::super::{Method, unpack_factor};
+use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
+use super::{LogDet, Pieces};
 
 /// The profiled deviance with its analytic gradient in θ, for models whose
 /// only random term is the primary one (no dense random part). Per level,
@@ -42,9 +46,146 @@ pub fn has_gradient(cp: &CrossProducts) -> bool {
     super::twopass::applies(cp)
 }
 
+/// A primary term alone with at most this many columns of `[X y]` takes
+/// the gradient in one pass (summing one (p+1)² matrix per θ entry and
+/// level); wider models, and every model with terms beside the primary
+/// one, take it in two passes ([`super::twopass`]). Measured: with p = 3
+/// the one pass was about 15% faster on the 3,000-participant file
+/// (notes/benchmarks.md), and with p ≥ 12 the two passes were faster.
+pub const ONE_PASS_MAX_COLUMNS: usize = 8;
+
+fn primary_only(cp: &CrossProducts) -> bool {
+    cp.secondary.is_empty() && cp.q2_total == 0 && cp.primary.is_some() && (1..=4).contains(&cp.q1)
+}
+
 /// See [`deviance_gradient`]; `None` when [`has_gradient`] does not hold.
 pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+    if primary_only(cp) && cp.p < ONE_PASS_MAX_COLUMNS {
+        return one_pass(cp, theta, method);
+    }
     super::twopass::gradient_eval(cp, theta, method)
+}
+
+/// The gradient in one pass over the levels, for a primary term alone
+/// with few fixed columns (see [`ONE_PASS_MAX_COLUMNS`]).
+fn one_pass(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+    let k1 = cp.primary?;
+    let q = cp.q1;
+    let p = cp.p;
+    let m = cp.m;
+    let c1 = p + 1;
+    let nt = q * (q + 1) / 2;
+    let off = cp.theta_offset[k1];
+    let t = unpack_factor(&theta[off..off + nt], q);
+    let per_range = |range: std::ops::Range<usize>| -> Option<GradPart> {
+        match q {
+            1 => grad_levels::<1>(cp, &t, range),
+            2 => grad_levels::<2>(cp, &t, range),
+            3 => grad_levels::<3>(cp, &t, range),
+            4 => grad_levels::<4>(cp, &t, range),
+            _ => None,
+        }
+    };
+    let part = if cp.n1 < PARALLEL_LEVELS {
+        per_range(0..cp.n1)?
+    } else {
+        use rayon::prelude::*;
+        let parts: Vec<Option<GradPart>> = (0..CHUNKS)
+            .into_par_iter()
+            .map(|c| per_range(c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS))
+            .collect();
+        let mut total: Option<GradPart> = None;
+        for pt in parts {
+            let pt = pt?;
+            match &mut total {
+                None => total = Some(pt),
+                Some(tt) => tt.add(&pt),
+            }
+        }
+        total?
+    };
+    let logdet_z = part.logdet;
+    let dlog = part.dlog;
+    let acc = part.acc;
+    let mut s = cp.dense.clone();
+    for r in 0..c1 {
+        for cc in 0..=r {
+            s[r * m + cc] -= part.bh[r * c1 + cc];
+        }
+    }
+    let sm = Mat::from_fn(m, m, |r, cc| if r >= cc { s[r * m + cc] } else { s[cc * m + r] });
+    let llt = sm.llt(Side::Lower).ok()?;
+    let ls = llt.L();
+    let logdet_x: f64 = (0..p).map(|k| 2.0 * ls[(k, k)].ln()).sum();
+    let r2 = ls[(p, p)] * ls[(p, p)];
+    // S_XX⁻¹ and ξ from the factor of the X block.
+    let sxx = Mat::from_fn(p, p, |r, cc| sm[(r, cc)]);
+    let lx = sxx.llt(Side::Lower).ok()?;
+    use faer::linalg::solvers::{DenseSolveCore, Solve};
+    let inv = lx.inverse();
+    let sxy = Mat::from_fn(p, 1, |r, _| sm[(r, p)]);
+    let beta = lx.solve(&sxy);
+    let xi: Vec<f64> = (0..p).map(|r| -beta[(r, 0)]).chain(std::iter::once(1.0)).collect();
+    let pieces = Pieces {
+        logdet_z,
+        logdet_x,
+        pwrss: r2,
+    };
+    let (nu, reml) = match method {
+        Method::Ml => (cp.n as f64, false),
+        Method::Reml => ((cp.n - p) as f64, true),
+    };
+    let mut grad = vec![0.0; theta.len()];
+    let mut a_grad = vec![0.0; theta.len()];
+    let mut r2_grad = vec![0.0; theta.len()];
+    for k in 0..nt {
+        let blk = &acc[k * c1 * c1..(k + 1) * c1 * c1];
+        // ∂S = −(M + Mᵀ).
+        let ds = |r: usize, cc: usize| -(blk[r * c1 + cc] + blk[cc * c1 + r]);
+        let mut dr2 = 0.0;
+        for r in 0..c1 {
+            for cc in 0..c1 {
+                dr2 += xi[r] * ds(r, cc) * xi[cc];
+            }
+        }
+        let mut dx = 0.0;
+        if reml {
+            for r in 0..p {
+                for cc in 0..p {
+                    dx += inv[(r, cc)] * ds(cc, r);
+                }
+            }
+        }
+        grad[off + k] = dlog[k] + dx + nu * dr2 / r2;
+        a_grad[off + k] = dlog[k] + dx;
+        r2_grad[off + k] = dr2;
+    }
+    Some(GradientEval {
+        deviance: pieces.profiled_deviance(method, cp.n, p),
+        grad,
+        a_grad,
+        r2_grad,
+        sxx_inv: (0..p * p).map(|k| inv[(k / p, k % p)]).collect(),
+    })
+}
+
+/// One range of primary levels' contributions to the gradient.
+pub(super) struct GradPart {
+    logdet: f64,
+    dlog: Vec<f64>,
+    /// Σ Bᵢᵀ Hᵢ, (p+1)², lower triangle used.
+    bh: Vec<f64>,
+    /// Per θ entry, Σ uᵢₐ hᵢᵦᵀ, (p+1)² each.
+    acc: Vec<f64>,
+}
+
+impl GradPart {
+    fn add(&mut self, o: &GradPart) {
+        self.logdet += o.logdet;
+        self.dlog.iter_mut().zip(&o.dlog).for_each(|(a, b)| *a += b);
+        self.bh.iter_mut().zip(&o.bh).for_each(|(a, b)| *a += b);
+        self.acc.iter_mut().zip(&o.acc).for_each(|(a, b)| *a += b);
+    }
 }
 
 /// One primary level's share of the gradient, the same in both kernels: the
@@ -147,6 +288,63 @@ impl<const Q: usize> LevelSolver<Q> {
     }
 }
 
+/// The per-level sums of [`deviance_gradient`] over `range`, with Q×Q
+/// blocks in fixed-size arrays.
+pub(super) fn grad_levels<const Q: usize>(
+    cp: &CrossProducts,
+    t: &[f64],
+    range: std::ops::Range<usize>,
+) -> Option<GradPart> {
+    let c1 = cp.p + 1;
+    let solver = LevelSolver::<Q>::new(t);
+    let nt = solver.nt;
+    let mut logdet = LogDet::new();
+    let mut dlog = vec![0.0; nt];
+    let mut bh = vec![0.0; c1 * c1];
+    let mut acc = vec![0.0; nt * c1 * c1];
+    let mut b: Vec<[f64; Q]> = vec![[0.0; Q]; c1];
+    let mut h: Vec<[f64; Q]> = vec![[0.0; Q]; c1];
+    let mut u: Vec<[f64; Q]> = vec![[0.0; Q]; c1];
+    for i in range {
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let ci = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
+        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
+        for col in 0..c1 {
+            let mut c = [0.0f64; Q];
+            for r in 0..Q {
+                c[r] = ci[r * c1 + col];
+            }
+            (b[col], h[col], u[col]) = solver.column(&gt, &l, &inv, &c);
+        }
+        solver.add_dlog(&gt, &l, &inv, &mut dlog);
+        for r in 0..c1 {
+            for c in 0..=r {
+                let mut s = 0.0;
+                for x in 0..Q {
+                    s += b[r][x] * h[c][x];
+                }
+                bh[r * c1 + c] += s;
+            }
+        }
+        for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
+            let blk = &mut acc[k * c1 * c1..(k + 1) * c1 * c1];
+            for r in 0..c1 {
+                let ur = u[r][ia];
+                let row = &mut blk[r * c1..(r + 1) * c1];
+                for (c, v) in row.iter_mut().enumerate() {
+                    *v += ur * h[c][ib];
+                }
+            }
+        }
+    }
+    Some(GradPart {
+        logdet: logdet.total(),
+        dlog,
+        bh,
+        acc,
+    })
+}
+
 #[cfg(test)]
 mod gradient_tests {
     use super::super::deviance;
@@ -190,6 +388,25 @@ mod gradient_tests {
         let cp = CrossProducts::new(&problem);
         let theta = [1.3, 0.2, 0.4];
         for method in [Method::Reml, Method::Ml] {
+            // The one pass and the two passes compute the same quantities
+            // in a different order of summation.
+            let one = one_pass(&cp, &theta, method).unwrap();
+            let two = super::super::twopass::gradient_eval(&cp, &theta, method).unwrap();
+            let close = |a: &[f64], b: &[f64]| a.iter().zip(b).all(|(x, y)| (x - y).abs() <= 1e-9 * (1.0 + x.abs()));
+            assert!(
+                close(&[one.deviance], &[two.deviance]),
+                "{} vs {}",
+                one.deviance,
+                two.deviance
+            );
+            for (a, b) in [
+                (&one.grad, &two.grad),
+                (&one.a_grad, &two.a_grad),
+                (&one.r2_grad, &two.r2_grad),
+                (&one.sxx_inv, &two.sxx_inv),
+            ] {
+                assert!(close(a, b), "{method:?}: {a:?} vs {b:?}");
+            }
             let (d, g) = deviance_gradient(&cp, &theta, method).unwrap();
             assert!((d - deviance(&cp, &theta, method)).abs() < 1e-9 * d.abs());
             for k in 0..3 {
