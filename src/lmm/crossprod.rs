@@ -69,6 +69,64 @@ pub struct CrossProducts {
     /// of each group's rows (each m×m, full symmetric; they sum to
     /// [`Self::dense`]); empty otherwise.
     pub dense_groups: Vec<Vec<f64>>,
+    /// For a random intercept (or one coefficient) alone, the levels pooled
+    /// by their `ZᵢᵀZᵢ` when that takes few values ([`Pools`]).
+    pub pools: Option<Pools>,
+}
+
+/// Levels of a one-coefficient primary term pooled by `γ = ZᵢᵀZᵢ` (a random
+/// intercept: the level's number of rows). A level's share of the criterion
+/// depends on θ only through γ (notes/criterion.md, "Pooled levels"), so
+/// `Σᵢ cᵢcᵢᵀ` per pool, with `cᵢ = Zᵢᵀ[X y]`, serves every evaluation.
+#[derive(Debug, Clone)]
+pub struct Pools {
+    /// The distinct values of γ.
+    pub gamma: Vec<f64>,
+    /// Levels per pool.
+    pub count: Vec<f64>,
+    /// Per pool, `Σ cᵢcᵢᵀ` over its levels, (p+1)×(p+1) row-major, lower
+    /// triangle.
+    pub outer: Vec<f64>,
+}
+
+/// Pools are kept when γ takes at most this many values.
+pub const POOL_MAX: usize = 64;
+
+impl Pools {
+    /// Pool `n1` levels of one coefficient (`g[i]` = γ, `zxy` their rows of
+    /// width `c1`); `None` when γ takes more than [`POOL_MAX`] values.
+    fn gather(g: &[f64], zxy: &[f64], c1: usize) -> Option<Pools> {
+        let mut gamma: Vec<f64> = Vec::new();
+        let mut pool_of = Vec::with_capacity(g.len());
+        for &v in g {
+            let k = match gamma.iter().position(|&x| x == v) {
+                Some(k) => k,
+                None if gamma.len() < POOL_MAX => {
+                    gamma.push(v);
+                    gamma.len() - 1
+                }
+                None => return None,
+            };
+            pool_of.push(k);
+        }
+        let mut count = vec![0.0; gamma.len()];
+        let mut outer = vec![0.0; gamma.len() * c1 * c1];
+        for (i, &k) in pool_of.iter().enumerate() {
+            count[k] += 1.0;
+            let c = &zxy[i * c1..(i + 1) * c1];
+            let o = &mut outer[k * c1 * c1..(k + 1) * c1 * c1];
+            for a in 0..c1 {
+                if c[a] == 0.0 {
+                    continue;
+                }
+                let row = &mut o[a * c1..a * c1 + a + 1];
+                for (b, v) in row.iter_mut().enumerate() {
+                    *v += c[a] * c[b];
+                }
+            }
+        }
+        Some(Pools { gamma, count, outer })
+    }
 }
 
 /// The order of the dense part (secondary columns, fixed effects and y)
@@ -224,7 +282,13 @@ impl CrossProducts {
                 dense.iter_mut().zip(d).for_each(|(a, b)| *a += b);
             }
         }
+        let pools = if primary.is_some() && q1 == 1 && secondary.is_empty() && groups.is_none() {
+            Pools::gather(&g, &zxy, p + 1)
+        } else {
+            None
+        };
         CrossProducts {
+            pools,
             n,
             p,
             primary,

@@ -60,6 +60,9 @@ fn primary_only(cp: &CrossProducts) -> bool {
 
 /// See [`deviance_gradient`]; `None` when [`has_gradient`] does not hold.
 pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+    if let Some(pools) = &cp.pools {
+        return super::pooled::gradient_eval(cp, pools, theta, method);
+    }
     if primary_only(cp) && cp.p < ONE_PASS_MAX_COLUMNS {
         return one_pass(cp, theta, method);
     }

@@ -16,6 +16,7 @@
 
 mod gradient;
 pub mod grouped;
+mod pooled;
 mod primary;
 mod secondary;
 mod twopass;
@@ -235,7 +236,9 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
     let mut logdet_z = 0.0;
     let mut blocks_l = Vec::new();
     let mut blocks_w = KeptW::default();
-    if let Some(k1) = cp.primary {
+    if let (Some(pools), false) = (&cp.pools, keep) {
+        logdet_z = pooled::subtract(pools, t[cp.primary.unwrap_or(0)][0], &mut e, m);
+    } else if let Some(k1) = cp.primary {
         let out = match cp.q1 {
             1 => primary_fixed::<1>(cp, &t[k1], &t, &mut e, keep),
             2 => primary_fixed::<2>(cp, &t[k1], &t, &mut e, keep),
