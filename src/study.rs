@@ -95,8 +95,9 @@ pub struct StudyReport {
     pub score: Option<ScoreReport>,
 }
 
-/// Run every analysis the data allow. `step` is told the name of each
-/// analysis as it starts (for a progress line).
+/// Run every analysis the data allow. `step(lane, name)` is told the name
+/// of each analysis as it starts, for a progress line: two lanes (0 and 1)
+/// run side by side, and a lane that has finished is told an empty name.
 ///
 /// # Errors
 /// Errors of the design report and the fit; the convergence, APC and ANOVA
@@ -105,7 +106,7 @@ pub fn analyse(
     panel: &Panel,
     options: &StudyOptions,
     provenance: Provenance,
-    step: &(dyn Fn(&str) + Sync),
+    step: &(dyn Fn(usize, &str) + Sync),
 ) -> Result<StudyReport> {
     // Two independent branches run side by side: each fit already splits
     // its levels over the threads, but cross-products, post-fit quantities
@@ -114,19 +115,21 @@ pub fn analyse(
     let calendar = panel.calendar().is_some();
     let ((design, converge), (fit, apc)) = rayon::join(
         || {
-            step("design");
+            step(0, "design");
             let design = crate::design::inspect(panel, options.design);
-            step("convergence");
+            step(0, "convergence");
             let converge = crate::linkage::converge(panel, &options.fit.model, &options.converge);
+            step(0, "");
             (design, converge)
         },
         || {
-            step("fit");
+            step(1, "fit");
             let fit = crate::fit_panel(panel, &options.fit);
             let apc = calendar.then(|| {
-                step("age, period and cohort");
+                step(1, "age, period and cohort");
                 ApcInput::from_panel(panel.clone()).and_then(|input| crate::apc::identify(&input, &options.apc))
             });
+            step(1, "");
             (fit, apc)
         },
     );
@@ -150,7 +153,7 @@ pub fn analyse(
     };
     let anova = match &options.anova {
         Some(o) => {
-            step("mixed ANOVA");
+            step(0, "mixed ANOVA");
             crate::anova::mixed_anova(panel, o)
                 .map_err(|e| skipped.push(("anova".to_string(), e.to_string())))
                 .ok()

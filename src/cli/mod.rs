@@ -148,8 +148,20 @@ fn study_report(
         data_sha256: crate::study::sha256_file(&source.data)?,
         seeds,
     };
-    let mut report = crate::study::analyse(&panel, options, provenance, &|step: &str| {
-        bar.set_message(step.to_string());
+    // The analyses run in two lanes side by side: the line names what each
+    // lane is doing now.
+    let lanes = std::sync::Mutex::new([String::new(), String::new()]);
+    let mut report = crate::study::analyse(&panel, options, provenance, &|lane: usize, step: &str| {
+        let Ok(mut lanes) = lanes.lock() else { return };
+        if let Some(l) = lanes.get_mut(lane) {
+            *l = step.to_string();
+        }
+        let running: Vec<&str> = lanes.iter().map(String::as_str).filter(|s| !s.is_empty()).collect();
+        bar.set_message(if running.is_empty() {
+            "writing".to_string()
+        } else {
+            running.join(" · ")
+        });
     })?;
     report.score = scale;
     Ok(report)
