@@ -5,8 +5,9 @@
 //! Scaling the group's rows by s_g multiplies each of its levels' blocks
 //! `Gᵢ` and `Z₁ᵢᵀ[Z₂ X y]` by `w_g = s_g²` with the factor `T_g` kept, and
 //! the group's dense part `D_g` by `w_g`; −2ℓ gains `−2 Σ_g n_g log s_g`.
-//! The kernel of [`super::secondary`] runs with a factor and a weight per
-//! level's group, and the gradient follows (notes/criterion.md, "Grouped
+//! The two passes of [`super::twopass`] run with a factor and a weight per
+//! level's group (the second also contracts `Σ(BᵢᵀHᵢ + HᵢᵀHᵢ)` per group),
+//! and the gradient follows (notes/criterion.md, "Grouped
 //! levels"):
 //! - T_g's entries: the primary-entry formulas of the secondary kernel, with
 //!   the sums taken over the group's levels only;
@@ -21,8 +22,10 @@
 
 use super::super::crossprod::CrossProducts;
 use super::super::{Method, unpack_factor};
+use super::Pieces;
 use super::gradient::LevelSolver;
-use super::secondary::{DenseSolve, Levels, Part, all_levels, levels};
+use super::secondary::{DenseSolve, Levels};
+use super::twopass::{First, Second, passes};
 use super::{factors, scaled, scaled_dense_of};
 
 /// The grouped parameters in the engine's terms.
@@ -75,18 +78,18 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
     let all = factors(cp, &at.theta);
     let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
     let weight: Vec<f64> = at.scale.iter().map(|s| s * s).collect();
-    let part = match q {
-        1 => grouped_levels::<1>(cp, at, &weight, &theta_s),
-        2 => grouped_levels::<2>(cp, at, &weight, &theta_s),
-        3 => grouped_levels::<3>(cp, at, &weight, &theta_s),
-        _ => grouped_levels::<4>(cp, at, &weight, &theta_s),
-    };
     // The dense part of the scaled rows, Σ_g w_g D_g.
     let mut d = vec![0.0; m * m];
     for (dg, w) in cp.dense_groups.iter().zip(&weight) {
         d.iter_mut().zip(dg).for_each(|(a, b)| *a += w * b);
     }
-    let (dense, pieces) = DenseSolve::after_levels(cp, scaled_dense_of(cp, &d, &all), &part, method)?;
+    let s = scaled_dense_of(cp, &d, &all);
+    let (part, dense, pieces, sums) = match q {
+        1 => grouped_passes::<1>(cp, at, &weight, &theta_s, s, method),
+        2 => grouped_passes::<2>(cp, at, &weight, &theta_s, s, method),
+        3 => grouped_passes::<3>(cp, at, &weight, &theta_s, s, method),
+        _ => grouped_passes::<4>(cp, at, &weight, &theta_s, s, method),
+    }?;
     let jacobian: f64 = -2.0
         * at.n_rows
             .iter()
@@ -94,13 +97,13 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
             .map(|(&n, s)| n as f64 * s.ln())
             .sum::<f64>();
     let ratio = dense.nu / dense.r2;
+    // ∂S = −(M + Mᵀ) per factor entry, with M = Σ uₐhᵦᵀ over the group.
     let d_factor = (0..n_groups)
         .map(|g| {
             (0..nt)
                 .map(|k| {
-                    let blk = &part.acc[(g * nt + k) * m * m..(g * nt + k + 1) * m * m];
-                    let (dr2, dtr) = dense.quad_trace(|r, c| -(blk[r * m + c] + blk[c * m + r]));
-                    part.dlog[g * nt + k] + dtr + ratio * dr2
+                    let j = g * nt + k;
+                    part.dlog[j] - 2.0 * sums.trace[j] - 2.0 * ratio * sums.quad[j]
                 })
                 .collect()
         })
@@ -111,10 +114,12 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
     let d_theta = a_grad.iter().zip(&r2_grad).map(|(a, r)| a + ratio * r).collect();
     let mut d_scale = vec![0.0; n_groups];
     for g in 1..n_groups {
+        // E_g = w_g Γ_g − Σ_{i∈g}(BᵢᵀHᵢ + HᵢᵀHᵢ): the dense part by
+        // quad_trace, the levels' part from the second pass.
         let gamma = scaled(cp, &cp.dense_groups[g], &all);
-        let eh = &part.eh[g * m * m..(g + 1) * m * m];
         let w = weight[g];
-        let (dr2, dtr) = dense.quad_trace(|r, c| w * gamma[r * m + c] - 0.5 * (eh[r * m + c] + eh[c * m + r]));
+        let (gq, gt) = dense.quad_trace(|r, c| w * gamma[r * m + c]);
+        let (dr2, dtr) = (gq - sums.e_quad[g], gt - sums.e_trace[g]);
         let sg = at.scale[g];
         d_scale[g] = 2.0 / sg * (part.tau[g] + dtr + ratio * dr2) - 2.0 * at.n_rows[g] as f64 / sg;
     }
@@ -126,8 +131,15 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
     })
 }
 
-/// [`all_levels`] with each group's factor and weight.
-fn grouped_levels<const Q: usize>(cp: &CrossProducts, at: &GroupedTheta, weight: &[f64], theta_s: &[f64]) -> Part {
+/// Both passes with each group's factor and weight.
+fn grouped_passes<const Q: usize>(
+    cp: &CrossProducts,
+    at: &GroupedTheta,
+    weight: &[f64],
+    theta_s: &[f64],
+    s: Vec<f64>,
+    method: Method,
+) -> Option<(First, DenseSolve, Pieces, Second)> {
     let shared = Levels::<Q> {
         solvers: at
             .factor_theta
@@ -137,5 +149,5 @@ fn grouped_levels<const Q: usize>(cp: &CrossProducts, at: &GroupedTheta, weight:
         group: Some(at.level_group),
         weight: weight.to_vec(),
     };
-    all_levels(cp, &|range| levels(cp, &shared, theta_s, range))
+    passes(cp, &shared, theta_s, s, method)
 }

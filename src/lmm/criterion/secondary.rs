@@ -14,10 +14,9 @@
 //!   `∂ log|A₁| = (2/θ_s)(n_s − tr_s(S₁⁻¹))` and, as `Aξ = [0; r²]`,
 //!   `∂r² = −(2/θ_s) Σ_{i∈s} ξᵢ²`; both are 0 at θ_s = 0.
 //!
-//! Models whose levels share one factor evaluate these in two passes
-//! ([`super::twopass`]); this module keeps the one-pass level kernel of the
-//! grouped fit ([`levels`], which sums one m×m matrix per θ entry) and the
-//! dense solve that both use.
+//! The sums over levels run in two passes ([`super::twopass`]); this module
+//! keeps how the levels share their factors ([`Levels`]) and the dense
+//! solve with its contractions ([`DenseSolve`]).
 
 // Index loops mirror the matrix notation of the derivation.
 #![allow(clippy::needless_range_loop)]
@@ -28,39 +27,6 @@ use faer::{Mat, Side};
 use super::super::Method;
 use super::super::crossprod::CrossProducts;
 use super::gradient::LevelSolver;
-use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
-use super::{LogDet, Pieces};
-
-/// One range of primary levels' sums, over the m dense columns, per group
-/// of levels (one group when the levels share one factor).
-pub(super) struct Part {
-    pub logdet: f64,
-    /// Per group, per primary θ entry, Σ ∂log|Aᵢ|.
-    pub dlog: Vec<f64>,
-    /// Σ Bᵢᵀ Hᵢ, m×m (both triangles).
-    pub bh: Vec<f64>,
-    /// Per group, per primary θ entry, Σ uᵢₐ hᵢᵦᵀ, m×m each.
-    pub acc: Vec<f64>,
-    /// Grouped levels only: per group, Σ (BᵢᵀHᵢ + HᵢᵀHᵢ), m×m each.
-    pub eh: Vec<f64>,
-    /// Grouped levels only: per group, Σ (q − tr Aᵢ⁻¹).
-    pub tau: Vec<f64>,
-}
-
-impl Part {
-    fn add(&mut self, o: &Part) {
-        self.logdet += o.logdet;
-        for (a, b) in [
-            (&mut self.dlog, &o.dlog),
-            (&mut self.bh, &o.bh),
-            (&mut self.acc, &o.acc),
-            (&mut self.eh, &o.eh),
-            (&mut self.tau, &o.tau),
-        ] {
-            a.iter_mut().zip(b).for_each(|(x, y)| *x += y);
-        }
-    }
-}
 
 /// How the primary levels' factors are shared: one factor for all, or a
 /// factor and a weight per group of levels (the grouped fit, whose level
@@ -72,152 +38,6 @@ pub(super) struct Levels<'a, const Q: usize> {
     pub group: Option<&'a [u32]>,
     /// Per group, the weight of its levels' cross-products.
     pub weight: Vec<f64>,
-}
-
-/// The per-level sums over `range`; `theta_s[s]` scales secondary term s.
-pub(super) fn levels<const Q: usize>(
-    cp: &CrossProducts,
-    shared: &Levels<Q>,
-    theta_s: &[f64],
-    range: std::ops::Range<usize>,
-) -> Part {
-    let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
-    let c1 = p + 1;
-    let n_groups = shared.solvers.len();
-    let nt = shared.solvers[0].nt;
-    let grouped = shared.group.is_some();
-    let mut logdet = LogDet::new();
-    let mut part = Part {
-        logdet: 0.0,
-        dlog: vec![0.0; n_groups * nt],
-        bh: vec![0.0; m * m],
-        acc: vec![0.0; n_groups * nt * m * m],
-        eh: if grouped {
-            vec![0.0; n_groups * m * m]
-        } else {
-            Vec::new()
-        },
-        tau: if grouped { vec![0.0; n_groups] } else { Vec::new() },
-    };
-    let mut cols: Vec<usize> = Vec::new();
-    let mut c: Vec<[f64; Q]> = Vec::new();
-    let mut b: Vec<[f64; Q]> = Vec::new();
-    let mut h: Vec<[f64; Q]> = Vec::new();
-    let mut u: Vec<[f64; Q]> = Vec::new();
-    let mut gw = vec![0.0; Q * Q];
-    for i in range {
-        let g = shared.group.map_or(0, |lg| lg[i] as usize);
-        let solver = &shared.solvers[g];
-        let w = shared.weight[g];
-        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-        let gi = if grouped {
-            gw.iter_mut().zip(gi).for_each(|(a, v)| *a = w * v);
-            &gw[..]
-        } else {
-            gi
-        };
-        let zi = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
-        cols.clear();
-        c.clear();
-        let (lo, hi) = cp.link_ranges[i];
-        for link in &cp.links[lo..hi] {
-            let v = &cp.link_values[link.start..link.start + Q];
-            let th = theta_s[link.secondary] * w;
-            let mut col = [0.0; Q];
-            for r in 0..Q {
-                col[r] = v[r] * th;
-            }
-            cols.push(link.offset);
-            c.push(col);
-        }
-        // A level's all-zero columns (another cohort's terms, say) add
-        // nothing to any sum: skip them, as the value kernel does.
-        for j in 0..c1 {
-            let mut col = [0.0; Q];
-            for r in 0..Q {
-                col[r] = w * zi[r * c1 + j];
-            }
-            if col.iter().any(|v| *v != 0.0) {
-                cols.push(q2 + j);
-                c.push(col);
-            }
-        }
-        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
-        let nc = cols.len();
-        b.resize(nc, [0.0; Q]);
-        h.resize(nc, [0.0; Q]);
-        u.resize(nc, [0.0; Q]);
-        for j in 0..nc {
-            (b[j], h[j], u[j]) = solver.column(&gt, &l, &inv, &c[j]);
-        }
-        solver.add_dlog(&gt, &l, &inv, &mut part.dlog[g * nt..(g + 1) * nt]);
-        if grouped {
-            let eh = &mut part.eh[g * m * m..(g + 1) * m * m];
-            for x in 0..nc {
-                let row = cols[x] * m;
-                for y in 0..nc {
-                    let mut bh = 0.0;
-                    let mut hh = 0.0;
-                    for r in 0..Q {
-                        bh += b[x][r] * h[y][r];
-                        hh += h[x][r] * h[y][r];
-                    }
-                    part.bh[row + cols[y]] += bh;
-                    eh[row + cols[y]] += bh + hh;
-                }
-            }
-            let mut trace = 0.0;
-            for r in 0..Q {
-                let mut e = [0.0f64; Q];
-                e[r] = 1.0;
-                LevelSolver::<Q>::solve(&l, &inv, &mut e);
-                trace += e[r];
-            }
-            part.tau[g] += Q as f64 - trace;
-        } else {
-            for x in 0..nc {
-                let row = cols[x] * m;
-                for y in 0..nc {
-                    let mut s = 0.0;
-                    for r in 0..Q {
-                        s += b[x][r] * h[y][r];
-                    }
-                    part.bh[row + cols[y]] += s;
-                }
-            }
-        }
-        for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
-            let blk = &mut part.acc[(g * nt + k) * m * m..(g * nt + k + 1) * m * m];
-            for x in 0..nc {
-                let ux = u[x][ia];
-                let row = cols[x] * m;
-                for y in 0..nc {
-                    blk[row + cols[y]] += ux * h[y][ib];
-                }
-            }
-        }
-    }
-    part.logdet = logdet.total();
-    part
-}
-
-/// The sums of [`levels`] over all primary levels, in fixed chunks summed
-/// in chunk order (in parallel above [`PARALLEL_LEVELS`]).
-pub(super) fn all_levels(cp: &CrossProducts, per_range: &(dyn Fn(std::ops::Range<usize>) -> Part + Sync)) -> Part {
-    if cp.n1 < PARALLEL_LEVELS {
-        return per_range(0..cp.n1);
-    }
-    use rayon::prelude::*;
-    let parts: Vec<Part> = (0..CHUNKS)
-        .into_par_iter()
-        .map(|c| per_range(c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS))
-        .collect();
-    let mut it = parts.into_iter();
-    let mut total = it.next().expect("CHUNKS > 0");
-    for pt in it {
-        total.add(&pt);
-    }
-    total
 }
 
 /// The dense Schur complement `S` factored, with what every gradient
@@ -283,26 +103,6 @@ impl DenseSolve {
             nt_dim,
             nu,
         })
-    }
-
-    /// Subtract the levels' `Σ BᵢᵀHᵢ` from the scaled dense part `s`,
-    /// factor the result, and add the levels' log-determinant to the pieces.
-    pub fn after_levels(
-        cp: &CrossProducts,
-        mut s: Vec<f64>,
-        part: &Part,
-        method: Method,
-    ) -> Option<(DenseSolve, Pieces)> {
-        for (v, d) in s.iter_mut().zip(&part.bh) {
-            *v -= d;
-        }
-        let dense = DenseSolve::new(cp, &s, method)?;
-        let pieces = Pieces {
-            logdet_z: part.logdet + dense.logdet_dense_z,
-            logdet_x: dense.logdet_x,
-            pwrss: dense.r2,
-        };
-        Some((dense, pieces))
     }
 
     /// `(ξᵀEξ, tr(inv_t E))` for a perturbation `E` of `S` given entry by entry.

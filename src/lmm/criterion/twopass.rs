@@ -16,7 +16,7 @@ use super::super::crossprod::CrossProducts;
 use super::super::{Method, unpack_factor};
 use super::gradient::{GradientEval, LevelSolver};
 use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
-use super::secondary::DenseSolve;
+use super::secondary::{DenseSolve, Levels};
 use super::{LogDet, factors, scaled_dense};
 
 /// Whether the two-pass gradient applies: a primary term of 1 to 4
@@ -27,14 +27,21 @@ pub fn applies(cp: &CrossProducts) -> bool {
 
 /// A level's non-zero columns of `Cᵢ = Z₁ᵢᵀ[Z₂Λ₂ X y]`, in increasing dense
 /// index: its secondary blocks (scaled by their θ), then X and y.
-fn gather<const Q: usize>(cp: &CrossProducts, i: usize, theta_s: &[f64], cols: &mut Vec<usize>, c: &mut Vec<[f64; Q]>) {
+fn gather<const Q: usize>(
+    cp: &CrossProducts,
+    i: usize,
+    theta_s: &[f64],
+    w: f64,
+    cols: &mut Vec<usize>,
+    c: &mut Vec<[f64; Q]>,
+) {
     let c1 = cp.p + 1;
     cols.clear();
     c.clear();
     let (lo, hi) = cp.link_ranges[i];
     for link in &cp.links[lo..hi] {
         let v = &cp.link_values[link.start..link.start + Q];
-        let th = theta_s[link.secondary];
+        let th = theta_s[link.secondary] * w;
         let mut col = [0.0; Q];
         for r in 0..Q {
             col[r] = v[r] * th;
@@ -46,7 +53,7 @@ fn gather<const Q: usize>(cp: &CrossProducts, i: usize, theta_s: &[f64], cols: &
     for j in 0..c1 {
         let mut col = [0.0; Q];
         for r in 0..Q {
-            col[r] = zi[r * c1 + j];
+            col[r] = w * zi[r * c1 + j];
         }
         if col.iter().any(|v| *v != 0.0) {
             cols.push(cp.q2_total + j);
@@ -56,19 +63,24 @@ fn gather<const Q: usize>(cp: &CrossProducts, i: usize, theta_s: &[f64], cols: &
 }
 
 /// The first pass's sums over a range of levels.
-struct First {
-    logdet: f64,
-    /// Per θ entry of the primary term, Σ ∂log|Aᵢ|.
-    dlog: Vec<f64>,
+pub(super) struct First {
+    pub logdet: f64,
+    /// Per group, per θ entry of its factor, Σ ∂log|Aᵢ|.
+    pub dlog: Vec<f64>,
     /// Σ BᵢᵀHᵢ, m×m, lower triangle.
-    bh: Vec<f64>,
+    pub bh: Vec<f64>,
+    /// Grouped levels only: per group, Σ (q − tr Aᵢ⁻¹).
+    pub tau: Vec<f64>,
 }
 
-/// The second pass's sums over a range of levels, per θ entry of the
-/// primary term: Σ (uₐ·ξ)(hᵦ·ξ) and Σ hᵦ·(N uₐ).
-struct Second {
-    quad: Vec<f64>,
-    trace: Vec<f64>,
+/// The second pass's sums over a range of levels, per group and θ entry of
+/// its factor: Σ (uₐ·ξ)(hᵦ·ξ) and Σ hᵦ·(N uₐ); for grouped levels also,
+/// per group, ξᵀEξ and tr(N E) of `E = Σ (BᵢᵀHᵢ + HᵢᵀHᵢ)`.
+pub(super) struct Second {
+    pub quad: Vec<f64>,
+    pub trace: Vec<f64>,
+    pub e_quad: Vec<f64>,
+    pub e_trace: Vec<f64>,
 }
 
 /// Sum per-range results in chunk order (in parallel above
@@ -96,23 +108,29 @@ fn over_levels<T: Send>(
 
 fn first<const Q: usize>(
     cp: &CrossProducts,
-    solver: &LevelSolver<Q>,
+    shared: &Levels<Q>,
     theta_s: &[f64],
     range: std::ops::Range<usize>,
 ) -> First {
     let m = cp.m;
-    let nt = solver.nt;
+    let nt = shared.solvers[0].nt;
+    let n_groups = shared.solvers.len();
+    let grouped = shared.group.is_some();
     let mut logdet = LogDet::new();
     let mut out = First {
         logdet: 0.0,
-        dlog: vec![0.0; nt],
+        dlog: vec![0.0; n_groups * nt],
         bh: vec![0.0; m * m],
+        tau: vec![0.0; if grouped { n_groups } else { 0 }],
     };
     let (mut cols, mut c) = (Vec::new(), Vec::new());
     let (mut b, mut h): (Vec<[f64; Q]>, Vec<[f64; Q]>) = (Vec::new(), Vec::new());
+    let mut gw = [0.0; 16];
     for i in range {
-        gather::<Q>(cp, i, theta_s, &mut cols, &mut c);
-        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let g = shared.group.map_or(0, |lg| lg[i] as usize);
+        let (solver, w) = (&shared.solvers[g], shared.weight[g]);
+        gather::<Q>(cp, i, theta_s, w, &mut cols, &mut c);
+        let gi = weighted_block::<Q>(cp, i, w, &mut gw);
         let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
         let nc = cols.len();
         b.resize(nc, [0.0; Q]);
@@ -120,7 +138,7 @@ fn first<const Q: usize>(
         for j in 0..nc {
             (b[j], h[j], _) = solver.column(&gt, &l, &inv, &c[j]);
         }
-        solver.add_dlog(&gt, &l, &inv, &mut out.dlog);
+        solver.add_dlog(&gt, &l, &inv, &mut out.dlog[g * nt..(g + 1) * nt]);
         for x in 0..nc {
             let row = &mut out.bh[cols[x] * m..(cols[x] + 1) * m];
             for y in 0..=x {
@@ -131,88 +149,149 @@ fn first<const Q: usize>(
                 row[cols[y]] += s;
             }
         }
+        if grouped {
+            let mut trace = 0.0;
+            for r in 0..Q {
+                let mut e = [0.0f64; Q];
+                e[r] = 1.0;
+                LevelSolver::<Q>::solve(&l, &inv, &mut e);
+                trace += e[r];
+            }
+            out.tau[g] += Q as f64 - trace;
+        }
     }
     out.logdet = logdet.total();
     out
 }
 
+/// Level i's block `Gᵢ` times `w` (the block itself when `w` is 1).
+#[inline]
+fn weighted_block<'a, const Q: usize>(cp: &'a CrossProducts, i: usize, w: f64, buf: &'a mut [f64; 16]) -> &'a [f64] {
+    let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+    if w == 1.0 {
+        return gi;
+    }
+    for (a, v) in buf.iter_mut().zip(gi) {
+        *a = w * v;
+    }
+    &buf[..Q * Q]
+}
+
 /// `n` is the inverse whose trace enters `∂ log|A₁|`, of order `nd`, row-major.
+#[allow(clippy::too_many_arguments)]
 fn second<const Q: usize>(
     cp: &CrossProducts,
-    solver: &LevelSolver<Q>,
+    shared: &Levels<Q>,
     theta_s: &[f64],
     xi: &[f64],
     n: &[f64],
     nd: usize,
     range: std::ops::Range<usize>,
 ) -> Second {
-    let nt = solver.nt;
+    let nt = shared.solvers[0].nt;
+    let n_groups = shared.solvers.len();
+    let grouped = shared.group.is_some();
+    let ng = if grouped { n_groups } else { 0 };
     let mut out = Second {
-        quad: vec![0.0; nt],
-        trace: vec![0.0; nt],
+        quad: vec![0.0; n_groups * nt],
+        trace: vec![0.0; n_groups * nt],
+        e_quad: vec![0.0; ng],
+        e_trace: vec![0.0; ng],
     };
     let mut discard = LogDet::new();
     let (mut cols, mut c) = (Vec::new(), Vec::new());
-    let (mut h, mut u): (Vec<[f64; Q]>, Vec<[f64; Q]>) = (Vec::new(), Vec::new());
+    let mut b: Vec<[f64; Q]> = Vec::new();
+    let mut h: Vec<[f64; Q]> = Vec::new();
+    let mut u: Vec<[f64; Q]> = Vec::new();
     let mut nu: Vec<[f64; Q]> = Vec::new();
+    let mut nbh: Vec<[f64; Q]> = Vec::new();
+    let mut gw = [0.0; 16];
     for i in range {
-        gather::<Q>(cp, i, theta_s, &mut cols, &mut c);
-        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let g = shared.group.map_or(0, |lg| lg[i] as usize);
+        let (solver, w) = (&shared.solvers[g], shared.weight[g]);
+        gather::<Q>(cp, i, theta_s, w, &mut cols, &mut c);
+        let gi = weighted_block::<Q>(cp, i, w, &mut gw);
         let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut discard);
         let nc = cols.len();
+        b.resize(nc, [0.0; Q]);
         h.resize(nc, [0.0; Q]);
         u.resize(nc, [0.0; Q]);
-        let (mut ux, mut hx) = ([0.0f64; Q], [0.0f64; Q]);
+        let (mut ux, mut hx, mut bx) = ([0.0f64; Q], [0.0f64; Q], [0.0f64; Q]);
         for j in 0..nc {
-            (_, h[j], u[j]) = solver.column(&gt, &l, &inv, &c[j]);
+            (b[j], h[j], u[j]) = solver.column(&gt, &l, &inv, &c[j]);
             let v = xi[cols[j]];
             for r in 0..Q {
                 ux[r] += u[j][r] * v;
                 hx[r] += h[j][r] * v;
+                bx[r] += b[j][r] * v;
             }
         }
         // The columns inside the trace's block come first (increasing index).
         let nct = cols.iter().take_while(|&&cj| cj < nd).count();
         nu.clear();
         nu.resize(nct, [0.0; Q]);
+        nbh.clear();
+        nbh.resize(if grouped { nct } else { 0 }, [0.0; Q]);
         for y in 0..nct {
             let row = &n[cols[y] * nd..(cols[y] + 1) * nd];
             let mut acc = [0.0f64; Q];
+            let mut acc_e = [0.0f64; Q];
             for x in 0..nct {
-                let w = row[cols[x]];
+                let v = row[cols[x]];
                 for a in 0..Q {
-                    acc[a] += w * u[x][a];
+                    acc[a] += v * u[x][a];
+                }
+                if grouped {
+                    for a in 0..Q {
+                        acc_e[a] += v * (b[x][a] + h[x][a]);
+                    }
                 }
             }
             nu[y] = acc;
+            if grouped {
+                nbh[y] = acc_e;
+            }
         }
         for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
-            out.quad[k] += ux[ia] * hx[ib];
+            out.quad[g * nt + k] += ux[ia] * hx[ib];
             let mut t = 0.0;
             for y in 0..nct {
                 t += h[y][ib] * nu[y][ia];
             }
-            out.trace[k] += t;
+            out.trace[g * nt + k] += t;
+        }
+        if grouped {
+            let mut eq = 0.0;
+            let mut et = 0.0;
+            for r in 0..Q {
+                eq += (bx[r] + hx[r]) * hx[r];
+                for y in 0..nct {
+                    et += h[y][r] * nbh[y][r];
+                }
+            }
+            out.e_quad[g] += eq;
+            out.e_trace[g] += et;
         }
     }
     out
 }
 
-fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
-    let (m, p, q2) = (cp.m, cp.p, cp.q2_total);
-    let k1 = cp.primary?;
-    let nt = Q * (Q + 1) / 2;
-    let off = cp.theta_offset[k1];
-    let t = unpack_factor(&theta[off..off + nt], Q);
-    let all = factors(cp, theta);
-    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
-    let solver = LevelSolver::<Q>::new(&t);
-    let part = over_levels(cp, &|range| first::<Q>(cp, &solver, &theta_s, range), |a, b| {
+/// Both passes for `shared` over every level: the first pass's sums, the
+/// dense solve of `s − Σ BᵢᵀHᵢ` (`s` the scaled dense part) with its pieces,
+/// and the second pass's sums.
+pub(super) fn passes<const Q: usize>(
+    cp: &CrossProducts,
+    shared: &Levels<Q>,
+    theta_s: &[f64],
+    mut s: Vec<f64>,
+    method: Method,
+) -> Option<(First, DenseSolve, super::Pieces, Second)> {
+    let part = over_levels(cp, &|range| first::<Q>(cp, shared, theta_s, range), |a, b| {
         a.logdet += b.logdet;
         a.dlog.iter_mut().zip(&b.dlog).for_each(|(x, y)| *x += y);
         a.bh.iter_mut().zip(&b.bh).for_each(|(x, y)| *x += y);
+        a.tau.iter_mut().zip(&b.tau).for_each(|(x, y)| *x += y);
     });
-    let mut s = scaled_dense(cp, &all);
     for (v, d) in s.iter_mut().zip(&part.bh) {
         *v -= d;
     }
@@ -226,12 +305,35 @@ fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -
     let n: Vec<f64> = (0..nd * nd).map(|k| dense.inv_t[(k / nd, k % nd)]).collect();
     let sums = over_levels(
         cp,
-        &|range| second::<Q>(cp, &solver, &theta_s, &dense.xi, &n, nd, range),
+        &|range| second::<Q>(cp, shared, theta_s, &dense.xi, &n, nd, range),
         |a, b| {
-            a.quad.iter_mut().zip(&b.quad).for_each(|(x, y)| *x += y);
-            a.trace.iter_mut().zip(&b.trace).for_each(|(x, y)| *x += y);
+            for (x, y) in [
+                (&mut a.quad, &b.quad),
+                (&mut a.trace, &b.trace),
+                (&mut a.e_quad, &b.e_quad),
+                (&mut a.e_trace, &b.e_trace),
+            ] {
+                x.iter_mut().zip(y).for_each(|(p, q)| *p += q);
+            }
         },
     );
+    Some((part, dense, pieces, sums))
+}
+
+fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+    let (p, q2) = (cp.p, cp.q2_total);
+    let k1 = cp.primary?;
+    let nt = Q * (Q + 1) / 2;
+    let off = cp.theta_offset[k1];
+    let t = unpack_factor(&theta[off..off + nt], Q);
+    let all = factors(cp, theta);
+    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
+    let shared = Levels::<Q> {
+        solvers: vec![LevelSolver::<Q>::new(&t)],
+        group: None,
+        weight: vec![1.0],
+    };
+    let (part, dense, pieces, sums) = passes(cp, &shared, &theta_s, scaled_dense(cp, &all), method)?;
     let mut a_grad = vec![0.0; theta.len()];
     let mut r2_grad = vec![0.0; theta.len()];
     for k in 0..nt {
@@ -244,7 +346,6 @@ fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -
         .map(|k| a_grad[k] + dense.nu * r2_grad[k] / dense.r2)
         .collect();
     let inv1 = &dense.inv1;
-    debug_assert_eq!(inv1.nrows(), m - 1);
     Some(GradientEval {
         deviance: pieces.profiled_deviance(method, cp.n, p),
         grad,
