@@ -423,14 +423,47 @@ fn forward_inverse_hessian(gf: &GradientFn<'_>, x: &[f64], g: &[f64], evals: &mu
             hm[j * d + i] = v;
         }
     }
+    inverse_of(&hm, d).or_else(|| modified_inverse(&hm, d))
+}
+
+/// The inverse of the symmetric `hm` (d×d) when it is positive definite.
+fn inverse_of(hm: &[f64], d: usize) -> Option<Vec<f64>> {
     // Invert column by column through Newton directions of unit vectors.
     let mut inv = vec![0.0; d * d];
     for j in 0..d {
         let mut e = vec![0.0; d];
         e[j] = -1.0;
-        let col = newton_direction(&hm, &e)?;
+        let col = newton_direction(hm, &e)?;
         for i in 0..d {
             inv[i * d + j] = col[i];
+        }
+    }
+    inv.iter().all(|v| v.is_finite()).then_some(inv)
+}
+
+/// The smallest eigenvalue kept by [`modified_inverse`], relative to the
+/// largest in absolute value (common practice for a modified Newton start).
+const EIGEN_FLOOR: f64 = 1e-6;
+
+/// An inverse of the symmetric `hm` with each eigenvalue replaced by its
+/// absolute value, floored at [`EIGEN_FLOOR`] of the largest: a positive
+/// definite start for the quasi-Newton updates where differences of
+/// gradients are indefinite (far from the optimum, or along a flat
+/// direction), on the scale of the curvature in every other direction.
+fn modified_inverse(hm: &[f64], d: usize) -> Option<Vec<f64>> {
+    use faer::{Mat, Side};
+    let m = Mat::from_fn(d, d, |i, j| hm[i * d + j]);
+    let eig = m.self_adjoint_eigen(Side::Lower).ok()?;
+    let (u, s) = (eig.U(), eig.S().column_vector());
+    let largest = (0..d).map(|k| s[k].abs()).fold(0.0, f64::max);
+    if !(largest.is_finite() && largest > 0.0) {
+        return None;
+    }
+    let lam: Vec<f64> = (0..d).map(|k| s[k].abs().max(EIGEN_FLOOR * largest)).collect();
+    let mut inv = vec![0.0; d * d];
+    for i in 0..d {
+        for j in 0..d {
+            inv[i * d + j] = (0..d).map(|k| u[(i, k)] * u[(j, k)] / lam[k]).sum();
         }
     }
     inv.iter().all(|v| v.is_finite()).then_some(inv)
@@ -459,6 +492,19 @@ fn bfgs_update(h: &mut [f64], s: &[f64], y: &[f64], sy: f64) {
 
 #[cfg(test)]
 mod tests {
+    // An indefinite Hessian: [[1, 2], [2, 1]] has eigenvalues 3 and −1, so
+    // the modified matrix is [[2, 1], [1, 2]] and its inverse
+    // [[2, −1], [−1, 2]]/3 (closed form).
+    #[test]
+    fn modified_inverse_takes_absolute_eigenvalues() {
+        let inv = modified_inverse(&[1.0, 2.0, 2.0, 1.0], 2).unwrap();
+        let want = [2.0 / 3.0, -1.0 / 3.0, -1.0 / 3.0, 2.0 / 3.0];
+        for (a, b) in inv.iter().zip(want) {
+            assert!((a - b).abs() < 1e-14, "{inv:?}");
+        }
+        assert!(inverse_of(&[1.0, 2.0, 2.0, 1.0], 2).is_none());
+    }
+
     use super::*;
 
     // Closed form: the minimiser of a convex quadratic with a bound.
