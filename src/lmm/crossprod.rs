@@ -93,9 +93,14 @@ pub struct Pools {
 pub const POOL_MAX: usize = 64;
 
 impl Pools {
-    /// Pool `n1` levels of one coefficient (`g[i]` = γ, `zxy` their rows of
-    /// width `c1`); `None` when γ takes more than [`POOL_MAX`] values.
-    fn gather(g: &[f64], zxy: &[f64], c1: usize) -> Option<Pools> {
+    /// The pools of `cp`'s primary levels when it has one coefficient, no
+    /// other random term and no row groups; `None` otherwise or when γ takes
+    /// more than [`POOL_MAX`] values.
+    fn of(cp: &CrossProducts) -> Option<Pools> {
+        if cp.primary.is_none() || cp.q1 != 1 || !cp.secondary.is_empty() || !cp.dense_groups.is_empty() {
+            return None;
+        }
+        let (g, zxy, c1) = (&cp.g, &cp.zxy, cp.p + 1);
         let mut gamma: Vec<f64> = Vec::new();
         let mut pool_of = Vec::with_capacity(g.len());
         for &v in g {
@@ -282,13 +287,8 @@ impl CrossProducts {
                 dense.iter_mut().zip(d).for_each(|(a, b)| *a += b);
             }
         }
-        let pools = if primary.is_some() && q1 == 1 && secondary.is_empty() && groups.is_none() {
-            Pools::gather(&g, &zxy, p + 1)
-        } else {
-            None
-        };
-        CrossProducts {
-            pools,
+        let mut cp = CrossProducts {
+            pools: None,
             n,
             p,
             primary,
@@ -309,7 +309,9 @@ impl CrossProducts {
             intercept,
             y_shift,
             dense_groups,
-        }
+        };
+        cp.pools = Pools::of(&cp);
+        cp
     }
 }
 

@@ -126,6 +126,17 @@ pub struct VarianceSensitivity {
     pub dcov: Vec<Vec<f64>>,
 }
 
+impl VarianceSensitivity {
+    /// No sensitivity (NaN throughout), for `k` variance parameters and
+    /// `p` fixed effects.
+    pub fn unknown(k: usize, p: usize) -> VarianceSensitivity {
+        VarianceSensitivity {
+            acov: vec![f64::NAN; k * k],
+            dcov: vec![vec![f64::NAN; p * p]; k],
+        }
+    }
+}
+
 /// A fitted linear mixed model.
 #[derive(Debug, Clone)]
 pub struct Fit {
@@ -448,25 +459,17 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     // The likelihood alone takes its curvature from the finish's last
     // stencil, taken next to the optimum, rather than a new one.
     let kept = last_stencil.take().filter(|st| !full || st.serves(&theta, &free));
-    let (mut sensitivity, curvature) = if lean {
-        let k = free.len() + 1;
-        let nan = VarianceSensitivity {
-            acov: vec![f64::NAN; k * k],
-            dcov: vec![vec![f64::NAN; p * p]; k],
-        };
-        ((nan, 0), None)
+    let (sensitivity, curvature) = if lean {
+        ((VarianceSensitivity::unknown(free.len() + 1, p), 0), None)
     } else {
         sensitivity(&cp, &theta, &theta_scale, &free, method, sigma2, kept)
     };
     evaluations += sensitivity.1;
-    if !full {
-        sensitivity.0.acov.iter_mut().for_each(|v| *v = f64::NAN);
-        sensitivity
-            .0
-            .dcov
-            .iter_mut()
-            .for_each(|d| d.iter_mut().for_each(|v| *v = f64::NAN));
-    }
+    let sensitivity = if full {
+        sensitivity.0
+    } else {
+        VarianceSensitivity::unknown(free.len() + 1, p)
+    };
     let min_curvature = curvature;
     let (converged, messages) = verdict(polished.decrement, polished.gradient_norm, min_curvature, &boundary);
     let n_params = p + theta.len() + 1;
@@ -499,7 +502,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
             restarts,
             messages,
         },
-        sensitivity: sensitivity.0,
+        sensitivity,
     })
 }
 

@@ -262,11 +262,7 @@ pub(super) fn sensitivity(
         None => piece_derivatives(cp, theta, free, &h, method, sigma2, &mut evals),
     };
     let Some(derivs) = derivs else {
-        let nan = VarianceSensitivity {
-            acov: vec![f64::NAN; k * k],
-            dcov: vec![vec![f64::NAN; p * p]; k],
-        };
-        return ((nan, evals), None);
+        return ((VarianceSensitivity::unknown(k, p), evals), None);
     };
     let PieceDerivatives {
         c0,

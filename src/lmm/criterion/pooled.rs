@@ -34,7 +34,7 @@ pub(super) fn subtract(pools: &Pools, t: f64, e: &mut [f64], m: usize) -> f64 {
 
 /// The deviance with its gradient in the primary term's single θ entry.
 pub(super) fn gradient_eval(cp: &CrossProducts, pools: &Pools, theta: &[f64], method: Method) -> Option<GradientEval> {
-    let (m, p) = (cp.m, cp.p);
+    let m = cp.m;
     let k1 = cp.primary?;
     let off = cp.theta_offset[k1];
     let t = theta[off];
@@ -74,17 +74,7 @@ pub(super) fn gradient_eval(cp: &CrossProducts, pools: &Pools, theta: &[f64], me
     let mut r2_grad = vec![0.0; theta.len()];
     a_grad[off] = dlog + dtr;
     r2_grad[off] = dr2;
-    let grad = (0..theta.len())
-        .map(|k| a_grad[k] + dense.nu * r2_grad[k] / dense.r2)
-        .collect();
-    let inv1 = &dense.inv1;
-    Some(GradientEval {
-        deviance: pieces.profiled_deviance(method, cp.n, p),
-        grad,
-        a_grad,
-        r2_grad,
-        sxx_inv: (0..p * p).map(|k| inv1[(k / p, k % p)]).collect(),
-    })
+    Some(dense.gradient_eval(cp, &pieces, method, a_grad, r2_grad))
 }
 
 #[cfg(test)]

@@ -26,7 +26,8 @@ use faer::{Mat, Side};
 
 use super::super::Method;
 use super::super::crossprod::CrossProducts;
-use super::gradient::LevelSolver;
+use super::Pieces;
+use super::gradient::{GradientEval, LevelSolver};
 
 /// How the primary levels' factors are shared: one factor for all, or a
 /// factor and a weight per group of levels (the grouped fit, whose level
@@ -103,6 +104,31 @@ impl DenseSolve {
             nt_dim,
             nu,
         })
+    }
+
+    /// The deviance and its gradient from the pieces and the gradients of
+    /// A(θ) and r²(θ), with `S_XX⁻¹` from this solve.
+    pub fn gradient_eval(
+        &self,
+        cp: &CrossProducts,
+        pieces: &Pieces,
+        method: Method,
+        a_grad: Vec<f64>,
+        r2_grad: Vec<f64>,
+    ) -> GradientEval {
+        let (p, q2) = (cp.p, cp.q2_total);
+        let grad = a_grad
+            .iter()
+            .zip(&r2_grad)
+            .map(|(a, r)| a + self.nu * r / self.r2)
+            .collect();
+        GradientEval {
+            deviance: pieces.profiled_deviance(method, cp.n, p),
+            grad,
+            a_grad,
+            r2_grad,
+            sxx_inv: (0..p * p).map(|k| self.inv1[(q2 + k / p, q2 + k % p)]).collect(),
+        }
     }
 
     /// `(ξᵀEξ, tr(inv_t E))` for a perturbation `E` of `S` given entry by entry.

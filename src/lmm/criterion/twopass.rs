@@ -125,13 +125,8 @@ fn first<const Q: usize>(
     };
     let (mut cols, mut c) = (Vec::new(), Vec::new());
     let (mut b, mut h): (Vec<[f64; Q]>, Vec<[f64; Q]>) = (Vec::new(), Vec::new());
-    let mut gw = [0.0; 16];
     for i in range {
-        let g = shared.group.map_or(0, |lg| lg[i] as usize);
-        let (solver, w) = (&shared.solvers[g], shared.weight[g]);
-        gather::<Q>(cp, i, theta_s, w, &mut cols, &mut c);
-        let gi = weighted_block::<Q>(cp, i, w, &mut gw);
-        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
+        let (g, solver, (gt, l, inv)) = open_level(cp, shared, theta_s, i, &mut cols, &mut c, &mut logdet);
         let nc = cols.len();
         b.resize(nc, [0.0; Q]);
         h.resize(nc, [0.0; Q]);
@@ -164,17 +159,34 @@ fn first<const Q: usize>(
     out
 }
 
-/// Level i's block `Gᵢ` times `w` (the block itself when `w` is 1).
+/// Level i's group, its solver and its factored block `Aᵢ` (with its
+/// log-determinant added to `logdet`), its non-zero columns gathered into
+/// `cols` and `c`, all weighted by its group's weight.
 #[inline]
-fn weighted_block<'a, const Q: usize>(cp: &'a CrossProducts, i: usize, w: f64, buf: &'a mut [f64; 16]) -> &'a [f64] {
+#[allow(clippy::type_complexity)]
+fn open_level<'s, const Q: usize>(
+    cp: &CrossProducts,
+    shared: &'s Levels<Q>,
+    theta_s: &[f64],
+    i: usize,
+    cols: &mut Vec<usize>,
+    c: &mut Vec<[f64; Q]>,
+    logdet: &mut LogDet,
+) -> (usize, &'s LevelSolver<Q>, ([[f64; Q]; Q], [[f64; Q]; Q], [f64; Q])) {
+    let g = shared.group.map_or(0, |lg| lg[i] as usize);
+    let (solver, w) = (&shared.solvers[g], shared.weight[g]);
+    gather::<Q>(cp, i, theta_s, w, cols, c);
     let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-    if w == 1.0 {
-        return gi;
-    }
-    for (a, v) in buf.iter_mut().zip(gi) {
-        *a = w * v;
-    }
-    &buf[..Q * Q]
+    let block = if w == 1.0 {
+        level_block::<Q>(gi, &solver.tq, logdet)
+    } else {
+        let mut gw = [0.0; 16];
+        for (a, v) in gw.iter_mut().zip(gi) {
+            *a = w * v;
+        }
+        level_block::<Q>(&gw[..Q * Q], &solver.tq, logdet)
+    };
+    (g, solver, block)
 }
 
 /// `n` is the inverse whose trace enters `∂ log|A₁|`, of order `nd`, row-major.
@@ -205,13 +217,8 @@ fn second<const Q: usize>(
     let mut u: Vec<[f64; Q]> = Vec::new();
     let mut nu: Vec<[f64; Q]> = Vec::new();
     let mut nbh: Vec<[f64; Q]> = Vec::new();
-    let mut gw = [0.0; 16];
     for i in range {
-        let g = shared.group.map_or(0, |lg| lg[i] as usize);
-        let (solver, w) = (&shared.solvers[g], shared.weight[g]);
-        gather::<Q>(cp, i, theta_s, w, &mut cols, &mut c);
-        let gi = weighted_block::<Q>(cp, i, w, &mut gw);
-        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut discard);
+        let (g, solver, (gt, l, inv)) = open_level(cp, shared, theta_s, i, &mut cols, &mut c, &mut discard);
         let nc = cols.len();
         b.resize(nc, [0.0; Q]);
         h.resize(nc, [0.0; Q]);
@@ -321,7 +328,6 @@ pub(super) fn passes<const Q: usize>(
 }
 
 fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
-    let (p, q2) = (cp.p, cp.q2_total);
     let k1 = cp.primary?;
     let nt = Q * (Q + 1) / 2;
     let off = cp.theta_offset[k1];
@@ -342,17 +348,7 @@ fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -
         r2_grad[off + k] = -2.0 * sums.quad[k];
     }
     dense.secondary_derivatives(cp, &theta_s, &mut a_grad, &mut r2_grad);
-    let grad = (0..theta.len())
-        .map(|k| a_grad[k] + dense.nu * r2_grad[k] / dense.r2)
-        .collect();
-    let inv1 = &dense.inv1;
-    Some(GradientEval {
-        deviance: pieces.profiled_deviance(method, cp.n, p),
-        grad,
-        a_grad,
-        r2_grad,
-        sxx_inv: (0..p * p).map(|k| inv1[(q2 + k / p, q2 + k % p)]).collect(),
-    })
+    Some(dense.gradient_eval(cp, &pieces, method, a_grad, r2_grad))
 }
 
 /// The deviance, its gradient and its pieces in two passes; `None` when
