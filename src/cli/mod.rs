@@ -20,8 +20,25 @@ use args::{Cli, Command, DemoArgs};
 use config::{DataSection, Source, Study};
 use emit::Emitter;
 
+/// Keep freed memory in the process for reuse instead of returning it to the
+/// system at once. Each fit allocates, fills and frees buffers of tens of
+/// megabytes on a million rows; returned and taken back, every page of them
+/// is faulted in and zeroed again (notes/decisions.md, "libc"; measured in
+/// notes/benchmarks.md, ninth session). Large blocks then come from the
+/// heap, not separate mappings, and the heap is not trimmed.
+fn keep_freed_memory() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: mallopt only sets the allocator's tuning parameters; it is
+    // called once, before any other thread exists.
+    unsafe {
+        libc::mallopt(libc::M_MMAP_MAX, 0);
+        libc::mallopt(libc::M_TRIM_THRESHOLD, i32::MAX);
+    }
+}
+
 /// Parse the process arguments and run; returns the exit code.
 pub fn main_exit_code() -> i32 {
+    keep_freed_memory();
     quiet_decoder_panics();
     let cli = match Cli::try_parse() {
         Ok(c) => c,

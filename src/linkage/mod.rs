@@ -219,28 +219,38 @@ fn smallest_cohort(code: &[u32], n_participants: usize, k_of: &[usize], n_cohort
 }
 
 fn fit_with(problem: &MixedProblem, method: Method) -> Result<Fit> {
-    lmm::fit(
-        problem,
-        FitOptions {
-            method,
-            ..Default::default()
-        },
-    )
+    fit_near(problem, method, lmm::Detail::Full, None)
 }
 
-/// A fit that only feeds a likelihood-ratio test ([`lmm::Detail::Likelihood`]),
-/// started from a nearby model's θ when one is given (each ML model of the
-/// sequence nests in the next, so the previous optimum is a close start).
-fn fit_lean(problem: &MixedProblem, method: Method, start: Option<&[f64]>) -> Result<Fit> {
+/// A fit started from a nearby model's θ when one is given: each ML model
+/// of the sequence nests in the next, and a REML fit starts from the same
+/// model's ML optimum, so the start is close (notes/criterion.md, "Warm
+/// starts"). `detail` is [`lmm::Detail::Likelihood`] for a fit that only
+/// feeds a likelihood-ratio test.
+fn fit_near(problem: &MixedProblem, method: Method, detail: lmm::Detail, start: Option<&[f64]>) -> Result<Fit> {
     let options = FitOptions {
         method,
-        detail: lmm::Detail::Likelihood,
+        detail,
         ..Default::default()
     };
     match start {
         Some(s) => lmm::fit_from(problem, options, s),
         None => lmm::fit(problem, options),
     }
+}
+
+/// The options of a fit that only feeds a likelihood-ratio test.
+fn lean(method: Method) -> FitOptions {
+    FitOptions {
+        method,
+        detail: lmm::Detail::Likelihood,
+        ..Default::default()
+    }
+}
+
+/// A fit that only feeds a likelihood-ratio test ([`lmm::Detail::Likelihood`]).
+fn fit_lean(problem: &MixedProblem, method: Method, start: Option<&[f64]>) -> Result<Fit> {
+    fit_near(problem, method, lmm::Detail::Likelihood, start)
 }
 
 /// The cohorts in order of their youngest age, the overlaps that link
@@ -296,7 +306,8 @@ impl Linkage {
 }
 
 /// The first step of the sequence, shared by [`converge`] and
-/// [`level_test`]: the linked cohorts, M0's frame and the ML fits of M0 and M1.
+/// [`level_test`]: the linked cohorts, M0's frame and the ML fits of M0 and
+/// M1, and M0 by REML when asked for (from the same cross-products).
 struct LevelPair {
     linkage: Linkage,
     k_of: Vec<usize>,
@@ -305,10 +316,11 @@ struct LevelPair {
     columns: columns::CohortColumns,
     m0: Fit,
     m1: Fit,
+    m0_reml: Option<Fit>,
 }
 
 impl LevelPair {
-    fn fit(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> Result<LevelPair> {
+    fn fit(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions, with_reml: bool) -> Result<LevelPair> {
         options.validate()?;
         let linkage = Linkage::find(panel, options)?;
         let k_of: Vec<usize> = linkage
@@ -328,7 +340,14 @@ impl LevelPair {
         let frame = spec::build_frame(panel, &spec0)?;
         let columns = columns::CohortColumns::new(&frame, &linkage.cohorts, &k_of);
         let p1 = with_columns(&frame.problem, &columns.level_names, &columns.level_cols);
-        let m0 = fit_lean(&frame.problem, Method::Ml, None)?;
+        let prepared = lmm::Prepared::new(&frame.problem)?;
+        let m0 = prepared.fit(lean(Method::Ml), None)?;
+        // M0 by REML feeds the random-slope test (its likelihood) and the
+        // retest check (its age slope): no BLUPs or sensitivity needed.
+        let m0_reml = with_reml
+            .then(|| prepared.fit(lean(Method::Reml), Some(&m0.theta)))
+            .transpose()?;
+        drop(prepared);
         let m1 = fit_lean(&p1, Method::Ml, Some(&m0.theta))?;
         Ok(LevelPair {
             linkage,
@@ -338,6 +357,7 @@ impl LevelPair {
             columns,
             m0,
             m1,
+            m0_reml,
         })
     }
 
@@ -362,7 +382,7 @@ impl LevelPair {
 /// # Errors
 /// As [`converge`].
 pub fn level_test(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> Result<TestResult> {
-    Ok(LevelPair::fit(panel, model, options)?.test())
+    Ok(LevelPair::fit(panel, model, options, false)?.test())
 }
 
 /// Run the convergence analysis.
@@ -371,7 +391,7 @@ pub fn level_test(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -
 /// [`Error::Data`] with fewer than two cohorts, or no overlap between any
 /// neighbours; errors of the model frame and the fits.
 pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> Result<ConvergeReport> {
-    let pair = LevelPair::fit(panel, model, options)?;
+    let pair = LevelPair::fit(panel, model, options, true)?;
     let level = pair.test();
     let LevelPair {
         linkage:
@@ -387,12 +407,15 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         columns,
         m0,
         m1,
+        m0_reml,
     } = pair;
     let nb = frame.basis.n_columns();
     let p0 = frame.problem.p();
     let p2 = columns.full_problem(&frame.problem);
-    let m2 = fit_lean(&p2, Method::Ml, Some(&m1.theta))?;
-    let m2r = fit_with(&p2, Method::Reml)?;
+    let prepared = lmm::Prepared::new(&p2)?;
+    let m2 = prepared.fit(lean(Method::Ml), Some(&m1.theta))?;
+    let m2r = prepared.fit(FitOptions::default(), Some(&m2.theta))?;
+    drop(prepared);
     let kc = cohorts.len() - 1;
     let mut models = vec![
         summary("M0", "one common trajectory", &m0),
@@ -457,9 +480,10 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
         }
         Err(why) => notes.push(format!("M3 not fitted: {why}")),
     }
-    // M0 by REML feeds the random-slope test (its likelihood) and the
-    // retest check (its age slope): no BLUPs or sensitivity needed.
-    let m0r = fit_lean(&frame.problem, Method::Reml, None)?;
+    let m0r = m0_reml.ok_or_else(|| Error::Numerical {
+        step: "convergence".into(),
+        message: "M0 by REML is missing; please report this".into(),
+    })?;
     if let Some(t) = variance::random_slope_test(&frame.problem, &m0r)? {
         tests.push(t);
     }
@@ -468,7 +492,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
             notes.push("a fit of the sequence did not reach a certified minimum; read its test with care".to_string());
         }
     }
-    let between_within = slopes::between_within(panel, &frame, &spec0, &mut notes);
+    let between_within = slopes::between_within(panel, &frame, &spec0, &m0r.theta, &mut notes);
     let retest = options
         .retest
         .map(|f| retest::check_with(panel, &frame, &m0r, f))

@@ -4,7 +4,7 @@
 use serde::Serialize;
 
 use super::columns::with_columns;
-use super::fit_with;
+use super::fit_near;
 use crate::data::Panel;
 use crate::infer;
 use crate::lmm::Method;
@@ -37,6 +37,7 @@ pub(super) fn between_within(
     panel: &Panel,
     frame: &ModelFrame,
     spec0: &ModelSpec,
+    start: &[f64],
     notes: &mut Vec<String>,
 ) -> Option<BetweenWithin> {
     if !matches!(spec0.age, AgeSpec::Polynomial { .. }) {
@@ -58,7 +59,8 @@ pub(super) fn between_within(
     }
     problem.x_names[1] = "baseline age".into();
     let problem = with_columns(&problem, &["time since baseline".to_string()], &[within]);
-    let fit = match fit_with(&problem, Method::Reml) {
+    // The random terms are M0's: its REML θ is a close start.
+    let fit = match fit_near(&problem, Method::Reml, crate::lmm::Detail::Full, Some(start)) {
         Ok(f) => f,
         Err(e) => {
             notes.push(format!("the between/within fit failed: {e}"));

@@ -215,11 +215,7 @@ fn theta_names(problem: &MixedProblem) -> Vec<String> {
 /// [`Error::Numerical`] when the fixed design is rank deficient (naming the
 /// first collinear column) or the criterion cannot be evaluated at the start.
 pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
-    // The search runs on a worker of the thread pool, so that each parallel
-    // evaluation splits its levels with the other worker directly instead of
-    // being handed over from the main thread (measured: about 4% of a
-    // 3,000-participant run).
-    rayon::scope(|_| fit_on_worker(problem, options, None))
+    Prepared::new(problem)?.fit(options, None)
 }
 
 /// [`fit`] with `start` (a θ of this problem, from the fit of a nearby
@@ -229,7 +225,52 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
 /// # Errors
 /// As [`fit`].
 pub fn fit_from(problem: &MixedProblem, options: FitOptions, start: &[f64]) -> Result<Fit> {
-    rayon::scope(|_| fit_on_worker(problem, options, Some(start)))
+    Prepared::new(problem)?.fit(options, Some(start))
+}
+
+/// A problem with its cross-products gathered once, for several fits of the
+/// same design: by ML and by REML, or for a likelihood-ratio test and then
+/// in full. The pass over the rows is the one part of a fit whose cost grows
+/// with the rows (notes/criterion.md, "Warm starts and shared
+/// cross-products").
+pub struct Prepared<'a> {
+    problem: &'a MixedProblem,
+    cp: CrossProducts,
+}
+
+impl<'a> Prepared<'a> {
+    /// Check the problem's shape and gather its cross-products.
+    ///
+    /// # Errors
+    /// [`Error::Spec`] when there are no more rows than fixed effects, or the
+    /// terms beside the largest one would make the dense part too large.
+    pub fn new(problem: &'a MixedProblem) -> Result<Prepared<'a>> {
+        let (n, p) = (problem.n(), problem.p());
+        if n <= p {
+            return Err(Error::Spec {
+                parameter: "model".into(),
+                message: format!("{n} usable rows for {p} fixed effects; simplify the model or supply more data"),
+            });
+        }
+        check_dense_order(problem)?;
+        Ok(Prepared {
+            problem,
+            cp: CrossProducts::new(problem),
+        })
+    }
+
+    /// Fit the problem, with `start` among the start candidates as in
+    /// [`fit_from`].
+    ///
+    /// # Errors
+    /// As [`fit`].
+    pub fn fit(&self, options: FitOptions, start: Option<&[f64]>) -> Result<Fit> {
+        // The search runs on a worker of the thread pool, so that each
+        // parallel evaluation splits its levels with the other worker
+        // directly instead of being handed over from the main thread
+        // (measured: about 4% of a 3,000-participant run).
+        rayon::scope(|_| fit_on_worker(self.problem, &self.cp, options, start))
+    }
 }
 
 /// The largest dense part braid builds: 4,000 × 4,000 doubles are 128 MB a
@@ -355,25 +396,22 @@ fn verdict(
     (converged, messages)
 }
 
-fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f64]>) -> Result<Fit> {
+fn fit_on_worker(
+    problem: &MixedProblem,
+    cp: &CrossProducts,
+    options: FitOptions,
+    given: Option<&[f64]>,
+) -> Result<Fit> {
     let n = problem.n();
     let p = problem.p();
-    if n <= p {
-        return Err(Error::Spec {
-            parameter: "model".into(),
-            message: format!("{n} usable rows for {p} fixed effects; simplify the model or supply more data"),
-        });
-    }
-    check_dense_order(problem)?;
     let method = options.method;
-    let cp = CrossProducts::new(problem);
     let lower = problem.theta_lower();
     let names = theta_names(problem);
-    let dev = |th: &[f64]| criterion::deviance(&cp, th, method);
+    let dev = |th: &[f64]| criterion::deviance(cp, th, method);
 
-    check_fixed_rank(problem, &cp)?;
+    check_fixed_rank(problem, cp)?;
     let base = base_start(problem);
-    let start = best_start(problem, &cp, &base, given, &dev)?;
+    let start = best_start(problem, cp, &base, given, &dev)?;
     // The search runs on θ divided by a scale per entry (a diagonal entry's
     // start value, shared by the off-diagonal entries of its row), so that all
     // coordinates are of order one whatever the units of the slope variables.
@@ -389,10 +427,10 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     // The analytic gradient in the scaled coordinates, when the model has one.
     let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
         let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
-        criterion::deviance_gradient(&cp, &th, method)
+        criterion::deviance_gradient(cp, &th, method)
             .map(|(d, g)| (d, g.iter().zip(&theta_scale).map(|(a, s)| a * s).collect()))
     };
-    let grad: optimize::Gradient = if criterion::has_gradient(&cp) {
+    let grad: optimize::Gradient = if criterion::has_gradient(cp) {
         Some(&sgrad)
     } else {
         None
@@ -405,7 +443,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
         let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
         let h = stencil_steps(&th, &theta_scale, free);
         let mut evals = 0;
-        let st = Stencil::new(&cp, &th, free, &h, method, &mut evals)?;
+        let st = Stencil::new(cp, &th, free, &h, method, &mut evals)?;
         let out = st.scaled_gradient_hessian(&theta_scale);
         *last_stencil.borrow_mut() = Some(st);
         Some(out)
@@ -414,8 +452,8 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     // A likelihood-only fit with an analytic gradient stops its quasi-Newton
     // search on the decrement and skips the Newton finish (notes/criterion.md,
     // "Likelihood-only fits").
-    let lean = !full && criterion::has_gradient(&cp);
-    let hess_at: optimize::HessianAt = if criterion::has_gradient(&cp) && !lean {
+    let lean = !full && criterion::has_gradient(cp);
+    let hess_at: optimize::HessianAt = if criterion::has_gradient(cp) && !lean {
         Some(&shess)
     } else {
         None
@@ -434,7 +472,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     let restarts = searched.2;
     let theta: Vec<f64> = current.theta.iter().zip(&theta_scale).map(|(x, s)| x * s).collect();
     let polished = current.polished;
-    let factor = criterion::evaluate(&cp, &theta, true).map_err(|_| Error::Numerical {
+    let factor = criterion::evaluate(cp, &theta, true).map_err(|_| Error::Numerical {
         step: "final evaluation".into(),
         message: "the criterion failed at the optimum; please report this with the data shape".into(),
     })?;
@@ -446,15 +484,15 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     let free: Vec<usize> = (0..theta.len()).filter(|i| !boundary_idx.contains(i)).collect();
     let boundary: Vec<String> = boundary_idx.iter().map(|&i| names[i].clone()).collect();
 
-    let (beta, u) = solve_pls(&cp, &factor);
+    let (beta, u) = solve_pls(cp, &factor);
     let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
     let (blups, fitted, fitted_marginal) = if full {
-        conditional(problem, &cp, &theta, &beta, &u)
+        conditional(problem, cp, &theta, &beta, &u)
     } else {
         (Vec::new(), Vec::new(), marginal(problem, &beta))
     };
     let residuals: Vec<f64> = problem.y.iter().zip(&fitted).map(|(y, f)| y - f).collect();
-    let random = components(problem, &cp, &theta, sigma2);
+    let random = components(problem, cp, &theta, sigma2);
 
     // The likelihood alone takes its curvature from the finish's last
     // stencil, taken next to the optimum, rather than a new one.
@@ -462,7 +500,7 @@ fn fit_on_worker(problem: &MixedProblem, options: FitOptions, given: Option<&[f6
     let (sensitivity, curvature) = if lean {
         ((VarianceSensitivity::unknown(free.len() + 1, p), 0), None)
     } else {
-        sensitivity(&cp, &theta, &theta_scale, &free, method, sigma2, kept)
+        sensitivity(cp, &theta, &theta_scale, &free, method, sigma2, kept)
     };
     evaluations += sensitivity.1;
     let sensitivity = if full {
