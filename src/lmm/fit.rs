@@ -32,6 +32,16 @@ pub(super) const EXACT_GRADIENT_TIGHTENING: f64 = 1e-2;
 /// Restarts from the interior after a boundary optimum, at most.
 pub(super) const MAX_RESTARTS: usize = 3;
 
+/// At most this many gradient-led steps refine the search's end point before
+/// the Newton finish ([`optimize::refine_by_gradient`]); each must halve the
+/// decrement, so a few suffice or none helps.
+pub(super) const REFINE_STEPS: usize = 6;
+
+/// The refinement aims below the finish's own target by this factor, so that
+/// the Newton step after the finish's stencil stays within the share of a
+/// stencil step at which the stencil still serves Satterthwaite.
+pub(super) const REFINE_TARGET: f64 = 1e-4;
+
 /// A diagonal entry of θ below this fraction of its start value is tested
 /// against the boundary (set to zero when that does not raise the deviance).
 pub const BOUNDARY_SNAP: f64 = 1e-4;

@@ -1,7 +1,9 @@
 //! The search: quasi-Newton descent from each start, with restarts from the
 //! interior when an optimum lies on the boundary.
 
-use super::fit::{BOUNDARY_SNAP, EXACT_GRADIENT_TIGHTENING, MAX_RESTARTS, NEWTON_DECREMENT_TOLERANCE};
+use super::fit::{
+    BOUNDARY_SNAP, EXACT_GRADIENT_TIGHTENING, MAX_RESTARTS, NEWTON_DECREMENT_TOLERANCE, REFINE_STEPS, REFINE_TARGET,
+};
 use super::optimize::{self, OptimOptions};
 
 /// Descents from `start` (scaled coordinates) until a boundary optimum
@@ -97,6 +99,13 @@ pub(super) fn descend(
         );
         iterations += result.iterations;
         evaluations += result.evaluations;
+        let mut result = result;
+        if let (Some(gf), Some(_)) = (grad, hess_at) {
+            let target = REFINE_TARGET * optimize::POLISH_DECREMENT * result.value.abs().max(1.0);
+            let (x, value, used) = optimize::refine_by_gradient(gf, &result, lower, target, REFINE_STEPS);
+            evaluations += used;
+            (result.x, result.value) = (x, value);
+        }
         if hess_at.is_none() && optim.decrement_tolerance.is_some() {
             // A likelihood-only fit: the quasi-Newton search itself stops
             // on its decrement, and there is no finish to certify it.
