@@ -248,12 +248,18 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
     let full: Vec<Vec<f64>> = data.cells.iter().map(|c| s.row(c.i, c.j)).collect();
     let null_vector_residual = full.iter().map(|r| dot(r, &v).abs()).fold(0.0, f64::max);
     // The APC fit in the coordinates of the complement basis.
+    // Rows are mostly zeros (one group of each time scale), so only their
+    // non-zero entries are multiplied.
     let reduced: Vec<Vec<f64>> = full
         .iter()
         .map(|r| {
-            (0..q - 1)
-                .map(|c| (0..q).map(|k| r[k] * basis[k * (q - 1) + c]).sum())
-                .collect()
+            let mut out = vec![0.0; q - 1];
+            for (k, &v) in r.iter().enumerate().filter(|(_, v)| **v != 0.0) {
+                for (o, b) in out.iter_mut().zip(&basis[k * (q - 1)..(k + 1) * (q - 1)]) {
+                    *o += v * b;
+                }
+            }
+            out
         })
         .collect();
     let apc = fit_model(data, &reduced)?;

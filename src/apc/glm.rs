@@ -187,14 +187,37 @@ fn poisson_deviance(cells: &[Cell], eta: &[f64]) -> f64 {
 
 /// Dense 0-based levels of codes, in code order.
 pub(super) fn intercepts(factor: &str, codes: &[u32], n: usize) -> crate::lmm::RandomTermData {
-    let mut levels: Vec<u32> = codes.to_vec();
-    levels.sort_unstable();
-    levels.dedup();
-    let index: std::collections::HashMap<u32, u32> = levels.iter().enumerate().map(|(k, &l)| (l, k as u32)).collect();
+    // A panel's codes are dense (0..levels): the levels present, in
+    // increasing code, are then numbered through a lookup table; sparse
+    // codes go through a sorted list.
+    let size = codes.iter().map(|&c| c as usize + 1).max().unwrap_or(0);
+    let (level_names, level): (Vec<String>, Vec<u32>) = if size <= 2 * n + 1024 {
+        let mut index = vec![u32::MAX; size];
+        for &c in codes {
+            index[c as usize] = 0;
+        }
+        let mut names = Vec::new();
+        for (code, slot) in index.iter_mut().enumerate() {
+            if *slot == 0 {
+                *slot = names.len() as u32;
+                names.push(code.to_string());
+            }
+        }
+        (names, codes.iter().map(|&c| index[c as usize]).collect())
+    } else {
+        let mut levels: Vec<u32> = codes.to_vec();
+        levels.sort_unstable();
+        levels.dedup();
+        let at = |c: &u32| levels.binary_search(c).map_or(0, |k| k as u32);
+        (
+            levels.iter().map(u32::to_string).collect(),
+            codes.iter().map(at).collect(),
+        )
+    };
     crate::lmm::RandomTermData {
         factor: factor.into(),
-        level_names: levels.iter().map(|l| l.to_string()).collect(),
-        level: codes.iter().map(|l| index[l]).collect(),
+        level_names,
+        level,
         columns: vec!["intercept".into()],
         z: vec![vec![1.0; n]],
     }
@@ -232,4 +255,24 @@ pub fn fit_mixed(cells: &[Cell], x: &[Vec<f64>], ids: &[u32]) -> Result<GlmFit> 
         fitted: f.fitted_marginal.clone(),
         iterations: f.info.iterations,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::intercepts;
+
+    // Dense codes (the lookup table) and the same levels under sparse codes
+    // (the sorted list) number the levels alike, in increasing code, and
+    // skip codes that do not occur.
+    #[test]
+    fn intercept_levels_agree_for_dense_and_sparse_codes() {
+        let dense = [3u32, 0, 3, 5, 0, 5, 5];
+        let sparse: Vec<u32> = dense.iter().map(|&c| c * 1_000_000).collect();
+        let a = intercepts("id", &dense, dense.len());
+        let b = intercepts("id", &sparse, sparse.len());
+        assert_eq!(a.level, vec![1, 0, 1, 2, 0, 2, 2]);
+        assert_eq!(a.level, b.level);
+        assert_eq!(a.level_names, vec!["0", "3", "5"]);
+        assert_eq!(b.level_names, vec!["0", "3000000", "5000000"]);
+    }
 }

@@ -265,13 +265,22 @@ impl ApcOptions {
 /// the birth-year check.
 pub fn identify(input: &ApcInput, options: &ApcOptions) -> Result<ApcReport> {
     options.validate()?;
-    let exact = exact_model(input, options)?;
-    let grouped = group(input, options).and_then(|data| {
-        Ok((
-            analysis::analyse(&data, &options.constraints, &options.assumptions)?,
-            data,
-        ))
-    });
+    // The exact-value model and the grouped factor models are independent:
+    // they run side by side (each fit still splits its levels over the
+    // threads, but the grouped models' row building and small searches
+    // leave a core idle).
+    let (exact, grouped) = rayon::join(
+        || exact_model(input, options),
+        || {
+            group(input, options).and_then(|data| {
+                Ok((
+                    analysis::analyse(&data, &options.constraints, &options.assumptions)?,
+                    data,
+                ))
+            })
+        },
+    );
+    let exact = exact?;
     let mut report = match (grouped, exact) {
         (Ok((mut report, data)), exact) => {
             if options.hierarchical {
