@@ -60,10 +60,62 @@ pub struct ApcData {
 
 /// Fit one model: a GLM on cell totals, or for panels a linear mixed model
 /// with a random intercept per participant (ML, so that deviances compare).
-fn fit_model(data: &ApcData, rows: &[Vec<f64>]) -> Result<GlmFit> {
+fn fit_model(data: &ApcData, rows: &CellRows) -> Result<GlmFit> {
     match &data.ids {
-        None => glm::fit(&data.cells, rows, data.family),
-        Some(ids) => glm::fit_mixed(&data.cells, rows, ids),
+        None => glm::fit(&data.cells, &rows.expand(&data.cells), data.family),
+        Some(ids) => glm::fit_mixed(&data.cells, rows.q, rows.flat(&data.cells), ids),
+    }
+}
+
+/// A model's design rows, one per cell of the age × period table: every
+/// record of a cell shares its row, so a panel of a million records needs
+/// only the table's few dozen rows until a fit flattens them.
+struct CellRows {
+    /// Columns.
+    q: usize,
+    /// Periods (the table's second index runs 1..=periods).
+    periods: usize,
+    /// Row of cell (i, j) at `((i − 1) · periods + j − 1) · q`.
+    rows: Vec<f64>,
+}
+
+impl CellRows {
+    /// The rows of the cells that occur in `cells` (a corner cell of a
+    /// sparse design may have no cohort column, and is never asked for).
+    fn new(s: Shape, cells: &[Cell], q: usize, row: impl Fn(usize, usize) -> Vec<f64>) -> CellRows {
+        let mut out = CellRows {
+            q,
+            periods: s.p,
+            rows: vec![0.0; s.a * s.p * q],
+        };
+        let mut done = vec![false; s.a * s.p];
+        for c in cells {
+            let k = (c.i - 1) * s.p + c.j - 1;
+            if !done[k] {
+                done[k] = true;
+                out.rows[k * q..(k + 1) * q].copy_from_slice(&row(c.i, c.j));
+            }
+        }
+        out
+    }
+
+    fn of(&self, c: &Cell) -> &[f64] {
+        let at = ((c.i - 1) * self.periods + c.j - 1) * self.q;
+        &self.rows[at..at + self.q]
+    }
+
+    /// One row per cell, as the GLM of a table takes them.
+    fn expand(&self, cells: &[Cell]) -> Vec<Vec<f64>> {
+        cells.iter().map(|c| self.of(c).to_vec()).collect()
+    }
+
+    /// One row per cell, row-major in one vector.
+    fn flat(&self, cells: &[Cell]) -> Vec<f64> {
+        let mut x = Vec::with_capacity(cells.len() * self.q);
+        for c in cells {
+            x.extend_from_slice(self.of(c));
+        }
+        x
     }
 }
 
@@ -218,20 +270,18 @@ pub struct PanelView {
     pub text: Vec<String>,
 }
 
-/// Full coded rows of every cell, and the rows of the submodels.
-fn submodel_rows(data: &ApcData, cols: &[usize], drift: bool) -> Vec<Vec<f64>> {
-    let s = data.shape;
-    data.cells
-        .iter()
-        .map(|c| {
-            let full = s.row(c.i, c.j);
-            let mut r: Vec<f64> = cols.iter().map(|&k| full[k]).collect();
-            if drift {
-                r.push(c.j as f64 - (s.p as f64 + 1.0) / 2.0);
-            }
-            r
-        })
-        .collect()
+/// The rows of a submodel: the full coding's columns `cols`, and a linear
+/// drift in period when asked for.
+fn submodel_rows(s: Shape, cells: &[Cell], cols: &[usize], drift: bool) -> CellRows {
+    let q = cols.len() + usize::from(drift);
+    CellRows::new(s, cells, q, |i, j| {
+        let full = s.row(i, j);
+        let mut r: Vec<f64> = cols.iter().map(|&k| full[k]).collect();
+        if drift {
+            r.push(j as f64 - (s.p as f64 + 1.0) / 2.0);
+        }
+        r
+    })
 }
 
 /// Run the analysis.
@@ -245,23 +295,20 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
     let q = s.n_params();
     let v = null_vector(s);
     let basis = complement_basis(&v);
-    let full: Vec<Vec<f64>> = data.cells.iter().map(|c| s.row(c.i, c.j)).collect();
-    let null_vector_residual = full.iter().map(|r| dot(r, &v).abs()).fold(0.0, f64::max);
-    // The APC fit in the coordinates of the complement basis.
-    // Rows are mostly zeros (one group of each time scale), so only their
-    // non-zero entries are multiplied.
-    let reduced: Vec<Vec<f64>> = full
-        .iter()
-        .map(|r| {
-            let mut out = vec![0.0; q - 1];
-            for (k, &v) in r.iter().enumerate().filter(|(_, v)| **v != 0.0) {
-                for (o, b) in out.iter_mut().zip(&basis[k * (q - 1)..(k + 1) * (q - 1)]) {
-                    *o += v * b;
-                }
+    let full = CellRows::new(s, &data.cells, q, |i, j| s.row(i, j));
+    let null_vector_residual = data.cells.iter().map(|c| dot(full.of(c), &v).abs()).fold(0.0, f64::max);
+    // The APC fit in the coordinates of the complement basis. Rows are
+    // mostly zeros (one group of each time scale), so only their non-zero
+    // entries are multiplied.
+    let reduced = CellRows::new(s, &data.cells, q - 1, |i, j| {
+        let mut out = vec![0.0; q - 1];
+        for (k, &x) in s.row(i, j).iter().enumerate().filter(|(_, x)| **x != 0.0) {
+            for (o, b) in out.iter_mut().zip(&basis[k * (q - 1)..(k + 1) * (q - 1)]) {
+                *o += x * b;
             }
-            out
-        })
-        .collect();
+        }
+        out
+    });
     let apc = fit_model(data, &reduced)?;
     let b0: Vec<f64> = (0..q)
         .map(|k| (0..q - 1).map(|c| basis[k * (q - 1) + c] * apc.coef[c]).sum())
@@ -306,7 +353,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
         ("P+C", cat(&[&per_cols, &coh_cols]), false),
         ("A+drift", cat(&[&age_cols]), true),
     ] {
-        let f = fit_model(data, &submodel_rows(data, &cols, drift))?;
+        let f = fit_model(data, &submodel_rows(s, &data.cells, &cols, drift))?;
         deviance_table.push(DevianceRow {
             model: name.into(),
             deviance: f.deviance,
@@ -327,7 +374,7 @@ pub fn analyse(data: &ApcData, constraints: &[Constraint], assumptions: &[Assump
     let mut fitted_max_difference: f64 = 0.0;
     let eta = |t: f64| -> Vec<f64> {
         let b: Vec<f64> = b0.iter().zip(&v).map(|(x, y)| x + t * y).collect();
-        full.iter().map(|r| dot(r, &b)).collect()
+        data.cells.iter().map(|c| dot(full.of(c), &b)).collect()
     };
     let base = eta(0.0);
     for sol in &solutions {

@@ -223,20 +223,19 @@ pub(super) fn intercepts(factor: &str, codes: &[u32], n: usize) -> crate::lmm::R
     }
 }
 
-/// Panels: a linear mixed model with design rows `x` (one per record, held
-/// as cells with `e` = 1) and a random intercept per participant, by ML.
+/// Panels: a linear mixed model with design rows `x` (q columns, row-major,
+/// one row per record, held as cells with `e` = 1) and a random intercept per participant, by ML.
 /// The deviance is −2 × the ML log-likelihood.
 ///
 /// # Errors
 /// Errors of the engine.
-pub fn fit_mixed(cells: &[Cell], x: &[Vec<f64>], ids: &[u32]) -> Result<GlmFit> {
-    let q = x.first().map_or(0, Vec::len);
+pub fn fit_mixed(cells: &[Cell], q: usize, x: Vec<f64>, ids: &[u32]) -> Result<GlmFit> {
     let n = cells.len();
     let terms = vec![intercepts("participant", ids, n)];
     let problem = crate::lmm::MixedProblem {
         y: cells.iter().map(|c| c.y).collect(),
         x_names: (0..q).map(|k| format!("x{k}")).collect(),
-        x: x.iter().flat_map(|r| r.iter().copied()).collect(),
+        x,
         terms,
     };
     let f = crate::lmm::fit(

@@ -214,7 +214,16 @@ pub fn random_slope_test(m0_problem: &MixedProblem, m0_reml: &Fit) -> Result<Opt
     let mut reduced = m0_problem.clone();
     reduced.terms[0].columns.truncate(1);
     reduced.terms[0].z.truncate(1);
-    let f = super::fit_lean(&reduced, Method::Reml, None)?;
+    // M0's θ without the slope's two entries (its first term's are the
+    // intercept, the covariance and the slope) is a close start.
+    let start: Vec<f64> = m0_reml
+        .theta
+        .iter()
+        .enumerate()
+        .filter(|(k, _)| !(1..3).contains(k))
+        .map(|(_, v)| *v)
+        .collect();
+    let f = super::fit_lean(&reduced, Method::Reml, Some(&start))?;
     let mut test = likelihood_ratio(
         &format!("participants differ in their {} slope (REML)", t.columns[1]),
         f.loglik,
