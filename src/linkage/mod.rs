@@ -219,38 +219,26 @@ fn smallest_cohort(code: &[u32], n_participants: usize, k_of: &[usize], n_cohort
 }
 
 fn fit_with(problem: &MixedProblem, method: Method) -> Result<Fit> {
-    fit_near(problem, method, lmm::Detail::Full, None)
+    lmm::fit(
+        problem,
+        FitOptions {
+            method,
+            ..Default::default()
+        },
+    )
 }
 
-/// A fit started from a nearby model's θ when one is given: each ML model
-/// of the sequence nests in the next, and a REML fit starts from the same
-/// model's ML optimum, so the start is close (notes/criterion.md, "Warm
-/// starts"). `detail` is [`lmm::Detail::Likelihood`] for a fit that only
-/// feeds a likelihood-ratio test.
-fn fit_near(problem: &MixedProblem, method: Method, detail: lmm::Detail, start: Option<&[f64]>) -> Result<Fit> {
-    let options = FitOptions {
-        method,
-        detail,
-        ..Default::default()
-    };
-    match start {
-        Some(s) => lmm::fit_from(problem, options, s),
-        None => lmm::fit(problem, options),
-    }
-}
-
-/// The options of a fit that only feeds a likelihood-ratio test.
+/// The options of a fit that only feeds a likelihood-ratio test
+/// ([`lmm::Detail::Likelihood`]). Each model of the sequence starts from
+/// the fit of the model it nests in, or of the same design by ML
+/// ([`lmm::Prepared::fit_near`]; notes/criterion.md, "Warm starts and
+/// shared cross-products").
 fn lean(method: Method) -> FitOptions {
     FitOptions {
         method,
         detail: lmm::Detail::Likelihood,
         ..Default::default()
     }
-}
-
-/// A fit that only feeds a likelihood-ratio test ([`lmm::Detail::Likelihood`]).
-fn fit_lean(problem: &MixedProblem, method: Method, start: Option<&[f64]>) -> Result<Fit> {
-    fit_near(problem, method, lmm::Detail::Likelihood, start)
 }
 
 /// The cohorts in order of their youngest age, the overlaps that link
@@ -345,10 +333,10 @@ impl LevelPair {
         // M0 by REML feeds the random-slope test (its likelihood) and the
         // retest check (its age slope): no BLUPs or sensitivity needed.
         let m0_reml = with_reml
-            .then(|| prepared.fit(lean(Method::Reml), Some(&m0.theta)))
+            .then(|| prepared.fit_near(lean(Method::Reml), &m0))
             .transpose()?;
         drop(prepared);
-        let m1 = fit_lean(&p1, Method::Ml, Some(&m0.theta))?;
+        let m1 = lmm::fit_near(&p1, lean(Method::Ml), &m0)?;
         Ok(LevelPair {
             linkage,
             k_of,
@@ -413,8 +401,8 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
     let p0 = frame.problem.p();
     let p2 = columns.full_problem(&frame.problem);
     let prepared = lmm::Prepared::new(&p2)?;
-    let m2 = prepared.fit(lean(Method::Ml), Some(&m1.theta))?;
-    let m2r = prepared.fit(FitOptions::default(), Some(&m2.theta))?;
+    let m2 = prepared.fit_near(lean(Method::Ml), &m1)?;
+    let m2r = prepared.fit_near(FitOptions::default(), &m2)?;
     drop(prepared);
     let kc = cohorts.len() - 1;
     let mut models = vec![
@@ -492,7 +480,7 @@ pub fn converge(panel: &Panel, model: &ModelSpec, options: &ConvergeOptions) -> 
             notes.push("a fit of the sequence did not reach a certified minimum; read its test with care".to_string());
         }
     }
-    let between_within = slopes::between_within(panel, &frame, &spec0, &m0r.theta, &mut notes);
+    let between_within = slopes::between_within(panel, &frame, &spec0, &m0r, &mut notes);
     let retest = options
         .retest
         .map(|f| retest::check_with(panel, &frame, &m0r, f))

@@ -4,10 +4,8 @@
 use serde::Serialize;
 
 use super::columns::with_columns;
-use super::fit_near;
 use crate::data::Panel;
 use crate::infer;
-use crate::lmm::Method;
 use crate::spec::{AgeSpec, ModelFrame, ModelSpec};
 
 /// Baseline age against time since baseline.
@@ -37,7 +35,7 @@ pub(super) fn between_within(
     panel: &Panel,
     frame: &ModelFrame,
     spec0: &ModelSpec,
-    start: &[f64],
+    m0_reml: &crate::lmm::Fit,
     notes: &mut Vec<String>,
 ) -> Option<BetweenWithin> {
     if !matches!(spec0.age, AgeSpec::Polynomial { .. }) {
@@ -59,8 +57,8 @@ pub(super) fn between_within(
     }
     problem.x_names[1] = "baseline age".into();
     let problem = with_columns(&problem, &["time since baseline".to_string()], &[within]);
-    // The random terms are M0's: its REML θ is a close start.
-    let fit = match fit_near(&problem, Method::Reml, crate::lmm::Detail::Full, Some(start)) {
+    // The random terms are M0's: its REML fit is a close start.
+    let fit = match crate::lmm::fit_near(&problem, crate::lmm::FitOptions::default(), m0_reml) {
         Ok(f) => f,
         Err(e) => {
             notes.push(format!("the between/within fit failed: {e}"));

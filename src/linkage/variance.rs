@@ -223,7 +223,7 @@ pub fn random_slope_test(m0_problem: &MixedProblem, m0_reml: &Fit) -> Result<Opt
         .filter(|(k, _)| !(1..3).contains(k))
         .map(|(_, v)| *v)
         .collect();
-    let f = super::fit_lean(&reduced, Method::Reml, Some(&start))?;
+    let f = crate::lmm::fit_from(&reduced, super::lean(Method::Reml), &start)?;
     let mut test = likelihood_ratio(
         &format!("participants differ in their {} slope (REML)", t.columns[1]),
         f.loglik,

@@ -124,6 +124,11 @@ pub struct FitInfo {
     pub restarts: usize,
     /// Advice and warnings for the user.
     pub messages: Vec<String>,
+    /// The last quasi-Newton search's inverse Hessian of the deviance in θ
+    /// (row-major), a first inverse Hessian for the search of a nearby
+    /// model ([`Prepared::fit_near`]).
+    #[serde(skip)]
+    pub inverse_hessian: Option<Vec<f64>>,
 }
 
 /// Sensitivity of cov(β̂) to the variance parameters, for Satterthwaite df.
@@ -238,6 +243,14 @@ pub fn fit_from(problem: &MixedProblem, options: FitOptions, start: &[f64]) -> R
     Prepared::new(problem)?.fit(options, Some(start))
 }
 
+/// [`fit`] from a nearby model's fit ([`Prepared::fit_near`]).
+///
+/// # Errors
+/// As [`fit`].
+pub fn fit_near(problem: &MixedProblem, options: FitOptions, near: &Fit) -> Result<Fit> {
+    Prepared::new(problem)?.fit_near(options, near)
+}
+
 /// A problem with its cross-products gathered once, for several fits of the
 /// same design: by ML and by REML, or for a likelihood-ratio test and then
 /// in full. The pass over the rows is the one part of a fit whose cost grows
@@ -279,7 +292,19 @@ impl<'a> Prepared<'a> {
         // parallel evaluation splits its levels with the other worker
         // directly instead of being handed over from the main thread
         // (measured: about 4% of a 3,000-participant run).
-        rayon::scope(|_| fit_on_worker(self.problem, &self.cp, options, start))
+        rayon::scope(|_| fit_on_worker(self.problem, &self.cp, options, start, None))
+    }
+
+    /// Fit the problem from a nearby model's fit: its θ is the start and its
+    /// search's last inverse Hessian the first one (notes/criterion.md,
+    /// "Warm starts and shared cross-products"); both are ignored when the
+    /// models' covariance parameters differ in number.
+    ///
+    /// # Errors
+    /// As [`fit`].
+    pub fn fit_near(&self, options: FitOptions, near: &Fit) -> Result<Fit> {
+        let inverse = near.info.inverse_hessian.as_deref();
+        rayon::scope(|_| fit_on_worker(self.problem, &self.cp, options, Some(&near.theta), inverse))
     }
 }
 
@@ -411,6 +436,7 @@ fn fit_on_worker(
     cp: &CrossProducts,
     options: FitOptions,
     given: Option<&[f64]>,
+    given_inverse: Option<&[f64]>,
 ) -> Result<Fit> {
     let n = problem.n();
     let p = problem.p();
@@ -476,7 +502,26 @@ fn fit_on_worker(
     } else {
         options.optim
     };
-    let (current, searched) = search(&sdev, grad, hess_at, &start_x, &lower, &unit, optim);
+    // A nearby model's inverse Hessian in θ, in the search's coordinates
+    // (x = θ / scale), when the search starts from that model's optimum.
+    let d = theta_scale.len();
+    let first_inverse: Option<Vec<f64>> = given_inverse
+        .filter(|h| h.len() == d * d && given.is_some_and(|g| g == start.as_slice()))
+        .map(|h| {
+            (0..d * d)
+                .map(|k| h[k] / (theta_scale[k / d] * theta_scale[k % d]))
+                .collect()
+        });
+    let (current, searched) = search(
+        &sdev,
+        grad,
+        hess_at,
+        &start_x,
+        first_inverse.as_deref(),
+        &lower,
+        &unit,
+        optim,
+    );
     iterations += searched.0;
     evaluations += searched.1;
     let restarts = searched.2;
@@ -549,6 +594,11 @@ fn fit_on_worker(
             boundary,
             restarts,
             messages,
+            inverse_hessian: current.inverse_hessian.as_ref().map(|h| {
+                (0..d * d)
+                    .map(|k| h[k] * theta_scale[k / d] * theta_scale[k % d])
+                    .collect()
+            }),
         },
         sensitivity,
     })

@@ -28,7 +28,7 @@ mod sensitivity;
 mod solution;
 mod start;
 
-pub use fit::{Detail, Fit, FitInfo, FitOptions, Prepared, RandomComponent, fit, fit_from};
+pub use fit::{Detail, Fit, FitInfo, FitOptions, Prepared, RandomComponent, fit, fit_from, fit_near};
 
 use serde::{Deserialize, Serialize};
 

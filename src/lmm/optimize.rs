@@ -149,11 +149,25 @@ pub fn minimize(f: impl FnMut(&[f64]) -> f64, x0: &[f64], lower: &[f64], opts: O
 
 /// [`minimize`] with an analytic gradient when one is given.
 pub fn minimize_with(
+    f: impl FnMut(&[f64]) -> f64,
+    grad: Gradient,
+    x0: &[f64],
+    lower: &[f64],
+    opts: OptimOptions,
+) -> OptimResult {
+    minimize_from(f, grad, x0, lower, opts, None)
+}
+
+/// [`minimize_with`], whose first inverse Hessian is `first` when given
+/// (d×d, finite; a nearby search's last one, say) instead of one from
+/// differences of gradients.
+pub fn minimize_from(
     mut f: impl FnMut(&[f64]) -> f64,
     grad: Gradient,
     x0: &[f64],
     lower: &[f64],
     opts: OptimOptions,
+    first: Option<&[f64]>,
 ) -> OptimResult {
     let d = x0.len();
     let mut x: Vec<f64> = x0.iter().zip(lower).map(|(&a, &l)| a.max(l)).collect();
@@ -188,7 +202,11 @@ pub fn minimize_with(
     // With an analytic gradient, the initial inverse Hessian is the inverse
     // of forward differences of the gradient (one gradient per coordinate),
     // so the search starts with Newton steps.
-    if let Some(inv) = grad.and_then(|gf| forward_inverse_hessian(gf, &x, &g, &mut evals)) {
+    let given = first.filter(|h| h.len() == d * d && h.iter().all(|v| v.is_finite()));
+    if let Some(inv) = given
+        .map(<[f64]>::to_vec)
+        .or_else(|| grad.and_then(|gf| forward_inverse_hessian(gf, &x, &g, &mut evals)))
+    {
         h = inv;
         h_scaled = true;
     }

@@ -14,16 +14,18 @@ use super::optimize::{self, OptimOptions};
 /// even in that entry), so a boundary optimum is only accepted when moving
 /// back into the interior along each boundary coordinate does not lower the
 /// deviance. Otherwise the search restarts from the best interior point found.
+#[allow(clippy::too_many_arguments)]
 pub(super) fn search(
     sdev: &impl Fn(&[f64]) -> f64,
     grad: optimize::Gradient,
     hess_at: optimize::HessianAt,
     start: &[f64],
+    first_inverse: Option<&[f64]>,
     lower: &[f64],
     unit: &[f64],
     optim: OptimOptions,
 ) -> (Descent, (usize, usize, usize)) {
-    let mut current = descend(sdev, grad, hess_at, start, lower, unit, optim);
+    let mut current = descend(sdev, grad, hess_at, start, first_inverse, lower, unit, optim);
     let mut iterations = current.iterations;
     let mut evaluations = current.evaluations;
     let mut restarts = 0;
@@ -41,7 +43,7 @@ pub(super) fn search(
             }
         }
         let Some((from, _)) = candidate else { break };
-        let next = descend(sdev, grad, hess_at, &from, lower, unit, optim);
+        let next = descend(sdev, grad, hess_at, &from, None, lower, unit, optim);
         iterations += next.iterations;
         evaluations += next.evaluations;
         restarts += 1;
@@ -62,13 +64,19 @@ pub(super) struct Descent {
     pub(super) polished: optimize::Polished,
     pub(super) iterations: usize,
     pub(super) evaluations: usize,
+    /// The last quasi-Newton search's inverse Hessian, scaled coordinates.
+    pub(super) inverse_hessian: Option<Vec<f64>>,
 }
 
+/// `first_inverse`, when given, is the first round's starting inverse
+/// Hessian (scaled coordinates).
+#[allow(clippy::too_many_arguments)]
 pub(super) fn descend(
     dev: &impl Fn(&[f64]) -> f64,
     grad: optimize::Gradient,
     hess_at: optimize::HessianAt,
     start: &[f64],
+    first_inverse: Option<&[f64]>,
     lower: &[f64],
     base: &[f64],
     optim: OptimOptions,
@@ -86,8 +94,9 @@ pub(super) fn descend(
     } else {
         optim.value_tolerance
     };
-    let mut round = |from: &[f64], tolerance: f64| {
-        let result = optimize::minimize_with(
+    let mut inverse_hessian: Option<Vec<f64>> = None;
+    let mut round = |from: &[f64], tolerance: f64, first: Option<&[f64]>| {
+        let mut result = optimize::minimize_from(
             dev,
             grad,
             from,
@@ -96,16 +105,17 @@ pub(super) fn descend(
                 value_tolerance: tolerance,
                 ..optim
             },
+            first,
         );
         iterations += result.iterations;
         evaluations += result.evaluations;
-        let mut result = result;
         if let (Some(gf), Some(_)) = (grad, hess_at) {
             let target = REFINE_TARGET * optimize::POLISH_DECREMENT * result.value.abs().max(1.0);
             let (x, value, used) = optimize::refine_by_gradient(gf, &result, lower, target, REFINE_STEPS);
             evaluations += used;
             (result.x, result.value) = (x, value);
         }
+        inverse_hessian = result.inverse_hessian.take().or(inverse_hessian.take());
         if hess_at.is_none() && optim.decrement_tolerance.is_some() {
             // A likelihood-only fit: the quasi-Newton search itself stops
             // on its decrement, and there is no finish to certify it.
@@ -122,12 +132,12 @@ pub(super) fn descend(
         p
     };
     let done = |p: &optimize::Polished| p.decrement.is_some_and(|d| d < NEWTON_DECREMENT_TOLERANCE);
-    let mut polished = round(start, first);
+    let mut polished = round(start, first, first_inverse);
     for tolerance in [optim.value_tolerance * 1e-3, optim.value_tolerance * 1e-6] {
         if done(&polished) {
             break;
         }
-        polished = round(&polished.x.clone(), tolerance);
+        polished = round(&polished.x.clone(), tolerance, None);
     }
     let mut theta = polished.x.clone();
     // The criterion is even in each diagonal entry of T near zero, so a zero
@@ -162,5 +172,6 @@ pub(super) fn descend(
         polished,
         iterations,
         evaluations,
+        inverse_hessian,
     }
 }
