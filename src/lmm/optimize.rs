@@ -197,33 +197,7 @@ pub fn minimize_from(
         Some((_, g)) => g,
         None => gradient_at(&mut f, grad, &x, fx, &mut evals),
     };
-    let mut h = identity(d);
-    let mut h_scaled = false;
-    // With an analytic gradient, the initial inverse Hessian is the inverse
-    // of forward differences of the gradient (one gradient per coordinate),
-    // so the search starts with Newton steps.
-    let given = first.filter(|h| h.len() == d * d && h.iter().all(|v| v.is_finite()));
-    if let Some(inv) = given
-        .map(<[f64]>::to_vec)
-        .or_else(|| grad.and_then(|gf| forward_inverse_hessian(gf, &x, &g, &mut evals)))
-    {
-        h = inv;
-        h_scaled = true;
-    }
-    // Otherwise the reciprocal diagonal curvatures from second differences
-    // (2 evaluations per coordinate), so the first steps are already on the
-    // right scale in every coordinate.
-    let diag = if h_scaled {
-        Vec::new()
-    } else {
-        diagonal_curvatures(&mut f, &x, fx, lower, &mut evals)
-    };
-    if !h_scaled && diag.iter().all(|c| c.is_finite() && *c > 0.0) {
-        for i in 0..d {
-            h[i * d + i] = 1.0 / diag[i];
-        }
-        h_scaled = true;
-    }
+    let (mut h, mut h_scaled) = first_inverse_hessian(&mut f, grad, first, &x, fx, &g, lower, &mut evals);
     let mut last_scaled: Option<Vec<f64>> = None;
     let mut small_steps = 0;
     let mut converged = false;
@@ -319,6 +293,43 @@ pub fn minimize_from(
         inverse_hessian: if h_scaled { Some(h) } else { last_scaled },
         gradient: g,
     }
+}
+
+/// The search's first inverse Hessian, and whether it is scaled to the
+/// problem: `first` when given (d×d, finite); with an analytic gradient the
+/// inverse of forward differences of the gradient (one gradient per
+/// coordinate), so that the search starts with Newton steps; otherwise the
+/// reciprocal diagonal curvatures from second differences (2 evaluations per
+/// coordinate), so that the first steps are on the right scale in every
+/// coordinate; the identity, unscaled, when those are not all positive.
+#[allow(clippy::too_many_arguments)]
+fn first_inverse_hessian(
+    f: &mut impl FnMut(&[f64]) -> f64,
+    grad: Gradient,
+    first: Option<&[f64]>,
+    x: &[f64],
+    fx: f64,
+    g: &[f64],
+    lower: &[f64],
+    evals: &mut usize,
+) -> (Vec<f64>, bool) {
+    let d = x.len();
+    let given = first.filter(|h| h.len() == d * d && h.iter().all(|v| v.is_finite()));
+    if let Some(inv) = given
+        .map(<[f64]>::to_vec)
+        .or_else(|| grad.and_then(|gf| forward_inverse_hessian(gf, x, g, evals)))
+    {
+        return (inv, true);
+    }
+    let diag = diagonal_curvatures(f, x, fx, lower, evals);
+    let mut h = identity(d);
+    if !diag.iter().all(|c| c.is_finite() && *c > 0.0) {
+        return (h, false);
+    }
+    for i in 0..d {
+        h[i * d + i] = 1.0 / diag[i];
+    }
+    (h, true)
 }
 
 /// Refine a quasi-Newton search's end point by full steps `−Hg` with its
