@@ -24,17 +24,24 @@ use emit::Emitter;
 /// system at once. Each fit allocates, fills and frees buffers of tens of
 /// megabytes on a million rows; returned and taken back, every page of them
 /// is faulted in and zeroed again (notes/decisions.md, "libc"; measured in
-/// notes/benchmarks.md, ninth session). Large blocks then come from the
-/// heap, not separate mappings, and the heap is not trimmed.
+/// notes/benchmarks.md, ninth session). Blocks up to [`MMAP_THRESHOLD`] then
+/// come from the heap, not separate mappings, and the heap is not trimmed;
+/// larger ones (a column of ten million rows) keep their own mappings, which
+/// grow without copying.
 fn keep_freed_memory() {
     #[cfg(all(target_os = "linux", target_env = "gnu"))]
     // SAFETY: mallopt only sets the allocator's tuning parameters; it is
     // called once, before any other thread exists.
     unsafe {
-        libc::mallopt(libc::M_MMAP_MAX, 0);
+        libc::mallopt(libc::M_MMAP_THRESHOLD, MMAP_THRESHOLD);
         libc::mallopt(libc::M_TRIM_THRESHOLD, i32::MAX);
     }
 }
+
+/// The allocator's largest threshold for separate mappings (32 MiB on 64-bit
+/// systems; a larger value is refused).
+#[cfg(all(target_os = "linux", target_env = "gnu"))]
+const MMAP_THRESHOLD: i32 = 32 << 20;
 
 /// Parse the process arguments and run; returns the exit code.
 pub fn main_exit_code() -> i32 {
