@@ -661,12 +661,9 @@ mod tests {
     #[test]
     fn two_large_crossed_factors_are_refused_with_a_clear_error() {
         let n = 9_000;
-        let term = |factor: &str, k: usize| RandomTermData {
-            factor: factor.into(),
-            level_names: (0..k).map(|i| i.to_string()).collect(),
-            level: (0..n).map(|r| (r % k) as u32).collect(),
-            columns: vec!["intercept".into()],
-            z: vec![vec![1.0; n]],
+        let term = |factor: &str, k: usize| {
+            let level = (0..n).map(|r| (r % k) as u32).collect();
+            RandomTermData::numbered(factor, k, level, &["intercept"], vec![vec![1.0; n]])
         };
         let problem = MixedProblem {
             y: (0..n).map(|r| (r % 7) as f64).collect(),
@@ -717,13 +714,13 @@ mod near_tests {
             y,
             x_names: vec!["intercept".into(), "age".into()],
             x: age.iter().flat_map(|&a| [1.0, a]).collect(),
-            terms: vec![RandomTermData {
-                factor: "id".into(),
-                level_names: (0..levels).map(|i| i.to_string()).collect(),
-                level: (0..n).map(|r| (r / waves) as u32).collect(),
-                columns: vec!["intercept".into(), "age".into()],
-                z: vec![vec![1.0; n], age.clone()],
-            }],
+            terms: vec![RandomTermData::numbered(
+                "id",
+                levels,
+                (0..n).map(|r| (r / waves) as u32).collect(),
+                &["intercept", "age"],
+                vec![vec![1.0; n], age.clone()],
+            )],
         };
         let prepared = Prepared::new(&problem).unwrap();
         let ml = prepared

@@ -70,6 +70,19 @@ pub struct RandomTermData {
 }
 
 impl RandomTermData {
+    /// A term whose levels are named by their index (`"0"`, `"1"`, …):
+    /// `n_levels` levels, each row's level, and one column of `z` per
+    /// coefficient named in `columns`.
+    pub fn numbered(factor: &str, n_levels: usize, level: Vec<u32>, columns: &[&str], z: Vec<Vec<f64>>) -> Self {
+        RandomTermData {
+            factor: factor.into(),
+            level_names: (0..n_levels).map(|i| i.to_string()).collect(),
+            level,
+            columns: columns.iter().map(|c| (*c).to_string()).collect(),
+            z,
+        }
+    }
+
     /// Number of coefficients per level (q).
     pub fn q(&self) -> usize {
         self.columns.len()

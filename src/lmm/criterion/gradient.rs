@@ -380,13 +380,13 @@ mod gradient_tests {
             y,
             x_names: vec!["1".into(), "a".into(), "a2".into()],
             x,
-            terms: vec![RandomTermData {
-                factor: "id".into(),
-                level_names: (0..n_id).map(|i| i.to_string()).collect(),
+            terms: vec![RandomTermData::numbered(
+                "id",
+                n_id,
                 level,
-                columns: vec!["intercept".into(), "a".into()],
-                z: vec![vec![1.0; n], z1],
-            }],
+                &["intercept", "a"],
+                vec![vec![1.0; n], z1],
+            )],
         };
         let cp = CrossProducts::new(&problem);
         let theta = [1.3, 0.2, 0.4];

@@ -106,13 +106,13 @@ mod tests {
             y,
             x_names: vec!["1".into(), "a".into(), "a2".into()],
             x,
-            terms: vec![RandomTermData {
-                factor: "id".into(),
-                level_names: (0..n_id).map(|i| i.to_string()).collect(),
+            terms: vec![RandomTermData::numbered(
+                "id",
+                n_id,
                 level,
-                columns: vec!["intercept".into()],
-                z: vec![vec![1.0; n]],
-            }],
+                &["intercept"],
+                vec![vec![1.0; n]],
+            )],
         };
         let cp = CrossProducts::new(&problem);
         let pools = cp.pools.as_ref().expect("three values of γ");
