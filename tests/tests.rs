@@ -32,5 +32,7 @@ mod reference; // statsmodels MixedLM reference fits on published and simulated 
 mod score; // scoring and reliability against pingouin and Feldt, closed forms
 #[path = "suite/snapshots.rs"]
 mod snapshots; // every text screen of the demo against its reviewed snapshot
+#[path = "suite/structures.rs"]
+mod structures; // covariance structures against statsmodels variance components, an identity, recovery
 #[path = "suite/tolerance.rs"]
 mod tolerance; // every tolerance, named, in one place

@@ -91,6 +91,7 @@ pub fn compare(c: &Complete, effects: &[Effect]) -> Result<MixedComparison> {
             level,
             columns: vec!["intercept".into()],
             z: vec![vec![1.0; n * k]],
+            covariance: Default::default(),
         }],
     };
     let fit = crate::lmm::fit(&problem, FitOptions::default())?;

@@ -220,6 +220,7 @@ pub(super) fn intercepts(factor: &str, codes: &[u32], n: usize) -> crate::lmm::R
         level,
         columns: vec!["intercept".into()],
         z: vec![vec![1.0; n]],
+        covariance: Default::default(),
     }
 }
 

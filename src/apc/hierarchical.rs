@@ -77,6 +77,7 @@ pub fn fit(t: &NumericTable, data: &ApcData) -> Result<Hierarchical> {
         level,
         columns: vec!["intercept".into()],
         z: vec![vec![1.0; n]],
+        covariance: Default::default(),
     };
     let mut terms = vec![
         term("period", per, &data.labels.period),

@@ -284,6 +284,13 @@ pub struct ModelArgs {
     /// Give participants a random intercept only (no random age slope).
     #[arg(long)]
     pub no_slope: bool,
+    /// Give each cluster a random age slope as well as its intercept (needs a cluster column).
+    #[arg(long, conflicts_with = "no_slope")]
+    pub cluster_slope: bool,
+    /// Hold every random term's intercept and slopes independent (a diagonal
+    /// covariance) instead of estimating their correlations.
+    #[arg(long)]
+    pub uncorrelated: bool,
 }
 
 /// Flags of `braid inspect`.

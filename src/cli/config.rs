@@ -18,11 +18,11 @@ use crate::error::{Error, Result};
 use crate::infer::TrajectoryRequest;
 use crate::linkage::retest::RetestForm;
 use crate::linkage::{ConvergeOptions, DEFAULT_MARGIN_SD, Margin};
-use crate::lmm::Method;
+use crate::lmm::{Covariance, Method};
 use crate::plan::shard::Shard;
 use crate::plan::{Plan, Population, Route};
 use crate::score::{ItemColumns, ScoreOptions, ScoreRule, expand_items};
-use crate::spec::{AgeSpec, ModelSpec, RandomSpec};
+use crate::spec::{AgeSpec, ModelSpec, RandomSpec, default_random};
 use crate::study::StudyOptions;
 
 /// The `[data]` table of a study file.
@@ -281,13 +281,22 @@ impl Source {
 }
 
 /// The model from a study file (or the default), with the model flags applied.
+///
+/// # Errors
+/// [`Error::Spec`] when `--cluster-slope` is given without a cluster column.
 pub fn model_from(
     study: Option<&Study>,
     m: &ModelArgs,
     center: Option<f64>,
     method: Option<MethodArg>,
     roles: &Roles,
-) -> ModelSpec {
+) -> Result<ModelSpec> {
+    if m.cluster_slope && roles.cluster.is_none() {
+        return Err(Error::Spec {
+            parameter: "--cluster-slope".into(),
+            message: "there is no cluster column to give a slope; name it with --cluster or in the study file".into(),
+        });
+    }
     let mut model = study.map(|s| s.model.clone()).unwrap_or_default();
     if let Some(m) = method {
         model.method = match m {
@@ -318,6 +327,7 @@ pub fn model_from(
             factor: factor.clone(),
             intercept: true,
             slopes: vec![],
+            covariance: Default::default(),
         };
         model.random = Some(
             std::iter::once(&roles.id)
@@ -326,7 +336,19 @@ pub fn model_from(
                 .collect(),
         );
     }
-    model
+    if m.cluster_slope || m.uncorrelated {
+        let mut terms = model.random.take().unwrap_or_else(|| default_random(roles));
+        for t in &mut terms {
+            if m.cluster_slope && roles.cluster.as_ref() == Some(&t.factor) && !t.slopes.contains(&roles.age) {
+                t.slopes.push(roles.age.clone());
+            }
+            if m.uncorrelated {
+                t.covariance = Covariance::Diagonal;
+            }
+        }
+        model.random = Some(terms);
+    }
+    Ok(model)
 }
 
 impl FitArgs {
@@ -343,7 +365,7 @@ impl FitArgs {
             self.center,
             self.method,
             &source.roles,
-        );
+        )?;
         let trajectory = TrajectoryRequest {
             grid: self.grid,
             at: self.at.clone(),
@@ -482,7 +504,7 @@ impl ConvergeArgs {
     /// Those of [`Source::resolve`] and [`ConvergeOptions::new`].
     pub fn options(&self) -> Result<(Source, ModelSpec, ConvergeOptions)> {
         let source = Source::resolve(&self.input)?;
-        let model = model_from(source.study.as_ref(), &self.model, None, None, &source.roles);
+        let model = model_from(source.study.as_ref(), &self.model, None, None, &source.roles)?;
         let margin = match (self.margin, self.margin_sd) {
             (Some(m), _) => Margin::Outcome(m),
             (None, Some(s)) => Margin::Sd(s),

@@ -448,11 +448,13 @@ fn demo_model(design: &Design) -> ModelSpec {
                 factor: "pupil".into(),
                 intercept: true,
                 slopes: vec!["age".into()],
+                covariance: Default::default(),
             },
             RandomSpec {
                 factor: "school".into(),
                 intercept: true,
                 slopes: vec![],
+                covariance: Default::default(),
             },
         ]),
     }

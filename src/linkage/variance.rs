@@ -56,6 +56,7 @@ fn subset(problem: &MixedProblem, rows: &[usize], cols: &[usize]) -> MixedProble
                 level,
                 columns: t.columns.clone(),
                 z: t.z.iter().map(|z| rows.iter().map(|&r| z[r]).collect()).collect(),
+                covariance: t.covariance,
             }
         })
         .collect();

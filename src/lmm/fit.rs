@@ -16,7 +16,7 @@ use super::search::search;
 use super::sensitivity::{Stencil, sensitivity, stencil_steps};
 use super::solution::{components, conditional, fixed_cov, marginal, solve_pls};
 use super::start::{base_start, moment_start, row_scales};
-use super::{Method, MixedProblem};
+use super::{Method, MixedProblem, Subspace};
 use crate::error::{Error, Result};
 
 /// A fit counts as converged when the Newton decrement of the deviance is
@@ -93,8 +93,12 @@ pub struct RandomComponent {
     pub covariance: Vec<Vec<f64>>,
     /// Standard deviations (square roots of the diagonal).
     pub sd: Vec<f64>,
-    /// Correlation matrix (NaN where an SD is zero).
+    /// Correlation matrix (NaN where an SD is zero; zero by assumption off
+    /// the diagonal of a diagonal structure).
     pub correlation: Vec<Vec<f64>>,
+    /// The covariance structure (written out only when not unstructured).
+    #[serde(skip_serializing_if = "super::Covariance::is_unstructured")]
+    pub structure: super::Covariance,
 }
 
 /// How the optimisation went.
@@ -124,8 +128,8 @@ pub struct FitInfo {
     pub restarts: usize,
     /// Advice and warnings for the user.
     pub messages: Vec<String>,
-    /// The last quasi-Newton search's inverse Hessian of the deviance in θ
-    /// (row-major), a first inverse Hessian for the search of a nearby
+    /// The last quasi-Newton search's inverse Hessian of the deviance over
+    /// the estimated entries of θ (row-major), a first inverse Hessian for the search of a nearby
     /// model ([`Prepared::fit_near`]).
     #[serde(skip)]
     pub inverse_hessian: Option<Vec<f64>>,
@@ -367,6 +371,7 @@ fn check_fixed_rank(problem: &MixedProblem, cp: &CrossProducts) -> Result<()> {
 fn best_start(
     problem: &MixedProblem,
     cp: &CrossProducts,
+    sub: &Subspace,
     base: &[f64],
     given: Option<&[f64]>,
     dev: &dyn Fn(&[f64]) -> f64,
@@ -377,7 +382,7 @@ fn best_start(
     // A given start (a nearby model's optimum) is tried first; the generic
     // candidates are evaluated only without one.
     let mut candidates: Vec<Vec<f64>> = match given {
-        Some(g) => vec![g.to_vec()],
+        Some(g) => vec![sub.project(g)],
         None => [0.2, 1.0, 3.0]
             .iter()
             .map(|s| base.iter().map(|v| v * s).collect())
@@ -386,7 +391,7 @@ fn best_start(
     if given.is_none()
         && let Some(m) = moment_start(problem, cp, base)
     {
-        candidates.push(m);
+        candidates.push(sub.project(&m));
     }
     for cand in candidates {
         let d = dev(&cand);
@@ -450,7 +455,7 @@ struct Searched {
     iterations: usize,
     evaluations: usize,
     restarts: usize,
-    /// The last quasi-Newton inverse Hessian, in θ's coordinates.
+    /// The last quasi-Newton inverse Hessian, over the estimated entries of θ.
     inverse_hessian: Option<Vec<f64>>,
     /// The Newton finish's last stencil.
     stencil: Option<Stencil>,
@@ -480,25 +485,29 @@ fn search_optimum(
     given_inverse: Option<&[f64]>,
 ) -> Result<Searched> {
     let method = options.method;
-    let lower = problem.theta_lower();
+    // The search runs over the estimated entries of θ only; a diagonal
+    // structure holds the others at zero.
+    let sub = Subspace::of(problem);
+    let lower = sub.reduce(&problem.theta_lower());
     let dev = |th: &[f64]| criterion::deviance(cp, th, method);
     let base = base_start(problem);
-    let start = best_start(problem, cp, &base, given, &dev)?;
+    let start = best_start(problem, cp, &sub, &base, given, &dev)?;
     // The search runs on θ divided by a scale per entry (a diagonal entry's
     // start value, shared by the off-diagonal entries of its row), so that all
     // coordinates are of order one whatever the units of the slope variables.
     let theta_scale = row_scales(problem, &base);
-    let sdev = |x: &[f64]| {
-        let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
-        dev(&th)
+    let scale = sub.reduce(&theta_scale);
+    let theta_of = |x: &[f64]| -> Vec<f64> {
+        let th: Vec<f64> = x.iter().zip(&scale).map(|(a, s)| a * s).collect();
+        sub.expand(&th)
     };
-    let start_x: Vec<f64> = start.iter().zip(&theta_scale).map(|(a, s)| a / s).collect();
-    let unit: Vec<f64> = base.iter().zip(&theta_scale).map(|(a, s)| a / s).collect();
+    let sdev = |x: &[f64]| dev(&theta_of(x));
+    let start_x: Vec<f64> = sub.reduce(&start).iter().zip(&scale).map(|(a, s)| a / s).collect();
+    let unit: Vec<f64> = sub.reduce(&base).iter().zip(&scale).map(|(a, s)| a / s).collect();
     // The analytic gradient in the scaled coordinates, when the model has one.
     let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
-        let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
-        criterion::deviance_gradient(cp, &th, method)
-            .map(|(d, g)| (d, g.iter().zip(&theta_scale).map(|(a, s)| a * s).collect()))
+        criterion::deviance_gradient(cp, &theta_of(x), method)
+            .map(|(d, g)| (d, sub.reduce(&g).iter().zip(&scale).map(|(a, s)| a * s).collect()))
     };
     let grad: optimize::Gradient = if criterion::has_gradient(cp) {
         Some(&sgrad)
@@ -510,10 +519,11 @@ fn search_optimum(
     // and reused when the finish ends next to where it was taken.
     let last_stencil: RefCell<Option<Stencil>> = RefCell::new(None);
     let shess = |x: &[f64], free: &[usize]| -> Option<(Vec<f64>, Vec<f64>)> {
-        let th: Vec<f64> = x.iter().zip(&theta_scale).map(|(a, s)| a * s).collect();
-        let h = stencil_steps(&th, &theta_scale, free);
+        let th = theta_of(x);
+        let free = sub.full_indices(free);
+        let h = stencil_steps(&th, &theta_scale, &free);
         let mut evals = 0;
-        let st = Stencil::new(cp, &th, free, &h, method, &mut evals)?;
+        let st = Stencil::new(cp, &th, &free, &h, method, &mut evals)?;
         let out = st.scaled_gradient_hessian(&theta_scale);
         *last_stencil.borrow_mut() = Some(st);
         Some(out)
@@ -534,10 +544,10 @@ fn search_optimum(
     };
     // A nearby model's inverse Hessian, when the search starts from that
     // model's optimum.
-    let d = theta_scale.len();
+    let d = sub.dim();
     let first_inverse: Option<Vec<f64>> = given_inverse
         .filter(|h| h.len() == d * d && given.is_some_and(|g| g == start.as_slice()))
-        .map(|h| rescaled(h, &theta_scale, -1));
+        .map(|h| rescaled(h, &scale, -1));
     let (current, (iterations, evaluations, restarts)) = search(
         &sdev,
         grad,
@@ -549,13 +559,13 @@ fn search_optimum(
         optim,
     );
     Ok(Searched {
-        theta: current.theta.iter().zip(&theta_scale).map(|(x, s)| x * s).collect(),
+        theta: theta_of(&current.theta),
         polished: current.polished,
         // The start's candidates cost up to four evaluations.
         iterations,
         evaluations: evaluations + 4,
         restarts,
-        inverse_hessian: current.inverse_hessian.map(|h| rescaled(&h, &theta_scale, 1)),
+        inverse_hessian: current.inverse_hessian.map(|h| rescaled(&h, &scale, 1)),
         stencil: last_stencil.take(),
         theta_scale,
     })
@@ -587,8 +597,13 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
     let sigma2 = pieces.sigma2(method, n, p);
     let deviance = pieces.profiled_deviance(method, n, p);
 
-    let boundary_idx: Vec<usize> = (0..theta.len()).filter(|&i| theta[i] <= lower[i]).collect();
-    let free: Vec<usize> = (0..theta.len()).filter(|i| !boundary_idx.contains(i)).collect();
+    let estimated = problem.estimated();
+    let boundary_idx: Vec<usize> = estimated.iter().copied().filter(|&i| theta[i] <= lower[i]).collect();
+    let free: Vec<usize> = estimated
+        .iter()
+        .copied()
+        .filter(|i| !boundary_idx.contains(i))
+        .collect();
     let boundary: Vec<String> = boundary_idx.iter().map(|&i| names[i].clone()).collect();
 
     let (beta, u) = solve_pls(cp, &factor);
@@ -616,7 +631,7 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
         VarianceSensitivity::unknown(free.len() + 1, p)
     };
     let (converged, messages) = verdict(polished.decrement, polished.gradient_norm, min_curvature, &boundary);
-    let n_params = p + theta.len() + 1;
+    let n_params = p + estimated.len() + 1;
     let loglik = -deviance / 2.0;
     Ok(Fit {
         method,

@@ -21,7 +21,7 @@ use super::fit::RandomComponent;
 use super::optimize::{self, OptimOptions};
 use super::solution::factor_covariance;
 use super::start::{base_start, row_scales};
-use super::{Method, MixedProblem, criterion, unpack_factor};
+use super::{Method, MixedProblem, Subspace, criterion, unpack_factor};
 use crate::error::{Error, Result};
 
 /// The group of each row; every level of the primary term must lie in one.
@@ -292,6 +292,25 @@ fn start_bounds_scales(
     (phi0, lower, scale)
 }
 
+/// The estimated entries of φ: the primary term's estimated θ entries once
+/// per group, the other terms' estimated entries, and every residual scale.
+fn phi_subspace(problem: &MixedProblem, k1: usize, n_groups: usize, n_phi: usize) -> Subspace {
+    let mut estimated: Vec<bool> = Vec::with_capacity(n_phi);
+    for _ in 0..n_groups {
+        estimated.extend(problem.terms[k1].estimated());
+    }
+    for (_, t) in problem.terms.iter().enumerate().filter(|(k, _)| *k != k1) {
+        estimated.extend(t.estimated());
+    }
+    estimated.resize(n_phi, true);
+    let index = estimated
+        .iter()
+        .enumerate()
+        .filter_map(|(k, &e)| e.then_some(k))
+        .collect();
+    Subspace::new(index, n_phi)
+}
+
 fn spec_error(message: String) -> Error {
     Error::Spec {
         parameter: "groups".into(),
@@ -340,9 +359,16 @@ pub fn fit_grouped(
             Err(_) => f64::INFINITY,
         }
     };
-    let unscale = |x: &[f64]| -> Vec<f64> { x.iter().zip(&scale).map(|(a, s)| a * s).collect() };
+    // The search runs over φ's estimated entries: a diagonal structure
+    // holds the entries off a factor's diagonal at zero, in every group.
+    let sub = phi_subspace(problem, k1, n_groups, n_phi);
+    let scale_sub = sub.reduce(&scale);
+    let unscale = |x: &[f64]| -> Vec<f64> {
+        let phi: Vec<f64> = x.iter().zip(&scale_sub).map(|(a, s)| a * s).collect();
+        sub.expand(&phi)
+    };
     let sdev = |x: &[f64]| deviance_at(&unscale(x));
-    let start_x: Vec<f64> = phi0.iter().zip(&scale).map(|(a, s)| a / s).collect();
+    let start_x: Vec<f64> = sub.reduce(&phi0).iter().zip(&scale_sub).map(|(a, s)| a / s).collect();
     if !sdev(&start_x).is_finite() {
         return Err(Error::Numerical {
             step: "group-specific start".into(),
@@ -360,14 +386,14 @@ pub fn fit_grouped(
     // separable case).
     let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
         let (d, g) = lay.gradient(&base, &unscale(x), method)?;
-        Some((d, g.iter().zip(&scale).map(|(a, s)| a * s).collect()))
+        Some((d, sub.reduce(&g).iter().zip(&scale_sub).map(|(a, s)| a * s).collect()))
     };
     let analytic: &optimize::GradientFn = &sgrad;
     let found = optimize::minimize_with(
         sdev,
         criterion::grouped::applies(&base).then_some(analytic),
         &start_x,
-        &lower,
+        &sub.reduce(&lower),
         OptimOptions {
             value_tolerance: GROUPED_VALUE_TOLERANCE,
             decrement_tolerance: Some(super::fit::NEWTON_DECREMENT_TOLERANCE),
@@ -420,7 +446,7 @@ pub fn fit_grouped(
     Ok(GroupedFit {
         method,
         loglik: -deviance / 2.0,
-        n_params: p + n_phi + 1,
+        n_params: p + sub.dim() + 1,
         factor: term.factor.clone(),
         terms: term.columns.clone(),
         groups,
@@ -465,6 +491,7 @@ mod tests {
             level,
             columns: vec!["intercept".into(), "a".into()],
             z: vec![vec![1.0; n], z1],
+            covariance: Default::default(),
         }];
         if schools > 0 {
             terms.push(RandomTermData {
@@ -473,6 +500,7 @@ mod tests {
                 level: school,
                 columns: vec!["intercept".into()],
                 z: vec![vec![1.0; n]],
+                covariance: Default::default(),
             });
         }
         let grouping = Grouping {

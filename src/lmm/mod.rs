@@ -53,8 +53,28 @@ impl Method {
     }
 }
 
+/// The covariance structure of one random term's coefficients.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Covariance {
+    /// Any positive semi-definite matrix: variances and correlations are
+    /// estimated (the default).
+    #[default]
+    Unstructured,
+    /// Independent coefficients: variances are estimated, correlations are
+    /// zero by assumption.
+    Diagonal,
+}
+
+impl Covariance {
+    /// Whether this is the default, unstructured covariance.
+    pub fn is_unstructured(&self) -> bool {
+        *self == Covariance::Unstructured
+    }
+}
+
 /// One random-effect term: a grouping factor with an intercept and/or slopes,
-/// whose coefficients share an unstructured covariance matrix.
+/// whose coefficients share a covariance matrix of the given structure.
 #[derive(Debug, Clone)]
 pub struct RandomTermData {
     /// Name of the grouping factor (a column of the data).
@@ -67,6 +87,8 @@ pub struct RandomTermData {
     pub columns: Vec<String>,
     /// The model-matrix columns of this term, one `Vec` of length n per coefficient.
     pub z: Vec<Vec<f64>>,
+    /// The structure of the coefficients' covariance.
+    pub covariance: Covariance,
 }
 
 impl RandomTermData {
@@ -80,6 +102,15 @@ impl RandomTermData {
             level,
             columns: columns.iter().map(|c| (*c).to_string()).collect(),
             z,
+            covariance: Covariance::Unstructured,
+        }
+    }
+
+    /// The same term with a diagonal covariance (independent coefficients).
+    pub fn diagonal(self) -> Self {
+        RandomTermData {
+            covariance: Covariance::Diagonal,
+            ..self
         }
     }
 
@@ -91,10 +122,26 @@ impl RandomTermData {
     pub fn n_levels(&self) -> usize {
         self.level_names.len()
     }
-    /// Number of covariance parameters (lower triangle of a q×q factor).
+    /// Number of entries of θ for this term: the lower triangle of a q×q
+    /// factor, whatever the structure (a diagonal structure holds the
+    /// entries off the diagonal at zero).
     pub fn n_theta(&self) -> usize {
         let q = self.q();
         q * (q + 1) / 2
+    }
+
+    /// Whether each entry of the term's θ (lower triangle, column-major) is
+    /// estimated: all of them when unstructured, the diagonal only when
+    /// diagonal.
+    pub fn estimated(&self) -> Vec<bool> {
+        let q = self.q();
+        let mut v = Vec::with_capacity(self.n_theta());
+        for j in 0..q {
+            for i in j..q {
+                v.push(i == j || self.covariance == Covariance::Unstructured);
+            }
+        }
+        v
     }
 }
 
@@ -124,6 +171,17 @@ impl MixedProblem {
     pub fn n_theta(&self) -> usize {
         self.terms.iter().map(RandomTermData::n_theta).sum()
     }
+    /// The entries of θ that are estimated, in increasing order; the others
+    /// are held at zero by a diagonal structure.
+    pub fn estimated(&self) -> Vec<usize> {
+        self.terms
+            .iter()
+            .flat_map(RandomTermData::estimated)
+            .enumerate()
+            .filter_map(|(k, e)| e.then_some(k))
+            .collect()
+    }
+
     /// Lower bounds of θ: zero for the diagonal of each factor, −∞ elsewhere.
     pub fn theta_lower(&self) -> Vec<f64> {
         let mut lower = Vec::with_capacity(self.n_theta());
@@ -151,4 +209,48 @@ pub(crate) fn unpack_factor(theta: &[f64], q: usize) -> Vec<f64> {
         }
     }
     t
+}
+
+/// The estimated entries of a parameter vector of length `full`, the others
+/// held at zero: the coordinates a search runs in when a diagonal structure
+/// fixes some entries of θ.
+#[derive(Debug, Clone)]
+pub(crate) struct Subspace {
+    index: Vec<usize>,
+    full: usize,
+}
+
+impl Subspace {
+    /// The entries `index` (increasing) of a vector of length `full`.
+    pub(crate) fn new(index: Vec<usize>, full: usize) -> Subspace {
+        Subspace { index, full }
+    }
+    /// The estimated entries of a problem's θ.
+    pub(crate) fn of(problem: &MixedProblem) -> Subspace {
+        Subspace::new(problem.estimated(), problem.n_theta())
+    }
+    /// The number of estimated entries.
+    pub(crate) fn dim(&self) -> usize {
+        self.index.len()
+    }
+    /// The estimated entries of a full vector.
+    pub(crate) fn reduce(&self, v: &[f64]) -> Vec<f64> {
+        self.index.iter().map(|&i| v[i]).collect()
+    }
+    /// The full vector with `x` at the estimated entries and zero elsewhere.
+    pub(crate) fn expand(&self, x: &[f64]) -> Vec<f64> {
+        let mut v = vec![0.0; self.full];
+        for (&i, &a) in self.index.iter().zip(x) {
+            v[i] = a;
+        }
+        v
+    }
+    /// A full vector with its fixed entries set to zero.
+    pub(crate) fn project(&self, v: &[f64]) -> Vec<f64> {
+        self.expand(&self.reduce(v))
+    }
+    /// The full indices of estimated entries given by their position.
+    pub(crate) fn full_indices(&self, positions: &[usize]) -> Vec<usize> {
+        positions.iter().map(|&j| self.index[j]).collect()
+    }
 }

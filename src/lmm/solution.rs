@@ -188,6 +188,8 @@ impl RandomComponent {
                     .map(|j| {
                         if i == j {
                             1.0
+                        } else if term.covariance == super::Covariance::Diagonal {
+                            0.0
                         } else if sd[i] > 0.0 && sd[j] > 0.0 {
                             covariance[i][j] / (sd[i] * sd[j])
                         } else {
@@ -204,6 +206,7 @@ impl RandomComponent {
             covariance,
             sd,
             correlation,
+            structure: term.covariance,
         }
     }
 }

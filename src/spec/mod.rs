@@ -14,7 +14,7 @@ pub use basis::AgeBasis;
 
 use crate::data::{CovariateValues, Panel};
 use crate::error::{Error, Result};
-use crate::lmm::{Method, MixedProblem, RandomTermData};
+use crate::lmm::{Covariance, Method, MixedProblem, RandomTermData};
 
 /// How age enters the fixed part.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -54,6 +54,11 @@ pub struct RandomSpec {
     /// Columns with random slopes. The age column means centred age.
     #[serde(default)]
     pub slopes: Vec<String>,
+    /// The structure of the coefficients' covariance: `"unstructured"` (the
+    /// default; correlations estimated) or `"diagonal"` (independent
+    /// intercept and slopes).
+    #[serde(default, skip_serializing_if = "Covariance::is_unstructured")]
+    pub covariance: Covariance,
 }
 
 fn yes() -> bool {
@@ -84,23 +89,30 @@ impl ModelSpec {
     pub fn random_terms(&self, panel: &Panel) -> Vec<RandomSpec> {
         match &self.random {
             Some(r) => r.clone(),
-            None => {
-                let mut v = vec![RandomSpec {
-                    factor: panel.roles.id.clone(),
-                    intercept: true,
-                    slopes: vec![panel.roles.age.clone()],
-                }];
-                if let Some(c) = &panel.roles.cluster {
-                    v.push(RandomSpec {
-                        factor: c.clone(),
-                        intercept: true,
-                        slopes: vec![],
-                    });
-                }
-                v
-            }
+            None => default_random(&panel.roles),
         }
     }
+}
+
+/// The random terms used when a model names none: an intercept and age
+/// slope per participant, with an unstructured covariance, plus an
+/// intercept per cluster when a cluster is given.
+pub fn default_random(roles: &crate::data::Roles) -> Vec<RandomSpec> {
+    let mut v = vec![RandomSpec {
+        factor: roles.id.clone(),
+        intercept: true,
+        slopes: vec![roles.age.clone()],
+        covariance: Covariance::Unstructured,
+    }];
+    if let Some(c) = &roles.cluster {
+        v.push(RandomSpec {
+            factor: c.clone(),
+            intercept: true,
+            slopes: vec![],
+            covariance: Covariance::Unstructured,
+        });
+    }
+    v
 }
 
 /// The fitted-model frame: the engine's problem plus what is needed to read
@@ -334,6 +346,7 @@ fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64) -> Result<Ran
         level: codes.codes.clone(),
         columns,
         z,
+        covariance: rs.covariance,
     })
 }
 
@@ -360,6 +373,8 @@ fn describe(panel: &Panel, basis: &AgeBasis, terms: &[RandomTermData], method: c
             .join(" and ");
         let structure = if t.columns.len() == 1 {
             "one variance"
+        } else if t.covariance == Covariance::Diagonal {
+            "independent (diagonal covariance)"
         } else {
             "unstructured covariance"
         };

@@ -39,6 +39,7 @@ fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
             level,
             columns: vec!["intercept".into()],
             z: vec![vec![1.0; rows]],
+            covariance: Default::default(),
         }],
     };
     (problem, groups)

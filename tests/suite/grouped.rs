@@ -57,6 +57,7 @@ fn panel(seed: u64, per_cohort: usize, sd_int: &[f64], sd_res: &[f64], schools: 
         level,
         columns: vec!["intercept".into(), "a".into()],
         z: vec![vec![1.0; n], z1],
+        covariance: Default::default(),
     }];
     if schools > 0 {
         terms.push(RandomTermData {
@@ -65,6 +66,7 @@ fn panel(seed: u64, per_cohort: usize, sd_int: &[f64], sd_res: &[f64], schools: 
             level: school,
             columns: vec!["intercept".into()],
             z: vec![vec![1.0; n]],
+            covariance: Default::default(),
         });
     }
     let grouping = Grouping {
@@ -93,6 +95,7 @@ fn cohort_rows(problem: &MixedProblem, grouping: &Grouping, c: u32) -> MixedProb
             level: rows.iter().map(|&r| t.level[r] - first).collect(),
             columns: t.columns.clone(),
             z: t.z.iter().map(|z| rows.iter().map(|&r| z[r]).collect()).collect(),
+            covariance: t.covariance,
         }],
     }
 }

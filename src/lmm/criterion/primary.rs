@@ -438,6 +438,7 @@ mod tests {
                     level: lvl1,
                     columns: (0..q1).map(|c| c.to_string()).collect(),
                     z: z1,
+                    covariance: Default::default(),
                 },
                 RandomTermData {
                     factor: "s".into(),
@@ -445,6 +446,7 @@ mod tests {
                     level: lvl2,
                     columns: vec!["i".into()],
                     z: vec![vec![1.0; n]],
+                    covariance: Default::default(),
                 },
             ],
         }

@@ -212,6 +212,7 @@ mod tests {
             level,
             columns,
             z,
+            covariance: Default::default(),
         };
         let problem = MixedProblem {
             y,

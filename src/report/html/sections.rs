@@ -372,7 +372,9 @@ pub(super) fn trajectory(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
             rows.push(vec![
                 format!("{} · {}", esc(&term.factor), esc(name)),
                 num(f, &format!("random/{k}/sd/{j}"), term.sd[j], 3),
-                if j > 0 {
+                if j > 0 && term.structure == crate::lmm::Covariance::Diagonal {
+                    "0 (assumed)".into()
+                } else if j > 0 {
                     num(
                         f,
                         &format!("random/{k}/correlation/{}/{j}", 0),

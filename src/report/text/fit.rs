@@ -103,7 +103,12 @@ fn random_block(s: &mut String, r: &FitReport, truth: Option<&[(String, f64)]>) 
                 find(&format!("sd:{}:{}", comp.factor, term)),
             );
         }
-        // Each correlation on its own labelled line.
+        // Each correlation on its own labelled line; a diagonal structure
+        // states its assumption once instead.
+        if comp.structure == crate::lmm::Covariance::Diagonal && comp.terms.len() > 1 {
+            let _ = writeln!(s, "  {:<16}correlations held at 0 (independent coefficients)", "");
+            continue;
+        }
         for (i, ti) in comp.terms.iter().enumerate() {
             for (j, tj) in comp.terms.iter().enumerate().take(i) {
                 let t = find(&format!("cor:{}:{}", comp.factor, ti))
