@@ -256,7 +256,16 @@ fn the_structure_flags_are_stated_on_the_screen() {
         braid()
             .arg("fit")
             .arg(data_dir().join("sim_school.csv"))
-            .args(["--id", "pupil", "--age", "age", "--outcome", "score", "--cluster", "school"])
+            .args([
+                "--id",
+                "pupil",
+                "--age",
+                "age",
+                "--outcome",
+                "score",
+                "--cluster",
+                "school",
+            ])
             .args(["--uncorrelated", "--cluster-slope", "--degree", "1"]),
     );
     expect_words(

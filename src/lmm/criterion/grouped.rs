@@ -76,7 +76,7 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
     let n_groups = at.scale.len();
     let nt = q * (q + 1) / 2;
     let all = factors(cp, &at.theta);
-    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
+    let sec: Vec<Vec<f64>> = cp.secondary.iter().map(|&kt| all[kt].clone()).collect();
     let weight: Vec<f64> = at.scale.iter().map(|s| s * s).collect();
     // The dense part of the scaled rows, Σ_g w_g D_g.
     let mut d = vec![0.0; m * m];
@@ -85,10 +85,10 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
     }
     let s = scaled_dense_of(cp, &d, &all);
     let (part, dense, pieces, sums) = match q {
-        1 => grouped_passes::<1>(cp, at, &weight, &theta_s, s, method),
-        2 => grouped_passes::<2>(cp, at, &weight, &theta_s, s, method),
-        3 => grouped_passes::<3>(cp, at, &weight, &theta_s, s, method),
-        _ => grouped_passes::<4>(cp, at, &weight, &theta_s, s, method),
+        1 => grouped_passes::<1>(cp, at, &weight, &sec, s, method),
+        2 => grouped_passes::<2>(cp, at, &weight, &sec, s, method),
+        3 => grouped_passes::<3>(cp, at, &weight, &sec, s, method),
+        _ => grouped_passes::<4>(cp, at, &weight, &sec, s, method),
     }?;
     let jacobian: f64 = -2.0
         * at.n_rows
@@ -110,7 +110,9 @@ pub fn grouped_gradient(cp: &CrossProducts, at: &GroupedTheta, method: Method) -
         .collect();
     let mut a_grad = vec![0.0; at.theta.len()];
     let mut r2_grad = vec![0.0; at.theta.len()];
-    dense.secondary_derivatives(cp, &theta_s, &mut a_grad, &mut r2_grad);
+    if !dense.secondary_derivatives(cp, &sec, &mut a_grad, &mut r2_grad) {
+        return None;
+    }
     let d_theta = a_grad.iter().zip(&r2_grad).map(|(a, r)| a + ratio * r).collect();
     let mut d_scale = vec![0.0; n_groups];
     for g in 1..n_groups {
@@ -136,7 +138,7 @@ fn grouped_passes<const Q: usize>(
     cp: &CrossProducts,
     at: &GroupedTheta,
     weight: &[f64],
-    theta_s: &[f64],
+    sec: &[Vec<f64>],
     s: Vec<f64>,
     method: Method,
 ) -> Option<(First, DenseSolve, Pieces, Second)> {
@@ -149,5 +151,5 @@ fn grouped_passes<const Q: usize>(
         group: Some(at.level_group),
         weight: weight.to_vec(),
     };
-    passes(cp, &shared, theta_s, s, method)
+    passes(cp, &shared, sec, s, method)
 }

@@ -20,17 +20,19 @@ use super::secondary::{DenseSolve, Levels};
 use super::{LogDet, factors, scaled_dense};
 
 /// Whether the two-pass gradient applies: a primary term of 1 to 4
-/// coefficients, alone or beside intercept terms.
+/// coefficients, alone or beside other terms (intercepts, or intercepts
+/// and slopes).
 pub fn applies(cp: &CrossProducts) -> bool {
-    cp.primary.is_some() && (1..=4).contains(&cp.q1) && cp.secondary.iter().all(|&k| cp.term_q[k] == 1)
+    cp.primary.is_some() && (1..=4).contains(&cp.q1)
 }
 
 /// A level's non-zero columns of `Cᵢ = Z₁ᵢᵀ[Z₂Λ₂ X y]`, in increasing dense
-/// index: its secondary blocks (scaled by their θ), then X and y.
+/// index: its secondary blocks (each right-multiplied by its term's factor
+/// T_s, row-major in `sec`), then X and y.
 fn gather<const Q: usize>(
     cp: &CrossProducts,
     i: usize,
-    theta_s: &[f64],
+    sec: &[Vec<f64>],
     w: f64,
     cols: &mut Vec<usize>,
     c: &mut Vec<[f64; Q]>,
@@ -40,14 +42,33 @@ fn gather<const Q: usize>(
     c.clear();
     let (lo, hi) = cp.link_ranges[i];
     for link in &cp.links[lo..hi] {
-        let v = &cp.link_values[link.start..link.start + Q];
-        let th = theta_s[link.secondary] * w;
-        let mut col = [0.0; Q];
-        for r in 0..Q {
-            col[r] = v[r] * th;
+        let ts = &sec[link.secondary];
+        if ts.len() == 1 {
+            let v = &cp.link_values[link.start..link.start + Q];
+            let th = ts[0] * w;
+            let mut col = [0.0; Q];
+            for r in 0..Q {
+                col[r] = v[r] * th;
+            }
+            cols.push(link.offset);
+            c.push(col);
+            continue;
         }
-        cols.push(link.offset);
-        c.push(col);
+        // A block of q_s columns: (Z₁ᵢᵀZ_s,l) T_s, T_s lower triangular.
+        let qs = cp.term_q[cp.secondary[link.secondary]];
+        let v = &cp.link_values[link.start..link.start + Q * qs];
+        for b in 0..qs {
+            let mut col = [0.0; Q];
+            for r in 0..Q {
+                let mut acc = 0.0;
+                for a in b..qs {
+                    acc += v[r * qs + a] * ts[a * qs + b];
+                }
+                col[r] = acc * w;
+            }
+            cols.push(link.offset + b);
+            c.push(col);
+        }
     }
     let zi = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
     for j in 0..c1 {
@@ -109,7 +130,7 @@ fn over_levels<T: Send>(
 fn first<const Q: usize>(
     cp: &CrossProducts,
     shared: &Levels<Q>,
-    theta_s: &[f64],
+    sec: &[Vec<f64>],
     range: std::ops::Range<usize>,
 ) -> First {
     let m = cp.m;
@@ -126,7 +147,7 @@ fn first<const Q: usize>(
     let (mut cols, mut c) = (Vec::new(), Vec::new());
     let (mut b, mut h): (Vec<[f64; Q]>, Vec<[f64; Q]>) = (Vec::new(), Vec::new());
     for i in range {
-        let (g, solver, (gt, l, inv)) = open_level(cp, shared, theta_s, i, &mut cols, &mut c, &mut logdet);
+        let (g, solver, (gt, l, inv)) = open_level(cp, shared, sec, i, &mut cols, &mut c, &mut logdet);
         let nc = cols.len();
         b.resize(nc, [0.0; Q]);
         h.resize(nc, [0.0; Q]);
@@ -167,7 +188,7 @@ fn first<const Q: usize>(
 fn open_level<'s, const Q: usize>(
     cp: &CrossProducts,
     shared: &'s Levels<Q>,
-    theta_s: &[f64],
+    sec: &[Vec<f64>],
     i: usize,
     cols: &mut Vec<usize>,
     c: &mut Vec<[f64; Q]>,
@@ -175,7 +196,7 @@ fn open_level<'s, const Q: usize>(
 ) -> (usize, &'s LevelSolver<Q>, ([[f64; Q]; Q], [[f64; Q]; Q], [f64; Q])) {
     let g = shared.group.map_or(0, |lg| lg[i] as usize);
     let (solver, w) = (&shared.solvers[g], shared.weight[g]);
-    gather::<Q>(cp, i, theta_s, w, cols, c);
+    gather::<Q>(cp, i, sec, w, cols, c);
     let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
     let block = if w == 1.0 {
         level_block::<Q>(gi, &solver.tq, logdet)
@@ -194,7 +215,7 @@ fn open_level<'s, const Q: usize>(
 fn second<const Q: usize>(
     cp: &CrossProducts,
     shared: &Levels<Q>,
-    theta_s: &[f64],
+    sec: &[Vec<f64>],
     xi: &[f64],
     n: &[f64],
     nd: usize,
@@ -218,7 +239,7 @@ fn second<const Q: usize>(
     let mut nu: Vec<[f64; Q]> = Vec::new();
     let mut nbh: Vec<[f64; Q]> = Vec::new();
     for i in range {
-        let (g, solver, (gt, l, inv)) = open_level(cp, shared, theta_s, i, &mut cols, &mut c, &mut discard);
+        let (g, solver, (gt, l, inv)) = open_level(cp, shared, sec, i, &mut cols, &mut c, &mut discard);
         let nc = cols.len();
         b.resize(nc, [0.0; Q]);
         h.resize(nc, [0.0; Q]);
@@ -289,11 +310,11 @@ fn second<const Q: usize>(
 pub(super) fn passes<const Q: usize>(
     cp: &CrossProducts,
     shared: &Levels<Q>,
-    theta_s: &[f64],
+    sec: &[Vec<f64>],
     mut s: Vec<f64>,
     method: Method,
 ) -> Option<(First, DenseSolve, super::Pieces, Second)> {
-    let part = over_levels(cp, &|range| first::<Q>(cp, shared, theta_s, range), |a, b| {
+    let part = over_levels(cp, &|range| first::<Q>(cp, shared, sec, range), |a, b| {
         a.logdet += b.logdet;
         a.dlog.iter_mut().zip(&b.dlog).for_each(|(x, y)| *x += y);
         a.bh.iter_mut().zip(&b.bh).for_each(|(x, y)| *x += y);
@@ -312,7 +333,7 @@ pub(super) fn passes<const Q: usize>(
     let n: Vec<f64> = (0..nd * nd).map(|k| dense.inv_t[(k / nd, k % nd)]).collect();
     let sums = over_levels(
         cp,
-        &|range| second::<Q>(cp, shared, theta_s, &dense.xi, &n, nd, range),
+        &|range| second::<Q>(cp, shared, sec, &dense.xi, &n, nd, range),
         |a, b| {
             for (x, y) in [
                 (&mut a.quad, &b.quad),
@@ -333,13 +354,13 @@ fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -
     let off = cp.theta_offset[k1];
     let t = unpack_factor(&theta[off..off + nt], Q);
     let all = factors(cp, theta);
-    let theta_s: Vec<f64> = cp.secondary.iter().map(|&kt| all[kt][0]).collect();
+    let sec: Vec<Vec<f64>> = cp.secondary.iter().map(|&kt| all[kt].clone()).collect();
     let shared = Levels::<Q> {
         solvers: vec![LevelSolver::<Q>::new(&t)],
         group: None,
         weight: vec![1.0],
     };
-    let (part, dense, pieces, sums) = passes(cp, &shared, &theta_s, scaled_dense(cp, &all), method)?;
+    let (part, dense, pieces, sums) = passes(cp, &shared, &sec, scaled_dense(cp, &all), method)?;
     let mut a_grad = vec![0.0; theta.len()];
     let mut r2_grad = vec![0.0; theta.len()];
     for k in 0..nt {
@@ -347,7 +368,9 @@ fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -
         a_grad[off + k] = part.dlog[k] - 2.0 * sums.trace[k];
         r2_grad[off + k] = -2.0 * sums.quad[k];
     }
-    dense.secondary_derivatives(cp, &theta_s, &mut a_grad, &mut r2_grad);
+    if !dense.secondary_derivatives(cp, &sec, &mut a_grad, &mut r2_grad) {
+        return None;
+    }
     Some(dense.gradient_eval(cp, &pieces, method, a_grad, r2_grad))
 }
 
