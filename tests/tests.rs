@@ -28,6 +28,8 @@ mod plan; // planning: the closed-form SE, simulated power and size, shards, bad
 mod recovery; // seeded simulations recover the known truth
 #[path = "suite/reference.rs"]
 mod reference; // statsmodels MixedLM reference fits on published and simulated data
+#[path = "suite/routes.rs"]
+mod routes; // the blocked and the sparse route agree; the sparse route against statsmodels
 #[path = "suite/score.rs"]
 mod score; // scoring and reliability against pingouin and Feldt, closed forms
 #[path = "suite/snapshots.rs"]

@@ -61,6 +61,35 @@ pub struct FitOptions {
     pub optim: OptimOptions,
     /// What the fit computes beyond the estimates.
     pub detail: Detail,
+    /// The factorisation: chosen by the size of the dense part (default),
+    /// or forced.
+    pub route: Route,
+}
+
+/// The factorisation a fit runs on (notes/criterion.md, "The sparse route").
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Route {
+    /// Chosen by the model: blocked unless the terms beside the largest one
+    /// would make the dense part larger than [`DENSE_LIMIT`].
+    #[default]
+    Auto,
+    /// The largest term's levels one by one, every other term's columns in
+    /// one dense block.
+    Blocked,
+    /// Every random term's columns in one sparse Cholesky factor.
+    Sparse,
+}
+
+impl Route {
+    /// The route a fit of `problem` takes under this choice.
+    pub fn resolve(self, problem: &MixedProblem) -> Route {
+        match self {
+            Route::Auto if super::crossprod::dense_order(problem).0 > DENSE_LIMIT => Route::Sparse,
+            Route::Auto => Route::Blocked,
+            chosen => chosen,
+        }
+    }
 }
 
 /// What a fit computes beyond θ̂, β̂, cov(β̂), σ̂² and the likelihood.
@@ -133,6 +162,8 @@ pub struct FitInfo {
     /// model ([`Prepared::fit_near`]).
     #[serde(skip)]
     pub inverse_hessian: Option<Vec<f64>>,
+    /// The factorisation the fit ran on: blocked or sparse.
+    pub route: Route,
 }
 
 /// Sensitivity of cov(β̂) to the variance parameters, for Satterthwaite df.
@@ -210,7 +241,7 @@ impl Fit {
 }
 
 /// Names of the covariance parameters θ, as `factor:row,col`.
-fn theta_names(problem: &MixedProblem) -> Vec<String> {
+pub(super) fn theta_names(problem: &MixedProblem) -> Vec<String> {
     let mut names = Vec::new();
     for t in &problem.terms {
         let q = t.q();
@@ -234,7 +265,10 @@ fn theta_names(problem: &MixedProblem) -> Vec<String> {
 /// [`Error::Numerical`] when the fixed design is rank deficient (naming the
 /// first collinear column) or the criterion cannot be evaluated at the start.
 pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
-    Prepared::new(problem)?.fit(options, None)
+    match options.route.resolve(problem) {
+        Route::Sparse => super::sparse::fit(problem, options, None),
+        _ => Prepared::new(problem)?.fit(options, None),
+    }
 }
 
 /// [`fit`] with `start` (a θ of this problem, from the fit of a nearby
@@ -244,7 +278,10 @@ pub fn fit(problem: &MixedProblem, options: FitOptions) -> Result<Fit> {
 /// # Errors
 /// As [`fit`].
 pub fn fit_from(problem: &MixedProblem, options: FitOptions, start: &[f64]) -> Result<Fit> {
-    Prepared::new(problem)?.fit(options, Some(start))
+    match options.route.resolve(problem) {
+        Route::Sparse => super::sparse::fit(problem, options, Some(start)),
+        _ => Prepared::new(problem)?.fit(options, Some(start)),
+    }
 }
 
 /// [`fit`] from a nearby model's fit ([`Prepared::fit_near`]).
@@ -252,7 +289,10 @@ pub fn fit_from(problem: &MixedProblem, options: FitOptions, start: &[f64]) -> R
 /// # Errors
 /// As [`fit`].
 pub fn fit_near(problem: &MixedProblem, options: FitOptions, near: &Fit) -> Result<Fit> {
-    Prepared::new(problem)?.fit_near(options, near)
+    match options.route.resolve(problem) {
+        Route::Sparse => super::sparse::fit(problem, options, Some(&near.theta)),
+        _ => Prepared::new(problem)?.fit_near(options, near),
+    }
 }
 
 /// A problem with its cross-products gathered once, for several fits of the
@@ -331,7 +371,7 @@ fn check_dense_order(problem: &MixedProblem) -> Result<()> {
     Err(Error::Spec {
         parameter: "random".into(),
         message: format!(
-            "the random terms beside the largest one, {}, would make a dense block of order {} (about {:.1} GB a copy), above braid's limit of {}; two large crossed factors need a sparse route braid does not have yet: group the smaller factor's levels, or fit it as a fixed effect",
+            "the random terms beside the largest one, {}, would make a dense block of order {} (about {:.1} GB a copy), above the blocked route's limit of {}; a single fit takes the sparse route for such models, but this analysis needs the blocked one: group the smaller factor's levels, or fit it as a fixed effect",
             named.join(", "),
             crate::stats::thousands(m),
             (m * m * 8) as f64 / 1e9,
@@ -410,7 +450,7 @@ fn best_start(
 }
 
 /// Whether the fit converged, and the messages for the reader.
-fn verdict(
+pub(super) fn verdict(
     decrement: Option<f64>,
     gradient_norm: f64,
     min_curvature: Option<f64>,
@@ -609,7 +649,7 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
     let (beta, u) = solve_pls(cp, &factor);
     let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
     let (blups, fitted, fitted_marginal) = if full {
-        conditional(problem, cp, &theta, &beta, &u)
+        conditional(problem, &criterion::factors(cp, &theta), &beta, &u)
     } else {
         (Vec::new(), Vec::new(), marginal(problem, &beta))
     };
@@ -661,6 +701,7 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
             restarts,
             messages,
             inverse_hessian,
+            route: Route::Blocked,
         },
         sensitivity,
     })
@@ -672,9 +713,10 @@ mod tests {
     use crate::lmm::RandomTermData;
 
     // Two large crossed factors (pupils crossed with 4,500 raters) are
-    // refused before any memory is taken, naming the factor and the limit.
+    // refused by the blocked route before any memory is taken, naming the
+    // factor and the limit; left to choose, the fit takes the sparse route.
     #[test]
-    fn two_large_crossed_factors_are_refused_with_a_clear_error() {
+    fn two_large_crossed_factors_take_the_sparse_route() {
         let n = 9_000;
         let term = |factor: &str, k: usize| {
             let level = (0..n).map(|r| (r % k) as u32).collect();
@@ -686,11 +728,18 @@ mod tests {
             x: vec![1.0; n],
             terms: vec![term("pupil", 6_000), term("rater", 4_500)],
         };
-        let e = fit(&problem, FitOptions::default()).unwrap_err().to_string();
+        let blocked = FitOptions {
+            route: Route::Blocked,
+            ..Default::default()
+        };
+        let e = fit(&problem, blocked).unwrap_err().to_string();
         assert!(
             e.contains("'rater' (4,500 columns)") && e.contains("limit of 4,000"),
             "{e}"
         );
+        let f = fit(&problem, FitOptions::default()).unwrap();
+        assert_eq!(f.info.route, Route::Sparse);
+        assert_eq!(f.random.len(), 2);
     }
 }
 

@@ -26,9 +26,10 @@ pub mod optimize;
 mod search;
 mod sensitivity;
 mod solution;
+mod sparse;
 mod start;
 
-pub use fit::{Detail, Fit, FitInfo, FitOptions, Prepared, RandomComponent, fit, fit_from, fit_near};
+pub use fit::{Detail, Fit, FitInfo, FitOptions, Prepared, RandomComponent, Route, fit, fit_from, fit_near};
 
 use serde::{Deserialize, Serialize};
 

@@ -31,45 +31,57 @@ pub(super) fn piece_derivatives(
     sigma2: f64,
     evals: &mut usize,
 ) -> Option<PieceDerivatives> {
-    let d = free.len();
     let p = cp.p;
     let a_of = |f: &Factor| match method {
         Method::Reml => f.pieces.logdet_z + f.pieces.logdet_x,
         Method::Ml => f.pieces.logdet_z,
     };
-    let mut at = |moves: &[(usize, f64)]| -> Option<Factor> {
+    let at = |th: &[f64]| -> Option<PointPieces> {
+        let f = criterion::evaluate(cp, th, false).ok()?;
+        Some((a_of(&f), f.pieces.pwrss, fixed_cov(&f, cp.q2_total, p, sigma2)))
+    };
+    piece_derivatives_by(at, theta, free, h, evals)
+}
+
+/// A(θ), r²(θ) and cov(β̂) at a fixed σ², at one θ.
+pub(super) type PointPieces = (f64, f64, Vec<f64>);
+
+/// [`piece_derivatives`] for any route that evaluates the pieces at a θ.
+pub(super) fn piece_derivatives_by(
+    eval: impl Fn(&[f64]) -> Option<PointPieces>,
+    theta: &[f64],
+    free: &[usize],
+    h: &[f64],
+    evals: &mut usize,
+) -> Option<PieceDerivatives> {
+    let d = free.len();
+    let mut at = |moves: &[(usize, f64)]| -> Option<PointPieces> {
         let mut th = theta.to_vec();
         for &(j, v) in moves {
             th[free[j]] += v;
         }
         *evals += 1;
-        criterion::evaluate(cp, &th, false).ok()
+        eval(&th)
     };
-    let f0 = at(&[])?;
-    let (a0, r0) = (a_of(&f0), f0.pieces.pwrss);
-    let c0 = fixed_cov(&f0, cp.q2_total, p, sigma2);
+    let (a0, r0, c0) = at(&[])?;
     let mut a_hess = vec![0.0; d * d];
     let mut r2_hess = vec![0.0; d * d];
     let mut r2_grad = vec![0.0; d];
     let mut dcov = Vec::with_capacity(d);
     for i in 0..d {
-        let fp = at(&[(i, h[i])])?;
-        let fm = at(&[(i, -h[i])])?;
-        a_hess[i * d + i] = (a_of(&fp) - 2.0 * a0 + a_of(&fm)) / (h[i] * h[i]);
-        r2_hess[i * d + i] = (fp.pieces.pwrss - 2.0 * r0 + fm.pieces.pwrss) / (h[i] * h[i]);
-        r2_grad[i] = (fp.pieces.pwrss - fm.pieces.pwrss) / (2.0 * h[i]);
-        let (cp_, cm_) = (
-            fixed_cov(&fp, cp.q2_total, p, sigma2),
-            fixed_cov(&fm, cp.q2_total, p, sigma2),
-        );
+        let (ap, rp, cp_) = at(&[(i, h[i])])?;
+        let (am, rm, cm_) = at(&[(i, -h[i])])?;
+        a_hess[i * d + i] = (ap - 2.0 * a0 + am) / (h[i] * h[i]);
+        r2_hess[i * d + i] = (rp - 2.0 * r0 + rm) / (h[i] * h[i]);
+        r2_grad[i] = (rp - rm) / (2.0 * h[i]);
         dcov.push(cp_.iter().zip(&cm_).map(|(x, y)| (x - y) / (2.0 * h[i])).collect());
         for j in 0..i {
             let mut av = [0.0; 4];
             let mut rv = [0.0; 4];
             for (k, (si, sj)) in [(1.0, 1.0), (1.0, -1.0), (-1.0, 1.0), (-1.0, -1.0)].iter().enumerate() {
-                let f = at(&[(i, si * h[i]), (j, sj * h[j])])?;
-                av[k] = a_of(&f);
-                rv[k] = f.pieces.pwrss;
+                let (a, r, _) = at(&[(i, si * h[i]), (j, sj * h[j])])?;
+                av[k] = a;
+                rv[k] = r;
             }
             let den = 4.0 * h[i] * h[j];
             let va = (av[0] - av[1] - av[2] + av[3]) / den;
@@ -242,14 +254,7 @@ pub(super) fn sensitivity(
     sigma2: f64,
     kept: Option<Stencil>,
 ) -> ((VarianceSensitivity, usize), Option<f64>) {
-    let n = cp.n;
-    let p = cp.p;
-    let d = free.len();
-    let k = d + 1;
-    let nu = match method {
-        Method::Reml => (n - p) as f64,
-        Method::Ml => n as f64,
-    };
+    let (n, p, d) = (cp.n, cp.p, free.len());
     let mut evals = 0usize;
     let h = stencil_steps(theta, theta_scale, free);
     let stencil = kept.or_else(|| {
@@ -261,8 +266,28 @@ pub(super) fn sensitivity(
         Some(st) => Some(st.derivatives(sigma2)),
         None => piece_derivatives(cp, theta, free, &h, method, sigma2, &mut evals),
     };
+    let (sens, min_curvature) = assemble(derivs, n, p, d, method, sigma2);
+    ((sens, evals), min_curvature)
+}
+
+/// The deviance Hessian over φ = (θ_free, σ²), its inverse (×2) and the
+/// derivatives of cov(β̂) from the pieces' derivatives (unknown when there
+/// are none), with the smallest eigenvalue of the θ_free block.
+pub(super) fn assemble(
+    derivs: Option<PieceDerivatives>,
+    n: usize,
+    p: usize,
+    d: usize,
+    method: Method,
+    sigma2: f64,
+) -> (VarianceSensitivity, Option<f64>) {
+    let k = d + 1;
+    let nu = match method {
+        Method::Reml => (n - p) as f64,
+        Method::Ml => n as f64,
+    };
     let Some(derivs) = derivs else {
-        return ((VarianceSensitivity::unknown(k, p), evals), None);
+        return (VarianceSensitivity::unknown(k, p), None);
     };
     let PieceDerivatives {
         c0,
@@ -302,5 +327,5 @@ pub(super) fn sensitivity(
         }
         Err(_) => vec![f64::NAN; k * k],
     };
-    ((VarianceSensitivity { acov, dcov }, evals), min_curvature)
+    (VarianceSensitivity { acov, dcov }, min_curvature)
 }

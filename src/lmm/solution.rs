@@ -118,15 +118,9 @@ pub(super) fn marginal(problem: &MixedProblem, beta: &[f64]) -> Vec<f64> {
         .collect()
 }
 
-/// BLUPs b = Λu per term and level, conditional and marginal fitted values.
-pub(super) fn conditional(
-    problem: &MixedProblem,
-    cp: &CrossProducts,
-    theta: &[f64],
-    beta: &[f64],
-    u: &[Vec<f64>],
-) -> Conditional {
-    let t = criterion::factors(cp, theta);
+/// BLUPs b = Λu per term and level, conditional and marginal fitted values;
+/// `t` holds each term's relative factor (row-major).
+pub(super) fn conditional(problem: &MixedProblem, t: &[Vec<f64>], beta: &[f64], u: &[Vec<f64>]) -> Conditional {
     let mut blups = Vec::with_capacity(problem.terms.len());
     for (k, term) in problem.terms.iter().enumerate() {
         let q = term.q();

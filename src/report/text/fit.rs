@@ -211,6 +211,13 @@ fn closing_block(s: &mut String, r: &FitReport) {
         },
         info.gradient_norm
     );
+    if info.route == crate::lmm::Route::Sparse {
+        let _ = writeln!(
+            s,
+            "{:<11}sparse route: the crossed terms were too large for one dense block",
+            ""
+        );
+    }
     for m in &info.messages {
         let _ = writeln!(s, "{:<11}note: {m}", "");
     }
