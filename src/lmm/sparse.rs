@@ -351,7 +351,7 @@ impl SparseSystem {
         sxx_llt.solve_in_place_with_conj(Conj::No, beta.as_mut());
         let beta: Vec<f64> = (0..p).map(|i| beta[(i, 0)]).collect();
         let pwrss = s[p * c1 + p] - (0..p).map(|i| s[i * c1 + p] * beta[i]).sum::<f64>();
-        if !(pwrss > 0.0) || !logdet_z.is_finite() || !logdet_x.is_finite() {
+        if pwrss.is_nan() || pwrss <= 0.0 || !logdet_z.is_finite() || !logdet_x.is_finite() {
             return None;
         }
         let pieces = Pieces {
