@@ -20,9 +20,10 @@ use std::collections::HashMap;
 
 use faer::Mat;
 use faer::dyn_stack::{MemBuffer, MemStack};
+use faer::sparse::linalg::SupernodalThreshold;
 use faer::sparse::linalg::cholesky::{
     CholeskySymbolicParams, LltRef, SymbolicCholesky, SymbolicCholeskyRaw, SymmetricOrdering,
-    factorize_symbolic_cholesky, supernodal::SupernodalLltRef,
+    factorize_symbolic_cholesky, simplicial::SymbolicSimplicialCholesky, supernodal::SupernodalLltRef,
 };
 use faer::sparse::{SparseColMatRef, SymbolicSparseColMatRef};
 use faer::{Conj, Side};
@@ -66,6 +67,17 @@ pub(crate) struct SparseSystem {
     pub(crate) y_shift: f64,
     pub(crate) intercept: Option<usize>,
     symbolic: SymbolicCholesky<usize>,
+    /// Per column of the simplicial factor, its (row, slot) pairs by row.
+    sorted: Vec<(usize, usize)>,
+}
+
+/// One factorisation at θ: the terms' factors, the values of M's factor
+/// and `M⁻¹W`, with the solution.
+struct Factored {
+    t: Vec<Vec<f64>>,
+    l_values: Vec<f64>,
+    v: Mat<f64>,
+    solution: SparseSolution,
 }
 
 /// One evaluation's solution: the pieces, and what the estimates need.
@@ -203,13 +215,28 @@ impl SparseSystem {
             return Err(failed("a random-effect level without rows".into()));
         }
         let pattern = SymbolicSparseColMatRef::new_checked(n_z, n_z, &col_ptr, None, &row_idx);
+        // A simplicial factor, whose columns the selected inversion of the
+        // gradient walks (notes/criterion.md, "The sparse route").
         let symbolic = factorize_symbolic_cholesky(
             pattern,
             Side::Lower,
             SymmetricOrdering::Amd,
-            CholeskySymbolicParams::default(),
+            CholeskySymbolicParams {
+                supernodal_flop_ratio_threshold: SupernodalThreshold::FORCE_SIMPLICIAL,
+                ..Default::default()
+            },
         )
         .map_err(|e| failed(format!("the symbolic analysis failed: {e:?}")))?;
+        let mut sorted = Vec::new();
+        if let SymbolicCholeskyRaw::Simplicial(sym) = symbolic.raw() {
+            let (ptr, rows) = (sym.col_ptr(), sym.row_idx());
+            sorted.reserve(rows.len());
+            for j in 0..sym.ncols() {
+                let from = sorted.len();
+                sorted.extend((ptr[j]..ptr[j + 1]).map(|t| (rows[t], t)));
+                sorted[from..].sort_unstable();
+            }
+        }
         Ok(SparseSystem {
             p,
             term_q,
@@ -228,6 +255,7 @@ impl SparseSystem {
             y_shift,
             intercept,
             symbolic,
+            sorted,
         })
     }
 
@@ -247,6 +275,12 @@ impl SparseSystem {
     /// The pieces at θ, with the solution when `solve` is set; `None` when
     /// a factorisation fails.
     pub(crate) fn evaluate(&self, theta: &[f64], solve: bool) -> Option<SparseSolution> {
+        self.factor(theta, solve).map(|f| f.solution)
+    }
+
+    /// The factor of M at θ and everything the solution and the gradient
+    /// need.
+    fn factor(&self, theta: &[f64], solve: bool) -> Option<Factored> {
         let (p, c1) = (self.p, self.p + 1);
         let t = self.factors(theta);
         // M's values: Tᵢᵀ (Z_biᵀZ_bj) Tⱼ per block pair, plus I.
@@ -359,27 +393,116 @@ impl SparseSystem {
             logdet_x,
             pwrss,
         };
-        if !solve {
-            return Some(SparseSolution {
+        let (sxx_inv, u) = if solve {
+            use faer::linalg::solvers::DenseSolveCore;
+            let inv = sxx_llt.inverse();
+            // u = M⁻¹(W_y − W_X β̂).
+            let u = (0..self.n_z)
+                .map(|r| v[(r, p)] - (0..p).map(|j| v[(r, j)] * beta[j]).sum::<f64>())
+                .collect();
+            ((0..p * p).map(|k| inv[(k / p, k % p)]).collect(), u)
+        } else {
+            (Vec::new(), Vec::new())
+        };
+        Some(Factored {
+            t,
+            l_values,
+            v,
+            solution: SparseSolution {
                 pieces,
                 beta,
-                sxx_inv: Vec::new(),
-                u: Vec::new(),
-            });
-        }
-        use faer::linalg::solvers::DenseSolveCore;
-        let inv = sxx_llt.inverse();
-        let sxx_inv = (0..p * p).map(|k| inv[(k / p, k % p)]).collect();
-        // u = M⁻¹(W_y − W_X β̂).
-        let u = (0..self.n_z)
-            .map(|r| v[(r, p)] - (0..p).map(|j| v[(r, j)] * beta[j]).sum::<f64>())
-            .collect();
-        Some(SparseSolution {
-            pieces,
-            beta,
-            sxx_inv,
-            u,
+                sxx_inv,
+                u,
+            },
         })
+    }
+
+    /// The profiled deviance and its gradient in θ (notes/criterion.md,
+    /// "The sparse route"); `None` when a factorisation fails or a term of
+    /// several coefficients has a singular factor (a variance at zero).
+    pub(crate) fn gradient(&self, theta: &[f64], method: Method, n: usize) -> Option<(f64, Vec<f64>)> {
+        let p = self.p;
+        let f = self.factor(theta, true)?;
+        let SymbolicCholeskyRaw::Simplicial(sym) = self.symbolic.raw() else {
+            return None;
+        };
+        let sigma = selected_inverse(sym, &self.sorted, &f.l_values)?;
+        let inv_perm: Option<&[usize]> = self.symbolic.perm().map(|pm| pm.arrays().1);
+        let new_index = |i: usize| inv_perm.map_or(i, |ip| ip[i]);
+        let col_ptr = sym.col_ptr();
+        // Entry (i, j) of M⁻¹ from the selected inverse of the permuted factor.
+        let m_inv = |i: usize, j: usize| -> Option<f64> {
+            let (a, b) = (new_index(i), new_index(j));
+            let (r, c) = (a.max(b), a.min(b));
+            let col = &self.sorted[col_ptr[c]..col_ptr[c + 1]];
+            col.binary_search_by_key(&r, |&(row, _)| row)
+                .ok()
+                .map(|t| sigma[col[t].1])
+        };
+        let sol = &f.solution;
+        let mut a_grad = vec![0.0; theta.len()];
+        let mut r2_grad = vec![0.0; theta.len()];
+        let mut at = 0;
+        for (k, &q) in self.term_q.iter().enumerate() {
+            let tk = &f.t[k];
+            let from = self.term_block[k];
+            let to = self.term_block.get(k + 1).copied().unwrap_or(self.block_col.len());
+            let levels = to - from;
+            let nt = q * (q + 1) / 2;
+            if q == 1 && tk[0] == 0.0 {
+                // The deviance is even in a lone θ: its derivative at 0 is 0.
+                at += nt;
+                continue;
+            }
+            let tinv = lower_inverse(tk, q)?;
+            // M_k = L·I − Σ_l N_l and R = Σ_l u_l u_lᵀ over the term's levels.
+            let mut msum = vec![0.0; q * q];
+            let mut r = vec![0.0; q * q];
+            for b in from..to {
+                let c0 = self.block_col[b];
+                for x in 0..q {
+                    for y in 0..=x {
+                        let mut nv = m_inv(c0 + x, c0 + y)?;
+                        if method == Method::Reml {
+                            // (A₁⁻¹)_ZZ = M⁻¹ + V_X S_XX⁻¹ V_Xᵀ.
+                            for i in 0..p {
+                                for j in 0..p {
+                                    nv += f.v[(c0 + x, i)] * sol.sxx_inv[i * p + j] * f.v[(c0 + y, j)];
+                                }
+                            }
+                        }
+                        msum[x * q + y] -= nv;
+                        if x != y {
+                            msum[y * q + x] -= nv;
+                        }
+                        let ru = sol.u[c0 + x] * sol.u[c0 + y];
+                        r[x * q + y] += ru;
+                        if x != y {
+                            r[y * q + x] += ru;
+                        }
+                    }
+                }
+            }
+            for x in 0..q {
+                msum[x * q + x] += levels as f64;
+            }
+            let mut e = at;
+            for b in 0..q {
+                for a in b..q {
+                    a_grad[e] = 2.0 * (0..q).map(|c| msum[b * q + c] * tinv[c * q + a]).sum::<f64>();
+                    r2_grad[e] = -2.0 * (0..q).map(|c| tinv[c * q + a] * r[c * q + b]).sum::<f64>();
+                    e += 1;
+                }
+            }
+            at += nt;
+        }
+        let nu = match method {
+            Method::Reml => (n - p) as f64,
+            Method::Ml => n as f64,
+        };
+        let pw = sol.pieces.pwrss;
+        let grad = a_grad.iter().zip(&r2_grad).map(|(a, r)| a + nu * r / pw).collect();
+        Some((sol.pieces.profiled_deviance(method, n, p), grad))
     }
 
     /// The spherical effects u split by term (level by level, q per level).
@@ -395,10 +518,9 @@ impl SparseSystem {
 }
 
 /// Fit `problem` on the sparse route, with `given` (a nearby model's θ)
-/// as the start when it fits. The search takes differences of the
-/// criterion (this route has no analytic gradient); the estimates and
-/// Satterthwaite's derivatives come from the same pieces as on the blocked
-/// route.
+/// as the start when it fits. The search and the Newton finish use the
+/// analytic gradient; Satterthwaite's derivatives come from differences of
+/// the same pieces as on the blocked route.
 ///
 /// # Errors
 /// [`Error::Spec`] when there are no more rows than fixed effects;
@@ -457,8 +579,14 @@ pub(crate) fn fit(problem: &MixedProblem, options: FitOptions, given: Option<&[f
     let sdev = |x: &[f64]| dev(&theta_of(x));
     let start_x: Vec<f64> = sub.reduce(&start).iter().zip(&scale).map(|(a, s)| a / s).collect();
     let unit: Vec<f64> = sub.reduce(&base).iter().zip(&scale).map(|(a, s)| a / s).collect();
+    // The analytic gradient in the scaled coordinates (None where a factor
+    // is singular: differences are taken there).
+    let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
+        sys.gradient(&theta_of(x), method, n)
+            .map(|(d, g)| (d, sub.reduce(&g).iter().zip(&scale).map(|(a, s)| a * s).collect()))
+    };
     let (current, (iterations, evaluations, restarts)) =
-        search(&sdev, None, None, &start_x, None, &lower, &unit, options.optim);
+        search(&sdev, Some(&sgrad), None, &start_x, None, &lower, &unit, options.optim);
     let theta = theta_of(&current.theta);
 
     let failed = || Error::Numerical {
@@ -561,6 +689,75 @@ pub(crate) fn fit(problem: &MixedProblem, options: FitOptions, given: Option<&[f
     })
 }
 
+/// The entries of M⁻¹ on the pattern of its simplicial factor L (Takahashi's
+/// recurrences, in the values' layout): for each column j from the last,
+/// `Σ_ij = −(1/L_jj) Σ_k L_kj Σ_ik` over the column's rows i, k > j, then
+/// `Σ_jj = 1/L_jj² − (1/L_jj) Σ_k L_kj Σ_kj`. The rows of a column's
+/// pattern are pairwise in each other's columns (the factor's pattern is
+/// chordal), so every Σ_ik needed is already computed. `sorted` lists each
+/// column's (row, slot) pairs by row, diagonal first, so that the rows of a
+/// column are found in another by one merge. `None` if one is not found (a
+/// pattern that is not a Cholesky factor's).
+fn selected_inverse(sym: &SymbolicSimplicialCholesky<usize>, sorted: &[(usize, usize)], l: &[f64]) -> Option<Vec<f64>> {
+    let n = sym.nrows();
+    let col_ptr = sym.col_ptr();
+    let mut sigma = vec![0.0; l.len()];
+    let mut acc: Vec<f64> = Vec::new();
+    for j in (0..n).rev() {
+        let (lo, hi) = (col_ptr[j], col_ptr[j + 1]);
+        let ljj = l[lo];
+        // The column's rows below the diagonal, ascending, with their slots.
+        let below = &sorted[lo + 1..hi];
+        acc.clear();
+        acc.resize(below.len(), 0.0);
+        for (b, &(k, kpos)) in below.iter().enumerate() {
+            let col_k = &sorted[col_ptr[k]..col_ptr[k + 1]];
+            let lkj = l[kpos];
+            // Rows i ≥ k of this column, found in column k (both ascending).
+            let mut t = 0;
+            for (a, &(i, ipos)) in below.iter().enumerate().skip(b) {
+                while t < col_k.len() && col_k[t].0 < i {
+                    t += 1;
+                }
+                if t == col_k.len() || col_k[t].0 != i {
+                    return None;
+                }
+                let sik = sigma[col_k[t].1];
+                acc[a] += lkj * sik;
+                if i != k {
+                    acc[b] += l[ipos] * sik;
+                }
+            }
+        }
+        let mut diag = 1.0 / (ljj * ljj);
+        for (a, v) in acc.iter().enumerate() {
+            let slot = below[a].1;
+            let sij = -v / ljj;
+            sigma[slot] = sij;
+            diag -= l[slot] * sij / ljj;
+        }
+        sigma[lo] = diag;
+    }
+    Some(sigma)
+}
+
+/// The inverse of a q×q lower-triangular matrix (row-major); `None` when a
+/// diagonal entry is zero.
+fn lower_inverse(t: &[f64], q: usize) -> Option<Vec<f64>> {
+    if (0..q).any(|i| t[i * q + i] == 0.0) {
+        return None;
+    }
+    let mut inv = vec![0.0; q * q];
+    for j in 0..q {
+        inv[j * q + j] = 1.0 / t[j * q + j];
+        for i in j + 1..q {
+            let s: f64 = (j..i).map(|c| t[i * q + c] * inv[c * q + j]).sum();
+            inv[i * q + j] = -s / t[i * q + i];
+        }
+    }
+    Some(inv)
+}
+
 /// Σ log Lᵢᵢ of a numeric factor, whichever layout the analysis chose.
 fn log_diagonal(symbolic: &SymbolicCholesky<usize>, values: &[f64]) -> f64 {
     match symbolic.raw() {
@@ -584,7 +781,7 @@ fn log_diagonal(symbolic: &SymbolicCholesky<usize>, values: &[f64]) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::lmm::{RandomTermData, criterion};
+    use crate::lmm::{Method, RandomTermData, criterion};
 
     // The sparse route's pieces equal the blocked route's at several θ
     // (closed-form identity: both are the same determinants and residual),
@@ -618,7 +815,11 @@ mod tests {
         };
         let sparse = SparseSystem::new(&problem).unwrap();
         let cp = crate::lmm::crossprod::CrossProducts::new(&problem);
-        for theta in [[1.2, 0.3, 0.5, 0.8, -0.2, 0.4], [0.7, 0.0, 0.2, 1.1, 0.0, 0.6]] {
+        for theta in [
+            [1.2, 0.3, 0.5, 0.8, -0.2, 0.4],
+            [0.7, 0.0, 0.2, 1.1, 0.0, 0.6],
+            [0.9, -0.4, 0.6, 0.5, 0.3, 0.2],
+        ] {
             let s = sparse.evaluate(&theta, true).unwrap().pieces;
             let b = criterion::evaluate(&cp, &theta, false).unwrap().pieces;
             for (x, y) in [(s.logdet_z, b.logdet_z), (s.logdet_x, b.logdet_x), (s.pwrss, b.pwrss)] {
@@ -629,6 +830,40 @@ mod tests {
                 b.profiled_deviance(Method::Reml, n, 2),
             );
             assert!((ds - db).abs() < 1e-10 * db.abs());
+            // The gradient (selected inversion) against central differences
+            // of the deviance, by REML and ML; a singular rater factor
+            // (slope variance 0) is declined.
+            for method in [Method::Reml, Method::Ml] {
+                let dev = |th: &[f64]| {
+                    sparse
+                        .evaluate(th, false)
+                        .unwrap()
+                        .pieces
+                        .profiled_deviance(method, n, 2)
+                };
+                let Some((d, g)) = sparse.gradient(&theta, method, n) else {
+                    assert_eq!(theta[5], 0.0);
+                    continue;
+                };
+                assert!((d - dev(&theta)).abs() < 1e-10 * d.abs());
+                for k in 0..theta.len() {
+                    let h = 1e-5;
+                    let (mut tp, mut tm) = (theta, theta);
+                    tp[k] += h;
+                    tm[k] -= h;
+                    let fd = (dev(&tp) - dev(&tm)) / (2.0 * h);
+                    assert!(
+                        (g[k] - fd).abs() < 1e-5 * (1.0 + fd.abs()),
+                        "{method:?} θ{k}: {} vs {fd}",
+                        g[k]
+                    );
+                }
+            }
         }
+        assert!(
+            sparse
+                .gradient(&[1.2, 0.3, 0.5, 0.8, -0.2, 0.0], Method::Reml, n)
+                .is_none()
+        );
     }
 }
