@@ -15,6 +15,10 @@ fn main() {
         let t = Instant::now();
         let table = braid::data::read::read_columns(&path, &names, &names[1..], b',').unwrap();
         let t_read = t.elapsed();
+        let t = Instant::now();
+        let polars = braid::data::read::read_columns_polars(&path, &names, &names[1..], b',').unwrap();
+        let t_polars = t.elapsed();
+        assert_eq!(table, polars);
         let roles = braid::data::Roles {
             id: "pupil".into(),
             age: "age".into(),
@@ -25,7 +29,7 @@ fn main() {
         let panel = braid::data::load(&path, &roles, Default::default()).unwrap();
         let t_load = t.elapsed();
         println!(
-            "header {t_header:?} ({} columns), polars read {t_read:?} ({} rows), whole load {t_load:?} ({} rows)",
+            "header {t_header:?} ({} columns), read {t_read:?} ({} rows; polars alone {t_polars:?}), whole load {t_load:?} ({} rows)",
             h.len(),
             table.n_rows,
             panel.n()

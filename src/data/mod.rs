@@ -10,6 +10,7 @@
 
 mod build;
 mod cells;
+mod csv_direct;
 pub mod dates;
 pub mod derive;
 mod panel;

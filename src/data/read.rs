@@ -40,6 +40,28 @@ impl TextCells {
     pub fn iter(&self) -> impl Iterator<Item = Option<&str>> + '_ {
         (0..self.len()).map(|r| self.get(r))
     }
+    /// Room for `cells` cells of `bytes` bytes in all.
+    pub(super) fn with_capacity(cells: usize, bytes: usize) -> Self {
+        TextCells {
+            text: String::with_capacity(bytes),
+            spans: Vec::with_capacity(cells),
+        }
+    }
+    /// Add a cell at the end.
+    pub(super) fn push(&mut self, cell: Option<&str>) {
+        self.spans.push(cell.map(|t| {
+            let a = self.text.len() as u32;
+            self.text.push_str(t);
+            (a, self.text.len() as u32)
+        }));
+    }
+    /// Add `other`'s cells at the end.
+    pub(super) fn append(&mut self, other: TextCells) {
+        let shift = self.text.len() as u32;
+        self.text.push_str(&other.text);
+        self.spans
+            .extend(other.spans.into_iter().map(|s| s.map(|(a, b)| (a + shift, b + shift))));
+    }
 }
 
 impl<'a> FromIterator<Option<&'a str>> for TextCells {
@@ -51,11 +73,7 @@ impl<'a> FromIterator<Option<&'a str>> for TextCells {
             spans: Vec::with_capacity(n),
         };
         for c in cells {
-            out.spans.push(c.map(|t| {
-                let a = out.text.len() as u32;
-                out.text.push_str(t);
-                (a, out.text.len() as u32)
-            }));
+            out.push(c);
         }
         out
     }
@@ -68,7 +86,7 @@ impl From<Vec<Option<String>>> for TextCells {
 }
 
 /// One column, as braid sees it.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub enum RawColumn {
     /// Text cells (`None` for an empty cell).
     Text(TextCells),
@@ -91,7 +109,7 @@ impl RawColumn {
 }
 
 /// The columns that were asked for, by name.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct RawTable {
     /// The file read.
     pub path: PathBuf,
@@ -202,6 +220,28 @@ const SMALL_CSV_BYTES: u64 = 4 << 20;
 /// [`Error::Io`] or [`Error::Parse`] when the file cannot be read as a table.
 pub fn read_columns(path: &Path, names: &[String], numeric: &[String], delimiter: u8) -> Result<RawTable> {
     // polars panics when a column is asked for twice; ask once.
+    let mut unique: Vec<String> = Vec::with_capacity(names.len());
+    for n in names {
+        if !unique.contains(n) {
+            unique.push(n.clone());
+        }
+    }
+    let names = &unique[..];
+    if format_of(path) == Format::Csv
+        && let Some(table) = super::csv_direct::read(path, names, numeric, delimiter)
+    {
+        return Ok(table);
+    }
+    read_columns_polars(path, names, numeric, delimiter)
+}
+
+/// [`read_columns`] through polars alone: every file braid reads that the
+/// direct CSV reader declines (quotes, a byte order mark, ragged rows, a
+/// value that is not a number, Parquet), with the errors it reports.
+///
+/// # Errors
+/// As [`read_columns`].
+pub fn read_columns_polars(path: &Path, names: &[String], numeric: &[String], delimiter: u8) -> Result<RawTable> {
     let mut unique: Vec<String> = Vec::with_capacity(names.len());
     for n in names {
         if !unique.contains(n) {
