@@ -73,6 +73,10 @@ impl Rng {
     }
 }
 
+fn no_slope(sd: &f64) -> bool {
+    *sd == 0.0
+}
+
 /// The invented truth behind a simulated study.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Truth {
@@ -88,6 +92,11 @@ pub struct Truth {
     pub correlation: f64,
     /// SD of school intercepts (0 for no clustering).
     pub sd_school: f64,
+    /// SD of school age slopes, independent of the school intercepts (0:
+    /// none; drawn from their own stream, so the rest of a simulation is
+    /// the same with or without them).
+    #[serde(default, skip_serializing_if = "no_slope")]
+    pub sd_school_slope: f64,
     /// Residual SD.
     pub sd_residual: f64,
     /// A shift of the whole trajectory per cohort, in `Design::entry_ages`
@@ -203,6 +212,7 @@ impl Design {
                 sd_slope: 0.6,
                 correlation: 0.3,
                 sd_school: 2.0,
+                sd_school_slope: 0.0,
                 sd_residual: 3.0,
                 cohort_shift: Vec::new(),
                 retest: 0.0,
@@ -265,6 +275,12 @@ pub fn simulate(design: &Design) -> Simulated {
     for _ in 0..schools {
         school_effect.push(t.sd_school * rng.normal());
     }
+    let school_slope: Vec<f64> = if t.sd_school_slope > 0.0 {
+        let mut own = Rng::new(stream_seed(design.seed, u64::MAX));
+        (0..schools).map(|_| t.sd_school_slope * own.normal()).collect()
+    } else {
+        Vec::new()
+    };
     let offsets = design.offsets();
     let mut rows = Vec::new();
     for (c, &entry) in design.entry_ages.iter().enumerate() {
@@ -287,7 +303,7 @@ pub fn simulate(design: &Design) -> Simulated {
                 entry,
                 shift,
             };
-            who.assessments(design, &offsets, &school_effect, rng, &mut rows);
+            who.assessments(design, &offsets, (&school_effect, &school_slope), rng, &mut rows);
         }
     }
     Simulated {
@@ -317,7 +333,7 @@ impl Participant {
         &self,
         design: &Design,
         offsets: &[f64],
-        school_effect: &[f64],
+        (school_effect, school_slope): (&[f64], &[f64]),
         rng: &mut Rng,
         rows: &mut Vec<SimRow>,
     ) {
@@ -349,8 +365,11 @@ impl Participant {
             let retest = if seen > 0 { t.retest } else { 0.0 };
             let shock = t.period_shock.filter(|p| offset >= p.from_year).map_or(0.0, |p| p.size);
             seen += 1;
-            let score =
+            let mut score =
                 t.mean_at(age) + self.shift + b0 + b1 * (age - t.center) + school_effect[school] + e + retest + shock;
+            if let Some(slope) = school_slope.get(school) {
+                score += slope * (age - t.center);
+            }
             rows.push(SimRow {
                 id: self.id.clone(),
                 school: format!("S{:02}", school + 1),

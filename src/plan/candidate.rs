@@ -270,6 +270,7 @@ impl Candidate {
                 sd_slope: population.sd_slope,
                 correlation: population.correlation,
                 sd_school: if clusters > 0 { population.sd_cluster } else { 0.0 },
+                sd_school_slope: 0.0,
                 sd_residual: population.sd_residual,
                 cohort_shift: population.cohort_offsets.clone(),
                 retest: population.retest,
