@@ -376,7 +376,7 @@ pub fn fit_grouped(
         });
     }
     // A quasi-Newton search. Where the grouped kernel applies (a primary
-    // term of 1 to 4 coefficients, intercepts beside it) it uses the analytic
+    // term of 1 to 4 coefficients, other terms beside it) it uses the analytic
     // gradient (notes/criterion.md, "Grouped levels: the analytic
     // gradient"), its first inverse Hessian from differences of gradients,
     // and stops on the Newton decrement; elsewhere forward-difference
@@ -463,9 +463,9 @@ mod tests {
     use crate::simulate::Rng;
 
     /// Three groups of participants with an intercept and a slope each, a
-    /// school intercept crossing the groups, and a covariate column that is
-    /// zero outside the first group.
-    fn problem(schools: usize) -> (MixedProblem, Grouping) {
+    /// school intercept (and with `slope` a school slope) crossing the
+    /// groups, and a covariate column that is zero outside the first group.
+    fn problem(schools: usize, slope: bool) -> (MixedProblem, Grouping) {
         let mut rng = Rng::new(17);
         let (mut x, mut y, mut z1, mut level, mut school, mut group) = (vec![], vec![], vec![], vec![], vec![], vec![]);
         let per = 30;
@@ -494,14 +494,12 @@ mod tests {
             covariance: Default::default(),
         }];
         if schools > 0 {
-            terms.push(RandomTermData {
-                factor: "school".into(),
-                level_names: (0..schools).map(|i| i.to_string()).collect(),
-                level: school,
-                columns: vec!["intercept".into()],
-                z: vec![vec![1.0; n]],
-                covariance: Default::default(),
-            });
+            let (columns, z) = if slope {
+                (vec!["intercept", "a"], vec![vec![1.0; n], terms[0].z[1].clone()])
+            } else {
+                (vec!["intercept"], vec![vec![1.0; n]])
+            };
+            terms.push(RandomTermData::numbered("school", schools, school, &columns, z));
         }
         let grouping = Grouping {
             names: vec!["a".into(), "b".into(), "c".into()],
@@ -522,11 +520,11 @@ mod tests {
     // differences of the deviance of the transformed cross-products (two
     // codings of one criterion; closed-form identity: they agree to the
     // differences' truncation), by REML and ML, with and without a school
-    // term, with a school θ at 0 as well.
+    // term, with a school θ at 0 as well, and with a correlated school slope.
     #[test]
     fn grouped_gradient_matches_central_differences_of_the_transformed_criterion() {
-        for schools in [0, 6] {
-            let (problem, grouping) = problem(schools);
+        for (schools, slope) in [(0, false), (6, false), (6, true)] {
+            let (problem, grouping) = problem(schools, slope);
             let base = CrossProducts::with_row_groups(&problem, &grouping.of_row, 3);
             let k1 = base.primary.unwrap();
             let lay = Layout::new(&base, k1, &problem.terms[k1], &grouping).unwrap();
@@ -543,7 +541,9 @@ mod tests {
                         + logdet_r
                 };
                 let mut points = vec![vec![1.2, 0.1, 0.3, 0.8, -0.2, 0.5, 1.5, 0.05, 0.2]];
-                if schools > 0 {
+                if slope {
+                    points[0].extend([0.6, 0.1, 0.3]);
+                } else if schools > 0 {
                     points[0].push(0.6);
                     let mut at_zero = points[0].clone();
                     at_zero[9] = 0.0;

@@ -11,7 +11,8 @@
 //! levels"):
 //! - T_g's entries: the primary-entry formulas of the secondary kernel, with
 //!   the sums taken over the group's levels only;
-//! - secondary intercepts: unchanged;
+//! - secondary terms: as in the two-pass kernel (intercepts, or intercepts
+//!   and slopes; notes/criterion.md, "Secondary terms with slopes");
 //! - s_g: `∂S/∂s_g = (2/s_g) E_g`, `E_g = Λ̃ᵀ(w_g D_g)Λ̃ − Σ_{i∈g}(BᵢᵀHᵢ + HᵢᵀHᵢ)`,
 //!   and `∂ log|A₁| = (2/s_g)(Σ_{i∈g}(q − tr Aᵢ⁻¹) + tr(S₁⁻¹ E_g))`
 //!   (REML; the secondary block for ML), `∂r² = (2/s_g) ξᵀE_gξ`, and the
@@ -57,13 +58,10 @@ pub struct GroupedEval {
 }
 
 /// Whether [`grouped_gradient`] applies: a primary term of 1 to 4
-/// coefficients, the dense part kept per row group, and every secondary
-/// term an intercept.
+/// coefficients and the dense part kept per row group (secondary terms with
+/// or without slopes).
 pub fn applies(cp: &CrossProducts) -> bool {
-    cp.primary.is_some()
-        && (1..=4).contains(&cp.q1)
-        && !cp.dense_groups.is_empty()
-        && cp.secondary.iter().all(|&k| cp.term_q[k] == 1)
+    cp.primary.is_some() && (1..=4).contains(&cp.q1) && !cp.dense_groups.is_empty()
 }
 
 /// The deviance and gradient at `at`; `None` when [`applies`] does not
