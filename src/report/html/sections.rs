@@ -397,6 +397,11 @@ pub(super) fn trajectory(page: &mut Page<'_>, r: &StudyReport) -> Result<()> {
         &["term", "#SD", "#correlation"],
         &rows,
     );
+    // The optimiser's notes (a variance at zero, a fit that did not
+    // converge), as the text screen gives them.
+    for m in &fit.info.messages {
+        let _ = writeln!(page.html, "<p class=\"skipped\">Note: {}</p>", esc(m));
+    }
     rates(page, r);
     close(page);
     Ok(())
