@@ -137,7 +137,10 @@ pub fn m3_test(
     let Some(first) = m0_problem.terms.first() else {
         return Ok(Err("M3 needs a participant term".into()));
     };
-    let per = first.n_theta() + 1;
+    // Per cohort beyond the first: the participant term's estimated
+    // covariance parameters (its variances alone when diagonal) and a
+    // residual variance.
+    let per = first.estimated().iter().filter(|&&e| e).count() + 1;
     let df = (n_cohorts - 1) * per;
     let name = "M3 vs M2: cohorts differ in covariances (REML)";
     let separable = m0_problem.p() == base_cols && m0_problem.terms.len() == 1;
@@ -225,15 +228,25 @@ pub fn random_slope_test(m0_problem: &MixedProblem, m0_reml: &Fit) -> Result<Opt
         .map(|(_, v)| *v)
         .collect();
     let f = crate::lmm::fit_from(&reduced, super::lean(Method::Reml), &start)?;
+    // The slope's variance, and its covariance with the intercept unless the
+    // structure holds that at zero: under the null the variance is on its
+    // boundary, so the statistic is a 50:50 mixture of χ² with one fewer
+    // and as many df as parameters removed (Self & Liang 1987; Stram & Lee
+    // 1994).
+    let removed = if t.covariance == crate::lmm::Covariance::Diagonal {
+        1
+    } else {
+        2
+    };
     let mut test = likelihood_ratio(
         &format!("participants differ in their {} slope (REML)", t.columns[1]),
         f.loglik,
         m0_reml.loglik,
-        2,
+        removed,
         true,
     );
     test.method = TestMethod::BoundaryLikelihoodRatio {
-        df: 2.0,
+        df: removed as f64,
         because: Some("the null puts the slope variance on its boundary (Self & Liang 1987; Stram & Lee 1994)"),
     };
     test.kind = TestKind::RandomSlope;

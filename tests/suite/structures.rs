@@ -278,3 +278,55 @@ fn the_structure_flags_are_stated_on_the_screen() {
         "fit --uncorrelated --cluster-slope",
     );
 }
+
+// Under a diagonal participant term the convergence tests count the
+// parameters the structure estimates: M3 adds two variances and a residual
+// variance per cohort beyond the first ((5 − 1) × 3 = 12 df, not 16), and
+// dropping the slope removes one variance, so its boundary test is the
+// ½χ²(0) + ½χ²(1) mixture (Self & Liang 1987), calibrated in
+// notes/benchmarks.md (examples/calibrate_fit.rs: 4.50% at 5%).
+#[test]
+fn convergence_tests_count_the_parameters_of_a_diagonal_term() {
+    use crate::common::{braid, data_dir, read_json, run_ok, temp_dir};
+    let dir = temp_dir("converge-diagonal");
+    let json = dir.join("converge.json");
+    run_ok(
+        braid()
+            .arg("converge")
+            .arg(data_dir().join("sim_school.csv"))
+            .args([
+                "--id",
+                "pupil",
+                "--age",
+                "age",
+                "--outcome",
+                "score",
+                "--cluster",
+                "school",
+            ])
+            .args([
+                "--cohort",
+                "cohort",
+                "--wave",
+                "wave",
+                "--uncorrelated",
+                "--quiet",
+                "--force",
+                "--json",
+            ])
+            .arg(&json),
+    );
+    let v = read_json(&json);
+    let df = |kind: &str| {
+        v["tests"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|t| t["kind"] == kind)
+            .unwrap_or_else(|| panic!("no {kind} test"))["df"]
+            .as_f64()
+            .unwrap()
+    };
+    assert_eq!(df("cohort_covariance"), 12.0);
+    assert_eq!(df("random_slope"), 1.0);
+}
