@@ -158,8 +158,8 @@ pub struct FitInfo {
     /// Advice and warnings for the user.
     pub messages: Vec<String>,
     /// The last quasi-Newton search's inverse Hessian of the deviance over
-    /// the estimated entries of θ (row-major), a first inverse Hessian for the search of a nearby
-    /// model ([`Prepared::fit_near`]).
+    /// the estimated entries of θ (row-major): a first inverse Hessian for
+    /// the search of a nearby model ([`Prepared::fit_near`]).
     #[serde(skip)]
     pub inverse_hessian: Option<Vec<f64>>,
     /// The factorisation the fit ran on: blocked or sparse.
