@@ -182,11 +182,7 @@ impl CrossProducts {
             Some((_, k)) => vec![vec![0.0; m * m]; k],
             None => Vec::new(),
         };
-        let intercept = (0..p).find(|&j| (0..n).all(|r| problem.x[r * p + j] == 1.0));
-        let y_shift = match intercept {
-            Some(_) if n > 0 => problem.y.iter().sum::<f64>() / n as f64,
-            _ => 0.0,
-        };
+        let (intercept, y_shift) = centring(problem);
 
         // Rows grouped by primary level (counting sort), so each level's
         // links are gathered in one place.
@@ -437,4 +433,18 @@ fn symmetrise(d: &mut [f64], m: usize) {
             d[b * m + a] = s;
         }
     }
+}
+
+/// The intercept column of X (all ones), if any, and the shift of the
+/// response that centres it when there is one (zero otherwise): with an
+/// intercept the shift changes β̂'s intercept only, and it keeps the
+/// cross-products of the response small.
+pub(crate) fn centring(problem: &MixedProblem) -> (Option<usize>, f64) {
+    let (n, p) = (problem.n(), problem.p());
+    let intercept = (0..p).find(|&j| (0..n).all(|r| problem.x[r * p + j] == 1.0));
+    let y_shift = match intercept {
+        Some(_) if n > 0 => problem.y.iter().sum::<f64>() / n as f64,
+        _ => 0.0,
+    };
+    (intercept, y_shift)
 }

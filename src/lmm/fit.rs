@@ -407,13 +407,13 @@ fn check_fixed_rank(problem: &MixedProblem, cp: &CrossProducts) -> Result<()> {
 }
 
 /// The best of three scalings of the scale-aware start and, when the design
-/// allows it, a moment estimate for the primary term.
-fn best_start(
-    problem: &MixedProblem,
-    cp: &CrossProducts,
+/// allows it, a moment estimate (`moment`, asked for only without a given
+/// start), each projected onto the estimated entries.
+pub(super) fn best_start(
     sub: &Subspace,
     base: &[f64],
     given: Option<&[f64]>,
+    moment: impl FnOnce() -> Option<Vec<f64>>,
     dev: &dyn Fn(&[f64]) -> f64,
 ) -> Result<Vec<f64>> {
     let mut start = base.to_vec();
@@ -429,7 +429,7 @@ fn best_start(
             .collect(),
     };
     if given.is_none()
-        && let Some(m) = moment_start(problem, cp, base)
+        && let Some(m) = moment()
     {
         candidates.push(sub.project(&m));
     }
@@ -447,6 +447,141 @@ fn best_start(
         });
     }
     Ok(start)
+}
+
+/// The search's coordinates: the estimated entries of θ (a diagonal
+/// structure holds the others at zero), each divided by a scale (a diagonal
+/// entry's start value, shared by the off-diagonal entries of its row), so
+/// that all coordinates are of order one whatever the units of the slope
+/// variables.
+pub(super) struct SearchSpace {
+    sub: Subspace,
+    /// The scale of each estimated entry.
+    pub(super) scale: Vec<f64>,
+}
+
+impl SearchSpace {
+    /// The space of `problem`'s θ with per-entry scales `theta_scale`.
+    pub(super) fn new(problem: &MixedProblem, theta_scale: &[f64]) -> SearchSpace {
+        let sub = Subspace::of(problem);
+        let scale = sub.reduce(theta_scale);
+        SearchSpace { sub, scale }
+    }
+    /// The full θ at search point `x`.
+    pub(super) fn theta(&self, x: &[f64]) -> Vec<f64> {
+        let th: Vec<f64> = x.iter().zip(&self.scale).map(|(a, s)| a * s).collect();
+        self.sub.expand(&th)
+    }
+    /// The search point of a full θ (its fixed entries dropped).
+    pub(super) fn point(&self, theta: &[f64]) -> Vec<f64> {
+        self.sub
+            .reduce(theta)
+            .iter()
+            .zip(&self.scale)
+            .map(|(a, s)| a / s)
+            .collect()
+    }
+    /// A full-θ vector (bounds, say) restricted to the estimated entries.
+    pub(super) fn reduce(&self, v: &[f64]) -> Vec<f64> {
+        self.sub.reduce(v)
+    }
+    /// A gradient in θ as a gradient in the search's coordinates.
+    pub(super) fn gradient(&self, g: &[f64]) -> Vec<f64> {
+        self.sub.reduce(g).iter().zip(&self.scale).map(|(a, s)| a * s).collect()
+    }
+    /// Positions among the estimated entries as indices of θ.
+    pub(super) fn full_indices(&self, positions: &[usize]) -> Vec<usize> {
+        self.sub.full_indices(positions)
+    }
+    /// The number of coordinates.
+    pub(super) fn dim(&self) -> usize {
+        self.sub.dim()
+    }
+}
+
+/// The covariance parameters at their bound, by name, and the estimated
+/// entries of θ that are free (not at their bound).
+pub(super) fn boundary_and_free(problem: &MixedProblem, theta: &[f64]) -> (Vec<String>, Vec<usize>) {
+    let lower = problem.theta_lower();
+    let estimated = problem.estimated();
+    let names = theta_names(problem);
+    let (at_bound, free): (Vec<usize>, Vec<usize>) = estimated.iter().partition(|&&i| theta[i] <= lower[i]);
+    (at_bound.iter().map(|&i| names[i].clone()).collect(), free)
+}
+
+/// The estimates of a fit, as a route computed them.
+pub(super) struct Estimates {
+    pub(super) theta: Vec<f64>,
+    pub(super) beta: Vec<f64>,
+    pub(super) cov_beta: Vec<f64>,
+    pub(super) sigma2: f64,
+    /// The profiled deviance at the optimum.
+    pub(super) deviance: f64,
+    pub(super) random: Vec<RandomComponent>,
+    /// BLUPs, conditional and marginal fitted values.
+    pub(super) conditional: (Vec<Vec<Vec<f64>>>, Vec<f64>, Vec<f64>),
+    pub(super) sensitivity: VarianceSensitivity,
+}
+
+/// How the search went, as a route recorded it.
+pub(super) struct Record {
+    pub(super) polished: optimize::Polished,
+    pub(super) iterations: usize,
+    pub(super) evaluations: usize,
+    pub(super) restarts: usize,
+    pub(super) min_curvature: Option<f64>,
+    pub(super) boundary: Vec<String>,
+    pub(super) inverse_hessian: Option<Vec<f64>>,
+    pub(super) route: Route,
+}
+
+/// The fit from a route's estimates and record: residuals, the verdict,
+/// the count of parameters and the criteria.
+pub(super) fn assemble(problem: &MixedProblem, method: Method, est: Estimates, record: Record) -> Fit {
+    let n = problem.n();
+    let (blups, fitted, fitted_marginal) = est.conditional;
+    let residuals: Vec<f64> = problem.y.iter().zip(&fitted).map(|(y, f)| y - f).collect();
+    let polished = record.polished;
+    let (converged, messages) = verdict(
+        polished.decrement,
+        polished.gradient_norm,
+        record.min_curvature,
+        &record.boundary,
+    );
+    let n_params = problem.p() + problem.estimated().len() + 1;
+    let deviance = est.deviance;
+    Fit {
+        method,
+        n_obs: n,
+        x_names: problem.x_names.clone(),
+        beta: est.beta,
+        cov_beta: est.cov_beta,
+        sigma2: est.sigma2,
+        theta: est.theta,
+        random: est.random,
+        blups,
+        fitted,
+        fitted_marginal,
+        residuals,
+        loglik: -deviance / 2.0,
+        n_params,
+        aic: deviance + 2.0 * n_params as f64,
+        bic: deviance + n_params as f64 * (n as f64).ln(),
+        info: FitInfo {
+            iterations: record.iterations,
+            evaluations: record.evaluations,
+            gradient_norm: polished.gradient_norm,
+            newton_decrement: polished.decrement,
+            min_curvature: record.min_curvature,
+            converged,
+            boundary: record.boundary,
+            restarts: record.restarts,
+            messages,
+            inverse_hessian: record.inverse_hessian,
+            route: record.route,
+        },
+        sensitivity: est.sensitivity,
+    }
 }
 
 /// Whether the fit converged, and the messages for the reader.
@@ -525,29 +660,24 @@ fn search_optimum(
     given_inverse: Option<&[f64]>,
 ) -> Result<Searched> {
     let method = options.method;
-    // The search runs over the estimated entries of θ only; a diagonal
-    // structure holds the others at zero.
-    let sub = Subspace::of(problem);
-    let lower = sub.reduce(&problem.theta_lower());
     let dev = |th: &[f64]| criterion::deviance(cp, th, method);
     let base = base_start(problem);
-    let start = best_start(problem, cp, &sub, &base, given, &dev)?;
-    // The search runs on θ divided by a scale per entry (a diagonal entry's
-    // start value, shared by the off-diagonal entries of its row), so that all
-    // coordinates are of order one whatever the units of the slope variables.
+    let start = best_start(
+        &Subspace::of(problem),
+        &base,
+        given,
+        || moment_start(problem, cp, &base),
+        &dev,
+    )?;
     let theta_scale = row_scales(problem, &base);
-    let scale = sub.reduce(&theta_scale);
-    let theta_of = |x: &[f64]| -> Vec<f64> {
-        let th: Vec<f64> = x.iter().zip(&scale).map(|(a, s)| a * s).collect();
-        sub.expand(&th)
-    };
-    let sdev = |x: &[f64]| dev(&theta_of(x));
-    let start_x: Vec<f64> = sub.reduce(&start).iter().zip(&scale).map(|(a, s)| a / s).collect();
-    let unit: Vec<f64> = sub.reduce(&base).iter().zip(&scale).map(|(a, s)| a / s).collect();
+    let space = SearchSpace::new(problem, &theta_scale);
+    let lower = space.reduce(&problem.theta_lower());
+    let sdev = |x: &[f64]| dev(&space.theta(x));
+    let start_x = space.point(&start);
+    let unit = space.point(&base);
     // The analytic gradient in the scaled coordinates, when the model has one.
     let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
-        criterion::deviance_gradient(cp, &theta_of(x), method)
-            .map(|(d, g)| (d, sub.reduce(&g).iter().zip(&scale).map(|(a, s)| a * s).collect()))
+        criterion::deviance_gradient(cp, &space.theta(x), method).map(|(d, g)| (d, space.gradient(&g)))
     };
     let grad: optimize::Gradient = if criterion::has_gradient(cp) {
         Some(&sgrad)
@@ -559,8 +689,8 @@ fn search_optimum(
     // and reused when the finish ends next to where it was taken.
     let last_stencil: RefCell<Option<Stencil>> = RefCell::new(None);
     let shess = |x: &[f64], free: &[usize]| -> Option<(Vec<f64>, Vec<f64>)> {
-        let th = theta_of(x);
-        let free = sub.full_indices(free);
+        let th = space.theta(x);
+        let free = space.full_indices(free);
         let h = stencil_steps(&th, &theta_scale, &free);
         let mut evals = 0;
         let st = Stencil::new(cp, &th, &free, &h, method, &mut evals)?;
@@ -584,10 +714,10 @@ fn search_optimum(
     };
     // A nearby model's inverse Hessian, when the search starts from that
     // model's optimum.
-    let d = sub.dim();
+    let d = space.dim();
     let first_inverse: Option<Vec<f64>> = given_inverse
         .filter(|h| h.len() == d * d && given.is_some_and(|g| g == start.as_slice()))
-        .map(|h| rescaled(h, &scale, -1));
+        .map(|h| rescaled(h, &space.scale, -1));
     let (current, (iterations, evaluations, restarts)) = search(
         &sdev,
         grad,
@@ -599,13 +729,13 @@ fn search_optimum(
         optim,
     );
     Ok(Searched {
-        theta: theta_of(&current.theta),
+        theta: space.theta(&current.theta),
         polished: current.polished,
         // The start's candidates cost up to four evaluations.
         iterations,
         evaluations: evaluations + 4,
         restarts,
-        inverse_hessian: current.inverse_hessian.map(|h| rescaled(&h, &scale, 1)),
+        inverse_hessian: current.inverse_hessian.map(|h| rescaled(&h, &space.scale, 1)),
         stencil: last_stencil.take(),
         theta_scale,
     })
@@ -616,8 +746,6 @@ fn search_optimum(
 fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, searched: Searched) -> Result<Fit> {
     let (n, p) = (problem.n(), problem.p());
     let method = options.method;
-    let lower = problem.theta_lower();
-    let names = theta_names(problem);
     let full = options.detail == Detail::Full;
     let Searched {
         theta,
@@ -635,25 +763,15 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
     })?;
     let pieces = factor.pieces;
     let sigma2 = pieces.sigma2(method, n, p);
-    let deviance = pieces.profiled_deviance(method, n, p);
-
-    let estimated = problem.estimated();
-    let boundary_idx: Vec<usize> = estimated.iter().copied().filter(|&i| theta[i] <= lower[i]).collect();
-    let free: Vec<usize> = estimated
-        .iter()
-        .copied()
-        .filter(|i| !boundary_idx.contains(i))
-        .collect();
-    let boundary: Vec<String> = boundary_idx.iter().map(|&i| names[i].clone()).collect();
+    let (boundary, free) = boundary_and_free(problem, &theta);
 
     let (beta, u) = solve_pls(cp, &factor);
     let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
-    let (blups, fitted, fitted_marginal) = if full {
+    let conditional = if full {
         conditional(problem, &criterion::factors(cp, &theta), &beta, &u)
     } else {
         (Vec::new(), Vec::new(), marginal(problem, &beta))
     };
-    let residuals: Vec<f64> = problem.y.iter().zip(&fitted).map(|(y, f)| y - f).collect();
     let random = components(problem, cp, &theta, sigma2);
 
     // The likelihood alone takes its curvature from the finish's last
@@ -670,41 +788,27 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
     } else {
         VarianceSensitivity::unknown(free.len() + 1, p)
     };
-    let (converged, messages) = verdict(polished.decrement, polished.gradient_norm, min_curvature, &boundary);
-    let n_params = p + estimated.len() + 1;
-    let loglik = -deviance / 2.0;
-    Ok(Fit {
-        method,
-        n_obs: n,
-        x_names: problem.x_names.clone(),
+    let estimates = Estimates {
+        theta,
         beta,
         cov_beta,
         sigma2,
-        theta,
+        deviance: pieces.profiled_deviance(method, n, p),
         random,
-        blups,
-        fitted,
-        fitted_marginal,
-        residuals,
-        loglik,
-        n_params,
-        aic: deviance + 2.0 * n_params as f64,
-        bic: deviance + n_params as f64 * (n as f64).ln(),
-        info: FitInfo {
-            iterations,
-            evaluations,
-            gradient_norm: polished.gradient_norm,
-            newton_decrement: polished.decrement,
-            min_curvature,
-            converged,
-            boundary,
-            restarts,
-            messages,
-            inverse_hessian,
-            route: Route::Blocked,
-        },
+        conditional,
         sensitivity,
-    })
+    };
+    let record = Record {
+        polished,
+        iterations,
+        evaluations,
+        restarts,
+        min_curvature,
+        boundary,
+        inverse_hessian,
+        route: Route::Blocked,
+    };
+    Ok(assemble(problem, method, estimates, record))
 }
 
 #[cfg(test)]

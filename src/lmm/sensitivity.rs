@@ -266,14 +266,14 @@ pub(super) fn sensitivity(
         Some(st) => Some(st.derivatives(sigma2)),
         None => piece_derivatives(cp, theta, free, &h, method, sigma2, &mut evals),
     };
-    let (sens, min_curvature) = assemble(derivs, n, p, d, method, sigma2);
+    let (sens, min_curvature) = from_derivatives(derivs, n, p, d, method, sigma2);
     ((sens, evals), min_curvature)
 }
 
 /// The deviance Hessian over φ = (θ_free, σ²), its inverse (×2) and the
 /// derivatives of cov(β̂) from the pieces' derivatives (unknown when there
 /// are none), with the smallest eigenvalue of the θ_free block.
-pub(super) fn assemble(
+pub(super) fn from_derivatives(
     derivs: Option<PieceDerivatives>,
     n: usize,
     p: usize,

@@ -29,9 +29,13 @@ use faer::sparse::{SparseColMatRef, SymbolicSparseColMatRef};
 use faer::{Conj, Side};
 
 use super::criterion::Pieces;
-use super::fit::{Detail, Fit, FitInfo, FitOptions, RandomComponent, Route, VarianceSensitivity, theta_names, verdict};
+use super::criterion::factor_derivatives;
+use super::fit::{
+    Detail, Estimates, Fit, FitOptions, RandomComponent, Record, Route, SearchSpace, VarianceSensitivity, assemble,
+    best_start, boundary_and_free,
+};
 use super::search::search;
-use super::sensitivity::{assemble, piece_derivatives_by, stencil_steps};
+use super::sensitivity::{from_derivatives, piece_derivatives_by, stencil_steps};
 use super::solution::{conditional, marginal};
 use super::start::{base_start, row_scales};
 use super::{Method, MixedProblem, Subspace, unpack_factor};
@@ -98,8 +102,7 @@ impl SparseSystem {
     /// # Errors
     /// [`Error::Numerical`] when the symbolic analysis fails (out of memory).
     pub(crate) fn new(problem: &MixedProblem) -> Result<SparseSystem> {
-        let (n, p) = (problem.n(), problem.p());
-        let c1 = p + 1;
+        let p = problem.p();
         let mut term_q = Vec::new();
         let mut term_block = Vec::new();
         let mut block_term = Vec::new();
@@ -114,99 +117,16 @@ impl SparseSystem {
                 n_z += t.q();
             }
         }
-        let intercept = (0..p).find(|&j| (0..n).all(|r| problem.x[r * p + j] == 1.0));
-        let y_shift = match intercept {
-            Some(_) if n > 0 => problem.y.iter().sum::<f64>() / n as f64,
-            _ => 0.0,
-        };
-        // One pass: the block pairs' cross-products, Zᵀ[X y] and [X y]ᵀ[X y].
-        let mut index: HashMap<(usize, usize), usize> = HashMap::new();
-        let mut pairs: Vec<(usize, usize)> = Vec::new();
-        let mut pair_raw: Vec<usize> = Vec::new();
-        let mut raw: Vec<f64> = Vec::new();
-        let mut zxy = vec![0.0; n_z * c1];
-        let mut xy = vec![0.0; c1 * c1];
-        let mut row = vec![0.0; c1];
-        let n_terms = problem.terms.len();
-        let mut blocks = vec![0usize; n_terms];
-        for r in 0..n {
-            row[..p].copy_from_slice(&problem.x[r * p..(r + 1) * p]);
-            row[p] = problem.y[r] - y_shift;
-            for a in 0..c1 {
-                for b in 0..c1 {
-                    xy[a * c1 + b] += row[a] * row[b];
-                }
-            }
-            for (k, t) in problem.terms.iter().enumerate() {
-                blocks[k] = term_block[k] + t.level[r] as usize;
-                let col = block_col[blocks[k]];
-                for (c, z) in t.z.iter().enumerate() {
-                    let zr = z[r];
-                    if zr != 0.0 {
-                        let dst = &mut zxy[(col + c) * c1..(col + c + 1) * c1];
-                        for (d, v) in dst.iter_mut().zip(&row) {
-                            *d += zr * v;
-                        }
-                    }
-                }
-            }
-            for ki in 0..n_terms {
-                for kj in 0..=ki {
-                    // Terms come in block order, so bi ≥ bj.
-                    let (bi, bj) = (blocks[ki], blocks[kj]);
-                    let (qi, qj) = (term_q[ki], term_q[kj]);
-                    let at = *index.entry((bi, bj)).or_insert_with(|| {
-                        pairs.push((bi, bj));
-                        pair_raw.push(raw.len());
-                        raw.resize(raw.len() + qi * qj, 0.0);
-                        pairs.len() - 1
-                    });
-                    let start = pair_raw[at];
-                    let (ti, tj) = (&problem.terms[ki], &problem.terms[kj]);
-                    for a in 0..qi {
-                        let za = ti.z[a][r];
-                        if za == 0.0 {
-                            continue;
-                        }
-                        for b in 0..qj {
-                            raw[start + a * qj + b] += za * tj.z[b][r];
-                        }
-                    }
-                }
-            }
-        }
-        // The lower triangle of M in compressed columns: pairs by block
-        // column, then block row.
-        let mut order: Vec<usize> = (0..pairs.len()).collect();
-        order.sort_unstable_by_key(|&k| (pairs[k].1, pairs[k].0));
-        let mut slot = vec![usize::MAX; raw.len()];
-        let mut col_ptr = Vec::with_capacity(n_z + 1);
-        let mut row_idx = Vec::new();
-        col_ptr.push(0);
-        let mut start = 0;
-        while start < order.len() {
-            let bj = pairs[order[start]].1;
-            let mut end = start;
-            while end < order.len() && pairs[order[end]].1 == bj {
-                end += 1;
-            }
-            let qj = term_q[block_term[bj]];
-            for cj in 0..qj {
-                for &k in &order[start..end] {
-                    let bi = pairs[k].0;
-                    let qi = term_q[block_term[bi]];
-                    for ci in 0..qi {
-                        if bi == bj && ci < cj {
-                            continue;
-                        }
-                        slot[pair_raw[k] + ci * qj + cj] = row_idx.len();
-                        row_idx.push(block_col[bi] + ci);
-                    }
-                }
-                col_ptr.push(row_idx.len());
-            }
-            start = end;
-        }
+        let (intercept, y_shift) = super::crossprod::centring(problem);
+        let Gathered {
+            pairs,
+            pair_raw,
+            raw,
+            zxy,
+            xy,
+        } = gather(problem, &term_q, &term_block, &block_col, n_z, y_shift);
+        let (slot, col_ptr, row_idx) =
+            lower_pattern(&pairs, &pair_raw, raw.len(), &term_q, &block_term, &block_col, n_z);
         let failed = |what: String| Error::Numerical {
             step: "sparse route".into(),
             message: what,
@@ -454,7 +374,6 @@ impl SparseSystem {
                 at += nt;
                 continue;
             }
-            let tinv = lower_inverse(tk, q)?;
             // M_k = L·I − Σ_l N_l and R = Σ_l u_l u_lᵀ over the term's levels.
             let mut msum = vec![0.0; q * q];
             let mut r = vec![0.0; q * q];
@@ -486,14 +405,7 @@ impl SparseSystem {
             for x in 0..q {
                 msum[x * q + x] += levels as f64;
             }
-            let mut e = at;
-            for b in 0..q {
-                for a in b..q {
-                    a_grad[e] = 2.0 * (0..q).map(|c| msum[b * q + c] * tinv[c * q + a]).sum::<f64>();
-                    r2_grad[e] = -2.0 * (0..q).map(|c| tinv[c * q + a] * r[c * q + b]).sum::<f64>();
-                    e += 1;
-                }
-            }
+            factor_derivatives(tk, q, &msum, &r, &mut a_grad[at..at + nt], &mut r2_grad[at..at + nt])?;
             at += nt;
         }
         let nu = match method {
@@ -515,6 +427,139 @@ impl SparseSystem {
             })
             .collect()
     }
+}
+
+/// The cross-products of the one pass over the rows: each pair of levels
+/// that share a row (bi ≥ bj) with its raw `Z_biᵀZ_bj` (q_bi × q_bj,
+/// row-major, from `pair_raw[k]` in `raw`), `Zᵀ[X y]` and `[X y]ᵀ[X y]`.
+struct Gathered {
+    pairs: Vec<(usize, usize)>,
+    pair_raw: Vec<usize>,
+    raw: Vec<f64>,
+    zxy: Vec<f64>,
+    xy: Vec<f64>,
+}
+
+fn gather(
+    problem: &MixedProblem,
+    term_q: &[usize],
+    term_block: &[usize],
+    block_col: &[usize],
+    n_z: usize,
+    y_shift: f64,
+) -> Gathered {
+    let (n, p) = (problem.n(), problem.p());
+    let c1 = p + 1;
+    // One pass: the block pairs' cross-products, Zᵀ[X y] and [X y]ᵀ[X y].
+    let mut index: HashMap<(usize, usize), usize> = HashMap::new();
+    let mut pairs: Vec<(usize, usize)> = Vec::new();
+    let mut pair_raw: Vec<usize> = Vec::new();
+    let mut raw: Vec<f64> = Vec::new();
+    let mut zxy = vec![0.0; n_z * c1];
+    let mut xy = vec![0.0; c1 * c1];
+    let mut row = vec![0.0; c1];
+    let n_terms = problem.terms.len();
+    let mut blocks = vec![0usize; n_terms];
+    for r in 0..n {
+        row[..p].copy_from_slice(&problem.x[r * p..(r + 1) * p]);
+        row[p] = problem.y[r] - y_shift;
+        for a in 0..c1 {
+            for b in 0..c1 {
+                xy[a * c1 + b] += row[a] * row[b];
+            }
+        }
+        for (k, t) in problem.terms.iter().enumerate() {
+            blocks[k] = term_block[k] + t.level[r] as usize;
+            let col = block_col[blocks[k]];
+            for (c, z) in t.z.iter().enumerate() {
+                let zr = z[r];
+                if zr != 0.0 {
+                    let dst = &mut zxy[(col + c) * c1..(col + c + 1) * c1];
+                    for (d, v) in dst.iter_mut().zip(&row) {
+                        *d += zr * v;
+                    }
+                }
+            }
+        }
+        for ki in 0..n_terms {
+            for kj in 0..=ki {
+                // Terms come in block order, so bi ≥ bj.
+                let (bi, bj) = (blocks[ki], blocks[kj]);
+                let (qi, qj) = (term_q[ki], term_q[kj]);
+                let at = *index.entry((bi, bj)).or_insert_with(|| {
+                    pairs.push((bi, bj));
+                    pair_raw.push(raw.len());
+                    raw.resize(raw.len() + qi * qj, 0.0);
+                    pairs.len() - 1
+                });
+                let start = pair_raw[at];
+                let (ti, tj) = (&problem.terms[ki], &problem.terms[kj]);
+                for a in 0..qi {
+                    let za = ti.z[a][r];
+                    if za == 0.0 {
+                        continue;
+                    }
+                    for b in 0..qj {
+                        raw[start + a * qj + b] += za * tj.z[b][r];
+                    }
+                }
+            }
+        }
+    }
+    Gathered {
+        pairs,
+        pair_raw,
+        raw,
+        zxy,
+        xy,
+    }
+}
+
+/// The lower triangle of M in compressed columns (pairs by block column,
+/// then block row), with the slot in its values of each raw entry
+/// (`usize::MAX` above the diagonal of a diagonal block).
+fn lower_pattern(
+    pairs: &[(usize, usize)],
+    pair_raw: &[usize],
+    raw_len: usize,
+    term_q: &[usize],
+    block_term: &[usize],
+    block_col: &[usize],
+    n_z: usize,
+) -> (Vec<usize>, Vec<usize>, Vec<usize>) {
+    // The lower triangle of M in compressed columns: pairs by block
+    // column, then block row.
+    let mut order: Vec<usize> = (0..pairs.len()).collect();
+    order.sort_unstable_by_key(|&k| (pairs[k].1, pairs[k].0));
+    let mut slot = vec![usize::MAX; raw_len];
+    let mut col_ptr = Vec::with_capacity(n_z + 1);
+    let mut row_idx = Vec::new();
+    col_ptr.push(0);
+    let mut start = 0;
+    while start < order.len() {
+        let bj = pairs[order[start]].1;
+        let mut end = start;
+        while end < order.len() && pairs[order[end]].1 == bj {
+            end += 1;
+        }
+        let qj = term_q[block_term[bj]];
+        for cj in 0..qj {
+            for &k in &order[start..end] {
+                let bi = pairs[k].0;
+                let qi = term_q[block_term[bi]];
+                for ci in 0..qi {
+                    if bi == bj && ci < cj {
+                        continue;
+                    }
+                    slot[pair_raw[k] + ci * qj + cj] = row_idx.len();
+                    row_idx.push(block_col[bi] + ci);
+                }
+            }
+            col_ptr.push(row_idx.len());
+        }
+        start = end;
+    }
+    (slot, col_ptr, row_idx)
 }
 
 /// Fit `problem` on the sparse route, with `given` (a nearby model's θ)
@@ -548,81 +593,72 @@ pub(crate) fn fit(problem: &MixedProblem, options: FitOptions, given: Option<&[f
         sys.evaluate(th, false)
             .map_or(f64::INFINITY, |s| s.pieces.profiled_deviance(method, n, p))
     };
-    let sub = Subspace::of(problem);
-    let lower = sub.reduce(&problem.theta_lower());
     let base = base_start(problem);
+    let start = best_start(&Subspace::of(problem), &base, given, || None, &dev)?;
     let theta_scale = row_scales(problem, &base);
-    let scale = sub.reduce(&theta_scale);
-    let given = given.filter(|g| g.len() == base.len() && g.iter().all(|v| v.is_finite()));
-    let candidates: Vec<Vec<f64>> = match given {
-        Some(g) => vec![sub.project(g)],
-        None => [0.2, 1.0, 3.0]
-            .iter()
-            .map(|s| base.iter().map(|v| v * s).collect())
-            .collect(),
-    };
-    let n_candidates = candidates.len();
-    let start = candidates
-        .into_iter()
-        .map(|c| (dev(&c), c))
-        .filter(|(d, _)| d.is_finite())
-        .min_by(|a, b| a.0.total_cmp(&b.0))
-        .map(|(_, c)| c)
-        .ok_or_else(|| Error::Numerical {
-            step: "start values".into(),
-            message: "the criterion cannot be evaluated at the start values; check the data for extreme values".into(),
-        })?;
-    let theta_of = |x: &[f64]| -> Vec<f64> {
-        let th: Vec<f64> = x.iter().zip(&scale).map(|(a, s)| a * s).collect();
-        sub.expand(&th)
-    };
-    let sdev = |x: &[f64]| dev(&theta_of(x));
-    let start_x: Vec<f64> = sub.reduce(&start).iter().zip(&scale).map(|(a, s)| a / s).collect();
-    let unit: Vec<f64> = sub.reduce(&base).iter().zip(&scale).map(|(a, s)| a / s).collect();
+    let space = SearchSpace::new(problem, &theta_scale);
+    let sdev = |x: &[f64]| dev(&space.theta(x));
     // The analytic gradient in the scaled coordinates (None where a factor
     // is singular: differences are taken there).
     let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
-        sys.gradient(&theta_of(x), method, n)
-            .map(|(d, g)| (d, sub.reduce(&g).iter().zip(&scale).map(|(a, s)| a * s).collect()))
+        sys.gradient(&space.theta(x), method, n)
+            .map(|(d, g)| (d, space.gradient(&g)))
     };
-    let (current, (iterations, evaluations, restarts)) =
-        search(&sdev, Some(&sgrad), None, &start_x, None, &lower, &unit, options.optim);
-    let theta = theta_of(&current.theta);
+    let (current, (iterations, evaluations, restarts)) = search(
+        &sdev,
+        Some(&sgrad),
+        None,
+        &space.point(&start),
+        None,
+        &space.reduce(&problem.theta_lower()),
+        &space.point(&base),
+        options.optim,
+    );
+    let theta = space.theta(&current.theta);
+    let (estimates, min_curvature, extra) = results(&sys, problem, options, theta, &theta_scale)?;
+    let (boundary, _) = boundary_and_free(problem, &estimates.theta);
+    let record = Record {
+        polished: current.polished,
+        iterations,
+        // The start's candidates cost up to three evaluations.
+        evaluations: evaluations + 3 + extra,
+        restarts,
+        min_curvature,
+        boundary,
+        inverse_hessian: None,
+        route: Route::Sparse,
+    };
+    Ok(assemble(problem, method, estimates, record))
+}
 
-    let failed = || Error::Numerical {
+/// The estimates at the optimum `theta`, with the smallest curvature and
+/// the evaluations that Satterthwaite's derivatives took.
+fn results(
+    sys: &SparseSystem,
+    problem: &MixedProblem,
+    options: FitOptions,
+    theta: Vec<f64>,
+    theta_scale: &[f64],
+) -> Result<(Estimates, Option<f64>, usize)> {
+    let (n, p) = (problem.n(), problem.p());
+    let method = options.method;
+    let sol = sys.evaluate(&theta, true).ok_or_else(|| Error::Numerical {
         step: "final evaluation".into(),
         message: "the criterion failed at the optimum; please report this with the data shape".into(),
-    };
-    let sol = sys.evaluate(&theta, true).ok_or_else(failed)?;
+    })?;
     let sigma2 = sol.pieces.sigma2(method, n, p);
-    let deviance = sol.pieces.profiled_deviance(method, n, p);
-    let full_lower = problem.theta_lower();
-    let estimated = problem.estimated();
-    let boundary_idx: Vec<usize> = estimated
-        .iter()
-        .copied()
-        .filter(|&i| theta[i] <= full_lower[i])
-        .collect();
-    let free: Vec<usize> = estimated
-        .iter()
-        .copied()
-        .filter(|i| !boundary_idx.contains(i))
-        .collect();
-    let names = theta_names(problem);
-    let boundary: Vec<String> = boundary_idx.iter().map(|&i| names[i].clone()).collect();
+    let (_, free) = boundary_and_free(problem, &theta);
     let mut beta = sol.beta.clone();
     if let Some(j) = sys.intercept {
         beta[j] += sys.y_shift;
     }
-    let cov_beta: Vec<f64> = sol.sxx_inv.iter().map(|v| sigma2 * v).collect();
     let t = sys.factors(&theta);
     let full = options.detail == Detail::Full;
-    let (blups, fitted, fitted_marginal) = if full {
+    let conditional = if full {
         conditional(problem, &t, &beta, &sys.u_by_term(&sol.u))
     } else {
         (Vec::new(), Vec::new(), marginal(problem, &beta))
     };
-    let residuals: Vec<f64> = problem.y.iter().zip(&fitted).map(|(y, f)| y - f).collect();
     let random = problem
         .terms
         .iter()
@@ -643,50 +679,26 @@ pub(crate) fn fit(problem: &MixedProblem, options: FitOptions, given: Option<&[f
             s.sxx_inv.iter().map(|v| sigma2 * v).collect(),
         ))
     };
-    let h = stencil_steps(&theta, &theta_scale, &free);
+    let h = stencil_steps(&theta, theta_scale, &free);
     let mut extra = 0;
     let derivs = piece_derivatives_by(at, &theta, &free, &h, &mut extra);
-    let (sensitivity, min_curvature) = assemble(derivs, n, p, free.len(), method, sigma2);
+    let (sensitivity, min_curvature) = from_derivatives(derivs, n, p, free.len(), method, sigma2);
     let sensitivity = if full {
         sensitivity
     } else {
         VarianceSensitivity::unknown(free.len() + 1, p)
     };
-    let polished = current.polished;
-    let (converged, messages) = verdict(polished.decrement, polished.gradient_norm, min_curvature, &boundary);
-    let n_params = p + estimated.len() + 1;
-    Ok(Fit {
-        method,
-        n_obs: n,
-        x_names: problem.x_names.clone(),
-        beta,
-        cov_beta,
-        sigma2,
+    let estimates = Estimates {
         theta,
+        beta,
+        cov_beta: sol.sxx_inv.iter().map(|v| sigma2 * v).collect(),
+        sigma2,
+        deviance: sol.pieces.profiled_deviance(method, n, p),
         random,
-        blups,
-        fitted,
-        fitted_marginal,
-        residuals,
-        loglik: -deviance / 2.0,
-        n_params,
-        aic: deviance + 2.0 * n_params as f64,
-        bic: deviance + n_params as f64 * (n as f64).ln(),
-        info: FitInfo {
-            iterations,
-            evaluations: evaluations + n_candidates + extra,
-            gradient_norm: polished.gradient_norm,
-            newton_decrement: polished.decrement,
-            min_curvature,
-            converged,
-            boundary,
-            restarts,
-            messages,
-            inverse_hessian: None,
-            route: Route::Sparse,
-        },
+        conditional,
         sensitivity,
-    })
+    };
+    Ok((estimates, min_curvature, extra))
 }
 
 /// The entries of M⁻¹ on the pattern of its simplicial factor L (Takahashi's
@@ -739,23 +751,6 @@ fn selected_inverse(sym: &SymbolicSimplicialCholesky<usize>, sorted: &[(usize, u
         sigma[lo] = diag;
     }
     Some(sigma)
-}
-
-/// The inverse of a q×q lower-triangular matrix (row-major); `None` when a
-/// diagonal entry is zero.
-fn lower_inverse(t: &[f64], q: usize) -> Option<Vec<f64>> {
-    if (0..q).any(|i| t[i * q + i] == 0.0) {
-        return None;
-    }
-    let mut inv = vec![0.0; q * q];
-    for j in 0..q {
-        inv[j * q + j] = 1.0 / t[j * q + j];
-        for i in j + 1..q {
-            let s: f64 = (j..i).map(|c| t[i * q + c] * inv[c * q + j]).sum();
-            inv[i * q + j] = -s / t[i * q + i];
-        }
-    }
-    Some(inv)
 }
 
 /// Σ log Lᵢᵢ of a numeric factor, whichever layout the analysis chose.

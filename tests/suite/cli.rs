@@ -9,7 +9,7 @@ use crate::common::{braid, data_dir, expect_keys, expect_one_line_error, expect_
 const BASE: [&str; 6] = ["--id", "pupil", "--age", "age", "--outcome", "score"];
 
 /// `braid COMMAND tests/data/FILE` with the pupil, age and score roles.
-fn on_test_file(command: &str, file: &str) -> std::process::Command {
+pub(crate) fn on_test_file(command: &str, file: &str) -> std::process::Command {
     let mut cmd = braid();
     cmd.arg(command).arg(data_dir().join(file)).args(BASE);
     cmd

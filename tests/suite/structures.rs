@@ -251,23 +251,15 @@ fn a_diagonal_fit_recovers_independent_effects() {
 // --cluster-slope gives the cluster an age slope; the screen says both.
 #[test]
 fn the_structure_flags_are_stated_on_the_screen() {
-    use crate::common::{braid, data_dir, expect_words, run_ok};
-    let out = run_ok(
-        braid()
-            .arg("fit")
-            .arg(data_dir().join("sim_school.csv"))
-            .args([
-                "--id",
-                "pupil",
-                "--age",
-                "age",
-                "--outcome",
-                "score",
-                "--cluster",
-                "school",
-            ])
-            .args(["--uncorrelated", "--cluster-slope", "--degree", "1"]),
-    );
+    use crate::common::{expect_words, run_ok};
+    let out = run_ok(crate::cli::on_test_file("fit", "sim_school.csv").args([
+        "--cluster",
+        "school",
+        "--uncorrelated",
+        "--cluster-slope",
+        "--degree",
+        "1",
+    ]));
     expect_words(
         &out,
         &[
@@ -287,33 +279,13 @@ fn the_structure_flags_are_stated_on_the_screen() {
 // notes/benchmarks.md (examples/calibrate_fit.rs: 4.50% at 5%).
 #[test]
 fn convergence_tests_count_the_parameters_of_a_diagonal_term() {
-    use crate::common::{braid, data_dir, read_json, run_ok, temp_dir};
+    use crate::common::{read_json, run_ok, temp_dir};
     let dir = temp_dir("converge-diagonal");
     let json = dir.join("converge.json");
     run_ok(
-        braid()
-            .arg("converge")
-            .arg(data_dir().join("sim_school.csv"))
-            .args([
-                "--id",
-                "pupil",
-                "--age",
-                "age",
-                "--outcome",
-                "score",
-                "--cluster",
-                "school",
-            ])
-            .args([
-                "--cohort",
-                "cohort",
-                "--wave",
-                "wave",
-                "--uncorrelated",
-                "--quiet",
-                "--force",
-                "--json",
-            ])
+        crate::cli::on_test_file("converge", "sim_school.csv")
+            .args(["--cluster", "school", "--cohort", "cohort", "--wave", "wave"])
+            .args(["--uncorrelated", "--quiet", "--force", "--json"])
             .arg(&json),
     );
     let v = read_json(&json);

@@ -19,6 +19,7 @@ pub mod grouped;
 mod pooled;
 mod primary;
 mod secondary;
+pub(in crate::lmm) use secondary::factor_derivatives;
 mod twopass;
 
 pub use gradient::{GradientEval, deviance_gradient, gradient_eval, has_gradient};

@@ -181,9 +181,6 @@ impl DenseSolve {
                 r2_grad[at] = -2.0 / th * (from..to).map(|i| self.xi[i] * self.xi[i]).sum::<f64>();
                 continue;
             }
-            let Some(tinv) = lower_inverse(&sec[s_idx], qs) else {
-                return false;
-            };
             let levels = (to - from) / qs;
             // M = L·I − Σ_l N_l and R = Σ_l ξ_l ξ_lᵀ over the term's level blocks.
             let mut msum = vec![0.0; qs * qs];
@@ -200,20 +197,49 @@ impl DenseSolve {
             for a in 0..qs {
                 msum[a * qs + a] += levels as f64;
             }
-            // Entry (a, b) of T_s (a ≥ b): ∂A = 2 (M T⁻¹)_{ba}, ∂r² = −2 (T⁻ᵀ R)_{ab}.
-            let mut k = at;
-            for b in 0..qs {
-                for a in b..qs {
-                    let mt: f64 = (0..qs).map(|c| msum[b * qs + c] * tinv[c * qs + a]).sum();
-                    let tr: f64 = (0..qs).map(|c| tinv[c * qs + a] * r[c * qs + b]).sum();
-                    a_grad[k] = 2.0 * mt;
-                    r2_grad[k] = -2.0 * tr;
-                    k += 1;
-                }
+            let nt = qs * (qs + 1) / 2;
+            if factor_derivatives(
+                &sec[s_idx],
+                qs,
+                &msum,
+                &r,
+                &mut a_grad[at..at + nt],
+                &mut r2_grad[at..at + nt],
+            )
+            .is_none()
+            {
+                return false;
             }
         }
         true
     }
+}
+
+/// The derivatives of `log|A₁|` and `r²` in the entries of a term's factor
+/// T (q×q lower triangular, row-major), written into `a` and `r2` in θ's
+/// order (column by column, lower triangle), from the term's sums over its
+/// levels: `msum = L·I − Σ_l N_l` (N_l the level's diagonal block of the
+/// inverse whose trace enters `∂ log|A₁|`) and `r = Σ_l ξ_l ξ_lᵀ`. Entry
+/// (a, b) gets `2 (M T⁻¹)_{ba}` and `−2 (T⁻ᵀ R)_{ab}` (notes/criterion.md,
+/// "Secondary terms with slopes"); `None` when T is singular.
+pub(in crate::lmm) fn factor_derivatives(
+    t: &[f64],
+    q: usize,
+    msum: &[f64],
+    r: &[f64],
+    a: &mut [f64],
+    r2: &mut [f64],
+) -> Option<()> {
+    let tinv = lower_inverse(t, q)?;
+    let mut k = 0;
+    for j in 0..q {
+        for i in j..q {
+            a[k] = 2.0 * (0..q).map(|c| msum[j * q + c] * tinv[c * q + i]).sum::<f64>();
+            r2[k] = -2.0 * (0..q).map(|c| tinv[c * q + i] * r[c * q + j]).sum::<f64>();
+            k += 1;
+        }
+    }
+    Some(())
 }
 
 /// The inverse of a q×q lower-triangular matrix (row-major), by forward
@@ -238,6 +264,34 @@ mod tests {
     use super::super::deviance;
     use super::*;
     use crate::lmm::{MixedProblem, RandomTermData};
+
+    /// The analytic gradient at θ against central differences of the
+    /// deviance (closed-form identity: they agree to the differences'
+    /// truncation), by REML and ML; an entry at 0 has a zero derivative
+    /// (the deviance is even in a lone θ).
+    fn matches_central_differences(cp: &CrossProducts, theta: &[f64]) {
+        for method in [Method::Reml, Method::Ml] {
+            let g = super::super::gradient_eval(cp, theta, method).unwrap();
+            let d = deviance(cp, theta, method);
+            assert!((g.deviance - d).abs() < 1e-9 * d.abs(), "{} vs {d}", g.deviance);
+            for k in 0..theta.len() {
+                if theta[k] == 0.0 {
+                    assert_eq!(g.grad[k], 0.0);
+                    continue;
+                }
+                let h = 1e-5;
+                let (mut tp, mut tm) = (theta.to_vec(), theta.to_vec());
+                tp[k] += h;
+                tm[k] -= h;
+                let fd = (deviance(cp, &tp, method) - deviance(cp, &tm, method)) / (2.0 * h);
+                assert!(
+                    (g.grad[k] - fd).abs() < 1e-5 * (1.0 + fd.abs()),
+                    "{method:?} θ{k}: {} vs {fd}",
+                    g.grad[k]
+                );
+            }
+        }
+    }
 
     // The analytic gradient with two secondary intercept terms (schools, and
     // raters crossed with them) against central differences of the
@@ -294,27 +348,7 @@ mod tests {
         let cp = CrossProducts::new(&problem);
         assert!(super::super::has_gradient(&cp));
         for theta in [[1.3, 0.2, 0.4, 0.7, 0.3], [1.1, -0.1, 0.3, 0.0, 0.5]] {
-            for method in [Method::Reml, Method::Ml] {
-                let g = super::super::gradient_eval(&cp, &theta, method).unwrap();
-                let d = deviance(&cp, &theta, method);
-                assert!((g.deviance - d).abs() < 1e-9 * d.abs(), "{} vs {d}", g.deviance);
-                for k in 0..theta.len() {
-                    if theta[k] == 0.0 {
-                        assert_eq!(g.grad[k], 0.0);
-                        continue;
-                    }
-                    let h = 1e-5;
-                    let (mut tp, mut tm) = (theta, theta);
-                    tp[k] += h;
-                    tm[k] -= h;
-                    let fd = (deviance(&cp, &tp, method) - deviance(&cp, &tm, method)) / (2.0 * h);
-                    assert!(
-                        (g.grad[k] - fd).abs() < 1e-5 * (1.0 + fd.abs()),
-                        "{method:?} θ{k}: {} vs {fd}",
-                        g.grad[k]
-                    );
-                }
-            }
+            matches_central_differences(&cp, &theta);
         }
     }
 
@@ -355,23 +389,7 @@ mod tests {
         let cp = CrossProducts::new(&problem);
         assert!(super::super::has_gradient(&cp));
         for theta in [[1.3, 0.2, 0.4, 0.7, -0.2, 0.3], [1.1, -0.1, 0.3, 0.5, 0.4, 0.9]] {
-            for method in [Method::Reml, Method::Ml] {
-                let g = super::super::gradient_eval(&cp, &theta, method).unwrap();
-                let d = deviance(&cp, &theta, method);
-                assert!((g.deviance - d).abs() < 1e-9 * d.abs(), "{} vs {d}", g.deviance);
-                for k in 0..theta.len() {
-                    let h = 1e-5;
-                    let (mut tp, mut tm) = (theta, theta);
-                    tp[k] += h;
-                    tm[k] -= h;
-                    let fd = (deviance(&cp, &tp, method) - deviance(&cp, &tm, method)) / (2.0 * h);
-                    assert!(
-                        (g.grad[k] - fd).abs() < 1e-5 * (1.0 + fd.abs()),
-                        "{method:?} θ{k}: {} vs {fd}",
-                        g.grad[k]
-                    );
-                }
-            }
+            matches_central_differences(&cp, &theta);
         }
         assert!(super::super::gradient_eval(&cp, &[1.3, 0.2, 0.4, 0.7, -0.2, 0.0], Method::Reml).is_none());
     }
