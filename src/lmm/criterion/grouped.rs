@@ -149,5 +149,5 @@ fn grouped_passes<const Q: usize>(
         group: Some(at.level_group),
         weight: weight.to_vec(),
     };
-    passes(cp, &shared, sec, s, method)
+    passes(cp, &shared, sec, s, method, false)
 }

@@ -331,7 +331,7 @@ mod tests {
         };
         let problem = MixedProblem {
             y,
-            x_names: vec!["1".into(), "a".into(), "a2".into()],
+            x_names: vec!["1".into(), "a".into(), "a2".into(), "a_even".into()],
             x,
             terms: vec![
                 term(

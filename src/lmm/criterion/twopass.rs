@@ -1,5 +1,6 @@
-//! The analytic gradient in two passes over the primary levels
-//! (notes/criterion.md, "The gradient in two passes").
+//! The analytic gradient over the primary levels in one fused pass or in
+//! two passes (notes/criterion.md, "The gradient in two passes" and "The
+//! fused pass").
 //!
 //! The first pass is the value's: per level the solves with `Aᵢ`, `Σ BᵢᵀHᵢ`
 //! (lower triangle) and `∂ log|Aᵢ|`. The dense part is then factored, which
@@ -7,7 +8,9 @@
 //! contracts each level's `uᵢₐ hᵢᵦᵀ` with them at once, instead of summing
 //! one m×m matrix per θ entry: `ξᵀ(uₐhᵦᵀ)ξ = (uₐ·ξ)(hᵦ·ξ)` costs O(columns)
 //! per level, and `tr(N uₐhᵦᵀ) = hᵦ·(N uₐ)` O(columns²) once per coefficient
-//! a instead of once per θ entry.
+//! a instead of once per θ entry. When levels have few non-zero columns
+//! and the factor few entries, summing those m×m matrices in the first
+//! pass costs less than opening every level again ([`is_fused`]).
 
 // Index loops mirror the matrix notation of the derivation.
 #![allow(clippy::needless_range_loop)]
@@ -92,6 +95,12 @@ pub(super) struct First {
     pub bh: Vec<f64>,
     /// Grouped levels only: per group, Σ (q − tr Aᵢ⁻¹).
     pub tau: Vec<f64>,
+    /// The fused pass only: per entry (r, c) of the lower triangle of an
+    /// m×m matrix, packed row by row (entry r(r+1)/2 + c), 1 + θ entries
+    /// values side by side: `Σ BᵢᵀHᵢ` and, per θ
+    /// entry of the factor, `Σ (uᵢₐ hᵢᵦᵀ + hᵢᵦ uᵢₐᵀ)`. Each level touches
+    /// the pairs of its non-zero columns.
+    pub acc: Vec<f64>,
 }
 
 /// The second pass's sums over a range of levels, per group and θ entry of
@@ -132,6 +141,7 @@ fn first<const Q: usize>(
     shared: &Levels<Q>,
     sec: &[Vec<f64>],
     range: std::ops::Range<usize>,
+    fused: bool,
 ) -> First {
     let m = cp.m;
     let nt = shared.solvers[0].nt;
@@ -143,18 +153,53 @@ fn first<const Q: usize>(
         dlog: vec![0.0; n_groups * nt],
         bh: vec![0.0; m * m],
         tau: vec![0.0; if grouped { n_groups } else { 0 }],
+        acc: vec![0.0; if fused { (1 + nt) * m * (m + 1) / 2 } else { 0 }],
     };
     let (mut cols, mut c) = (Vec::new(), Vec::new());
-    let (mut b, mut h): (Vec<[f64; Q]>, Vec<[f64; Q]>) = (Vec::new(), Vec::new());
+    let mut b: Vec<[f64; Q]> = Vec::new();
+    let mut h: Vec<[f64; Q]> = Vec::new();
+    let mut u: Vec<[f64; Q]> = Vec::new();
+    let (mut ua, mut hb): (Vec<[f64; 10]>, Vec<[f64; 10]>) = (Vec::new(), Vec::new());
     for i in range {
         let (g, solver, (gt, l, inv)) = open_level(cp, shared, sec, i, &mut cols, &mut c, &mut logdet);
         let nc = cols.len();
         b.resize(nc, [0.0; Q]);
         h.resize(nc, [0.0; Q]);
+        u.resize(nc, [0.0; Q]);
         for j in 0..nc {
-            (b[j], h[j], _) = solver.column(&gt, &l, &inv, &c[j]);
+            (b[j], h[j], u[j]) = solver.column(&gt, &l, &inv, &c[j]);
         }
         solver.add_dlog(&gt, &l, &inv, &mut out.dlog[g * nt..(g + 1) * nt]);
+        if fused {
+            // Per pair of columns (packed lower triangle), Bᵢᵀ Hᵢ and, per θ
+            // entry, the symmetric uₐhᵦᵀ + hᵦuₐᵀ, side by side.
+            let ntc = Q * (Q + 1) / 2;
+            let w = 1 + ntc;
+            ua.resize(nc, [0.0; 10]);
+            hb.resize(nc, [0.0; 10]);
+            for j in 0..nc {
+                for (k, &(ia, ib)) in solver.pairs[..ntc].iter().enumerate() {
+                    ua[j][k] = u[j][ia];
+                    hb[j][k] = h[j][ib];
+                }
+            }
+            for x in 0..nc {
+                let base = cols[x] * (cols[x] + 1) / 2;
+                for y in 0..=x {
+                    let at = (base + cols[y]) * w;
+                    let e = &mut out.acc[at..at + 1 + ntc];
+                    let mut s = 0.0;
+                    for r in 0..Q {
+                        s += b[x][r] * h[y][r];
+                    }
+                    e[0] += s;
+                    for k in 0..ntc {
+                        e[1 + k] += ua[x][k] * hb[y][k] + ua[y][k] * hb[x][k];
+                    }
+                }
+            }
+            continue;
+        }
         for x in 0..nc {
             let row = &mut out.bh[cols[x] * m..(cols[x] + 1) * m];
             for y in 0..=x {
@@ -304,6 +349,57 @@ fn second<const Q: usize>(
     out
 }
 
+/// Whether the sums of the second pass are gathered in the first one, as
+/// one m×m matrix `Σ uᵢₐ hᵢᵦᵀ` per θ entry (each level touching the pairs
+/// of its non-zero columns), instead of a second pass that opens every
+/// level again. Per level this costs about θ entries × columns² / 2, and
+/// θ entries × m² / 2 of memory per chunk of levels; so it serves one
+/// shared factor, a dense part of order at most [`FUSED_MAX_ORDER`], and
+/// levels whose θ entries × non-zero columns (at most; on average over the
+/// levels) is at most [`FUSED_MAX_WORK`].
+fn is_fused<const Q: usize>(cp: &CrossProducts, shared: &Levels<Q>) -> bool {
+    let columns = cp.link_values.len() / (Q * cp.n1.max(1)) + cp.p + 1;
+    let work = Q * (Q + 1) / 2 * columns;
+    shared.group.is_none() && cp.m <= FUSED_MAX_ORDER && work <= FUSED_MAX_WORK
+}
+
+/// See [`is_fused`].
+pub const FUSED_MAX_ORDER: usize = 256;
+
+/// See [`is_fused`]. Measured (notes/benchmarks.md, eleventh session):
+/// the fused pass is faster up to about 96 with 1 to 4 coefficients.
+pub const FUSED_MAX_WORK: usize = 96;
+
+/// The second pass's sums from the fused pass's `acc` (see [`First::acc`]):
+/// per θ entry k, with `S_k = M_k + M_kᵀ`, `ξᵀ M_k ξ = ½ ξᵀ S_k ξ` and
+/// `tr(N M_k) = ½ tr(N S_k)` over the trace's block of order `nd` (N is
+/// symmetric).
+fn contract(acc: &[f64], m: usize, xi: &[f64], n: &[f64], nd: usize) -> Second {
+    let w = acc.len() / (m * (m + 1) / 2);
+    let nt = w - 1;
+    let mut out = Second {
+        quad: vec![0.0; nt],
+        trace: vec![0.0; nt],
+        e_quad: Vec::new(),
+        e_trace: Vec::new(),
+    };
+    for r in 0..m {
+        for c in 0..=r {
+            let at = (r * (r + 1) / 2 + c) * w;
+            let e = &acc[at..at + w];
+            // Off-diagonal pairs count twice in the full sums, and the ½.
+            let half = if r == c { 0.5 } else { 1.0 };
+            let xx = half * xi[r] * xi[c];
+            let nn = if r < nd { half * n[r * nd + c] } else { 0.0 };
+            for k in 0..nt {
+                out.quad[k] += xx * e[1 + k];
+                out.trace[k] += nn * e[1 + k];
+            }
+        }
+    }
+    out
+}
+
 /// Both passes for `shared` over every level: the first pass's sums, the
 /// dense solve of `s − Σ BᵢᵀHᵢ` (`s` the scaled dense part) with its pieces,
 /// and the second pass's sums.
@@ -313,13 +409,24 @@ pub(super) fn passes<const Q: usize>(
     sec: &[Vec<f64>],
     mut s: Vec<f64>,
     method: Method,
+    fused: bool,
 ) -> Option<(First, DenseSolve, super::Pieces, Second)> {
-    let part = over_levels(cp, &|range| first::<Q>(cp, shared, sec, range), |a, b| {
+    let mut part = over_levels(cp, &|range| first::<Q>(cp, shared, sec, range, fused), |a, b| {
         a.logdet += b.logdet;
         a.dlog.iter_mut().zip(&b.dlog).for_each(|(x, y)| *x += y);
         a.bh.iter_mut().zip(&b.bh).for_each(|(x, y)| *x += y);
         a.tau.iter_mut().zip(&b.tau).for_each(|(x, y)| *x += y);
+        a.acc.iter_mut().zip(&b.acc).for_each(|(x, y)| *x += y);
     });
+    let m = cp.m;
+    if fused {
+        let w = part.acc.len() / (m * (m + 1) / 2);
+        for r in 0..m {
+            for c in 0..=r {
+                part.bh[r * m + c] = part.acc[(r * (r + 1) / 2 + c) * w];
+            }
+        }
+    }
     for (v, d) in s.iter_mut().zip(&part.bh) {
         *v -= d;
     }
@@ -331,6 +438,10 @@ pub(super) fn passes<const Q: usize>(
     };
     let nd = dense.nt_dim;
     let n: Vec<f64> = (0..nd * nd).map(|k| dense.inv_t[(k / nd, k % nd)]).collect();
+    if fused {
+        let sums = contract(&part.acc, cp.m, &dense.xi, &n, nd);
+        return Some((part, dense, pieces, sums));
+    }
     let sums = over_levels(
         cp,
         &|range| second::<Q>(cp, shared, sec, &dense.xi, &n, nd, range),
@@ -348,7 +459,14 @@ pub(super) fn passes<const Q: usize>(
     Some((part, dense, pieces, sums))
 }
 
-fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<GradientEval> {
+/// The gradient with one shared factor; `fused` as [`is_fused`] decides
+/// when `None`.
+fn two_pass<const Q: usize>(
+    cp: &CrossProducts,
+    theta: &[f64],
+    method: Method,
+    fused: Option<bool>,
+) -> Option<GradientEval> {
     let k1 = cp.primary?;
     let nt = Q * (Q + 1) / 2;
     let off = cp.theta_offset[k1];
@@ -360,7 +478,8 @@ fn two_pass<const Q: usize>(cp: &CrossProducts, theta: &[f64], method: Method) -
         group: None,
         weight: vec![1.0],
     };
-    let (part, dense, pieces, sums) = passes(cp, &shared, &sec, scaled_dense(cp, &all), method)?;
+    let fused = fused.unwrap_or_else(|| is_fused(cp, &shared));
+    let (part, dense, pieces, sums) = passes(cp, &shared, &sec, scaled_dense(cp, &all), method, fused)?;
     let mut a_grad = vec![0.0; theta.len()];
     let mut r2_grad = vec![0.0; theta.len()];
     for k in 0..nt {
@@ -381,9 +500,73 @@ pub fn gradient_eval(cp: &CrossProducts, theta: &[f64], method: Method) -> Optio
         return None;
     }
     match cp.q1 {
-        1 => two_pass::<1>(cp, theta, method),
-        2 => two_pass::<2>(cp, theta, method),
-        3 => two_pass::<3>(cp, theta, method),
-        _ => two_pass::<4>(cp, theta, method),
+        1 => two_pass::<1>(cp, theta, method, None),
+        2 => two_pass::<2>(cp, theta, method, None),
+        3 => two_pass::<3>(cp, theta, method, None),
+        _ => two_pass::<4>(cp, theta, method, None),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::lmm::{MixedProblem, RandomTermData};
+
+    /// Two orders of summation of the same sums, relative (rounding only).
+    const SUMMATION_ORDER_REL: f64 = 1e-9;
+
+    // The fused pass and the two passes sum the same quantities in a
+    // different order (closed-form identity: equal to rounding), with a
+    // school intercept, a school slope and a fixed column that is zero for
+    // half the participants, by REML and ML.
+    #[test]
+    fn the_fused_pass_agrees_with_two_passes() {
+        let mut rng = crate::simulate::Rng::new(21);
+        let (n_id, per, schools) = (300, 3, 9);
+        let n = n_id * per;
+        let (mut x, mut y, mut a_col, mut id, mut sc) = (vec![], vec![], vec![], vec![], vec![]);
+        for i in 0..n_id {
+            let (b0, b1) = (2.0 * rng.normal(), 0.5 * rng.normal());
+            for w in 0..per {
+                let a = w as f64 + rng.uniform() - 1.0;
+                x.extend([1.0, a, a * a, if i % 2 == 0 { a } else { 0.0 }]);
+                y.push(10.0 + a + b0 + b1 * a + (i % schools) as f64 * 0.2 + rng.normal());
+                a_col.push(a);
+                id.push(i as u32);
+                sc.push((i % schools) as u32);
+            }
+        }
+        let problem = MixedProblem {
+            y,
+            x_names: vec!["1".into(), "a".into(), "a2".into(), "a_even".into()],
+            x,
+            terms: vec![
+                RandomTermData::numbered("id", n_id, id, &["intercept", "a"], vec![vec![1.0; n], a_col.clone()]),
+                RandomTermData::numbered("school", schools, sc, &["intercept", "a"], vec![vec![1.0; n], a_col]),
+            ],
+        };
+        let cp = CrossProducts::new(&problem);
+        let theta = [1.2, 0.1, 0.5, 0.6, -0.1, 0.3];
+        for method in [Method::Reml, Method::Ml] {
+            let one = two_pass::<2>(&cp, &theta, method, Some(true)).unwrap();
+            let two = two_pass::<2>(&cp, &theta, method, Some(false)).unwrap();
+            let close = |a: f64, b: f64| (a - b).abs() <= SUMMATION_ORDER_REL * (1.0 + a.abs());
+            assert!(
+                close(one.deviance, two.deviance),
+                "{} vs {}",
+                one.deviance,
+                two.deviance
+            );
+            for (a, b) in [
+                (&one.grad, &two.grad),
+                (&one.a_grad, &two.a_grad),
+                (&one.r2_grad, &two.r2_grad),
+            ] {
+                assert!(
+                    a.iter().zip(b).all(|(x, y)| close(*x, *y)),
+                    "{method:?}: {a:?} vs {b:?}"
+                );
+            }
+        }
     }
 }
