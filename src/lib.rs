@@ -212,7 +212,9 @@ pub use error::{Error, Result};
 pub struct FitAnalysis {
     /// The model frame (design and basis).
     pub frame: spec::ModelFrame,
-    /// The engine's fit.
+    /// The engine's fit; its BLUPs, conditional fitted values and
+    /// residuals only when the request asks for predictions
+    /// ([`lmm::Detail`]).
     pub fit: lmm::Fit,
     /// The report with stable JSON keys.
     pub report: report::FitReport,
@@ -292,6 +294,12 @@ pub fn fit_panel(panel: &data::Panel, request: &FitRequest) -> Result<FitAnalysi
         &frame.problem,
         lmm::FitOptions {
             method: request.model.method,
+            // The values per row and per level only for predictions.
+            detail: if request.predictions {
+                lmm::Detail::Full
+            } else {
+                lmm::Detail::Estimates
+            },
             ..Default::default()
         },
     )?;

@@ -94,7 +94,7 @@ pub fn compare(c: &Complete, effects: &[Effect]) -> Result<MixedComparison> {
             covariance: Default::default(),
         }],
     };
-    let fit = crate::lmm::fit(&problem, FitOptions::default())?;
+    let fit = crate::lmm::fit(&problem, FitOptions::estimates())?;
     let rows = |from: usize, count: usize| -> Vec<Vec<f64>> {
         (from..from + count)
             .map(|c| (0..p).map(|j| f64::from(u8::from(j == c))).collect())

@@ -286,7 +286,7 @@ fn mixed(layout: &Layout, input: &ExactInput<'_>, ids: &[u32]) -> Result<FullFit
         x,
         terms,
     };
-    let f = crate::lmm::fit(&problem, crate::lmm::FitOptions::default())?;
+    let f = crate::lmm::fit(&problem, crate::lmm::FitOptions::estimates())?;
     Ok(FullFit {
         coef: f.beta.clone(),
         cov: f.cov_beta.clone(),

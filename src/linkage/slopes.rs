@@ -58,7 +58,7 @@ pub(super) fn between_within(
     problem.x_names[1] = "baseline age".into();
     let problem = with_columns(&problem, &["time since baseline".to_string()], &[within]);
     // The random terms are M0's: its REML fit is a close start.
-    let fit = match crate::lmm::fit_near(&problem, crate::lmm::FitOptions::default(), m0_reml) {
+    let fit = match crate::lmm::fit_near(&problem, crate::lmm::FitOptions::estimates(), m0_reml) {
         Ok(f) => f,
         Err(e) => {
             notes.push(format!("the between/within fit failed: {e}"));

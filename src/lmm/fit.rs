@@ -66,6 +66,17 @@ pub struct FitOptions {
     pub route: Route,
 }
 
+impl FitOptions {
+    /// REML with [`Detail::Estimates`]: the estimates and Satterthwaite's
+    /// sensitivity, without the values per row and per level.
+    pub fn estimates() -> FitOptions {
+        FitOptions {
+            detail: Detail::Estimates,
+            ..Default::default()
+        }
+    }
+}
+
 /// The factorisation a fit runs on (notes/criterion.md, "The sparse route").
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "lowercase")]
@@ -99,6 +110,12 @@ pub enum Detail {
     /// sensitivity of cov(β̂) for Satterthwaite df.
     #[default]
     Full,
+    /// Everything but the values per row and per level: the estimates and
+    /// the sensitivity of cov(β̂), as the fit's tables, curve and tests
+    /// need. No BLUPs, conditional fitted values or residuals (empty); the
+    /// marginal fitted values Xβ̂ are kept. On a file of millions of rows
+    /// this leaves out about 40 bytes per row and 60 per level.
+    Estimates,
     /// What a likelihood-ratio test needs: the estimates, the likelihood
     /// and the marginal fitted values Xβ̂. No BLUPs, conditional fitted
     /// values or residuals (empty), and no sensitivity (NaN). With an
@@ -106,6 +123,20 @@ pub enum Detail {
     /// without a Newton finish, so `min_curvature` is `None`; without one
     /// the curvature comes from the finish's last stencil.
     Likelihood,
+}
+
+impl Detail {
+    /// Whether the fit computes BLUPs, conditional fitted values and
+    /// residuals.
+    pub fn per_row(self) -> bool {
+        self == Detail::Full
+    }
+
+    /// Whether the fit computes the sensitivity of cov(β̂) (Satterthwaite
+    /// df) and certifies its optimum by a Newton finish.
+    pub fn inference(self) -> bool {
+        self != Detail::Likelihood
+    }
 }
 
 /// One grouping factor's estimated covariance.
@@ -641,7 +672,7 @@ struct Searched {
 /// the Newton finish: a likelihood-only fit with an analytic gradient
 /// (notes/criterion.md, "Likelihood-only fits").
 fn is_lean(cp: &CrossProducts, options: FitOptions) -> bool {
-    options.detail != Detail::Full && criterion::has_gradient(cp)
+    !options.detail.inference() && criterion::has_gradient(cp)
 }
 
 /// `h` (d×d, row-major) with entry (i, j) multiplied by `(sᵢ sⱼ)^power`:
@@ -746,7 +777,7 @@ fn search_optimum(
 fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, searched: Searched) -> Result<Fit> {
     let (n, p) = (problem.n(), problem.p());
     let method = options.method;
-    let full = options.detail == Detail::Full;
+    let (per_row, inference) = (options.detail.per_row(), options.detail.inference());
     let Searched {
         theta,
         polished,
@@ -757,7 +788,7 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
         stencil,
         theta_scale,
     } = searched;
-    let factor = criterion::evaluate(cp, &theta, true).map_err(|_| Error::Numerical {
+    let factor = criterion::evaluate(cp, &theta, false).map_err(|_| Error::Numerical {
         step: "final evaluation".into(),
         message: "the criterion failed at the optimum; please report this with the data shape".into(),
     })?;
@@ -765,10 +796,11 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
     let sigma2 = pieces.sigma2(method, n, p);
     let (boundary, free) = boundary_and_free(problem, &theta);
 
-    let (beta, u) = solve_pls(cp, &factor);
+    let t = criterion::factors(cp, &theta);
+    let (beta, u) = solve_pls(cp, &factor, per_row.then_some(t.as_slice()));
     let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
-    let conditional = if full {
-        conditional(problem, &criterion::factors(cp, &theta), &beta, &u)
+    let conditional = if per_row {
+        conditional(problem, &t, &beta, &u)
     } else {
         (Vec::new(), Vec::new(), marginal(problem, &beta))
     };
@@ -776,14 +808,14 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
 
     // The likelihood alone takes its curvature from the finish's last
     // stencil, taken next to the optimum, rather than a new one.
-    let kept = stencil.filter(|st| !full || st.serves(&theta, &free));
+    let kept = stencil.filter(|st| !inference || st.serves(&theta, &free));
     let (sensitivity, min_curvature) = if is_lean(cp, options) {
         ((VarianceSensitivity::unknown(free.len() + 1, p), 0), None)
     } else {
         sensitivity(cp, &theta, &theta_scale, &free, method, sigma2, kept)
     };
     evaluations += sensitivity.1;
-    let sensitivity = if full {
+    let sensitivity = if inference {
         sensitivity.0
     } else {
         VarianceSensitivity::unknown(free.len() + 1, p)
@@ -924,5 +956,48 @@ mod near_tests {
             near.info.evaluations,
             cold.info.evaluations
         );
+    }
+
+    // Detail::Estimates runs the same search and inference as Detail::Full
+    // and leaves out only the values per row and per level (closed-form
+    // identity: the same arithmetic, so equal numbers).
+    #[test]
+    fn estimates_detail_drops_only_the_values_per_row() {
+        let (levels, waves) = (200, 3);
+        let n = levels * waves;
+        let mut rng = Rng::new(12);
+        let (mut age, mut y) = (Vec::new(), Vec::new());
+        for _ in 0..levels {
+            let (b0, b1) = (rng.normal(), 0.3 * rng.normal());
+            for w in 0..waves {
+                let a = w as f64 + rng.uniform() - 1.0;
+                age.push(a);
+                y.push(2.0 + 0.5 * a + b0 + b1 * a + 0.7 * rng.normal());
+            }
+        }
+        let problem = MixedProblem {
+            y,
+            x_names: vec!["intercept".into(), "age".into()],
+            x: age.iter().flat_map(|&a| [1.0, a]).collect(),
+            terms: vec![RandomTermData::numbered(
+                "id",
+                levels,
+                (0..n).map(|r| (r / waves) as u32).collect(),
+                &["intercept", "age"],
+                vec![vec![1.0; n], age.clone()],
+            )],
+        };
+        let full = fit(&problem, FitOptions::default()).unwrap();
+        let lean = fit(&problem, FitOptions::estimates()).unwrap();
+        assert_eq!(full.loglik, lean.loglik);
+        assert_eq!(full.theta, lean.theta);
+        assert_eq!(full.beta, lean.beta);
+        assert_eq!(full.cov_beta, lean.cov_beta);
+        assert_eq!(full.fitted_marginal, lean.fitted_marginal);
+        assert_eq!(full.sensitivity.dcov, lean.sensitivity.dcov);
+        assert_eq!(full.sensitivity.acov, lean.sensitivity.acov);
+        assert_eq!(full.fitted.len(), n);
+        assert_eq!(full.blups[0].len(), levels);
+        assert!(lean.fitted.is_empty() && lean.residuals.is_empty() && lean.blups.iter().all(Vec::is_empty));
     }
 }

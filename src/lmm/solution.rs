@@ -8,9 +8,11 @@ use super::criterion::{self, Factor};
 use super::crossprod::CrossProducts;
 use super::fit::RandomComponent;
 
-/// Solve the PLS system `Lᵀx = l_y` for `[u₂, β]`, then each `u₁ᵢ`.
-/// Returns β and the spherical random effects u per term (problem order, flat).
-pub(super) fn solve_pls(cp: &CrossProducts, f: &Factor) -> (Vec<f64>, Vec<Vec<f64>>) {
+/// Solve the PLS system `Lᵀx = l_y` for `[u₂, β]`, then each `u₁ᵢ`
+/// ([`criterion::primary_effects`]) when `t`, each term's relative factor,
+/// is given (else the primary term's effects are left empty). Returns β
+/// and the spherical random effects u per term (problem order, flat).
+pub(super) fn solve_pls(cp: &CrossProducts, f: &Factor, t: Option<&[Vec<f64>]>) -> (Vec<f64>, Vec<Vec<f64>>) {
     let m = cp.m;
     let k = m - 1;
     let l = &f.dense_l;
@@ -36,35 +38,8 @@ pub(super) fn solve_pls(cp: &CrossProducts, f: &Factor) -> (Vec<f64>, Vec<Vec<f6
         };
         u[kt] = x[cp.secondary_offset[s]..end].to_vec();
     }
-    if let Some(k1) = cp.primary {
-        let q1 = cp.q1;
-        let mut u1 = vec![0.0; cp.n1 * q1];
-        let mut rhs = vec![0.0; q1];
-        for i in 0..cp.n1 {
-            let (cols, w) = f.blocks_w.level(i);
-            let nc = cols.len();
-            let li = &f.blocks_l[i * q1 * q1..(i + 1) * q1 * q1];
-            for r in 0..q1 {
-                let mut v = 0.0;
-                for (c, &dc) in cols.iter().enumerate() {
-                    if dc == m - 1 {
-                        v += w[r * nc + c];
-                    } else {
-                        v -= w[r * nc + c] * x[dc];
-                    }
-                }
-                rhs[r] = v;
-            }
-            // Lᵢᵀ u = rhs (back substitution).
-            for r in (0..q1).rev() {
-                let mut v = rhs[r];
-                for s in r + 1..q1 {
-                    v -= li[s * q1 + r] * u1[i * q1 + s];
-                }
-                u1[i * q1 + r] = v / li[r * q1 + r];
-            }
-        }
-        u[k1] = u1;
+    if let (Some(k1), Some(t)) = (cp.primary, t) {
+        u[k1] = criterion::primary_effects(cp, t, &x);
     }
     (beta, u)
 }

@@ -31,8 +31,8 @@ use faer::{Conj, Side};
 use super::criterion::Pieces;
 use super::criterion::factor_derivatives;
 use super::fit::{
-    Detail, Estimates, Fit, FitOptions, RandomComponent, Record, Route, SearchSpace, VarianceSensitivity, assemble,
-    best_start, boundary_and_free,
+    Estimates, Fit, FitOptions, RandomComponent, Record, Route, SearchSpace, VarianceSensitivity, assemble, best_start,
+    boundary_and_free,
 };
 use super::search::search;
 use super::sensitivity::{from_derivatives, piece_derivatives_by, stencil_steps};
@@ -653,8 +653,7 @@ fn results(
         beta[j] += sys.y_shift;
     }
     let t = sys.factors(&theta);
-    let full = options.detail == Detail::Full;
-    let conditional = if full {
+    let conditional = if options.detail.per_row() {
         conditional(problem, &t, &beta, &sys.u_by_term(&sol.u))
     } else {
         (Vec::new(), Vec::new(), marginal(problem, &beta))
@@ -683,7 +682,7 @@ fn results(
     let mut extra = 0;
     let derivs = piece_derivatives_by(at, &theta, &free, &h, &mut extra);
     let (sensitivity, min_curvature) = from_derivatives(derivs, n, p, free.len(), method, sigma2);
-    let sensitivity = if full {
+    let sensitivity = if options.detail.inference() {
         sensitivity
     } else {
         VarianceSensitivity::unknown(free.len() + 1, p)

@@ -128,7 +128,7 @@ fn fitted(panel: &Panel, model: &ModelSpec, population: &Population, targets: &T
     let Ok(frame) = spec::build_frame(panel, model) else {
         return outcome;
     };
-    let Ok(fit) = lmm::fit(&frame.problem, lmm::FitOptions::default()) else {
+    let Ok(fit) = lmm::fit(&frame.problem, lmm::FitOptions::estimates()) else {
         return outcome;
     };
     let mut unit = vec![0.0; fit.p()];

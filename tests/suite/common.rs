@@ -78,13 +78,16 @@ pub fn reml(problem: &braid::lmm::MixedProblem) -> braid::lmm::Fit {
 }
 
 /// Fit a panel with a model and a trajectory request through the library's
-/// validated request.
+/// validated request, with the predictions (so the fit keeps its values per
+/// row and per level).
 pub fn fit(
     panel: &Panel,
     spec: &braid::spec::ModelSpec,
     trajectory: &braid::infer::TrajectoryRequest,
 ) -> braid::Result<braid::FitAnalysis> {
-    let request = braid::FitRequest::new(spec.clone(), trajectory.clone())?;
+    let mut request = braid::FitRequest::new(spec.clone(), trajectory.clone())?;
+    // The values per row and per level too, which the identity tests compare.
+    request.predictions = true;
     braid::fit_panel(panel, &request)
 }
 

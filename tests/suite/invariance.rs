@@ -41,6 +41,12 @@ fn fitted_by_original_row(p: &Panel, fitted: &[f64]) -> Vec<f64> {
 }
 
 fn assert_close(a: &[f64], b: &[f64], what: &str) {
+    assert!(
+        !a.is_empty() && a.len() == b.len(),
+        "{what}: {} vs {} values",
+        a.len(),
+        b.len()
+    );
     for (x, y) in a.iter().zip(b) {
         assert!(rel(*x, *y, 1.0) < REFIT_PARAM_REL, "{what}: {x} vs {y}");
     }

@@ -23,6 +23,7 @@ pub(in crate::lmm) use secondary::factor_derivatives;
 mod twopass;
 
 pub use gradient::{GradientEval, deviance_gradient, gradient_eval, has_gradient};
+pub use primary::primary_effects;
 use primary::{primary_fixed, primary_general};
 
 use faer::{Mat, Side};
@@ -94,60 +95,6 @@ pub struct Factor {
     pub pieces: Pieces,
     /// Lower Cholesky factor of the dense part, m×m.
     pub dense_l: Mat<f64>,
-    /// Per primary level, `Lᵢ` (q₁×q₁ row-major), when kept.
-    pub blocks_l: Vec<f64>,
-    /// Per primary level, `Wᵢ` restricted to its own columns, when kept.
-    pub blocks_w: KeptW,
-}
-
-/// Per primary level, `Wᵢ` restricted to its own columns, in flat arrays:
-/// the dense column index of each column and the values (q₁ × ncols
-/// row-major), one allocation for all levels.
-#[derive(Debug, Clone, Default)]
-pub struct KeptW {
-    q1: usize,
-    /// Level i's columns are `cols[start[i]..start[i + 1]]`.
-    start: Vec<usize>,
-    cols: Vec<usize>,
-    vals: Vec<f64>,
-}
-
-impl KeptW {
-    fn with_capacity(q1: usize, levels: usize, cols_per_level: usize) -> KeptW {
-        let mut start = Vec::with_capacity(levels + 1);
-        start.push(0);
-        KeptW {
-            q1,
-            start,
-            cols: Vec::with_capacity(levels * cols_per_level),
-            vals: Vec::with_capacity(levels * cols_per_level * q1),
-        }
-    }
-
-    /// Append a level: its columns, and `fill` writes its q₁ × ncols values.
-    fn push_with(&mut self, cols: &[usize], fill: impl FnOnce(&mut [f64])) {
-        let at = self.vals.len();
-        self.vals.resize(at + self.q1 * cols.len(), 0.0);
-        fill(&mut self.vals[at..]);
-        self.cols.extend_from_slice(cols);
-        self.start.push(self.cols.len());
-    }
-
-    /// Level `i`'s dense column indices and values (q₁ × ncols row-major).
-    pub fn level(&self, i: usize) -> (&[usize], &[f64]) {
-        let (a, b) = (self.start[i], self.start[i + 1]);
-        (&self.cols[a..b], &self.vals[self.q1 * a..self.q1 * b])
-    }
-
-    /// Number of kept levels.
-    pub fn len(&self) -> usize {
-        self.start.len().saturating_sub(1)
-    }
-
-    /// Whether no level is kept.
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
-    }
 }
 
 /// Build the per-term lower-triangular factors `T_k` (row-major) from θ.
@@ -224,9 +171,10 @@ fn scaled(cp: &CrossProducts, dense: &[f64], t: &[Vec<f64>]) -> Vec<f64> {
     e
 }
 
-/// Evaluate the pieces of the criterion; `keep` retains the block factors
-/// needed for BLUPs.
-pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor, EvalFailure> {
+/// Evaluate the pieces of the criterion; `per_level` factors every
+/// primary level even where pooled levels ([`crate::lmm::crossprod::Pools`])
+/// would give the same sums in another order.
+pub fn evaluate(cp: &CrossProducts, theta: &[f64], per_level: bool) -> Result<Factor, EvalFailure> {
     let m = cp.m;
     let p = cp.p;
     let q2 = cp.q2_total;
@@ -235,21 +183,16 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
     let mut e = scaled_dense(cp, &t);
 
     let mut logdet_z = 0.0;
-    let mut blocks_l = Vec::new();
-    let mut blocks_w = KeptW::default();
-    if let (Some(pools), false) = (&cp.pools, keep) {
+    if let (Some(pools), false) = (&cp.pools, per_level) {
         logdet_z = pooled::subtract(pools, t[cp.primary.unwrap_or(0)][0], &mut e, m);
     } else if let Some(k1) = cp.primary {
-        let out = match cp.q1 {
-            1 => primary_fixed::<1>(cp, &t[k1], &t, &mut e, keep),
-            2 => primary_fixed::<2>(cp, &t[k1], &t, &mut e, keep),
-            3 => primary_fixed::<3>(cp, &t[k1], &t, &mut e, keep),
-            4 => primary_fixed::<4>(cp, &t[k1], &t, &mut e, keep),
-            _ => primary_general(cp, &t[k1], &t, &mut e, keep),
+        logdet_z = match cp.q1 {
+            1 => primary_fixed::<1>(cp, &t[k1], &t, &mut e),
+            2 => primary_fixed::<2>(cp, &t[k1], &t, &mut e),
+            3 => primary_fixed::<3>(cp, &t[k1], &t, &mut e),
+            4 => primary_fixed::<4>(cp, &t[k1], &t, &mut e),
+            _ => primary_general(cp, &t[k1], &t, &mut e),
         };
-        logdet_z = out.0;
-        blocks_l = out.1;
-        blocks_w = out.2;
     }
 
     let s = Mat::from_fn(m, m, |i, j| if i >= j { e[i * m + j] } else { e[j * m + i] });
@@ -272,8 +215,6 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], keep: bool) -> Result<Factor,
             pwrss: r * r,
         },
         dense_l,
-        blocks_l,
-        blocks_w,
     })
 }
 
@@ -309,9 +250,6 @@ pub fn deviance(cp: &CrossProducts, theta: &[f64], method: Method) -> f64 {
         Err(_) => f64::INFINITY,
     }
 }
-
-/// Per-level results: log|L₁|², and when kept the blocks Lᵢ and Wᵢ.
-pub(super) type PrimaryOut = (f64, Vec<f64>, KeptW);
 
 /// Accumulates Σ 2·ln(dᵢ) for pivots dᵢ ≥ 1 with few logarithms: the pivots
 /// are multiplied together and the logarithm taken when the product is large.

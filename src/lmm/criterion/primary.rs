@@ -10,13 +10,7 @@ use super::*;
 
 /// The primary levels for q₁ = Q, with fixed-size arrays so the small
 /// products unroll.
-pub(super) fn primary_fixed<const Q: usize>(
-    cp: &CrossProducts,
-    t1: &[f64],
-    t: &[Vec<f64>],
-    e: &mut [f64],
-    keep: bool,
-) -> PrimaryOut {
+pub(super) fn primary_fixed<const Q: usize>(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64]) -> f64 {
     let m = cp.m;
     let p = cp.p;
     let q2 = cp.q2_total;
@@ -26,8 +20,8 @@ pub(super) fn primary_fixed<const Q: usize>(
             tq[r][c] = t1[r * Q + c];
         }
     }
-    let (logdet, xy, blocks_l, blocks_w) = if keep || cp.n1 < PARALLEL_LEVELS {
-        primary_range::<Q>(cp, &tq, t, e, 0..cp.n1, keep)
+    let (logdet, xy) = if cp.n1 < PARALLEL_LEVELS {
+        primary_range::<Q>(cp, &tq, t, e, 0..cp.n1)
     } else {
         // Fixed chunks, summed in chunk order: the result does not depend on
         // how many threads run them.
@@ -38,7 +32,7 @@ pub(super) fn primary_fixed<const Q: usize>(
             .map(|c| {
                 let range = c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS;
                 let mut local = if linked { vec![0.0; m * m] } else { Vec::new() };
-                let (ld, xy, _, _) = primary_range::<Q>(cp, &tq, t, &mut local, range, false);
+                let (ld, xy) = primary_range::<Q>(cp, &tq, t, &mut local, range);
                 (ld, xy, local)
             })
             .collect();
@@ -49,14 +43,14 @@ pub(super) fn primary_fixed<const Q: usize>(
             xy.iter_mut().zip(&part_xy).for_each(|(a, b)| *a += b);
             e.iter_mut().zip(&local).for_each(|(a, b)| *a += b);
         }
-        (logdet, xy, Vec::new(), KeptW::default())
+        (logdet, xy)
     };
     for a in 0..=p {
         for b in 0..=a {
             e[(q2 + a) * m + q2 + b] -= xy[a * (a + 1) / 2 + b];
         }
     }
-    (logdet, blocks_l, blocks_w)
+    logdet
 }
 
 /// Above this many primary levels a search evaluation runs in parallel.
@@ -65,33 +59,21 @@ pub(super) const PARALLEL_LEVELS: usize = 2000;
 /// The number of chunks the primary levels are split into when in parallel.
 pub(super) const CHUNKS: usize = 4;
 
-/// Blocks L and W of the kept primary levels.
-type Kept = (Vec<f64>, KeptW);
-
-/// log|L|² of a range of levels, its X–y block, and its kept blocks.
-type RangeOut = (f64, Vec<f64>, Vec<f64>, KeptW);
-
 /// The primary levels in `range`: subtracts each level's link-column terms
 /// from `e` and returns log|L|² of the range, the range's X–y block of
-/// Σ WᵢᵀWᵢ (packed lower triangle, not yet subtracted) and the kept blocks.
+/// Σ WᵢᵀWᵢ (packed lower triangle, not yet subtracted).
 pub(super) fn primary_range<const Q: usize>(
     cp: &CrossProducts,
     tq: &[[f64; Q]; Q],
     t: &[Vec<f64>],
     e: &mut [f64],
     range: std::ops::Range<usize>,
-    keep: bool,
-) -> RangeOut {
+) -> (f64, Vec<f64>) {
     let m = cp.m;
     let p = cp.p;
     let q2 = cp.q2_total;
     let tq = *tq;
     let mut logdet = LogDet::new();
-    let (mut blocks_l, mut blocks_w): Kept = (Vec::new(), KeptW::default());
-    if keep {
-        blocks_l.reserve(range.len() * Q * Q);
-        blocks_w = KeptW::with_capacity(Q, range.len(), p + 2);
-    }
     // The X–y block of Σ WᵢᵀWᵢ, packed lower triangle.
     let mut xy = vec![0.0f64; (p + 1) * (p + 2) / 2];
     let mut cols: Vec<usize> = Vec::with_capacity(p + 8);
@@ -99,66 +81,7 @@ pub(super) fn primary_range<const Q: usize>(
     // The X–y columns present at this level (ascending within 0..=p).
     let mut present: Vec<usize> = Vec::with_capacity(p + 1);
     for i in range {
-        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-        let (_, l, inv) = level_block::<Q>(gi, &tq, &mut logdet);
-        // Columns of B = Tᵀ Z₁ᵢᵀ [Z₂Λ₂ X y], then W = L⁻¹ B.
-        cols.clear();
-        w.clear();
-        let (lo, hi) = cp.link_ranges[i];
-        for link in &cp.links[lo..hi] {
-            let kt = cp.secondary[link.secondary];
-            let qs = cp.term_q[kt];
-            let ts = &t[kt];
-            let v = &cp.link_values[link.start..link.start + Q * qs];
-            for c in 0..qs {
-                let mut raw = [0.0f64; Q];
-                for (r, rv) in raw.iter_mut().enumerate() {
-                    let mut acc = 0.0;
-                    for s in c..qs {
-                        acc += v[r * qs + s] * ts[s * qs + c];
-                    }
-                    *rv = acc;
-                }
-                cols.push(link.offset + c);
-                w.push(raw);
-            }
-        }
-        let zi = &cp.zxy[i * Q * (p + 1)..(i + 1) * Q * (p + 1)];
-        // A column of Zᵢᵀ[X y] that is exactly zero (an indicator of another
-        // cohort, say) adds nothing to WᵀW, so it is left out.
-        present.clear();
-        for c in 0..=p {
-            let mut raw = [0.0f64; Q];
-            for (r, rv) in raw.iter_mut().enumerate() {
-                *rv = zi[r * (p + 1) + c];
-            }
-            if raw.iter().all(|v| *v == 0.0) {
-                continue;
-            }
-            present.push(c);
-            cols.push(q2 + c);
-            w.push(raw);
-        }
-        for col in w.iter_mut() {
-            // b = Tᵀ raw (T lower, so Tᵀ upper).
-            let mut b = [0.0f64; Q];
-            for r in 0..Q {
-                let mut acc = 0.0;
-                for s in r..Q {
-                    acc += tq[s][r] * col[s];
-                }
-                b[r] = acc;
-            }
-            // Forward substitution L x = b.
-            for r in 0..Q {
-                let mut acc = b[r];
-                for k in 0..r {
-                    acc -= l[r][k] * b[k];
-                }
-                b[r] = acc * inv[r];
-            }
-            *col = b;
-        }
+        level_w::<Q>(cp, &tq, t, i, &mut cols, &mut w, &mut present, &mut logdet);
         // S −= WᵀW on the lower triangle; `cols` ascend, the last columns
         // are the X and y columns present, whose block is summed locally.
         let n_link = cols.len() - present.len();
@@ -182,23 +105,88 @@ pub(super) fn primary_range<const Q: usize>(
                 acc[b] += dot::<Q>(&wa, &w[n_link + ib]);
             }
         }
-        if keep {
-            for r in 0..Q {
-                for c in 0..Q {
-                    blocks_l.push(l[r][c]);
+    }
+    (logdet.total(), xy)
+}
+
+/// Level i's factor `L` of `Aᵢ = TᵀGᵢT + I` (with its reciprocal pivots,
+/// which go into `logdet`), and the non-zero columns of
+/// `Wᵢ = L⁻¹ Tᵀ Z₁ᵢᵀ[Z₂Λ₂ X y]`: their dense indices in `cols` (ascending)
+/// and values in `w`; `present` lists the columns of `[X y]` among them.
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+pub(super) fn level_w<const Q: usize>(
+    cp: &CrossProducts,
+    tq: &[[f64; Q]; Q],
+    t: &[Vec<f64>],
+    i: usize,
+    cols: &mut Vec<usize>,
+    w: &mut Vec<[f64; Q]>,
+    present: &mut Vec<usize>,
+    logdet: &mut LogDet,
+) -> ([[f64; Q]; Q], [f64; Q]) {
+    let (p, q2) = (cp.p, cp.q2_total);
+    let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+    let (_, l, inv) = level_block::<Q>(gi, tq, logdet);
+    // Columns of B = Tᵀ Z₁ᵢᵀ [Z₂Λ₂ X y], then W = L⁻¹ B.
+    cols.clear();
+    w.clear();
+    let (lo, hi) = cp.link_ranges[i];
+    for link in &cp.links[lo..hi] {
+        let kt = cp.secondary[link.secondary];
+        let qs = cp.term_q[kt];
+        let ts = &t[kt];
+        let v = &cp.link_values[link.start..link.start + Q * qs];
+        for c in 0..qs {
+            let mut raw = [0.0f64; Q];
+            for (r, rv) in raw.iter_mut().enumerate() {
+                let mut acc = 0.0;
+                for s in c..qs {
+                    acc += v[r * qs + s] * ts[s * qs + c];
                 }
+                *rv = acc;
             }
-            let nc = cols.len();
-            blocks_w.push_with(&cols, |vals| {
-                for (c, col) in w.iter().enumerate() {
-                    for r in 0..Q {
-                        vals[r * nc + c] = col[r];
-                    }
-                }
-            });
+            cols.push(link.offset + c);
+            w.push(raw);
         }
     }
-    (logdet.total(), xy, blocks_l, blocks_w)
+    let zi = &cp.zxy[i * Q * (p + 1)..(i + 1) * Q * (p + 1)];
+    // A column of Zᵢᵀ[X y] that is exactly zero (an indicator of another
+    // cohort, say) adds nothing to WᵀW, so it is left out.
+    present.clear();
+    for c in 0..=p {
+        let mut raw = [0.0f64; Q];
+        for (r, rv) in raw.iter_mut().enumerate() {
+            *rv = zi[r * (p + 1) + c];
+        }
+        if raw.iter().all(|v| *v == 0.0) {
+            continue;
+        }
+        present.push(c);
+        cols.push(q2 + c);
+        w.push(raw);
+    }
+    for col in w.iter_mut() {
+        // b = Tᵀ raw (T lower, so Tᵀ upper).
+        let mut b = [0.0f64; Q];
+        for r in 0..Q {
+            let mut acc = 0.0;
+            for s in r..Q {
+                acc += tq[s][r] * col[s];
+            }
+            b[r] = acc;
+        }
+        // Forward substitution L x = b.
+        for r in 0..Q {
+            let mut acc = b[r];
+            for k in 0..r {
+                acc -= l[r][k] * b[k];
+            }
+            b[r] = acc * inv[r];
+        }
+        *col = b;
+    }
+    (l, inv)
 }
 
 /// One primary level's block: `GT = Gᵢ T`, and `L`, the Cholesky factor of
@@ -255,153 +243,279 @@ pub(super) fn dot<const Q: usize>(a: &[f64; Q], b: &[f64; Q]) -> f64 {
     acc
 }
 
-/// The primary levels for any q₁.
-pub(super) fn primary_general(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64], keep: bool) -> PrimaryOut {
-    let m = cp.m;
-    let p = cp.p;
-    let q2 = cp.q2_total;
-    let mut logdet = LogDet::new();
-    let mut blocks_l = Vec::new();
-    let mut blocks_w = KeptW::default();
-    {
-        let q1 = cp.q1;
-        let mut a = vec![0.0; q1 * q1];
-        let mut tmp = vec![0.0; q1 * q1];
-        let mut l = vec![0.0; q1 * q1];
-        let mut cols: Vec<usize> = Vec::new();
-        let mut wv: Vec<f64> = Vec::new();
-        let mut bt: Vec<f64> = Vec::new();
-        if keep {
-            blocks_l.reserve(cp.n1 * q1 * q1);
-            blocks_w = KeptW::with_capacity(q1, cp.n1, cp.p + 2);
+/// Scratch space of one general-q₁ level: `A`, `GᵢT`, `L` (q₁×q₁
+/// row-major), the level's dense columns, `B` and `W` (q₁ × columns).
+#[derive(Default)]
+pub(super) struct GeneralLevel {
+    a: Vec<f64>,
+    tmp: Vec<f64>,
+    pub l: Vec<f64>,
+    pub cols: Vec<usize>,
+    bt: Vec<f64>,
+    pub wv: Vec<f64>,
+}
+
+/// Level i for any q₁: `L` of `Aᵢ = T₁ᵀGᵢT₁ + I` (its pivots go into
+/// `logdet`) and `W = L⁻¹ T₁ᵀ [Vᵢ T_s … | Zᵢᵀ X y]` with its dense column
+/// indices, in `sc`.
+pub(super) fn level_w_general(
+    cp: &CrossProducts,
+    t1: &[f64],
+    t: &[Vec<f64>],
+    i: usize,
+    sc: &mut GeneralLevel,
+    logdet: &mut LogDet,
+) {
+    let (p, q2, q1) = (cp.p, cp.q2_total, cp.q1);
+    sc.a.resize(q1 * q1, 0.0);
+    sc.tmp.resize(q1 * q1, 0.0);
+    sc.l.resize(q1 * q1, 0.0);
+    // A = T₁ᵀ Gᵢ T₁ + I.
+    let gi = &cp.g[i * q1 * q1..(i + 1) * q1 * q1];
+    for r in 0..q1 {
+        for c in 0..q1 {
+            let mut acc = 0.0;
+            for s in c..q1 {
+                acc += gi[r * q1 + s] * t1[s * q1 + c];
+            }
+            sc.tmp[r * q1 + c] = acc;
         }
-        for i in 0..cp.n1 {
-            // A = T₁ᵀ Gᵢ T₁ + I.
-            let gi = &cp.g[i * q1 * q1..(i + 1) * q1 * q1];
+    }
+    for r in 0..q1 {
+        for c in 0..=r {
+            let mut acc = 0.0;
+            for s in r..q1 {
+                acc += t1[s * q1 + r] * sc.tmp[s * q1 + c];
+            }
+            sc.a[r * q1 + c] = acc + if r == c { 1.0 } else { 0.0 };
+        }
+    }
+    // Small Cholesky; A ≥ I so it cannot fail.
+    for j in 0..q1 {
+        let mut d = sc.a[j * q1 + j];
+        for s in 0..j {
+            d -= sc.l[j * q1 + s] * sc.l[j * q1 + s];
+        }
+        let d = d.sqrt();
+        sc.l[j * q1 + j] = d;
+        logdet.push(d);
+        for r in j + 1..q1 {
+            let mut v = sc.a[r * q1 + j];
+            for s in 0..j {
+                v -= sc.l[r * q1 + s] * sc.l[j * q1 + s];
+            }
+            sc.l[r * q1 + j] = v / d;
+        }
+        for r in 0..j {
+            sc.l[r * q1 + j] = 0.0;
+        }
+    }
+    // B = T₁ᵀ [Vᵢ T_s ... | Zᵢᵀ X y], columns gathered with their dense index.
+    sc.cols.clear();
+    sc.bt.clear();
+    let (lo, hi) = cp.link_ranges[i];
+    let mut ncols = 0;
+    for link in &cp.links[lo..hi] {
+        ncols += cp.term_q[cp.secondary[link.secondary]];
+    }
+    ncols += p + 1;
+    sc.bt.resize(q1 * ncols, 0.0);
+    let mut col = 0;
+    for link in &cp.links[lo..hi] {
+        let kt = cp.secondary[link.secondary];
+        let qs = cp.term_q[kt];
+        let ts = &t[kt];
+        let v = &cp.link_values[link.start..link.start + q1 * qs];
+        for c in 0..qs {
+            sc.cols.push(link.offset + c);
             for r in 0..q1 {
-                for c in 0..q1 {
-                    let mut acc = 0.0;
-                    for s in c..q1 {
-                        acc += gi[r * q1 + s] * t1[s * q1 + c];
-                    }
-                    tmp[r * q1 + c] = acc;
+                // (V T_s)[r, c]
+                let mut acc = 0.0;
+                for s in c..qs {
+                    acc += v[r * qs + s] * ts[s * qs + c];
                 }
+                sc.bt[r * ncols + col + c] = acc;
             }
-            for r in 0..q1 {
-                for c in 0..=r {
-                    let mut acc = 0.0;
-                    for s in r..q1 {
-                        acc += t1[s * q1 + r] * tmp[s * q1 + c];
-                    }
-                    a[r * q1 + c] = acc + if r == c { 1.0 } else { 0.0 };
-                }
-            }
-            // Small Cholesky; A ≥ I so it cannot fail.
-            for j in 0..q1 {
-                let mut d = a[j * q1 + j];
-                for s in 0..j {
-                    d -= l[j * q1 + s] * l[j * q1 + s];
-                }
-                let d = d.sqrt();
-                l[j * q1 + j] = d;
-                logdet.push(d);
-                for r in j + 1..q1 {
-                    let mut v = a[r * q1 + j];
-                    for s in 0..j {
-                        v -= l[r * q1 + s] * l[j * q1 + s];
-                    }
-                    l[r * q1 + j] = v / d;
-                }
-                for r in 0..j {
-                    l[r * q1 + j] = 0.0;
-                }
-            }
-            // B = T₁ᵀ [Vᵢ T_s ... | Zᵢᵀ X y], columns gathered with their dense index.
-            cols.clear();
-            bt.clear();
-            let (lo, hi) = cp.link_ranges[i];
-            let mut ncols = 0;
-            for link in &cp.links[lo..hi] {
-                ncols += cp.term_q[cp.secondary[link.secondary]];
-            }
-            ncols += p + 1;
-            bt.resize(q1 * ncols, 0.0);
-            let mut col = 0;
-            for link in &cp.links[lo..hi] {
-                let kt = cp.secondary[link.secondary];
-                let qs = cp.term_q[kt];
-                let ts = &t[kt];
-                let v = &cp.link_values[link.start..link.start + q1 * qs];
-                for c in 0..qs {
-                    cols.push(link.offset + c);
-                    for r in 0..q1 {
-                        // (V T_s)[r, c]
-                        let mut acc = 0.0;
-                        for s in c..qs {
-                            acc += v[r * qs + s] * ts[s * qs + c];
-                        }
-                        bt[r * ncols + col + c] = acc;
-                    }
-                }
-                col += qs;
-            }
-            let zi = &cp.zxy[i * q1 * (p + 1)..(i + 1) * q1 * (p + 1)];
-            for c in 0..=p {
-                cols.push(q2 + c);
-                for r in 0..q1 {
-                    bt[r * ncols + col + c] = zi[r * (p + 1) + c];
-                }
-            }
-            // Left-multiply by T₁ᵀ (upper triangular), in place row by row.
-            wv.clear();
-            wv.resize(q1 * ncols, 0.0);
-            for r in 0..q1 {
-                for s in r..q1 {
-                    let f = t1[s * q1 + r];
-                    if f != 0.0 {
-                        for c in 0..ncols {
-                            wv[r * ncols + c] += f * bt[s * ncols + c];
-                        }
-                    }
-                }
-            }
-            // W = L⁻¹ B (forward substitution).
-            for r in 0..q1 {
-                for s in 0..r {
-                    let f = l[r * q1 + s];
-                    if f != 0.0 {
-                        for c in 0..ncols {
-                            wv[r * ncols + c] -= f * wv[s * ncols + c];
-                        }
-                    }
-                }
-                let d = l[r * q1 + r];
+        }
+        col += qs;
+    }
+    let zi = &cp.zxy[i * q1 * (p + 1)..(i + 1) * q1 * (p + 1)];
+    for c in 0..=p {
+        sc.cols.push(q2 + c);
+        for r in 0..q1 {
+            sc.bt[r * ncols + col + c] = zi[r * (p + 1) + c];
+        }
+    }
+    // Left-multiply by T₁ᵀ (upper triangular), in place row by row.
+    sc.wv.clear();
+    sc.wv.resize(q1 * ncols, 0.0);
+    for r in 0..q1 {
+        for s in r..q1 {
+            let f = t1[s * q1 + r];
+            if f != 0.0 {
                 for c in 0..ncols {
-                    wv[r * ncols + c] /= d;
+                    sc.wv[r * ncols + c] += f * sc.bt[s * ncols + c];
                 }
-            }
-            // S −= WᵀW on the lower triangle.
-            for ca in 0..ncols {
-                let ia = cols[ca];
-                for cb in 0..ncols {
-                    let ib = cols[cb];
-                    if ib > ia {
-                        continue;
-                    }
-                    let mut acc = 0.0;
-                    for r in 0..q1 {
-                        acc += wv[r * ncols + ca] * wv[r * ncols + cb];
-                    }
-                    e[ia * m + ib] -= acc;
-                }
-            }
-            if keep {
-                blocks_l.extend_from_slice(&l);
-                blocks_w.push_with(&cols, |vals| vals.copy_from_slice(&wv));
             }
         }
     }
-    (logdet.total(), blocks_l, blocks_w)
+    // W = L⁻¹ B (forward substitution).
+    for r in 0..q1 {
+        for s in 0..r {
+            let f = sc.l[r * q1 + s];
+            if f != 0.0 {
+                for c in 0..ncols {
+                    sc.wv[r * ncols + c] -= f * sc.wv[s * ncols + c];
+                }
+            }
+        }
+        let d = sc.l[r * q1 + r];
+        for c in 0..ncols {
+            sc.wv[r * ncols + c] /= d;
+        }
+    }
+}
+
+/// The primary levels for any q₁.
+pub(super) fn primary_general(cp: &CrossProducts, t1: &[f64], t: &[Vec<f64>], e: &mut [f64]) -> f64 {
+    let m = cp.m;
+    let mut logdet = LogDet::new();
+    let mut sc = GeneralLevel::default();
+    let q1 = cp.q1;
+    for i in 0..cp.n1 {
+        level_w_general(cp, t1, t, i, &mut sc, &mut logdet);
+        let (cols, wv) = (&sc.cols, &sc.wv);
+        let ncols = cols.len();
+        // S −= WᵀW on the lower triangle.
+        for ca in 0..ncols {
+            let ia = cols[ca];
+            for cb in 0..ncols {
+                let ib = cols[cb];
+                if ib > ia {
+                    continue;
+                }
+                let mut acc = 0.0;
+                for r in 0..q1 {
+                    acc += wv[r * ncols + ca] * wv[r * ncols + cb];
+                }
+                e[ia * m + ib] -= acc;
+            }
+        }
+    }
+    logdet.total()
+}
+
+/// The primary term's spherical effects at the solution `x = [u₂, β]` of
+/// the dense system (dense order, without y), q₁ per level: level by
+/// level, `Lᵢᵀuᵢ = Wᵢ,y − Σ_c Wᵢ,c x_c` over its non-zero columns c. `L`
+/// and `W` are formed again as the evaluation forms them, so nothing is
+/// kept from it; the levels are independent, so chunks run in parallel and
+/// the result does not depend on the threads.
+pub fn primary_effects(cp: &CrossProducts, t: &[Vec<f64>], x: &[f64]) -> Vec<f64> {
+    let Some(k1) = cp.primary else {
+        return Vec::new();
+    };
+    let q1 = cp.q1;
+    let mut u = vec![0.0; cp.n1 * q1];
+    let per_chunk = cp.n1.div_ceil(CHUNKS).max(1);
+    let run = |c: usize, out: &mut [f64]| {
+        let range = c * per_chunk..(c * per_chunk + out.len() / q1);
+        match q1 {
+            1 => effects_fixed::<1>(cp, &t[k1], t, x, range, out),
+            2 => effects_fixed::<2>(cp, &t[k1], t, x, range, out),
+            3 => effects_fixed::<3>(cp, &t[k1], t, x, range, out),
+            4 => effects_fixed::<4>(cp, &t[k1], t, x, range, out),
+            _ => effects_general(cp, &t[k1], t, x, range, out),
+        }
+    };
+    if cp.n1 < PARALLEL_LEVELS {
+        run(0, &mut u);
+    } else {
+        use rayon::prelude::*;
+        u.par_chunks_mut(per_chunk * q1)
+            .enumerate()
+            .for_each(|(c, out)| run(c, out));
+    }
+    u
+}
+
+/// Back substitution `Lᵀu = rhs` for one level (L lower, row-major q×q).
+#[inline(always)]
+fn back_substitute(l: impl Fn(usize, usize) -> f64, rhs: &[f64], u: &mut [f64]) {
+    let q = rhs.len();
+    for r in (0..q).rev() {
+        let mut v = rhs[r];
+        for s in r + 1..q {
+            v -= l(s, r) * u[s];
+        }
+        u[r] = v / l(r, r);
+    }
+}
+
+fn effects_fixed<const Q: usize>(
+    cp: &CrossProducts,
+    t1: &[f64],
+    t: &[Vec<f64>],
+    x: &[f64],
+    range: std::ops::Range<usize>,
+    out: &mut [f64],
+) {
+    let mut tq = [[0.0f64; Q]; Q];
+    for r in 0..Q {
+        for c in 0..Q {
+            tq[r][c] = t1[r * Q + c];
+        }
+    }
+    let y = cp.m - 1;
+    let mut logdet = LogDet::new();
+    let (mut cols, mut w, mut present) = (Vec::new(), Vec::new(), Vec::new());
+    let start = range.start;
+    for i in range {
+        let (l, _) = level_w::<Q>(cp, &tq, t, i, &mut cols, &mut w, &mut present, &mut logdet);
+        let mut rhs = [0.0f64; Q];
+        for (r, v) in rhs.iter_mut().enumerate() {
+            for (c, &dc) in cols.iter().enumerate() {
+                if dc == y {
+                    *v += w[c][r];
+                } else {
+                    *v -= w[c][r] * x[dc];
+                }
+            }
+        }
+        let at = (i - start) * Q;
+        back_substitute(|a, b| l[a][b], &rhs, &mut out[at..at + Q]);
+    }
+}
+
+fn effects_general(
+    cp: &CrossProducts,
+    t1: &[f64],
+    t: &[Vec<f64>],
+    x: &[f64],
+    range: std::ops::Range<usize>,
+    out: &mut [f64],
+) {
+    let (q1, y) = (cp.q1, cp.m - 1);
+    let mut logdet = LogDet::new();
+    let mut sc = GeneralLevel::default();
+    let mut rhs = vec![0.0; q1];
+    let start = range.start;
+    for i in range {
+        level_w_general(cp, t1, t, i, &mut sc, &mut logdet);
+        let nc = sc.cols.len();
+        for (r, v) in rhs.iter_mut().enumerate() {
+            *v = 0.0;
+            for (c, &dc) in sc.cols.iter().enumerate() {
+                if dc == y {
+                    *v += sc.wv[r * nc + c];
+                } else {
+                    *v -= sc.wv[r * nc + c] * x[dc];
+                }
+            }
+        }
+        let at = (i - start) * q1;
+        back_substitute(|a, b| sc.l[a * q1 + b], &rhs, &mut out[at..at + q1]);
+    }
 }
 
 #[cfg(test)]
@@ -466,18 +580,27 @@ mod tests {
             let mut e1 = cp.dense.clone();
             let mut e2 = cp.dense.clone();
             let a = match q1 {
-                1 => primary_fixed::<1>(&cp, &t[k1], &t, &mut e1, true),
-                2 => primary_fixed::<2>(&cp, &t[k1], &t, &mut e1, true),
-                3 => primary_fixed::<3>(&cp, &t[k1], &t, &mut e1, true),
-                _ => primary_fixed::<4>(&cp, &t[k1], &t, &mut e1, true),
+                1 => primary_fixed::<1>(&cp, &t[k1], &t, &mut e1),
+                2 => primary_fixed::<2>(&cp, &t[k1], &t, &mut e1),
+                3 => primary_fixed::<3>(&cp, &t[k1], &t, &mut e1),
+                _ => primary_fixed::<4>(&cp, &t[k1], &t, &mut e1),
             };
-            let b = primary_general(&cp, &t[k1], &t, &mut e2, true);
-            assert!(
-                (a.0 - b.0).abs() < 1e-9 * b.0.abs().max(1.0),
-                "q1 {q1}: {} vs {}",
-                a.0,
-                b.0
-            );
+            let b = primary_general(&cp, &t[k1], &t, &mut e2);
+            assert!((a - b).abs() < 1e-9 * b.abs().max(1.0), "q1 {q1}: {a} vs {b}");
+            // The effects at some solution x of the dense system.
+            let x: Vec<f64> = (0..cp.m - 1).map(|_| rng.normal()).collect();
+            let mut u1 = vec![0.0; cp.n1 * q1];
+            let mut u2 = vec![0.0; cp.n1 * q1];
+            match q1 {
+                1 => effects_fixed::<1>(&cp, &t[k1], &t, &x, 0..cp.n1, &mut u1),
+                2 => effects_fixed::<2>(&cp, &t[k1], &t, &x, 0..cp.n1, &mut u1),
+                3 => effects_fixed::<3>(&cp, &t[k1], &t, &x, 0..cp.n1, &mut u1),
+                _ => effects_fixed::<4>(&cp, &t[k1], &t, &x, 0..cp.n1, &mut u1),
+            }
+            effects_general(&cp, &t[k1], &t, &x, 0..cp.n1, &mut u2);
+            for (v1, v2) in u1.iter().zip(&u2) {
+                assert!((v1 - v2).abs() < 1e-9 * v2.abs().max(1.0), "q1 {q1}: u {v1} vs {v2}");
+            }
             let m = cp.m;
             for i in 0..m {
                 for j in 0..=i {
