@@ -15,52 +15,79 @@ use polars::prelude::*;
 use crate::error::{Error, Result};
 
 /// A column of text cells in one buffer (a cell is a range of it, or
-/// missing): reading a label column costs one allocation, not one per cell.
+/// missing): reading a label column costs one allocation, not one per cell,
+/// and four bytes per cell beside its text.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct TextCells {
     text: String,
-    /// Per cell, its byte range in `text`; `None` for a missing cell.
-    spans: Vec<Option<(u32, u32)>>,
+    /// Per cell, the end of its text in `text` (it starts where the cell
+    /// before it ends), with [`MISSING`] set for a missing cell.
+    ends: Vec<u32>,
+    /// Whether the text outgrew what `ends` can address ([`TEXT_LIMIT`]).
+    overflow: bool,
 }
+
+/// The bit of [`TextCells::ends`] that marks a missing cell.
+const MISSING: u32 = 1 << 31;
+
+/// The most text one column holds: offsets below [`MISSING`].
+pub const TEXT_LIMIT: usize = (MISSING - 1) as usize;
 
 impl TextCells {
     /// Number of cells.
     pub fn len(&self) -> usize {
-        self.spans.len()
+        self.ends.len()
     }
     /// Whether there are no cells.
     pub fn is_empty(&self) -> bool {
-        self.spans.is_empty()
+        self.ends.is_empty()
     }
     /// Cell `r` (`None` when missing).
     pub fn get(&self, r: usize) -> Option<&str> {
-        self.spans[r].map(|(a, b)| &self.text[a as usize..b as usize])
+        let end = self.ends[r];
+        if end & MISSING != 0 {
+            return None;
+        }
+        let start = if r == 0 { 0 } else { self.ends[r - 1] & !MISSING };
+        Some(&self.text[start as usize..end as usize])
     }
     /// The cells in order.
     pub fn iter(&self) -> impl Iterator<Item = Option<&str>> + '_ {
         (0..self.len()).map(|r| self.get(r))
     }
+    /// Whether the column's text is longer than [`TEXT_LIMIT`] bytes, so
+    /// that its cells cannot be read back.
+    pub fn overflowed(&self) -> bool {
+        self.overflow
+    }
     /// Room for `cells` cells of `bytes` bytes in all.
     pub(super) fn with_capacity(cells: usize, bytes: usize) -> Self {
         TextCells {
             text: String::with_capacity(bytes),
-            spans: Vec::with_capacity(cells),
+            ends: Vec::with_capacity(cells),
+            overflow: false,
         }
     }
     /// Add a cell at the end.
     pub(super) fn push(&mut self, cell: Option<&str>) {
-        self.spans.push(cell.map(|t| {
-            let a = self.text.len() as u32;
+        if let Some(t) = cell {
             self.text.push_str(t);
-            (a, self.text.len() as u32)
-        }));
+        }
+        self.overflow |= self.text.len() > TEXT_LIMIT;
+        let end = self.text.len() as u32 & !MISSING;
+        self.ends.push(if cell.is_some() { end } else { end | MISSING });
     }
     /// Add `other`'s cells at the end.
     pub(super) fn append(&mut self, other: TextCells) {
         let shift = self.text.len() as u32;
         self.text.push_str(&other.text);
-        self.spans
-            .extend(other.spans.into_iter().map(|s| s.map(|(a, b)| (a + shift, b + shift))));
+        self.overflow |= other.overflow || self.text.len() > TEXT_LIMIT;
+        self.ends.extend(
+            other
+                .ends
+                .into_iter()
+                .map(|e| ((e & !MISSING).wrapping_add(shift) & !MISSING) | (e & MISSING)),
+        );
     }
 }
 
@@ -68,10 +95,7 @@ impl<'a> FromIterator<Option<&'a str>> for TextCells {
     fn from_iter<I: IntoIterator<Item = Option<&'a str>>>(cells: I) -> Self {
         let cells = cells.into_iter();
         let n = cells.size_hint().0;
-        let mut out = TextCells {
-            text: String::with_capacity(8 * n),
-            spans: Vec::with_capacity(n),
-        };
+        let mut out = TextCells::with_capacity(n, 8 * n);
         for c in cells {
             out.push(c);
         }
@@ -227,12 +251,28 @@ pub fn read_columns(path: &Path, names: &[String], numeric: &[String], delimiter
         }
     }
     let names = &unique[..];
-    if format_of(path) == Format::Csv
-        && let Some(table) = super::csv_direct::read(path, names, numeric, delimiter)
-    {
-        return Ok(table);
+    let table = match format_of(path) {
+        Format::Csv => super::csv_direct::read(path, names, numeric, delimiter),
+        _ => None,
+    };
+    let table = match table {
+        Some(t) => t,
+        None => read_columns_polars(path, names, numeric, delimiter)?,
+    };
+    for name in names {
+        if let Some(RawColumn::Text(cells)) = table.columns.get(name)
+            && cells.overflowed()
+        {
+            return Err(Error::Data {
+                path: path.to_path_buf(),
+                message: format!(
+                    "column '{name}' holds more than {} MiB of text; split the file by participant and analyse the parts, or shorten its labels",
+                    TEXT_LIMIT >> 20
+                ),
+            });
+        }
     }
-    read_columns_polars(path, names, numeric, delimiter)
+    Ok(table)
 }
 
 /// [`read_columns`] through polars alone: every file braid reads that the
@@ -415,5 +455,19 @@ mod text_cells_tests {
         assert_eq!(t.iter().collect::<Vec<_>>(), cells);
         let owned: Vec<Option<String>> = cells.iter().map(|c| c.map(str::to_string)).collect();
         assert_eq!(TextCells::from(owned), t);
+    }
+
+    // Identity: appending one column to another gives the cells of both in
+    // order, with missing cells first, last and in between.
+    #[test]
+    fn appended_text_cells_keep_their_cells() {
+        let a = [None, Some("S1"), Some(""), None];
+        let b = [None, Some("S22"), None, Some("S333")];
+        let mut t: TextCells = a.iter().copied().collect();
+        t.append(b.iter().copied().collect());
+        let all: Vec<Option<&str>> = a.iter().chain(&b).copied().collect();
+        assert_eq!(t.iter().collect::<Vec<_>>(), all);
+        assert_eq!(t, all.iter().copied().collect::<TextCells>());
+        assert!(!t.overflowed());
     }
 }

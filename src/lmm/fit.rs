@@ -112,9 +112,9 @@ pub enum Detail {
     Full,
     /// Everything but the values per row and per level: the estimates and
     /// the sensitivity of cov(β̂), as the fit's tables, curve and tests
-    /// need. No BLUPs, conditional fitted values or residuals (empty); the
-    /// marginal fitted values Xβ̂ are kept. On a file of millions of rows
-    /// this leaves out about 40 bytes per row and 60 per level.
+    /// need. No BLUPs and no fitted values or residuals (all empty). On a
+    /// file of millions of rows this leaves out 32 bytes per row and about
+    /// 60 per level.
     Estimates,
     /// What a likelihood-ratio test needs: the estimates, the likelihood
     /// and the marginal fitted values Xβ̂. No BLUPs, conditional fitted
@@ -130,6 +130,11 @@ impl Detail {
     /// residuals.
     pub fn per_row(self) -> bool {
         self == Detail::Full
+    }
+
+    /// Whether the fit computes the marginal fitted values Xβ̂.
+    pub fn marginal(self) -> bool {
+        self != Detail::Estimates
     }
 
     /// Whether the fit computes the sensitivity of cov(β̂) (Satterthwaite
@@ -802,7 +807,15 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
     let conditional = if per_row {
         conditional(problem, &t, &beta, &u)
     } else {
-        (Vec::new(), Vec::new(), marginal(problem, &beta))
+        (
+            Vec::new(),
+            Vec::new(),
+            if options.detail.marginal() {
+                marginal(problem, &beta)
+            } else {
+                Vec::new()
+            },
+        )
     };
     let random = components(problem, cp, &theta, sigma2);
 
@@ -993,11 +1006,11 @@ mod near_tests {
         assert_eq!(full.theta, lean.theta);
         assert_eq!(full.beta, lean.beta);
         assert_eq!(full.cov_beta, lean.cov_beta);
-        assert_eq!(full.fitted_marginal, lean.fitted_marginal);
         assert_eq!(full.sensitivity.dcov, lean.sensitivity.dcov);
         assert_eq!(full.sensitivity.acov, lean.sensitivity.acov);
         assert_eq!(full.fitted.len(), n);
         assert_eq!(full.blups[0].len(), levels);
-        assert!(lean.fitted.is_empty() && lean.residuals.is_empty() && lean.blups.iter().all(Vec::is_empty));
+        assert!(lean.fitted.is_empty() && lean.residuals.is_empty() && lean.fitted_marginal.is_empty());
+        assert!(lean.blups.iter().all(Vec::is_empty));
     }
 }

@@ -656,7 +656,15 @@ fn results(
     let conditional = if options.detail.per_row() {
         conditional(problem, &t, &beta, &sys.u_by_term(&sol.u))
     } else {
-        (Vec::new(), Vec::new(), marginal(problem, &beta))
+        (
+            Vec::new(),
+            Vec::new(),
+            if options.detail.marginal() {
+                marginal(problem, &beta)
+            } else {
+                Vec::new()
+            },
+        )
     };
     let random = problem
         .terms
