@@ -88,7 +88,7 @@ pub fn compare(c: &Complete, effects: &[Effect]) -> Result<MixedComparison> {
         terms: vec![RandomTermData {
             factor: "participant".into(),
             level_names: (0..n).map(|i| i.to_string()).collect(),
-            level,
+            level: level.into(),
             columns: vec!["intercept".into()],
             z: vec![vec![1.0; n * k]],
             covariance: Default::default(),

@@ -216,8 +216,8 @@ pub(super) fn intercepts(factor: &str, codes: &[u32], n: usize) -> crate::lmm::R
     };
     crate::lmm::RandomTermData {
         factor: factor.into(),
-        level_names,
-        level,
+        level_names: level_names.into(),
+        level: level.into(),
         columns: vec!["intercept".into()],
         z: vec![vec![1.0; n]],
         covariance: Default::default(),
@@ -270,9 +270,9 @@ mod tests {
         let sparse: Vec<u32> = dense.iter().map(|&c| c * 1_000_000).collect();
         let a = intercepts("id", &dense, dense.len());
         let b = intercepts("id", &sparse, sparse.len());
-        assert_eq!(a.level, vec![1, 0, 1, 2, 0, 2, 2]);
+        assert_eq!(a.level[..], [1, 0, 1, 2, 0, 2, 2]);
         assert_eq!(a.level, b.level);
-        assert_eq!(a.level_names, vec!["0", "3", "5"]);
-        assert_eq!(b.level_names, vec!["0", "3000000", "5000000"]);
+        assert_eq!(a.level_names[..], ["0", "3", "5"]);
+        assert_eq!(b.level_names[..], ["0", "3000000", "5000000"]);
     }
 }

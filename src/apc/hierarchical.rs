@@ -73,8 +73,8 @@ pub fn fit(t: &NumericTable, data: &ApcData) -> Result<Hierarchical> {
     }
     let term = |factor: &str, level: Vec<u32>, names: &[String]| RandomTermData {
         factor: factor.into(),
-        level_names: names.to_vec(),
-        level,
+        level_names: names.to_vec().into(),
+        level: level.into(),
         columns: vec!["intercept".into()],
         z: vec![vec![1.0; n]],
         covariance: Default::default(),

@@ -339,10 +339,7 @@ fn exact_model(input: &ApcInput, options: &ApcOptions) -> Result<Option<super::e
         return Ok(None);
     };
     let (ids, clusters) = match input {
-        ApcInput::Panel { panel, .. } => (
-            Some(panel.id.codes.as_slice()),
-            panel.cluster.as_ref().map(|c| c.codes.as_slice()),
-        ),
+        ApcInput::Panel { panel, .. } => (Some(&panel.id.codes[..]), panel.cluster.as_ref().map(|c| &c.codes[..])),
         _ => (None, None),
     };
     let records = super::exact::ExactInput {

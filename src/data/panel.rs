@@ -2,6 +2,7 @@
 //! dropped, and calendar time.
 
 use std::path::PathBuf;
+use std::sync::Arc;
 
 use serde::Serialize;
 
@@ -23,10 +24,11 @@ pub fn label_order(a: &str, b: &str) -> std::cmp::Ordering {
 /// Labels coded as integers.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Codes {
-    /// The distinct labels, in level order.
-    pub(crate) levels: Vec<String>,
-    /// The level of each row.
-    pub(crate) codes: Vec<u32>,
+    /// The distinct labels, in level order (shared with the model frames
+    /// built from the panel rather than copied: a label per participant).
+    pub(crate) levels: Arc<[String]>,
+    /// The level of each row (shared likewise).
+    pub(crate) codes: Arc<[u32]>,
 }
 
 impl Codes {
@@ -57,9 +59,12 @@ impl Codes {
                 remap[old] = new as u32;
             }
             codes.iter_mut().for_each(|c| *c = remap[*c as usize]);
-            levels = order.into_iter().map(|i| levels[i].clone()).collect();
+            levels = order.into_iter().map(|i| std::mem::take(&mut levels[i])).collect();
         }
-        Codes { levels, codes }
+        Codes {
+            levels: levels.into(),
+            codes: codes.into(),
+        }
     }
 
     /// The distinct labels, in level order.

@@ -52,7 +52,7 @@ fn subset(problem: &MixedProblem, rows: &[usize], cols: &[usize]) -> MixedProble
                 .collect();
             RandomTermData {
                 factor: t.factor.clone(),
-                level_names: names,
+                level_names: names.into(),
                 level,
                 columns: t.columns.clone(),
                 z: t.z.iter().map(|z| rows.iter().map(|&r| z[r]).collect()).collect(),

@@ -488,7 +488,7 @@ mod tests {
         let mut terms = vec![RandomTermData {
             factor: "id".into(),
             level_names: (0..3 * per).map(|i| i.to_string()).collect(),
-            level,
+            level: level.into(),
             columns: vec!["intercept".into(), "a".into()],
             z: vec![vec![1.0; n], z1],
             covariance: Default::default(),

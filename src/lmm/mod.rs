@@ -31,6 +31,8 @@ mod start;
 
 pub use fit::{Detail, Fit, FitInfo, FitOptions, Prepared, RandomComponent, Route, fit, fit_from, fit_near};
 
+use std::sync::Arc;
+
 use serde::{Deserialize, Serialize};
 
 /// The estimation criterion.
@@ -80,10 +82,11 @@ impl Covariance {
 pub struct RandomTermData {
     /// Name of the grouping factor (a column of the data).
     pub factor: String,
-    /// Label of each level, in level-index order.
-    pub level_names: Vec<String>,
-    /// Level index of each row (`0..level_names.len()`).
-    pub level: Vec<u32>,
+    /// Label of each level, in level-index order (shared, not copied, with
+    /// the panel the term comes from).
+    pub level_names: Arc<[String]>,
+    /// Level index of each row (`0..level_names.len()`; shared likewise).
+    pub level: Arc<[u32]>,
     /// Names of the coefficients (for example `"intercept"`, `"age"`).
     pub columns: Vec<String>,
     /// The model-matrix columns of this term, one `Vec` of length n per coefficient.
@@ -100,7 +103,7 @@ impl RandomTermData {
         RandomTermData {
             factor: factor.into(),
             level_names: (0..n_levels).map(|i| i.to_string()).collect(),
-            level,
+            level: level.into(),
             columns: columns.iter().map(|c| (*c).to_string()).collect(),
             z,
             covariance: Covariance::Unstructured,

@@ -36,7 +36,7 @@ fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
         terms: vec![RandomTermData {
             factor: "group".into(),
             level_names: (0..a).map(|g| format!("g{g}")).collect(),
-            level,
+            level: level.into(),
             columns: vec!["intercept".into()],
             z: vec![vec![1.0; rows]],
             covariance: Default::default(),

@@ -53,8 +53,8 @@ fn panel(seed: u64, per_cohort: usize, sd_int: &[f64], sd_res: &[f64], schools: 
     }
     let mut terms = vec![RandomTermData {
         factor: "id".into(),
-        level_names: names,
-        level,
+        level_names: names.into(),
+        level: level.into(),
         columns: vec!["intercept".into(), "a".into()],
         z: vec![vec![1.0; n], z1],
         covariance: Default::default(),
@@ -63,7 +63,7 @@ fn panel(seed: u64, per_cohort: usize, sd_int: &[f64], sd_res: &[f64], schools: 
         terms.push(RandomTermData {
             factor: "school".into(),
             level_names: (0..schools).map(|s| format!("S{s}")).collect(),
-            level: school,
+            level: school.into(),
             columns: vec!["intercept".into()],
             z: vec![vec![1.0; n]],
             covariance: Default::default(),

@@ -549,7 +549,7 @@ mod tests {
                 RandomTermData {
                     factor: "p".into(),
                     level_names: (0..100).map(|i| i.to_string()).collect(),
-                    level: lvl1,
+                    level: lvl1.into(),
                     columns: (0..q1).map(|c| c.to_string()).collect(),
                     z: z1,
                     covariance: Default::default(),
@@ -557,7 +557,7 @@ mod tests {
                 RandomTermData {
                     factor: "s".into(),
                     level_names: (0..7).map(|i| i.to_string()).collect(),
-                    level: lvl2,
+                    level: lvl2.into(),
                     columns: vec!["i".into()],
                     z: vec![vec![1.0; n]],
                     covariance: Default::default(),

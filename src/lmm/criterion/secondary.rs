@@ -324,7 +324,7 @@ mod tests {
         let term = |factor: &str, k: usize, level: Vec<u32>, z: Vec<Vec<f64>>, columns: Vec<String>| RandomTermData {
             factor: factor.into(),
             level_names: (0..k).map(|i| i.to_string()).collect(),
-            level,
+            level: level.into(),
             columns,
             z,
             covariance: Default::default(),
