@@ -4,11 +4,9 @@
 
 use std::path::Path;
 
-use super::cells::{label_at, number_at};
+use super::cells::{label_at, label_ref, number_at};
 use super::read::{self, RawColumn};
-use super::{
-    Calendar, CalendarSource, Codes, Covariate, CovariateValues, DropReport, FastMap, Panel, Roles, dates, is_missing,
-};
+use super::{Calendar, CalendarSource, Codes, Covariate, CovariateValues, DropReport, Panel, Roles, dates, is_missing};
 use crate::error::{Error, Result};
 
 pub(super) fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
@@ -183,15 +181,16 @@ impl Cells<'_> {
     fn codes(&self, name: &str, sort: bool) -> Result<Codes> {
         match &self.table.columns[name] {
             RawColumn::Text(v) => {
-                let cells: Vec<&str> = self
-                    .rows
-                    .iter()
-                    .map(|&r| match v.get(r).map(str::trim) {
-                        Some(t) if !is_missing(t) => Ok(t),
-                        _ => Err(self.empty(name, r)),
-                    })
-                    .collect::<Result<_>>()?;
-                Ok(Codes::from_strs(cells.into_iter(), sort))
+                // Every cell checked first, then coded from the table
+                // directly: no list of the cells beside the codes.
+                let cell = |r: usize| v.get(r).map(str::trim).filter(|t| !is_missing(t));
+                if let Some(&r) = self.rows.iter().find(|&&r| cell(r).is_none()) {
+                    return Err(self.empty(name, r));
+                }
+                Ok(Codes::from_strs(
+                    self.rows.iter().map(|&r| cell(r).unwrap_or_default()),
+                    sort,
+                ))
             }
             RawColumn::Number(_) => Ok(Codes::new(&self.labels(name, true)?, sort)),
         }
@@ -251,40 +250,48 @@ fn covariates(cells: &Cells, roles: &Roles, numeric: &[bool]) -> Result<Vec<Cova
 
 /// A participant's cohort and birth date cannot change between waves.
 fn check_fixed_per_participant(cells: &Cells, roles: &Roles, id: &Codes, row: &[usize]) -> Result<()> {
-    let mut fixed: Vec<(&str, Vec<String>)> = Vec::new();
+    // (column, whether an empty cell is an error; else it reads as "").
+    let mut fixed: Vec<(&str, bool)> = Vec::new();
     if let Some(c) = &roles.cohort {
-        fixed.push((c.as_str(), cells.labels(c, true)?));
+        fixed.push((c.as_str(), true));
     }
     if let (None, Some(b)) = (roles.dates(), &roles.birth_year) {
-        fixed.push((b.as_str(), cells.labels(b, true)?));
+        fixed.push((b.as_str(), true));
     }
     if let Some((b, _)) = roles.dates() {
-        let col = &cells.table.columns[b];
-        fixed.push((
-            b,
-            cells
-                .rows
-                .iter()
-                .map(|&r| label_at(col, r).unwrap_or_default())
-                .collect(),
-        ));
+        fixed.push((b, false));
     }
-    for (column, values) in &fixed {
+    for (column, required) in fixed {
+        let col = &cells.table.columns[column];
+        // Each kept row's label, borrowed from the table where it is text:
+        // no copy of the column (on ten million rows that copy was the
+        // largest allocation of the whole read).
+        let value = |k: usize| -> Result<std::borrow::Cow<'_, str>> {
+            let r = cells.rows[k];
+            match label_ref(col, r) {
+                Some(v) => Ok(v),
+                None if required => Err(cells.empty(column, r)),
+                None => Ok(std::borrow::Cow::Borrowed("")),
+            }
+        };
         let mut first: Vec<Option<usize>> = vec![None; id.n_levels()];
-        for (k, v) in values.iter().enumerate() {
+        for k in 0..cells.rows.len() {
+            let v = value(k)?;
             let who = id.codes[k] as usize;
             match first[who] {
                 None => first[who] = Some(k),
-                Some(f) if values[f] != *v => {
-                    return Err(Error::Data {
-                        path: cells.path.to_path_buf(),
-                        message: format!(
-                            "participant '{}' has {column} '{}' in row {} but '{}' in row {}; a participant's {column} cannot change between waves",
-                            id.levels[who], values[f], row[f], v, row[k]
-                        ),
-                    });
+                Some(f) => {
+                    let was = value(f)?;
+                    if was != v {
+                        return Err(Error::Data {
+                            path: cells.path.to_path_buf(),
+                            message: format!(
+                                "participant '{}' has {column} '{}' in row {} but '{}' in row {}; a participant's {column} cannot change between waves",
+                                id.levels[who], was, row[f], v, row[k]
+                            ),
+                        });
+                    }
                 }
-                Some(_) => {}
             }
         }
     }
@@ -321,25 +328,57 @@ fn check_design(
             ),
         });
     }
-    if let Some(w) = wave {
-        let mut seen: FastMap<(u32, u32), usize> =
-            FastMap::with_capacity_and_hasher(id.codes.len(), Default::default());
-        for r in 0..id.codes.len() {
-            if let Some(prev) = seen.insert((id.codes[r], w.codes[r]), r) {
-                return Err(Error::Data {
-                    path: path.to_path_buf(),
-                    message: format!(
-                        "participant '{}' has two rows for wave '{}' (rows {} and {}); remove the duplicate or check the wave column",
-                        id.label(r),
-                        w.label(r),
-                        row[prev],
-                        row[r]
-                    ),
-                });
+    if let Some(w) = wave
+        && let Some((prev, r)) = first_repeated_wave(id, w)
+    {
+        return Err(Error::Data {
+            path: path.to_path_buf(),
+            message: format!(
+                "participant '{}' has two rows for wave '{}' (rows {} and {}); remove the duplicate or check the wave column",
+                id.label(r),
+                w.label(r),
+                row[prev],
+                row[r]
+            ),
+        });
+    }
+    Ok(())
+}
+
+/// The first row r (in row order) whose participant already has a row for
+/// its wave, with the last such earlier row. The rows are grouped by
+/// participant (a counting sort, stable in row order), so the check needs
+/// one index per row rather than a map of every (participant, wave) pair.
+fn first_repeated_wave(id: &Codes, wave: &Codes) -> Option<(usize, usize)> {
+    let n_levels = id.n_levels();
+    let mut start = vec![0usize; n_levels + 1];
+    for &k in id.codes.iter() {
+        start[k as usize + 1] += 1;
+    }
+    for i in 0..n_levels {
+        start[i + 1] += start[i];
+    }
+    let mut next = start.clone();
+    let mut order = vec![0usize; id.codes.len()];
+    for (r, &k) in id.codes.iter().enumerate() {
+        order[next[k as usize]] = r;
+        next[k as usize] += 1;
+    }
+    drop(next);
+    let mut found: Option<(usize, usize)> = None;
+    for k in 0..n_levels {
+        let rows = &order[start[k]..start[k + 1]];
+        for (j, &r) in rows.iter().enumerate() {
+            if found.is_some_and(|(_, fr)| fr <= r) {
+                break;
+            }
+            if let Some(&prev) = rows[..j].iter().rev().find(|&&e| wave.codes[e] == wave.codes[r]) {
+                found = Some((prev, r));
+                break;
             }
         }
     }
-    Ok(())
+    found
 }
 
 /// Calendar times of the kept rows: from dates, or from period and birth-year

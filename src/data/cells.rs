@@ -45,14 +45,23 @@ pub(super) fn number_at(path: &Path, column: &str, col: &RawColumn, r: usize) ->
 
 /// A label cell: `None` when missing.
 pub(super) fn label_at(col: &RawColumn, r: usize) -> Option<String> {
+    label_ref(col, r).map(std::borrow::Cow::into_owned)
+}
+
+/// [`label_at`] without a copy of text cells.
+pub(super) fn label_ref(col: &RawColumn, r: usize) -> Option<std::borrow::Cow<'_, str>> {
     match col {
-        RawColumn::Text(v) => v.get(r).map(str::trim).filter(|s| !is_missing(s)).map(str::to_string),
+        RawColumn::Text(v) => v
+            .get(r)
+            .map(str::trim)
+            .filter(|s| !is_missing(s))
+            .map(std::borrow::Cow::Borrowed),
         RawColumn::Number(v) => v[r].map(|x| {
-            if x.fract() == 0.0 && x.abs() < 1e15 {
+            std::borrow::Cow::Owned(if x.fract() == 0.0 && x.abs() < 1e15 {
                 format!("{}", x as i64)
             } else {
                 x.to_string()
-            }
+            })
         }),
     }
 }

@@ -10,15 +10,36 @@
 
 use super::MixedProblem;
 
-/// A coupling block between one primary level and one level of a secondary term.
+/// A coupling block between one primary level and one level of a secondary
+/// term, in 16 bytes (a participant meets few blocks, but a file of ten
+/// million rows holds millions of them).
 #[derive(Debug, Clone, Copy)]
 pub struct Link {
     /// Index of the secondary term in [`CrossProducts::secondary`].
-    pub secondary: usize,
-    /// Offset of the block's first column in the dense part.
-    pub offset: usize,
+    secondary: u32,
+    /// Offset of the block's first column in the dense part (below the
+    /// dense limit).
+    offset: u32,
     /// Start of the q₁×q_s values (row-major) in [`CrossProducts::link_values`].
-    pub start: usize,
+    start: usize,
+}
+
+impl Link {
+    /// Index of the secondary term in [`CrossProducts::secondary`].
+    #[inline(always)]
+    pub fn secondary(&self) -> usize {
+        self.secondary as usize
+    }
+    /// Offset of the block's first column in the dense part.
+    #[inline(always)]
+    pub fn offset(&self) -> usize {
+        self.offset as usize
+    }
+    /// Start of the q₁×q_s values (row-major) in [`CrossProducts::link_values`].
+    #[inline(always)]
+    pub fn start(&self) -> usize {
+        self.start
+    }
 }
 
 /// Cross-products of a [`MixedProblem`], independent of θ.
@@ -38,8 +59,10 @@ pub struct CrossProducts {
     pub g: Vec<f64>,
     /// Per primary level, `Z₁ᵢᵀ[X y]` (q₁×(p+1) row-major).
     pub zxy: Vec<f64>,
-    /// Per primary level, the range of its links in [`Self::links`].
-    pub link_ranges: Vec<(usize, usize)>,
+    /// Where each primary level's links start in [`Self::links`], and their
+    /// end after the last level: a level's links are consecutive, from its
+    /// start to the next level's ([`Self::link_range`]).
+    pub link_start: Vec<usize>,
     /// All coupling blocks; within a level, in increasing dense offset.
     pub links: Vec<Link>,
     /// Values of the coupling blocks.
@@ -153,6 +176,12 @@ pub fn dense_order(problem: &super::MixedProblem) -> (usize, Vec<(String, usize)
 }
 
 impl CrossProducts {
+    /// The range of primary level `i`'s links in [`Self::links`].
+    #[inline(always)]
+    pub fn link_range(&self, i: usize) -> (usize, usize) {
+        (self.link_start[i], self.link_start[i + 1])
+    }
+
     /// Gather the cross-products in one pass over the rows.
     pub fn new(problem: &MixedProblem) -> Self {
         Self::build(problem, None)
@@ -190,14 +219,18 @@ impl CrossProducts {
             Some(k) => (terms[k].q(), terms[k].n_levels()),
             None => (0, 0),
         };
-        let order: Vec<usize> = match primary {
-            Some(k) => rows_by_level(&terms[k].level, n1),
-            None => (0..n).collect(),
+        // The rows level by level: in file order when the file already
+        // lists each level's rows together in level order (the usual
+        // layout: one participant after another), else through a counting
+        // sort (one index per row).
+        let order: Option<Vec<usize>> = match primary {
+            Some(k) if !terms[k].level.is_sorted() => Some(rows_by_level(&terms[k].level, n1)),
+            _ => None,
         };
 
         let mut g = vec![0.0; n1 * q1 * q1];
         let mut zxy = vec![0.0; n1 * q1 * (p + 1)];
-        let mut link_ranges = Vec::with_capacity(n1);
+        let mut level_links = Vec::with_capacity(n1 + 1);
         let mut links: Vec<Link> = Vec::new();
         let mut link_values: Vec<f64> = Vec::new();
 
@@ -206,13 +239,14 @@ impl CrossProducts {
         let mut z1 = vec![0.0; q1];
         let mut current_level = usize::MAX;
         let mut level_start_link = 0;
-        for &r in &order {
+        for at in 0..n {
+            let r = order.as_ref().map_or(at, |o| o[at]);
             if let Some(k) = primary {
                 let level = terms[k].level[r] as usize;
                 if level != current_level {
                     if current_level != usize::MAX {
                         links[level_start_link..].sort_by_key(|l| l.offset);
-                        link_ranges.push((level_start_link, links.len()));
+                        level_links.push(level_start_link);
                     }
                     // Levels with no rows get an empty range.
                     let first_new = if current_level == usize::MAX {
@@ -221,7 +255,7 @@ impl CrossProducts {
                         current_level + 1
                     };
                     for _ in first_new..level {
-                        link_ranges.push((links.len(), links.len()));
+                        level_links.push(links.len());
                     }
                     current_level = level;
                     level_start_link = links.len();
@@ -266,11 +300,12 @@ impl CrossProducts {
         if primary.is_some() {
             if current_level != usize::MAX {
                 links[level_start_link..].sort_by_key(|l| l.offset);
-                link_ranges.push((level_start_link, links.len()));
+                level_links.push(level_start_link);
             }
-            while link_ranges.len() < n1 {
-                link_ranges.push((links.len(), links.len()));
+            while level_links.len() < n1 {
+                level_links.push(links.len());
             }
+            level_links.push(links.len());
         }
         // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
         for d in &mut dense_groups {
@@ -292,7 +327,7 @@ impl CrossProducts {
             n1,
             g,
             zxy,
-            link_ranges,
+            link_start: level_links,
             links,
             link_values,
             secondary,
@@ -393,14 +428,15 @@ fn link_start(
     offset: usize,
     size: usize,
 ) -> usize {
-    if let Some(pos) = links[level_start..].iter().position(|l| l.offset == offset) {
+    if let Some(pos) = links[level_start..].iter().position(|l| l.offset() == offset) {
         return links[level_start + pos].start;
     }
     let start = link_values.len();
     link_values.resize(start + size, 0.0);
+    // The dense part is at most `DENSE_LIMIT` columns, far below u32::MAX.
     links.push(Link {
-        secondary,
-        offset,
+        secondary: secondary as u32,
+        offset: offset as u32,
         start,
     });
     start

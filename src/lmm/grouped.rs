@@ -188,11 +188,11 @@ fn transform(base: &CrossProducts, out: &mut CrossProducts, lay: &Layout, phi: &
                 zo[r * c1 + c] = sg * (0..q).map(|k| mm[k * q + r] * zi[k * c1 + c]).sum::<f64>();
             }
         }
-        let (lo, hi) = base.link_ranges[i];
+        let (lo, hi) = base.link_range(i);
         for link in &base.links[lo..hi] {
-            let qs = base.term_q[base.secondary[link.secondary]];
-            let v = &base.link_values[link.start..link.start + q * qs];
-            let vo = &mut out.link_values[link.start..link.start + q * qs];
+            let qs = base.term_q[base.secondary[link.secondary()]];
+            let v = &base.link_values[link.start()..link.start() + q * qs];
+            let vo = &mut out.link_values[link.start()..link.start() + q * qs];
             for r in 0..q {
                 for c in 0..qs {
                     vo[r * qs + c] = sg * (0..q).map(|k| mm[k * q + r] * v[k * qs + c]).sum::<f64>();

@@ -131,12 +131,12 @@ pub(super) fn level_w<const Q: usize>(
     // Columns of B = Tᵀ Z₁ᵢᵀ [Z₂Λ₂ X y], then W = L⁻¹ B.
     cols.clear();
     w.clear();
-    let (lo, hi) = cp.link_ranges[i];
+    let (lo, hi) = cp.link_range(i);
     for link in &cp.links[lo..hi] {
-        let kt = cp.secondary[link.secondary];
+        let kt = cp.secondary[link.secondary()];
         let qs = cp.term_q[kt];
         let ts = &t[kt];
-        let v = &cp.link_values[link.start..link.start + Q * qs];
+        let v = &cp.link_values[link.start()..link.start() + Q * qs];
         for c in 0..qs {
             let mut raw = [0.0f64; Q];
             for (r, rv) in raw.iter_mut().enumerate() {
@@ -146,7 +146,7 @@ pub(super) fn level_w<const Q: usize>(
                 }
                 *rv = acc;
             }
-            cols.push(link.offset + c);
+            cols.push(link.offset() + c);
             w.push(raw);
         }
     }
@@ -313,21 +313,21 @@ pub(super) fn level_w_general(
     // B = T₁ᵀ [Vᵢ T_s ... | Zᵢᵀ X y], columns gathered with their dense index.
     sc.cols.clear();
     sc.bt.clear();
-    let (lo, hi) = cp.link_ranges[i];
+    let (lo, hi) = cp.link_range(i);
     let mut ncols = 0;
     for link in &cp.links[lo..hi] {
-        ncols += cp.term_q[cp.secondary[link.secondary]];
+        ncols += cp.term_q[cp.secondary[link.secondary()]];
     }
     ncols += p + 1;
     sc.bt.resize(q1 * ncols, 0.0);
     let mut col = 0;
     for link in &cp.links[lo..hi] {
-        let kt = cp.secondary[link.secondary];
+        let kt = cp.secondary[link.secondary()];
         let qs = cp.term_q[kt];
         let ts = &t[kt];
-        let v = &cp.link_values[link.start..link.start + q1 * qs];
+        let v = &cp.link_values[link.start()..link.start() + q1 * qs];
         for c in 0..qs {
-            sc.cols.push(link.offset + c);
+            sc.cols.push(link.offset() + c);
             for r in 0..q1 {
                 // (V T_s)[r, c]
                 let mut acc = 0.0;

@@ -43,23 +43,23 @@ fn gather<const Q: usize>(
     let c1 = cp.p + 1;
     cols.clear();
     c.clear();
-    let (lo, hi) = cp.link_ranges[i];
+    let (lo, hi) = cp.link_range(i);
     for link in &cp.links[lo..hi] {
-        let ts = &sec[link.secondary];
+        let ts = &sec[link.secondary()];
         if ts.len() == 1 {
-            let v = &cp.link_values[link.start..link.start + Q];
+            let v = &cp.link_values[link.start()..link.start() + Q];
             let th = ts[0] * w;
             let mut col = [0.0; Q];
             for r in 0..Q {
                 col[r] = v[r] * th;
             }
-            cols.push(link.offset);
+            cols.push(link.offset());
             c.push(col);
             continue;
         }
         // A block of q_s columns: (Z₁ᵢᵀZ_s,l) T_s, T_s lower triangular.
-        let qs = cp.term_q[cp.secondary[link.secondary]];
-        let v = &cp.link_values[link.start..link.start + Q * qs];
+        let qs = cp.term_q[cp.secondary[link.secondary()]];
+        let v = &cp.link_values[link.start()..link.start() + Q * qs];
         for b in 0..qs {
             let mut col = [0.0; Q];
             for r in 0..Q {
@@ -69,7 +69,7 @@ fn gather<const Q: usize>(
                 }
                 col[r] = acc * w;
             }
-            cols.push(link.offset + b);
+            cols.push(link.offset() + b);
             c.push(col);
         }
     }
