@@ -49,9 +49,10 @@ pub fn has_gradient(cp: &CrossProducts) -> bool {
 /// A primary term alone with at most this many columns of `[X y]` takes
 /// the gradient in one pass (summing one (p+1)² matrix per θ entry and
 /// level); wider models, and every model with terms beside the primary
-/// one, take it in two passes ([`super::twopass`]). Measured: with p = 3
-/// the one pass was about 15% faster on the 3,000-participant file
-/// (notes/benchmarks.md), and with p ≥ 12 the two passes were faster.
+/// one, take it in [`super::twopass`] (one fused pass or two passes).
+/// Measured: with p = 3 the one pass was about 15% faster than two passes
+/// on the 3,000-participant file (notes/benchmarks.md), and with p ≥ 12
+/// the two passes were faster.
 pub const ONE_PASS_MAX_COLUMNS: usize = 8;
 
 fn primary_only(cp: &CrossProducts) -> bool {

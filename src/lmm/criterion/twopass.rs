@@ -97,9 +97,9 @@ pub(super) struct First {
     pub tau: Vec<f64>,
     /// The fused pass only: per entry (r, c) of the lower triangle of an
     /// m×m matrix, packed row by row (entry r(r+1)/2 + c), 1 + θ entries
-    /// values side by side: `Σ BᵢᵀHᵢ` and, per θ
-    /// entry of the factor, `Σ (uᵢₐ hᵢᵦᵀ + hᵢᵦ uᵢₐᵀ)`. Each level touches
-    /// the pairs of its non-zero columns.
+    /// values side by side: `Σ BᵢᵀHᵢ` and, per θ entry of the factor,
+    /// `Σ (uᵢₐ hᵢᵦᵀ + hᵢᵦ uᵢₐᵀ)`. Each level touches the pairs of its
+    /// non-zero columns; `bh` is filled from it after the pass.
     pub acc: Vec<f64>,
 }
 
