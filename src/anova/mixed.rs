@@ -90,7 +90,7 @@ pub fn compare(c: &Complete, effects: &[Effect]) -> Result<MixedComparison> {
             level_names: (0..n).map(|i| i.to_string()).collect(),
             level: level.into(),
             columns: vec!["intercept".into()],
-            z: vec![vec![1.0; n * k]],
+            z: vec![vec![1.0; n * k].into()],
             covariance: Default::default(),
         }],
     };

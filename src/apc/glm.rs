@@ -219,7 +219,7 @@ pub(super) fn intercepts(factor: &str, codes: &[u32], n: usize) -> crate::lmm::R
         level_names: level_names.into(),
         level: level.into(),
         columns: vec!["intercept".into()],
-        z: vec![vec![1.0; n]],
+        z: vec![vec![1.0; n].into()],
         covariance: Default::default(),
     }
 }

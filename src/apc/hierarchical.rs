@@ -76,7 +76,7 @@ pub fn fit(t: &NumericTable, data: &ApcData) -> Result<Hierarchical> {
         level_names: names.to_vec().into(),
         level: level.into(),
         columns: vec!["intercept".into()],
-        z: vec![vec![1.0; n]],
+        z: vec![vec![1.0; n].into()],
         covariance: Default::default(),
     };
     let mut terms = vec![

@@ -490,12 +490,12 @@ mod tests {
             level_names: (0..3 * per).map(|i| i.to_string()).collect(),
             level: level.into(),
             columns: vec!["intercept".into(), "a".into()],
-            z: vec![vec![1.0; n], z1],
+            z: vec![vec![1.0; n].into(), z1.into()],
             covariance: Default::default(),
         }];
         if schools > 0 {
             let (columns, z) = if slope {
-                (vec!["intercept", "a"], vec![vec![1.0; n], terms[0].z[1].clone()])
+                (vec!["intercept", "a"], vec![vec![1.0; n], terms[0].z[1].to_vec()])
             } else {
                 (vec!["intercept"], vec![vec![1.0; n]])
             };

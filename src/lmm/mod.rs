@@ -89,8 +89,10 @@ pub struct RandomTermData {
     pub level: Arc<[u32]>,
     /// Names of the coefficients (for example `"intercept"`, `"age"`).
     pub columns: Vec<String>,
-    /// The model-matrix columns of this term, one `Vec` of length n per coefficient.
-    pub z: Vec<Vec<f64>>,
+    /// The model-matrix columns of this term, one column of length n per
+    /// coefficient (shared where columns repeat: one column of ones serves
+    /// every intercept of a frame).
+    pub z: Vec<Arc<[f64]>>,
     /// The structure of the coefficients' covariance.
     pub covariance: Covariance,
 }
@@ -105,7 +107,7 @@ impl RandomTermData {
             level_names: (0..n_levels).map(|i| i.to_string()).collect(),
             level: level.into(),
             columns: columns.iter().map(|c| (*c).to_string()).collect(),
-            z,
+            z: z.into_iter().map(Into::into).collect(),
             covariance: Covariance::Unstructured,
         }
     }

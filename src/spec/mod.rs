@@ -8,6 +8,8 @@
 
 pub mod basis;
 
+use std::sync::Arc;
+
 use serde::{Deserialize, Serialize};
 
 pub use basis::AgeBasis;
@@ -263,8 +265,8 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
 }
 
 /// The data of one random term: its grouping codes and the columns of Z.
-fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64) -> Result<RandomTermData> {
-    let n = panel.n();
+/// `ones` is the frame's one column of ones, shared by its intercepts.
+fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64, ones: &Arc<[f64]>) -> Result<RandomTermData> {
     let age_name = &panel.roles.age;
     let coded_numeric;
     let by_role = |role: &Option<String>, codes: &'a Option<crate::data::Codes>| {
@@ -305,20 +307,20 @@ fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64) -> Result<Ran
         ));
     }
     let mut columns = Vec::new();
-    let mut z = Vec::new();
+    let mut z: Vec<Arc<[f64]>> = Vec::new();
     if rs.intercept {
         columns.push("intercept".to_string());
-        z.push(vec![1.0; n]);
+        z.push(Arc::clone(ones));
     }
     for s in &rs.slopes {
         if s == age_name {
             columns.push(age_name.clone());
-            z.push(panel.age.iter().map(|a| a - center).collect());
+            z.push(panel.age.iter().map(|a| a - center).collect::<Vec<f64>>().into());
         } else if let Some(cv) = panel.covariates.iter().find(|c| &c.name == s) {
             match &cv.values {
                 CovariateValues::Numeric(v) => {
                     columns.push(s.clone());
-                    z.push(v.clone());
+                    z.push(v.as_slice().into());
                 }
                 CovariateValues::Categorical(_) => {
                     return Err(spec_err(
@@ -436,8 +438,9 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
     let random = spec.random_terms(panel);
     let mut terms = Vec::with_capacity(random.len());
     let center = basis.center();
+    let ones: Arc<[f64]> = vec![1.0; n].into();
     for rs in &random {
-        terms.push(random_term(panel, rs, center)?);
+        terms.push(random_term(panel, rs, center, &ones)?);
     }
     let age_range = panel
         .age

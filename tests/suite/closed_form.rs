@@ -38,7 +38,7 @@ fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
             level_names: (0..a).map(|g| format!("g{g}")).collect(),
             level: level.into(),
             columns: vec!["intercept".into()],
-            z: vec![vec![1.0; rows]],
+            z: vec![vec![1.0; rows].into()],
             covariance: Default::default(),
         }],
     };

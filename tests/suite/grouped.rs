@@ -56,7 +56,7 @@ fn panel(seed: u64, per_cohort: usize, sd_int: &[f64], sd_res: &[f64], schools: 
         level_names: names.into(),
         level: level.into(),
         columns: vec!["intercept".into(), "a".into()],
-        z: vec![vec![1.0; n], z1],
+        z: vec![vec![1.0; n].into(), z1.into()],
         covariance: Default::default(),
     }];
     if schools > 0 {
@@ -65,7 +65,7 @@ fn panel(seed: u64, per_cohort: usize, sd_int: &[f64], sd_res: &[f64], schools: 
             level_names: (0..schools).map(|s| format!("S{s}")).collect(),
             level: school.into(),
             columns: vec!["intercept".into()],
-            z: vec![vec![1.0; n]],
+            z: vec![vec![1.0; n].into()],
             covariance: Default::default(),
         });
     }

@@ -551,7 +551,7 @@ mod tests {
                     level_names: (0..100).map(|i| i.to_string()).collect(),
                     level: lvl1.into(),
                     columns: (0..q1).map(|c| c.to_string()).collect(),
-                    z: z1,
+                    z: z1.into_iter().map(Into::into).collect(),
                     covariance: Default::default(),
                 },
                 RandomTermData {
@@ -559,7 +559,7 @@ mod tests {
                     level_names: (0..7).map(|i| i.to_string()).collect(),
                     level: lvl2.into(),
                     columns: vec!["i".into()],
-                    z: vec![vec![1.0; n]],
+                    z: vec![vec![1.0; n].into()],
                     covariance: Default::default(),
                 },
             ],

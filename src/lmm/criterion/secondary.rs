@@ -326,7 +326,7 @@ mod tests {
             level_names: (0..k).map(|i| i.to_string()).collect(),
             level: level.into(),
             columns,
-            z,
+            z: z.into_iter().map(Into::into).collect(),
             covariance: Default::default(),
         };
         let problem = MixedProblem {
