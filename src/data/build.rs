@@ -16,10 +16,15 @@ pub(super) fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Resul
         table,
         rows: &kept.rows,
     };
-    let id = cells.codes(&roles.id, false)?;
-    let cohort = roles.cohort.as_deref().map(|c| cells.codes(c, true)).transpose()?;
-    let wave = roles.wave.as_deref().map(|c| cells.codes(c, true)).transpose()?;
-    let cluster = roles.cluster.as_deref().map(|c| cells.codes(c, true)).transpose()?;
+    // The label columns are coded side by side (each is one pass over the
+    // kept rows with its own map); errors are reported in the order id,
+    // cohort, wave, cluster, as when they were coded one after another.
+    let coded = |c: &Option<String>| c.as_deref().map(|c| cells.codes(c, true)).transpose();
+    let ((id, cohort), (wave, cluster)) = rayon::join(
+        || rayon::join(|| cells.codes(&roles.id, false), || coded(&roles.cohort)),
+        || rayon::join(|| coded(&roles.wave), || coded(&roles.cluster)),
+    );
+    let (id, cohort, wave, cluster) = (id?, cohort?, wave?, cluster?);
     let covariates = covariates(&cells, roles, &kept.numeric)?;
     let row: Vec<usize> = kept.rows.iter().map(|r| r + 1).collect();
     let calendar = calendar_of(path, roles, table, &kept.rows, &kept.age)?;
