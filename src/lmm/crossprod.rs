@@ -42,6 +42,17 @@ impl Link {
     }
 }
 
+impl CrossProducts {
+    /// Entry (r, c) of link `link`'s block times its term's factor,
+    /// `(Z₁ᵢᵀZ_s,l T_s)[r, c]` (`ts` is T_s, row-major and lower triangular).
+    #[inline(always)]
+    pub fn link_entry(&self, link: &Link, ts: &[f64], r: usize, c: usize) -> f64 {
+        let qs = self.term_q[self.secondary[link.secondary()]];
+        let v = &self.link_values[link.start() + r * qs..link.start() + (r + 1) * qs];
+        (c..qs).map(|s| v[s] * ts[s * qs + c]).sum()
+    }
+}
+
 /// Cross-products of a [`MixedProblem`], independent of θ.
 #[derive(Debug, Clone)]
 pub struct CrossProducts {

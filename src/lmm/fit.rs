@@ -14,7 +14,7 @@ use super::crossprod::CrossProducts;
 use super::optimize::{self, OptimOptions};
 use super::search::search;
 use super::sensitivity::{Stencil, sensitivity, stencil_steps};
-use super::solution::{components, conditional, fixed_cov, marginal, solve_pls};
+use super::solution::{components, fixed_cov, solve_pls, values_per_row};
 use super::start::{base_start, moment_start, row_scales};
 use super::{Method, MixedProblem, Subspace};
 use crate::error::{Error, Result};
@@ -804,19 +804,7 @@ fn results_at(problem: &MixedProblem, cp: &CrossProducts, options: FitOptions, s
     let t = criterion::factors(cp, &theta);
     let (beta, u) = solve_pls(cp, &factor, per_row.then_some(t.as_slice()));
     let cov_beta = fixed_cov(&factor, cp.q2_total, p, sigma2);
-    let conditional = if per_row {
-        conditional(problem, &t, &beta, &u)
-    } else {
-        (
-            Vec::new(),
-            Vec::new(),
-            if options.detail.marginal() {
-                marginal(problem, &beta)
-            } else {
-                Vec::new()
-            },
-        )
-    };
+    let conditional = values_per_row(problem, options.detail, &t, &beta, || u);
     let random = components(problem, cp, &theta, sigma2);
 
     // The likelihood alone takes its curvature from the finish's last
@@ -904,14 +892,11 @@ mod near_tests {
     const LOGLIK_AGREEMENT: f64 = 1e-8;
     const THETA_AGREEMENT: f64 = 1e-5;
 
-    // A REML fit started from the same design's ML fit (its θ and its last
-    // inverse Hessian) reaches the cold REML fit's optimum, in fewer
-    // evaluations; the cross-products are gathered once for both.
-    #[test]
-    fn a_fit_started_near_reaches_the_cold_optimum() {
-        let (levels, waves) = (300, 4);
+    /// Participants with a random intercept and age slope, `waves` rows
+    /// each from a baseline age between 8 and 12 (centred at 10).
+    fn growth_problem(levels: usize, waves: usize, seed: u64) -> MixedProblem {
         let n = levels * waves;
-        let mut rng = Rng::new(11);
+        let mut rng = Rng::new(seed);
         let mut age = Vec::with_capacity(n);
         let mut y = Vec::with_capacity(n);
         for _ in 0..levels {
@@ -923,7 +908,7 @@ mod near_tests {
                 y.push(2.0 + 0.5 * a + b0 + b1 * a + 0.7 * rng.normal());
             }
         }
-        let problem = MixedProblem {
+        MixedProblem {
             y,
             x_names: vec!["intercept".into(), "age".into()],
             x: age.iter().flat_map(|&a| [1.0, a]).collect(),
@@ -932,9 +917,17 @@ mod near_tests {
                 levels,
                 (0..n).map(|r| (r / waves) as u32).collect(),
                 &["intercept", "age"],
-                vec![vec![1.0; n], age.clone()],
+                vec![vec![1.0; n], age],
             )],
-        };
+        }
+    }
+
+    // A REML fit started from the same design's ML fit (its θ and its last
+    // inverse Hessian) reaches the cold REML fit's optimum, in fewer
+    // evaluations; the cross-products are gathered once for both.
+    #[test]
+    fn a_fit_started_near_reaches_the_cold_optimum() {
+        let problem = growth_problem(300, 4, 11);
         let prepared = Prepared::new(&problem).unwrap();
         let ml = prepared
             .fit(
@@ -977,29 +970,8 @@ mod near_tests {
     #[test]
     fn estimates_detail_drops_only_the_values_per_row() {
         let (levels, waves) = (200, 3);
+        let problem = growth_problem(levels, waves, 12);
         let n = levels * waves;
-        let mut rng = Rng::new(12);
-        let (mut age, mut y) = (Vec::new(), Vec::new());
-        for _ in 0..levels {
-            let (b0, b1) = (rng.normal(), 0.3 * rng.normal());
-            for w in 0..waves {
-                let a = w as f64 + rng.uniform() - 1.0;
-                age.push(a);
-                y.push(2.0 + 0.5 * a + b0 + b1 * a + 0.7 * rng.normal());
-            }
-        }
-        let problem = MixedProblem {
-            y,
-            x_names: vec!["intercept".into(), "age".into()],
-            x: age.iter().flat_map(|&a| [1.0, a]).collect(),
-            terms: vec![RandomTermData::numbered(
-                "id",
-                levels,
-                (0..n).map(|r| (r / waves) as u32).collect(),
-                &["intercept", "age"],
-                vec![vec![1.0; n], age.clone()],
-            )],
-        };
         let full = fit(&problem, FitOptions::default()).unwrap();
         let lean = fit(&problem, FitOptions::estimates()).unwrap();
         assert_eq!(full.loglik, lean.loglik);

@@ -93,6 +93,27 @@ pub(super) fn marginal(problem: &MixedProblem, beta: &[f64]) -> Vec<f64> {
         .collect()
 }
 
+/// The values per row and per level that `detail` asks for: everything
+/// ([`conditional`]), the marginal fitted values alone, or nothing; `u`
+/// gives the spherical random effects when they are needed.
+pub(super) fn values_per_row(
+    problem: &MixedProblem,
+    detail: super::Detail,
+    t: &[Vec<f64>],
+    beta: &[f64],
+    u: impl FnOnce() -> Vec<Vec<f64>>,
+) -> Conditional {
+    if detail.per_row() {
+        return conditional(problem, t, beta, &u());
+    }
+    let fitted_marginal = if detail.marginal() {
+        marginal(problem, beta)
+    } else {
+        Vec::new()
+    };
+    (Vec::new(), Vec::new(), fitted_marginal)
+}
+
 /// BLUPs b = Λu per term and level, conditional and marginal fitted values;
 /// `t` holds each term's relative factor (row-major).
 pub(super) fn conditional(problem: &MixedProblem, t: &[Vec<f64>], beta: &[f64], u: &[Vec<f64>]) -> Conditional {

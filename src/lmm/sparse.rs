@@ -36,7 +36,7 @@ use super::fit::{
 };
 use super::search::search;
 use super::sensitivity::{from_derivatives, piece_derivatives_by, stencil_steps};
-use super::solution::{conditional, marginal};
+use super::solution::values_per_row;
 use super::start::{base_start, row_scales};
 use super::{Method, MixedProblem, Subspace, unpack_factor};
 use crate::error::{Error, Result};
@@ -653,19 +653,7 @@ fn results(
         beta[j] += sys.y_shift;
     }
     let t = sys.factors(&theta);
-    let conditional = if options.detail.per_row() {
-        conditional(problem, &t, &beta, &sys.u_by_term(&sol.u))
-    } else {
-        (
-            Vec::new(),
-            Vec::new(),
-            if options.detail.marginal() {
-                marginal(problem, &beta)
-            } else {
-                Vec::new()
-            },
-        )
-    };
+    let conditional = values_per_row(problem, options.detail, &t, &beta, || sys.u_by_term(&sol.u));
     let random = problem
         .terms
         .iter()

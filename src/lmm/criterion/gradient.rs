@@ -40,6 +40,37 @@ pub struct GradientEval {
     pub sxx_inv: Vec<f64>,
 }
 
+/// Two orders of summation of the same sums agree to this, relative
+/// (rounding only).
+#[cfg(test)]
+pub(super) const SUMMATION_ORDER_REL: f64 = 1e-9;
+
+#[cfg(test)]
+impl GradientEval {
+    /// Assert that `other` holds the same quantities as `self`, summed in
+    /// another order: equal within [`SUMMATION_ORDER_REL`].
+    pub(super) fn assert_same_as(&self, other: &GradientEval, what: &str) {
+        let close = |x: f64, y: f64| (x - y).abs() <= SUMMATION_ORDER_REL * (1.0 + x.abs());
+        assert!(
+            close(self.deviance, other.deviance),
+            "{what}: {} vs {}",
+            self.deviance,
+            other.deviance
+        );
+        for (a, b) in [
+            (&self.grad, &other.grad),
+            (&self.a_grad, &other.a_grad),
+            (&self.r2_grad, &other.r2_grad),
+            (&self.sxx_inv, &other.sxx_inv),
+        ] {
+            assert!(
+                a.len() == b.len() && a.iter().zip(b).all(|(x, y)| close(*x, *y)),
+                "{what}: {a:?} vs {b:?}"
+            );
+        }
+    }
+}
+
 /// Whether [`gradient_eval`] applies: a primary term with 1 to 4
 /// coefficients per level, alone or with secondary intercept terms.
 pub fn has_gradient(cp: &CrossProducts) -> bool {
@@ -396,21 +427,7 @@ mod gradient_tests {
             // in a different order of summation.
             let one = one_pass(&cp, &theta, method).unwrap();
             let two = super::super::twopass::gradient_eval(&cp, &theta, method).unwrap();
-            let close = |a: &[f64], b: &[f64]| a.iter().zip(b).all(|(x, y)| (x - y).abs() <= 1e-9 * (1.0 + x.abs()));
-            assert!(
-                close(&[one.deviance], &[two.deviance]),
-                "{} vs {}",
-                one.deviance,
-                two.deviance
-            );
-            for (a, b) in [
-                (&one.grad, &two.grad),
-                (&one.a_grad, &two.a_grad),
-                (&one.r2_grad, &two.r2_grad),
-                (&one.sxx_inv, &two.sxx_inv),
-            ] {
-                assert!(close(a, b), "{method:?}: {a:?} vs {b:?}");
-            }
+            one.assert_same_as(&two, &format!("{method:?}"));
             let (d, g) = deviance_gradient(&cp, &theta, method).unwrap();
             assert!((d - deviance(&cp, &theta, method)).abs() < 1e-9 * d.abs());
             for k in 0..3 {

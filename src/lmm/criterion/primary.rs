@@ -134,20 +134,9 @@ pub(super) fn level_w<const Q: usize>(
     let (lo, hi) = cp.link_range(i);
     for link in &cp.links[lo..hi] {
         let kt = cp.secondary[link.secondary()];
-        let qs = cp.term_q[kt];
-        let ts = &t[kt];
-        let v = &cp.link_values[link.start()..link.start() + Q * qs];
-        for c in 0..qs {
-            let mut raw = [0.0f64; Q];
-            for (r, rv) in raw.iter_mut().enumerate() {
-                let mut acc = 0.0;
-                for s in c..qs {
-                    acc += v[r * qs + s] * ts[s * qs + c];
-                }
-                *rv = acc;
-            }
+        for c in 0..cp.term_q[kt] {
             cols.push(link.offset() + c);
-            w.push(raw);
+            w.push(std::array::from_fn(|r| cp.link_entry(link, &t[kt], r, c)));
         }
     }
     let zi = &cp.zxy[i * Q * (p + 1)..(i + 1) * Q * (p + 1)];
@@ -324,17 +313,10 @@ pub(super) fn level_w_general(
     for link in &cp.links[lo..hi] {
         let kt = cp.secondary[link.secondary()];
         let qs = cp.term_q[kt];
-        let ts = &t[kt];
-        let v = &cp.link_values[link.start()..link.start() + q1 * qs];
         for c in 0..qs {
             sc.cols.push(link.offset() + c);
             for r in 0..q1 {
-                // (V T_s)[r, c]
-                let mut acc = 0.0;
-                for s in c..qs {
-                    acc += v[r * qs + s] * ts[s * qs + c];
-                }
-                sc.bt[r * ncols + col + c] = acc;
+                sc.bt[r * ncols + col + c] = cp.link_entry(link, &t[kt], r, c);
             }
         }
         col += qs;
