@@ -46,15 +46,20 @@ fn main() {
             0.0,
         ),
     ];
+    // Replicate i's design: the demo's, with its own seed and this run's size.
+    let design = |i: usize| {
+        let mut d = Design::demo();
+        d.seed = 40_000 + i as u64;
+        d.per_cohort = per_cohort;
+        d.schools = schools;
+        d
+    };
     let t0 = std::time::Instant::now();
     for (label, school_slopes, sd_school_slope) in models {
         let mut misses = [0usize; 3];
         let mut fitted = 0usize;
         for i in 0..reps {
-            let mut d = Design::demo();
-            d.seed = 40_000 + i as u64;
-            d.per_cohort = per_cohort;
-            d.schools = schools;
+            let mut d = design(i);
             d.truth.correlation = 0.0;
             d.truth.sd_school_slope = sd_school_slope;
             let sim = simulate(&d);
@@ -97,10 +102,7 @@ fn main() {
     let mut rejects = 0;
     let mut tested = 0;
     for i in 0..reps {
-        let mut d = Design::demo();
-        d.seed = 40_000 + i as u64;
-        d.per_cohort = per_cohort;
-        d.schools = schools;
+        let mut d = design(i);
         d.truth.sd_slope = 0.0;
         let panel = simulate(&d).panel(true);
         let spec = ModelSpec {
