@@ -4,7 +4,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use super::{CalendarSource, Panel};
+use super::{CalendarSource, Codes, Panel};
 use crate::error::{Error, Result};
 
 /// How each row's cohort is found.
@@ -129,8 +129,13 @@ pub struct Derived {
 /// Guards floor() against values a rounding error below a group boundary.
 const FLOOR_GUARD: f64 = 1e-9;
 
-fn group_label(x: f64, width: f64) -> String {
-    let g = ((x / width) + FLOOR_GUARD).floor() * width;
+/// The first value of `x`'s group of `width`.
+fn group_of(x: f64, width: f64) -> f64 {
+    ((x / width) + FLOOR_GUARD).floor() * width
+}
+
+/// A group's label from its first value.
+fn group_name(g: f64) -> String {
     if (g - g.round()).abs() < 1e-9 {
         format!("{}", g.round() as i64)
     } else {
@@ -160,19 +165,27 @@ fn years(width: f64) -> String {
 /// Each row's cohort under a rule.
 ///
 /// # Errors
+/// As [`cohort_codes`].
+pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
+    let (codes, rule) = cohort_codes(panel, rule)?;
+    Ok(Derived {
+        labels: (0..panel.n()).map(|r| codes.label(r).to_string()).collect(),
+        rule,
+        warnings: Vec::new(),
+    })
+}
+
+/// Each row's cohort under a rule, coded: the labels of [`cohorts`] as
+/// levels in label order, without a label per row.
+///
+/// # Errors
 /// [`Error::Spec`] for a width that is not positive, or a birth-year rule on
 /// a file with no calendar times.
-pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
-    let n = panel.n();
+pub fn cohort_codes(panel: &Panel, rule: CohortRule) -> Result<(Codes, AppliedRule)> {
     let rule = match (rule, &panel.cohort, &panel.calendar) {
         (CohortRule::Auto, Some(c), _) => {
-            return Ok(Derived {
-                labels: (0..n).map(|r| c.label(r).to_string()).collect(),
-                rule: AppliedRule::Column {
-                    column: panel.roles.cohort.clone().unwrap_or_default(),
-                },
-                warnings: Vec::new(),
-            });
+            let column = panel.roles.cohort.clone().unwrap_or_default();
+            return Ok((c.clone(), AppliedRule::Column { column }));
         }
         (CohortRule::Auto, None, Some(_)) => CohortRule::BirthYear { width: 1.0 },
         (CohortRule::Auto, None, None) => CohortRule::FirstAge { width: 1.0 },
@@ -199,30 +212,59 @@ pub fn cohorts(panel: &Panel, rule: CohortRule) -> Result<Derived> {
                 sum[i] += b;
                 count[i] += 1;
             }
-            let label: Vec<String> = (0..k)
-                .map(|i| group_label(sum[i] / count[i].max(1) as f64, width))
-                .collect();
-            Ok(Derived {
-                labels: (0..n).map(|r| label[panel.id.codes[r] as usize].clone()).collect(),
-                rule: AppliedRule::BirthYear {
-                    width,
-                    source: cal.source,
-                },
-                warnings: Vec::new(),
-            })
+            let mean: Vec<f64> = (0..k).map(|i| sum[i] / count[i].max(1) as f64).collect();
+            let source = cal.source;
+            Ok((
+                grouped_codes(panel, &mean, width),
+                AppliedRule::BirthYear { width, source },
+            ))
         }
         CohortRule::FirstAge { width } => {
             check_width(width, "cohort_width")?;
             let first = panel.first_ages();
-            Ok(Derived {
-                labels: (0..n)
-                    .map(|r| group_label(first[panel.id.codes[r] as usize], width))
-                    .collect(),
-                rule: AppliedRule::FirstAge { width },
-                warnings: Vec::new(),
-            })
+            Ok((grouped_codes(panel, &first, width), AppliedRule::FirstAge { width }))
         }
         CohortRule::Auto => unreachable!("resolved above"),
+    }
+}
+
+/// Each row coded by its participant's value in `per_participant`, grouped
+/// by [`group_of`] and labelled by [`group_name`]: one label per distinct group rather than
+/// per row, levels in label order (as [`Codes::new`] orders them).
+fn grouped_codes(panel: &Panel, per_participant: &[f64], width: f64) -> Codes {
+    let mut by_label: crate::data::FastMap<String, u32> = Default::default();
+    let mut by_group: crate::data::FastMap<u64, u32> = Default::default();
+    let mut levels: Vec<String> = Vec::new();
+    let of_participant: Vec<u32> = per_participant
+        .iter()
+        .map(|&x| {
+            let g = group_of(x, width);
+            *by_group.entry(g.to_bits()).or_insert_with(|| {
+                let label = group_name(g);
+                let next = levels.len() as u32;
+                *by_label.entry(label.clone()).or_insert_with(|| {
+                    levels.push(label);
+                    next
+                })
+            })
+        })
+        .collect();
+    let mut order: Vec<usize> = (0..levels.len()).collect();
+    order.sort_by(|&a, &b| super::label_order(&levels[a], &levels[b]));
+    let mut remap = vec![0u32; levels.len()];
+    for (new, &old) in order.iter().enumerate() {
+        remap[old] = new as u32;
+    }
+    let codes: Vec<u32> = panel
+        .id
+        .codes
+        .iter()
+        .map(|&i| remap[of_participant[i as usize] as usize])
+        .collect();
+    let levels: Vec<String> = order.into_iter().map(|i| std::mem::take(&mut levels[i])).collect();
+    Codes {
+        levels: levels.into(),
+        codes: codes.into(),
     }
 }
 

@@ -154,17 +154,10 @@ pub fn cell_means(panel: &Panel) -> Vec<CellMean> {
     let n = panel.n();
     // Cohorts by the same rule as every analysis (data::derive); the rule
     // without options cannot fail, but the cells are then one group.
-    // A cohort column is used as coded (what the rule gives, without a
-    // label per row).
-    let cohort_codes: std::borrow::Cow<crate::data::Codes> = match &panel.cohort {
-        Some(c) => std::borrow::Cow::Borrowed(c),
-        None => std::borrow::Cow::Owned({
-            let cohort_of = crate::data::derive::cohorts(panel, crate::data::derive::CohortRule::Auto)
-                .map(|d| d.labels)
-                .unwrap_or_else(|_| vec![String::new(); n]);
-            crate::data::Codes::new(&cohort_of, true)
-        }),
-    };
+    // The cohorts come coded, without a label per row.
+    let cohort_codes = crate::data::derive::cohort_codes(panel, crate::data::derive::CohortRule::Auto)
+        .map(|(codes, _)| codes)
+        .unwrap_or_else(|_| crate::data::Codes::new(&vec![String::new(); n], true));
     let cohort_key: Vec<i64> = cohort_codes.codes.iter().map(|&k| i64::from(k)).collect();
     let cohort_label = |k: i64| cohort_codes.levels[k as usize].clone();
     let wave_key = |r: usize| match &panel.wave {

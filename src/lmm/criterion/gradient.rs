@@ -112,15 +112,7 @@ fn one_pass(cp: &CrossProducts, theta: &[f64], method: Method) -> Option<Gradien
     let nt = q * (q + 1) / 2;
     let off = cp.theta_offset[k1];
     let t = unpack_factor(&theta[off..off + nt], q);
-    let per_range = |range: std::ops::Range<usize>| -> Option<GradPart> {
-        match q {
-            1 => grad_levels::<1>(cp, &t, range),
-            2 => grad_levels::<2>(cp, &t, range),
-            3 => grad_levels::<3>(cp, &t, range),
-            4 => grad_levels::<4>(cp, &t, range),
-            _ => None,
-        }
-    };
+    let per_range = |range: std::ops::Range<usize>| -> Option<GradPart> { grad_levels_dispatch(cp, &t, range) };
     let part = if cp.n1 < PARALLEL_LEVELS {
         per_range(0..cp.n1)?
     } else {
@@ -323,60 +315,97 @@ impl<const Q: usize> LevelSolver<Q> {
     }
 }
 
-/// The per-level sums of [`deviance_gradient`] over `range`, with Q×Q
-/// blocks in fixed-size arrays.
-pub(super) fn grad_levels<const Q: usize>(
+/// [`grad_levels`] for the primary term's `q` coefficients and the `p + 1`
+/// columns of `[X y]`, both as compile-time sizes (q ≤ 4 and, by
+/// [`ONE_PASS_MAX_COLUMNS`], p + 1 ≤ 8), so that every loop of the level
+/// kernel is unrolled. `None` outside those sizes.
+fn grad_levels_dispatch(cp: &CrossProducts, t: &[f64], range: std::ops::Range<usize>) -> Option<GradPart> {
+    macro_rules! by_columns {
+        ($q:literal) => {
+            match cp.p + 1 {
+                1 => grad_levels::<$q, 1>(cp, t, range),
+                2 => grad_levels::<$q, 2>(cp, t, range),
+                3 => grad_levels::<$q, 3>(cp, t, range),
+                4 => grad_levels::<$q, 4>(cp, t, range),
+                5 => grad_levels::<$q, 5>(cp, t, range),
+                6 => grad_levels::<$q, 6>(cp, t, range),
+                7 => grad_levels::<$q, 7>(cp, t, range),
+                8 => grad_levels::<$q, 8>(cp, t, range),
+                _ => None,
+            }
+        };
+    }
+    match cp.q1 {
+        1 => by_columns!(1),
+        2 => by_columns!(2),
+        3 => by_columns!(3),
+        4 => by_columns!(4),
+        _ => None,
+    }
+}
+
+/// The per-level sums of [`deviance_gradient`] over `range`, with the Q×Q
+/// blocks and the C = p + 1 columns of `[X y]` in fixed-size arrays. `H`
+/// and `U` are held by row (one row of C entries per coefficient), so that
+/// the sums `Σ uᵢₐ hᵢᵦᵀ` run along contiguous rows.
+fn grad_levels<const Q: usize, const C: usize>(
     cp: &CrossProducts,
     t: &[f64],
     range: std::ops::Range<usize>,
 ) -> Option<GradPart> {
-    let c1 = cp.p + 1;
     let solver = LevelSolver::<Q>::new(t);
     let nt = solver.nt;
     let mut logdet = LogDet::new();
-    let mut dlog = vec![0.0; nt];
-    let mut bh = vec![0.0; c1 * c1];
-    let mut acc = vec![0.0; nt * c1 * c1];
-    let mut b: Vec<[f64; Q]> = vec![[0.0; Q]; c1];
-    let mut h: Vec<[f64; Q]> = vec![[0.0; Q]; c1];
-    let mut u: Vec<[f64; Q]> = vec![[0.0; Q]; c1];
+    let mut dlog = [0.0f64; 10];
+    let mut bh = [[0.0f64; C]; C];
+    // One C×C sum per θ entry, in the order of `solver.pairs`.
+    let mut acc = [[[0.0f64; C]; C]; 10];
     for i in range {
         let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-        let ci = &cp.zxy[i * Q * c1..(i + 1) * Q * c1];
+        let ci = &cp.zxy[i * Q * C..(i + 1) * Q * C];
         let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
-        for col in 0..c1 {
-            let mut c = [0.0f64; Q];
+        let mut b = [[0.0f64; Q]; C];
+        let mut h = [[0.0f64; C]; Q];
+        let mut u = [[0.0f64; C]; Q];
+        for col in 0..C {
+            let c: [f64; Q] = std::array::from_fn(|r| ci[r * C + col]);
+            let (bc, hc, uc) = solver.column(&gt, &l, &inv, &c);
+            b[col] = bc;
             for r in 0..Q {
-                c[r] = ci[r * c1 + col];
+                h[r][col] = hc[r];
+                u[r][col] = uc[r];
             }
-            (b[col], h[col], u[col]) = solver.column(&gt, &l, &inv, &c);
         }
-        solver.add_dlog(&gt, &l, &inv, &mut dlog);
-        for r in 0..c1 {
+        solver.add_dlog(&gt, &l, &inv, &mut dlog[..nt]);
+        for r in 0..C {
             for c in 0..=r {
                 let mut s = 0.0;
                 for x in 0..Q {
-                    s += b[r][x] * h[c][x];
+                    s += b[r][x] * h[x][c];
                 }
-                bh[r * c1 + c] += s;
+                bh[r][c] += s;
             }
         }
-        for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
-            let blk = &mut acc[k * c1 * c1..(k + 1) * c1 * c1];
-            for r in 0..c1 {
-                let ur = u[r][ia];
-                let row = &mut blk[r * c1..(r + 1) * c1];
-                for (c, v) in row.iter_mut().enumerate() {
-                    *v += ur * h[c][ib];
+        // θ entries column by column of T, as in `LevelSolver::pairs`.
+        let mut k = 0;
+        for ib in 0..Q {
+            for ia in ib..Q {
+                let blk = &mut acc[k];
+                for r in 0..C {
+                    let ur = u[ia][r];
+                    for c in 0..C {
+                        blk[r][c] += ur * h[ib][c];
+                    }
                 }
+                k += 1;
             }
         }
     }
     Some(GradPart {
         logdet: logdet.total(),
-        dlog,
-        bh,
-        acc,
+        dlog: dlog[..nt].to_vec(),
+        bh: bh.iter().flatten().copied().collect(),
+        acc: acc[..nt].iter().flatten().flatten().copied().collect(),
     })
 }
 
@@ -442,6 +471,25 @@ mod gradient_tests {
                     "{method:?} θ{k}: {} vs {fd}",
                     g[k]
                 );
+            }
+        }
+    }
+
+    // The one pass with every compile-time size it is built for (q₁ = 1–4,
+    // p + 1 = 2–8) against the two passes: the same quantities summed in
+    // another order.
+    #[test]
+    fn one_pass_matches_two_passes_at_every_size() {
+        for q1 in 1..=4 {
+            for p in 1..ONE_PASS_MAX_COLUMNS {
+                let prob = super::super::primary::tests::alone_problem(q1, p);
+                let cp = CrossProducts::new(&prob);
+                let theta: Vec<f64> = (0..prob.n_theta()).map(|k| 0.3 + 0.1 * k as f64).collect();
+                for method in [Method::Reml, Method::Ml] {
+                    let one = one_pass(&cp, &theta, method).unwrap();
+                    let two = super::super::twopass::gradient_eval(&cp, &theta, method).unwrap();
+                    one.assert_same_as(&two, &format!("q1 {q1}, p {p}, {method:?}"));
+                }
             }
         }
     }

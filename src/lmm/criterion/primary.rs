@@ -20,8 +20,17 @@ pub(super) fn primary_fixed<const Q: usize>(cp: &CrossProducts, t1: &[f64], t: &
             tq[r][c] = t1[r * Q + c];
         }
     }
+    // A primary term alone with few columns of [X y] takes the kernel
+    // whose column count is a compile-time size.
+    let alone = cp.links.is_empty() && q2 == 0;
+    let range_sums = |e: &mut [f64], range: std::ops::Range<usize>| -> (f64, Vec<f64>) {
+        if alone && let Some(sums) = alone_dispatch::<Q>(cp, &tq, range.clone()) {
+            return sums;
+        }
+        primary_range::<Q>(cp, &tq, t, e, range)
+    };
     let (logdet, xy) = if cp.n1 < PARALLEL_LEVELS {
-        primary_range::<Q>(cp, &tq, t, e, 0..cp.n1)
+        range_sums(e, 0..cp.n1)
     } else {
         // Fixed chunks, summed in chunk order: the result does not depend on
         // how many threads run them.
@@ -32,7 +41,7 @@ pub(super) fn primary_fixed<const Q: usize>(cp: &CrossProducts, t1: &[f64], t: &
             .map(|c| {
                 let range = c * cp.n1 / CHUNKS..(c + 1) * cp.n1 / CHUNKS;
                 let mut local = if linked { vec![0.0; m * m] } else { Vec::new() };
-                let (ld, xy) = primary_range::<Q>(cp, &tq, t, &mut local, range);
+                let (ld, xy) = range_sums(&mut local, range);
                 (ld, xy, local)
             })
             .collect();
@@ -51,6 +60,74 @@ pub(super) fn primary_fixed<const Q: usize>(cp: &CrossProducts, t1: &[f64], t: &
         }
     }
     logdet
+}
+
+/// [`primary_alone`] for `p + 1 ≤ 8` columns of `[X y]`; `None` for wider
+/// models, which take [`primary_range`].
+fn alone_dispatch<const Q: usize>(
+    cp: &CrossProducts,
+    tq: &[[f64; Q]; Q],
+    range: std::ops::Range<usize>,
+) -> Option<(f64, Vec<f64>)> {
+    Some(match cp.p + 1 {
+        1 => primary_alone::<Q, 1>(cp, tq, range),
+        2 => primary_alone::<Q, 2>(cp, tq, range),
+        3 => primary_alone::<Q, 3>(cp, tq, range),
+        4 => primary_alone::<Q, 4>(cp, tq, range),
+        5 => primary_alone::<Q, 5>(cp, tq, range),
+        6 => primary_alone::<Q, 6>(cp, tq, range),
+        7 => primary_alone::<Q, 7>(cp, tq, range),
+        8 => primary_alone::<Q, 8>(cp, tq, range),
+        _ => return None,
+    })
+}
+
+/// [`primary_range`] for a primary term alone (no links to other terms)
+/// and C = p + 1 columns of `[X y]`: log|L|² of the range and its packed
+/// X–y block of Σ WᵢᵀWᵢ, the same sums in the same order, with every
+/// loop of a fixed size.
+fn primary_alone<const Q: usize, const C: usize>(
+    cp: &CrossProducts,
+    tq: &[[f64; Q]; Q],
+    range: std::ops::Range<usize>,
+) -> (f64, Vec<f64>) {
+    let mut logdet = LogDet::new();
+    let mut xy = [[0.0f64; C]; C];
+    for i in range {
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let (_, l, inv) = level_block::<Q>(gi, tq, &mut logdet);
+        let zi = &cp.zxy[i * Q * C..(i + 1) * Q * C];
+        let mut w = [[0.0f64; Q]; C];
+        for (c, wc) in w.iter_mut().enumerate() {
+            // b = Tᵀ raw (T lower, so Tᵀ upper), then L x = b.
+            let mut b = [0.0f64; Q];
+            for r in 0..Q {
+                let mut acc = 0.0;
+                for s in r..Q {
+                    acc += tq[s][r] * zi[s * C + c];
+                }
+                b[r] = acc;
+            }
+            for r in 0..Q {
+                let mut acc = b[r];
+                for k in 0..r {
+                    acc -= l[r][k] * b[k];
+                }
+                b[r] = acc * inv[r];
+            }
+            *wc = b;
+        }
+        for a in 0..C {
+            for b in 0..=a {
+                xy[a][b] += dot::<Q>(&w[a], &w[b]);
+            }
+        }
+    }
+    let packed = (0..C)
+        .flat_map(|a| (0..=a).map(move |b| (a, b)))
+        .map(|(a, b)| xy[a][b])
+        .collect();
+    (logdet.total(), packed)
 }
 
 /// Above this many primary levels a search evaluation runs in parallel.
@@ -501,7 +578,7 @@ fn effects_general(
 }
 
 #[cfg(test)]
-mod tests {
+pub(super) mod tests {
     use super::*;
     use crate::lmm::{MixedProblem, RandomTermData};
     use crate::simulate::Rng;
@@ -588,6 +665,69 @@ mod tests {
                 for j in 0..=i {
                     assert!((e1[i * m + j] - e2[i * m + j]).abs() < 1e-9, "q1 {q1} S[{i},{j}]");
                 }
+            }
+        }
+    }
+
+    // The primary term alone with p fixed columns, one of them an indicator
+    // that is zero for half the levels (so the general kernel skips it there).
+    pub(in crate::lmm::criterion) fn alone_problem(q1: usize, p: usize) -> MixedProblem {
+        let mut rng = Rng::new(17);
+        let n = 240;
+        let mut x = Vec::new();
+        let mut z1 = vec![Vec::new(); q1];
+        for r in 0..n {
+            x.push(1.0);
+            for c in 1..p {
+                x.push(if c == 1 {
+                    f64::from(u8::from(r / 3 % 2 == 0))
+                } else {
+                    rng.normal()
+                });
+            }
+            for (c, col) in z1.iter_mut().enumerate() {
+                col.push(if c == 0 { 1.0 } else { rng.normal() });
+            }
+        }
+        MixedProblem {
+            y: (0..n).map(|_| rng.normal()).collect(),
+            x_names: (0..p).map(|c| c.to_string()).collect(),
+            x,
+            terms: vec![RandomTermData::numbered(
+                "p",
+                n / 3,
+                (0..n).map(|r| (r / 3) as u32).collect(),
+                &["intercept", "a", "b", "c"][..q1],
+                z1,
+            )],
+        }
+    }
+
+    // The kernel for a primary term alone with a fixed number of columns
+    // and the kernel with links are two codings of the same sums in the same
+    // order: they agree exactly.
+    #[test]
+    fn kernel_for_a_term_alone_matches_the_linked_kernel() {
+        fn both<const Q: usize>(cp: &CrossProducts, t1: &[f64]) -> ((f64, Vec<f64>), (f64, Vec<f64>)) {
+            let tq: [[f64; Q]; Q] = std::array::from_fn(|r| std::array::from_fn(|c| t1[r * Q + c]));
+            let mut e = vec![0.0; cp.m * cp.m];
+            let linked = primary_range::<Q>(cp, &tq, &[t1.to_vec()], &mut e, 0..cp.n1);
+            (alone_dispatch::<Q>(cp, &tq, 0..cp.n1).unwrap(), linked)
+        }
+        for q1 in 1..=4 {
+            for p in 1..=7 {
+                let prob = alone_problem(q1, p);
+                let cp = CrossProducts::new(&prob);
+                let mut rng = Rng::new(3);
+                let theta: Vec<f64> = (0..prob.n_theta()).map(|_| 0.2 + rng.uniform()).collect();
+                let t = factors(&cp, &theta);
+                let (alone, linked) = match q1 {
+                    1 => both::<1>(&cp, &t[0]),
+                    2 => both::<2>(&cp, &t[0]),
+                    3 => both::<3>(&cp, &t[0]),
+                    _ => both::<4>(&cp, &t[0]),
+                };
+                assert_eq!(alone, linked, "q1 {q1}, p {p}");
             }
         }
     }
