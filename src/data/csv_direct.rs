@@ -169,12 +169,17 @@ fn parse_lines(bytes: &[u8], l: &Layout) -> Option<Vec<Cells>> {
 }
 
 /// Parse a range of whole lines into one column of cells per asked-for column.
+///
+/// Fields are found with one vectorised scan for the delimiter and the
+/// newline. A line's last field loses a final `\r`; a blank line is allowed
+/// only at the end of the range (a file ending in a newline leaves none), and
+/// any other goes to polars.
 fn parse_range(bytes: &[u8], l: &Layout) -> Option<Vec<Cells>> {
     std::str::from_utf8(bytes).ok()?;
-    if bytes.contains(&b'"') {
+    if memchr::memchr(b'"', bytes).is_some() {
         return None;
     }
-    let lines = bytes.iter().filter(|&&b| b == b'\n').count() + 1;
+    let lines = memchr::memchr_iter(b'\n', bytes).count() + 1;
     let mut out: Vec<Cells> = l
         .numeric
         .iter()
@@ -186,51 +191,61 @@ fn parse_range(bytes: &[u8], l: &Layout) -> Option<Vec<Cells>> {
             }
         })
         .collect();
-    let mut rest = bytes;
-    while !rest.is_empty() {
-        let (line, next) = match rest.iter().position(|&b| b == b'\n') {
-            Some(i) => (&rest[..i], &rest[i + 1..]),
-            None => (rest, &rest[rest.len()..]),
+    let n = bytes.len();
+    let mut ends = memchr::memchr2_iter(l.delimiter, b'\n', bytes);
+    // The current field's start and its index on the line.
+    let (mut start, mut count) = (0usize, 0usize);
+    loop {
+        // Each delimiter or newline ends a field; the range's end ends the
+        // last line when it has no newline.
+        let (end, line_end) = match ends.next() {
+            Some(p) => (p, bytes[p] == b'\n'),
+            None if start == n && count == 0 => break,
+            None => (n, true),
         };
-        rest = next;
-        let line = line.strip_suffix(b"\r").unwrap_or(line);
-        if line.is_empty() {
-            // Only a final empty line is allowed (a file ending in a newline
-            // leaves none here); any other blank line goes to polars.
-            if rest.is_empty() {
-                break;
-            }
-            return None;
-        }
-        let mut count = 0;
-        for field in line.split(|&b| b == l.delimiter) {
-            if count >= l.fields {
+        let mut field = &bytes[start..end];
+        if line_end {
+            field = field.strip_suffix(b"\r").unwrap_or(field);
+            if count == 0 && field.is_empty() {
+                if end + 1 >= n {
+                    break;
+                }
                 return None;
             }
-            if let Some(k) = l.wanted[count] {
-                // The range is valid UTF-8 and the delimiter is ASCII, so
-                // every field is too.
-                let text = std::str::from_utf8(field).ok()?;
-                match &mut out[k] {
-                    Cells::Number(v) => {
-                        let t = text.trim();
-                        v.push(if super::is_missing(t) {
-                            None
-                        } else {
-                            match t.parse::<f64>() {
-                                Ok(x) if x.is_finite() => Some(x),
-                                _ => return None,
-                            }
-                        });
-                    }
-                    Cells::Text(c) => c.push((!text.is_empty()).then_some(text)),
-                }
-            }
-            count += 1;
         }
-        if count != l.fields {
+        if count >= l.fields {
             return None;
         }
+        if let Some(k) = l.wanted[count] {
+            // The range is valid UTF-8 and the delimiter is ASCII, so
+            // every field is too.
+            let text = std::str::from_utf8(field).ok()?;
+            match &mut out[k] {
+                Cells::Number(v) => {
+                    let t = text.trim();
+                    v.push(if super::is_missing(t) {
+                        None
+                    } else {
+                        match t.parse::<f64>() {
+                            Ok(x) if x.is_finite() => Some(x),
+                            _ => return None,
+                        }
+                    });
+                }
+                Cells::Text(c) => c.push((!text.is_empty()).then_some(text)),
+            }
+        }
+        count += 1;
+        if line_end {
+            if count != l.fields {
+                return None;
+            }
+            count = 0;
+            if end >= n {
+                break;
+            }
+        }
+        start = end + 1;
     }
     Some(out)
 }
@@ -315,3 +330,4 @@ mod tests {
         std::fs::remove_dir_all(&dir).unwrap();
     }
 }
+
