@@ -188,13 +188,24 @@ impl Cells<'_> {
             RawColumn::Text(v) => {
                 // Every cell checked first, then coded from the table
                 // directly: no list of the cells beside the codes.
+                // The check also counts the runs of equal labels, an upper
+                // bound on the distinct ones.
                 let cell = |r: usize| v.get(r).map(str::trim).filter(|t| !is_missing(t));
-                if let Some(&r) = self.rows.iter().find(|&&r| cell(r).is_none()) {
-                    return Err(self.empty(name, r));
+                let mut runs = 0;
+                let mut last: Option<&str> = None;
+                for &r in self.rows {
+                    let Some(c) = cell(r) else {
+                        return Err(self.empty(name, r));
+                    };
+                    if last != Some(c) {
+                        runs += 1;
+                        last = Some(c);
+                    }
                 }
-                Ok(Codes::from_strs(
+                Ok(Codes::from_strs_expecting(
                     self.rows.iter().map(|&r| cell(r).unwrap_or_default()),
                     sort,
+                    runs,
                 ))
             }
             RawColumn::Number(_) => Ok(Codes::new(&self.labels(name, true)?, sort)),

@@ -44,48 +44,42 @@ pub(super) fn read(path: &Path, names: &[String], numeric: &[String], delimiter:
         return None;
     }
     let mut file = File::open(path).ok()?;
-    let mut carry: Vec<u8> = Vec::new();
-    let mut block = vec![0u8; BLOCK];
+    // The unparsed bytes: the tail of the last block (an incomplete line)
+    // and the next block, read straight in after it.
+    let mut carry: Vec<u8> = Vec::with_capacity(BLOCK);
     let mut layout: Option<Layout> = None;
-    let mut columns: Vec<Cells> = Vec::new();
+    let mut columns: Option<Vec<Cells>> = None;
     let mut eof = false;
     while !eof {
-        let got = read_full(&mut file, &mut block)?;
-        eof = got < block.len();
-        carry.extend_from_slice(&block[..got]);
+        carry.reserve(BLOCK);
+        let got = (&mut file).take(BLOCK as u64).read_to_end(&mut carry).ok()?;
+        eof = got < BLOCK;
         // Complete lines only, unless the file has ended.
         let end = if eof {
             carry.len()
         } else {
-            match carry.iter().rposition(|&b| b == b'\n') {
+            match memchr::memrchr(b'\n', &carry) {
                 Some(i) => i + 1,
                 None => continue,
             }
         };
         let mut start = 0;
         if layout.is_none() {
-            let nl = carry[..end].iter().position(|&b| b == b'\n').unwrap_or(end);
-            let l = header_layout(&carry[..nl], names, numeric, delimiter)?;
-            columns = l
-                .numeric
-                .iter()
-                .map(|&num| {
-                    if num {
-                        Cells::Number(Vec::new())
-                    } else {
-                        Cells::Text(TextCells::default())
-                    }
-                })
-                .collect();
-            layout = Some(l);
+            let nl = memchr::memchr(b'\n', &carry[..end]).unwrap_or(end);
+            layout = Some(header_layout(&carry[..nl], names, numeric, delimiter)?);
             start = (nl + 1).min(end);
         }
         let l = layout.as_ref()?;
         let part = parse_lines(&carry[start..end], l)?;
-        append(&mut columns, part);
+        // The first block's cells are the columns; later blocks append.
+        match &mut columns {
+            None => columns = Some(part),
+            Some(c) => append(c, part),
+        }
         carry.drain(..end);
     }
     let layout = layout?;
+    let columns = columns?;
     let n_rows = columns.first().map_or(0, |c| match c {
         Cells::Number(v) => v.len(),
         Cells::Text(t) => t.len(),
@@ -106,20 +100,6 @@ pub(super) fn read(path: &Path, names: &[String], numeric: &[String], delimiter:
         n_rows,
         columns: out,
     })
-}
-
-/// Fill `buf` from `file` as far as it goes; the number of bytes read.
-fn read_full(file: &mut File, buf: &mut [u8]) -> Option<usize> {
-    let mut got = 0;
-    while got < buf.len() {
-        match file.read(&mut buf[got..]) {
-            Ok(0) => break,
-            Ok(k) => got += k,
-            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
-            Err(_) => return None,
-        }
-    }
-    Some(got)
 }
 
 /// The header's fields and the asked-for columns among them.
@@ -159,9 +139,7 @@ fn parse_lines(bytes: &[u8], l: &Layout) -> Option<Vec<Cells>> {
             let cut = mid + nl + 1;
             if cut < bytes.len() {
                 let (a, b) = rayon::join(|| parse_range(&bytes[..cut], l), || parse_range(&bytes[cut..], l));
-                let mut a = a?;
-                append(&mut a, b?);
-                return Some(a);
+                return Some(concat(a?, b?));
             }
         }
     }
@@ -250,6 +228,29 @@ fn parse_range(bytes: &[u8], l: &Layout) -> Option<Vec<Cells>> {
     Some(out)
 }
 
+/// The cells of `a` then `b`, column by column, each column allocated once
+/// at its full length.
+fn concat(a: Vec<Cells>, b: Vec<Cells>) -> Vec<Cells> {
+    a.into_iter()
+        .zip(b)
+        .map(|pair| match pair {
+            (Cells::Number(x), Cells::Number(y)) => {
+                let mut v = Vec::with_capacity(x.len() + y.len());
+                v.extend(x);
+                v.extend(y);
+                Cells::Number(v)
+            }
+            (Cells::Text(x), Cells::Text(y)) => {
+                let mut t = TextCells::with_capacity(x.len() + y.len(), x.text_len() + y.text_len());
+                t.append(x);
+                t.append(y);
+                Cells::Text(t)
+            }
+            _ => unreachable!("a column keeps its kind"),
+        })
+        .collect()
+}
+
 /// Append `part`'s cells to `columns`, column by column.
 fn append(columns: &mut [Cells], part: Vec<Cells>) {
     for (c, p) in columns.iter_mut().zip(part) {
@@ -330,4 +331,3 @@ mod tests {
         std::fs::remove_dir_all(&dir).unwrap();
     }
 }
-

@@ -40,15 +40,30 @@ impl Codes {
 
     /// Code borrowed labels (see [`Codes::new`]).
     pub fn from_strs<'a>(labels: impl Iterator<Item = &'a str>, sort: bool) -> Codes {
-        let mut index: FastMap<&str, u32> = FastMap::default();
-        let mut levels: Vec<String> = Vec::new();
+        Codes::from_strs_expecting(labels, sort, 0)
+    }
+
+    /// [`Codes::from_strs`] with room for `levels` distinct labels made at
+    /// the start (the map is not grown, and rehashed, as they arrive).
+    pub(crate) fn from_strs_expecting<'a>(labels: impl Iterator<Item = &'a str>, sort: bool, levels: usize) -> Codes {
+        let mut index: FastMap<&str, u32> = FastMap::with_capacity_and_hasher(levels, Default::default());
+        let mut levels: Vec<String> = Vec::with_capacity(levels);
         let mut codes = Vec::with_capacity(labels.size_hint().0);
+        // Long files keep a participant's rows together: a label equal to
+        // the row before's takes its code without a look-up.
+        let mut last: Option<(&str, u32)> = None;
         for l in labels {
-            let next = levels.len() as u32;
-            let c = *index.entry(l).or_insert_with(|| {
-                levels.push(l.to_string());
-                next
-            });
+            let c = match last {
+                Some((prev, c)) if prev == l => c,
+                _ => {
+                    let next = levels.len() as u32;
+                    *index.entry(l).or_insert_with(|| {
+                        levels.push(l.to_string());
+                        next
+                    })
+                }
+            };
+            last = Some((l, c));
             codes.push(c);
         }
         if sort {

@@ -60,6 +60,10 @@ impl TextCells {
     pub fn overflowed(&self) -> bool {
         self.overflow
     }
+    /// The bytes of text held.
+    pub(super) fn text_len(&self) -> usize {
+        self.text.len()
+    }
     /// Room for `cells` cells of `bytes` bytes in all.
     pub(super) fn with_capacity(cells: usize, bytes: usize) -> Self {
         TextCells {

@@ -177,15 +177,14 @@ fn spec_err(parameter: &str, message: String) -> Error {
 /// [`Error::Spec`] for a degree outside 1–4, too few distinct ages for the
 /// basis, or spline knots outside the observed range.
 pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<AgeBasis> {
-    let mut sorted = ages.to_vec();
-    sorted.sort_by(f64::total_cmp);
-    let (lo, hi) = (sorted[0], sorted[sorted.len() - 1]);
+    // The ages are finite (the read checks them), so min and max order them.
+    let (lo, hi) = ages
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &a| (l.min(a), h.max(a)));
     let center = center.unwrap_or_else(|| ages.iter().sum::<f64>() / ages.len() as f64);
     if !center.is_finite() {
         return Err(spec_err("center", format!("centre {center} is not a finite age")));
     }
-    let mut distinct = sorted.clone();
-    distinct.dedup();
     match spec {
         AgeSpec::Polynomial { degree } => {
             if !(1..=4).contains(degree) {
@@ -196,13 +195,11 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
                     ),
                 ));
             }
-            if distinct.len() <= *degree {
+            let distinct = distinct_up_to(ages, degree + 1);
+            if distinct <= *degree {
                 return Err(spec_err(
                     "degree",
-                    format!(
-                        "{} distinct ages cannot support a degree-{degree} polynomial; lower the degree",
-                        distinct.len()
-                    ),
+                    format!("{distinct} distinct ages cannot support a degree-{degree} polynomial; lower the degree"),
                 ));
             }
             Ok(AgeBasis::Polynomial {
@@ -211,6 +208,10 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
             })
         }
         AgeSpec::Spline { interior_knots, knots } => {
+            let mut sorted = ages.to_vec();
+            sorted.sort_by(f64::total_cmp);
+            let mut distinct = sorted.clone();
+            distinct.dedup();
             let inner: Vec<f64> = match (interior_knots, knots) {
                 (_, Some(k)) => {
                     let mut k = k.clone();
@@ -262,6 +263,21 @@ pub fn build_basis(spec: &AgeSpec, center: Option<f64>, ages: &[f64]) -> Result<
             Ok(AgeBasis::Spline { knots: all, center })
         }
     }
+}
+
+/// The number of distinct values in `v`, counted up to `k`: a polynomial of
+/// degree d needs only to know whether there are more than d.
+fn distinct_up_to(v: &[f64], k: usize) -> usize {
+    let mut seen: Vec<f64> = Vec::with_capacity(k);
+    for &x in v {
+        if !seen.contains(&x) {
+            seen.push(x);
+            if seen.len() >= k {
+                break;
+            }
+        }
+    }
+    seen.len()
 }
 
 /// The data of one random term: its grouping codes and the columns of Z.
