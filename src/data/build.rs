@@ -121,9 +121,14 @@ fn keep_rows(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Kept>
         dropped: DropReport::default(),
         numeric,
     };
+    // A numeric age column is looked up once, not per row.
+    let age_col = roles.dates().is_none().then(|| &table.columns[&roles.age]);
     'rows: for r in 0..n {
         let y = number_at(path, &roles.outcome, y_col, r)?;
-        let a = age_at(path, roles, table, r)?;
+        let a = match age_col {
+            Some(col) => number_at(path, &roles.age, col, r)?,
+            None => age_at(path, roles, table, r)?,
+        };
         let Some(y) = y else {
             kept.dropped.missing_outcome += 1;
             continue;

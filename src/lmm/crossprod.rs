@@ -245,78 +245,108 @@ impl CrossProducts {
         let mut links: Vec<Link> = Vec::new();
         let mut link_values: Vec<f64> = Vec::new();
 
-        // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
-        let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
-        let mut z1 = vec![0.0; q1];
-        let mut current_level = usize::MAX;
-        let mut level_start_link = 0;
-        for at in 0..n {
-            let r = order.as_ref().map_or(at, |o| o[at]);
-            if let Some(k) = primary {
-                let level = terms[k].level[r] as usize;
-                if level != current_level {
-                    if current_level != usize::MAX {
-                        links[level_start_link..].sort_by_key(|l| l.offset);
-                        level_links.push(level_start_link);
-                    }
-                    // Levels with no rows get an empty range.
-                    let first_new = if current_level == usize::MAX {
-                        0
-                    } else {
-                        current_level + 1
-                    };
-                    for _ in first_new..level {
-                        level_links.push(links.len());
-                    }
-                    current_level = level;
-                    level_start_link = links.len();
+        let row_of = |at: usize| order.as_ref().map_or(at, |o| o[at]);
+        if secondary.is_empty() && groups.is_none() {
+            // A primary term alone: its level blocks and the dense part share
+            // nothing, so they are gathered side by side, each in the order
+            // of the general loop below (the same sums, added in the same
+            // order). No level has links.
+            let dense_pass = |dense: &mut [f64]| {
+                let mut w: Vec<(usize, f64)> = Vec::with_capacity(p + 1);
+                for at in 0..n {
+                    let r = row_of(at);
+                    w.clear();
+                    push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+                    add_row_outer(dense, m, &w);
                 }
-                for (c, zc) in z1.iter_mut().enumerate() {
-                    *zc = terms[k].z[c][r];
+            };
+            let level_pass = |g: &mut [f64], zxy: &mut [f64]| {
+                let Some(k) = primary else { return };
+                let mut z1 = vec![0.0; q1];
+                for at in 0..n {
+                    let r = row_of(at);
+                    let level = terms[k].level[r] as usize;
+                    for (c, zc) in z1.iter_mut().enumerate() {
+                        *zc = terms[k].z[c][r];
+                    }
+                    let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
+                    let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
+                    add_primary_row(gi, zi, &z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
                 }
-                let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
-                let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
-                add_primary_row(gi, zi, &z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+            };
+            rayon::join(|| dense_pass(&mut dense), || level_pass(&mut g, &mut zxy));
+            if primary.is_some() {
+                level_links = vec![0; n1 + 1];
             }
-            w.clear();
-            for (s, &kt) in secondary.iter().enumerate() {
-                let t = &terms[kt];
-                let qs = t.q();
-                let offset = secondary_offset[s] + t.level[r] as usize * qs;
-                for c in 0..qs {
-                    w.push((offset + c, t.z[c][r]));
+        } else {
+            // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
+            let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
+            let mut z1 = vec![0.0; q1];
+            let mut current_level = usize::MAX;
+            let mut level_start_link = 0;
+            for at in 0..n {
+                let r = row_of(at);
+                if let Some(k) = primary {
+                    let level = terms[k].level[r] as usize;
+                    if level != current_level {
+                        if current_level != usize::MAX {
+                            links[level_start_link..].sort_by_key(|l| l.offset);
+                            level_links.push(level_start_link);
+                        }
+                        // Levels with no rows get an empty range.
+                        let first_new = if current_level == usize::MAX {
+                            0
+                        } else {
+                            current_level + 1
+                        };
+                        for _ in first_new..level {
+                            level_links.push(links.len());
+                        }
+                        current_level = level;
+                        level_start_link = links.len();
+                    }
+                    for (c, zc) in z1.iter_mut().enumerate() {
+                        *zc = terms[k].z[c][r];
+                    }
+                    let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
+                    let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
+                    add_primary_row(gi, zi, &z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
                 }
-                if primary.is_some() {
-                    // Coupling block Z₁ᵢᵀ Z_s,j for this row.
-                    let start = link_start(&mut links, &mut link_values, level_start_link, s, offset, q1 * qs);
-                    for a in 0..q1 {
-                        for c in 0..qs {
-                            link_values[start + a * qs + c] += z1[a] * t.z[c][r];
+                w.clear();
+                for (s, &kt) in secondary.iter().enumerate() {
+                    let t = &terms[kt];
+                    let qs = t.q();
+                    let offset = secondary_offset[s] + t.level[r] as usize * qs;
+                    for c in 0..qs {
+                        w.push((offset + c, t.z[c][r]));
+                    }
+                    if primary.is_some() {
+                        // Coupling block Z₁ᵢᵀ Z_s,j for this row.
+                        let start = link_start(&mut links, &mut link_values, level_start_link, s, offset, q1 * qs);
+                        for a in 0..q1 {
+                            for c in 0..qs {
+                                link_values[start + a * qs + c] += z1[a] * t.z[c][r];
+                            }
                         }
                     }
                 }
+                push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+                let target = match groups {
+                    Some((g, _)) => &mut dense_groups[g[r] as usize],
+                    None => &mut dense,
+                };
+                add_row_outer(target, m, &w);
             }
-            push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
-            let target = match groups {
-                Some((g, _)) => &mut dense_groups[g[r] as usize],
-                None => &mut dense,
-            };
-            for (ia, &(a, va)) in w.iter().enumerate() {
-                let row = &mut target[a * m..(a + 1) * m];
-                for &(b, vb) in &w[..=ia] {
-                    row[b] += va * vb;
+            if primary.is_some() {
+                if current_level != usize::MAX {
+                    links[level_start_link..].sort_by_key(|l| l.offset);
+                    level_links.push(level_start_link);
                 }
-            }
-        }
-        if primary.is_some() {
-            if current_level != usize::MAX {
-                links[level_start_link..].sort_by_key(|l| l.offset);
-                level_links.push(level_start_link);
-            }
-            while level_links.len() < n1 {
+                while level_links.len() < n1 {
+                    level_links.push(links.len());
+                }
                 level_links.push(links.len());
             }
-            level_links.push(links.len());
         }
         // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
         for d in &mut dense_groups {
@@ -411,6 +441,18 @@ fn add_primary_row(gi: &mut [f64], zi: &mut [f64], z1: &[f64], xr: &[f64], y: f6
             row[j] += z1[a] * xv;
         }
         row[p] += z1[a] * y;
+    }
+}
+
+/// Add the outer product of the sparse row `w` to `target` (m×m), on the
+/// pairs (a, b) with b at or before a in `w`.
+#[inline]
+fn add_row_outer(target: &mut [f64], m: usize, w: &[(usize, f64)]) {
+    for (ia, &(a, va)) in w.iter().enumerate() {
+        let row = &mut target[a * m..(a + 1) * m];
+        for &(b, vb) in &w[..=ia] {
+            row[b] += va * vb;
+        }
     }
 }
 
