@@ -7,8 +7,8 @@ use faer::{Mat, Side};
 
 use super::super::crossprod::CrossProducts;
 use super::super::{Method, unpack_factor};
-use super::primary::{CHUNKS, PARALLEL_LEVELS, level_block};
-use super::{LogDet, Pieces};
+use super::Pieces;
+use super::primary::{CHUNKS, LANES, PARALLEL_LEVELS, lane_block, lane_load};
 
 /// The profiled deviance with its analytic gradient in θ, for models whose
 /// only random term is the primary one (no dense random part). Per level,
@@ -345,45 +345,101 @@ fn grad_levels_dispatch(cp: &CrossProducts, t: &[f64], range: std::ops::Range<us
 }
 
 /// The per-level sums of [`deviance_gradient`] over `range`, with the Q×Q
-/// blocks and the C = p + 1 columns of `[X y]` in fixed-size arrays. `H`
-/// and `U` are held by row (one row of C entries per coefficient), so that
-/// the sums `Σ uᵢₐ hᵢᵦᵀ` run along contiguous rows.
+/// blocks and the C = p + 1 columns of `[X y]` in fixed-size arrays, and
+/// [`LANES`] levels at a time (a last odd level beside a level of zeros,
+/// which adds exact zeros). `H` and `U` are held by row (one row of C
+/// entries per coefficient), so that the sums `Σ uᵢₐ hᵢᵦᵀ` run along
+/// contiguous rows. Each lane keeps its own sums; they are added at the end.
 fn grad_levels<const Q: usize, const C: usize>(
     cp: &CrossProducts,
     t: &[f64],
     range: std::ops::Range<usize>,
 ) -> Option<GradPart> {
+    const L: usize = LANES;
+    type V = [f64; L];
     let solver = LevelSolver::<Q>::new(t);
     let nt = solver.nt;
-    let mut logdet = LogDet::new();
-    let mut dlog = [0.0f64; 10];
-    let mut bh = [[0.0f64; C]; C];
+    let tq = solver.tq;
+    let mut product: V = [1.0; L];
+    let mut log_sum = 0.0;
+    let mut dlog = [[0.0f64; L]; 10];
+    let mut bh = [[[0.0f64; L]; C]; C];
     // One C×C sum per θ entry, in the order of `solver.pairs`.
-    let mut acc = [[[0.0f64; C]; C]; 10];
-    for i in range {
-        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-        let ci = &cp.zxy[i * Q * C..(i + 1) * Q * C];
-        let (gt, l, inv) = level_block::<Q>(gi, &solver.tq, &mut logdet);
-        let mut b = [[0.0f64; Q]; C];
-        let mut h = [[0.0f64; C]; Q];
-        let mut u = [[0.0f64; C]; Q];
-        for col in 0..C {
-            let c: [f64; Q] = std::array::from_fn(|r| ci[r * C + col]);
-            let (bc, hc, uc) = solver.column(&gt, &l, &inv, &c);
-            b[col] = bc;
+    let mut acc = [[[[0.0f64; L]; C]; C]; 10];
+    let mut first = range.start;
+    while first < range.end {
+        let (g, cz) = lane_load::<Q, C, L>(cp, first, range.end);
+        first += L;
+        let (gt, lf, inv) = lane_block::<Q, L>(&g, &tq, &mut product, &mut log_sum);
+        // Solve A w = v in place (lanes side by side).
+        let solve = |w: &mut [V; Q]| {
             for r in 0..Q {
+                for x in 0..r {
+                    for l in 0..L {
+                        w[r][l] -= lf[r][x][l] * w[x][l];
+                    }
+                }
+                for l in 0..L {
+                    w[r][l] *= inv[r][l];
+                }
+            }
+            for r in (0..Q).rev() {
+                for x in r + 1..Q {
+                    for l in 0..L {
+                        w[r][l] -= lf[x][r][l] * w[x][l];
+                    }
+                }
+                for l in 0..L {
+                    w[r][l] *= inv[r][l];
+                }
+            }
+        };
+        // Per column of Cᵢ: b = Tᵀc, h = A⁻¹b, u = c − GᵢT h.
+        let mut b = [[[0.0f64; L]; Q]; C];
+        let mut h = [[[0.0f64; L]; C]; Q];
+        let mut u = [[[0.0f64; L]; C]; Q];
+        for col in 0..C {
+            let mut bc = [[0.0f64; L]; Q];
+            for r in 0..Q {
+                for x in r..Q {
+                    for l in 0..L {
+                        bc[r][l] += tq[x][r] * cz[x][col][l];
+                    }
+                }
+            }
+            let mut hc = bc;
+            solve(&mut hc);
+            for r in 0..Q {
+                let mut uc = cz[r][col];
+                for x in 0..Q {
+                    for l in 0..L {
+                        uc[l] -= gt[r][x][l] * hc[x][l];
+                    }
+                }
                 h[r][col] = hc[r];
-                u[r][col] = uc[r];
+                u[r][col] = uc;
+            }
+            b[col] = bc;
+        }
+        // ∂ log|Aᵢ| / ∂T_ab = 2 (Aᵢ⁻¹ (GᵢT)ᵀ)_ba.
+        for col in 0..Q {
+            let mut w = gt[col];
+            solve(&mut w);
+            for (k, &(ia, ib)) in solver.pairs[..nt].iter().enumerate() {
+                if ia == col {
+                    for l in 0..L {
+                        dlog[k][l] += 2.0 * w[ib][l];
+                    }
+                }
             }
         }
-        solver.add_dlog(&gt, &l, &inv, &mut dlog[..nt]);
         for r in 0..C {
             for c in 0..=r {
-                let mut s = 0.0;
                 for x in 0..Q {
-                    s += b[r][x] * h[x][c];
+                    for l in 0..L {
+                        bh[r][c][l] += b[r][x][l] * h[x][c][l];
+                    }
                 }
-                bh[r][c] += s;
             }
         }
         // θ entries column by column of T, as in `LevelSolver::pairs`.
@@ -392,20 +448,23 @@ fn grad_levels<const Q: usize, const C: usize>(
             for ia in ib..Q {
                 let blk = &mut acc[k];
                 for r in 0..C {
-                    let ur = u[ia][r];
                     for c in 0..C {
-                        blk[r][c] += ur * h[ib][c];
+                        for l in 0..L {
+                            blk[r][c][l] += u[ia][r][l] * h[ib][c][l];
+                        }
                     }
                 }
                 k += 1;
             }
         }
     }
+    let lanes = |v: &V| v.iter().sum::<f64>();
+    let log_product: f64 = product.iter().map(|x| x.ln()).sum();
     Some(GradPart {
-        logdet: logdet.total(),
-        dlog: dlog[..nt].to_vec(),
-        bh: bh.iter().flatten().copied().collect(),
-        acc: acc[..nt].iter().flatten().flatten().copied().collect(),
+        logdet: 2.0 * (log_sum + log_product),
+        dlog: dlog[..nt].iter().map(lanes).collect(),
+        bh: bh.iter().flatten().map(lanes).collect(),
+        acc: acc[..nt].iter().flatten().flatten().map(lanes).collect(),
     })
 }
 

@@ -84,50 +84,60 @@ fn alone_dispatch<const Q: usize>(
 
 /// [`primary_range`] for a primary term alone (no links to other terms)
 /// and C = p + 1 columns of `[X y]`: log|L|² of the range and its packed
-/// X–y block of Σ WᵢᵀWᵢ, the same sums in the same order, with every
-/// loop of a fixed size.
+/// X–y block of Σ WᵢᵀWᵢ, with every loop of a fixed size and [`LANES`]
+/// levels side by side (each lane sums its own levels; the lanes are added
+/// at the end).
 fn primary_alone<const Q: usize, const C: usize>(
     cp: &CrossProducts,
     tq: &[[f64; Q]; Q],
     range: std::ops::Range<usize>,
 ) -> (f64, Vec<f64>) {
-    let mut logdet = LogDet::new();
-    let mut xy = [[0.0f64; C]; C];
-    for i in range {
-        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-        let (_, l, inv) = level_block::<Q>(gi, tq, &mut logdet);
-        let zi = &cp.zxy[i * Q * C..(i + 1) * Q * C];
-        let mut w = [[0.0f64; Q]; C];
+    const L: usize = LANES;
+    let mut product = [1.0f64; L];
+    let mut log_sum = 0.0;
+    let mut xy = [[[0.0f64; L]; C]; C];
+    let mut first = range.start;
+    while first < range.end {
+        let (g, cz) = lane_load::<Q, C, L>(cp, first, range.end);
+        first += L;
+        let (_, lf, inv) = lane_block::<Q, L>(&g, tq, &mut product, &mut log_sum);
+        let mut w = [[[0.0f64; L]; Q]; C];
         for (c, wc) in w.iter_mut().enumerate() {
             // b = Tᵀ raw (T lower, so Tᵀ upper), then L x = b.
-            let mut b = [0.0f64; Q];
             for r in 0..Q {
-                let mut acc = 0.0;
                 for s in r..Q {
-                    acc += tq[s][r] * zi[s * C + c];
+                    for l in 0..L {
+                        wc[r][l] += tq[s][r] * cz[s][c][l];
+                    }
                 }
-                b[r] = acc;
             }
             for r in 0..Q {
-                let mut acc = b[r];
                 for k in 0..r {
-                    acc -= l[r][k] * b[k];
+                    for l in 0..L {
+                        wc[r][l] -= lf[r][k][l] * wc[k][l];
+                    }
                 }
-                b[r] = acc * inv[r];
+                for l in 0..L {
+                    wc[r][l] *= inv[r][l];
+                }
             }
-            *wc = b;
         }
         for a in 0..C {
             for b in 0..=a {
-                xy[a][b] += dot::<Q>(&w[a], &w[b]);
+                for x in 0..Q {
+                    for l in 0..L {
+                        xy[a][b][l] += w[a][x][l] * w[b][x][l];
+                    }
+                }
             }
         }
     }
     let packed = (0..C)
         .flat_map(|a| (0..=a).map(move |b| (a, b)))
-        .map(|(a, b)| xy[a][b])
+        .map(|(a, b)| xy[a][b].iter().sum())
         .collect();
-    (logdet.total(), packed)
+    let log_product: f64 = product.iter().map(|x| x.ln()).sum();
+    (2.0 * (log_sum + log_product), packed)
 }
 
 /// Above this many primary levels a search evaluation runs in parallel.
@@ -298,6 +308,101 @@ pub(super) fn level_block<const Q: usize>(
         }
     }
     (gt, l, inv)
+}
+
+/// Levels taken side by side in the kernels of a primary term alone: every
+/// per-level quantity is an array over this many levels (lanes), so each
+/// arithmetic step runs on all of them at once in the processor's vector
+/// registers. Measured on 30,000 participants (q = 2, p = 3): one gradient
+/// evaluation took 0.9 ms one level at a time, 0.75 ms with 2 lanes,
+/// 0.58 ms with 4 and 0.94 ms with 8 (notes/benchmarks.md).
+pub(super) const LANES: usize = 4;
+
+/// [`level_block`] for `L` levels side by side (lane innermost): `GT`, the
+/// factor `L` and its reciprocal pivots. The pivots multiply into
+/// `product`, one per lane, folded into `log_sum` before they overflow (they
+/// are at least 1). A lane of zeros gives A = I: pivots 1, adding nothing.
+#[inline(always)]
+#[allow(clippy::type_complexity)]
+pub(super) fn lane_block<const Q: usize, const L: usize>(
+    g: &[[[f64; L]; Q]; Q],
+    tq: &[[f64; Q]; Q],
+    product: &mut [f64; L],
+    log_sum: &mut f64,
+) -> ([[[f64; L]; Q]; Q], [[[f64; L]; Q]; Q], [[f64; L]; Q]) {
+    let mut gt = [[[0.0f64; L]; Q]; Q];
+    for r in 0..Q {
+        for c in 0..Q {
+            for s in c..Q {
+                for l in 0..L {
+                    gt[r][c][l] += g[r][s][l] * tq[s][c];
+                }
+            }
+        }
+    }
+    let mut lf = [[[0.0f64; L]; Q]; Q];
+    let mut inv = [[0.0f64; L]; Q];
+    for j in 0..Q {
+        for r in j..Q {
+            let mut a = [if r == j { 1.0 } else { 0.0 }; L];
+            for s in r..Q {
+                for l in 0..L {
+                    a[l] += tq[s][r] * gt[s][j][l];
+                }
+            }
+            for k in 0..j {
+                for l in 0..L {
+                    a[l] -= lf[r][k][l] * lf[j][k][l];
+                }
+            }
+            if r == j {
+                for l in 0..L {
+                    let d = a[l].sqrt();
+                    lf[j][j][l] = d;
+                    inv[j][l] = 1.0 / d;
+                    product[l] *= d;
+                }
+            } else {
+                for l in 0..L {
+                    lf[r][j][l] = a[l] * inv[j][l];
+                }
+            }
+        }
+    }
+    if product.iter().any(|&x| x > 1e250) {
+        for x in product.iter_mut() {
+            *log_sum += x.ln();
+            *x = 1.0;
+        }
+    }
+    (gt, lf, inv)
+}
+
+/// `Gᵢ` and `Cᵢ = Zᵢᵀ[X y]` of the levels `first..first + L` that lie
+/// below `end`, lane innermost; lanes past `end` stay zero.
+#[inline(always)]
+#[allow(clippy::type_complexity)]
+pub(super) fn lane_load<const Q: usize, const C: usize, const L: usize>(
+    cp: &CrossProducts,
+    first: usize,
+    end: usize,
+) -> ([[[f64; L]; Q]; Q], [[[f64; L]; C]; Q]) {
+    let mut g = [[[0.0f64; L]; Q]; Q];
+    let mut cz = [[[0.0f64; L]; C]; Q];
+    for l in 0..L.min(end - first) {
+        let i = first + l;
+        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
+        let ci = &cp.zxy[i * Q * C..(i + 1) * Q * C];
+        for r in 0..Q {
+            for c in 0..Q {
+                g[r][c][l] = gi[r * Q + c];
+            }
+            for c in 0..C {
+                cz[r][c][l] = ci[r * C + c];
+            }
+        }
+    }
+    (g, cz)
 }
 
 #[inline(always)]
@@ -579,6 +684,7 @@ fn effects_general(
 
 #[cfg(test)]
 pub(super) mod tests {
+    use super::super::gradient::SUMMATION_ORDER_REL;
     use super::*;
     use crate::lmm::{MixedProblem, RandomTermData};
     use crate::simulate::Rng;
@@ -703,9 +809,9 @@ pub(super) mod tests {
         }
     }
 
-    // The kernel for a primary term alone with a fixed number of columns
-    // and the kernel with links are two codings of the same sums in the same
-    // order: they agree exactly.
+    // The kernel for a primary term alone (fixed sizes, levels side by
+    // side) and the kernel with links are two codings of the same sums,
+    // added in another order: they agree to rounding.
     #[test]
     fn kernel_for_a_term_alone_matches_the_linked_kernel() {
         fn both<const Q: usize>(cp: &CrossProducts, t1: &[f64]) -> ((f64, Vec<f64>), (f64, Vec<f64>)) {
@@ -727,7 +833,12 @@ pub(super) mod tests {
                     3 => both::<3>(&cp, &t[0]),
                     _ => both::<4>(&cp, &t[0]),
                 };
-                assert_eq!(alone, linked, "q1 {q1}, p {p}");
+                let close = |x: f64, y: f64| (x - y).abs() <= SUMMATION_ORDER_REL * (1.0 + x.abs());
+                assert!(close(alone.0, linked.0), "q1 {q1}, p {p}: {alone:?} vs {linked:?}");
+                assert!(
+                    alone.1.len() == linked.1.len() && alone.1.iter().zip(&linked.1).all(|(x, y)| close(*x, *y)),
+                    "q1 {q1}, p {p}: {alone:?} vs {linked:?}"
+                );
             }
         }
     }
