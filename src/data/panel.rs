@@ -44,28 +44,47 @@ impl Codes {
     }
 
     /// [`Codes::from_strs`] with room for `levels` distinct labels made at
-    /// the start (the map is not grown, and rehashed, as they arrive).
+    /// the start.
+    ///
+    /// Long files keep a participant's rows together, usually in order of
+    /// the id: a label equal to the row before's takes its code at once, and
+    /// while each new run's label sorts after the last run's, every run is a
+    /// new level, so no map is needed. The map of labels is built only when
+    /// a run's label sorts before the last one (it may have been seen). The
+    /// codes are those of one map from the start: levels in order of first
+    /// appearance.
     pub(crate) fn from_strs_expecting<'a>(labels: impl Iterator<Item = &'a str>, sort: bool, levels: usize) -> Codes {
-        let mut index: FastMap<&str, u32> = FastMap::with_capacity_and_hasher(levels, Default::default());
-        let mut levels: Vec<String> = Vec::with_capacity(levels);
+        let mut index: Option<FastMap<&str, u32>> = None;
+        let mut firsts: Vec<&'a str> = Vec::with_capacity(levels);
         let mut codes = Vec::with_capacity(labels.size_hint().0);
-        // Long files keep a participant's rows together: a label equal to
-        // the row before's takes its code without a look-up.
         let mut last: Option<(&str, u32)> = None;
         for l in labels {
             let c = match last {
                 Some((prev, c)) if prev == l => c,
                 _ => {
-                    let next = levels.len() as u32;
-                    *index.entry(l).or_insert_with(|| {
-                        levels.push(l.to_string());
-                        next
-                    })
+                    let next = firsts.len() as u32;
+                    if index.is_none() && last.is_some_and(|(prev, _)| l < prev) {
+                        let mut map: FastMap<&str, u32> =
+                            FastMap::with_capacity_and_hasher(levels.max(firsts.len()), Default::default());
+                        map.extend(firsts.iter().enumerate().map(|(k, &f)| (f, k as u32)));
+                        index = Some(map);
+                    }
+                    match &mut index {
+                        None => {
+                            firsts.push(l);
+                            next
+                        }
+                        Some(map) => *map.entry(l).or_insert_with(|| {
+                            firsts.push(l);
+                            next
+                        }),
+                    }
                 }
             };
             last = Some((l, c));
             codes.push(c);
         }
+        let mut levels: Vec<String> = firsts.into_iter().map(str::to_string).collect();
         if sort {
             let mut order: Vec<usize> = (0..levels.len()).collect();
             order.sort_by(|&a, &b| label_order(&levels[a], &levels[b]));
@@ -433,5 +452,73 @@ mod transform_tests {
         let same = vec!["x".to_string(); p.id().n_levels()];
         assert!(p.with_id_labels(&same).is_err(), "labels must be distinct");
         assert!(p.without_calendar().calendar().is_none());
+    }
+}
+
+#[cfg(test)]
+mod codes_tests {
+    use super::Codes;
+
+    /// Codes by one map from the start (the definition: levels in order of
+    /// first appearance, then sorted when asked).
+    fn by_map(labels: &[&str], sort: bool) -> (Vec<String>, Vec<u32>) {
+        let mut levels: Vec<String> = Vec::new();
+        let codes: Vec<u32> = labels
+            .iter()
+            .map(|l| match levels.iter().position(|v| v == l) {
+                Some(k) => k as u32,
+                None => {
+                    levels.push(l.to_string());
+                    (levels.len() - 1) as u32
+                }
+            })
+            .collect();
+        if !sort {
+            return (levels, codes);
+        }
+        let mut sorted = levels.clone();
+        sorted.sort_by(|a, b| super::label_order(a, b));
+        let codes = codes
+            .iter()
+            .map(|&c| sorted.iter().position(|v| *v == levels[c as usize]).unwrap() as u32)
+            .collect();
+        (sorted, codes)
+    }
+
+    // Runs in order, runs out of order, a label that comes back after
+    // others, and labels that sort before the first: the codes equal those
+    // of one map from the start, with and without sorting.
+    #[test]
+    fn codes_are_those_of_one_map_whatever_the_order_of_the_rows() {
+        let mut rng = crate::simulate::Rng::new(4);
+        let pool = ["a", "b", "c", "d", "e", "f", "10", "9", "b2"];
+        let mut cases: Vec<Vec<&str>> = vec![
+            vec![],
+            vec!["a", "a", "b", "b", "c"],
+            vec!["b", "b", "a", "c", "b", "a"],
+            vec!["a", "b", "c", "a"],
+            vec!["c", "c", "d", "a", "d", "e", "c"],
+        ];
+        for _ in 0..300 {
+            let n = (rng.uniform() * 12.0) as usize;
+            cases.push(
+                (0..n)
+                    .map(|_| pool[(rng.uniform() * pool.len() as f64) as usize])
+                    .collect(),
+            );
+        }
+        for labels in &cases {
+            for sort in [false, true] {
+                for expect in [0, 3] {
+                    let c = Codes::from_strs_expecting(labels.iter().copied(), sort, expect);
+                    let (levels, codes) = by_map(labels, sort);
+                    assert_eq!(
+                        (c.levels.to_vec(), c.codes.to_vec()),
+                        (levels, codes),
+                        "{labels:?} sort {sort}"
+                    );
+                }
+            }
+        }
     }
 }
