@@ -247,34 +247,15 @@ impl CrossProducts {
 
         let row_of = |at: usize| order.as_ref().map_or(at, |o| o[at]);
         if secondary.is_empty() && groups.is_none() {
-            // A primary term alone: its level blocks and the dense part share
-            // nothing, so they are gathered side by side, each in the order
-            // of the general loop below (the same sums, added in the same
-            // order). No level has links.
-            let dense_pass = |dense: &mut [f64]| {
-                let mut w: Vec<(usize, f64)> = Vec::with_capacity(p + 1);
-                for at in 0..n {
-                    let r = row_of(at);
-                    w.clear();
-                    push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
-                    add_row_outer(dense, m, &w);
-                }
-            };
-            let level_pass = |g: &mut [f64], zxy: &mut [f64]| {
-                let Some(k) = primary else { return };
-                let mut z1 = vec![0.0; q1];
-                for at in 0..n {
-                    let r = row_of(at);
-                    let level = terms[k].level[r] as usize;
-                    for (c, zc) in z1.iter_mut().enumerate() {
-                        *zc = terms[k].z[c][r];
-                    }
-                    let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
-                    let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
-                    add_primary_row(gi, zi, &z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
-                }
-            };
-            rayon::join(|| dense_pass(&mut dense), || level_pass(&mut g, &mut zxy));
+            gather_alone(
+                problem,
+                primary,
+                order.as_deref(),
+                y_shift,
+                &mut dense,
+                &mut g,
+                &mut zxy,
+            );
             if primary.is_some() {
                 level_links = vec![0; n1 + 1];
             }
@@ -305,12 +286,7 @@ impl CrossProducts {
                         current_level = level;
                         level_start_link = links.len();
                     }
-                    for (c, zc) in z1.iter_mut().enumerate() {
-                        *zc = terms[k].z[c][r];
-                    }
-                    let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
-                    let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
-                    add_primary_row(gi, zi, &z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+                    add_level_row(problem, k, r, y_shift, &mut g, &mut zxy, &mut z1);
                 }
                 w.clear();
                 for (s, &kt) in secondary.iter().enumerate() {
@@ -442,6 +418,65 @@ fn add_primary_row(gi: &mut [f64], zi: &mut [f64], z1: &[f64], xr: &[f64], y: f6
         }
         row[p] += z1[a] * y;
     }
+}
+
+/// The cross-products of a primary term alone, or of no random term (no
+/// secondary terms, no row groups): its level blocks and the dense part
+/// share nothing, so they are gathered side by side, each in the row order
+/// of [`CrossProducts::build`]'s general loop (`order`, else file order):
+/// the same sums, added in the same order. No level has links.
+fn gather_alone(
+    problem: &MixedProblem,
+    primary: Option<usize>,
+    order: Option<&[usize]>,
+    y_shift: f64,
+    dense: &mut [f64],
+    g: &mut [f64],
+    zxy: &mut [f64],
+) {
+    let (n, p) = (problem.n(), problem.p());
+    let m = p + 1;
+    let row_of = |at: usize| order.map_or(at, |o| o[at]);
+    let dense_pass = |dense: &mut [f64]| {
+        let mut w: Vec<(usize, f64)> = Vec::with_capacity(p + 1);
+        for at in 0..n {
+            let r = row_of(at);
+            w.clear();
+            push_fixed(&mut w, 0, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+            add_row_outer(dense, m, &w);
+        }
+    };
+    let level_pass = |g: &mut [f64], zxy: &mut [f64]| {
+        let Some(k) = primary else { return };
+        let mut z1 = vec![0.0; problem.terms[k].q()];
+        for at in 0..n {
+            add_level_row(problem, k, row_of(at), y_shift, g, zxy, &mut z1);
+        }
+    };
+    rayon::join(|| dense_pass(dense), || level_pass(g, zxy));
+}
+
+/// Row `r`'s share of its level's blocks `Gᵢ = Zᵢᵀ Zᵢ` and `Zᵢᵀ[X y]` of
+/// the primary term `k`; `z1` is scratch of the term's width.
+#[inline]
+fn add_level_row(
+    problem: &MixedProblem,
+    k: usize,
+    r: usize,
+    y_shift: f64,
+    g: &mut [f64],
+    zxy: &mut [f64],
+    z1: &mut [f64],
+) {
+    let (p, term) = (problem.p(), &problem.terms[k]);
+    let q1 = z1.len();
+    let level = term.level[r] as usize;
+    for (c, zc) in z1.iter_mut().enumerate() {
+        *zc = term.z[c][r];
+    }
+    let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
+    let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
+    add_primary_row(gi, zi, z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
 }
 
 /// Add the outer product of the sparse row `w` to `target` (m×m), on the

@@ -8,7 +8,9 @@ use faer::{Mat, Side};
 use super::super::crossprod::CrossProducts;
 use super::super::{Method, unpack_factor};
 use super::Pieces;
-use super::primary::{CHUNKS, LANES, PARALLEL_LEVELS, lane_block, lane_load};
+use super::primary::{
+    CHUNKS, LANES, PARALLEL_LEVELS, lane_backward, lane_block, lane_forward, lane_load, lane_t_column,
+};
 
 /// The profiled deviance with its analytic gradient in θ, for models whose
 /// only random term is the primary one (no dense random part). Per level,
@@ -230,12 +232,7 @@ pub(super) struct LevelSolver<const Q: usize> {
 impl<const Q: usize> LevelSolver<Q> {
     /// The solver for the factor `t` (Q×Q row-major).
     pub fn new(t: &[f64]) -> Self {
-        let mut tq = [[0.0f64; Q]; Q];
-        for r in 0..Q {
-            for c in 0..Q {
-                tq[r][c] = t[r * Q + c];
-            }
-        }
+        let tq = super::primary::factor_array::<Q>(t);
         let mut pairs = [(0usize, 0usize); 10];
         let mut k = 0;
         for j in 0..Q {
@@ -371,42 +368,17 @@ fn grad_levels<const Q: usize, const C: usize>(
         let (g, cz) = lane_load::<Q, C, L>(cp, first, range.end);
         first += L;
         let (gt, lf, inv) = lane_block::<Q, L>(&g, &tq, &mut product, &mut log_sum);
-        // Solve A w = v in place (lanes side by side).
+        // Solve A w = v in place (A = LLᵀ, lanes side by side).
         let solve = |w: &mut [V; Q]| {
-            for r in 0..Q {
-                for x in 0..r {
-                    for l in 0..L {
-                        w[r][l] -= lf[r][x][l] * w[x][l];
-                    }
-                }
-                for l in 0..L {
-                    w[r][l] *= inv[r][l];
-                }
-            }
-            for r in (0..Q).rev() {
-                for x in r + 1..Q {
-                    for l in 0..L {
-                        w[r][l] -= lf[x][r][l] * w[x][l];
-                    }
-                }
-                for l in 0..L {
-                    w[r][l] *= inv[r][l];
-                }
-            }
+            lane_forward(&lf, &inv, w);
+            lane_backward(&lf, &inv, w);
         };
         // Per column of Cᵢ: b = Tᵀc, h = A⁻¹b, u = c − GᵢT h.
         let mut b = [[[0.0f64; L]; Q]; C];
         let mut h = [[[0.0f64; L]; C]; Q];
         let mut u = [[[0.0f64; L]; C]; Q];
         for col in 0..C {
-            let mut bc = [[0.0f64; L]; Q];
-            for r in 0..Q {
-                for x in r..Q {
-                    for l in 0..L {
-                        bc[r][l] += tq[x][r] * cz[x][col][l];
-                    }
-                }
-            }
+            let bc = lane_t_column(&tq, &cz, col);
             let mut hc = bc;
             solve(&mut hc);
             for r in 0..Q {

@@ -14,12 +14,7 @@ pub(super) fn primary_fixed<const Q: usize>(cp: &CrossProducts, t1: &[f64], t: &
     let m = cp.m;
     let p = cp.p;
     let q2 = cp.q2_total;
-    let mut tq = [[0.0f64; Q]; Q];
-    for r in 0..Q {
-        for c in 0..Q {
-            tq[r][c] = t1[r * Q + c];
-        }
-    }
+    let tq = factor_array::<Q>(t1);
     // A primary term alone with few columns of [X y] takes the kernel
     // whose column count is a compile-time size.
     let alone = cp.links.is_empty() && q2 == 0;
@@ -101,27 +96,12 @@ fn primary_alone<const Q: usize, const C: usize>(
         let (g, cz) = lane_load::<Q, C, L>(cp, first, range.end);
         first += L;
         let (_, lf, inv) = lane_block::<Q, L>(&g, tq, &mut product, &mut log_sum);
-        let mut w = [[[0.0f64; L]; Q]; C];
-        for (c, wc) in w.iter_mut().enumerate() {
-            // b = Tᵀ raw (T lower, so Tᵀ upper), then L x = b.
-            for r in 0..Q {
-                for s in r..Q {
-                    for l in 0..L {
-                        wc[r][l] += tq[s][r] * cz[s][c][l];
-                    }
-                }
-            }
-            for r in 0..Q {
-                for k in 0..r {
-                    for l in 0..L {
-                        wc[r][l] -= lf[r][k][l] * wc[k][l];
-                    }
-                }
-                for l in 0..L {
-                    wc[r][l] *= inv[r][l];
-                }
-            }
-        }
+        // W = L⁻¹ Tᵀ Cᵢ, column by column.
+        let w: [[[f64; L]; Q]; C] = std::array::from_fn(|c| {
+            let mut wc = lane_t_column(tq, &cz, c);
+            lane_forward(&lf, &inv, &mut wc);
+            wc
+        });
         for a in 0..C {
             for b in 0..=a {
                 for x in 0..Q {
@@ -378,6 +358,63 @@ pub(super) fn lane_block<const Q: usize, const L: usize>(
     (gt, lf, inv)
 }
 
+/// `Tᵀc` for column `col` of the lanes' `Cᵢ` (T lower, so Tᵀ upper).
+#[inline(always)]
+pub(super) fn lane_t_column<const Q: usize, const C: usize, const L: usize>(
+    tq: &[[f64; Q]; Q],
+    cz: &[[[f64; L]; C]; Q],
+    col: usize,
+) -> [[f64; L]; Q] {
+    let mut b = [[0.0f64; L]; Q];
+    for r in 0..Q {
+        for x in r..Q {
+            for l in 0..L {
+                b[r][l] += tq[x][r] * cz[x][col][l];
+            }
+        }
+    }
+    b
+}
+
+/// Forward substitution `L x = w` in place, lanes side by side (`inv`: the
+/// reciprocal pivots).
+#[inline(always)]
+pub(super) fn lane_forward<const Q: usize, const L: usize>(
+    lf: &[[[f64; L]; Q]; Q],
+    inv: &[[f64; L]; Q],
+    w: &mut [[f64; L]; Q],
+) {
+    for r in 0..Q {
+        for x in 0..r {
+            for l in 0..L {
+                w[r][l] -= lf[r][x][l] * w[x][l];
+            }
+        }
+        for l in 0..L {
+            w[r][l] *= inv[r][l];
+        }
+    }
+}
+
+/// Back substitution `Lᵀ x = w` in place, lanes side by side.
+#[inline(always)]
+pub(super) fn lane_backward<const Q: usize, const L: usize>(
+    lf: &[[[f64; L]; Q]; Q],
+    inv: &[[f64; L]; Q],
+    w: &mut [[f64; L]; Q],
+) {
+    for r in (0..Q).rev() {
+        for x in r + 1..Q {
+            for l in 0..L {
+                w[r][l] -= lf[x][r][l] * w[x][l];
+            }
+        }
+        for l in 0..L {
+            w[r][l] *= inv[r][l];
+        }
+    }
+}
+
 /// `Gᵢ` and `Cᵢ = Zᵢᵀ[X y]` of the levels `first..first + L` that lie
 /// below `end`, lane innermost; lanes past `end` stay zero.
 #[inline(always)]
@@ -603,6 +640,28 @@ pub fn primary_effects(cp: &CrossProducts, t: &[Vec<f64>], x: &[f64]) -> Vec<f64
     u
 }
 
+/// The right-hand side `Wᵢ,y − Σ_c Wᵢ,c x_c` of one level's effects, added
+/// to `rhs` (zeroed by the caller): `cols` are the level's dense columns,
+/// `y` the response's, and `w(c, r)` entry r of column c of W.
+#[inline(always)]
+fn effects_rhs(cols: &[usize], y: usize, x: &[f64], w: impl Fn(usize, usize) -> f64, rhs: &mut [f64]) {
+    for (r, v) in rhs.iter_mut().enumerate() {
+        for (c, &dc) in cols.iter().enumerate() {
+            if dc == y {
+                *v += w(c, r);
+            } else {
+                *v -= w(c, r) * x[dc];
+            }
+        }
+    }
+}
+
+/// The factor T (Q×Q, row-major) as an array.
+#[inline(always)]
+pub(super) fn factor_array<const Q: usize>(t: &[f64]) -> [[f64; Q]; Q] {
+    std::array::from_fn(|r| std::array::from_fn(|c| t[r * Q + c]))
+}
+
 /// Back substitution `Lᵀu = rhs` for one level (L lower, row-major q×q).
 #[inline(always)]
 fn back_substitute(l: impl Fn(usize, usize) -> f64, rhs: &[f64], u: &mut [f64]) {
@@ -624,12 +683,7 @@ fn effects_fixed<const Q: usize>(
     range: std::ops::Range<usize>,
     out: &mut [f64],
 ) {
-    let mut tq = [[0.0f64; Q]; Q];
-    for r in 0..Q {
-        for c in 0..Q {
-            tq[r][c] = t1[r * Q + c];
-        }
-    }
+    let tq = factor_array::<Q>(t1);
     let y = cp.m - 1;
     let mut logdet = LogDet::new();
     let (mut cols, mut w, mut present) = (Vec::new(), Vec::new(), Vec::new());
@@ -637,15 +691,7 @@ fn effects_fixed<const Q: usize>(
     for i in range {
         let (l, _) = level_w::<Q>(cp, &tq, t, i, &mut cols, &mut w, &mut present, &mut logdet);
         let mut rhs = [0.0f64; Q];
-        for (r, v) in rhs.iter_mut().enumerate() {
-            for (c, &dc) in cols.iter().enumerate() {
-                if dc == y {
-                    *v += w[c][r];
-                } else {
-                    *v -= w[c][r] * x[dc];
-                }
-            }
-        }
+        effects_rhs(&cols, y, x, |c, r| w[c][r], &mut rhs);
         let at = (i - start) * Q;
         back_substitute(|a, b| l[a][b], &rhs, &mut out[at..at + Q]);
     }
@@ -667,16 +713,8 @@ fn effects_general(
     for i in range {
         level_w_general(cp, t1, t, i, &mut sc, &mut logdet);
         let nc = sc.cols.len();
-        for (r, v) in rhs.iter_mut().enumerate() {
-            *v = 0.0;
-            for (c, &dc) in sc.cols.iter().enumerate() {
-                if dc == y {
-                    *v += sc.wv[r * nc + c];
-                } else {
-                    *v -= sc.wv[r * nc + c] * x[dc];
-                }
-            }
-        }
+        rhs.iter_mut().for_each(|v| *v = 0.0);
+        effects_rhs(&sc.cols, y, x, |c, r| sc.wv[r * nc + c], &mut rhs);
         let at = (i - start) * q1;
         back_substitute(|a, b| sc.l[a * q1 + b], &rhs, &mut out[at..at + q1]);
     }
@@ -815,7 +853,7 @@ pub(super) mod tests {
     #[test]
     fn kernel_for_a_term_alone_matches_the_linked_kernel() {
         fn both<const Q: usize>(cp: &CrossProducts, t1: &[f64]) -> ((f64, Vec<f64>), (f64, Vec<f64>)) {
-            let tq: [[f64; Q]; Q] = std::array::from_fn(|r| std::array::from_fn(|c| t1[r * Q + c]));
+            let tq = factor_array::<Q>(t1);
             let mut e = vec![0.0; cp.m * cp.m];
             let linked = primary_range::<Q>(cp, &tq, &[t1.to_vec()], &mut e, 0..cp.n1);
             (alone_dispatch::<Q>(cp, &tq, 0..cp.n1).unwrap(), linked)
