@@ -106,6 +106,10 @@ pub struct CrossProducts {
     /// For a random intercept (or one coefficient) alone, the levels pooled
     /// by their `ZᵢᵀZᵢ` when that takes few values ([`Pools`]).
     pub pools: Option<Pools>,
+    /// The secondary columns each primary level meets, when every level
+    /// meets the same number (each participant in one school); `None`
+    /// otherwise (crossed factors) or without secondary terms.
+    pub link_width: Option<usize>,
 }
 
 /// Levels of a one-coefficient primary term pooled by `γ = ZᵢᵀZᵢ` (a random
@@ -337,6 +341,7 @@ impl CrossProducts {
         }
         let mut cp = CrossProducts {
             pools: None,
+            link_width: None,
             n,
             p,
             primary,
@@ -359,7 +364,24 @@ impl CrossProducts {
             dense_groups,
         };
         cp.pools = Pools::of(&cp);
+        cp.link_width = cp.uniform_link_width();
         cp
+    }
+
+    /// See [`Self::link_width`].
+    fn uniform_link_width(&self) -> Option<usize> {
+        let width = |i: usize| -> usize {
+            let (lo, hi) = self.link_range(i);
+            self.links[lo..hi]
+                .iter()
+                .map(|link| self.term_q[self.secondary[link.secondary()]])
+                .sum()
+        };
+        if self.n1 == 0 || self.link_start.len() != self.n1 + 1 {
+            return None;
+        }
+        let s = width(0);
+        (s > 0 && (1..self.n1).all(|i| width(i) == s)).then_some(s)
     }
 }
 

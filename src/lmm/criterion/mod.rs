@@ -16,6 +16,7 @@
 
 mod gradient;
 pub mod grouped;
+mod nested;
 mod pooled;
 mod primary;
 mod secondary;

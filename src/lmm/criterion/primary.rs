@@ -18,8 +18,16 @@ pub(super) fn primary_fixed<const Q: usize>(cp: &CrossProducts, t1: &[f64], t: &
     // A primary term alone with few columns of [X y] takes the kernel
     // whose column count is a compile-time size.
     let alone = cp.links.is_empty() && q2 == 0;
+    // Levels that each meet the same few secondary columns take the
+    // kernel with levels side by side.
+    let nested = super::nested::serves(cp);
     let range_sums = |e: &mut [f64], range: std::ops::Range<usize>| -> (f64, Vec<f64>) {
         if alone && let Some(sums) = alone_dispatch::<Q>(cp, &tq, range.clone()) {
+            return sums;
+        }
+        if let Some(s) = nested
+            && let Some(sums) = super::nested::value::<Q>(cp, &tq, t, s, e, range.clone())
+        {
             return sums;
         }
         primary_range::<Q>(cp, &tq, t, e, range)

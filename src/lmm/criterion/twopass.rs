@@ -126,7 +126,7 @@ fn over_levels<T: Send>(
     total
 }
 
-fn first<const Q: usize>(
+pub(super) fn first<const Q: usize>(
     cp: &CrossProducts,
     shared: &Levels<Q>,
     sec: &[Vec<f64>],
@@ -401,7 +401,20 @@ pub(super) fn passes<const Q: usize>(
     method: Method,
     fused: bool,
 ) -> Option<(First, DenseSolve, super::Pieces, Second)> {
-    let mut part = over_levels(cp, &|range| first::<Q>(cp, shared, sec, range, fused), |a, b| {
+    // One shared factor and levels that each meet the same few secondary
+    // columns take the fused pass with levels side by side.
+    let width = (fused && shared.group.is_none() && shared.weight[0] == 1.0)
+        .then(|| super::nested::serves(cp))
+        .flatten();
+    let per_range = |range: std::ops::Range<usize>| {
+        if let Some(s) = width
+            && let Some(part) = super::nested::first::<Q>(cp, &shared.solvers[0], sec, s, range.clone())
+        {
+            return part;
+        }
+        first::<Q>(cp, shared, sec, range, fused)
+    };
+    let mut part = over_levels(cp, &per_range, |a, b| {
         a.logdet += b.logdet;
         a.dlog.iter_mut().zip(&b.dlog).for_each(|(x, y)| *x += y);
         a.bh.iter_mut().zip(&b.bh).for_each(|(x, y)| *x += y);
