@@ -16,7 +16,7 @@
 
 use super::super::crossprod::CrossProducts;
 use super::gradient::LevelSolver;
-use super::primary::{LANES, lane_backward, lane_block, lane_forward};
+use super::primary::{LANES, lane_backward, lane_block, lane_forward, vectorised};
 use super::twopass::First;
 
 /// Secondary columns per level this kernel takes (a school intercept, or a
@@ -50,14 +50,14 @@ pub(super) fn first<const Q: usize>(
     macro_rules! by_columns {
         ($s:literal) => {
             match cp.p + 1 {
-                1 => lanes::<Q, $s, 1>(cp, solver, sec, range),
-                2 => lanes::<Q, $s, 2>(cp, solver, sec, range),
-                3 => lanes::<Q, $s, 3>(cp, solver, sec, range),
-                4 => lanes::<Q, $s, 4>(cp, solver, sec, range),
-                5 => lanes::<Q, $s, 5>(cp, solver, sec, range),
-                6 => lanes::<Q, $s, 6>(cp, solver, sec, range),
-                7 => lanes::<Q, $s, 7>(cp, solver, sec, range),
-                8 => lanes::<Q, $s, 8>(cp, solver, sec, range),
+                1 => vectorised(|| lanes::<Q, $s, 1>(cp, solver, sec, range)),
+                2 => vectorised(|| lanes::<Q, $s, 2>(cp, solver, sec, range)),
+                3 => vectorised(|| lanes::<Q, $s, 3>(cp, solver, sec, range)),
+                4 => vectorised(|| lanes::<Q, $s, 4>(cp, solver, sec, range)),
+                5 => vectorised(|| lanes::<Q, $s, 5>(cp, solver, sec, range)),
+                6 => vectorised(|| lanes::<Q, $s, 6>(cp, solver, sec, range)),
+                7 => vectorised(|| lanes::<Q, $s, 7>(cp, solver, sec, range)),
+                8 => vectorised(|| lanes::<Q, $s, 8>(cp, solver, sec, range)),
                 _ => return None,
             }
         };
@@ -143,6 +143,7 @@ fn add_pair<const Q: usize>(x: &Solved<Q>, y: &Solved<Q>, e: &mut [V; 11]) {
 /// The fused pass over `range` with S secondary columns and C columns of
 /// `[X y]` per level, [`LANES`] levels at a time (lanes past the range stay
 /// zero: `Aᵢ = I` and zero columns, which add exact zeros).
+#[inline(always)]
 fn lanes<const Q: usize, const S: usize, const C: usize>(
     cp: &CrossProducts,
     solver: &LevelSolver<Q>,
@@ -266,14 +267,14 @@ pub(super) fn value<const Q: usize>(
     macro_rules! by_columns {
         ($s:literal) => {
             match cp.p + 1 {
-                1 => value_lanes::<Q, $s, 1>(cp, tq, t, e, range),
-                2 => value_lanes::<Q, $s, 2>(cp, tq, t, e, range),
-                3 => value_lanes::<Q, $s, 3>(cp, tq, t, e, range),
-                4 => value_lanes::<Q, $s, 4>(cp, tq, t, e, range),
-                5 => value_lanes::<Q, $s, 5>(cp, tq, t, e, range),
-                6 => value_lanes::<Q, $s, 6>(cp, tq, t, e, range),
-                7 => value_lanes::<Q, $s, 7>(cp, tq, t, e, range),
-                8 => value_lanes::<Q, $s, 8>(cp, tq, t, e, range),
+                1 => vectorised(|| value_lanes::<Q, $s, 1>(cp, tq, t, e, range)),
+                2 => vectorised(|| value_lanes::<Q, $s, 2>(cp, tq, t, e, range)),
+                3 => vectorised(|| value_lanes::<Q, $s, 3>(cp, tq, t, e, range)),
+                4 => vectorised(|| value_lanes::<Q, $s, 4>(cp, tq, t, e, range)),
+                5 => vectorised(|| value_lanes::<Q, $s, 5>(cp, tq, t, e, range)),
+                6 => vectorised(|| value_lanes::<Q, $s, 6>(cp, tq, t, e, range)),
+                7 => vectorised(|| value_lanes::<Q, $s, 7>(cp, tq, t, e, range)),
+                8 => vectorised(|| value_lanes::<Q, $s, 8>(cp, tq, t, e, range)),
                 _ => return None,
             }
         };
@@ -312,6 +313,7 @@ fn lane_dot<const Q: usize>(a: &[V; Q], b: &[V; Q]) -> V {
 }
 
 /// See [`value`]: S secondary columns and C columns of `[X y]` per level.
+#[inline(always)]
 fn value_lanes<const Q: usize, const S: usize, const C: usize>(
     cp: &CrossProducts,
     tq: &[[f64; Q]; Q],
@@ -531,6 +533,30 @@ mod tests {
                 }
             }
         }
+    }
+
+    // The kernels compiled for wider vector registers and for the baseline
+    // give the same numbers to the bit (no fused multiply–add is enabled,
+    // and every sum keeps its order).
+    #[test]
+    fn wider_registers_give_the_same_numbers() {
+        let problem = nested_problem(2, 3, 1, false);
+        let cp = CrossProducts::new(&problem);
+        let t = factors(&cp, &theta_for(&problem));
+        let tq = factor_array::<2>(&t[cp.primary.unwrap()]);
+        let (mut e1, mut e2) = (cp.dense.clone(), cp.dense.clone());
+        let wide = vectorised(|| value_lanes::<2, 1, 4>(&cp, &tq, &t, &mut e1, 0..cp.n1));
+        let narrow = value_lanes::<2, 1, 4>(&cp, &tq, &t, &mut e2, 0..cp.n1);
+        assert_eq!(wide, narrow);
+        assert_eq!(e1, e2);
+        let solver = LevelSolver::<2>::new(&t[cp.primary.unwrap()]);
+        let sec: Vec<Vec<f64>> = cp.secondary.iter().map(|&kt| t[kt].clone()).collect();
+        let wide = vectorised(|| lanes::<2, 1, 4>(&cp, &solver, &sec, 0..cp.n1));
+        let narrow = lanes::<2, 1, 4>(&cp, &solver, &sec, 0..cp.n1);
+        assert_eq!(
+            (wide.logdet, &wide.dlog, &wide.acc),
+            (narrow.logdet, &narrow.dlog, &narrow.acc)
+        );
     }
 
     // The fused pass with levels side by side against the fused pass one
