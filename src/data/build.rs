@@ -195,7 +195,7 @@ impl Cells<'_> {
                 // directly: no list of the cells beside the codes.
                 // The check also counts the runs of equal labels, an upper
                 // bound on the distinct ones.
-                let cell = |r: usize| v.get(r).map(str::trim).filter(|t| !is_missing(t));
+                let cell = |r: usize| v.get(r).map(super::trim).filter(|t| !is_missing(t));
                 let mut runs = 0;
                 let mut last: Option<&str> = None;
                 for &r in self.rows {

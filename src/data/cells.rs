@@ -25,7 +25,7 @@ pub(super) fn number_at(path: &Path, column: &str, col: &RawColumn, r: usize) ->
                 "is not a finite number; store missing values as nulls",
             )),
         },
-        RawColumn::Text(v) => match v.get(r).map(str::trim) {
+        RawColumn::Text(v) => match v.get(r).map(super::trim) {
             None => Ok(None),
             Some(s) if is_missing(s) => Ok(None),
             Some(s) => match s.parse::<f64>() {
@@ -53,7 +53,7 @@ pub(super) fn label_ref(col: &RawColumn, r: usize) -> Option<std::borrow::Cow<'_
     match col {
         RawColumn::Text(v) => v
             .get(r)
-            .map(str::trim)
+            .map(super::trim)
             .filter(|s| !is_missing(s))
             .map(std::borrow::Cow::Borrowed),
         RawColumn::Number(v) => v[r].map(|x| {

@@ -105,7 +105,7 @@ pub(super) fn read(path: &Path, names: &[String], numeric: &[String], delimiter:
 /// The header's fields and the asked-for columns among them.
 fn header_layout(line: &[u8], names: &[String], numeric: &[String], delimiter: u8) -> Option<Layout> {
     let line = line.strip_suffix(b"\r").unwrap_or(line);
-    if line.starts_with(&[0xEF, 0xBB, 0xBF]) || line.contains(&b'"') || line.is_empty() {
+    if !delimiter.is_ascii() || line.starts_with(&[0xEF, 0xBB, 0xBF]) || line.contains(&b'"') || line.is_empty() {
         return None;
     }
     let text = std::str::from_utf8(line).ok()?;
@@ -195,12 +195,15 @@ fn parse_range(bytes: &[u8], l: &Layout) -> Option<Vec<Cells>> {
             return None;
         }
         if let Some(k) = l.wanted[count] {
-            // The range is valid UTF-8 and the delimiter is ASCII, so
-            // every field is too.
-            let text = std::str::from_utf8(field).ok()?;
+            // SAFETY: the range is valid UTF-8 (checked above), and a field
+            // starts after an ASCII delimiter or newline (or at the range's
+            // start) and ends before one (or a `\r`, or the range's end), so
+            // it starts and ends on character boundaries; `header_layout`
+            // refuses a delimiter that is not ASCII.
+            let text = unsafe { std::str::from_utf8_unchecked(field) };
             match &mut out[k] {
                 Cells::Number(v) => {
-                    let t = text.trim();
+                    let t = super::trim(text);
                     v.push(if super::is_missing(t) {
                         None
                     } else {

@@ -56,6 +56,19 @@ pub(crate) fn is_missing(s: &str) -> bool {
     matches!(s, "" | "NA" | "." | "na" | "N/A")
 }
 
+/// `s.trim()`, without looking at the characters when `s` starts and ends
+/// with a printable ASCII byte (as nearly every cell does): every character
+/// that `str::trim` removes is ASCII at or below the space, or starts and
+/// ends with a byte of 0x80 or above.
+#[inline]
+pub(crate) fn trim(s: &str) -> &str {
+    let plain = |b: u8| b > b' ' && b < 0x80;
+    match (s.as_bytes().first(), s.as_bytes().last()) {
+        (Some(&a), Some(&b)) if plain(a) && plain(b) => s,
+        _ => s.trim(),
+    }
+}
+
 /// Read and validate a long-format panel.
 ///
 /// # Errors
@@ -169,4 +182,28 @@ fn load_with(path: &Path, roles: &Roles, options: ReadOptions, outcome: Option<&
         return Ok(panel);
     }
     build::build(path, roles, &table)
+}
+
+#[cfg(test)]
+mod tests {
+    // The quick trim is `str::trim` (identity): on every string of up to
+    // three characters drawn from printable ASCII, ASCII whitespace and
+    // controls, and Unicode spaces and letters.
+    #[test]
+    fn quick_trim_is_the_standard_trim() {
+        let alphabet = [
+            'a', '7', ' ', '\t', '\r', '\n', '\u{b}', '\u{1}', '\u{a0}', '\u{3000}', '\u{2028}', 'é', '中',
+        ];
+        let mut checked = 0;
+        for a in 0..=alphabet.len() {
+            for b in 0..=alphabet.len() {
+                for c in 0..=alphabet.len() {
+                    let s: String = [a, b, c].iter().filter_map(|&k| alphabet.get(k)).collect();
+                    assert_eq!(super::trim(&s), s.trim(), "{s:?}");
+                    checked += 1;
+                }
+            }
+        }
+        assert_eq!(checked, 14 * 14 * 14);
+    }
 }
