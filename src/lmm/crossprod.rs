@@ -264,14 +264,42 @@ impl CrossProducts {
                 level_links = vec![0; n1 + 1];
             }
         } else {
-            // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
-            let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
-            let mut z1 = vec![0.0; q1];
-            let mut current_level = usize::MAX;
-            let mut level_start_link = 0;
-            for at in 0..n {
-                let r = row_of(at);
-                if let Some(k) = primary {
+            // Two passes side by side, each over the rows in the same order
+            // as one pass would take them (so the sums are the same to the
+            // bit): the dense part, and the level blocks with their links.
+            let dense_pass = |dense: &mut [f64], dense_groups: &mut [Vec<f64>]| {
+                // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
+                let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
+                for at in 0..n {
+                    let r = row_of(at);
+                    w.clear();
+                    for (s, &kt) in secondary.iter().enumerate() {
+                        let t = &terms[kt];
+                        let qs = t.q();
+                        let offset = secondary_offset[s] + t.level[r] as usize * qs;
+                        for c in 0..qs {
+                            w.push((offset + c, t.z[c][r]));
+                        }
+                    }
+                    push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+                    let target = match groups {
+                        Some((g, _)) => &mut dense_groups[g[r] as usize],
+                        None => &mut *dense,
+                    };
+                    add_row_outer(target, m, &w);
+                }
+            };
+            let level_pass = |g: &mut [f64],
+                              zxy: &mut [f64],
+                              level_links: &mut Vec<usize>,
+                              links: &mut Vec<Link>,
+                              link_values: &mut Vec<f64>| {
+                let Some(k) = primary else { return };
+                let mut z1 = vec![0.0; q1];
+                let mut current_level = usize::MAX;
+                let mut level_start_link = 0;
+                for at in 0..n {
+                    let r = row_of(at);
                     let level = terms[k].level[r] as usize;
                     if level != current_level {
                         if current_level != usize::MAX {
@@ -290,19 +318,13 @@ impl CrossProducts {
                         current_level = level;
                         level_start_link = links.len();
                     }
-                    add_level_row(problem, k, r, y_shift, &mut g, &mut zxy, &mut z1);
-                }
-                w.clear();
-                for (s, &kt) in secondary.iter().enumerate() {
-                    let t = &terms[kt];
-                    let qs = t.q();
-                    let offset = secondary_offset[s] + t.level[r] as usize * qs;
-                    for c in 0..qs {
-                        w.push((offset + c, t.z[c][r]));
-                    }
-                    if primary.is_some() {
+                    add_level_row(problem, k, r, y_shift, g, zxy, &mut z1);
+                    for (s, &kt) in secondary.iter().enumerate() {
+                        let t = &terms[kt];
+                        let qs = t.q();
+                        let offset = secondary_offset[s] + t.level[r] as usize * qs;
                         // Coupling block Z₁ᵢᵀ Z_s,j for this row.
-                        let start = link_start(&mut links, &mut link_values, level_start_link, s, offset, q1 * qs);
+                        let start = link_start(links, link_values, level_start_link, s, offset, q1 * qs);
                         for a in 0..q1 {
                             for c in 0..qs {
                                 link_values[start + a * qs + c] += z1[a] * t.z[c][r];
@@ -310,14 +332,6 @@ impl CrossProducts {
                         }
                     }
                 }
-                push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
-                let target = match groups {
-                    Some((g, _)) => &mut dense_groups[g[r] as usize],
-                    None => &mut dense,
-                };
-                add_row_outer(target, m, &w);
-            }
-            if primary.is_some() {
                 if current_level != usize::MAX {
                     links[level_start_link..].sort_by_key(|l| l.offset);
                     level_links.push(level_start_link);
@@ -326,7 +340,11 @@ impl CrossProducts {
                     level_links.push(links.len());
                 }
                 level_links.push(links.len());
-            }
+            };
+            rayon::join(
+                || dense_pass(&mut dense, &mut dense_groups),
+                || level_pass(&mut g, &mut zxy, &mut level_links, &mut links, &mut link_values),
+            );
         }
         // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
         for d in &mut dense_groups {

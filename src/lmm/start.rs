@@ -54,7 +54,7 @@ pub(super) fn row_scales(problem: &MixedProblem, base: &[f64]) -> Vec<f64> {
 pub(super) fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f64]) -> Option<Vec<f64>> {
     let k1 = cp.primary?;
     let q = cp.q1;
-    let (n, p, m) = (cp.n, cp.p, cp.m);
+    let (p, m) = (cp.p, cp.m);
     let q2 = cp.q2_total;
     // OLS on the (shifted) response from the dense cross-products.
     let xtx = Mat::from_fn(p, p, |i, j| cp.dense[(q2 + i) * m + q2 + j]);
@@ -65,29 +65,25 @@ pub(super) fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f
     let beta: Vec<f64> = (0..p).map(|i| rhs[(i, 0)]).collect();
     let term = &problem.terms[k1];
     let levels = term.n_levels();
-    let mut zte = vec![0.0; levels * q];
-    let mut ete = vec![0.0; levels];
     let mut count = vec![0usize; levels];
-    for r in 0..n {
-        let xb: f64 = problem.x[r * p..(r + 1) * p]
-            .iter()
-            .zip(&beta)
-            .map(|(a, b)| a * b)
-            .sum();
-        let e = problem.y[r] - cp.y_shift - xb;
-        let l = term.level[r] as usize;
-        for c in 0..q {
-            zte[l * q + c] += term.z[c][r] * e;
-        }
-        ete[l] += e * e;
-        count[l] += 1;
+    for &l in term.level.iter() {
+        count[l as usize] += 1;
     }
+    // Zᵢᵀe of the OLS residuals e from the level blocks Zᵢᵀ[X y].
+    let c1 = p + 1;
+    let zte: Vec<f64> = (0..levels * q)
+        .map(|lc| {
+            let zi = &cp.zxy[lc * c1..(lc + 1) * c1];
+            zi[p] - (0..p).map(|j| zi[j] * beta[j]).sum::<f64>()
+        })
+        .collect();
     let mut sum_bb = vec![0.0; q * q];
     let mut sum_ginv = vec![0.0; q * q];
-    let (mut rss, mut df, mut used) = (0.0, 0usize, 0usize);
+    let (mut fitted, mut df, mut used) = (0.0f64, 0usize, 0usize);
     let mut ginv = vec![0.0; q * q];
     let mut work = vec![0.0; q * q];
     let mut b = vec![0.0; q];
+    let mut usable = vec![false; levels];
     for l in 0..levels {
         if count[l] <= q || !spd_inverse(&cp.g[l * q * q..(l + 1) * q * q], q, &mut ginv, &mut work) {
             continue;
@@ -95,7 +91,10 @@ pub(super) fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f
         for a in 0..q {
             b[a] = (0..q).map(|c| ginv[a * q + c] * zte[l * q + c]).sum();
         }
-        rss += ete[l] - (0..q).map(|a| b[a] * zte[l * q + a]).sum::<f64>();
+        // b̂ᵀZᵢᵀe: the part of the level's residual sum of squares that its
+        // own coefficients take.
+        fitted += (0..q).map(|a| b[a] * zte[l * q + a]).sum::<f64>();
+        usable[l] = true;
         df += count[l] - q;
         used += 1;
         for a in 0..q {
@@ -105,6 +104,15 @@ pub(super) fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f
             }
         }
     }
+    // The residual sum of squares within the levels used: with every level
+    // used, the OLS residual sum of squares (yᵀy − β̂ᵀXᵀy, from the dense
+    // part) less what the levels' coefficients take; otherwise summed over
+    // the rows of the levels used.
+    let rss = if used == levels {
+        ols_rss(cp, &beta)
+    } else {
+        rss_over_rows(problem, cp, &beta, &usable)
+    } - fitted;
     if used < 10 || df == 0 {
         return None;
     }
@@ -147,6 +155,31 @@ pub(super) fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f
     Some(start)
 }
 
+/// The OLS residual sum of squares `yᵀy − β̂ᵀXᵀy` from the dense part.
+fn ols_rss(cp: &CrossProducts, beta: &[f64]) -> f64 {
+    let (m, q2) = (cp.m, cp.q2_total);
+    let xy: f64 = beta
+        .iter()
+        .enumerate()
+        .map(|(j, b)| b * cp.dense[(q2 + j) * m + m - 1])
+        .sum();
+    cp.dense[(m - 1) * m + m - 1] - xy
+}
+
+/// The sum of squared OLS residuals over the rows of the primary levels
+/// marked `usable`.
+fn rss_over_rows(problem: &MixedProblem, cp: &CrossProducts, beta: &[f64], usable: &[bool]) -> f64 {
+    let (p, term) = (cp.p, &problem.terms[cp.primary.expect("a primary term")]);
+    (0..cp.n)
+        .filter(|&r| usable[term.level[r] as usize])
+        .map(|r| {
+            let xb: f64 = problem.x[r * p..(r + 1) * p].iter().zip(beta).map(|(a, b)| a * b).sum();
+            let e = problem.y[r] - cp.y_shift - xb;
+            e * e
+        })
+        .sum()
+}
+
 /// The inverse of a small symmetric positive definite q×q matrix (row-major)
 /// into `out`, through its Cholesky factor in `work`; `false` when it is not
 /// positive definite. No allocation: the moment start calls it per level.
@@ -178,6 +211,51 @@ pub(super) fn spd_inverse(g: &[f64], q: usize, out: &mut [f64], work: &mut [f64]
 #[cfg(test)]
 mod small_inverse_tests {
     use super::spd_inverse;
+
+    // The OLS residual sum of squares from the cross-products equals the
+    // sum over the rows (closed-form identity: eᵀe = yᵀy − β̂ᵀXᵀy at the
+    // normal equations' solution), with a school term beside the primary.
+    #[test]
+    fn residual_sum_of_squares_from_cross_products_is_the_row_sum() {
+        use super::super::{MixedProblem, RandomTermData};
+        let mut rng = crate::simulate::Rng::new(8);
+        let n = 600;
+        let age: Vec<f64> = (0..n).map(|r| (r % 3) as f64 + rng.uniform()).collect();
+        let problem = MixedProblem {
+            y: age.iter().map(|a| 40.0 + 2.0 * a + 3.0 * rng.normal()).collect(),
+            x_names: vec!["1".into(), "age".into()],
+            x: age.iter().flat_map(|&a| [1.0, a]).collect(),
+            terms: vec![
+                RandomTermData::numbered(
+                    "id",
+                    n / 3,
+                    (0..n).map(|r| (r / 3) as u32).collect(),
+                    &["intercept", "age"],
+                    vec![vec![1.0; n], age.clone()],
+                ),
+                RandomTermData::numbered(
+                    "school",
+                    5,
+                    (0..n).map(|r| (r / 3 % 5) as u32).collect(),
+                    &["intercept"],
+                    vec![vec![1.0; n]],
+                ),
+            ],
+        };
+        let cp = super::CrossProducts::new(&problem);
+        let (m, q2, p) = (cp.m, cp.q2_total, cp.p);
+        let xtx = faer::Mat::from_fn(p, p, |i, j| cp.dense[(q2 + i) * m + q2 + j]);
+        let mut rhs = faer::Mat::from_fn(p, 1, |i, _| cp.dense[(q2 + i) * m + m - 1]);
+        use faer::linalg::solvers::SolveCore;
+        xtx.llt(faer::Side::Lower)
+            .unwrap()
+            .solve_in_place_with_conj(faer::Conj::No, rhs.as_mut());
+        let beta: Vec<f64> = (0..p).map(|i| rhs[(i, 0)]).collect();
+        let closed = super::ols_rss(&cp, &beta);
+        let rows = super::rss_over_rows(&problem, &cp, &beta, &vec![true; n / 3]);
+        assert!((closed - rows).abs() < 1e-9 * rows, "{closed} vs {rows}");
+        assert!(rows > 0.0);
+    }
 
     // Closed-form identity: G · G⁻¹ = I, and a matrix that is not positive
     // definite is refused.
