@@ -246,8 +246,13 @@ impl CrossProducts {
         let mut g = vec![0.0; n1 * q1 * q1];
         let mut zxy = vec![0.0; n1 * q1 * (p + 1)];
         let mut level_links = Vec::with_capacity(n1 + 1);
-        let mut links: Vec<Link> = Vec::new();
-        let mut link_values: Vec<f64> = Vec::new();
+        // Room for one link per level and secondary term (participants
+        // nested in schools need no more), so the lists are not copied as
+        // they grow.
+        let nested_links = if primary.is_some() { n1 * secondary.len() } else { 0 };
+        let mut links: Vec<Link> = Vec::with_capacity(nested_links);
+        let nested_values: usize = secondary.iter().map(|&kt| q1 * terms[kt].q()).sum::<usize>() * n1;
+        let mut link_values: Vec<f64> = Vec::with_capacity(if primary.is_some() { nested_values } else { 0 });
 
         let row_of = |at: usize| order.as_ref().map_or(at, |o| o[at]);
         if secondary.is_empty() && groups.is_none() {
