@@ -1,7 +1,8 @@
-//! The fused pass ([`super::twopass`]) with [`LANES`] primary levels side by
+//! The fused pass ([`super::twopass`]) and the value kernel
+//! ([`super::primary::primary_range`]) with [`LANES`] primary levels side by
 //! side, for levels that each meet the same few secondary columns (a
-//! participant nested in one school; notes/criterion.md, "The fused pass,
-//! levels side by side").
+//! participant nested in one school; notes/criterion.md, "Levels nested in
+//! clusters").
 //!
 //! Every level then has S secondary columns and the C = p + 1 columns of
 //! `[X y]`, both compile-time sizes, so each per-level quantity is an array
