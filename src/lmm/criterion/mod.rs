@@ -184,9 +184,12 @@ pub fn evaluate(cp: &CrossProducts, theta: &[f64], per_level: bool) -> Result<Fa
     let mut e = scaled_dense(cp, &t);
 
     let mut logdet_z = 0.0;
-    if let (Some(pools), false) = (&cp.pools, per_level) {
+    // At θ = 0 (the rank check) every level's block is the identity and its
+    // columns are zero: the levels add nothing, and are not visited.
+    let levels_add = theta.iter().any(|&v| v != 0.0);
+    if let (Some(pools), false, true) = (&cp.pools, per_level, levels_add) {
         logdet_z = pooled::subtract(pools, t[cp.primary.unwrap_or(0)][0], &mut e, m);
-    } else if let Some(k1) = cp.primary {
+    } else if let (Some(k1), true) = (cp.primary, levels_add) {
         logdet_z = match cp.q1 {
             1 => primary_fixed::<1>(cp, &t[k1], &t, &mut e),
             2 => primary_fixed::<2>(cp, &t[k1], &t, &mut e),

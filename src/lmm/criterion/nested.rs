@@ -536,6 +536,23 @@ mod tests {
         }
     }
 
+    // At θ = 0 the levels add nothing (every block the identity, every
+    // column zero), which is why `evaluate` does not visit them there: the
+    // kernels leave the dense part as it is and add a log-determinant of 0.
+    #[test]
+    fn levels_add_nothing_at_zero() {
+        for school_q in 1..=2 {
+            let problem = nested_problem(2, 3, school_q, false);
+            let cp = CrossProducts::new(&problem);
+            let t = factors(&cp, &vec![0.0; problem.n_theta()]);
+            let mut e = super::super::scaled_dense(&cp, &t);
+            let before = e.clone();
+            let logdet = super::super::primary::primary_fixed::<2>(&cp, &t[0], &t, &mut e);
+            assert_eq!(logdet, 0.0);
+            assert!(e.iter().zip(&before).all(|(a, b)| a == b));
+        }
+    }
+
     // The kernels compiled for wider vector registers and for the baseline
     // give the same numbers to the bit (no fused multiply–add is enabled,
     // and every sum keeps its order).
