@@ -254,7 +254,6 @@ impl CrossProducts {
         let nested_values: usize = secondary.iter().map(|&kt| q1 * terms[kt].q()).sum::<usize>() * n1;
         let mut link_values: Vec<f64> = Vec::with_capacity(if primary.is_some() { nested_values } else { 0 });
 
-        let row_of = |at: usize| order.as_ref().map_or(at, |o| o[at]);
         if secondary.is_empty() && groups.is_none() {
             gather_alone(
                 problem,
@@ -269,86 +268,15 @@ impl CrossProducts {
                 level_links = vec![0; n1 + 1];
             }
         } else {
-            // Two passes side by side, each over the rows in the same order
-            // as one pass would take them (so the sums are the same to the
-            // bit): the dense part, and the level blocks with their links.
-            let dense_pass = |dense: &mut [f64], dense_groups: &mut [Vec<f64>]| {
-                // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
-                let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
-                for at in 0..n {
-                    let r = row_of(at);
-                    w.clear();
-                    for (s, &kt) in secondary.iter().enumerate() {
-                        let t = &terms[kt];
-                        let qs = t.q();
-                        let offset = secondary_offset[s] + t.level[r] as usize * qs;
-                        for c in 0..qs {
-                            w.push((offset + c, t.z[c][r]));
-                        }
-                    }
-                    push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
-                    let target = match groups {
-                        Some((g, _)) => &mut dense_groups[g[r] as usize],
-                        None => &mut *dense,
-                    };
-                    add_row_outer(target, m, &w);
-                }
-            };
-            let level_pass = |g: &mut [f64],
-                              zxy: &mut [f64],
-                              level_links: &mut Vec<usize>,
-                              links: &mut Vec<Link>,
-                              link_values: &mut Vec<f64>| {
-                let Some(k) = primary else { return };
-                let mut z1 = vec![0.0; q1];
-                let mut current_level = usize::MAX;
-                let mut level_start_link = 0;
-                for at in 0..n {
-                    let r = row_of(at);
-                    let level = terms[k].level[r] as usize;
-                    if level != current_level {
-                        if current_level != usize::MAX {
-                            links[level_start_link..].sort_by_key(|l| l.offset);
-                            level_links.push(level_start_link);
-                        }
-                        // Levels with no rows get an empty range.
-                        let first_new = if current_level == usize::MAX {
-                            0
-                        } else {
-                            current_level + 1
-                        };
-                        for _ in first_new..level {
-                            level_links.push(links.len());
-                        }
-                        current_level = level;
-                        level_start_link = links.len();
-                    }
-                    add_level_row(problem, k, r, y_shift, g, zxy, &mut z1);
-                    for (s, &kt) in secondary.iter().enumerate() {
-                        let t = &terms[kt];
-                        let qs = t.q();
-                        let offset = secondary_offset[s] + t.level[r] as usize * qs;
-                        // Coupling block Z₁ᵢᵀ Z_s,j for this row.
-                        let start = link_start(links, link_values, level_start_link, s, offset, q1 * qs);
-                        for a in 0..q1 {
-                            for c in 0..qs {
-                                link_values[start + a * qs + c] += z1[a] * t.z[c][r];
-                            }
-                        }
-                    }
-                }
-                if current_level != usize::MAX {
-                    links[level_start_link..].sort_by_key(|l| l.offset);
-                    level_links.push(level_start_link);
-                }
-                while level_links.len() < n1 {
-                    level_links.push(links.len());
-                }
-                level_links.push(links.len());
-            };
-            rayon::join(
-                || dense_pass(&mut dense, &mut dense_groups),
-                || level_pass(&mut g, &mut zxy, &mut level_links, &mut links, &mut link_values),
+            gather_linked(
+                problem,
+                (primary, &secondary, &secondary_offset, q2_total),
+                order.as_deref(),
+                y_shift,
+                groups.map(|(g, _)| g),
+                (&mut dense, &mut dense_groups),
+                (&mut g, &mut zxy),
+                (&mut level_links, &mut links, &mut link_values),
             );
         }
         // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
@@ -499,6 +427,113 @@ fn gather_alone(
         }
     };
     rayon::join(|| dense_pass(dense), || level_pass(g, zxy));
+}
+
+/// The cross-products with terms beside the primary one (`primary`,
+/// `secondary` with their dense offsets, Q₂) or row groups, in two passes side by side, each over the rows in the order `order`
+/// (else file order) that one pass would take, so the sums are the same
+/// to the bit: the dense part (`dense`, or per row group `dense_groups`
+/// when `groups` gives each row's group), and the level blocks with their
+/// links.
+#[allow(clippy::too_many_arguments, clippy::type_complexity)]
+fn gather_linked(
+    problem: &MixedProblem,
+    (primary, secondary, secondary_offset, q2_total): (Option<usize>, &[usize], &[usize], usize),
+    order: Option<&[usize]>,
+    y_shift: f64,
+    groups: Option<&[u32]>,
+    (dense, dense_groups): (&mut [f64], &mut [Vec<f64>]),
+    (g, zxy): (&mut [f64], &mut [f64]),
+    (level_links, links, link_values): (&mut Vec<usize>, &mut Vec<Link>, &mut Vec<f64>),
+) {
+    let (n, p, terms) = (problem.n(), problem.p(), &problem.terms);
+    let m = q2_total + p + 1;
+    let (q1, n1) = match primary {
+        Some(k) => (terms[k].q(), terms[k].n_levels()),
+        None => (0, 0),
+    };
+    let row_of = |at: usize| order.map_or(at, |o| o[at]);
+    // Two passes side by side, each over the rows in the same order
+    // as one pass would take them (so the sums are the same to the
+    // bit): the dense part, and the level blocks with their links.
+    let dense_pass = |dense: &mut [f64], dense_groups: &mut [Vec<f64>]| {
+        // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
+        let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
+        for at in 0..n {
+            let r = row_of(at);
+            w.clear();
+            for (s, &kt) in secondary.iter().enumerate() {
+                let t = &terms[kt];
+                let qs = t.q();
+                let offset = secondary_offset[s] + t.level[r] as usize * qs;
+                for c in 0..qs {
+                    w.push((offset + c, t.z[c][r]));
+                }
+            }
+            push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+            let target = match groups {
+                Some(g) => &mut dense_groups[g[r] as usize],
+                None => &mut *dense,
+            };
+            add_row_outer(target, m, &w);
+        }
+    };
+    let level_pass = |g: &mut [f64],
+                      zxy: &mut [f64],
+                      level_links: &mut Vec<usize>,
+                      links: &mut Vec<Link>,
+                      link_values: &mut Vec<f64>| {
+        let Some(k) = primary else { return };
+        let mut z1 = vec![0.0; q1];
+        let mut current_level = usize::MAX;
+        let mut level_start_link = 0;
+        for at in 0..n {
+            let r = row_of(at);
+            let level = terms[k].level[r] as usize;
+            if level != current_level {
+                if current_level != usize::MAX {
+                    links[level_start_link..].sort_by_key(|l| l.offset);
+                    level_links.push(level_start_link);
+                }
+                // Levels with no rows get an empty range.
+                let first_new = if current_level == usize::MAX {
+                    0
+                } else {
+                    current_level + 1
+                };
+                for _ in first_new..level {
+                    level_links.push(links.len());
+                }
+                current_level = level;
+                level_start_link = links.len();
+            }
+            add_level_row(problem, k, r, y_shift, g, zxy, &mut z1);
+            for (s, &kt) in secondary.iter().enumerate() {
+                let t = &terms[kt];
+                let qs = t.q();
+                let offset = secondary_offset[s] + t.level[r] as usize * qs;
+                // Coupling block Z₁ᵢᵀ Z_s,j for this row.
+                let start = link_start(links, link_values, level_start_link, s, offset, q1 * qs);
+                for a in 0..q1 {
+                    for c in 0..qs {
+                        link_values[start + a * qs + c] += z1[a] * t.z[c][r];
+                    }
+                }
+            }
+        }
+        if current_level != usize::MAX {
+            links[level_start_link..].sort_by_key(|l| l.offset);
+            level_links.push(level_start_link);
+        }
+        while level_links.len() < n1 {
+            level_links.push(links.len());
+        }
+        level_links.push(links.len());
+    };
+    rayon::join(
+        || dense_pass(dense, dense_groups),
+        || level_pass(g, zxy, level_links, links, link_values),
+    );
 }
 
 /// Row `r`'s share of its level's blocks `Gᵢ = Zᵢᵀ Zᵢ` and `Zᵢᵀ[X y]` of

@@ -17,7 +17,7 @@
 
 use super::super::crossprod::CrossProducts;
 use super::gradient::LevelSolver;
-use super::primary::{LANES, lane_backward, lane_block, lane_forward, vectorised};
+use super::primary::{LANES, lane_backward, lane_block, lane_forward, lane_load, vectorised};
 use super::twopass::First;
 
 /// Secondary columns per level this kernel takes (a school intercept, or a
@@ -26,6 +26,33 @@ pub const MAX_SECONDARY: usize = 2;
 
 /// Columns of `[X y]` this kernel takes.
 pub const MAX_COLUMNS: usize = 8;
+
+/// `$kernel::<Q, S, C>(args)` run through [`vectorised`] for the run-time
+/// width S (1 or 2) and C = p + 1 columns (1 to 8) as compile-time sizes;
+/// returns `None` from the calling function outside those sizes.
+macro_rules! sized {
+    ($width:expr, $c:expr, $kernel:ident::<$q:ident>($($arg:expr),*)) => {
+        match ($width, $c) {
+            (1, 1) => vectorised(|| $kernel::<$q, 1, 1>($($arg),*)),
+            (1, 2) => vectorised(|| $kernel::<$q, 1, 2>($($arg),*)),
+            (1, 3) => vectorised(|| $kernel::<$q, 1, 3>($($arg),*)),
+            (1, 4) => vectorised(|| $kernel::<$q, 1, 4>($($arg),*)),
+            (1, 5) => vectorised(|| $kernel::<$q, 1, 5>($($arg),*)),
+            (1, 6) => vectorised(|| $kernel::<$q, 1, 6>($($arg),*)),
+            (1, 7) => vectorised(|| $kernel::<$q, 1, 7>($($arg),*)),
+            (1, 8) => vectorised(|| $kernel::<$q, 1, 8>($($arg),*)),
+            (2, 1) => vectorised(|| $kernel::<$q, 2, 1>($($arg),*)),
+            (2, 2) => vectorised(|| $kernel::<$q, 2, 2>($($arg),*)),
+            (2, 3) => vectorised(|| $kernel::<$q, 2, 3>($($arg),*)),
+            (2, 4) => vectorised(|| $kernel::<$q, 2, 4>($($arg),*)),
+            (2, 5) => vectorised(|| $kernel::<$q, 2, 5>($($arg),*)),
+            (2, 6) => vectorised(|| $kernel::<$q, 2, 6>($($arg),*)),
+            (2, 7) => vectorised(|| $kernel::<$q, 2, 7>($($arg),*)),
+            (2, 8) => vectorised(|| $kernel::<$q, 2, 8>($($arg),*)),
+            _ => return None,
+        }
+    };
+}
 
 /// The secondary columns per level when [`first`] serves `cp`: a primary
 /// term of 1 to 4 coefficients, every level meeting the same 1 to
@@ -48,26 +75,7 @@ pub(super) fn first<const Q: usize>(
     width: usize,
     range: std::ops::Range<usize>,
 ) -> Option<First> {
-    macro_rules! by_columns {
-        ($s:literal) => {
-            match cp.p + 1 {
-                1 => vectorised(|| lanes::<Q, $s, 1>(cp, solver, sec, range)),
-                2 => vectorised(|| lanes::<Q, $s, 2>(cp, solver, sec, range)),
-                3 => vectorised(|| lanes::<Q, $s, 3>(cp, solver, sec, range)),
-                4 => vectorised(|| lanes::<Q, $s, 4>(cp, solver, sec, range)),
-                5 => vectorised(|| lanes::<Q, $s, 5>(cp, solver, sec, range)),
-                6 => vectorised(|| lanes::<Q, $s, 6>(cp, solver, sec, range)),
-                7 => vectorised(|| lanes::<Q, $s, 7>(cp, solver, sec, range)),
-                8 => vectorised(|| lanes::<Q, $s, 8>(cp, solver, sec, range)),
-                _ => return None,
-            }
-        };
-    }
-    Some(match width {
-        1 => by_columns!(1),
-        2 => by_columns!(2),
-        _ => return None,
-    })
+    Some(sized!(width, cp.p + 1, lanes::<Q>(cp, solver, sec, range)))
 }
 
 /// Packed position of the pair (r, c), r ≥ c, of an m×m lower triangle.
@@ -265,26 +273,7 @@ pub(super) fn value<const Q: usize>(
     e: &mut [f64],
     range: std::ops::Range<usize>,
 ) -> Option<(f64, Vec<f64>)> {
-    macro_rules! by_columns {
-        ($s:literal) => {
-            match cp.p + 1 {
-                1 => vectorised(|| value_lanes::<Q, $s, 1>(cp, tq, t, e, range)),
-                2 => vectorised(|| value_lanes::<Q, $s, 2>(cp, tq, t, e, range)),
-                3 => vectorised(|| value_lanes::<Q, $s, 3>(cp, tq, t, e, range)),
-                4 => vectorised(|| value_lanes::<Q, $s, 4>(cp, tq, t, e, range)),
-                5 => vectorised(|| value_lanes::<Q, $s, 5>(cp, tq, t, e, range)),
-                6 => vectorised(|| value_lanes::<Q, $s, 6>(cp, tq, t, e, range)),
-                7 => vectorised(|| value_lanes::<Q, $s, 7>(cp, tq, t, e, range)),
-                8 => vectorised(|| value_lanes::<Q, $s, 8>(cp, tq, t, e, range)),
-                _ => return None,
-            }
-        };
-    }
-    Some(match width {
-        1 => by_columns!(1),
-        2 => by_columns!(2),
-        _ => return None,
-    })
+    Some(sized!(width, cp.p + 1, value_lanes::<Q>(cp, tq, t, e, range)))
 }
 
 /// `L⁻¹Tᵀc` for the column `cz` of the lanes' `Cᵢ`.
@@ -386,22 +375,12 @@ fn load<'t, const Q: usize, const S: usize, const C: usize>(
     first: usize,
     lanes_here: usize,
 ) -> ([[V; Q]; Q], [[V; Q]; S], [[V; Q]; C], [[usize; S]; LANES]) {
-    let mut g = [[[0.0f64; LANES]; Q]; Q];
+    let (g, cz) = lane_load::<Q, C, LANES>(cp, first, first + lanes_here);
+    let cx: [[V; Q]; C] = std::array::from_fn(|c| std::array::from_fn(|r| cz[r][c]));
     let mut cs = [[[0.0f64; LANES]; Q]; S];
-    let mut cx = [[[0.0f64; LANES]; Q]; C];
     let mut at = [[0usize; S]; LANES];
     for l in 0..lanes_here {
         let i = first + l;
-        let gi = &cp.g[i * Q * Q..(i + 1) * Q * Q];
-        let zi = &cp.zxy[i * Q * C..(i + 1) * Q * C];
-        for r in 0..Q {
-            for c in 0..Q {
-                g[r][c][l] = gi[r * Q + c];
-            }
-            for c in 0..C {
-                cx[c][r][l] = zi[r * C + c];
-            }
-        }
         let (lo, hi) = cp.link_range(i);
         let mut j = 0;
         for link in &cp.links[lo..hi] {
