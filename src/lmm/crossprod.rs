@@ -374,11 +374,11 @@ impl Layout {
 }
 
 /// Add one row's primary cross-products: Z₁ᵢᵀZ₁ᵢ into `gi` and Z₁ᵢᵀ[X y]
-/// into `zi` (q1 rows of p + 1).
-#[inline]
+/// into `zi` (q1 = `z1.len()` rows of p + 1 = `xr.len() + 1`).
+#[inline(always)]
 fn add_primary_row(gi: &mut [f64], zi: &mut [f64], z1: &[f64], xr: &[f64], y: f64) {
-    let q1 = z1.len();
-    let p = xr.len();
+    let (q1, p) = (z1.len(), xr.len());
+    let (gi, zi) = (&mut gi[..q1 * q1], &mut zi[..q1 * (p + 1)]);
     for a in 0..q1 {
         for b in 0..q1 {
             gi[a * q1 + b] += z1[a] * z1[b];
@@ -421,10 +421,16 @@ fn gather_alone(
     };
     let level_pass = |g: &mut [f64], zxy: &mut [f64]| {
         let Some(k) = primary else { return };
-        let mut z1 = vec![0.0; problem.terms[k].q()];
-        for at in 0..n {
-            add_level_row(problem, k, row_of(at), y_shift, g, zxy, &mut z1);
-        }
+        let mut none = (Vec::new(), Vec::new(), Vec::new());
+        level_pass(
+            problem,
+            k,
+            (&[], &[]),
+            order,
+            y_shift,
+            (g, zxy),
+            (&mut none.0, &mut none.1, &mut none.2),
+        );
     };
     rayon::join(|| dense_pass(dense), || level_pass(g, zxy));
 }
@@ -448,10 +454,6 @@ fn gather_linked(
 ) {
     let (n, p, terms) = (problem.n(), problem.p(), &problem.terms);
     let m = q2_total + p + 1;
-    let (q1, n1) = match primary {
-        Some(k) => (terms[k].q(), terms[k].n_levels()),
-        None => (0, 0),
-    };
     let row_of = |at: usize| order.map_or(at, |o| o[at]);
     // Two passes side by side, each over the rows in the same order
     // as one pass would take them (so the sums are the same to the
@@ -484,51 +486,15 @@ fn gather_linked(
                       links: &mut Vec<Link>,
                       link_values: &mut Vec<f64>| {
         let Some(k) = primary else { return };
-        let mut z1 = vec![0.0; q1];
-        let mut current_level = usize::MAX;
-        let mut level_start_link = 0;
-        for at in 0..n {
-            let r = row_of(at);
-            let level = terms[k].level[r] as usize;
-            if level != current_level {
-                if current_level != usize::MAX {
-                    links[level_start_link..].sort_by_key(|l| l.offset);
-                    level_links.push(level_start_link);
-                }
-                // Levels with no rows get an empty range.
-                let first_new = if current_level == usize::MAX {
-                    0
-                } else {
-                    current_level + 1
-                };
-                for _ in first_new..level {
-                    level_links.push(links.len());
-                }
-                current_level = level;
-                level_start_link = links.len();
-            }
-            add_level_row(problem, k, r, y_shift, g, zxy, &mut z1);
-            for (s, &kt) in secondary.iter().enumerate() {
-                let t = &terms[kt];
-                let qs = t.q();
-                let offset = secondary_offset[s] + t.level[r] as usize * qs;
-                // Coupling block Z₁ᵢᵀ Z_s,j for this row.
-                let start = link_start(links, link_values, level_start_link, s, offset, q1 * qs);
-                for a in 0..q1 {
-                    for c in 0..qs {
-                        link_values[start + a * qs + c] += z1[a] * t.z[c][r];
-                    }
-                }
-            }
-        }
-        if current_level != usize::MAX {
-            links[level_start_link..].sort_by_key(|l| l.offset);
-            level_links.push(level_start_link);
-        }
-        while level_links.len() < n1 {
-            level_links.push(links.len());
-        }
-        level_links.push(links.len());
+        level_pass(
+            problem,
+            k,
+            (secondary, secondary_offset),
+            order,
+            y_shift,
+            (g, zxy),
+            (level_links, links, link_values),
+        );
     };
     rayon::join(
         || dense_pass(dense, dense_groups),
@@ -536,27 +502,107 @@ fn gather_linked(
     );
 }
 
-/// Row `r`'s share of its level's blocks `Gᵢ = Zᵢᵀ Zᵢ` and `Zᵢᵀ[X y]` of
-/// the primary term `k`; `z1` is scratch of the term's width.
-#[inline]
-fn add_level_row(
+/// The level blocks of the primary term `k` (`Gᵢ = ZᵢᵀZᵢ` into `g`,
+/// `Zᵢᵀ[X y]` into `zxy`) and their links to the `secondary` terms, over
+/// the rows in the order `order` (else file order), in which each level's
+/// rows are consecutive. With the term's width and the p + 1 columns of
+/// [X y] small, they are compile-time sizes ([`level_rows`]).
+#[allow(clippy::type_complexity)]
+fn level_pass(
     problem: &MixedProblem,
     k: usize,
-    r: usize,
+    secondary: (&[usize], &[usize]),
+    order: Option<&[usize]>,
     y_shift: f64,
-    g: &mut [f64],
-    zxy: &mut [f64],
-    z1: &mut [f64],
+    blocks: (&mut [f64], &mut [f64]),
+    lists: (&mut Vec<usize>, &mut Vec<Link>, &mut Vec<f64>),
 ) {
-    let (p, term) = (problem.p(), &problem.terms[k]);
-    let q1 = z1.len();
-    let level = term.level[r] as usize;
-    for (c, zc) in z1.iter_mut().enumerate() {
-        *zc = term.z[c][r];
+    macro_rules! columns {
+        ($q:literal) => {
+            match problem.p() + 1 {
+                1 => level_rows::<$q, 1>(problem, k, secondary, order, y_shift, blocks, lists),
+                2 => level_rows::<$q, 2>(problem, k, secondary, order, y_shift, blocks, lists),
+                3 => level_rows::<$q, 3>(problem, k, secondary, order, y_shift, blocks, lists),
+                4 => level_rows::<$q, 4>(problem, k, secondary, order, y_shift, blocks, lists),
+                5 => level_rows::<$q, 5>(problem, k, secondary, order, y_shift, blocks, lists),
+                6 => level_rows::<$q, 6>(problem, k, secondary, order, y_shift, blocks, lists),
+                7 => level_rows::<$q, 7>(problem, k, secondary, order, y_shift, blocks, lists),
+                8 => level_rows::<$q, 8>(problem, k, secondary, order, y_shift, blocks, lists),
+                _ => level_rows::<$q, 0>(problem, k, secondary, order, y_shift, blocks, lists),
+            }
+        };
     }
-    let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
-    let zi = &mut zxy[level * q1 * (p + 1)..(level + 1) * q1 * (p + 1)];
-    add_primary_row(gi, zi, z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+    match problem.terms[k].q() {
+        1 => columns!(1),
+        2 => columns!(2),
+        3 => columns!(3),
+        4 => columns!(4),
+        _ => level_rows::<0, 0>(problem, k, secondary, order, y_shift, blocks, lists),
+    }
+}
+
+/// [`level_pass`] with the term's width `Q` and the columns `C` of [X y]
+/// as compile-time sizes (0: known at run time only). A level's blocks
+/// are taken once for its run of rows, and each row adds to them in the
+/// same order as one row at a time would, so the sums are the same to the
+/// bit.
+#[allow(clippy::type_complexity)]
+fn level_rows<const Q: usize, const C: usize>(
+    problem: &MixedProblem,
+    k: usize,
+    (secondary, secondary_offset): (&[usize], &[usize]),
+    order: Option<&[usize]>,
+    y_shift: f64,
+    (g, zxy): (&mut [f64], &mut [f64]),
+    (level_links, links, link_values): (&mut Vec<usize>, &mut Vec<Link>, &mut Vec<f64>),
+) {
+    let (terms, term) = (&problem.terms, &problem.terms[k]);
+    let q1 = if Q == 0 { term.q() } else { Q };
+    let c1 = if C == 0 { problem.p() + 1 } else { C };
+    let (n, n1, p) = (problem.n(), term.n_levels(), c1 - 1);
+    let z = &term.z[..q1];
+    let mut z1_store = vec![0.0; q1];
+    let z1 = &mut z1_store[..q1];
+    let mut at = 0;
+    while at < n {
+        let level = term.level[order.map_or(at, |o| o[at])] as usize;
+        // Levels with no rows get an empty range.
+        while level_links.len() < level {
+            level_links.push(links.len());
+        }
+        let level_start_link = links.len();
+        let gi = &mut g[level * q1 * q1..(level + 1) * q1 * q1];
+        let zi = &mut zxy[level * q1 * c1..(level + 1) * q1 * c1];
+        while at < n {
+            let r = order.map_or(at, |o| o[at]);
+            if term.level[r] as usize != level {
+                break;
+            }
+            at += 1;
+            for (zc, col) in z1.iter_mut().zip(z) {
+                *zc = col[r];
+            }
+            add_primary_row(gi, zi, z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+            for (s, &kt) in secondary.iter().enumerate() {
+                let t = &terms[kt];
+                let qs = t.q();
+                let offset = secondary_offset[s] + t.level[r] as usize * qs;
+                // Coupling block Z₁ᵢᵀ Z_s,j for this row.
+                let start = link_start(links, link_values, level_start_link, s, offset, q1 * qs);
+                for (a, za) in z1.iter().enumerate() {
+                    for c in 0..qs {
+                        link_values[start + a * qs + c] += za * t.z[c][r];
+                    }
+                }
+            }
+        }
+        links[level_start_link..].sort_by_key(|l| l.offset);
+        level_links.push(level_start_link);
+    }
+    while level_links.len() < n1 {
+        level_links.push(links.len());
+    }
+    level_links.push(links.len());
 }
 
 /// Add the outer product of the sparse row `w` to `target` (m×m), on the
@@ -651,4 +697,192 @@ pub(crate) fn centring(problem: &MixedProblem) -> (Option<usize>, f64) {
         _ => 0.0,
     };
     (intercept, y_shift)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::lmm::RandomTermData;
+    use crate::simulate::Rng;
+
+    /// `n_id` participants with 1 to 3 rows each, in a shuffled row order,
+    /// some in two schools (crossed); `q1` coefficients per participant, p
+    /// fixed columns (the second zero on every other row) and a school
+    /// intercept and slope.
+    fn problem(q1: usize, p: usize, seed: u64) -> MixedProblem {
+        let mut rng = Rng::new(seed);
+        let n_id = 40;
+        let (mut x, mut z1, mut zs) = (Vec::new(), vec![Vec::new(); q1], vec![Vec::new(); 2]);
+        let (mut id, mut school) = (Vec::new(), Vec::new());
+        // Participant 7 has no rows: its level gets an empty range.
+        for i in (0..n_id).filter(|&i| i != 7) {
+            for w in 0..1 + i % 3 {
+                let a = w as f64 + rng.uniform();
+                x.push(1.0);
+                for c in 1..p {
+                    x.push(if c == 1 && w % 2 == 1 { 0.0 } else { rng.normal() });
+                }
+                for (c, col) in z1.iter_mut().enumerate() {
+                    col.push(if c == 0 { 1.0 } else { a.powi(c as i32) });
+                }
+                zs[0].push(1.0);
+                zs[1].push(a);
+                id.push(i as u32);
+                school.push(((i + usize::from(i % 5 == 0 && w == 1)) % 6) as u32);
+            }
+        }
+        let n = id.len();
+        let mut order: Vec<usize> = (0..n).collect();
+        for r in (1..n).rev() {
+            order.swap(r, (rng.uniform() * (r + 1) as f64) as usize % (r + 1));
+        }
+        let pick = |v: &[f64], width: usize| -> Vec<f64> {
+            order
+                .iter()
+                .flat_map(|&r| v[r * width..(r + 1) * width].to_vec())
+                .collect()
+        };
+        let column = |v: &[f64]| pick(v, 1);
+        let levels = |v: &[u32]| -> Vec<u32> { order.iter().map(|&r| v[r]).collect() };
+        MixedProblem {
+            y: (0..n).map(|_| rng.normal()).collect(),
+            x_names: (0..p).map(|c| c.to_string()).collect(),
+            x: pick(&x, p),
+            terms: vec![
+                RandomTermData::numbered(
+                    "id",
+                    n_id,
+                    levels(&id),
+                    &["intercept", "a", "b", "c", "d"][..q1],
+                    z1.iter().map(|c| column(c)).collect(),
+                ),
+                RandomTermData::numbered(
+                    "school",
+                    6,
+                    levels(&school),
+                    &["intercept", "a"],
+                    zs.iter().map(|c| column(c)).collect(),
+                ),
+            ],
+        }
+    }
+
+    type Blocks = (Vec<f64>, Vec<f64>, Vec<usize>, Vec<(usize, usize, usize)>, Vec<f64>);
+
+    /// The level pass through `pass`, on `problem`'s rows by level.
+    fn blocks(problem: &MixedProblem, pass: impl FnOnce(&MixedProblem, &[usize], &mut Blocks)) -> Blocks {
+        let (q1, n1, p) = (problem.terms[0].q(), problem.terms[0].n_levels(), problem.p());
+        let order = rows_by_level(&problem.terms[0].level, n1);
+        let mut out: Blocks = (
+            vec![0.0; n1 * q1 * q1],
+            vec![0.0; n1 * q1 * (p + 1)],
+            Vec::new(),
+            Vec::new(),
+            Vec::new(),
+        );
+        pass(problem, &order, &mut out);
+        out
+    }
+
+    fn run<const Q: usize, const C: usize>(problem: &MixedProblem, order: &[usize], out: &mut Blocks) {
+        let (mut links, mut values) = (Vec::new(), Vec::new());
+        level_rows::<Q, C>(
+            problem,
+            0,
+            (&[1], &[0]),
+            Some(order),
+            0.25,
+            (&mut out.0, &mut out.1),
+            (&mut out.2, &mut links, &mut values),
+        );
+        out.3 = links
+            .iter()
+            .map(|l: &Link| (l.secondary(), l.offset(), l.start()))
+            .collect();
+        out.4 = values;
+    }
+
+    // The compile-time sizes give the same sums, to the bit, as the sizes
+    // known at run time, at every width 1–5 of the term and 2–9 columns of
+    // [X y] (beyond the sized ones at 5 and 9).
+    #[test]
+    fn sized_level_pass_matches_the_run_time_one() {
+        for q1 in 1..=5 {
+            for p in 1..=8 {
+                let problem = problem(q1, p, (10 * q1 + p) as u64);
+                let sized = blocks(&problem, |pr, o, out| {
+                    let mut lists = (Vec::new(), Vec::new(), Vec::new());
+                    level_pass(
+                        pr,
+                        0,
+                        (&[1], &[0]),
+                        Some(o),
+                        0.25,
+                        (&mut out.0, &mut out.1),
+                        (&mut lists.0, &mut lists.1, &mut lists.2),
+                    );
+                    out.2 = lists.0;
+                    out.3 = lists
+                        .1
+                        .iter()
+                        .map(|l: &Link| (l.secondary(), l.offset(), l.start()))
+                        .collect();
+                    out.4 = lists.2;
+                });
+                let general = blocks(&problem, run::<0, 0>);
+                assert_eq!(sized, general, "q1 {q1}, p {p}");
+            }
+        }
+    }
+
+    // Closed-form identity: each level's blocks are the sums over its rows,
+    // Gᵢ = Σ zzᵀ, Zᵢᵀ[X y] = Σ z[x, y − shift] and the coupling with
+    // school j = Σ z z_sᵀ over the rows in school j, summed here row by row
+    // in file order; the levels' link ranges cover their schools in order.
+    #[test]
+    fn level_blocks_are_the_row_sums() {
+        let problem = problem(2, 3, 5);
+        let got = blocks(&problem, run::<2, 4>);
+        let (n1, q1, c1) = (40, 2, 4);
+        let t = &problem.terms;
+        let mut g = vec![0.0; n1 * q1 * q1];
+        let mut zxy = vec![0.0; n1 * q1 * c1];
+        let mut coupling = std::collections::BTreeMap::<(usize, usize), [f64; 4]>::new();
+        for r in 0..problem.n() {
+            let i = t[0].level[r] as usize;
+            let j = t[1].level[r] as usize;
+            let z = [t[0].z[0][r], t[0].z[1][r]];
+            let row: Vec<f64> = problem.x[r * 3..r * 3 + 3]
+                .iter()
+                .copied()
+                .chain([problem.y[r] - 0.25])
+                .collect();
+            let block = coupling.entry((i, j)).or_default();
+            for a in 0..2 {
+                for b in 0..2 {
+                    g[i * 4 + a * 2 + b] += z[a] * z[b];
+                    block[a * 2 + b] += z[a] * t[1].z[b][r];
+                }
+                for c in 0..4 {
+                    zxy[i * 8 + a * 4 + c] += z[a] * row[c];
+                }
+            }
+        }
+        let near = |a: &[f64], b: &[f64]| a.iter().zip(b).all(|(u, v)| (u - v).abs() <= 1e-12 * (1.0 + u.abs()));
+        assert!(near(&got.0, &g) && near(&got.1, &zxy));
+        assert_eq!(got.2.len(), n1 + 1);
+        assert_eq!(got.2[7], got.2[8], "a level without rows has no links");
+        for i in 0..n1 {
+            let schools: Vec<usize> = coupling.keys().filter(|k| k.0 == i).map(|k| k.1).collect();
+            let listed = &got.3[got.2[i]..got.2[i + 1]];
+            assert_eq!(listed.iter().map(|l| l.1 / 2).collect::<Vec<_>>(), schools, "level {i}");
+            for (l, j) in listed.iter().zip(&schools) {
+                assert!(near(&got.4[l.2..l.2 + 4], &coupling[&(i, *j)]), "level {i}, school {j}");
+            }
+        }
+        assert!(
+            coupling.keys().filter(|k| k.0 == 5).count() == 2,
+            "participant 5 is in two schools"
+        );
+    }
 }
