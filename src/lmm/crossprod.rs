@@ -254,31 +254,16 @@ impl CrossProducts {
         let nested_values: usize = secondary.iter().map(|&kt| q1 * terms[kt].q()).sum::<usize>() * n1;
         let mut link_values: Vec<f64> = Vec::with_capacity(if primary.is_some() { nested_values } else { 0 });
 
-        if secondary.is_empty() && groups.is_none() {
-            gather_alone(
-                problem,
-                primary,
-                order.as_deref(),
-                y_shift,
-                &mut dense,
-                &mut g,
-                &mut zxy,
-            );
-            if primary.is_some() {
-                level_links = vec![0; n1 + 1];
-            }
-        } else {
-            gather_linked(
-                problem,
-                (primary, &secondary, &secondary_offset, q2_total),
-                order.as_deref(),
-                y_shift,
-                groups.map(|(g, _)| g),
-                (&mut dense, &mut dense_groups),
-                (&mut g, &mut zxy),
-                (&mut level_links, &mut links, &mut link_values),
-            );
-        }
+        gather(
+            problem,
+            (primary, &secondary, &secondary_offset, q2_total),
+            order.as_deref(),
+            y_shift,
+            groups.map(|(g, _)| g),
+            (&mut dense, &mut dense_groups),
+            (&mut g, &mut zxy),
+            (&mut level_links, &mut links, &mut link_values),
+        );
         // The loop filled dense[a][b] for the w-order pairs; make it symmetric.
         for d in &mut dense_groups {
             symmetrise(d, m);
@@ -393,56 +378,14 @@ fn add_primary_row(gi: &mut [f64], zi: &mut [f64], z1: &[f64], xr: &[f64], y: f6
     }
 }
 
-/// The cross-products of a primary term alone, or of no random term (no
-/// secondary terms, no row groups): its level blocks and the dense part
-/// share nothing, so they are gathered side by side, each in the row order
-/// of [`CrossProducts::build`]'s general loop (`order`, else file order):
-/// the same sums, added in the same order. No level has links.
-fn gather_alone(
-    problem: &MixedProblem,
-    primary: Option<usize>,
-    order: Option<&[usize]>,
-    y_shift: f64,
-    dense: &mut [f64],
-    g: &mut [f64],
-    zxy: &mut [f64],
-) {
-    let (n, p) = (problem.n(), problem.p());
-    let m = p + 1;
-    let row_of = |at: usize| order.map_or(at, |o| o[at]);
-    let dense_pass = |dense: &mut [f64]| {
-        let mut w: Vec<(usize, f64)> = Vec::with_capacity(p + 1);
-        for at in 0..n {
-            let r = row_of(at);
-            w.clear();
-            push_fixed(&mut w, 0, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
-            add_row_outer(dense, m, &w);
-        }
-    };
-    let level_pass = |g: &mut [f64], zxy: &mut [f64]| {
-        let Some(k) = primary else { return };
-        let mut none = (Vec::new(), Vec::new(), Vec::new());
-        level_pass(
-            problem,
-            k,
-            (&[], &[]),
-            order,
-            y_shift,
-            (g, zxy),
-            (&mut none.0, &mut none.1, &mut none.2),
-        );
-    };
-    rayon::join(|| dense_pass(dense), || level_pass(g, zxy));
-}
-
-/// The cross-products with terms beside the primary one (`primary`,
-/// `secondary` with their dense offsets, Q₂) or row groups, in two passes side by side, each over the rows in the order `order`
-/// (else file order) that one pass would take, so the sums are the same
-/// to the bit: the dense part (`dense`, or per row group `dense_groups`
-/// when `groups` gives each row's group), and the level blocks with their
-/// links.
+/// The cross-products in two passes side by side, each over the rows in
+/// the order `order` (else file order) that one pass would take, so the
+/// sums are the same to the bit: the dense part (`dense`, or per row group
+/// `dense_groups` when `groups` gives each row's group) with the secondary
+/// terms (`secondary` with their dense offsets, Q₂), and the level blocks
+/// of the `primary` term with their links.
 #[allow(clippy::too_many_arguments, clippy::type_complexity)]
-fn gather_linked(
+fn gather(
     problem: &MixedProblem,
     (primary, secondary, secondary_offset, q2_total): (Option<usize>, &[usize], &[usize], usize),
     order: Option<&[usize]>,
@@ -452,53 +395,25 @@ fn gather_linked(
     (g, zxy): (&mut [f64], &mut [f64]),
     (level_links, links, link_values): (&mut Vec<usize>, &mut Vec<Link>, &mut Vec<f64>),
 ) {
-    let (n, p, terms) = (problem.n(), problem.p(), &problem.terms);
-    let m = q2_total + p + 1;
-    let row_of = |at: usize| order.map_or(at, |o| o[at]);
-    // Two passes side by side, each over the rows in the same order
-    // as one pass would take them (so the sums are the same to the
-    // bit): the dense part, and the level blocks with their links.
-    let dense_pass = |dense: &mut [f64], dense_groups: &mut [Vec<f64>]| {
-        // Sparse row vector w = [z₂ entries, x, y] as (dense index, value).
-        let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64) + p + 1);
-        for at in 0..n {
-            let r = row_of(at);
-            w.clear();
-            for (s, &kt) in secondary.iter().enumerate() {
-                let t = &terms[kt];
-                let qs = t.q();
-                let offset = secondary_offset[s] + t.level[r] as usize * qs;
-                for c in 0..qs {
-                    w.push((offset + c, t.z[c][r]));
-                }
-            }
-            push_fixed(&mut w, q2_total, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
-            let target = match groups {
-                Some(g) => &mut dense_groups[g[r] as usize],
-                None => &mut *dense,
-            };
-            add_row_outer(target, m, &w);
-        }
-    };
-    let level_pass = |g: &mut [f64],
-                      zxy: &mut [f64],
-                      level_links: &mut Vec<usize>,
-                      links: &mut Vec<Link>,
-                      link_values: &mut Vec<f64>| {
-        let Some(k) = primary else { return };
-        level_pass(
-            problem,
-            k,
-            (secondary, secondary_offset),
-            order,
-            y_shift,
-            (g, zxy),
-            (level_links, links, link_values),
-        );
-    };
     rayon::join(
-        || dense_pass(dense, dense_groups),
-        || level_pass(g, zxy, level_links, links, link_values),
+        || {
+            let secondary = (secondary, secondary_offset, q2_total);
+            dense_pass(problem, secondary, order, y_shift, groups, (dense, dense_groups));
+        },
+        || {
+            if let Some(k) = primary {
+                let lists = (level_links, links, link_values);
+                level_pass(
+                    problem,
+                    k,
+                    (secondary, secondary_offset),
+                    order,
+                    y_shift,
+                    (g, zxy),
+                    lists,
+                );
+            }
+        },
     );
 }
 
@@ -605,29 +520,87 @@ fn level_rows<const Q: usize, const C: usize>(
     level_links.push(links.len());
 }
 
-/// Add the outer product of the sparse row `w` to `target` (m×m), on the
-/// pairs (a, b) with b at or before a in `w`.
-#[inline]
-fn add_row_outer(target: &mut [f64], m: usize, w: &[(usize, f64)]) {
-    for (ia, &(a, va)) in w.iter().enumerate() {
-        let row = &mut target[a * m..(a + 1) * m];
-        for &(b, vb) in &w[..=ia] {
-            row[b] += va * vb;
-        }
+/// The dense part `[Z₂ X y]ᵀ[Z₂ X y]` (`dense`, or per row group
+/// `dense_groups` when `groups` gives each row's group) over the rows in
+/// the order `order` (else file order), with the p + 1 columns of [X y] as
+/// a compile-time size when small ([`dense_rows`]).
+#[allow(clippy::type_complexity)]
+fn dense_pass(
+    problem: &MixedProblem,
+    secondary: (&[usize], &[usize], usize),
+    order: Option<&[usize]>,
+    y_shift: f64,
+    groups: Option<&[u32]>,
+    targets: (&mut [f64], &mut [Vec<f64>]),
+) {
+    macro_rules! columns {
+        ($($c:literal),*) => {
+            match problem.p() + 1 {
+                $($c => dense_rows::<$c>(problem, secondary, order, y_shift, groups, targets),)*
+                _ => dense_rows::<0>(problem, secondary, order, y_shift, groups, targets),
+            }
+        };
     }
+    columns!(1, 2, 3, 4, 5, 6, 7, 8)
 }
 
-/// Append a row's fixed-effect entries and its response to the sparse row
-/// `w` (dense columns from `q2_total`, y last); zero entries (another
-/// cohort's columns, say) add nothing and are left out.
-#[inline]
-fn push_fixed(w: &mut Vec<(usize, f64)>, q2_total: usize, xr: &[f64], y: f64) {
-    for (j, &xv) in xr.iter().enumerate() {
-        if xv != 0.0 {
-            w.push((q2_total + j, xv));
+/// [`dense_pass`] with the columns `C` of [X y] as a compile-time size (0:
+/// known at run time only). Each row adds the products of its entries
+/// `w = [z₂ entries, x, y]` on the pairs (a, b) with b at or before a in
+/// `w`, into row a; the lower triangle is mirrored afterwards. Every sum
+/// takes its terms in row order, so the result is the same to the bit
+/// whether or not a zero entry's products (another cohort's column, say)
+/// are added: they are exact zeros.
+#[allow(clippy::type_complexity)]
+fn dense_rows<const C: usize>(
+    problem: &MixedProblem,
+    (secondary, secondary_offset, q2_total): (&[usize], &[usize], usize),
+    order: Option<&[usize]>,
+    y_shift: f64,
+    groups: Option<&[u32]>,
+    (dense, dense_groups): (&mut [f64], &mut [Vec<f64>]),
+) {
+    let terms = &problem.terms;
+    let c1 = if C == 0 { problem.p() + 1 } else { C };
+    let (n, p, m) = (problem.n(), c1 - 1, q2_total + c1);
+    // The row's secondary entries as (dense index, value), and [x, y].
+    let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64));
+    let mut v_store = vec![0.0; c1];
+    let v = &mut v_store[..c1];
+    for at in 0..n {
+        let r = order.map_or(at, |o| o[at]);
+        w.clear();
+        for (s, &kt) in secondary.iter().enumerate() {
+            let t = &terms[kt];
+            let qs = t.q();
+            let offset = secondary_offset[s] + t.level[r] as usize * qs;
+            for c in 0..qs {
+                w.push((offset + c, t.z[c][r]));
+            }
+        }
+        v[..p].copy_from_slice(&problem.x[r * p..(r + 1) * p]);
+        v[p] = problem.y[r] - y_shift;
+        let target = match groups {
+            Some(g) => &mut dense_groups[g[r] as usize][..],
+            None => &mut *dense,
+        };
+        for (ia, &(a, va)) in w.iter().enumerate() {
+            let row = &mut target[a * m..(a + 1) * m];
+            for &(b, vb) in &w[..=ia] {
+                row[b] += va * vb;
+            }
+        }
+        let fixed = &mut target[q2_total * m..(q2_total + c1) * m];
+        for (j, &vj) in v.iter().enumerate() {
+            let row = &mut fixed[j * m..(j + 1) * m];
+            for &(b, vb) in &w {
+                row[b] += vj * vb;
+            }
+            for (f, &vi) in row[q2_total..q2_total + j + 1].iter_mut().zip(&v[..=j]) {
+                *f += vj * vi;
+            }
         }
     }
-    w.push((q2_total + xr.len(), y));
 }
 
 /// Where the coupling block of the current primary level and the secondary
