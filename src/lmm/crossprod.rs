@@ -858,4 +858,68 @@ mod tests {
             "participant 5 is in two schools"
         );
     }
+
+    fn dense_of<const C: usize>(problem: &MixedProblem, groups: Option<&[u32]>, n_groups: usize) -> Vec<Vec<f64>> {
+        let m = 12 + problem.p() + 1;
+        let mut dense = vec![0.0; m * m];
+        let mut per_group = vec![vec![0.0; m * m]; n_groups];
+        dense_rows::<C>(
+            problem,
+            (&[1], &[0], 12),
+            None,
+            0.25,
+            groups,
+            (&mut dense, &mut per_group),
+        );
+        per_group.push(dense);
+        per_group
+    }
+
+    // The compile-time size gives the same sums, to the bit, as the size
+    // known at run time, with and without row groups; and (closed-form
+    // identity) the dense part is [Z₂ X y]ᵀ[Z₂ X y] summed row by row, with
+    // the zero entries of X left in.
+    #[test]
+    fn dense_part_is_the_row_sum_at_every_size() {
+        for p in 1..=8 {
+            let problem = problem(2, p, 70 + p as u64);
+            let groups: Vec<u32> = (0..problem.n() as u32).map(|r| r % 3).collect();
+            for (grouping, k) in [(None, 0), (Some(&groups[..]), 3)] {
+                let general = dense_of::<0>(&problem, grouping, k);
+                let sized = match p + 1 {
+                    2 => dense_of::<2>(&problem, grouping, k),
+                    3 => dense_of::<3>(&problem, grouping, k),
+                    4 => dense_of::<4>(&problem, grouping, k),
+                    5 => dense_of::<5>(&problem, grouping, k),
+                    6 => dense_of::<6>(&problem, grouping, k),
+                    7 => dense_of::<7>(&problem, grouping, k),
+                    8 => dense_of::<8>(&problem, grouping, k),
+                    _ => dense_of::<0>(&problem, grouping, k),
+                };
+                assert_eq!(sized, general, "p {p}");
+            }
+            let m = 12 + p + 1;
+            let got = &dense_of::<0>(&problem, None, 0)[0];
+            let mut want = vec![0.0; m * m];
+            let school = &problem.terms[1];
+            for r in 0..problem.n() {
+                let mut w = vec![0.0; m];
+                let j = school.level[r] as usize;
+                (w[2 * j], w[2 * j + 1]) = (school.z[0][r], school.z[1][r]);
+                w[12..12 + p].copy_from_slice(&problem.x[r * p..(r + 1) * p]);
+                w[12 + p] = problem.y[r] - 0.25;
+                for a in 0..m {
+                    for b in 0..=a {
+                        want[a * m + b] += w[a] * w[b];
+                    }
+                }
+            }
+            let near = |a: f64, b: f64| (a - b).abs() <= 1e-12 * (1.0 + a.abs());
+            for a in 0..m {
+                for b in 0..=a {
+                    assert!(near(got[a * m + b], want[a * m + b]), "p {p}, ({a}, {b})");
+                }
+            }
+        }
+    }
 }
