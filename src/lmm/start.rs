@@ -2,6 +2,7 @@
 //! and a moment start from per-level least squares.
 
 use faer::Mat;
+use rayon::prelude::*;
 
 use super::MixedProblem;
 use super::crossprod::CrossProducts;
@@ -69,41 +70,28 @@ pub(super) fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f
     for &l in term.level.iter() {
         count[l as usize] += 1;
     }
-    // Zᵢᵀe of the OLS residuals e from the level blocks Zᵢᵀ[X y].
-    let c1 = p + 1;
-    let zte: Vec<f64> = (0..levels * q)
-        .map(|lc| {
-            let zi = &cp.zxy[lc * c1..(lc + 1) * c1];
-            zi[p] - (0..p).map(|j| zi[j] * beta[j]).sum::<f64>()
+    // Per chunk of levels (a fixed size, so the sums do not depend on the
+    // number of threads), then added chunk by chunk in order.
+    let sums: Vec<LevelMoments> = (0..levels.div_ceil(MOMENT_CHUNK))
+        .into_par_iter()
+        .map(|c| {
+            let range = c * MOMENT_CHUNK..((c + 1) * MOMENT_CHUNK).min(levels);
+            LevelMoments::over(cp, &beta, &count, range)
         })
         .collect();
-    let mut sum_bb = vec![0.0; q * q];
-    let mut sum_ginv = vec![0.0; q * q];
-    let (mut fitted, mut df, mut used) = (0.0f64, 0usize, 0usize);
-    let mut ginv = vec![0.0; q * q];
-    let mut work = vec![0.0; q * q];
-    let mut b = vec![0.0; q];
-    let mut usable = vec![false; levels];
-    for l in 0..levels {
-        if count[l] <= q || !spd_inverse(&cp.g[l * q * q..(l + 1) * q * q], q, &mut ginv, &mut work) {
-            continue;
-        }
-        for a in 0..q {
-            b[a] = (0..q).map(|c| ginv[a * q + c] * zte[l * q + c]).sum();
-        }
-        // b̂ᵀZᵢᵀe: the part of the level's residual sum of squares that its
-        // own coefficients take.
-        fitted += (0..q).map(|a| b[a] * zte[l * q + a]).sum::<f64>();
-        usable[l] = true;
-        df += count[l] - q;
-        used += 1;
-        for a in 0..q {
-            for c in 0..q {
-                sum_bb[a * q + c] += b[a] * b[c];
-                sum_ginv[a * q + c] += ginv[a * q + c];
-            }
-        }
+    let mut total = LevelMoments::new(q, 0);
+    for part in &sums {
+        total.add(part);
     }
+    let usable: Vec<bool> = sums.into_iter().flat_map(|s| s.usable).collect();
+    let LevelMoments {
+        sum_bb,
+        sum_ginv,
+        fitted,
+        df,
+        used,
+        ..
+    } = total;
     // The residual sum of squares within the levels used: with every level
     // used, the OLS residual sum of squares (yᵀy − β̂ᵀXᵀy, from the dense
     // part) less what the levels' coefficients take; otherwise summed over
@@ -153,6 +141,82 @@ pub(super) fn moment_start(problem: &MixedProblem, cp: &CrossProducts, base: &[f
         }
     }
     Some(start)
+}
+
+/// Levels per chunk of the moment start's parallel sums.
+const MOMENT_CHUNK: usize = 4096;
+
+/// The moment start's sums over a range of primary levels with more rows
+/// than coefficients and a positive definite `ZᵢᵀZᵢ`: `Σ b̂ᵢb̂ᵢᵀ`,
+/// `Σ (ZᵢᵀZᵢ)⁻¹`, the residual sum of squares the levels' own coefficients
+/// take (`Σ b̂ᵢᵀZᵢᵀe`), their residual degrees of freedom, how many levels
+/// were used, and which.
+struct LevelMoments {
+    sum_bb: Vec<f64>,
+    sum_ginv: Vec<f64>,
+    fitted: f64,
+    df: usize,
+    used: usize,
+    usable: Vec<bool>,
+}
+
+impl LevelMoments {
+    fn new(q: usize, levels: usize) -> LevelMoments {
+        LevelMoments {
+            sum_bb: vec![0.0; q * q],
+            sum_ginv: vec![0.0; q * q],
+            fitted: 0.0,
+            df: 0,
+            used: 0,
+            usable: vec![false; levels],
+        }
+    }
+
+    /// The sums over the levels in `range`, with the OLS coefficients
+    /// `beta` and each level's row count.
+    fn over(cp: &CrossProducts, beta: &[f64], count: &[usize], range: std::ops::Range<usize>) -> LevelMoments {
+        let (q, p) = (cp.q1, cp.p);
+        let c1 = p + 1;
+        let mut out = LevelMoments::new(q, range.len());
+        let mut ginv = vec![0.0; q * q];
+        let mut work = vec![0.0; q * q];
+        let (mut b, mut zte) = (vec![0.0; q], vec![0.0; q]);
+        for (k, l) in range.enumerate() {
+            if count[l] <= q || !spd_inverse(&cp.g[l * q * q..(l + 1) * q * q], q, &mut ginv, &mut work) {
+                continue;
+            }
+            // Zᵢᵀe of the OLS residuals e from the level block Zᵢᵀ[X y].
+            for (a, v) in zte.iter_mut().enumerate() {
+                let zi = &cp.zxy[(l * q + a) * c1..(l * q + a + 1) * c1];
+                *v = zi[p] - (0..p).map(|j| zi[j] * beta[j]).sum::<f64>();
+            }
+            for a in 0..q {
+                b[a] = (0..q).map(|c| ginv[a * q + c] * zte[c]).sum();
+            }
+            // b̂ᵀZᵢᵀe: the part of the level's residual sum of squares that
+            // its own coefficients take.
+            out.fitted += (0..q).map(|a| b[a] * zte[a]).sum::<f64>();
+            out.usable[k] = true;
+            out.df += count[l] - q;
+            out.used += 1;
+            for a in 0..q {
+                for c in 0..q {
+                    out.sum_bb[a * q + c] += b[a] * b[c];
+                    out.sum_ginv[a * q + c] += ginv[a * q + c];
+                }
+            }
+        }
+        out
+    }
+
+    /// Add another range's sums (not its `usable` marks).
+    fn add(&mut self, other: &LevelMoments) {
+        self.sum_bb.iter_mut().zip(&other.sum_bb).for_each(|(a, b)| *a += b);
+        self.sum_ginv.iter_mut().zip(&other.sum_ginv).for_each(|(a, b)| *a += b);
+        self.fitted += other.fitted;
+        self.df += other.df;
+        self.used += other.used;
+    }
 }
 
 /// The OLS residual sum of squares `yᵀy − β̂ᵀXᵀy` from the dense part.
@@ -255,6 +319,54 @@ mod small_inverse_tests {
         let rows = super::rss_over_rows(&problem, &cp, &beta, &vec![true; n / 3]);
         assert!((closed - rows).abs() < 1e-9 * rows, "{closed} vs {rows}");
         assert!(rows > 0.0);
+    }
+
+    // The moment sums over the levels split in two ranges add up to the
+    // sums over all of them (to rounding), with the same levels used; a
+    // level with as many rows as coefficients is left out.
+    #[test]
+    fn level_moments_add_over_ranges() {
+        use super::super::{MixedProblem, RandomTermData};
+        let mut rng = crate::simulate::Rng::new(3);
+        let per = |i: usize| if i % 7 == 0 { 2 } else { 4 };
+        let id: Vec<u32> = (0..50u32)
+            .flat_map(|i| std::iter::repeat_n(i, per(i as usize)))
+            .collect();
+        let n = id.len();
+        let age: Vec<f64> = (0..n).map(|_| 10.0 * rng.uniform()).collect();
+        let problem = MixedProblem {
+            y: age.iter().map(|a| 5.0 + a + rng.normal()).collect(),
+            x_names: vec!["1".into(), "age".into()],
+            x: age.iter().flat_map(|&a| [1.0, a]).collect(),
+            terms: vec![RandomTermData::numbered(
+                "id",
+                50,
+                id.clone(),
+                &["intercept", "age"],
+                vec![vec![1.0; n], age.clone()],
+            )],
+        };
+        let cp = super::CrossProducts::new(&problem);
+        let mut count = vec![0; 50];
+        id.iter().for_each(|&l| count[l as usize] += 1);
+        let beta = [5.0, 1.0];
+        let all = super::LevelMoments::over(&cp, &beta, &count, 0..50);
+        let mut parts = super::LevelMoments::over(&cp, &beta, &count, 0..17);
+        let rest = super::LevelMoments::over(&cp, &beta, &count, 17..50);
+        parts.add(&rest);
+        assert_eq!((parts.used, parts.df), (all.used, all.df));
+        assert_eq!(
+            all.used,
+            50 - 8,
+            "levels 0, 7, …, 49 have two rows for two coefficients"
+        );
+        let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * (1.0 + a.abs());
+        assert!(close(parts.fitted, all.fitted));
+        for k in 0..4 {
+            assert!(close(parts.sum_bb[k], all.sum_bb[k]) && close(parts.sum_ginv[k], all.sum_ginv[k]));
+        }
+        let marks: Vec<bool> = parts.usable.iter().chain(&rest.usable).copied().collect();
+        assert_eq!(marks, all.usable);
     }
 
     // Closed-form identity: G · G⁻¹ = I, and a matrix that is not positive
