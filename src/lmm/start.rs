@@ -328,7 +328,7 @@ mod small_inverse_tests {
     fn level_moments_add_over_ranges() {
         use super::super::{MixedProblem, RandomTermData};
         let mut rng = crate::simulate::Rng::new(3);
-        let per = |i: usize| if i % 7 == 0 { 2 } else { 4 };
+        let per = |i: usize| if i.is_multiple_of(7) { 2 } else { 4 };
         let id: Vec<u32> = (0..50u32)
             .flat_map(|i| std::iter::repeat_n(i, per(i as usize)))
             .collect();
