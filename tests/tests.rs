@@ -12,6 +12,8 @@ mod closed_form; // balanced one-way random effects: REML equals the ANOVA estim
 mod common; // helpers shared by the modules
 #[path = "suite/design.rs"]
 mod design; // the design report against the truth of seeded simulations
+#[path = "suite/distributions.rs"]
+mod distributions; // t quantiles against scipy and closed forms, at every df braid meets
 #[path = "suite/fuzz.rs"]
 mod fuzz; // seeded random CSV files and study files never make braid panic
 #[path = "suite/grouped.rs"]

@@ -11,7 +11,7 @@ pub mod hypothesis;
 pub mod trajectory;
 
 use serde::Serialize;
-use statrs::distribution::{ContinuousCDF, Normal, StudentsT};
+use statrs::distribution::{Continuous, ContinuousCDF, Normal, StudentsT};
 
 pub use trajectory::{AgeEstimate, Extremum, Trajectory, TrajectoryPoint, TrajectoryRequest, trajectory};
 
@@ -69,15 +69,61 @@ impl Contrast {
 const NORMAL_DF: f64 = 1e7;
 
 /// Quantile of t(df) (normal for very large or undefined df).
+///
+/// statrs 0.19.1's inverse of the t distribution function drifts for large
+/// df: from about df = 6.7·10⁴ its quantiles miss their probability by more
+/// than 1e-6, and at df = 5.1·10⁶ its 97.5% point has a probability of
+/// 0.734 (a Satterthwaite df of that size is usual for a rate of change on
+/// ten million rows). From [`CORNISH_FISHER_DF`] on, the quantile is the
+/// Cornish–Fisher expansion about the normal quantile z in powers of 1/ν
+/// (Abramowitz & Stegun 1964, 26.7.5, four terms), whose first omitted
+/// term is below 1e-12 there for the usual levels; below it, statrs'
+/// inverse, polished by Newton steps on the distribution function. Checked
+/// against scipy's quantiles in tests/suite/distributions.rs
+/// (notes/decisions.md, "t quantiles").
 pub fn t_quantile(prob: f64, df: f64) -> f64 {
-    if df.is_finite() && df > 0.0 && df < NORMAL_DF {
-        StudentsT::new(0.0, 1.0, df)
-            .map(|t| t.inverse_cdf(prob))
-            .unwrap_or(f64::NAN)
-    } else {
-        Normal::standard().inverse_cdf(prob)
+    let z = Normal::standard().inverse_cdf(prob);
+    if !(df.is_finite() && df > 0.0 && df < NORMAL_DF) {
+        return z;
     }
+    if df >= CORNISH_FISHER_DF {
+        let (z2, v) = (z * z, 1.0 / df);
+        let g1 = z * (z2 + 1.0) / 4.0;
+        let g2 = z * ((5.0 * z2 + 16.0) * z2 + 3.0) / 96.0;
+        let g3 = z * (((3.0 * z2 + 19.0) * z2 + 17.0) * z2 - 15.0) / 384.0;
+        let g4 = z * ((((79.0 * z2 + 776.0) * z2 + 1482.0) * z2 - 1920.0) * z2 - 945.0) / 92160.0;
+        return z + v * (g1 + v * (g2 + v * (g3 + v * g4)));
+    }
+    let Ok(t) = StudentsT::new(0.0, 1.0, df) else {
+        return f64::NAN;
+    };
+    let mut q = t.inverse_cdf(prob);
+    if !(prob > 0.0 && prob < 1.0) {
+        return q;
+    }
+    let mut miss = t.cdf(q) - prob;
+    for _ in 0..QUANTILE_STEPS {
+        let next = q - miss / t.pdf(q);
+        if !next.is_finite() {
+            break;
+        }
+        let next_miss = t.cdf(next) - prob;
+        // Keep a step only while it brings the probability closer.
+        if next_miss.abs() >= miss.abs() {
+            break;
+        }
+        (q, miss) = (next, next_miss);
+    }
+    q
 }
+
+/// From this many df the quantile is the Cornish–Fisher expansion rather
+/// than statrs' inverse.
+const CORNISH_FISHER_DF: f64 = 1e3;
+
+/// Newton steps on the distribution function below [`CORNISH_FISHER_DF`],
+/// at most; from statrs' inverse one or two suffice.
+const QUANTILE_STEPS: usize = 4;
 
 /// Upper tail of Student's t (the normal above `NORMAL_DF`), as the lower
 /// tail at −x: by symmetry exact, and a tiny p-value is kept rather than
