@@ -2,9 +2,9 @@
 //! (version in tests/reference/t_quantiles.json, made by
 //! tests/reference/t_quantile_reference.py) and against closed forms.
 
-use braid::infer::{t_cdf, t_quantile};
+use braid::infer::{t_cdf, t_quantile, t_sf};
 
-use crate::tolerance::{T_QUANTILE_REL, T_ROUND_TRIP_ABS, rel};
+use crate::tolerance::{T_QUANTILE_REL, T_ROUND_TRIP_ABS, T_TAIL_REL, rel};
 
 // scipy.stats.t.ppf at df from 1 to just below the switch to the normal,
 // including the large df at which statrs' own inverse drifts.
@@ -52,5 +52,23 @@ fn t_quantiles_meet_closed_forms_and_invert_the_distribution_function() {
             );
         }
         df *= 1.05;
+    }
+}
+
+// The tails behind every p-value (braid's two-sided p-value is twice the
+// upper tail) against scipy.stats.t.cdf, down to 1e-89, relative.
+#[test]
+fn t_tails_match_scipy_at_every_df() {
+    let reference = crate::common::reference_json("t_quantiles.json");
+    let tails = reference["tails"].as_array().unwrap();
+    assert!(tails.len() >= 100);
+    for case in tails {
+        let (df, x) = (case["df"].as_f64().unwrap(), case["x"].as_f64().unwrap());
+        let want = case["lower_tail"].as_f64().unwrap();
+        let got = t_sf(x, df);
+        assert!(
+            want > 0.0 && (got - want).abs() <= T_TAIL_REL * want,
+            "df {df}, x {x}: {got} against scipy's {want}"
+        );
     }
 }
