@@ -712,8 +712,15 @@ fn search_optimum(
     let start_x = space.point(&start);
     let unit = space.point(&base);
     // The analytic gradient in the scaled coordinates, when the model has one.
+    // The last evaluation is kept with its θ: the finish's stencil is
+    // centred where the search ended, and takes it rather than repeating it.
+    let last_gradient: RefCell<Option<(Vec<f64>, criterion::GradientEval)>> = RefCell::new(None);
     let sgrad = |x: &[f64]| -> Option<(f64, Vec<f64>)> {
-        criterion::deviance_gradient(cp, &space.theta(x), method).map(|(d, g)| (d, space.gradient(&g)))
+        let th = space.theta(x);
+        let eval = criterion::gradient_eval(cp, &th, method)?;
+        let out = (eval.deviance, space.gradient(&eval.grad));
+        *last_gradient.borrow_mut() = Some((th, eval));
+        Some(out)
     };
     let grad: optimize::Gradient = if criterion::has_gradient(cp) {
         Some(&sgrad)
@@ -724,15 +731,20 @@ fn search_optimum(
     // gradients that Satterthwaite's derivatives need; the last one is kept,
     // and reused when the finish ends next to where it was taken.
     let last_stencil: RefCell<Option<Stencil>> = RefCell::new(None);
-    let shess = |x: &[f64], free: &[usize]| -> Option<(Vec<f64>, Vec<f64>)> {
+    let shess = |x: &[f64], free: &[usize]| -> Option<(Vec<f64>, Vec<f64>, usize)> {
         let th = space.theta(x);
         let free = space.full_indices(free);
         let h = stencil_steps(&th, &theta_scale, &free);
         let mut evals = 0;
-        let st = Stencil::new(cp, &th, &free, &h, method, &mut evals)?;
-        let out = st.scaled_gradient_hessian(&theta_scale);
+        let centre = last_gradient
+            .borrow_mut()
+            .take()
+            .filter(|(at, _)| *at == th)
+            .map(|(_, e)| e);
+        let st = Stencil::new(cp, &th, &free, &h, method, &mut evals, centre)?;
+        let (g, h) = st.scaled_gradient_hessian(&theta_scale);
         *last_stencil.borrow_mut() = Some(st);
-        Some(out)
+        Some((g, h, evals))
     };
     let lean = is_lean(cp, options);
     let hess_at: optimize::HessianAt = if criterion::has_gradient(cp) && !lean {

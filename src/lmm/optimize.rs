@@ -787,9 +787,10 @@ fn gradient_hessian(
 }
 
 /// A caller's own gradient-and-Hessian stencil over the free coordinates
-/// (row-major `free.len()²`), used in place of [`gradient_hessian`] when it
-/// gives one; the caller may keep what it computed there.
-pub type HessianAt<'a> = Option<&'a dyn Fn(&[f64], &[usize]) -> Option<(Vec<f64>, Vec<f64>)>>;
+/// (row-major `free.len()²`), with the number of evaluations it took, used
+/// in place of [`gradient_hessian`] when it gives one; the caller may keep
+/// what it computed there.
+pub type HessianAt<'a> = Option<&'a dyn Fn(&[f64], &[usize]) -> Option<(Vec<f64>, Vec<f64>, usize)>>;
 
 /// [`newton_polish`] with an analytic gradient when one is given: the
 /// gradient is exact and the Hessian comes from differences of gradients
@@ -827,8 +828,8 @@ pub fn newton_polish_with(
         } else {
             None
         };
-        if let Some((gs, h)) = stencil {
-            evals += 1 + 2 * free.len();
+        if let Some((gs, h, used)) = stencil {
+            evals += used;
             g = vec![0.0; d];
             for (k, &i) in free.iter().enumerate() {
                 g[i] = gs[k];

@@ -129,6 +129,10 @@ pub(super) fn stencil_steps(theta: &[f64], theta_scale: &[f64], free: &[usize]) 
 const STENCIL_REUSE: f64 = 1e-3;
 
 impl Stencil {
+    /// `centre`, when given, is the evaluation at `theta` itself (the
+    /// search's last gradient, at the point the finish starts from), which
+    /// then is not repeated.
+    #[allow(clippy::too_many_arguments)]
     pub(super) fn new(
         cp: &CrossProducts,
         theta: &[f64],
@@ -136,6 +140,7 @@ impl Stencil {
         h: &[f64],
         method: Method,
         evals: &mut usize,
+        centre: Option<criterion::GradientEval>,
     ) -> Option<Stencil> {
         let mut at = |i: Option<(usize, f64)>| {
             let mut th = theta.to_vec();
@@ -145,7 +150,10 @@ impl Stencil {
             *evals += 1;
             criterion::gradient_eval(cp, &th, method)
         };
-        let centre = at(None)?;
+        let centre = match centre {
+            Some(c) => c,
+            None => at(None)?,
+        };
         let mut plus = Vec::with_capacity(free.len());
         let mut minus = Vec::with_capacity(free.len());
         for (i, &hi) in h.iter().enumerate() {
@@ -259,7 +267,7 @@ pub(super) fn sensitivity(
     let h = stencil_steps(theta, theta_scale, free);
     let stencil = kept.or_else(|| {
         criterion::has_gradient(cp)
-            .then(|| Stencil::new(cp, theta, free, &h, method, &mut evals))
+            .then(|| Stencil::new(cp, theta, free, &h, method, &mut evals, None))
             .flatten()
     });
     let derivs = match stencil {
