@@ -198,11 +198,19 @@ fn draw<DB: DrawingBackend>(
         .map_err(e)?
         .label("95% band of the mean")
         .legend(|(x, y)| Rectangle::new([(x, y - 6), (x + 22, y + 6)], CURVE.mix(0.18).filled()));
+    // The mean curve as a filled ribbon of constant width on the page: a
+    // bitmap's thick polyline notches at every joint, which makes a smooth
+    // curve look wobbly.
+    let (w_px, h_px) = chart.plotting_area().dim_in_pixel();
+    let (x_span, y_span) = ((x1 - x0) + 2.0 * pad_x, (hi - lo) + 2.0 * pad_y);
+    let ribbon = curve_ribbon(
+        &t.points.iter().map(|p| (p.age, p.mean)).collect::<Vec<_>>(),
+        f64::from(h_px.max(1)) / y_span,
+        f64::from(w_px.max(1)) / x_span,
+        CURVE_WIDTH_PX,
+    );
     chart
-        .draw_series(LineSeries::new(
-            t.points.iter().map(|p| (p.age, p.mean)),
-            CURVE.stroke_width(3),
-        ))
+        .draw_series(std::iter::once(Polygon::new(ribbon, CURVE.filled())))
         .map_err(e)?
         .label("stitched mean trajectory")
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 22, y)], CURVE.stroke_width(3)));
@@ -263,6 +271,29 @@ fn draw<DB: DrawingBackend>(
     Ok(())
 }
 
+/// The width of the mean curve on the page, in pixels.
+const CURVE_WIDTH_PX: f64 = 3.0;
+
+/// The outline of a curve drawn `width` pixels wide: the points shifted up
+/// and down by half the width along y, divided by the cosine of the curve's
+/// slope on the page (`px_y`, `px_x`: pixels per unit of y and of x) so
+/// that steep stretches are as wide as flat ones.
+fn curve_ribbon(points: &[(f64, f64)], px_y: f64, px_x: f64, width: f64) -> Vec<(f64, f64)> {
+    let n = points.len();
+    let half = |i: usize| -> f64 {
+        let (a, b) = (points[i.saturating_sub(1)], points[(i + 1).min(n - 1)]);
+        let slope = if b.0 > a.0 {
+            (b.1 - a.1) / (b.0 - a.0) * px_y / px_x
+        } else {
+            0.0
+        };
+        0.5 * width * (1.0 + slope * slope).sqrt() / px_y
+    };
+    let mut outline: Vec<(f64, f64)> = (0..n).map(|i| (points[i].0, points[i].1 + half(i))).collect();
+    outline.extend((0..n).rev().map(|i| (points[i].0, points[i].1 - half(i))));
+    outline
+}
+
 fn cohort_count(report: &FitReport) -> usize {
     let mut seen: Vec<&str> = Vec::new();
     for c in &report.cells {
@@ -299,5 +330,29 @@ mod tick_tests {
         assert_eq!(super::tick(&-0.0), "0");
         assert_eq!(super::tick(&-1e-9), "0");
         assert_eq!(super::tick(&0.25), "0.25");
+    }
+}
+
+#[cfg(test)]
+mod ribbon_tests {
+    use super::curve_ribbon;
+
+    // Closed-form geometry: a flat curve is `width` pixels tall; a line at
+    // 45° on the page has a vertical extent of width·√2, so that its width
+    // across the line is `width`; the outline goes out along the top and
+    // back along the bottom.
+    #[test]
+    fn the_ribbon_is_as_wide_on_the_page_at_every_slope() {
+        let (px_y, px_x) = (40.0, 20.0);
+        let flat = curve_ribbon(&[(0.0, 1.0), (1.0, 1.0), (2.0, 1.0)], px_y, px_x, 3.0);
+        assert_eq!(flat.len(), 6);
+        assert!(((flat[1].1 - flat[4].1) * px_y - 3.0).abs() < 1e-12);
+        // y rises 0.5 per unit x: 20 px up for 20 px across.
+        let steep = curve_ribbon(&[(0.0, 0.0), (1.0, 0.5), (2.0, 1.0)], px_y, px_x, 3.0);
+        assert!(((steep[1].1 - steep[4].1) * px_y - 3.0 * 2f64.sqrt()).abs() < 1e-12);
+        assert_eq!(
+            steep.iter().map(|p| p.0).collect::<Vec<_>>(),
+            [0.0, 1.0, 2.0, 2.0, 1.0, 0.0]
+        );
     }
 }
