@@ -6,16 +6,20 @@ use braid::infer::{t_cdf, t_quantile, t_sf};
 
 use crate::tolerance::{T_QUANTILE_REL, T_ROUND_TRIP_ABS, T_TAIL_REL, rel};
 
+/// The three named numbers of each entry of the reference's list `list`
+/// (at least 100 entries).
+fn scipy(list: &str, fields: [&str; 3]) -> Vec<[f64; 3]> {
+    let reference = crate::common::reference_json("t_quantiles.json");
+    let entries = reference[list].as_array().unwrap();
+    assert!(entries.len() >= 100, "{list}: {} entries", entries.len());
+    entries.iter().map(|e| fields.map(|f| e[f].as_f64().unwrap())).collect()
+}
+
 // scipy.stats.t.ppf at df from 1 to just below the switch to the normal,
 // including the large df at which statrs' own inverse drifts.
 #[test]
 fn t_quantiles_match_scipy_at_every_df() {
-    let reference = crate::common::reference_json("t_quantiles.json");
-    let cases = reference["cases"].as_array().unwrap();
-    assert!(cases.len() >= 100);
-    for case in cases {
-        let (df, prob) = (case["df"].as_f64().unwrap(), case["prob"].as_f64().unwrap());
-        let want = case["quantile"].as_f64().unwrap();
+    for [df, prob, want] in scipy("cases", ["df", "prob", "quantile"]) {
         let got = t_quantile(prob, df);
         assert!(
             rel(got, want, 1e-3) < T_QUANTILE_REL,
@@ -59,12 +63,7 @@ fn t_quantiles_meet_closed_forms_and_invert_the_distribution_function() {
 // upper tail) against scipy.stats.t.cdf, down to 1e-89, relative.
 #[test]
 fn t_tails_match_scipy_at_every_df() {
-    let reference = crate::common::reference_json("t_quantiles.json");
-    let tails = reference["tails"].as_array().unwrap();
-    assert!(tails.len() >= 100);
-    for case in tails {
-        let (df, x) = (case["df"].as_f64().unwrap(), case["x"].as_f64().unwrap());
-        let want = case["lower_tail"].as_f64().unwrap();
+    for [df, x, want] in scipy("tails", ["df", "x", "lower_tail"]) {
         let got = t_sf(x, df);
         assert!(
             want > 0.0 && (got - want).abs() <= T_TAIL_REL * want,
