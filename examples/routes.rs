@@ -40,9 +40,9 @@ fn movers(pupils: usize, schools: usize, seed: u64) -> MixedProblem {
     }
     let n = y.len();
     MixedProblem {
-        y,
+        y: y.into(),
         x_names: vec!["intercept".into(), "age".into(), "age2".into()],
-        x,
+        x: x.into(),
         terms: vec![
             RandomTermData::numbered("pupil", pupils, pupil, &["intercept", "age"], vec![vec![1.0; n], age]),
             RandomTermData::numbered("school", schools, school, &["intercept"], vec![vec![1.0; n]]),

@@ -82,9 +82,9 @@ pub fn compare(c: &Complete, effects: &[Effect]) -> Result<MixedComparison> {
         }
     }
     let problem = MixedProblem {
-        y: c.y.clone(),
+        y: c.y.as_slice().into(),
         x_names: (0..p).map(|j| format!("x{j}")).collect(),
-        x,
+        x: x.into(),
         terms: vec![RandomTermData {
             factor: "participant".into(),
             level_names: (0..n).map(|i| i.to_string()).collect(),

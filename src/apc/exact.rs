@@ -273,17 +273,22 @@ fn mixed(layout: &Layout, input: &ExactInput<'_>, ids: &[u32]) -> Result<FullFit
     }
     let mut participant = super::glm::intercepts("participant", ids, n);
     participant.columns.push("age".into());
-    participant
-        .z
-        .push(input.age.iter().map(|a| a - layout.splines[0].mean).collect());
+    participant.z.push(
+        input
+            .age
+            .iter()
+            .map(|a| a - layout.splines[0].mean)
+            .collect::<Vec<f64>>()
+            .into(),
+    );
     let mut terms = vec![participant];
     if let Some(c) = input.clusters {
         terms.push(super::glm::intercepts("cluster", c, n));
     }
     let problem = crate::lmm::MixedProblem {
-        y: input.y.to_vec(),
+        y: input.y.into(),
         x_names: (0..q).map(|k| format!("x{k}")).collect(),
-        x,
+        x: x.into(),
         terms,
     };
     let f = crate::lmm::fit(&problem, crate::lmm::FitOptions::estimates())?;

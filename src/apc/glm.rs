@@ -236,7 +236,7 @@ pub fn fit_mixed(cells: &[Cell], q: usize, x: Vec<f64>, ids: &[u32]) -> Result<G
     let problem = crate::lmm::MixedProblem {
         y: cells.iter().map(|c| c.y).collect(),
         x_names: (0..q).map(|k| format!("x{k}")).collect(),
-        x,
+        x: x.into(),
         terms,
     };
     let f = crate::lmm::fit(

@@ -94,9 +94,9 @@ pub fn fit(t: &NumericTable, data: &ApcData) -> Result<Hierarchical> {
         terms.push(term("participant", ids.iter().map(|l| index[l]).collect(), &names));
     }
     let problem = MixedProblem {
-        y: y.clone(),
+        y: y.as_slice().into(),
         x_names: vec!["intercept".into(), "age".into(), "age^2".into()],
-        x,
+        x: x.into(),
         terms,
     };
     let f = lmm::fit(

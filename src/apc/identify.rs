@@ -201,7 +201,7 @@ fn panel_records(panel: &Panel) -> Result<NumericTable> {
     };
     Ok(NumericTable {
         source: panel.source.clone(),
-        columns: vec![panel.age.clone(), calendar.period.clone(), panel.outcome.clone()],
+        columns: vec![panel.age.to_vec(), calendar.period.clone(), panel.outcome.to_vec()],
         n_rows_read: panel.n_rows_read,
         dropped: panel.dropped.total(),
         rows: panel.row.clone(),

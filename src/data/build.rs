@@ -9,25 +9,49 @@ use super::read::{self, RawColumn};
 use super::{Calendar, CalendarSource, Codes, Covariate, CovariateValues, DropReport, Panel, Roles, dates, is_missing};
 use crate::error::{Error, Result};
 
-pub(super) fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Result<Panel> {
-    let kept = keep_rows(path, roles, table)?;
+/// Build the panel from the columns read. The table shrinks as the panel
+/// grows: each raw column is dropped once no later step reads it (on ten
+/// million rows the raw age and outcome alone are 350 MB), so the raw
+/// table and the panel are never both held whole.
+pub(super) fn build(path: &Path, roles: &Roles, mut table: read::RawTable) -> Result<Panel> {
+    let kept = keep_rows(path, roles, &table)?;
+    // Read from here on: the labels, covariates and calendar columns.
+    let labels: Vec<&str> = [
+        Some(&roles.id),
+        roles.cohort.as_ref(),
+        roles.wave.as_ref(),
+        roles.cluster.as_ref(),
+    ]
+    .into_iter()
+    .flatten()
+    .chain(&roles.covariates)
+    .map(String::as_str)
+    .collect();
+    let calendar: Vec<&str> = [roles.period.as_deref(), roles.birth_year.as_deref()]
+        .into_iter()
+        .flatten()
+        .chain(roles.dates().into_iter().flat_map(|(b, d)| [b, d]))
+        .collect();
+    let later: Vec<&str> = labels.iter().chain(&calendar).copied().collect();
+    release(&mut table, &[&roles.outcome, &roles.age], &later);
+    let (id, cohort, wave, cluster, covariates) = {
+        let cells = Cells {
+            path,
+            table: &table,
+            rows: &kept.rows,
+        };
+        let (id, cohort, wave, cluster) = coded(&cells, roles);
+        let (id, cohort, wave, cluster) = (id?, cohort?, wave?, cluster?);
+        (id, cohort, wave, cluster, covariates(&cells, roles, &kept.numeric)?)
+    };
+    release(&mut table, &labels, &calendar);
     let cells = Cells {
         path,
-        table,
+        table: &table,
         rows: &kept.rows,
     };
-    // The label columns are coded side by side (each is one pass over the
-    // kept rows with its own map); errors are reported in the order id,
-    // cohort, wave, cluster, as when they were coded one after another.
-    let coded = |c: &Option<String>| c.as_deref().map(|c| cells.codes(c, true)).transpose();
-    let ((id, cohort), (wave, cluster)) = rayon::join(
-        || rayon::join(|| cells.codes(&roles.id, false), || coded(&roles.cohort)),
-        || rayon::join(|| coded(&roles.wave), || coded(&roles.cluster)),
-    );
-    let (id, cohort, wave, cluster) = (id?, cohort?, wave?, cluster?);
-    let covariates = covariates(&cells, roles, &kept.numeric)?;
     let row: Vec<usize> = kept.rows.iter().map(|r| r + 1).collect();
-    let calendar = calendar_of(path, roles, table, &kept.rows, &kept.age)?;
+    let calendar = calendar_of(path, roles, &table, &kept.rows, &kept.age)?;
     check_fixed_per_participant(&cells, roles, &id, cohort.as_ref(), &row)?;
     check_design(path, roles, &id, &kept.age, wave.as_ref(), &row)?;
     Ok(Panel {
@@ -37,14 +61,43 @@ pub(super) fn build(path: &Path, roles: &Roles, table: &read::RawTable) -> Resul
         dropped: kept.dropped,
         row,
         id,
-        age: kept.age,
-        outcome: kept.outcome,
+        age: kept.age.into(),
+        outcome: kept.outcome.into(),
         cohort,
         wave,
         cluster,
         covariates,
         calendar,
     })
+}
+
+/// Drop the columns `names` from the table, except those in `kept`.
+fn release(table: &mut read::RawTable, names: &[&str], kept: &[&str]) {
+    for name in names {
+        if !kept.contains(name) {
+            table.columns.remove(*name);
+        }
+    }
+}
+
+type Coded = (
+    Result<Codes>,
+    Result<Option<Codes>>,
+    Result<Option<Codes>>,
+    Result<Option<Codes>>,
+);
+
+/// The label columns coded side by side (each is one pass over the kept
+/// rows with its own map): id, cohort, wave and cluster. The caller
+/// reports their errors in that order, as when they were coded one after
+/// another.
+fn coded(cells: &Cells, roles: &Roles) -> Coded {
+    let coded = |c: &Option<String>| c.as_deref().map(|c| cells.codes(c, true)).transpose();
+    let ((id, cohort), (wave, cluster)) = rayon::join(
+        || rayon::join(|| cells.codes(&roles.id, false), || coded(&roles.cohort)),
+        || rayon::join(|| coded(&roles.wave), || coded(&roles.cluster)),
+    );
+    (id, cohort, wave, cluster)
 }
 
 /// The rows kept, with their age and outcome, and the rows dropped.
@@ -241,7 +294,7 @@ fn covariates(cells: &Cells, roles: &Roles, numeric: &[bool]) -> Result<Vec<Cova
                     ),
                 });
             }
-            CovariateValues::Numeric(v)
+            CovariateValues::Numeric(v.into())
         } else {
             let codes = Codes::new(&cells.labels(c, true)?, true);
             if codes.n_levels() < 2 {

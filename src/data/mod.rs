@@ -177,11 +177,11 @@ fn load_with(path: &Path, roles: &Roles, options: ReadOptions, outcome: Option<&
     }
     if roles.is_wide() {
         let (long, long_roles, file_row) = wide::reshape_wide(path, roles, &table)?;
-        let mut panel = build::build(path, &long_roles, &long)?;
+        let mut panel = build::build(path, &long_roles, long)?;
         panel.row = panel.row.iter().map(|&r| file_row[r - 1]).collect();
         return Ok(panel);
     }
-    build::build(path, roles, &table)
+    build::build(path, roles, table)
 }
 
 #[cfg(test)]

@@ -125,8 +125,9 @@ impl Codes {
 /// A covariate's values.
 #[derive(Debug, Clone, PartialEq)]
 pub enum CovariateValues {
-    /// Numbers.
-    Numeric(Vec<f64>),
+    /// Numbers (shared, not copied, with the model frames built on the
+    /// panel).
+    Numeric(Arc<[f64]>),
     /// Categories (the first level is the reference).
     Categorical(Codes),
 }
@@ -186,10 +187,11 @@ pub struct Panel {
     pub(crate) row: Vec<usize>,
     /// Participants (levels in order of first appearance).
     pub(crate) id: Codes,
-    /// Exact age in years.
-    pub(crate) age: Vec<f64>,
-    /// Outcome.
-    pub(crate) outcome: Vec<f64>,
+    /// Exact age in years (shared, not copied, with the model frames built
+    /// on the panel).
+    pub(crate) age: Arc<[f64]>,
+    /// Outcome (shared likewise).
+    pub(crate) outcome: Arc<[f64]>,
     /// Cohort, if given.
     pub(crate) cohort: Option<Codes>,
     /// Wave, if given.
@@ -334,8 +336,8 @@ impl Panel {
         Ok(Panel {
             row: order.iter().map(|&r| self.row[r]).collect(),
             id: pick(&self.id, false),
-            age: pick_f(&self.age),
-            outcome: pick_f(&self.outcome),
+            age: pick_f(&self.age).into(),
+            outcome: pick_f(&self.outcome).into(),
             cohort: self.cohort.as_ref().map(|c| pick(c, true)),
             wave: self.wave.as_ref().map(|c| pick(c, true)),
             cluster: self.cluster.as_ref().map(|c| pick(c, true)),
@@ -345,7 +347,7 @@ impl Panel {
                 .map(|c| Covariate {
                     name: c.name.clone(),
                     values: match &c.values {
-                        CovariateValues::Numeric(v) => CovariateValues::Numeric(pick_f(v)),
+                        CovariateValues::Numeric(v) => CovariateValues::Numeric(pick_f(v).into()),
                         CovariateValues::Categorical(k) => CovariateValues::Categorical(pick(k, true)),
                     },
                 })
@@ -391,7 +393,7 @@ impl Panel {
             source: c.source,
         });
         Ok(Panel {
-            age,
+            age: age.into(),
             calendar,
             ..self.clone()
         })

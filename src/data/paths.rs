@@ -9,7 +9,7 @@ impl Panel {
     /// Each participant's youngest age, by participant code.
     pub fn first_ages(&self) -> Vec<f64> {
         let mut first = vec![f64::INFINITY; self.id.n_levels()];
-        for (&k, &a) in self.id.codes.iter().zip(&self.age) {
+        for (&k, &a) in self.id.codes.iter().zip(self.age.iter()) {
             first[k as usize] = first[k as usize].min(a);
         }
         first

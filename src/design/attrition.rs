@@ -97,10 +97,10 @@ pub(super) fn attrition(
         }
         stayer[k] = last_seen + 1 == all.len();
     }
-    let mut variables: Vec<(String, Vec<f64>)> = vec![(panel.roles.outcome.clone(), panel.outcome.clone())];
+    let mut variables: Vec<(String, Vec<f64>)> = vec![(panel.roles.outcome.clone(), panel.outcome.to_vec())];
     for c in &panel.covariates {
         if let crate::data::CovariateValues::Numeric(v) = &c.values {
-            variables.push((c.name.clone(), v.clone()));
+            variables.push((c.name.clone(), v.to_vec()));
         }
     }
     let mut baseline = Vec::new();

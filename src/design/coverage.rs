@@ -254,7 +254,7 @@ fn span(panel: &Panel) -> Span {
     let n_id = panel.id.n_levels();
     let first = panel.first_ages();
     let mut last = vec![f64::NEG_INFINITY; n_id];
-    for (&k, &a) in panel.id.codes.iter().zip(&panel.age) {
+    for (&k, &a) in panel.id.codes.iter().zip(panel.age.iter()) {
         last[k as usize] = last[k as usize].max(a);
     }
     let (lo, hi) = panel

@@ -24,6 +24,7 @@ impl CohortColumns {
     pub fn new(frame: &ModelFrame, cohorts: &[String], k_of: &[usize]) -> CohortColumns {
         let n = k_of.len();
         let p0 = frame.problem.p();
+        let mut x_store = vec![0.0; p0];
         let nb = frame.basis.n_columns();
         let indicator = |k: usize| -> Vec<f64> { (0..n).map(|r| f64::from(u8::from(k_of[r] == k))).collect() };
         let mut c = CohortColumns {
@@ -44,7 +45,7 @@ impl CohortColumns {
                     (0..n)
                         .map(|r| {
                             if k_of[r] == k {
-                                frame.problem.x[r * p0 + 1 + j]
+                                frame.problem.x_row(r, &mut x_store)[1 + j]
                             } else {
                                 0.0
                             }
@@ -70,8 +71,9 @@ pub(super) fn with_columns(problem: &MixedProblem, names: &[String], cols: &[Vec
     let p = problem.p();
     let k = cols.len();
     let mut x = Vec::with_capacity(n * (p + k));
+    let mut x_store = vec![0.0; p];
     for r in 0..n {
-        x.extend_from_slice(&problem.x[r * p..(r + 1) * p]);
+        x.extend_from_slice(problem.x_row(r, &mut x_store));
         x.extend(cols.iter().map(|c| c[r]));
     }
     let mut x_names = problem.x_names.clone();
@@ -79,7 +81,7 @@ pub(super) fn with_columns(problem: &MixedProblem, names: &[String], cols: &[Vec
     MixedProblem {
         y: problem.y.clone(),
         x_names,
-        x,
+        x: x.into(),
         terms: problem.terms.clone(),
     }
 }

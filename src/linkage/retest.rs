@@ -117,7 +117,7 @@ pub fn check(panel: &Panel, frame: &ModelFrame, form: RetestForm) -> Result<Rete
 pub fn check_with(panel: &Panel, frame: &ModelFrame, base: &lmm::Fit, form: RetestForm) -> Result<RetestReport> {
     let col = column(panel, form);
     let p = frame.problem.p();
-    let r2 = r_squared(&frame.problem.x, p, &col);
+    let r2 = r_squared(&frame.problem.x_rows(), p, &col);
     let vif = 1.0 / (1.0 - r2).max(f64::MIN_POSITIVE);
     let age_slope_without = base.beta[1];
     let why = "the number of prior assessments is fixed by age when everyone of an age has been tested equally often \

@@ -50,9 +50,10 @@ pub(super) fn between_within(
     // Column 1 is the linear term (age − centre): replace it by the baseline
     // age, and append time since baseline.
     let mut within = Vec::with_capacity(n);
+    let x = problem.x.stored_mut(n, p);
     for r in 0..n {
         let a0 = first[panel.id.codes[r] as usize];
-        problem.x[r * p + 1] = a0 - center;
+        x[r * p + 1] = a0 - center;
         within.push(panel.age[r] - a0);
     }
     problem.x_names[1] = "baseline age".into();

@@ -55,7 +55,7 @@ fn subset(problem: &MixedProblem, rows: &[usize], cols: &[usize]) -> MixedProble
                 level_names: names.into(),
                 level,
                 columns: t.columns.clone(),
-                z: t.z.iter().map(|z| rows.iter().map(|&r| z[r]).collect()).collect(),
+                z: t.z.iter().map(|z| z.pick(rows).into()).collect(),
                 covariance: t.covariance,
             }
         })
@@ -63,10 +63,15 @@ fn subset(problem: &MixedProblem, rows: &[usize], cols: &[usize]) -> MixedProble
     MixedProblem {
         y: rows.iter().map(|&r| problem.y[r]).collect(),
         x_names: cols.iter().map(|&c| problem.x_names[c].clone()).collect(),
-        x: rows
-            .iter()
-            .flat_map(|&r| cols.iter().map(move |&c| problem.x[r * p + c]))
-            .collect(),
+        x: {
+            let mut x_store = vec![0.0; p];
+            let mut x = Vec::with_capacity(rows.len() * cols.len());
+            for &r in rows {
+                let xr = problem.x_row(r, &mut x_store);
+                x.extend(cols.iter().map(|&c| xr[c]));
+            }
+            x.into()
+        },
         terms,
     }
 }

@@ -478,6 +478,7 @@ fn level_rows<const Q: usize, const C: usize>(
     let z = &term.z[..q1];
     let mut z1_store = vec![0.0; q1];
     let z1 = &mut z1_store[..q1];
+    let mut x_store = vec![0.0; p];
     let mut at = 0;
     while at < n {
         let level = term.level[order.map_or(at, |o| o[at])] as usize;
@@ -495,9 +496,9 @@ fn level_rows<const Q: usize, const C: usize>(
             }
             at += 1;
             for (zc, col) in z1.iter_mut().zip(z) {
-                *zc = col[r];
+                *zc = col.at(r);
             }
-            add_primary_row(gi, zi, z1, &problem.x[r * p..(r + 1) * p], problem.y[r] - y_shift);
+            add_primary_row(gi, zi, z1, problem.x_row(r, &mut x_store), problem.y[r] - y_shift);
             for (s, &kt) in secondary.iter().enumerate() {
                 let t = &terms[kt];
                 let qs = t.q();
@@ -506,7 +507,7 @@ fn level_rows<const Q: usize, const C: usize>(
                 let start = link_start(links, link_values, level_start_link, s, offset, q1 * qs);
                 for (a, za) in z1.iter().enumerate() {
                     for c in 0..qs {
-                        link_values[start + a * qs + c] += za * t.z[c][r];
+                        link_values[start + a * qs + c] += za * t.z[c].at(r);
                     }
                 }
             }
@@ -567,6 +568,7 @@ fn dense_rows<const C: usize>(
     let mut w: Vec<(usize, f64)> = Vec::with_capacity(q2_total.min(64));
     let mut v_store = vec![0.0; c1];
     let v = &mut v_store[..c1];
+    let mut x_store = vec![0.0; p];
     for at in 0..n {
         let r = order.map_or(at, |o| o[at]);
         w.clear();
@@ -575,10 +577,11 @@ fn dense_rows<const C: usize>(
             let qs = t.q();
             let offset = secondary_offset[s] + t.level[r] as usize * qs;
             for c in 0..qs {
-                w.push((offset + c, t.z[c][r]));
+                w.push((offset + c, t.z[c].at(r)));
             }
         }
-        v[..p].copy_from_slice(&problem.x[r * p..(r + 1) * p]);
+        let xr = problem.x_row(r, &mut x_store);
+        v[..p].copy_from_slice(xr);
         v[p] = problem.y[r] - y_shift;
         let target = match groups {
             Some(g) => &mut dense_groups[g[r] as usize][..],
@@ -664,7 +667,7 @@ fn symmetrise(d: &mut [f64], m: usize) {
 /// cross-products of the response small.
 pub(crate) fn centring(problem: &MixedProblem) -> (Option<usize>, f64) {
     let (n, p) = (problem.n(), problem.p());
-    let intercept = (0..p).find(|&j| (0..n).all(|r| problem.x[r * p + j] == 1.0));
+    let intercept = problem.x.ones_column(n, p);
     let y_shift = match intercept {
         Some(_) if n > 0 => problem.y.iter().sum::<f64>() / n as f64,
         _ => 0.0,
@@ -720,7 +723,7 @@ mod tests {
         MixedProblem {
             y: (0..n).map(|_| rng.normal()).collect(),
             x_names: (0..p).map(|c| c.to_string()).collect(),
-            x: pick(&x, p),
+            x: pick(&x, p).into(),
             terms: vec![
                 RandomTermData::numbered(
                     "id",
@@ -824,8 +827,8 @@ mod tests {
         for r in 0..problem.n() {
             let i = t[0].level[r] as usize;
             let j = t[1].level[r] as usize;
-            let z = [t[0].z[0][r], t[0].z[1][r]];
-            let row: Vec<f64> = problem.x[r * 3..r * 3 + 3]
+            let z = [t[0].z[0].at(r), t[0].z[1].at(r)];
+            let row: Vec<f64> = problem.x_rows()[r * 3..r * 3 + 3]
                 .iter()
                 .copied()
                 .chain([problem.y[r] - 0.25])
@@ -834,7 +837,7 @@ mod tests {
             for a in 0..2 {
                 for b in 0..2 {
                     g[i * 4 + a * 2 + b] += z[a] * z[b];
-                    block[a * 2 + b] += z[a] * t[1].z[b][r];
+                    block[a * 2 + b] += z[a] * t[1].z[b].at(r);
                 }
                 for c in 0..4 {
                     zxy[i * 8 + a * 4 + c] += z[a] * row[c];
@@ -905,8 +908,8 @@ mod tests {
             for r in 0..problem.n() {
                 let mut w = vec![0.0; m];
                 let j = school.level[r] as usize;
-                (w[2 * j], w[2 * j + 1]) = (school.z[0][r], school.z[1][r]);
-                w[12..12 + p].copy_from_slice(&problem.x[r * p..(r + 1) * p]);
+                (w[2 * j], w[2 * j + 1]) = (school.z[0].at(r), school.z[1].at(r));
+                w[12..12 + p].copy_from_slice(&problem.x_rows()[r * p..(r + 1) * p]);
                 w[12 + p] = problem.y[r] - 0.25;
                 for a in 0..m {
                     for b in 0..=a {

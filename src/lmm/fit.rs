@@ -874,7 +874,7 @@ mod tests {
         let problem = MixedProblem {
             y: (0..n).map(|r| (r % 7) as f64).collect(),
             x_names: vec!["intercept".into()],
-            x: vec![1.0; n],
+            x: vec![1.0; n].into(),
             terms: vec![term("pupil", 6_000), term("rater", 4_500)],
         };
         let blocked = FitOptions {
@@ -921,7 +921,7 @@ mod near_tests {
             }
         }
         MixedProblem {
-            y,
+            y: y.into(),
             x_names: vec!["intercept".into(), "age".into()],
             x: age.iter().flat_map(|&a| [1.0, a]).collect(),
             terms: vec![RandomTermData::numbered(

@@ -495,7 +495,7 @@ mod tests {
         }];
         if schools > 0 {
             let (columns, z) = if slope {
-                (vec!["intercept", "a"], vec![vec![1.0; n], terms[0].z[1].to_vec()])
+                (vec!["intercept", "a"], vec![vec![1.0; n], terms[0].z[1].to_vec(n)])
             } else {
                 (vec!["intercept"], vec![vec![1.0; n]])
             };
@@ -507,9 +507,9 @@ mod tests {
         };
         (
             MixedProblem {
-                y,
+                y: y.into(),
                 x_names: vec!["1".into(), "a".into(), "a2".into()],
-                x,
+                x: x.into(),
                 terms,
             },
             grouping,

@@ -23,11 +23,14 @@ pub mod crossprod;
 pub mod fit;
 pub mod grouped;
 pub mod optimize;
+pub mod rows;
 mod search;
 mod sensitivity;
 mod solution;
 mod sparse;
 mod start;
+
+pub use rows::{Fixed, RowMaker, ZColumn};
 
 pub use fit::{Detail, Fit, FitInfo, FitOptions, Prepared, RandomComponent, Route, fit, fit_from, fit_near};
 
@@ -89,10 +92,10 @@ pub struct RandomTermData {
     pub level: Arc<[u32]>,
     /// Names of the coefficients (for example `"intercept"`, `"age"`).
     pub columns: Vec<String>,
-    /// The model-matrix columns of this term, one column of length n per
-    /// coefficient (shared where columns repeat: one column of ones serves
-    /// every intercept of a frame).
-    pub z: Vec<Arc<[f64]>>,
+    /// The model-matrix columns of this term, one column of n entries per
+    /// coefficient: ones, or the data's own columns, shared and not copied
+    /// ([`ZColumn`]).
+    pub z: Vec<ZColumn>,
     /// The structure of the coefficients' covariance.
     pub covariance: Covariance,
 }
@@ -154,12 +157,13 @@ impl RandomTermData {
 /// A mixed-model problem: response, fixed design and random terms.
 #[derive(Debug, Clone)]
 pub struct MixedProblem {
-    /// The response, length n.
-    pub y: Vec<f64>,
+    /// The response, length n (shared, not copied, with the data).
+    pub y: Arc<[f64]>,
     /// Names of the fixed-effect columns, length p.
     pub x_names: Vec<String>,
-    /// The fixed-effect design, row-major n×p.
-    pub x: Vec<f64>,
+    /// The fixed-effect design, n×p: stored row-major, or made row by row
+    /// ([`Fixed`]).
+    pub x: Fixed,
     /// The random-effect terms (possibly none).
     pub terms: Vec<RandomTermData>,
 }
@@ -172,6 +176,17 @@ impl MixedProblem {
     /// Number of fixed-effect columns.
     pub fn p(&self) -> usize {
         self.x_names.len()
+    }
+    /// Row `r` of X, through `buf` (of length p) when the rows are made on
+    /// demand.
+    #[inline(always)]
+    pub fn x_row<'a>(&'a self, r: usize, buf: &'a mut [f64]) -> &'a [f64] {
+        self.x.row(r, buf)
+    }
+    /// X whole, n×p row-major (made in full when the rows are made on
+    /// demand).
+    pub fn x_rows(&self) -> std::borrow::Cow<'_, [f64]> {
+        self.x.rows(self.n(), self.p())
     }
     /// Total number of covariance parameters θ.
     pub fn n_theta(&self) -> usize {

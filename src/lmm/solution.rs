@@ -86,10 +86,16 @@ pub(super) fn marginal(problem: &MixedProblem, beta: &[f64]) -> Vec<f64> {
     if p == 0 {
         return vec![0.0; problem.n()];
     }
-    problem
-        .x
-        .chunks_exact(p)
-        .map(|xr| xr.iter().zip(beta).map(|(a, b)| a * b).sum())
+    let mut x_store = vec![0.0; p];
+    (0..problem.n())
+        .map(|r| {
+            problem
+                .x_row(r, &mut x_store)
+                .iter()
+                .zip(beta)
+                .map(|(a, b)| a * b)
+                .sum()
+        })
         .collect()
 }
 
@@ -133,15 +139,16 @@ pub(super) fn conditional(problem: &MixedProblem, t: &[Vec<f64>], beta: &[f64], 
     let n = problem.n();
     let mut fitted = vec![0.0; n];
     let mut marginal = vec![0.0; n];
+    let mut x_store = vec![0.0; p];
     for r in 0..n {
-        let xr = &problem.x[r * p..(r + 1) * p];
+        let xr = problem.x_row(r, &mut x_store);
         let xb: f64 = xr.iter().zip(beta).map(|(a, b)| a * b).sum();
         marginal[r] = xb;
         let mut zb = 0.0;
         for (k, term) in problem.terms.iter().enumerate() {
             let b = &blups[k][term.level[r] as usize];
             for (c, bc) in b.iter().enumerate() {
-                zb += term.z[c][r] * bc;
+                zb += term.z[c].at(r) * bc;
             }
         }
         fitted[r] = xb + zb;

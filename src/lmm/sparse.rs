@@ -458,10 +458,11 @@ fn gather(
     let mut zxy = vec![0.0; n_z * c1];
     let mut xy = vec![0.0; c1 * c1];
     let mut row = vec![0.0; c1];
+    let mut x_store = vec![0.0; p];
     let n_terms = problem.terms.len();
     let mut blocks = vec![0usize; n_terms];
     for r in 0..n {
-        row[..p].copy_from_slice(&problem.x[r * p..(r + 1) * p]);
+        row[..p].copy_from_slice(problem.x_row(r, &mut x_store));
         row[p] = problem.y[r] - y_shift;
         for a in 0..c1 {
             for b in 0..c1 {
@@ -472,7 +473,7 @@ fn gather(
             blocks[k] = term_block[k] + t.level[r] as usize;
             let col = block_col[blocks[k]];
             for (c, z) in t.z.iter().enumerate() {
-                let zr = z[r];
+                let zr = z.at(r);
                 if zr != 0.0 {
                     let dst = &mut zxy[(col + c) * c1..(col + c + 1) * c1];
                     for (d, v) in dst.iter_mut().zip(&row) {
@@ -495,12 +496,12 @@ fn gather(
                 let start = pair_raw[at];
                 let (ti, tj) = (&problem.terms[ki], &problem.terms[kj]);
                 for a in 0..qi {
-                    let za = ti.z[a][r];
+                    let za = ti.z[a].at(r);
                     if za == 0.0 {
                         continue;
                     }
                     for b in 0..qj {
-                        raw[start + a * qj + b] += za * tj.z[b][r];
+                        raw[start + a * qj + b] += za * tj.z[b].at(r);
                     }
                 }
             }
@@ -795,9 +796,9 @@ mod tests {
             }
         }
         let problem = MixedProblem {
-            y,
+            y: y.into(),
             x_names: vec!["1".into(), "a".into()],
-            x,
+            x: x.into(),
             terms: vec![
                 RandomTermData::numbered("id", n_id, id, &["intercept", "a"], vec![vec![1.0; n], a_col.clone()]),
                 RandomTermData::numbered("rater", raters, ra, &["intercept", "a"], vec![vec![1.0; n], a_col]),

@@ -16,8 +16,7 @@ pub(super) fn base_start(problem: &MixedProblem) -> Vec<f64> {
         for j in 0..q {
             for i in j..q {
                 if i == j {
-                    let z = &t.z[i];
-                    let rms = (z.iter().map(|v| v * v).sum::<f64>() / z.len().max(1) as f64).sqrt();
+                    let rms = t.z[i].rms(problem.n());
                     let rms = if rms > 0.0 { rms } else { 1.0 };
                     theta.push(0.5 / ((q as f64).sqrt() * rms));
                 } else {
@@ -234,10 +233,16 @@ fn ols_rss(cp: &CrossProducts, beta: &[f64]) -> f64 {
 /// marked `usable`.
 fn rss_over_rows(problem: &MixedProblem, cp: &CrossProducts, beta: &[f64], usable: &[bool]) -> f64 {
     let (p, term) = (cp.p, &problem.terms[cp.primary.expect("a primary term")]);
+    let mut x_store = vec![0.0; p];
     (0..cp.n)
         .filter(|&r| usable[term.level[r] as usize])
         .map(|r| {
-            let xb: f64 = problem.x[r * p..(r + 1) * p].iter().zip(beta).map(|(a, b)| a * b).sum();
+            let xb: f64 = problem
+                .x_row(r, &mut x_store)
+                .iter()
+                .zip(beta)
+                .map(|(a, b)| a * b)
+                .sum();
             let e = problem.y[r] - cp.y_shift - xb;
             e * e
         })

@@ -89,11 +89,12 @@ pub fn replicate(plan: &Plan, population: &Population, design: &Candidate, d: us
         // are the simulated rows in order, so only the outcome changes.
         let middle = format!("{}", design.entry_ages[design.entry_ages.len() / 2]);
         let mut shifted = panel.clone();
-        for (y, row) in shifted.outcome.iter_mut().zip(&sim.rows) {
-            if row.cohort == middle {
-                *y += c.offset;
-            }
-        }
+        shifted.outcome = panel
+            .outcome
+            .iter()
+            .zip(&sim.rows)
+            .map(|(&y, row)| if row.cohort == middle { y + c.offset } else { y })
+            .collect();
         outcome.level_p = p_of(&shifted);
     }
     outcome
@@ -107,7 +108,7 @@ fn with_retest(mut panel: Panel, population: &Population) -> Panel {
             panel.roles.covariates.push("retest".into());
             panel.covariates.push(Covariate {
                 name: "retest".into(),
-                values: CovariateValues::Numeric(column),
+                values: CovariateValues::Numeric(column.into()),
             });
         }
     }

@@ -12,6 +12,10 @@
 
 use serde::{Deserialize, Serialize};
 
+/// Spline columns [`AgeBasis::fill_eval`] keeps on the stack (20 interior
+/// knots make 21).
+const SPLINE_COLUMNS_ON_STACK: usize = 32;
+
 /// A fitted age basis: knows how to evaluate its columns and derivatives.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "snake_case")]
@@ -76,6 +80,13 @@ impl AgeBasis {
 
     /// Raw spline columns at x (value, first or second derivative), before centring.
     fn spline_raw(knots: &[f64], x: f64, order: u8) -> Vec<f64> {
+        let mut v = vec![0.0; knots.len() - 1];
+        Self::spline_raw_into(knots, x, order, &mut v);
+        v
+    }
+
+    /// [`AgeBasis::spline_raw`] into `out` (one entry per knot but the last).
+    fn spline_raw_into(knots: &[f64], x: f64, order: u8, out: &mut [f64]) {
         let kk = knots.len();
         let last = knots[kk - 1];
         let range = last - knots[0];
@@ -88,17 +99,15 @@ impl AgeBasis {
                 _ => 6.0 * (pos(x - knots[k]) - pos(x - last)) / den,
             }
         };
-        let mut v = Vec::with_capacity(kk - 1);
-        v.push(match order {
+        out[0] = match order {
             0 => x,
             1 => 1.0,
             _ => 0.0,
-        });
+        };
         let dlast = d(kk - 2);
         for k in 0..kk - 2 {
-            v.push((d(k) - dlast) / scale);
+            out[k + 1] = (d(k) - dlast) / scale;
         }
-        v
     }
 
     /// The basis columns at `age`.
@@ -116,15 +125,33 @@ impl AgeBasis {
         }
     }
 
-    /// [`AgeBasis::eval`], appended to `out` (no allocation for a
-    /// polynomial: the model frame calls it once per row).
-    pub fn extend_eval(&self, age: f64, out: &mut Vec<f64>) {
+    /// [`AgeBasis::eval`] into the first [`AgeBasis::n_columns`] entries of
+    /// `out`, by the same arithmetic and without allocation (the model
+    /// frame calls it once per row and pass).
+    pub fn fill_eval(&self, age: f64, out: &mut [f64]) {
         match self {
             AgeBasis::Polynomial { degree, center } => {
                 let a = age - center;
-                out.extend((1..=*degree).map(|k| a.powi(k as i32)));
+                for (k, o) in out[..*degree].iter_mut().enumerate() {
+                    *o = a.powi(k as i32 + 1);
+                }
             }
-            AgeBasis::Spline { .. } => out.extend(self.eval(age)),
+            AgeBasis::Spline { knots, center } => {
+                let m = knots.len() - 1;
+                let mut on_stack = [0.0; SPLINE_COLUMNS_ON_STACK];
+                let mut on_heap = Vec::new();
+                let c = if m <= SPLINE_COLUMNS_ON_STACK {
+                    &mut on_stack[..m]
+                } else {
+                    on_heap.resize(m, 0.0);
+                    &mut on_heap[..]
+                };
+                Self::spline_raw_into(knots, *center, 0, c);
+                Self::spline_raw_into(knots, age, 0, &mut out[..m]);
+                for (o, b) in out[..m].iter_mut().zip(c.iter()) {
+                    *o -= b;
+                }
+            }
         }
     }
 

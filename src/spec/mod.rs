@@ -16,7 +16,7 @@ pub use basis::AgeBasis;
 
 use crate::data::{CovariateValues, Panel};
 use crate::error::{Error, Result};
-use crate::lmm::{Covariance, Method, MixedProblem, RandomTermData};
+use crate::lmm::{Covariance, Fixed, Method, MixedProblem, RandomTermData, RowMaker, ZColumn};
 
 /// How age enters the fixed part.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -280,9 +280,10 @@ fn distinct_up_to(v: &[f64], k: usize) -> usize {
     seen.len()
 }
 
-/// The data of one random term: its grouping codes and the columns of Z.
-/// `ones` is the frame's one column of ones, shared by its intercepts.
-fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64, ones: &Arc<[f64]>) -> Result<RandomTermData> {
+/// The data of one random term: its grouping codes and the columns of Z,
+/// which are the panel's own columns (ones for an intercept, age less the
+/// basis centre for an age slope), shared and not copied.
+fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64) -> Result<RandomTermData> {
     let age_name = &panel.roles.age;
     let coded_numeric;
     let by_role = |role: &Option<String>, codes: &'a Option<crate::data::Codes>| {
@@ -323,20 +324,20 @@ fn random_term<'a>(panel: &'a Panel, rs: &RandomSpec, center: f64, ones: &Arc<[f
         ));
     }
     let mut columns = Vec::new();
-    let mut z: Vec<Arc<[f64]>> = Vec::new();
+    let mut z: Vec<ZColumn> = Vec::new();
     if rs.intercept {
         columns.push("intercept".to_string());
-        z.push(Arc::clone(ones));
+        z.push(ZColumn::Ones);
     }
     for s in &rs.slopes {
         if s == age_name {
             columns.push(age_name.clone());
-            z.push(panel.age.iter().map(|a| a - center).collect::<Vec<f64>>().into());
+            z.push(ZColumn::Less(Arc::clone(&panel.age), center));
         } else if let Some(cv) = panel.covariates.iter().find(|c| &c.name == s) {
             match &cv.values {
                 CovariateValues::Numeric(v) => {
                     columns.push(s.clone());
-                    z.push(v.as_slice().into());
+                    z.push(ZColumn::Values(Arc::clone(v)));
                 }
                 CovariateValues::Categorical(_) => {
                     return Err(spec_err(
@@ -406,6 +407,64 @@ fn describe(panel: &Panel, basis: &AgeBasis, terms: &[RandomTermData], method: c
     description
 }
 
+/// The rows of a frame's fixed design, made from the panel's columns on
+/// demand: the intercept, the age basis at the row's age, and the
+/// covariates (numeric as they are, factors by treatment coding). The
+/// frame holds no n×p copy of them (notes/decisions.md, "Rows made on
+/// demand").
+#[derive(Debug)]
+struct FrameRows {
+    age: Arc<[f64]>,
+    basis: AgeBasis,
+    covariates: Vec<CovariateColumn>,
+}
+
+/// One covariate column of X.
+#[derive(Debug)]
+enum CovariateColumn {
+    /// A numeric covariate as it is.
+    Numeric(Arc<[f64]>),
+    /// One level of a factor: 1 on its rows, 0 elsewhere.
+    Level(Arc<[u32]>, u32),
+}
+
+impl CovariateColumn {
+    #[inline(always)]
+    fn at(&self, r: usize) -> f64 {
+        match self {
+            CovariateColumn::Numeric(v) => v[r],
+            CovariateColumn::Level(codes, level) => {
+                if codes[r] == *level {
+                    1.0
+                } else {
+                    0.0
+                }
+            }
+        }
+    }
+}
+
+impl RowMaker for FrameRows {
+    fn n(&self) -> usize {
+        self.age.len()
+    }
+    fn p(&self) -> usize {
+        1 + self.basis.n_columns() + self.covariates.len()
+    }
+    #[inline]
+    fn fill(&self, r: usize, out: &mut [f64]) {
+        let nb = self.basis.n_columns();
+        out[0] = 1.0;
+        self.basis.fill_eval(self.age[r], &mut out[1..1 + nb]);
+        for (o, c) in out[1 + nb..].iter_mut().zip(&self.covariates) {
+            *o = c.at(r);
+        }
+    }
+    fn ones(&self) -> Option<usize> {
+        Some(0)
+    }
+}
+
 /// Build the model frame: fixed design, random terms and reference row.
 ///
 /// # Errors
@@ -418,45 +477,36 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
     let mut x_names = vec!["intercept".to_string()];
     x_names.extend(basis.names(&age_name));
     // Covariate columns: numeric as is, factors by treatment coding.
-    let mut cov_cols: Vec<Vec<f64>> = Vec::new();
+    let mut covariates: Vec<CovariateColumn> = Vec::new();
     for c in &panel.covariates {
         match &c.values {
             CovariateValues::Numeric(v) => {
                 x_names.push(c.name.clone());
-                cov_cols.push(v.clone());
+                covariates.push(CovariateColumn::Numeric(Arc::clone(v)));
             }
             CovariateValues::Categorical(codes) => {
                 for (lvl, label) in codes.levels.iter().enumerate().skip(1) {
                     x_names.push(format!("{}={}", c.name, label));
-                    cov_cols.push(
-                        codes
-                            .codes
-                            .iter()
-                            .map(|&k| if k as usize == lvl { 1.0 } else { 0.0 })
-                            .collect(),
-                    );
+                    covariates.push(CovariateColumn::Level(Arc::clone(&codes.codes), lvl as u32));
                 }
             }
         }
     }
-    let p = x_names.len();
-    let mut x = Vec::with_capacity(n * p);
-    for r in 0..n {
-        x.push(1.0);
-        basis.extend_eval(panel.age[r], &mut x);
-        for c in &cov_cols {
-            x.push(c[r]);
-        }
-    }
-    debug_assert_eq!(x.len(), n * p);
-    let covariate_reference: Vec<f64> = cov_cols.iter().map(|c| c.iter().sum::<f64>() / n as f64).collect();
+    let covariate_reference: Vec<f64> = covariates
+        .iter()
+        .map(|c| (0..n).map(|r| c.at(r)).sum::<f64>() / n as f64)
+        .collect();
+    let rows = FrameRows {
+        age: Arc::clone(&panel.age),
+        basis: basis.clone(),
+        covariates,
+    };
 
     let random = spec.random_terms(panel);
     let mut terms = Vec::with_capacity(random.len());
     let center = basis.center();
-    let ones: Arc<[f64]> = vec![1.0; n].into();
     for rs in &random {
-        terms.push(random_term(panel, rs, center, &ones)?);
+        terms.push(random_term(panel, rs, center)?);
     }
     let age_range = panel
         .age
@@ -467,9 +517,9 @@ pub fn build_frame(panel: &Panel, spec: &ModelSpec) -> Result<ModelFrame> {
     let description = describe(panel, &basis, &terms, spec.method);
     Ok(ModelFrame {
         problem: MixedProblem {
-            y: panel.outcome.clone(),
+            y: Arc::clone(&panel.outcome),
             x_names,
-            x,
+            x: Fixed::Made(Arc::new(rows)),
             terms,
         },
         basis,

@@ -30,9 +30,9 @@ fn balanced(a: usize, n: usize, seed: u64) -> (MixedProblem, Vec<Vec<f64>>) {
     }
     let rows = y.len();
     let problem = MixedProblem {
-        y,
+        y: y.into(),
         x_names: vec!["intercept".into()],
-        x: vec![1.0; rows],
+        x: vec![1.0; rows].into(),
         terms: vec![RandomTermData {
             factor: "group".into(),
             level_names: (0..a).map(|g| format!("g{g}")).collect(),
@@ -108,13 +108,15 @@ fn reml_equals_anova_estimators_in_balanced_one_way_design() {
 fn zero_between_group_variation_is_a_reported_boundary_estimate() {
     let (mut problem, _) = balanced(10, 4, 7);
     // Centre each group on the grand mean 10, so all group means are equal.
+    let mut y = problem.y.to_vec();
     for g in 0..10 {
         let rows = g * 4..(g + 1) * 4;
-        let m: f64 = problem.y[rows.clone()].iter().sum::<f64>() / 4.0;
+        let m: f64 = y[rows.clone()].iter().sum::<f64>() / 4.0;
         for r in rows {
-            problem.y[r] += 10.0 - m;
+            y[r] += 10.0 - m;
         }
     }
+    problem.y = y.into();
     let n = problem.y.len() as f64;
     let mean = problem.y.iter().sum::<f64>() / n;
     let sst: f64 = problem.y.iter().map(|v| (v - mean).powi(2)).sum();

@@ -73,7 +73,15 @@ fn panel(seed: u64, per_cohort: usize, sd_int: &[f64], sd_res: &[f64], schools: 
         names: (0..k).map(|c| format!("cohort {c}")).collect(),
         of_row: group,
     };
-    (MixedProblem { y, x_names, x, terms }, grouping)
+    (
+        MixedProblem {
+            y: y.into(),
+            x_names,
+            x: x.into(),
+            terms,
+        },
+        grouping,
+    )
 }
 
 /// The rows of one cohort, with its own intercept and slope only.
@@ -87,14 +95,14 @@ fn cohort_rows(problem: &MixedProblem, grouping: &Grouping, c: u32) -> MixedProb
         x_names: problem.x_names[..2].to_vec(),
         x: rows
             .iter()
-            .flat_map(|&r| problem.x[r * p..r * p + 2].to_vec())
+            .flat_map(|&r| problem.x_rows()[r * p..r * p + 2].to_vec())
             .collect(),
         terms: vec![RandomTermData {
             factor: t.factor.clone(),
             level_names: (0..rows.len() / 4).map(|i| format!("L{i}")).collect(),
             level: rows.iter().map(|&r| t.level[r] - first).collect(),
             columns: t.columns.clone(),
-            z: t.z.iter().map(|z| rows.iter().map(|&r| z[r]).collect()).collect(),
+            z: t.z.iter().map(|z| z.pick(&rows).into()).collect(),
             covariance: t.covariance,
         }],
     }

@@ -190,3 +190,94 @@ fn spline_with_quantile_knots_is_invariant_to_the_unit_of_age() {
     );
     assert_close(&m.fit.fitted, &years.fit.fitted, "spline in months");
 }
+
+/// Closed-form identity: a model frame makes X's rows on demand from the
+/// panel's columns and takes Z's columns from the panel without copying;
+/// the same problem with X and Z stored gives the same fit to the bit
+/// (same arithmetic in the same order). The model has every kind of
+/// column: a spline in age, a numeric and a categorical covariate, and
+/// random terms with an age slope and a covariate slope.
+#[test]
+fn rows_made_on_demand_fit_as_stored_rows() {
+    use braid::lmm::{FitOptions, Fixed, ZColumn};
+    use braid::spec::RandomSpec;
+    let text = std::fs::read_to_string(crate::common::data_dir().join("sim_school.csv")).unwrap();
+    let mut csv = String::new();
+    for (k, line) in text.lines().enumerate() {
+        if k == 0 {
+            csv.push_str(&format!("{line},dose,site\n"));
+        } else {
+            let dose = ((k * 37) % 11) as f64 / 4.0;
+            csv.push_str(&format!("{line},{dose},{}\n", ["north", "east", "west"][k % 3]));
+        }
+    }
+    let path = crate::common::temp_dir("made_rows").join("with_covariates.csv");
+    std::fs::write(&path, csv).unwrap();
+    let mut roles = crate::common::roles("pupil", "age", "score");
+    roles.cluster = Some("school".into());
+    roles.covariates = vec!["dose".into(), "site".into()];
+    let panel = braid::data::load(&path, &roles, Default::default()).unwrap();
+    let term = |factor: &str, slopes: &[&str]| RandomSpec {
+        factor: factor.into(),
+        intercept: true,
+        slopes: slopes.iter().map(|s| (*s).to_string()).collect(),
+        covariance: Default::default(),
+    };
+    let spec = ModelSpec {
+        method: Method::Reml,
+        age: AgeSpec::Spline {
+            interior_knots: Some(2),
+            knots: None,
+        },
+        center: None,
+        random: Some(vec![term("pupil", &["age"]), term("school", &["dose"])]),
+    };
+    let frame = braid::spec::build_frame(&panel, &spec).unwrap();
+    let made = &frame.problem;
+    assert!(matches!(made.x, Fixed::Made(_)), "the frame makes its rows");
+    // Each made row is [1, basis at age, dose, site indicators], the basis
+    // evaluated by its allocating form (a separate path through the code).
+    let (dose, site) = match panel.covariates() {
+        [d, s] => (&d.values, &s.values),
+        _ => unreachable!("two covariates"),
+    };
+    let mut buf = vec![0.0; made.p()];
+    for r in 0..made.n() {
+        let mut want = vec![1.0];
+        want.extend(frame.basis.eval(panel.age()[r]));
+        match (dose, site) {
+            (braid::data::CovariateValues::Numeric(d), braid::data::CovariateValues::Categorical(c)) => {
+                want.push(d[r]);
+                let label = c.label(r);
+                want.extend(
+                    made.x_names[5..]
+                        .iter()
+                        .map(|n| f64::from(u8::from(*n == format!("site={label}")))),
+                );
+            }
+            _ => unreachable!("dose is numeric, site categorical"),
+        }
+        assert_eq!(made.x_row(r, &mut buf), &want[..], "row {r}");
+        assert_eq!(made.y[r], panel.outcome()[r]);
+    }
+    let mut stored = made.clone();
+    stored.x = Fixed::Stored(made.x_rows().into_owned());
+    for t in &mut stored.terms {
+        for z in &mut t.z {
+            *z = ZColumn::from(z.to_vec(made.n()));
+        }
+    }
+    let a = braid::lmm::fit(made, FitOptions::default()).unwrap();
+    let b = braid::lmm::fit(&stored, FitOptions::default()).unwrap();
+    assert_eq!(a.loglik.to_bits(), b.loglik.to_bits());
+    assert_eq!(a.theta, b.theta);
+    assert_eq!(a.beta, b.beta);
+    assert_eq!(a.cov_beta, b.cov_beta);
+    assert_eq!(a.fitted, b.fitted);
+    assert_eq!(a.residuals, b.residuals);
+    assert_eq!(
+        a.x_names.len(),
+        1 + 3 + 1 + 2,
+        "intercept, spline, dose, two site levels"
+    );
+}

@@ -442,7 +442,7 @@ mod tests {
         MixedProblem {
             y: (0..n).map(|_| rng.normal()).collect(),
             x_names: (0..p).map(|c| c.to_string()).collect(),
-            x,
+            x: x.into(),
             terms: vec![
                 RandomTermData::numbered("id", n_id, id, &["intercept", "a", "b", "c"][..q1], z1),
                 RandomTermData::numbered("school", 7, school, &["intercept", "a"][..school_q], zs),

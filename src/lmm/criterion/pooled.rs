@@ -103,9 +103,9 @@ mod tests {
         }
         let n = y.len();
         let problem = MixedProblem {
-            y,
+            y: y.into(),
             x_names: vec!["1".into(), "a".into(), "a2".into()],
-            x,
+            x: x.into(),
             terms: vec![RandomTermData::numbered(
                 "id",
                 n_id,

@@ -777,9 +777,9 @@ pub(super) mod tests {
             lvl2.push((rng.uniform() * 7.0) as u32);
         }
         MixedProblem {
-            y,
+            y: y.into(),
             x_names: vec!["a".into(), "b".into()],
-            x,
+            x: x.into(),
             terms: vec![
                 RandomTermData {
                     factor: "p".into(),
@@ -868,7 +868,7 @@ pub(super) mod tests {
         MixedProblem {
             y: (0..n).map(|_| rng.normal()).collect(),
             x_names: (0..p).map(|c| c.to_string()).collect(),
-            x,
+            x: x.into(),
             terms: vec![RandomTermData::numbered(
                 "p",
                 n / 3,

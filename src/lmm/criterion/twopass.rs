@@ -537,9 +537,9 @@ mod tests {
             }
         }
         let problem = MixedProblem {
-            y,
+            y: y.into(),
             x_names: vec!["1".into(), "a".into(), "a2".into(), "a_even".into()],
-            x,
+            x: x.into(),
             terms: vec![
                 RandomTermData::numbered("id", n_id, id, &["intercept", "a"], vec![vec![1.0; n], a_col.clone()]),
                 RandomTermData::numbered("school", schools, sc, &["intercept", "a"], vec![vec![1.0; n], a_col]),
