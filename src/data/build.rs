@@ -3,6 +3,7 @@
 //! the data.
 
 use std::path::Path;
+use std::sync::Arc;
 
 use super::cells::{label_at, label_ref, number_at};
 use super::read::{self, RawColumn};
@@ -34,6 +35,10 @@ pub(super) fn build(path: &Path, roles: &Roles, mut table: read::RawTable) -> Re
         .collect();
     let later: Vec<&str> = labels.iter().chain(&calendar).copied().collect();
     release(&mut table, &[&roles.outcome, &roles.age], &later);
+    // Shared from here on (the conversion copies once, now that the raw
+    // columns are gone, rather than at the end beside everything else).
+    let age: Arc<[f64]> = kept.age.into();
+    let outcome: Arc<[f64]> = kept.outcome.into();
     let (id, cohort, wave, cluster, covariates) = {
         let cells = Cells {
             path,
@@ -50,10 +55,11 @@ pub(super) fn build(path: &Path, roles: &Roles, mut table: read::RawTable) -> Re
         table: &table,
         rows: &kept.rows,
     };
-    let row: Vec<usize> = kept.rows.iter().map(|r| r + 1).collect();
-    let calendar = calendar_of(path, roles, &table, &kept.rows, &kept.age)?;
-    check_fixed_per_participant(&cells, roles, &id, cohort.as_ref(), &row)?;
-    check_design(path, roles, &id, &kept.age, wave.as_ref(), &row)?;
+    let calendar = calendar_of(path, roles, &table, &kept.rows, &age)?;
+    check_fixed_per_participant(&cells, roles, &id, cohort.as_ref())?;
+    check_design(path, roles, &id, &age, wave.as_ref(), &kept.rows)?;
+    // The 1-based file row of each kept row, in place.
+    let row: Vec<usize> = kept.rows.into_iter().map(|r| r + 1).collect();
     Ok(Panel {
         source: path.to_path_buf(),
         roles: roles.clone(),
@@ -61,8 +67,8 @@ pub(super) fn build(path: &Path, roles: &Roles, mut table: read::RawTable) -> Re
         dropped: kept.dropped,
         row,
         id,
-        age: kept.age.into(),
-        outcome: kept.outcome.into(),
+        age,
+        outcome,
         cohort,
         wave,
         cluster,
@@ -317,18 +323,17 @@ fn covariates(cells: &Cells, roles: &Roles, numeric: &[bool]) -> Result<Vec<Cova
 }
 
 /// A participant's cohort and birth date cannot change between waves.
-fn check_fixed_per_participant(
-    cells: &Cells,
-    roles: &Roles,
-    id: &Codes,
-    cohort: Option<&Codes>,
-    row: &[usize],
-) -> Result<()> {
+fn check_fixed_per_participant(cells: &Cells, roles: &Roles, id: &Codes, cohort: Option<&Codes>) -> Result<()> {
+    let row = |k: usize| cells.rows[k] + 1;
     let changed = |column: &str, who: usize, was: &str, f: usize, v: &str, k: usize| Error::Data {
         path: cells.path.to_path_buf(),
         message: format!(
             "participant '{}' has {column} '{}' in row {} but '{}' in row {}; a participant's {column} cannot change between waves",
-            id.levels[who], was, row[f], v, row[k]
+            id.levels[who],
+            was,
+            row(f),
+            v,
+            row(k)
         ),
     };
     // The cohort is coded already (every cell present): equal labels are
@@ -392,7 +397,7 @@ fn check_design(
     id: &Codes,
     age: &[f64],
     wave: Option<&Codes>,
-    row: &[usize],
+    kept_rows: &[usize],
 ) -> Result<()> {
     if id.n_levels() < 2 {
         return Err(Error::Data {
@@ -424,8 +429,8 @@ fn check_design(
                 "participant '{}' has two rows for wave '{}' (rows {} and {}); remove the duplicate or check the wave column",
                 id.label(r),
                 w.label(r),
-                row[prev],
-                row[r]
+                kept_rows[prev] + 1,
+                kept_rows[r] + 1
             ),
         });
     }
