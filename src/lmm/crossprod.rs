@@ -443,6 +443,10 @@ fn level_pass(
                 6 => level_rows::<$q, 6>(problem, k, secondary, order, y_shift, blocks, lists),
                 7 => level_rows::<$q, 7>(problem, k, secondary, order, y_shift, blocks, lists),
                 8 => level_rows::<$q, 8>(problem, k, secondary, order, y_shift, blocks, lists),
+                9 => level_rows::<$q, 9>(problem, k, secondary, order, y_shift, blocks, lists),
+                10 => level_rows::<$q, 10>(problem, k, secondary, order, y_shift, blocks, lists),
+                11 => level_rows::<$q, 11>(problem, k, secondary, order, y_shift, blocks, lists),
+                12 => level_rows::<$q, 12>(problem, k, secondary, order, y_shift, blocks, lists),
                 _ => level_rows::<$q, 0>(problem, k, secondary, order, y_shift, blocks, lists),
             }
         };
@@ -542,7 +546,7 @@ fn dense_pass(
             }
         };
     }
-    columns!(1, 2, 3, 4, 5, 6, 7, 8)
+    columns!(1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12)
 }
 
 /// [`dense_pass`] with the columns `C` of [X y] as a compile-time size (0:
@@ -784,7 +788,7 @@ mod tests {
     #[test]
     fn sized_level_pass_matches_the_run_time_one() {
         for q1 in 1..=5 {
-            for p in 1..=8 {
+            for p in 1..=12 {
                 let problem = problem(q1, p, (10 * q1 + p) as u64);
                 let sized = blocks(&problem, |pr, o, out| {
                     let mut lists = (Vec::new(), Vec::new(), Vec::new());
@@ -884,7 +888,7 @@ mod tests {
     // the zero entries of X left in.
     #[test]
     fn dense_part_is_the_row_sum_at_every_size() {
-        for p in 1..=8 {
+        for p in 1..=12 {
             let problem = problem(2, p, 70 + p as u64);
             let groups: Vec<u32> = (0..problem.n() as u32).map(|r| r % 3).collect();
             for (grouping, k) in [(None, 0), (Some(&groups[..]), 3)] {
@@ -897,6 +901,10 @@ mod tests {
                     6 => dense_of::<6>(&problem, grouping, k),
                     7 => dense_of::<7>(&problem, grouping, k),
                     8 => dense_of::<8>(&problem, grouping, k),
+                    9 => dense_of::<9>(&problem, grouping, k),
+                    10 => dense_of::<10>(&problem, grouping, k),
+                    11 => dense_of::<11>(&problem, grouping, k),
+                    12 => dense_of::<12>(&problem, grouping, k),
                     _ => dense_of::<0>(&problem, grouping, k),
                 };
                 assert_eq!(sized, general, "p {p}");

@@ -86,7 +86,7 @@ pub fn has_gradient(cp: &CrossProducts) -> bool {
 /// Measured: with p = 3 the one pass was about 15% faster than two passes
 /// on the 3,000-participant file (notes/benchmarks.md), and with p ≥ 12
 /// the two passes were faster.
-pub const ONE_PASS_MAX_COLUMNS: usize = 8;
+pub const ONE_PASS_MAX_COLUMNS: usize = 12;
 
 fn primary_only(cp: &CrossProducts) -> bool {
     cp.secondary.is_empty() && cp.q2_total == 0 && cp.primary.is_some() && (1..=4).contains(&cp.q1)
@@ -314,7 +314,7 @@ impl<const Q: usize> LevelSolver<Q> {
 
 /// [`grad_levels`] for the primary term's `q` coefficients and the `p + 1`
 /// columns of `[X y]`, both as compile-time sizes (q ≤ 4 and, by
-/// [`ONE_PASS_MAX_COLUMNS`], p + 1 ≤ 8), so that every loop of the level
+/// [`ONE_PASS_MAX_COLUMNS`], p + 1 ≤ 12), so that every loop of the level
 /// kernel is unrolled. `None` outside those sizes.
 fn grad_levels_dispatch(cp: &CrossProducts, t: &[f64], range: std::ops::Range<usize>) -> Option<GradPart> {
     macro_rules! by_columns {
@@ -328,6 +328,10 @@ fn grad_levels_dispatch(cp: &CrossProducts, t: &[f64], range: std::ops::Range<us
                 6 => grad_levels::<$q, 6>(cp, t, range),
                 7 => grad_levels::<$q, 7>(cp, t, range),
                 8 => grad_levels::<$q, 8>(cp, t, range),
+                9 => grad_levels::<$q, 9>(cp, t, range),
+                10 => grad_levels::<$q, 10>(cp, t, range),
+                11 => grad_levels::<$q, 11>(cp, t, range),
+                12 => grad_levels::<$q, 12>(cp, t, range),
                 _ => None,
             }
         };

@@ -25,10 +25,10 @@ use super::twopass::First;
 pub const MAX_SECONDARY: usize = 2;
 
 /// Columns of `[X y]` this kernel takes.
-pub const MAX_COLUMNS: usize = 8;
+pub const MAX_COLUMNS: usize = 12;
 
 /// `$kernel::<Q, S, C>(args)` run through [`vectorised`] for the run-time
-/// width S (1 or 2) and C = p + 1 columns (1 to 8) as compile-time sizes;
+/// width S (1 or 2) and C = p + 1 columns (1 to 12) as compile-time sizes;
 /// returns `None` from the calling function outside those sizes.
 macro_rules! sized {
     ($width:expr, $c:expr, $kernel:ident::<$q:ident>($($arg:expr),*)) => {
@@ -41,6 +41,10 @@ macro_rules! sized {
             (1, 6) => vectorised(|| $kernel::<$q, 1, 6>($($arg),*)),
             (1, 7) => vectorised(|| $kernel::<$q, 1, 7>($($arg),*)),
             (1, 8) => vectorised(|| $kernel::<$q, 1, 8>($($arg),*)),
+            (1, 9) => vectorised(|| $kernel::<$q, 1, 9>($($arg),*)),
+            (1, 10) => vectorised(|| $kernel::<$q, 1, 10>($($arg),*)),
+            (1, 11) => vectorised(|| $kernel::<$q, 1, 11>($($arg),*)),
+            (1, 12) => vectorised(|| $kernel::<$q, 1, 12>($($arg),*)),
             (2, 1) => vectorised(|| $kernel::<$q, 2, 1>($($arg),*)),
             (2, 2) => vectorised(|| $kernel::<$q, 2, 2>($($arg),*)),
             (2, 3) => vectorised(|| $kernel::<$q, 2, 3>($($arg),*)),
@@ -49,6 +53,10 @@ macro_rules! sized {
             (2, 6) => vectorised(|| $kernel::<$q, 2, 6>($($arg),*)),
             (2, 7) => vectorised(|| $kernel::<$q, 2, 7>($($arg),*)),
             (2, 8) => vectorised(|| $kernel::<$q, 2, 8>($($arg),*)),
+            (2, 9) => vectorised(|| $kernel::<$q, 2, 9>($($arg),*)),
+            (2, 10) => vectorised(|| $kernel::<$q, 2, 10>($($arg),*)),
+            (2, 11) => vectorised(|| $kernel::<$q, 2, 11>($($arg),*)),
+            (2, 12) => vectorised(|| $kernel::<$q, 2, 12>($($arg),*)),
             _ => return None,
         }
     };

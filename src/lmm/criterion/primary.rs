@@ -65,7 +65,7 @@ pub(super) fn primary_fixed<const Q: usize>(cp: &CrossProducts, t1: &[f64], t: &
     logdet
 }
 
-/// [`primary_alone`] for `p + 1 ≤ 8` columns of `[X y]`; `None` for wider
+/// [`primary_alone`] for `p + 1 ≤ 12` columns of `[X y]`; `None` for wider
 /// models, which take [`primary_range`].
 fn alone_dispatch<const Q: usize>(
     cp: &CrossProducts,
@@ -81,6 +81,10 @@ fn alone_dispatch<const Q: usize>(
         6 => vectorised(|| primary_alone::<Q, 6>(cp, tq, range)),
         7 => vectorised(|| primary_alone::<Q, 7>(cp, tq, range)),
         8 => vectorised(|| primary_alone::<Q, 8>(cp, tq, range)),
+        9 => vectorised(|| primary_alone::<Q, 9>(cp, tq, range)),
+        10 => vectorised(|| primary_alone::<Q, 10>(cp, tq, range)),
+        11 => vectorised(|| primary_alone::<Q, 11>(cp, tq, range)),
+        12 => vectorised(|| primary_alone::<Q, 12>(cp, tq, range)),
         _ => return None,
     })
 }
