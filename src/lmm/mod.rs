@@ -9,6 +9,7 @@
 //! factorisation used here, is in `notes/criterion.md`.
 //!
 //! Files by algorithm:
+//! - [`rows`]: the rows of X and the columns of Z, stored or made on demand;
 //! - [`crossprod`]: the one pass over the rows that gathers every cross-product;
 //! - [`criterion`]: one evaluation of the profiled criterion for a θ;
 //! - [`optimize`]: the bounded quasi-Newton optimiser;
