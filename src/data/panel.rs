@@ -49,21 +49,32 @@ impl Codes {
     /// Long files keep a participant's rows together, usually in order of
     /// the id: a label equal to the row before's takes its code at once, and
     /// while each new run's label sorts after the last run's, every run is a
-    /// new level, so no map is needed. The map of labels is built only when
-    /// a run's label sorts before the last one (it may have been seen). The
-    /// codes are those of one map from the start: levels in order of first
-    /// appearance.
+    /// new level, so no map is needed. Two orders serve: the labels' bytes
+    /// (`P1`, `P10`, `P2`) and length then bytes (`1`, `2`, `10`, or `P999`,
+    /// `P1000`); each is a total order in which only equal labels tie, so
+    /// runs rising in either one all the way are distinct. The map of
+    /// labels is built only when a run's label breaks both (it may have
+    /// been seen). The codes are those of one map from the start: levels in
+    /// order of first appearance.
     pub(crate) fn from_strs_expecting<'a>(labels: impl Iterator<Item = &'a str>, sort: bool, levels: usize) -> Codes {
         let mut index: Option<FastMap<&str, u32>> = None;
         let mut firsts: Vec<&'a str> = Vec::with_capacity(levels);
         let mut codes = Vec::with_capacity(labels.size_hint().0);
         let mut last: Option<(&str, u32)> = None;
+        // Whether the runs so far rise in byte order, and in length-then-byte order.
+        let (mut by_bytes, mut by_length) = (true, true);
         for l in labels {
             let c = match last {
                 Some((prev, c)) if prev == l => c,
                 _ => {
                     let next = firsts.len() as u32;
-                    if index.is_none() && last.is_some_and(|(prev, _)| l < prev) {
+                    if index.is_none()
+                        && let Some((prev, _)) = last
+                    {
+                        by_bytes &= prev < l;
+                        by_length &= (prev.len(), prev) < (l.len(), l);
+                    }
+                    if index.is_none() && !by_bytes && !by_length {
                         let mut map: FastMap<&str, u32> =
                             FastMap::with_capacity_and_hasher(levels.max(firsts.len()), Default::default());
                         map.extend(firsts.iter().enumerate().map(|(k, &f)| (f, k as u32)));
@@ -493,13 +504,20 @@ mod codes_tests {
     #[test]
     fn codes_are_those_of_one_map_whatever_the_order_of_the_rows() {
         let mut rng = crate::simulate::Rng::new(4);
-        let pool = ["a", "b", "c", "d", "e", "f", "10", "9", "b2"];
+        let pool = ["a", "b", "c", "d", "e", "f", "10", "9", "b2", "aa", "P999", "P1000"];
         let mut cases: Vec<Vec<&str>> = vec![
             vec![],
             vec!["a", "a", "b", "b", "c"],
             vec!["b", "b", "a", "c", "b", "a"],
             vec!["a", "b", "c", "a"],
             vec!["c", "c", "d", "a", "d", "e", "c"],
+            // Rising by length then bytes, then a label seen before.
+            vec!["9", "10", "10", "9"],
+            vec!["1", "2", "10", "11", "2"],
+            vec!["P999", "P1000", "P999"],
+            // Each order broken once, by different runs.
+            vec!["b", "aa", "c", "b"],
+            vec!["P1", "P10", "P2", "P1"],
         ];
         for _ in 0..300 {
             let n = (rng.uniform() * 12.0) as usize;
