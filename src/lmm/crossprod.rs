@@ -434,19 +434,11 @@ fn level_pass(
 ) {
     macro_rules! columns {
         ($q:literal) => {
+            columns!($q; 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12)
+        };
+        ($q:literal; $($c:literal),*) => {
             match problem.p() + 1 {
-                1 => level_rows::<$q, 1>(problem, k, secondary, order, y_shift, blocks, lists),
-                2 => level_rows::<$q, 2>(problem, k, secondary, order, y_shift, blocks, lists),
-                3 => level_rows::<$q, 3>(problem, k, secondary, order, y_shift, blocks, lists),
-                4 => level_rows::<$q, 4>(problem, k, secondary, order, y_shift, blocks, lists),
-                5 => level_rows::<$q, 5>(problem, k, secondary, order, y_shift, blocks, lists),
-                6 => level_rows::<$q, 6>(problem, k, secondary, order, y_shift, blocks, lists),
-                7 => level_rows::<$q, 7>(problem, k, secondary, order, y_shift, blocks, lists),
-                8 => level_rows::<$q, 8>(problem, k, secondary, order, y_shift, blocks, lists),
-                9 => level_rows::<$q, 9>(problem, k, secondary, order, y_shift, blocks, lists),
-                10 => level_rows::<$q, 10>(problem, k, secondary, order, y_shift, blocks, lists),
-                11 => level_rows::<$q, 11>(problem, k, secondary, order, y_shift, blocks, lists),
-                12 => level_rows::<$q, 12>(problem, k, secondary, order, y_shift, blocks, lists),
+                $($c => level_rows::<$q, $c>(problem, k, secondary, order, y_shift, blocks, lists),)*
                 _ => level_rows::<$q, 0>(problem, k, secondary, order, y_shift, blocks, lists),
             }
         };

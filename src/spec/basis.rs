@@ -112,22 +112,14 @@ impl AgeBasis {
 
     /// The basis columns at `age`.
     pub fn eval(&self, age: f64) -> Vec<f64> {
-        match self {
-            AgeBasis::Polynomial { degree, center } => {
-                let a = age - center;
-                (1..=*degree).map(|k| a.powi(k as i32)).collect()
-            }
-            AgeBasis::Spline { knots, center } => {
-                let v = Self::spline_raw(knots, age, 0);
-                let c = Self::spline_raw(knots, *center, 0);
-                v.iter().zip(&c).map(|(a, b)| a - b).collect()
-            }
-        }
+        let mut v = vec![0.0; self.n_columns()];
+        self.fill_eval(age, &mut v);
+        v
     }
 
     /// [`AgeBasis::eval`] into the first [`AgeBasis::n_columns`] entries of
-    /// `out`, by the same arithmetic and without allocation (the model
-    /// frame calls it once per row and pass).
+    /// `out`, without allocation (the model frame calls it once per row and
+    /// pass).
     pub fn fill_eval(&self, age: f64, out: &mut [f64]) {
         match self {
             AgeBasis::Polynomial { degree, center } => {

@@ -235,8 +235,8 @@ fn rows_made_on_demand_fit_as_stored_rows() {
     let frame = braid::spec::build_frame(&panel, &spec).unwrap();
     let made = &frame.problem;
     assert!(matches!(made.x, Fixed::Made(_)), "the frame makes its rows");
-    // Each made row is [1, basis at age, dose, site indicators], the basis
-    // evaluated by its allocating form (a separate path through the code).
+    // Each made row is [1, basis at age, dose, site indicators]: the
+    // intercept, the order of the columns and the coding of the factor.
     let (dose, site) = match panel.covariates() {
         [d, s] => (&d.values, &s.values),
         _ => unreachable!("two covariates"),

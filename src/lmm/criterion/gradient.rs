@@ -319,19 +319,11 @@ impl<const Q: usize> LevelSolver<Q> {
 fn grad_levels_dispatch(cp: &CrossProducts, t: &[f64], range: std::ops::Range<usize>) -> Option<GradPart> {
     macro_rules! by_columns {
         ($q:literal) => {
+            by_columns!($q; 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12)
+        };
+        ($q:literal; $($c:literal),*) => {
             match cp.p + 1 {
-                1 => grad_levels::<$q, 1>(cp, t, range),
-                2 => grad_levels::<$q, 2>(cp, t, range),
-                3 => grad_levels::<$q, 3>(cp, t, range),
-                4 => grad_levels::<$q, 4>(cp, t, range),
-                5 => grad_levels::<$q, 5>(cp, t, range),
-                6 => grad_levels::<$q, 6>(cp, t, range),
-                7 => grad_levels::<$q, 7>(cp, t, range),
-                8 => grad_levels::<$q, 8>(cp, t, range),
-                9 => grad_levels::<$q, 9>(cp, t, range),
-                10 => grad_levels::<$q, 10>(cp, t, range),
-                11 => grad_levels::<$q, 11>(cp, t, range),
-                12 => grad_levels::<$q, 12>(cp, t, range),
+                $($c => grad_levels::<$q, $c>(cp, t, range),)*
                 _ => None,
             }
         };

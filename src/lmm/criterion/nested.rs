@@ -31,32 +31,13 @@ pub const MAX_COLUMNS: usize = 12;
 /// width S (1 or 2) and C = p + 1 columns (1 to 12) as compile-time sizes;
 /// returns `None` from the calling function outside those sizes.
 macro_rules! sized {
-    ($width:expr, $c:expr, $kernel:ident::<$q:ident>($($arg:expr),*)) => {
+    ($width:expr, $c:expr, $kernel:ident::<$q:ident> $args:tt) => {
+        sized!(@ $width, $c, $kernel::<$q> $args; 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12)
+    };
+    (@ $width:expr, $c:expr, $kernel:ident::<$q:ident> $args:tt; $($cols:literal),*) => {
         match ($width, $c) {
-            (1, 1) => vectorised(|| $kernel::<$q, 1, 1>($($arg),*)),
-            (1, 2) => vectorised(|| $kernel::<$q, 1, 2>($($arg),*)),
-            (1, 3) => vectorised(|| $kernel::<$q, 1, 3>($($arg),*)),
-            (1, 4) => vectorised(|| $kernel::<$q, 1, 4>($($arg),*)),
-            (1, 5) => vectorised(|| $kernel::<$q, 1, 5>($($arg),*)),
-            (1, 6) => vectorised(|| $kernel::<$q, 1, 6>($($arg),*)),
-            (1, 7) => vectorised(|| $kernel::<$q, 1, 7>($($arg),*)),
-            (1, 8) => vectorised(|| $kernel::<$q, 1, 8>($($arg),*)),
-            (1, 9) => vectorised(|| $kernel::<$q, 1, 9>($($arg),*)),
-            (1, 10) => vectorised(|| $kernel::<$q, 1, 10>($($arg),*)),
-            (1, 11) => vectorised(|| $kernel::<$q, 1, 11>($($arg),*)),
-            (1, 12) => vectorised(|| $kernel::<$q, 1, 12>($($arg),*)),
-            (2, 1) => vectorised(|| $kernel::<$q, 2, 1>($($arg),*)),
-            (2, 2) => vectorised(|| $kernel::<$q, 2, 2>($($arg),*)),
-            (2, 3) => vectorised(|| $kernel::<$q, 2, 3>($($arg),*)),
-            (2, 4) => vectorised(|| $kernel::<$q, 2, 4>($($arg),*)),
-            (2, 5) => vectorised(|| $kernel::<$q, 2, 5>($($arg),*)),
-            (2, 6) => vectorised(|| $kernel::<$q, 2, 6>($($arg),*)),
-            (2, 7) => vectorised(|| $kernel::<$q, 2, 7>($($arg),*)),
-            (2, 8) => vectorised(|| $kernel::<$q, 2, 8>($($arg),*)),
-            (2, 9) => vectorised(|| $kernel::<$q, 2, 9>($($arg),*)),
-            (2, 10) => vectorised(|| $kernel::<$q, 2, 10>($($arg),*)),
-            (2, 11) => vectorised(|| $kernel::<$q, 2, 11>($($arg),*)),
-            (2, 12) => vectorised(|| $kernel::<$q, 2, 12>($($arg),*)),
+            $((1, $cols) => vectorised(|| $kernel::<$q, 1, $cols> $args),)*
+            $((2, $cols) => vectorised(|| $kernel::<$q, 2, $cols> $args),)*
             _ => return None,
         }
     };

@@ -72,21 +72,15 @@ fn alone_dispatch<const Q: usize>(
     tq: &[[f64; Q]; Q],
     range: std::ops::Range<usize>,
 ) -> Option<(f64, Vec<f64>)> {
-    Some(match cp.p + 1 {
-        1 => vectorised(|| primary_alone::<Q, 1>(cp, tq, range)),
-        2 => vectorised(|| primary_alone::<Q, 2>(cp, tq, range)),
-        3 => vectorised(|| primary_alone::<Q, 3>(cp, tq, range)),
-        4 => vectorised(|| primary_alone::<Q, 4>(cp, tq, range)),
-        5 => vectorised(|| primary_alone::<Q, 5>(cp, tq, range)),
-        6 => vectorised(|| primary_alone::<Q, 6>(cp, tq, range)),
-        7 => vectorised(|| primary_alone::<Q, 7>(cp, tq, range)),
-        8 => vectorised(|| primary_alone::<Q, 8>(cp, tq, range)),
-        9 => vectorised(|| primary_alone::<Q, 9>(cp, tq, range)),
-        10 => vectorised(|| primary_alone::<Q, 10>(cp, tq, range)),
-        11 => vectorised(|| primary_alone::<Q, 11>(cp, tq, range)),
-        12 => vectorised(|| primary_alone::<Q, 12>(cp, tq, range)),
-        _ => return None,
-    })
+    macro_rules! columns {
+        ($($c:literal),*) => {
+            match cp.p + 1 {
+                $($c => vectorised(|| primary_alone::<Q, $c>(cp, tq, range)),)*
+                _ => return None,
+            }
+        };
+    }
+    Some(columns!(1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12))
 }
 
 /// [`primary_range`] for a primary term alone (no links to other terms)
