@@ -37,21 +37,21 @@ impl CohortColumns {
             c.level_names.push(format!("cohort {name}"));
             c.level_cols.push(indicator(k));
         }
-        for (k, name) in cohorts.iter().enumerate().skip(1) {
+        for name in cohorts.iter().skip(1) {
             for j in 0..nb {
                 c.slope_names
                     .push(format!("cohort {name} × {}", frame.problem.x_names[1 + j]));
-                c.slope_cols.push(
-                    (0..n)
-                        .map(|r| {
-                            if k_of[r] == k {
-                                frame.problem.x_row(r, &mut x_store)[1 + j]
-                            } else {
-                                0.0
-                            }
-                        })
-                        .collect(),
-                );
+                c.slope_cols.push(vec![0.0; n]);
+            }
+        }
+        // Each row's basis columns, once, into its cohort's slope columns
+        // (the reference cohort, k = 0, has none).
+        for (r, &k) in k_of.iter().enumerate() {
+            if k > 0 {
+                let xr = frame.problem.x_row(r, &mut x_store);
+                for j in 0..nb {
+                    c.slope_cols[(k - 1) * nb + j][r] = xr[1 + j];
+                }
             }
         }
         c

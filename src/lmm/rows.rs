@@ -18,10 +18,6 @@ use std::sync::Arc;
 
 /// Writes the rows of a fixed design on demand.
 pub trait RowMaker: Send + Sync + Debug {
-    /// Number of rows.
-    fn n(&self) -> usize;
-    /// Number of columns.
-    fn p(&self) -> usize;
     /// Row `r`'s p entries into `out` (of length p).
     fn fill(&self, r: usize, out: &mut [f64]);
     /// The first column that is one on every row, when the maker knows it
@@ -171,12 +167,6 @@ mod tests {
     struct Quadratic(Arc<[f64]>);
 
     impl RowMaker for Quadratic {
-        fn n(&self) -> usize {
-            self.0.len()
-        }
-        fn p(&self) -> usize {
-            3
-        }
         fn fill(&self, r: usize, out: &mut [f64]) {
             let a = self.0[r];
             out.copy_from_slice(&[1.0, a, a * a]);

@@ -445,12 +445,6 @@ impl CovariateColumn {
 }
 
 impl RowMaker for FrameRows {
-    fn n(&self) -> usize {
-        self.age.len()
-    }
-    fn p(&self) -> usize {
-        1 + self.basis.n_columns() + self.covariates.len()
-    }
     #[inline]
     fn fill(&self, r: usize, out: &mut [f64]) {
         let nb = self.basis.n_columns();
