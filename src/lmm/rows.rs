@@ -97,13 +97,10 @@ impl Fixed {
     /// The first column of the n×p design that is one on every row, if
     /// any: from the maker when it knows, else by a scan.
     pub fn ones_column(&self, n: usize, p: usize) -> Option<usize> {
+        let scan = |x: &[f64]| (0..p).find(|&j| (0..n).all(|r| x[r * p + j] == 1.0));
         match self {
-            Fixed::Made(maker) if maker.ones().is_some() => maker.ones(),
-            Fixed::Stored(x) => (0..p).find(|&j| (0..n).all(|r| x[r * p + j] == 1.0)),
-            Fixed::Made(_) => {
-                let rows = self.rows(n, p);
-                (0..p).find(|&j| (0..n).all(|r| rows[r * p + j] == 1.0))
-            }
+            Fixed::Stored(x) => scan(x),
+            Fixed::Made(maker) => maker.ones().or_else(|| scan(&self.rows(n, p))),
         }
     }
 }
